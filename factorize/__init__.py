@@ -1,0 +1,46 @@
+"""factorize: shrink trained PyTorch models by low-rank factorization of their dense layers.
+
+Typical use::
+
+    import factorize
+    result = factorize.compress(model, budget=0.5)
+    result.model   # compressed copy
+    result.plan    # JSON-serialisable plan
+"""
+
+from factorize.api import CompressResult, apply_plan, compress, decompose_sites, merge, validate_plan
+from factorize.count import count_bytes, count_parameters
+from factorize.decompose import Spectrum, decompose
+from factorize.errors import DriftLimitExceeded, FactorizeError
+from factorize.layers import Factored, factored_layers, is_factored, to_dense
+from factorize.ranks import Override, Policy, choose_ranks, plan_ranks, plan_summary
+from factorize.walk import Site, WalkResult, walk
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "CompressResult",
+    "DriftLimitExceeded",
+    "Factored",
+    "FactorizeError",
+    "Override",
+    "Policy",
+    "Site",
+    "Spectrum",
+    "WalkResult",
+    "apply_plan",
+    "choose_ranks",
+    "compress",
+    "count_bytes",
+    "count_parameters",
+    "decompose",
+    "decompose_sites",
+    "factored_layers",
+    "is_factored",
+    "merge",
+    "plan_ranks",
+    "plan_summary",
+    "to_dense",
+    "validate_plan",
+    "walk",
+]

@@ -1,0 +1,189 @@
+"""Decompose a weight matrix into its singular spectrum, with the predicted error at every rank.
+
+Two methods:
+
+* ``exact``: ``torch.linalg.svd`` (LAPACK) of the whole matrix; every singular value is known.
+* ``randomized``: the randomized range finder with power (subspace) iterations of Halko, Martinsson & Tropp,
+  "Finding structure with randomness", SIAM Review 53(2), 2011 (Algorithms 4.4 and 5.1): a Gaussian sketch of
+  k + p columns, q power iterations re-orthonormalised by QR, then the SVD of the small projected matrix.
+  Seeded through an explicit ``torch.Generator``: the same matrix and seed give the same factors.
+
+Both return a :class:`Spectrum`. By the Eckart-Young-Mirsky theorem (Eckart & Young 1936; Mirsky 1960) the
+rank-r truncation ``U_r S_r V_r^T`` is the best rank-r approximation in every unitarily invariant norm, with
+Frobenius error ``sqrt(sum_{i>r} s_i^2)`` and spectral error ``s_{r+1}``. For a randomized spectrum, which holds
+only the leading k values, the Frobenius tail is taken from the exactly known total ``||W||_F^2`` minus the
+kept energy, which is the error of the factors actually produced (their columns are orthonormal).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from factorize.errors import FactorizeError
+
+METHODS = ("exact", "randomized")
+
+
+@dataclass
+class Spectrum:
+    """Singular triplets of one matrix view, and what truncating them costs.
+
+    ``U`` (m x k), ``S`` (k,), ``Vh`` (k x n) are in the compute dtype (float32 or float64). ``total_energy`` is
+    ``||W||_F^2`` -- the sum of all squared singular values, including any a randomized method did not compute.
+    """
+
+    U: torch.Tensor  # (m, k)
+    S: torch.Tensor  # (k,)
+    Vh: torch.Tensor  # (k, n)
+    total_energy: float
+    method: str
+    exact: bool  # True when S holds every singular value of the matrix
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return int(self.U.shape[0]), int(self.Vh.shape[1])
+
+    @property
+    def computed_rank(self) -> int:
+        return int(self.S.shape[0])
+
+    def energies(self) -> np.ndarray:
+        """Squared singular values s_i^2, float64, in decreasing order."""
+        s = self.S.detach().to(torch.float64).cpu().numpy()
+        return s * s
+
+    def kept_energy(self) -> np.ndarray:
+        """``kept[r]`` = sum_{i<r} s_i^2 for r = 0..k (length k + 1)."""
+        return np.concatenate([[0.0], np.cumsum(self.energies())])
+
+    def errors(self) -> np.ndarray:
+        """Predicted Frobenius error of the rank-r truncation for r = 0..k (Eckart-Young-Mirsky)."""
+        tail = np.maximum(self.total_energy - self.kept_energy(), 0.0)
+        return np.sqrt(tail)
+
+    def error(self, rank: int) -> float:
+        """Predicted Frobenius error ``||W - W_r||_F`` at ``rank``."""
+        return float(self.errors()[min(rank, self.computed_rank)])
+
+    def relative_error(self, rank: int) -> float:
+        """``||W - W_r||_F / ||W||_F`` (0 for an all-zero matrix)."""
+        return self.error(rank) / np.sqrt(self.total_energy) if self.total_energy > 0 else 0.0
+
+    def energy_fraction(self, rank: int) -> float:
+        """Fraction of ``||W||_F^2`` kept at ``rank``."""
+        return float(self.kept_energy()[min(rank, self.computed_rank)] / self.total_energy) if self.total_energy > 0 else 1.0
+
+    def rank_for_energy(self, fraction: float) -> int:
+        """Smallest r keeping at least ``fraction`` of the squared singular values (at most the computed rank)."""
+        if self.total_energy <= 0:
+            return 1
+        kept = self.kept_energy() / self.total_energy
+        r = int(np.searchsorted(kept, fraction - 1e-12, side="left"))
+        return max(1, min(r, self.computed_rank))
+
+    def factors(self, rank: int) -> tuple[torch.Tensor, torch.Tensor]:
+        """Balanced factors ``B = U_r sqrt(S_r)`` (m x r) and ``A = sqrt(S_r) Vh_r`` (r x n), so ``B @ A = W_r``.
+
+        Splitting the singular values evenly keeps the two factors on the same scale, which helps a later
+        fine-tune (neither factor dominates the gradient).
+        """
+        if not 1 <= rank <= self.computed_rank:
+            raise FactorizeError(f"rank {rank} is outside 1..{self.computed_rank} for this spectrum")
+        root = self.S[:rank].sqrt()  # (r,)
+        return self.U[:, :rank] * root, root[:, None] * self.Vh[:rank]  # (m, r), (r, n)
+
+    def truncated(self, rank: int) -> torch.Tensor:
+        """The rank-r approximation itself, m x n."""
+        B, A = self.factors(rank)
+        return B @ A
+
+
+def compute_dtype_for(weight: torch.Tensor, precision: str | None = None) -> torch.dtype:
+    """float64 for float64 weights or when asked, float32 otherwise (half precision is never decomposed as is)."""
+    if precision == "float64" or weight.dtype == torch.float64:
+        return torch.float64
+    if precision not in (None, "float32"):
+        raise FactorizeError(f"unknown precision {precision!r}", fix="use 'float32' or 'float64'")
+    return torch.float32
+
+
+def decompose(
+    matrix: torch.Tensor | np.ndarray,
+    *,
+    method: str = "exact",
+    rank: int | None = None,
+    oversample: int = 10,
+    power_iters: int = 2,
+    seed: int = 0,
+    precision: str | None = None,
+    name: str = "matrix",
+) -> Spectrum:
+    """Singular spectrum of an m x n matrix.
+
+    Args:
+        matrix: the weight's matrix view (out x in); a torch tensor or numpy array. It is not modified.
+        method: ``"exact"`` or ``"randomized"``.
+        rank: for ``randomized``, how many leading singular triplets are needed (k); ignored by ``exact``.
+        oversample: extra sketch columns p (Halko et al. 2011 suggest p = 5..10).
+        power_iters: power iterations q; each sharpens a slowly decaying spectrum (Halko et al. 2011, sec. 4.5).
+        seed: seed of the Gaussian sketch.
+        precision: ``"float32"`` or ``"float64"``; default float64 for float64 weights, float32 otherwise.
+        name: the layer's name, used in error messages.
+    """
+    if method not in METHODS:
+        raise FactorizeError(f"unknown method {method!r} for {name}", fix=f"use one of {', '.join(METHODS)}")
+    w = torch.as_tensor(matrix).detach()
+    if w.dim() != 2:
+        raise FactorizeError(f"{name}: expected a 2-D matrix, got shape {tuple(w.shape)}")
+    dtype = compute_dtype_for(w, precision)
+    w = w.to(dtype)
+    if not bool(torch.isfinite(w).all()):
+        bad = int((~torch.isfinite(w)).sum())
+        raise FactorizeError(
+            f"{name}: the weight holds {bad} NaN or Inf value(s)",
+            fix="repair or retrain the layer, or exclude it (exclude=[...] / --exclude)",
+        )
+    if method == "randomized" and rank is not None:
+        if rank <= 0:
+            raise FactorizeError(f"{name}: rank must be >= 1, got {rank}")
+        return _randomized(w, rank, oversample, power_iters, seed)
+    return _exact(w)
+
+
+def _exact(w: torch.Tensor) -> Spectrum:
+    U, S, Vh = torch.linalg.svd(w, full_matrices=False)  # (m, k), (k,), (k, n); k = min(m, n)
+    U, Vh = _fix_signs(U, Vh)
+    total = float((S.to(torch.float64) ** 2).sum())
+    return Spectrum(U, S, Vh, total_energy=total, method="exact", exact=True)
+
+
+def _randomized(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: int) -> Spectrum:
+    m, n = w.shape
+    k = min(rank, m, n)
+    sketch = min(k + max(oversample, 0), m, n)
+    if sketch >= min(m, n):  # the sketch would be as large as the matrix: exact is cheaper and better
+        return _exact(w)
+    gen = torch.Generator(device="cpu").manual_seed(seed)
+    omega = torch.randn(n, sketch, generator=gen, dtype=w.dtype).to(w.device)  # (n, k+p)
+    Q, _ = torch.linalg.qr(w @ omega)  # (m, k+p): orthonormal basis of the sketched range
+    for _ in range(power_iters):  # subspace iteration, re-orthonormalised each half step (Halko et al. Alg. 4.4)
+        Z, _ = torch.linalg.qr(w.T @ Q)  # (n, k+p)
+        Q, _ = torch.linalg.qr(w @ Z)  # (m, k+p)
+    small = Q.T @ w  # (k+p, n)
+    Ub, S, Vh = torch.linalg.svd(small, full_matrices=False)
+    U = Q @ Ub  # (m, k+p)
+    U, Vh = _fix_signs(U[:, :k], Vh[:k])
+    total = float(torch.linalg.matrix_norm(w.to(torch.float64)) ** 2)  # exact ||W||_F^2
+    return Spectrum(U, S[:k], Vh, total_energy=total, method="randomized", exact=False)
+
+
+def _fix_signs(U: torch.Tensor, Vh: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """Make each left singular vector's largest-magnitude entry positive, so results are reproducible across
+    methods and runs (the same convention as scikit-learn's ``svd_flip``)."""
+    idx = U.abs().argmax(dim=0)  # (k,)
+    signs = torch.sign(U[idx, torch.arange(U.shape[1], device=U.device)])
+    signs[signs == 0] = 1
+    return U * signs, Vh * signs[:, None]

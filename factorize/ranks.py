@@ -1,0 +1,338 @@
+"""Choose a rank for every site from its spectrum: the plan.
+
+Policies (exactly one per call, see :class:`Policy`):
+
+* ``rank=N``   the same rank everywhere, capped at each layer's computed rank;
+* ``energy=t`` per layer, the smallest r keeping fraction t of sum(s_i^2);
+* ``keep=f``   every layer keeps fraction f of its own parameters: r = floor(f * mn / (m + n));
+* ``budget=f`` the sites together keep fraction f of their parameters (or multiply-accumulates); ranks are
+  allocated greedily by the largest error reduction per unit spent. Each layer's error is measured relative to
+  its own energy (s_i^2 / sum s^2) unless the caller passes its own scale (for example a measured
+  sensitivity). Because singular values decrease, each layer's gain per unit is non-increasing, so the greedy
+  allocation is optimal up to the last step (the classic exchange argument for separable concave gains).
+
+Always: a layer whose factored form would not save (r(m + n) >= mn, common practice) stays dense, and so does a
+weight shared by several modules. Optional rounding to a multiple of 8 or 16 suits fast matrix kernels
+(common practice).
+
+The plan is plain JSON-serialisable data::
+
+    {"format": "factorize.plan", "version": 1, "method": "exact", "policy": {...},
+     "sites": {"encoder.fc1": {"kind": "linear", "shape": [m, n], "rank": 48, "action": "factor",
+                               "reason": "...", "params": mn, "params_after": 48*(m+n),
+                               "predicted_error": 0.12}, ...}}
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import heapq
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from factorize.decompose import Spectrum
+from factorize.errors import FactorizeError
+from factorize.walk import Site
+
+PLAN_FORMAT = "factorize.plan"
+PLAN_VERSION = 1
+POLICY_KEYS = ("rank", "energy", "keep", "budget")
+
+
+@dataclass(frozen=True)
+class Override:
+    """A per-pattern exception to the policy: a fixed ``rank``, ``energy`` or ``keep``, or ``dense=True``."""
+
+    pattern: str  # glob on qualified names (fnmatch rules)
+    rank: int | None = None
+    energy: float | None = None
+    keep: float | None = None
+    dense: bool = False
+
+
+@dataclass(frozen=True)
+class Policy:
+    """How ranks are chosen; exactly one of rank, energy, keep, budget is set."""
+
+    rank: int | None = None  # same rank everywhere
+    energy: float | None = None  # fraction of sum(s^2) kept per layer, in (0, 1]
+    keep: float | None = None  # fraction of each layer's parameters kept, in (0, 1]
+    budget: float | None = None  # fraction of all sites' parameters (or MACs) kept, in (0, 1]
+    multiple: int = 1  # round ranks to a multiple of this (8 or 16 suit fast kernels)
+    cost: str = "params"  # what budget= counts: "params" or "macs"
+    overrides: tuple[Override, ...] = field(default_factory=tuple)
+
+    def __post_init__(self) -> None:
+        _validate_policy(self)
+
+    def to_dict(self) -> dict:
+        d = {k: v for k, v in asdict(self).items() if k != "overrides" and v is not None}
+        if self.overrides:
+            d["overrides"] = [{k: v for k, v in asdict(o).items() if v not in (None, False)} for o in self.overrides]
+        return d
+
+
+def _validate_policy(p: Policy) -> None:
+    given = [k for k in POLICY_KEYS if getattr(p, k) is not None]
+    if len(given) != 1:
+        raise FactorizeError(
+            f"exactly one rank policy is needed, got {len(given)}" + (f" ({', '.join(given)})" if given else ""),
+            fix="pass one of rank=N, energy=t, keep=f or budget=f",
+        )
+    problems = _check_values("", rank=p.rank, energy=p.energy, keep=p.keep, budget=p.budget)
+    if not isinstance(p.multiple, int) or p.multiple < 1:
+        problems.append(f"multiple must be a positive integer, got {p.multiple!r}")
+    if p.cost not in ("params", "macs"):
+        problems.append(f"cost must be 'params' or 'macs', got {p.cost!r}")
+    for o in p.overrides:
+        set_ = [k for k in ("rank", "energy", "keep") if getattr(o, k) is not None] + (["dense"] if o.dense else [])
+        if len(set_) != 1:
+            problems.append(f"override {o.pattern!r} must set exactly one of rank, energy, keep, dense")
+        problems += _check_values(f"override {o.pattern!r}: ", rank=o.rank, energy=o.energy, keep=o.keep)
+    if problems:
+        raise FactorizeError("invalid rank policy", problems, fix="ranks are integers >= 1; fractions lie in (0, 1]")
+
+
+def _check_values(prefix: str, **values) -> list[str]:
+    problems = []
+    rank = values.pop("rank")
+    if rank is not None and (isinstance(rank, bool) or not isinstance(rank, (int, np.integer)) or rank < 1):
+        problems.append(f"{prefix}rank must be an integer >= 1, got {rank!r}")
+    for key, v in values.items():
+        if v is None:
+            continue
+        if isinstance(v, bool) or not isinstance(v, (int, float, np.floating)) or not (0 < float(v) <= 1):
+            problems.append(f"{prefix}{key} must be a fraction in (0, 1], got {v!r}")
+    return problems
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# per-layer rules
+
+
+def _round_up(r: int, multiple: int) -> int:
+    return int(math.ceil(r / multiple) * multiple)
+
+
+def _round_down(r: int, multiple: int) -> int:
+    return max(multiple, (r // multiple) * multiple) if r >= 1 else r
+
+
+def _site_entry(site: Site, spectrum: Spectrum | None, rank: int | None, reason: str) -> dict:
+    """One plan row. ``rank=None`` means keep dense."""
+    if rank is not None and spectrum is not None and rank > spectrum.computed_rank:
+        # exact spectra: cap at min(m, n). Partial (randomized) spectra stop at the break-even rank, so a rank
+        # beyond them cannot save anything: treat it as full rank, which the check below keeps dense.
+        rank = spectrum.computed_rank if spectrum.exact else site.max_rank
+    if rank is not None and not site.saves_at(rank):
+        reason = (
+            f"rank {rank} would store {site.factored_params(rank)} numbers, not fewer than the dense "
+            f"{site.params} (break-even rank {site.break_even}); kept dense"
+        )
+        rank = None
+    entry = {
+        "kind": site.kind,
+        "shape": list(site.shape),
+        "rank": rank,
+        "action": "factor" if rank is not None else "dense",
+        "reason": reason,
+        "params": site.params,
+        "params_after": site.factored_params(rank) if rank is not None else site.params,
+    }
+    if site.kernel:
+        entry["kernel"] = list(site.kernel)
+    if spectrum is not None:
+        entry["predicted_error"] = spectrum.relative_error(rank) if rank is not None else 0.0
+        entry["energy_kept"] = spectrum.energy_fraction(rank) if rank is not None else 1.0
+    return entry
+
+
+def _fixed_rank(site: Site, spectrum: Spectrum, *, rank=None, energy=None, keep=None, multiple: int = 1):
+    """(rank, reason) under a per-layer rule."""
+    if rank is not None:
+        return _round_up(rank, multiple), f"rank={rank}"
+    if energy is not None:
+        r = spectrum.rank_for_energy(energy)
+        if not spectrum.exact and spectrum.energy_fraction(r) < energy:
+            r = site.max_rank  # the computed part of the spectrum does not reach t: only dense or full rank does
+        return _round_up(r, multiple), f"energy={energy}: smallest rank keeping {energy:.4g} of sum(s^2)"
+    r = int(math.floor(keep * site.params / (site.shape[0] + site.shape[1])))
+    if r < 1:
+        return 1, f"keep={keep}: below rank 1, raised to 1"
+    return _round_down(r, multiple), f"keep={keep}: floor(f*mn/(m+n))"
+
+
+def _override_for(name: str, overrides: Sequence[Override]) -> Override | None:
+    for o in overrides:  # the first matching pattern wins
+        if fnmatch.fnmatchcase(name, o.pattern):
+            return o
+    return None
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# global budget
+
+
+def _unit_cost(site: Site, cost: str) -> int:
+    """Cost of one rank unit: (m + n) parameters, or (m + n) MACs per output position."""
+    positions = (site.macs_per_sample // site.params) if (cost == "macs" and site.macs_per_sample) else 1
+    return (site.shape[0] + site.shape[1]) * positions
+
+
+def _dense_cost(site: Site, cost: str) -> int:
+    return site.params * ((site.macs_per_sample // site.params) if (cost == "macs" and site.macs_per_sample) else 1)
+
+
+def allocate_budget(
+    sites: Sequence[Site],
+    spectra: Mapping[str, Spectrum],
+    available: float,
+    *,
+    multiple: int = 1,
+    cost: str = "params",
+    error_scale: Mapping[str, float] | None = None,
+) -> dict[str, int | None]:
+    """Greedy allocation of ``available`` cost units across ``sites``: name -> rank, or None for dense.
+
+    Every site starts at rank ``multiple`` (a factored layer needs at least one rank unit). Then, repeatedly, the
+    step with the largest scaled error reduction per unit of cost is taken: adding ``multiple`` ranks (gain: the
+    next squared singular values), or -- once the next step would reach the break-even rank or the end of the
+    computed spectrum -- going dense (gain: the whole remaining tail). A step that no longer fits is dropped.
+    """
+    ranks: dict[str, int] = {}
+    spent = 0.0
+    heap: list[tuple] = []  # (-gain per unit, site order, name, next rank, step cost)
+    for s in sites:
+        ranks[s.name] = min(multiple, spectra[s.name].computed_rank)
+        spent += ranks[s.name] * _unit_cost(s, cost)
+    if spent > available + 1e-9:
+        need = spent / max(sum(_dense_cost(s, cost) for s in sites), 1)
+        raise FactorizeError(
+            f"the budget is too small: even rank {multiple} in every selected layer keeps {need:.2%} of their "
+            f"{'parameters' if cost == 'params' else 'multiply-accumulates'}",
+            fix="raise the budget, exclude some layers, or use keep=/rank= for a per-layer rule",
+        )
+    order = {s.name: i for i, s in enumerate(sites)}
+    by_name = {s.name: s for s in sites}
+    scale = dict(error_scale or {})
+    kept = {s.name: spectra[s.name].kept_energy() for s in sites}
+
+    def push(name: str) -> None:
+        site, spec, r = by_name[name], spectra[name], ranks[name]
+        if r is None:
+            return
+        sc = scale.get(name, 1.0 / spec.total_energy if spec.total_energy > 0 else 0.0)
+        nxt = r + multiple
+        if nxt >= site.break_even or nxt > spec.computed_rank:  # next step: dense
+            gain = (spec.total_energy - kept[name][r]) * sc
+            step_cost = _dense_cost(site, cost) - r * _unit_cost(site, cost)
+        else:
+            gain = (kept[name][nxt] - kept[name][r]) * sc
+            step_cost = multiple * _unit_cost(site, cost)
+        heapq.heappush(heap, (-gain / max(step_cost, 1), order[name], name, nxt, step_cost))
+
+    for s in sites:
+        push(s.name)
+    while heap:
+        _, _, name, nxt, step_cost = heapq.heappop(heap)
+        if spent + step_cost > available + 1e-9:
+            continue  # this layer's next step does not fit; others' may
+        spent += step_cost
+        site, spec = by_name[name], spectra[name]
+        if nxt >= site.break_even or nxt > spec.computed_rank:
+            ranks[name] = None  # dense
+        else:
+            ranks[name] = nxt
+            push(name)
+    return ranks
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# the plan
+
+
+def choose_ranks(
+    sites: Sequence[Site],
+    spectra: Mapping[str, Spectrum],
+    policy: Policy,
+    *,
+    method: str = "exact",
+    factor_tied: bool = False,
+    error_scale: Mapping[str, float] | None = None,
+) -> dict:
+    """Build the plan: for every site a rank or "dense", with the reason."""
+    missing = [s.name for s in sites if s.name not in spectra and not (s.tied_with and not factor_tied)]
+    if missing:
+        raise FactorizeError("no spectrum for some sites", missing, fix="decompose every site before choosing ranks")
+    entries: dict[str, dict] = {}
+    pool: list[Site] = []
+    fixed_cost = 0
+    for site in sites:
+        spec = spectra.get(site.name)
+        if site.tied_with and not factor_tied:
+            entries[site.name] = _site_entry(
+                site, spec, None, f"weight shared with {', '.join(site.tied_with)}; factoring one owner would untie them"
+            )
+            continue
+        o = _override_for(site.name, policy.overrides)
+        if o is not None and o.dense:
+            entries[site.name] = _site_entry(site, spec, None, f"override {o.pattern!r}: keep dense")
+        elif o is not None:
+            r, why = _fixed_rank(site, spec, rank=o.rank, energy=o.energy, keep=o.keep, multiple=policy.multiple)
+            entries[site.name] = _site_entry(site, spec, r, f"override {o.pattern!r}: {why}")
+        elif policy.budget is None:
+            r, why = _fixed_rank(
+                site, spec, rank=policy.rank, energy=policy.energy, keep=policy.keep, multiple=policy.multiple
+            )
+            entries[site.name] = _site_entry(site, spec, r, why)
+        else:
+            pool.append(site)
+            continue
+        e = entries[site.name]
+        fixed_cost += e["params_after"] if policy.cost == "params" else _entry_cost(site, e)
+    if pool:
+        everything = [s for s in sites if not (s.tied_with and not factor_tied)]
+        total = sum(_dense_cost(s, policy.cost) for s in everything)
+        available = policy.budget * total - fixed_cost
+        ranks = allocate_budget(
+            pool, spectra, available, multiple=policy.multiple, cost=policy.cost, error_scale=error_scale
+        )
+        for site in pool:
+            r = ranks[site.name]
+            why = f"budget={policy.budget}: greedy allocation by error reduction per {policy.cost[:-1]}"
+            entries[site.name] = _site_entry(site, spectra[site.name], r, why if r is not None else why + "; dense")
+    order = [s.name for s in sites]
+    return {
+        "format": PLAN_FORMAT,
+        "version": PLAN_VERSION,
+        "method": method,
+        "policy": policy.to_dict(),
+        "sites": {name: entries[name] for name in order},
+    }
+
+
+def _entry_cost(site: Site, entry: dict) -> int:
+    r = entry["rank"]
+    return _dense_cost(site, "macs") if r is None else r * _unit_cost(site, "macs")
+
+
+def plan_ranks(plan: Mapping) -> dict[str, int]:
+    """name -> rank for the sites a plan factors."""
+    return {name: e["rank"] for name, e in plan["sites"].items() if e.get("action") == "factor"}
+
+
+def plan_summary(plan: Mapping) -> dict:
+    """Totals over a plan's sites: parameters before/after and how many layers are factored."""
+    sites = plan["sites"].values()
+    before = sum(e["params"] for e in sites)
+    after = sum(e["params_after"] for e in sites)
+    return {
+        "sites": len(plan["sites"]),
+        "factored": sum(1 for e in sites if e["action"] == "factor"),
+        "params_before": before,
+        "params_after": after,
+        "kept_fraction": after / before if before else 1.0,
+    }

@@ -1,0 +1,282 @@
+"""Walk a model and list the layers whose weight is a matrix we can factor ("sites").
+
+Every site is seen through one matrix view, ``out x in`` (m x n), so the rest of the pipeline treats all kinds
+alike:
+
+=============  ===============================  ====================================================
+kind           module                           matrix view (m x n)
+=============  ===============================  ====================================================
+linear         ``nn.Linear``                    ``weight`` (out_features x in_features)
+conv1d/conv2d  ``nn.Conv1d`` / ``nn.Conv2d``    ``weight.reshape(out, in * prod(kernel))``, groups=1
+embedding      ``nn.Embedding``                 ``weight.T`` (embedding_dim x num_embeddings)
+transposed     leaf with a transposed weight    ``weight.T`` (see :func:`is_transposed_projection`)
+=============  ===============================  ====================================================
+
+Storing the m x n matrix costs mn numbers; rank-r factors cost r(m + n), so factoring saves only when
+r < mn / (m + n) (common practice). ``break_even`` is floor(mn / (m + n)) -- ranks at or above it never save.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+
+import torch
+from torch import nn
+
+from factorize.errors import FactorizeError
+
+KINDS = ("linear", "conv1d", "conv2d", "embedding", "transposed")
+
+
+@dataclass(frozen=True)
+class Site:
+    """One factorizable layer."""
+
+    name: str  # qualified module name, as in model.named_modules()
+    kind: str  # one of KINDS
+    shape: tuple[int, int]  # matrix view (out m, in n)
+    params: int  # m * n numbers in the weight (bias not counted)
+    has_bias: bool
+    dtype: str  # weight dtype, e.g. "float32"
+    tied_with: tuple[str, ...] = ()  # other qualified names sharing this weight tensor
+    kernel: tuple[int, ...] = ()  # conv kernel size, () otherwise
+    macs_per_sample: int | None = None  # multiply-accumulates per sample when measured (conv: x output positions)
+
+    @property
+    def break_even(self) -> int:
+        """Largest rank that still does not save: floor(mn / (m + n)) (common practice)."""
+        m, n = self.shape
+        return (m * n) // (m + n)
+
+    @property
+    def max_rank(self) -> int:
+        return min(self.shape)
+
+    def factored_params(self, rank: int) -> int:
+        """Numbers stored by rank-``rank`` factors: r(m + n) (common practice)."""
+        m, n = self.shape
+        return rank * (m + n)
+
+    def saves_at(self, rank: int) -> bool:
+        return self.factored_params(rank) < self.params
+
+    def to_dict(self) -> dict:
+        return {
+            "name": self.name,
+            "kind": self.kind,
+            "shape": list(self.shape),
+            "params": self.params,
+            "break_even": self.break_even,
+            "has_bias": self.has_bias,
+            "dtype": self.dtype,
+            "tied_with": list(self.tied_with),
+            "kernel": list(self.kernel),
+        }
+
+
+@dataclass(frozen=True)
+class Skipped:
+    """A layer the walker saw but will not factor, with the reason."""
+
+    name: str
+    reason: str
+
+
+@dataclass
+class WalkResult:
+    """What the walker found: factorizable sites (in module order) and layers skipped with a reason."""
+
+    sites: list[Site] = field(default_factory=list)
+    skipped: list[Skipped] = field(default_factory=list)
+
+    def __iter__(self):
+        return iter(self.sites)
+
+    def __len__(self) -> int:
+        return len(self.sites)
+
+    def by_name(self) -> dict[str, Site]:
+        return {s.name: s for s in self.sites}
+
+    @property
+    def tied(self) -> list[Site]:
+        return [s for s in self.sites if s.tied_with]
+
+
+def is_transposed_projection(module: nn.Module) -> bool:
+    """Duck-typing rule for projections that store their weight transposed (GPT-2's ``Conv1D`` and the like).
+
+    A module counts when all of these hold, without importing the library that defines it:
+
+    1. it is not a torch.nn layer we handle otherwise, and it has no child modules;
+    2. its own parameters are exactly a 2-D ``weight`` of shape (in, out) and optionally a 1-D ``bias`` of
+       length ``out``;
+    3. on a probe input ``x`` of shape (2, in) its forward returns ``x @ weight + bias`` (to float tolerance).
+
+    The probe (rule 3) is what makes the rule safe: a module that merely has a 2-D weight but computes
+    something else is not treated as a projection.
+    """
+    if isinstance(module, (nn.Linear, nn.Embedding, nn.modules.conv._ConvNd)) or any(True for _ in module.children()):
+        return False
+    params = dict(module.named_parameters(recurse=False))
+    weight = params.get("weight")
+    if weight is None or weight.dim() != 2 or set(params) - {"weight", "bias"}:
+        return False
+    bias = params.get("bias")
+    n_in, n_out = weight.shape
+    if bias is not None and tuple(bias.shape) != (n_out,):
+        return False
+    return _probe_transposed(module, weight, bias)
+
+
+def _probe_transposed(module: nn.Module, weight: torch.Tensor, bias: torch.Tensor | None) -> bool:
+    gen = torch.Generator().manual_seed(0)
+    x = torch.randn(2, weight.shape[0], generator=gen).to(device=weight.device, dtype=weight.dtype)
+    try:
+        with torch.no_grad():
+            y = module(x)
+    except Exception:  # noqa: BLE001 - any failure means "does not behave like a projection"
+        return False
+    if not isinstance(y, torch.Tensor) or tuple(y.shape) != (2, weight.shape[1]):
+        return False
+    with torch.no_grad():
+        expected = x @ weight + (bias if bias is not None else 0)
+    tol = 1e-2 if weight.dtype in (torch.float16, torch.bfloat16) else 1e-4
+    return bool(torch.allclose(y.float(), expected.float(), rtol=tol, atol=tol * float(expected.abs().max() + 1)))
+
+
+def _kind_of(module: nn.Module) -> tuple[str | None, str | None]:
+    """(kind, None) for a factorizable module, (None, reason) for a dense layer we skip, (None, None) otherwise."""
+    if isinstance(module, nn.Linear):
+        return "linear", None
+    if isinstance(module, (nn.Conv1d, nn.Conv2d)):
+        if module.groups != 1:
+            return None, f"grouped convolution (groups={module.groups}) has no single matrix view; left dense"
+        return ("conv1d" if isinstance(module, nn.Conv1d) else "conv2d"), None
+    if isinstance(module, nn.modules.conv._ConvNd):
+        return None, f"{type(module).__name__} is not supported (only Conv1d and Conv2d); left dense"
+    if isinstance(module, nn.Embedding):
+        if module.max_norm is not None:
+            return None, "embedding with max_norm renormalises rows at lookup; left dense"
+        return "embedding", None
+    if isinstance(module, nn.EmbeddingBag):
+        return None, "EmbeddingBag is not supported; left dense"
+    if is_transposed_projection(module):
+        return "transposed", None
+    return None, None
+
+
+def matrix_of(module: nn.Module, kind: str) -> torch.Tensor:
+    """The layer's weight as an (out m, in n) matrix view (no copy where the layout allows)."""
+    w = module.weight
+    if kind == "linear":
+        return w  # (m, n)
+    if kind in ("conv1d", "conv2d"):
+        return w.reshape(w.shape[0], -1)  # (out, in * prod(kernel))
+    if kind in ("embedding", "transposed"):
+        return w.t()  # embedding: (dim, vocab); transposed: stored (in, out) -> (out, in)
+    raise ValueError(f"unknown kind {kind!r}")
+
+
+def _matches(name: str, patterns: Sequence[str] | None) -> bool:
+    return any(fnmatch.fnmatchcase(name, p) for p in patterns or ())
+
+
+def _shared_weights(model: nn.Module) -> dict[int, list[str]]:
+    """Map id(weight tensor) -> every qualified module name that owns it (tied weights have several)."""
+    owners: dict[int, list[str]] = {}
+    for name, module in model.named_modules(remove_duplicate=False):
+        w = module._parameters.get("weight") if hasattr(module, "_parameters") else None
+        if w is not None:
+            names = owners.setdefault(id(w), [])
+            if name not in names:
+                names.append(name)
+    return owners
+
+
+def _as_patterns(value: str | Iterable[str] | None, what: str) -> list[str] | None:
+    if value is None:
+        return None
+    if isinstance(value, str):
+        return [value]
+    patterns = list(value)
+    bad = [repr(p) for p in patterns if not isinstance(p, str)]
+    if bad:
+        raise FactorizeError(f"{what} patterns must be strings", bad, fix=f"pass {what} as a glob string or a list of them")
+    return patterns
+
+
+def walk(
+    model: nn.Module,
+    *,
+    include: str | Iterable[str] | None = None,
+    exclude: str | Iterable[str] | None = None,
+) -> WalkResult:
+    """Find every factorizable layer of ``model``.
+
+    Args:
+        model: any ``torch.nn.Module``; it is only read.
+        include: glob pattern(s) on qualified module names (``fnmatch`` rules, e.g. ``"encoder.*.attention.*"``);
+            when given, only matching layers become sites.
+        exclude: glob pattern(s); matching layers are never sites.
+
+    Returns:
+        A :class:`WalkResult`. A weight shared by several modules (tied embedding and output head) gives one
+        site per owner, each with ``tied_with`` naming the others; rank policies leave such sites dense unless
+        asked otherwise, since factoring one owner would silently untie them.
+    """
+    if not isinstance(model, nn.Module):
+        raise FactorizeError(
+            f"expected a torch.nn.Module, got {type(model).__name__}",
+            fix="pass the model object itself (for a checkpoint file, build the architecture and load it first)",
+        )
+    include_p = _as_patterns(include, "include")
+    exclude_p = _as_patterns(exclude, "exclude")
+    owners = _shared_weights(model)
+    result = WalkResult()
+    for name, module in model.named_modules():
+        if not name:
+            continue  # the root module cannot be swapped in place; wrap a bare layer in a container
+        if include_p is not None and not _matches(name, include_p):
+            continue
+        if _matches(name, exclude_p):
+            continue
+        kind, reason = _kind_of(module)
+        if kind is None:
+            if reason is not None:
+                result.skipped.append(Skipped(name, reason))
+            continue
+        result.sites.append(_make_site(name, module, kind, owners))
+    return result
+
+
+def _make_site(name: str, module: nn.Module, kind: str, owners: dict[int, list[str]]) -> Site:
+    w = module.weight
+    m, n = matrix_of(module, kind).shape
+    kernel = tuple(module.kernel_size) if kind in ("conv1d", "conv2d") else ()
+    tied = tuple(o for o in owners.get(id(w), []) if o != name)
+    bias = getattr(module, "bias", None)
+    return Site(
+        name=name,
+        kind=kind,
+        shape=(int(m), int(n)),
+        params=int(m) * int(n),
+        has_bias=isinstance(bias, torch.Tensor),
+        dtype=str(w.dtype).removeprefix("torch."),
+        tied_with=tied,
+        kernel=kernel,
+    )
+
+
+def get_module(model: nn.Module, name: str) -> nn.Module:
+    """The submodule at qualified ``name`` ("" is the model itself)."""
+    return model.get_submodule(name) if name else model
+
+
+def set_module(model: nn.Module, name: str, new: nn.Module) -> None:
+    """Replace the submodule at qualified ``name`` (which must not be "")."""
+    parent_name, _, attr = name.rpartition(".")
+    parent = get_module(model, parent_name)
+    setattr(parent, attr, new)
