@@ -226,7 +226,7 @@ def allocate_budget(
             return
         sc = scale.get(name, 1.0 / spec.total_energy if spec.total_energy > 0 else 0.0)
         nxt = r + multiple
-        if nxt >= site.break_even or nxt > spec.computed_rank:  # next step: dense
+        if not site.saves_at(nxt) or nxt > spec.computed_rank:  # next step: dense
             gain = (spec.total_energy - kept[name][r]) * sc
             step_cost = _dense_cost(site, cost) - r * _unit_cost(site, cost)
         else:
@@ -242,7 +242,7 @@ def allocate_budget(
             continue  # this layer's next step does not fit; others' may
         spent += step_cost
         site, spec = by_name[name], spectra[name]
-        if nxt >= site.break_even or nxt > spec.computed_rank:
+        if not site.saves_at(nxt) or nxt > spec.computed_rank:
             ranks[name] = None  # dense
         else:
             ranks[name] = nxt

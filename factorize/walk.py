@@ -13,7 +13,7 @@ transposed     leaf with a transposed weight    ``weight.T`` (see :func:`is_tran
 =============  ===============================  ====================================================
 
 Storing the m x n matrix costs mn numbers; rank-r factors cost r(m + n), so factoring saves only when
-r < mn / (m + n) (common practice). ``break_even`` is floor(mn / (m + n)) -- ranks at or above it never save.
+r < mn / (m + n) (common practice). ``break_even`` is floor(mn / (m + n)) -- no rank above it saves.
 """
 
 from __future__ import annotations
@@ -46,7 +46,8 @@ class Site:
 
     @property
     def break_even(self) -> int:
-        """Largest rank that still does not save: floor(mn / (m + n)) (common practice)."""
+        """floor(mn / (m + n)) (common practice): factoring saves only when r < mn / (m + n), so no rank above
+        this saves, and this one saves only when mn / (m + n) is not a whole number."""
         m, n = self.shape
         return (m * n) // (m + n)
 

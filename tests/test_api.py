@@ -1,0 +1,162 @@
+"""The one-call API on real architectures: compress, apply a saved plan, merge, bad input."""
+
+from __future__ import annotations
+
+import copy
+import json
+
+import pytest
+import torch
+from conftest import CNN, MLP, tiny_bert, tiny_gpt2
+
+import factorize
+from factorize import FactorizeError, apply_plan, compress, merge, walk
+
+
+def _full_rank_plan(model) -> dict:
+    """A plan that factors every untied site at full rank (no saving, but exact up to float error)."""
+    plan = compress(model, rank=1).plan
+    for e in plan["sites"].values():
+        if "shared with" not in e["reason"]:
+            e.update(rank=min(e["shape"]), action="factor")
+    return plan
+
+
+def _state(model):
+    return {k: v.clone() for k, v in model.state_dict().items()}
+
+
+def test_compress_returns_copy_and_plan(mlp):
+    before = _state(mlp)
+    result = compress(mlp, budget=0.5)
+    assert all(torch.equal(before[k], v) for k, v in mlp.state_dict().items())  # input untouched
+    assert result.model is not mlp
+    assert json.loads(json.dumps(result.plan)) == result.plan
+    assert result.params_after < result.params_before
+    assert factorize.factored_layers(result.model)
+
+
+def test_inplace(mlp):
+    result = compress(mlp, rank=4, inplace=True)
+    assert result.model is mlp and factorize.is_factored(mlp.fc1)
+
+
+def test_saved_plan_rebuilds_same_structure_on_fresh_instance():
+    torch.manual_seed(0)
+    model = MLP().eval()
+    result = compress(model, energy=0.8)
+    plan = json.loads(json.dumps(result.plan))  # through JSON, as a file would
+    fresh = copy.deepcopy(model)
+    rebuilt = apply_plan(fresh, plan)
+    x = torch.randn(8, 24)
+    torch.testing.assert_close(rebuilt(x), result.model(x))
+    assert {n: m.rank for n, m in factorize.factored_layers(rebuilt).items()} == factorize.plan_ranks(plan)
+
+
+@pytest.mark.parametrize("make,inputs", [
+    (lambda: MLP().eval(), lambda: (torch.randn(5, 24),)),
+    (lambda: CNN().eval(), lambda: (torch.randn(2, 3, 12, 12),)),
+    (tiny_bert, lambda: (torch.randint(0, 64, (2, 9)),)),
+    (tiny_gpt2, lambda: (torch.randint(0, 64, (2, 9)),)),
+])
+def test_full_rank_factoring_reproduces_outputs(make, inputs):
+    torch.manual_seed(0)
+    model = make()
+    x = inputs()
+    rebuilt = apply_plan(model, _full_rank_plan(model))
+    assert factorize.factored_layers(rebuilt)
+    with torch.no_grad():
+        ref, out = model(*x), rebuilt(*x)
+    ref = ref if isinstance(ref, torch.Tensor) else ref[0]
+    out = out if isinstance(out, torch.Tensor) else out[0]
+    torch.testing.assert_close(out, ref, rtol=1e-4, atol=1e-4)
+    with torch.no_grad():
+        merged = merge(rebuilt)(*x)
+    torch.testing.assert_close(merged if isinstance(merged, torch.Tensor) else merged[0], ref, rtol=1e-4, atol=1e-4)
+
+
+def test_gpt2_every_projection_factored_and_tied_weights_dense():
+    model = tiny_gpt2()
+    result = compress(model, keep=0.5)
+    sites = result.plan["sites"]
+    for layer in range(2):
+        for proj in ("attn.c_attn", "attn.c_proj", "mlp.c_fc", "mlp.c_proj"):
+            assert sites[f"transformer.h.{layer}.{proj}"]["action"] == "factor"
+    for tied in ("transformer.wte", "lm_head"):
+        assert sites[tied]["action"] == "dense" and "shared with" in sites[tied]["reason"]
+    assert result.model.lm_head.weight is result.model.transformer.wte.weight  # still tied
+
+
+def test_bert_every_projection_factored():
+    result = compress(tiny_bert(), keep=0.5, exclude="embeddings.*")
+    factored = set(factorize.plan_ranks(result.plan))
+    expected = {s.name for s in walk(tiny_bert(), exclude="embeddings.*")}
+    assert factored == expected
+
+
+def test_half_precision_weights_keep_their_dtype():
+    torch.manual_seed(0)
+    model = MLP().half()
+    result = compress(model, rank=4)
+    assert result.model.fc1.first.weight.dtype == torch.float16
+    assert result.spectra["fc1"].S.dtype == torch.float32  # decomposed in float32
+
+
+def test_randomized_method(mlp):
+    result = compress(mlp, rank=4, method="randomized")
+    assert result.plan["method"] == "randomized" and result.spectra["fc2"].method == "randomized"
+    exact = compress(mlp, rank=4)
+    assert result.spectra["fc2"].error(4) <= 1.02 * exact.spectra["fc2"].error(4)
+
+
+def test_spectra_reuse_skips_decomposition(mlp, monkeypatch):
+    first = compress(mlp, budget=0.5)
+    calls = []
+    monkeypatch.setattr(factorize.api, "decompose", lambda *a, **k: calls.append(1))
+    second = compress(mlp, budget=0.3, spectra=first.spectra)
+    assert not calls and second.params_after < first.params_after
+
+
+def test_bad_input_errors(mlp):
+    with pytest.raises(FactorizeError, match="expected a torch.nn.Module"):
+        compress("model.pt", budget=0.5)
+    with pytest.raises(FactorizeError, match="no factorizable layer"):
+        compress(torch.nn.Sequential(torch.nn.ReLU()), budget=0.5)
+    with pytest.raises(FactorizeError, match="unknown method"):
+        compress(mlp, budget=0.5, method="magic")
+    with pytest.raises(FactorizeError, match="fraction in"):
+        compress(mlp, budget=1.5)
+    broken = copy.deepcopy(mlp)
+    with torch.no_grad():
+        broken.fc2.weight[0, 0] = float("inf")
+    with pytest.raises(FactorizeError, match="fc2"):
+        compress(broken, budget=0.5)
+
+
+def test_plan_for_other_model_lists_every_offender(mlp):
+    plan = compress(mlp, rank=2).plan
+    plan["sites"]["ghost"] = {"kind": "linear", "shape": [3, 3], "rank": 1, "action": "factor"}
+    plan["sites"]["fc1"]["shape"] = [99, 24]
+    with pytest.raises(FactorizeError) as info:
+        apply_plan(mlp, plan)
+    assert {p.split(":")[0] for p in info.value.problems} == {"ghost", "fc1"}
+    with pytest.raises(FactorizeError, match="not a factorize plan"):
+        apply_plan(mlp, {"sites": {}})
+
+
+def test_failed_rewrite_leaves_model_as_it_was(mlp, monkeypatch):
+    plan = compress(mlp, rank=2).plan
+    real = factorize.api.factor_module
+    calls = []
+
+    def flaky(*args, **kwargs):
+        calls.append(1)
+        if len(calls) == 2:
+            raise RuntimeError("simulated failure")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(factorize.api, "factor_module", flaky)
+    before = {n: type(m) for n, m in mlp.named_modules()}
+    with pytest.raises(RuntimeError):
+        apply_plan(mlp, plan, inplace=True)
+    assert {n: type(m) for n, m in mlp.named_modules()} == before

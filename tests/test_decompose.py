@@ -1,0 +1,117 @@
+"""Decomposition checked against outside references: numpy/scipy SVD, Eckart-Young-Mirsky, Halko et al. 2011."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.linalg
+import torch
+
+from factorize import FactorizeError, decompose
+
+
+def _decaying(m: int, n: int, decay: float = 0.85, seed: int = 0) -> np.ndarray:
+    """A random matrix with singular values decay**i (orthogonal factors from QR of Gaussians)."""
+    rng = np.random.default_rng(seed)
+    k = min(m, n)
+    U, _ = np.linalg.qr(rng.standard_normal((m, k)))
+    V, _ = np.linalg.qr(rng.standard_normal((n, k)))
+    return (U * decay ** np.arange(k)) @ V.T
+
+
+@pytest.mark.parametrize("shape", [(30, 20), (20, 30), (64, 64), (1, 9)])
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+def test_singular_values_match_numpy_and_scipy(shape, dtype):
+    # Reference: numpy.linalg.svd and scipy.linalg.svd (LAPACK gesdd).
+    W = torch.randn(*shape, generator=torch.Generator().manual_seed(1), dtype=dtype)
+    spec = decompose(W)
+    ref_np = np.linalg.svd(W.double().numpy(), compute_uv=False)
+    ref_sp = scipy.linalg.svd(W.double().numpy(), compute_uv=False)
+    tol = 1e-5 if dtype == torch.float32 else 1e-12
+    np.testing.assert_allclose(spec.S.double().numpy(), ref_np, rtol=tol, atol=tol)
+    np.testing.assert_allclose(spec.S.double().numpy(), ref_sp, rtol=tol, atol=tol)
+    full = spec.truncated(spec.computed_rank)
+    np.testing.assert_allclose(full.double().numpy(), W.double().numpy(), atol=100 * tol)
+
+
+@pytest.mark.parametrize("rank", [1, 3, 10, 19])
+def test_eckart_young_mirsky_errors(rank):
+    # Eckart & Young 1936; Mirsky 1960: the rank-r truncation has Frobenius error sqrt(sum_{i>r} s_i^2)
+    # and spectral error s_{r+1}.
+    W = torch.randn(40, 20, generator=torch.Generator().manual_seed(2), dtype=torch.float64)
+    spec = decompose(W)
+    s = np.linalg.svd(W.numpy(), compute_uv=False)
+    Wr = spec.truncated(rank).numpy()
+    fro = np.linalg.norm(W.numpy() - Wr)
+    assert fro == pytest.approx(np.sqrt((s[rank:] ** 2).sum()), rel=1e-10)
+    assert spec.error(rank) == pytest.approx(fro, rel=1e-10)
+    assert np.linalg.norm(W.numpy() - Wr, 2) == pytest.approx(s[rank], rel=1e-10)
+
+
+def test_factors_are_balanced_and_multiply_back():
+    W = torch.randn(12, 8, generator=torch.Generator().manual_seed(3), dtype=torch.float64)
+    spec = decompose(W)
+    B, A = spec.factors(5)
+    assert B.shape == (12, 5) and A.shape == (5, 8)
+    # sqrt(S) split: column norms of B equal row norms of A (both sqrt(s_i)), since U and V are orthonormal.
+    np.testing.assert_allclose(B.norm(dim=0).numpy(), A.norm(dim=1).numpy(), rtol=1e-10)
+    np.testing.assert_allclose((B @ A).numpy(), spec.truncated(5).numpy())
+
+
+@pytest.mark.parametrize("shape,rank", [((200, 120), 10), ((120, 200), 20), ((256, 256), 32)])
+def test_randomized_within_two_percent_of_optimum(shape, rank):
+    # Halko, Martinsson & Tropp 2011 (Theorem 10.6/10.7): with oversampling p and q power iterations the expected
+    # error approaches the optimal sigma tail; on a decaying spectrum two iterations land within 2% of the
+    # Eckart-Young optimum.
+    W = torch.from_numpy(_decaying(*shape, decay=0.9))
+    spec = decompose(W, method="randomized", rank=rank, power_iters=2, oversample=10, seed=0)
+    s = np.linalg.svd(W.numpy(), compute_uv=False)
+    optimum = np.sqrt((s[rank:] ** 2).sum())
+    achieved = np.linalg.norm(W.numpy() - spec.truncated(rank).numpy())
+    assert achieved <= 1.02 * optimum
+    # The predicted error (||W||_F^2 minus kept energy) is the error of the factors actually produced.
+    assert spec.error(rank) == pytest.approx(achieved, rel=1e-6)
+
+
+def test_randomized_is_deterministic_per_seed():
+    W = torch.from_numpy(_decaying(100, 80))
+    a = decompose(W, method="randomized", rank=8, seed=7)
+    b = decompose(W, method="randomized", rank=8, seed=7)
+    assert torch.equal(a.U, b.U) and torch.equal(a.S, b.S) and torch.equal(a.Vh, b.Vh)
+
+
+def test_signs_agree_between_exact_and_randomized():
+    # Sign convention as in scikit-learn's svd_flip: the largest-magnitude entry of each left vector is positive.
+    W = torch.from_numpy(_decaying(60, 50, decay=0.6))
+    e = decompose(W)
+    r = decompose(W, method="randomized", rank=4, power_iters=4)
+    np.testing.assert_allclose(r.U[:, :4].numpy(), e.U[:, :4].numpy(), atol=1e-6)
+
+
+def test_half_precision_is_decomposed_in_float32():
+    W = torch.randn(16, 12, generator=torch.Generator().manual_seed(4)).half()
+    spec = decompose(W)
+    assert spec.S.dtype == torch.float32
+    ref = np.linalg.svd(W.double().numpy(), compute_uv=False)
+    np.testing.assert_allclose(spec.S.double().numpy(), ref, rtol=1e-5)
+
+
+def test_energy_rank_matches_cumulative_sum():
+    W = torch.from_numpy(_decaying(50, 40, decay=0.8))
+    spec = decompose(W)
+    s2 = np.linalg.svd(W.numpy(), compute_uv=False) ** 2
+    frac = np.cumsum(s2) / s2.sum()
+    for t in (0.5, 0.9, 0.99):
+        r = spec.rank_for_energy(t)
+        assert frac[r - 1] >= t - 1e-12 and (r == 1 or frac[r - 2] < t)
+
+
+def test_bad_input_is_named():
+    W = torch.randn(4, 4)
+    W[1, 2] = float("nan")
+    with pytest.raises(FactorizeError, match="encoder.fc1.*NaN"):
+        decompose(W, name="encoder.fc1")
+    with pytest.raises(FactorizeError, match="unknown method"):
+        decompose(torch.randn(3, 3), method="qr")
+    with pytest.raises(FactorizeError, match="rank must be >= 1"):
+        decompose(torch.randn(3, 3), method="randomized", rank=0)

@@ -1,0 +1,90 @@
+"""The walker: which layers become sites, their matrix views, and tied weights."""
+
+from __future__ import annotations
+
+import pytest
+import torch
+from conftest import tiny_bert, tiny_gpt2
+from torch import nn
+
+from factorize import FactorizeError, walk
+from factorize.walk import is_transposed_projection, matrix_of
+
+
+def test_mlp_sites_and_break_even(mlp):
+    found = walk(mlp)
+    assert [s.name for s in found] == ["fc1", "fc2", "head"]
+    fc1 = found.by_name()["fc1"]
+    assert fc1.kind == "linear" and fc1.shape == (48, 24) and fc1.params == 48 * 24
+    # Common practice: rank-r factors store r(m+n) numbers, so saving needs r < mn/(m+n).
+    assert fc1.break_even == (48 * 24) // (48 + 24) == 16
+    assert fc1.saves_at(15) and not fc1.saves_at(16)
+
+
+def test_conv_sites_and_grouped_conv_skipped(cnn):
+    found = walk(cnn)
+    sites = found.by_name()
+    assert sites["c1"].kind == "conv2d" and sites["c1"].shape == (16, 3 * 3 * 3) and sites["c1"].kernel == (3, 3)
+    assert sites["c3"].kind == "conv1d" and sites["c3"].shape == (20, 24 * 5)
+    assert "dw" not in sites
+    assert any(s.name == "dw" and "groups=24" in s.reason for s in found.skipped)
+    assert torch.equal(matrix_of(cnn.c1, "conv2d"), cnn.c1.weight.reshape(16, -1))
+
+
+def test_include_exclude_globs(mlp):
+    assert [s.name for s in walk(mlp, include="fc*")] == ["fc1", "fc2"]
+    assert [s.name for s in walk(mlp, exclude=["head", "fc1"])] == ["fc2"]
+    with pytest.raises(FactorizeError, match="patterns must be strings"):
+        walk(mlp, include=[3])
+
+
+def test_tied_embedding_and_head(tied_lm):
+    sites = walk(tied_lm).by_name()
+    assert sites["embed"].kind == "embedding" and sites["embed"].shape == (16, 50)  # (dim, vocab)
+    assert sites["embed"].tied_with == ("head",) and sites["head"].tied_with == ("embed",)
+    assert sites["mix"].tied_with == ()
+
+
+def test_transposed_projection_rule():
+    transformers = pytest.importorskip("transformers")
+    from transformers.pytorch_utils import Conv1D
+
+    assert is_transposed_projection(Conv1D(7, 5))  # GPT-2 style: weight (in=5, out=7), y = x @ W + b
+
+    class NotAProjection(nn.Module):  # 2-D weight, but computes something else
+        def __init__(self):
+            super().__init__()
+            self.weight = nn.Parameter(torch.randn(5, 7))
+
+        def forward(self, x):
+            return torch.tanh(x @ self.weight)
+
+    assert not is_transposed_projection(NotAProjection())
+    assert not is_transposed_projection(nn.Linear(5, 7))
+    assert transformers is not None
+
+
+def test_tiny_bert_finds_every_projection():
+    found = walk(tiny_bert())
+    kinds = {s.name: s.kind for s in found}
+    for layer in range(2):
+        for proj in ("attention.self.query", "attention.self.key", "attention.self.value",
+                     "attention.output.dense", "intermediate.dense", "output.dense"):
+            assert kinds[f"encoder.layer.{layer}.{proj}"] == "linear"
+    assert kinds["embeddings.word_embeddings"] == "embedding"
+
+
+def test_tiny_gpt2_transposed_projections_and_tied_head():
+    found = walk(tiny_gpt2())
+    sites = found.by_name()
+    for layer in range(2):
+        for proj, shape in (("attn.c_attn", (96, 32)), ("attn.c_proj", (32, 32)),
+                            ("mlp.c_fc", (128, 32)), ("mlp.c_proj", (32, 128))):
+            site = sites[f"transformer.h.{layer}.{proj}"]
+            assert site.kind == "transposed" and site.shape == shape
+    assert sites["lm_head"].tied_with == ("transformer.wte",)
+
+
+def test_not_a_module():
+    with pytest.raises(FactorizeError, match="expected a torch.nn.Module"):
+        walk({"weight": torch.zeros(2, 2)})
