@@ -113,3 +113,88 @@ def test_output_drift_rejects_mismatched_outputs() -> None:
     assert "batch 1" in str(err.value)
     with pytest.raises(FactorizeError, match="unknown output kind"):
         output_drift(torch.ones(2, 3), torch.ones(2, 3), kind="probabilities")
+
+
+# --- evaluate ----------------------------------------------------------------------------------------------------
+
+
+def test_evaluate_counts_macs_with_hooks_on_a_cnn(cnn) -> None:
+    import factorize
+    from factorize.evaluate import evaluate
+
+    result = factorize.compress(cnn, rank=4)
+    x = torch.randn(3, 3, 10, 10, generator=torch.Generator().manual_seed(0))
+    report = evaluate(cnn, result.model, [x], plan=result.plan, latency_repeats=2)
+    rows = {r.name: r for r in report.layers}
+    # Hand count (common practice: mn MACs per output position dense, r(m+n) factored).
+    # c1: 3->16, 3x3, padding 1 on 10x10 -> 10x10 = 100 positions; m=16, n=27.
+    assert rows["c1"].macs == 16 * 27 * 100
+    # c2: stride 2, padding 2, dilation 2 on 10x10: out = floor((10 + 4 - 2*2 - 1)/2) + 1 = 5 -> 25 positions
+    assert rows["c2"].macs == 24 * 16 * 9 * 25
+    if rows["c2"].rank is not None:
+        assert rows["c2"].macs_after == rows["c2"].rank * (24 + 144) * 25
+    # c3 (Conv1d over the flattened 5x5 map, length 25, padding 2 -> 25 positions), fc: one position
+    assert rows["c3"].macs == 20 * 24 * 5 * 25
+    assert rows["fc"].macs == 7 * 20
+    factored = [r for r in report.layers if r.rank is not None]
+    assert report.macs_before == sum(r.macs for r in factored)
+    assert report.macs_after == sum(r.macs_after for r in factored)
+
+
+def test_evaluate_weight_error_and_accuracy_against_references(mlp) -> None:
+    import factorize
+    from sklearn.metrics import accuracy_score
+
+    from factorize.evaluate import evaluate
+
+    result = factorize.compress(mlp, rank=5)
+    gen = torch.Generator().manual_seed(3)
+    batches = [torch.randn(16, 24, generator=gen) for _ in range(3)]
+    labels = torch.randint(0, 10, (48,), generator=gen)
+    report = evaluate(mlp, result.model, batches, labels=labels, plan=result.plan, latency_repeats=3)
+    # weight error against numpy's SVD: the best rank-5 approximation's relative Frobenius error (Eckart-Young)
+    W = mlp.fc2.weight.detach().double().numpy()
+    s = np.linalg.svd(W, compute_uv=False)
+    fc2 = next(r for r in report.layers if r.name == "fc2")
+    assert fc2.rank == 5
+    assert fc2.weight_error == pytest.approx(np.sqrt((s[5:] ** 2).sum() / (s**2).sum()), rel=1e-4)
+    assert fc2.weight_error == pytest.approx(fc2.predicted_error, rel=1e-4)
+    # accuracy against scikit-learn's accuracy_score
+    preds_before = np.concatenate([mlp(b).argmax(1).numpy() for b in batches])
+    preds_after = np.concatenate([result.model(b).argmax(1).numpy() for b in batches])
+    assert report.accuracy_before == pytest.approx(accuracy_score(labels.numpy(), preds_before))
+    assert report.accuracy_after == pytest.approx(accuracy_score(labels.numpy(), preds_after))
+    # parameters: the model's own count before and after
+    assert report.params_before == sum(p.numel() for p in mlp.parameters())
+    assert report.params_after == sum(p.numel() for p in result.model.parameters())
+    assert report.samples == 48 and report.latency_batch == 16
+    assert report.latency_ms_before > 0 and report.latency_ms_after > 0
+    assert report.drift["relative_l2"] > 0
+    assert mlp.training is False and result.model.training is False
+
+
+def test_evaluate_counts_tied_weights_once_and_embedding_macs(tied_lm) -> None:
+    import factorize
+    from factorize.evaluate import evaluate
+
+    result = factorize.compress(tied_lm, rank=4)
+    ids = torch.randint(0, 50, (2, 6), generator=torch.Generator().manual_seed(0))
+    report = evaluate(tied_lm, result.model, [ids], plan=result.plan, latency_repeats=0)
+    # embed (50x16) and head share one tensor: counted once (800), plus mix (16x16 + 16)
+    assert report.params_before == 50 * 16 + 16 * 16 + 16
+    assert report.latency_ms_before is None
+    rows = {r.name: r for r in report.layers}
+    assert rows["embed"].rank is None  # tied: kept dense, see factorize.ranks
+    assert rows["mix"].macs == 16 * 16 * 6  # 6 tokens per sample
+    assert rows["mix"].macs_after == 4 * 32 * 6
+
+
+def test_evaluate_rejects_bad_labels_and_empty_inputs(mlp) -> None:
+    import factorize
+    from factorize.evaluate import evaluate
+
+    result = factorize.compress(mlp, rank=5)
+    with pytest.raises(FactorizeError, match="3 labels for 8 predictions"):
+        evaluate(mlp, result.model, [torch.randn(8, 24)], labels=torch.tensor([1, 2, 3]), latency_repeats=0)
+    with pytest.raises(FactorizeError, match="no sample inputs"):
+        evaluate(mlp, result.model, [], latency_repeats=0)

@@ -1,0 +1,266 @@
+"""The report: one object holding what compression saved and what it cost, and its three renderings.
+
+* :func:`render_rich` -- tables for people on a terminal (the console is injected, so tests capture it exactly);
+* :meth:`Report.to_json` -- a plain JSON-serialisable dict for scripts;
+* :meth:`Report.to_markdown` -- a Markdown section to paste into a review.
+
+Every rendering carries :data:`CAUTION`. Computation never prints; everything a person sees goes through here.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+from rich.console import Console
+from rich.panel import Panel
+from rich.table import Table
+
+REPORT_FORMAT = "factorize.report"
+REPORT_VERSION = 1
+
+CAUTION = (
+    "Drift was measured on the sample inputs only. It is no guarantee of how the compressed model behaves on "
+    "other inputs. Where the model is used in a safety-relevant setting, validate the compressed model again "
+    "under the rules that govern that setting before deploying it."
+)
+
+
+@dataclass
+class LayerReport:
+    """One factorizable layer: its rank, what it stores and computes before/after, and its weight error."""
+
+    name: str  # qualified module name
+    kind: str  # linear, conv1d, conv2d, embedding, transposed
+    shape: tuple[int, int]  # matrix view (out m, in n)
+    rank: int | None  # None: kept dense
+    params: int  # weight numbers before (m * n)
+    params_after: int  # r (m + n) when factored
+    macs: int | None = None  # multiply-accumulates per sample before (None: layer not measured)
+    macs_after: int | None = None
+    weight_error: float | None = None  # measured ||W - BA||_F / ||W||_F
+    predicted_error: float | None = None  # from the plan (Eckart-Young tail or output-space estimate)
+    reason: str = ""  # why this rank (from the plan)
+
+
+@dataclass
+class Report:
+    """Everything one evaluation measured. Optional fields are None when not measured."""
+
+    title: str = "factorize report"
+    model: str = ""  # what was compressed (a name or a path)
+    params_before: int = 0  # whole model, shared tensors counted once
+    params_after: int = 0
+    bytes_before: int = 0  # parameters and buffers, shared tensors counted once
+    bytes_after: int = 0
+    layers: list[LayerReport] = field(default_factory=list)
+    drift: dict[str, float] | None = None  # see factorize.evaluate.output_drift
+    accuracy_before: float | None = None
+    accuracy_after: float | None = None
+    latency_ms_before: float | None = None  # median over latency_repeats forward passes of one batch
+    latency_ms_after: float | None = None
+    latency_repeats: int = 0
+    latency_batch: int = 0  # samples in the timed batch
+    samples: int = 0  # sample inputs the drift was measured on
+    inputs: str = ""  # where the sample inputs came from
+    policy: dict | None = None  # the plan's rank policy
+    notes: list[str] = field(default_factory=list)  # warnings worth showing (e.g. random inputs)
+    caution: str = CAUTION
+
+    # --- derived numbers ----------------------------------------------------------------------------------------
+
+    @property
+    def kept_fraction(self) -> float:
+        return self.params_after / self.params_before if self.params_before else 1.0
+
+    @property
+    def factored(self) -> list[LayerReport]:
+        return [layer for layer in self.layers if layer.rank is not None]
+
+    @property
+    def macs_before(self) -> int | None:
+        """Multiply-accumulates per sample of the factored layers, before (None when not measured)."""
+        values = [layer.macs for layer in self.factored]
+        return sum(values) if values and None not in values else None
+
+    @property
+    def macs_after(self) -> int | None:
+        values = [layer.macs_after for layer in self.factored]
+        return sum(values) if values and None not in values else None
+
+    @property
+    def worst_weight_error(self) -> float | None:
+        errors = [layer.weight_error for layer in self.factored if layer.weight_error is not None]
+        return max(errors) if errors else None
+
+    # --- renderings ---------------------------------------------------------------------------------------------
+
+    def to_json(self) -> dict[str, Any]:
+        """A plain dict (JSON-serialisable; non-finite floats become None)."""
+        data = asdict(self)
+        for layer in data["layers"]:
+            layer["shape"] = list(layer["shape"])
+        data.update(
+            format=REPORT_FORMAT,
+            version=REPORT_VERSION,
+            kept_fraction=self.kept_fraction,
+            macs_before=self.macs_before,
+            macs_after=self.macs_after,
+            worst_weight_error=self.worst_weight_error,
+            factored_layers=len(self.factored),
+        )
+        return _finite(data)
+
+    def to_markdown(self) -> str:
+        """A Markdown section for a review."""
+        lines = [f"## {self.title}", ""]
+        if self.model:
+            lines += [f"Model: `{self.model}`", ""]
+        lines += ["| quantity | before | after | change |", "| --- | ---: | ---: | ---: |"]
+        lines += [f"| {q} | {b} | {a} | {c} |" for q, b, a, c in self.summary_rows()]
+        if self.drift is not None:
+            lines += ["", f"Output drift on {self.samples} sample inputs ({self.inputs or 'given inputs'}):", ""]
+            lines += ["| measure | value |", "| --- | ---: |"]
+            lines += [f"| {k} | {v} |" for k, v in self.drift_rows()]
+        if self.layers:
+            lines += ["", "| layer | kind | shape | rank | params | params after | weight error | MACs/sample after |",
+                      "| --- | --- | --- | ---: | ---: | ---: | ---: | ---: |"]
+            for layer in self.layers:
+                lines.append("| " + " | ".join(_layer_cells(layer)) + " |")
+        for note in self.notes:
+            lines += ["", f"Note: {note}"]
+        lines += ["", f"> **Caution.** {self.caution}", ""]
+        return "\n".join(lines)
+
+    def summary_rows(self) -> list[tuple[str, str, str, str]]:
+        """(quantity, before, after, change) rows shared by the rich and Markdown renderings."""
+        rows = [
+            ("parameters", _int(self.params_before), _int(self.params_after), _change(self.params_before, self.params_after)),
+            ("bytes", _bytes(self.bytes_before), _bytes(self.bytes_after), _change(self.bytes_before, self.bytes_after)),
+        ]
+        if self.macs_before is not None:
+            rows.append(("MACs/sample, factored layers", _int(self.macs_before), _int(self.macs_after),
+                         _change(self.macs_before, self.macs_after)))
+        if self.accuracy_before is not None:
+            rows.append(("accuracy", _pct(self.accuracy_before), _pct(self.accuracy_after),
+                         _points(self.accuracy_before, self.accuracy_after)))
+        if self.latency_ms_before is not None:
+            rows.append((f"latency, median of {self.latency_repeats} (batch {self.latency_batch})",
+                         f"{self.latency_ms_before:.3f} ms", f"{self.latency_ms_after:.3f} ms",
+                         _change(self.latency_ms_before, self.latency_ms_after)))
+        return rows
+
+    def drift_rows(self) -> list[tuple[str, str]]:
+        d = self.drift or {}
+        names = {
+            "relative_l2": "relative L2 error",
+            "cosine_mean": "cosine similarity, mean",
+            "cosine_min": "cosine similarity, worst sample",
+            "top1_agreement": "top-1 agreement",
+            "kl": "KL divergence (nats)",
+        }
+        rows = []
+        for key, label in names.items():
+            if key in d and d[key] is not None:
+                rows.append((label, _drift_value(key, d[key])))
+        return rows
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# rich rendering
+
+
+def render_rich(report: Report, console: Console) -> None:
+    """Print ``report`` as tables on ``console``."""
+    summary = Table(title=report.title + (f": {report.model}" if report.model else ""), title_justify="left")
+    summary.add_column("quantity")
+    for name in ("before", "after", "change"):
+        summary.add_column(name, justify="right")
+    for row in report.summary_rows():
+        summary.add_row(*row)
+    console.print(summary)
+    if report.drift is not None:
+        drift = Table(title=f"output drift on {report.samples} sample inputs ({report.inputs or 'given inputs'})",
+                      title_justify="left")
+        drift.add_column("measure")
+        drift.add_column("value", justify="right")
+        for row in report.drift_rows():
+            drift.add_row(*row)
+        console.print(drift)
+    if report.layers:
+        layers = Table(title="layers", title_justify="left")
+        for name, justify in (("layer", "left"), ("kind", "left"), ("shape", "left"), ("rank", "right"),
+                              ("params", "right"), ("params after", "right"), ("weight error", "right"),
+                              ("MACs after", "right")):
+            layers.add_column(name, justify=justify)  # type: ignore[arg-type]
+        for layer in report.layers:
+            layers.add_row(*_layer_cells(layer))
+        console.print(layers)
+    for note in report.notes:
+        console.print(f"[yellow]Note:[/] {note}", highlight=False)
+    console.print(Panel(report.caution, title="caution", title_align="left", border_style="yellow"))
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# formatting helpers
+
+
+def _layer_cells(layer: LayerReport) -> list[str]:
+    m, n = layer.shape
+    return [
+        layer.name,
+        layer.kind,
+        f"{m}x{n}",
+        "dense" if layer.rank is None else str(layer.rank),
+        _int(layer.params),
+        _int(layer.params_after),
+        "-" if layer.weight_error is None else f"{layer.weight_error:.4f}",
+        "-" if layer.macs_after is None else _int(layer.macs_after),
+    ]
+
+
+def _drift_value(key: str, v: float) -> str:
+    if key == "top1_agreement":
+        return _pct(v)
+    if key.startswith("cosine"):
+        return f"{v:.6f}"
+    return f"{v:.4g}"
+
+
+def _int(v: int | None) -> str:
+    return "-" if v is None else f"{v:,}"
+
+
+def _bytes(v: int) -> str:
+    for unit, size in (("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
+        if v >= size:
+            return f"{v / size:.2f} {unit}"
+    return f"{v} B"
+
+
+def _pct(v: float | None) -> str:
+    return "-" if v is None else f"{100 * v:.2f}%"
+
+
+def _change(before: float | None, after: float | None) -> str:
+    if not before or after is None:
+        return "-"
+    return f"{100 * (after / before - 1):+.1f}%"
+
+
+def _points(before: float | None, after: float | None) -> str:
+    if before is None or after is None:
+        return "-"
+    return f"{100 * (after - before):+.2f} pts"
+
+
+def _finite(value: Any) -> Any:
+    """Replace NaN/Inf by None so the result is strict JSON."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_finite(v) for v in value]
+    return value

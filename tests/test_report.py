@@ -1,0 +1,84 @@
+"""Tests for factorize/report.py: the three renderings carry the numbers and the caution."""
+
+from __future__ import annotations
+
+import io
+import json
+
+from rich.console import Console
+
+from factorize.report import CAUTION, LayerReport, Report, render_rich
+
+
+def _report(**over) -> Report:
+    values = dict(
+        title="shrink",
+        model="digits.safetensors",
+        params_before=1000,
+        params_after=400,
+        bytes_before=4000,
+        bytes_after=1600,
+        layers=[
+            LayerReport("fc1", "linear", (20, 30), 6, 600, 300, macs=600, macs_after=300, weight_error=0.125,
+                        predicted_error=0.125),
+            LayerReport("head", "linear", (10, 20), None, 200, 200, macs=200, macs_after=200, weight_error=0.0),
+        ],
+        drift={"relative_l2": 0.0312, "cosine_mean": 0.999, "cosine_min": 0.98, "top1_agreement": 0.975,
+               "kl": float("nan"), "samples": 40},
+        accuracy_before=0.9,
+        accuracy_after=0.875,
+        latency_ms_before=2.0,
+        latency_ms_after=1.0,
+        latency_repeats=5,
+        latency_batch=8,
+        samples=40,
+        inputs="x.npy",
+        notes=["random inputs say little"],
+    )
+    values.update(over)
+    return Report(**values)
+
+
+def test_derived_numbers() -> None:
+    r = _report()
+    assert r.kept_fraction == 0.4
+    assert r.macs_before == 600 and r.macs_after == 300  # factored layers only
+    assert r.worst_weight_error == 0.125
+    assert [layer.name for layer in r.factored] == ["fc1"]
+    assert _report(layers=[]).macs_before is None
+
+
+def test_json_is_plain_strict_and_complete() -> None:
+    data = _report().to_json()
+    text = json.dumps(data, allow_nan=False)  # NaN became None, so strict JSON works
+    back = json.loads(text)
+    assert back["format"] == "factorize.report" and back["version"] == 1
+    assert back["params_after"] == 400 and back["kept_fraction"] == 0.4
+    assert back["drift"]["kl"] is None and back["drift"]["relative_l2"] == 0.0312
+    assert back["layers"][0]["shape"] == [20, 30] and back["layers"][1]["rank"] is None
+    assert back["caution"] == CAUTION
+
+
+def test_markdown_has_tables_numbers_and_caution() -> None:
+    md = _report().to_markdown()
+    assert md.startswith("## shrink")
+    assert "| parameters | 1,000 | 400 | -60.0% |" in md
+    assert "| accuracy | 90.00% | 87.50% | -2.50 pts |" in md
+    assert "| top-1 agreement | 97.50% |" in md
+    assert "| fc1 | linear | 20x30 | 6 | 600 | 300 | 0.1250 | 300 |" in md
+    assert "| head | linear | 10x20 | dense |" in md
+    assert "Note: random inputs say little" in md
+    assert CAUTION in md
+
+
+def test_rich_rendering_goes_to_the_injected_console() -> None:
+    buf = io.StringIO()
+    render_rich(_report(), Console(file=buf, width=140, color_system=None))
+    out = buf.getvalue()
+    for text in ("parameters", "1,000", "-60.0%", "relative L2 error", "0.0312", "97.50%", "fc1", "dense",
+                 "random inputs say little", "no guarantee", "safety-relevant"):
+        assert text in out, text
+    # a report without drift (weights-only mode) still renders, caution included
+    buf = io.StringIO()
+    render_rich(_report(drift=None, accuracy_before=None, latency_ms_before=None), Console(file=buf, width=140))
+    assert "relative L2" not in buf.getvalue() and "no guarantee" in buf.getvalue()
