@@ -1,0 +1,641 @@
+"""Files: save a compressed model as safetensors with its plan, and load it back into the architecture.
+
+The file is an ordinary safetensors file (the open format of Hugging Face's ``safetensors`` project: an 8-byte
+little-endian header length N, N bytes of UTF-8 JSON header -- tensor name -> dtype, shape, byte offsets, plus an
+optional ``"__metadata__"`` map of strings -- then the raw little-endian tensor bytes). What makes it a factorize
+checkpoint is a handful of metadata keys of our own (all prefixed ``factorize.``; see docs/file-format.md):
+
+==============================  ==================================================================================
+key                             value
+==============================  ==================================================================================
+``factorize.format``            ``"factorize.checkpoint"``
+``factorize.format_version``    ``"1"`` (an integer as a string; a reader refuses versions it does not know)
+``factorize.plan``              the plan as one JSON string (per site: kind, shape, rank or dense, reason, ...)
+``factorize.aliases``           JSON ``{"alias key": "stored key"}`` for tensors shared by several state-dict keys
+``factorize.library_version``   the factorize version that wrote the file (informative)
+==============================  ==================================================================================
+
+Why aliases: safetensors refuses tensors that share storage, and a tied embedding / output head is one tensor
+under two state-dict keys. We store it once, record the other key as an alias, and on load re-tie the two
+parameters (or copy, for buffers), so the loaded model shares the tensor as the saved one did.
+
+``load(model, path)`` modifies the given fresh model **in place** (the factored structure is built from the plan,
+then the weights are copied in) and returns it; if anything does not fit, the model is restored as it was.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import secrets
+import shutil
+import struct
+import warnings
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import torch
+from safetensors import safe_open
+from safetensors.torch import save_file
+from torch import nn
+
+from factorize.errors import FactorizeError
+from factorize.ranks import PLAN_FORMAT
+
+FORMAT_NAME = "factorize.checkpoint"
+FORMAT_VERSION = 1
+KEY_FORMAT = "factorize.format"
+KEY_VERSION = "factorize.format_version"
+KEY_PLAN = "factorize.plan"
+KEY_ALIASES = "factorize.aliases"
+KEY_LIBRARY = "factorize.library_version"
+KEY_PLAN_IN = "factorize.plan_in"  # shards of a sharded checkpoint: the plan lives in this index file
+RESERVED_PREFIX = "factorize."
+
+# safetensors dtype names (the open format's spec) -> torch dtype
+DTYPES: dict[str, torch.dtype] = {
+    "F64": torch.float64, "F32": torch.float32, "F16": torch.float16, "BF16": torch.bfloat16,
+    "I64": torch.int64, "I32": torch.int32, "I16": torch.int16, "I8": torch.int8, "U8": torch.uint8,
+    "BOOL": torch.bool,
+}
+for _name, _attr in (("U16", "uint16"), ("U32", "uint32"), ("U64", "uint64"), ("F8_E4M3", "float8_e4m3fn"),
+                     ("F8_E5M2", "float8_e5m2")):
+    if hasattr(torch, _attr):
+        DTYPES[_name] = getattr(torch, _attr)
+DTYPE_NAMES: dict[torch.dtype, str] = {v: k for k, v in DTYPES.items()}
+MAX_HEADER_BYTES = 100_000_000  # the reference reader's own limit on the JSON header
+DISK_MARGIN_BYTES = 16 * 2**20  # keep this much free beyond the bytes we write
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# reading safetensors headers with clear errors
+
+
+@dataclass(frozen=True)
+class TensorInfo:
+    """One tensor entry of a safetensors header."""
+
+    name: str
+    dtype: str  # safetensors name, e.g. "F32"
+    shape: tuple[int, ...]
+    start: int  # byte offsets within the data section
+    end: int
+
+    @property
+    def nbytes(self) -> int:
+        return self.end - self.start
+
+    @property
+    def torch_dtype(self) -> torch.dtype | None:
+        return DTYPES.get(self.dtype)
+
+
+@dataclass
+class Header:
+    """A parsed safetensors header: tensors (in header order), string metadata, where the data starts."""
+
+    path: Path
+    tensors: dict[str, TensorInfo] = field(default_factory=dict)
+    metadata: dict[str, str] = field(default_factory=dict)
+    data_start: int = 0
+    file_size: int = 0
+
+
+def read_header(path: str | os.PathLike) -> Header:
+    """Parse and check the header of a safetensors file without reading tensor data.
+
+    Layout checked (safetensors format spec): 8-byte little-endian unsigned header length N; N bytes of UTF-8 JSON
+    whose top level is an object; every entry has ``dtype``, ``shape`` and ``data_offsets`` [start, end) with
+    ``end - start = numel * itemsize``; the largest ``end`` fits in the file. Raises :class:`FactorizeError`
+    naming the file and what is wrong (missing, not safetensors, truncated, header past the end of the file).
+    """
+    p = Path(path)
+    _check_readable_file(p)
+    size = p.stat().st_size
+    with open(p, "rb") as f:
+        head = f.read(8)
+        if len(head) < 8:
+            raise FactorizeError(
+                f"{p}: not a safetensors file ({size} bytes, too short to hold the 8-byte header length)",
+                fix="pass a .safetensors file; a download or copy may have been cut off",
+            )
+        (n,) = struct.unpack("<Q", head)
+        if n > MAX_HEADER_BYTES or n < 2:
+            raise FactorizeError(
+                f"{p}: not a safetensors file (the first 8 bytes give a header length of {n})"
+                + _format_hint(head),
+                fix="pass a .safetensors file (pickled .pt/.bin checkpoints must be converted first)",
+            )
+        if 8 + n > size:
+            raise FactorizeError(
+                f"{p}: the header claims {n} bytes but the file holds only {size - 8} after the length field: "
+                "the file is truncated or not a safetensors file",
+                fix="re-download or re-copy the file",
+            )
+        raw = f.read(n)
+    try:
+        header = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as e:
+        raise FactorizeError(
+            f"{p}: not a safetensors file (the header is not valid UTF-8 JSON: {e})" + _format_hint(head),
+            fix="pass a .safetensors file",
+        ) from None
+    if not isinstance(header, dict):
+        raise FactorizeError(f"{p}: not a safetensors file (the header is not a JSON object)")
+    return _parse_entries(p, header, 8 + n, size)
+
+
+def _format_hint(head: bytes) -> str:
+    if head.startswith(b"PK\x03\x04"):
+        return "; it looks like a zip archive, e.g. a torch.save checkpoint"
+    if head[:1] == b"\x80":
+        return "; it looks like a Python pickle"
+    return ""
+
+
+def _check_readable_file(p: Path) -> None:
+    if not p.exists():
+        raise FactorizeError(f"{p}: no such file", fix="check the path")
+    if p.is_dir():
+        raise FactorizeError(f"{p}: is a directory, expected a .safetensors file", fix="pass the file inside it")
+    if not os.access(p, os.R_OK):
+        raise FactorizeError(f"{p}: not readable (permission denied)", fix="fix the file's permissions")
+
+
+def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
+    out = Header(path=p, data_start=data_start, file_size=size)
+    meta = header.get("__metadata__", {}) or {}
+    if not isinstance(meta, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in meta.items()):
+        raise FactorizeError(f"{p}: corrupt safetensors header (__metadata__ must map strings to strings)")
+    out.metadata = dict(meta)
+    problems = []
+    data_len = size - data_start
+    for name, e in header.items():
+        if name == "__metadata__":
+            continue
+        try:
+            dtype, shape, (start, end) = e["dtype"], tuple(int(d) for d in e["shape"]), e["data_offsets"]
+            start, end = int(start), int(end)
+        except (KeyError, TypeError, ValueError):
+            problems.append(f"{name}: entry is not {{dtype, shape, data_offsets}}")
+            continue
+        info = TensorInfo(name, dtype, shape, start, end)
+        td = info.torch_dtype
+        if td is not None:
+            numel = 1
+            for d in shape:
+                numel *= d
+            if end - start != numel * torch.empty((), dtype=td).element_size() or start < 0:
+                problems.append(f"{name}: {dtype} {list(shape)} needs {numel} elements, offsets say {end - start} bytes")
+        if end > data_len:
+            raise FactorizeError(
+                f"{p}: the header claims tensor data up to byte {data_start + end} but the file has {size} bytes: "
+                "the file is truncated",
+                fix="re-download or re-copy the file",
+            )
+        out.tensors[name] = info
+    if problems:
+        raise FactorizeError(f"{p}: corrupt safetensors header", problems, fix="re-create the file")
+    return out
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# checkpoints: a single file, or shards with an index (weight_map)
+
+
+@dataclass
+class Checkpoint:
+    """A safetensors checkpoint on disk: one file, or shards listed by a ``*.safetensors.index.json``."""
+
+    files: list[Header]
+    index: Path | None = None
+    index_metadata: dict = field(default_factory=dict)
+
+    def locate(self) -> dict[str, Header]:
+        """tensor name -> the file holding it."""
+        return {name: h for h in self.files for name in h.tensors}
+
+    @property
+    def metadata(self) -> dict[str, str]:
+        """The factorize metadata: the index's for a sharded checkpoint, else the file's."""
+        if self.index is not None:
+            return {k: v for k, v in self.index_metadata.items() if isinstance(v, str)}
+        return self.files[0].metadata
+
+    @property
+    def nbytes(self) -> int:
+        return sum(h.file_size for h in self.files)
+
+
+def open_checkpoint(path: str | os.PathLike) -> Checkpoint:
+    """Resolve ``path`` (a .safetensors file, an index .json, or a directory holding one of them) and read every
+    header. A shard named by the index but missing on disk, or a tensor the index places in a shard that does
+    not hold it, is an error naming it."""
+    p = Path(path)
+    if not p.exists():
+        raise FactorizeError(f"{p}: no such file or directory", fix="check the path")
+    if p.is_dir():
+        p = _pick_in_directory(p)
+    if p.name.endswith(".json"):
+        return _open_index(p)
+    return Checkpoint(files=[read_header(p)])
+
+
+def _pick_in_directory(d: Path) -> Path:
+    indexes = sorted(d.glob("*.safetensors.index.json"))
+    if len(indexes) == 1:
+        return indexes[0]
+    files = sorted(d.glob("*.safetensors"))
+    if not indexes and len(files) == 1:
+        return files[0]
+    found = [x.name for x in indexes] or [x.name for x in files]
+    raise FactorizeError(
+        f"{d}: cannot tell which checkpoint to read"
+        + (f" ({len(found)} candidates)" if found else " (no .safetensors file or index in it)"),
+        found,
+        fix="pass the .safetensors file or the *.safetensors.index.json itself",
+    )
+
+
+def _open_index(p: Path) -> Checkpoint:
+    _check_readable_file(p)
+    try:
+        index = json.loads(p.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as e:
+        raise FactorizeError(f"{p}: not a valid index file ({e})", fix="pass the *.safetensors.index.json") from None
+    wm = index.get("weight_map") if isinstance(index, dict) else None
+    if not isinstance(wm, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in wm.items()):
+        raise FactorizeError(
+            f"{p}: not a sharded-checkpoint index (no 'weight_map' of tensor name -> shard file)",
+            fix="pass the *.safetensors.index.json that lists the shards",
+        )
+    shards = list(dict.fromkeys(wm.values()))
+    missing = [s for s in shards if not (p.parent / s).is_file()]
+    if missing:
+        raise FactorizeError(
+            f"{p}: {len(missing)} shard(s) named in the index are missing", [str(p.parent / s) for s in missing],
+            fix="download or copy the missing shard files next to the index",
+        )
+    headers = [read_header(p.parent / s) for s in shards]
+    by_file = {s: h for s, h in zip(shards, headers)}
+    wrong = [f"{name}: the index places it in {s}, which does not hold it" for name, s in wm.items()
+             if name not in by_file[s].tensors]
+    if wrong:
+        raise FactorizeError(f"{p}: the index does not match its shards", wrong, fix="re-create the index")
+    meta = index.get("metadata") if isinstance(index.get("metadata"), dict) else {}
+    return Checkpoint(files=headers, index=p, index_metadata=meta)
+
+
+def read_plan(path: str | os.PathLike) -> dict:
+    """The plan stored in a factorize checkpoint (a file, an index .json or a directory)."""
+    plan, _ = _plan_and_aliases(open_checkpoint(path), path)
+    return plan
+
+
+def _plan_and_aliases(ckpt: Checkpoint, path) -> tuple[dict, dict[str, str]]:
+    meta = ckpt.metadata
+    if meta.get(KEY_FORMAT) != FORMAT_NAME:
+        raise FactorizeError(
+            f"{path}: a safetensors checkpoint, but not a factorize checkpoint (no {KEY_FORMAT!r} metadata)",
+            fix="load plain weights with model.load_state_dict(safetensors.torch.load_file(path)) "
+            "(or safetensors.torch.load_model); to compress them, use factorize.compress or shrink_checkpoint",
+        )
+    version = meta.get(KEY_VERSION, "")
+    if not version.isdigit() or int(version) != FORMAT_VERSION:
+        raise FactorizeError(
+            f"{path}: factorize checkpoint format version {version!r}; this factorize reads version {FORMAT_VERSION}",
+            fix="upgrade factorize to the version that wrote the file (see its 'factorize.library_version' "
+            "metadata), or re-create the checkpoint with this version",
+        )
+    try:
+        plan = json.loads(meta[KEY_PLAN])
+        aliases = json.loads(meta.get(KEY_ALIASES, "{}"))
+    except (KeyError, json.JSONDecodeError) as e:
+        raise FactorizeError(f"{path}: the plan in the metadata is missing or not JSON ({e})",
+                             fix="re-create the checkpoint") from None
+    if not isinstance(plan, dict) or plan.get("format") != PLAN_FORMAT or not isinstance(plan.get("sites"), dict):
+        raise FactorizeError(f"{path}: the metadata holds no valid factorize plan", fix="re-create the checkpoint")
+    if not isinstance(aliases, dict):
+        raise FactorizeError(f"{path}: corrupt {KEY_ALIASES!r} metadata", fix="re-create the checkpoint")
+    return plan, aliases
+
+
+def checkpoint_metadata(plan: Mapping, aliases: Mapping[str, str] | None = None,
+                        extra: Mapping[str, str] | None = None) -> dict[str, str]:
+    """The metadata map of a factorize checkpoint (used by :func:`save` and the weights-only writer)."""
+    from factorize import __version__
+
+    meta = dict(_user_metadata(extra))
+    meta.update({
+        KEY_FORMAT: FORMAT_NAME,
+        KEY_VERSION: str(FORMAT_VERSION),
+        KEY_PLAN: _plan_json(plan),
+        KEY_LIBRARY: __version__,
+    })
+    if aliases:
+        meta[KEY_ALIASES] = json.dumps(dict(aliases), sort_keys=True)
+    return meta
+
+
+def _plan_json(plan: Mapping) -> str:
+    if not isinstance(plan, Mapping) or plan.get("format") != PLAN_FORMAT or not isinstance(plan.get("sites"), Mapping):
+        raise FactorizeError("not a factorize plan", fix=f"pass the .plan of a compress() result ({PLAN_FORMAT!r})")
+    try:
+        return json.dumps(plan, sort_keys=False, allow_nan=True)
+    except (TypeError, ValueError) as e:
+        raise FactorizeError(f"the plan is not JSON-serialisable ({e})", fix="pass the plan as compress() made it") from None
+
+
+def _user_metadata(extra: Mapping[str, str] | None) -> dict[str, str]:
+    if not extra:
+        return {}
+    if not isinstance(extra, Mapping):
+        raise FactorizeError(f"metadata must be a mapping of strings, got {type(extra).__name__}")
+    bad = [f"{k!r}: {v!r}" for k, v in extra.items() if not isinstance(k, str) or not isinstance(v, str)]
+    reserved = [k for k in extra if isinstance(k, str) and k.startswith(RESERVED_PREFIX)]
+    if bad or reserved:
+        raise FactorizeError(
+            "metadata entries must be string -> string and not use the reserved 'factorize.' prefix",
+            bad + [f"{k!r}: reserved key" for k in reserved],
+            fix="convert values with str() / json.dumps and rename reserved keys",
+        )
+    return dict(extra)
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# atomic writes
+
+
+def check_output_path(path: str | os.PathLike, *, force: bool, directory: bool = False) -> Path:
+    """Refuse an existing output unless ``force``; check that its parent directory exists and is writable.
+    ``directory=True``: the output is a directory of shards (an existing one must be a directory)."""
+    p = Path(path)
+    if p.exists() and not force:
+        raise FactorizeError(f"{p}: the output already exists", fix="choose another path, or pass force=True (--force)")
+    if p.exists() and p.is_dir() != directory:
+        raise FactorizeError(f"{p}: exists and is {'not ' if directory else ''}a directory",
+                             fix="choose another output path")
+    d = p.parent if str(p.parent) else Path(".")
+    if not d.is_dir():
+        raise FactorizeError(f"{p}: the directory {d} does not exist", fix=f"create it first (mkdir -p {d})")
+    if not os.access(d, os.W_OK | os.X_OK):
+        raise FactorizeError(f"{p}: cannot write in {d} (permission denied)", fix="choose a writable directory")
+    return p
+
+
+def check_free_space(directory: str | os.PathLike, nbytes: int, what: str) -> None:
+    """Fail before writing when ``directory``'s filesystem has less than ``nbytes`` (+ a margin) free."""
+    free = shutil.disk_usage(directory).free
+    if free < nbytes + DISK_MARGIN_BYTES:
+        raise FactorizeError(
+            f"not enough free disk space in {directory} for {what}: needs {_human(nbytes)}, {_human(free)} free",
+            fix="free some space or write the output to another disk",
+        )
+
+
+def _human(n: float) -> str:
+    for unit in ("B", "KB", "MB", "GB", "TB"):
+        if abs(n) < 1024 or unit == "TB":
+            return f"{n:.1f} {unit}" if unit != "B" else f"{int(n)} B"
+        n /= 1024
+    return f"{n} B"
+
+
+def create_temp(final: Path) -> tuple[Path, int]:
+    """A new temporary file beside ``final`` (same directory, so os.replace is atomic): (path, fd).
+
+    Created with mode 0o666 so the umask applies as for any new file."""
+    for _ in range(100):
+        tmp = final.with_name(f".{final.name}.{secrets.token_hex(6)}.tmp")
+        try:
+            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+        except FileExistsError:
+            continue
+        except PermissionError:
+            raise FactorizeError(f"{final}: cannot create files in {final.parent} (permission denied)",
+                                 fix="choose a writable directory") from None
+        return tmp, fd
+    raise FactorizeError(f"{final}: could not create a temporary file in {final.parent}")
+
+
+def remove_quietly(p: Path) -> None:
+    try:
+        p.unlink()
+    except FileNotFoundError:
+        pass
+
+
+def write_atomic(final: Path, write: Callable[[Path], None], *, force: bool) -> None:
+    """Run ``write(tmp)`` on a temporary file beside ``final``, fsync it, then ``os.replace`` it into place.
+    On any failure the temporary file is removed and ``final`` is untouched."""
+    tmp, fd = create_temp(final)
+    os.close(fd)
+    try:
+        write(tmp)
+        _fsync(tmp)
+        if not force and final.exists():  # created by someone else meanwhile
+            raise FactorizeError(f"{final}: the output appeared while writing", fix="pass force=True (--force)")
+        os.replace(tmp, final)
+    except OSError as e:
+        remove_quietly(tmp)
+        raise FactorizeError(f"{final}: writing failed ({e.strerror or e}); nothing was written",
+                             fix="check free space and permissions, then retry") from e
+    except BaseException:
+        remove_quietly(tmp)
+        raise
+
+
+def _fsync(p: Path) -> None:
+    fd = os.open(p, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# save / load a compressed model
+
+
+def _dedupe(state: Mapping[str, torch.Tensor]) -> tuple[dict[str, torch.Tensor], dict[str, str]]:
+    """Store each tensor once: keys holding the very same view become aliases of the first key.
+
+    Keys whose tensors only overlap (different views of one storage) are stored as separate contiguous copies;
+    safetensors cannot express partial overlap, and a fresh architecture re-creates such views itself."""
+    seen: dict[tuple, str] = {}
+    tensors: dict[str, torch.Tensor] = {}
+    aliases: dict[str, str] = {}
+    for key, t in state.items():
+        ident = (t.device, t.untyped_storage().data_ptr(), t.storage_offset(), tuple(t.shape), t.stride(), t.dtype)
+        if t.numel() and ident in seen:
+            aliases[key] = seen[ident]
+            continue
+        seen[ident] = key
+        tensors[key] = t
+    ptrs: dict[tuple, str] = {}
+    for key, t in list(tensors.items()):  # remaining overlaps: give each its own storage
+        pk = (t.device, t.untyped_storage().data_ptr())
+        if t.numel() and pk in ptrs:
+            tensors[key] = t.clone()
+        else:
+            ptrs[pk] = key
+    return tensors, aliases
+
+
+def _check_plan_matches(model: nn.Module, plan: Mapping) -> None:
+    from factorize.layers import Factored, factored_layers
+
+    factored = factored_layers(model)
+    problems = []
+    for name, e in plan["sites"].items():
+        layer = factored.get(name)
+        if e.get("action") == "factor":
+            if not isinstance(layer, Factored):
+                problems.append(f"{name}: the plan factors it at rank {e.get('rank')}, the model holds it dense")
+            elif layer.rank != e.get("rank") or layer.kind != e.get("kind"):
+                problems.append(f"{name}: plan says {e.get('kind')} rank {e.get('rank')}, "
+                                f"model has {layer.kind} rank {layer.rank}")
+        elif layer is not None:
+            problems.append(f"{name}: factored in the model (rank {layer.rank}) but dense in the plan")
+    for name in factored:
+        if name not in plan["sites"]:
+            problems.append(f"{name}: factored in the model but absent from the plan")
+    if problems:
+        raise FactorizeError(
+            "the plan does not describe this model", problems,
+            fix="save the model and plan of the same compress() result (result.model, plan=result.plan)",
+        )
+
+
+def save(
+    model: nn.Module,
+    path: str | os.PathLike,
+    *,
+    plan: Mapping,
+    force: bool = False,
+    metadata: Mapping[str, str] | None = None,
+) -> Path:
+    """Write a compressed model's state_dict and its plan as one safetensors file, atomically.
+
+    Args:
+        model: the compressed model (e.g. ``compress(...).model``); only read.
+        path: output file; refused if it exists unless ``force``.
+        plan: the plan that produced ``model`` (``result.plan``); checked against the model's factored layers.
+        force: replace an existing file.
+        metadata: extra string -> string entries for the header (keys must not start with ``factorize.``).
+
+    Returns the path written. Raises :class:`FactorizeError` for a bad path, too little disk space, a plan that
+    does not describe the model, or a failed write (nothing is left behind).
+    """
+    if not isinstance(model, nn.Module):
+        raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
+    final = check_output_path(path, force=force)
+    _plan_json(plan)
+    _check_plan_matches(model, plan)
+    state = {k: v.detach() for k, v in model.state_dict().items()}
+    tensors, aliases = _dedupe(state)
+    meta = checkpoint_metadata(plan, aliases, metadata)
+    tensors = {k: (v if v.is_contiguous() else v.contiguous()).cpu() for k, v in tensors.items()}
+    nbytes = sum(t.numel() * t.element_size() for t in tensors.values()) + len(json.dumps(meta)) + 64 * len(tensors)
+    check_free_space(final.parent, nbytes, f"{final.name}")
+    write_atomic(final, lambda tmp: save_file(tensors, str(tmp), metadata=meta), force=force)
+    return final
+
+
+def load(model: nn.Module, path: str | os.PathLike, *, strict: bool = True) -> nn.Module:
+    """Rebuild the factored structure from the plan in ``path`` on ``model`` and load the weights.
+
+    ``model`` must be a fresh (not factored) instance of the architecture the checkpoint was made from; it is
+    modified in place and returned. Every missing, unexpected, mis-shaped or differently typed key is listed in
+    one :class:`FactorizeError`, and the model is left as it was. With ``strict=False`` missing and unexpected
+    keys are allowed (a warning lists them) and differing dtypes are cast; shapes must still match.
+    """
+    from factorize.api import apply_plan, validate_plan
+    from factorize.walk import get_module, set_module
+
+    if not isinstance(model, nn.Module):
+        raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}",
+                             fix="build a fresh instance of the architecture and pass it")
+    ckpt = open_checkpoint(path)
+    plan, aliases = _plan_and_aliases(ckpt, path)
+    validate_plan(model, plan)
+    names = [n for n, e in plan["sites"].items() if e.get("action") == "factor"]
+    originals = {n: get_module(model, n) for n in names}
+    apply_plan(model, plan, weights=False, inplace=True)
+    try:
+        _load_weights(model, ckpt, aliases, strict, path)
+    except BaseException:
+        for n, m in originals.items():
+            set_module(model, n, m)
+        raise
+    return model
+
+
+def _load_weights(model: nn.Module, ckpt: Checkpoint, aliases: Mapping[str, str], strict: bool, path) -> None:
+    expected = model.state_dict()
+    where = ckpt.locate()
+    stored = {k: where[k].tensors[k] for k in where}
+    for alias, key in aliases.items():
+        if key in stored:
+            stored.setdefault(alias, stored[key])
+    problems, notes = _compare(expected, stored, _tied_groups(expected), strict)
+    if problems:
+        raise FactorizeError(
+            f"{path}: the checkpoint does not fit this model", problems,
+            fix="build the same architecture (and dtype) the checkpoint was saved from; "
+            "strict=False tolerates missing/unexpected keys and casts dtypes",
+        )
+    if notes:
+        warnings.warn(f"{path}: loaded with strict=False; " + "; ".join(notes), stacklevel=3)
+    for h in ckpt.files:
+        with safe_open(str(h.path), framework="pt", device="cpu") as f:
+            chunk = {k: f.get_tensor(k) for k in h.tensors if k in expected}
+        chunk.update({a: chunk[k] for a, k in aliases.items() if k in chunk and a in expected})
+        model.load_state_dict(chunk, strict=False)
+        del chunk
+    _retie(model, aliases)
+
+
+def _tied_groups(expected: Mapping[str, torch.Tensor]) -> dict[str, set[str]]:
+    """key -> other keys of the model that share its storage (a tied embedding and head)."""
+    by_ptr: dict[tuple, set[str]] = {}
+    for k, t in expected.items():
+        if t.numel():
+            by_ptr.setdefault((t.device, t.untyped_storage().data_ptr(), t.storage_offset()), set()).add(k)
+    return {k: g - {k} for g in by_ptr.values() for k in g}
+
+
+def _compare(expected, stored, tied, strict) -> tuple[list[str], list[str]]:
+    problems, notes = [], []
+    for k, t in expected.items():
+        info = stored.get(k)
+        if info is None:
+            if any(o in stored for o in tied.get(k, ())):
+                continue  # tied in the model to a key the file holds: filled through the tie
+            (problems if strict else notes).append(f"{k}: missing from the file (model has {list(t.shape)})")
+        elif tuple(t.shape) != info.shape:
+            problems.append(f"{k}: file has shape {list(info.shape)}, model has {list(t.shape)}")
+        elif info.torch_dtype != t.dtype:
+            msg = f"{k}: file has {info.dtype}, model has {str(t.dtype).removeprefix('torch.')}"
+            (problems if strict else notes).append(msg + ("" if strict else " (cast)"))
+    for k in stored:
+        if k not in expected:
+            (problems if strict else notes).append(f"{k}: in the file but not in the model")
+    return problems, notes
+
+
+def _retie(model: nn.Module, aliases: Mapping[str, str]) -> None:
+    """Make each alias key share the stored key's parameter again (as it did in the saved model)."""
+    for alias, key in aliases.items():
+        a_mod, _, a_attr = alias.rpartition(".")
+        k_mod, _, k_attr = key.rpartition(".")
+        try:
+            am, km = model.get_submodule(a_mod), model.get_submodule(k_mod)
+        except AttributeError:
+            continue
+        src = km._parameters.get(k_attr)
+        dst = am._parameters.get(a_attr)
+        if isinstance(src, nn.Parameter) and isinstance(dst, nn.Parameter) and src is not dst \
+                and src.shape == dst.shape and src.dtype == dst.dtype:
+            am._parameters[a_attr] = src
