@@ -19,9 +19,7 @@ Every problem is a :class:`~factorize.errors.FactorizeError` naming the file and
 from __future__ import annotations
 
 import importlib
-import json
 import os
-import struct
 import sys
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
@@ -255,45 +253,11 @@ def _check_readable(path: Path) -> None:
 
 
 def check_safetensors(path: str | os.PathLike) -> dict:
-    """Validate a safetensors file's layout before loading it, and return its header.
+    """Validate a safetensors file's layout before loading it (:func:`factorize.io.read_header`: a file cut
+    short, a header claiming more data than the file holds, a corrupt header) and return its metadata."""
+    from factorize.io import read_header
 
-    The layout (safetensors format specification): 8 bytes little-endian header length N, N bytes of JSON
-    header, then the data; each tensor's ``data_offsets`` [begin, end) are relative to the start of the data.
-    A file cut short, or a header that claims more data than the file holds, is named here with the numbers.
-    """
-    path = Path(path)
-    _check_readable(path)
-    if path.is_dir():
-        raise FactorizeError(f"{path}: is a directory, expected a .safetensors file", fix="name the file itself")
-    size = path.stat().st_size
-    fix = "the file is damaged or incomplete: copy or download it again, or save it again from the model"
-    with open(path, "rb") as f:
-        head = f.read(8)
-        if len(head) < 8:
-            raise FactorizeError(f"{path}: truncated safetensors file ({size} bytes, too short for a header)", fix=fix)
-        (n,) = struct.unpack("<Q", head)
-        if 8 + n > size:
-            raise FactorizeError(
-                f"{path}: the safetensors header claims {n} bytes but the file holds only {size - 8} after the "
-                "length field (truncated or not a safetensors file)", fix=fix)
-        try:
-            header = json.loads(f.read(n))
-        except (UnicodeDecodeError, json.JSONDecodeError):
-            raise FactorizeError(f"{path}: corrupt safetensors header (not valid JSON)", fix=fix) from None
-    if not isinstance(header, dict):
-        raise FactorizeError(f"{path}: corrupt safetensors header (not a JSON object)", fix=fix)
-    data = size - 8 - n
-    short = [
-        f"{name}: data up to byte {info['data_offsets'][1]}, but the file holds {data} bytes of data"
-        for name, info in header.items()
-        if name != "__metadata__" and isinstance(info, dict)
-        and isinstance(info.get("data_offsets"), list) and len(info["data_offsets"]) == 2
-        and info["data_offsets"][1] > data
-    ]
-    if short:
-        raise FactorizeError(f"{path}: the header claims more data than the file holds (truncated file)", short,
-                             fix=fix)
-    return header
+    return read_header(path).metadata
 
 
 def read_safetensors(path: str | os.PathLike) -> dict[str, torch.Tensor]:

@@ -102,17 +102,17 @@ def test_damaged_safetensors_files_are_named_with_the_problem(tmp_path) -> None:
     blob = _write_checkpoint(tmp_path / "ok.safetensors", {"w": torch.randn(16, 16)})
     (n,) = struct.unpack("<Q", blob[:8])
     cases = {
-        "tiny.safetensors": (blob[:5], "too short for a header"),
-        "cut.safetensors": (blob[: 8 + n + 100], "claims more data than the file holds"),
-        "claim.safetensors": (struct.pack("<Q", n + 10_000) + blob[8:], "header claims"),
-        "json.safetensors": (blob[:8] + b"{" * n + blob[8 + n:], "not valid JSON"),
+        "tiny.safetensors": (blob[:5], "too short to hold the 8-byte header length"),
+        "cut.safetensors": (blob[: 8 + n + 100], "claims tensor data up to byte .* truncated"),
+        "claim.safetensors": (struct.pack("<Q", n + 10_000) + blob[8:], f"header claims {n + 10_000} bytes"),
+        "json.safetensors": (blob[:8] + b"{" * n + blob[8 + n:], "not valid UTF-8 JSON"),
     }
     for name, (data, message) in cases.items():
         (tmp_path / name).write_bytes(data)
         with pytest.raises(FactorizeError, match=message) as err:
             load_model(str(tmp_path / name))
         assert name in str(err.value) and "Fix:" in str(err.value)
-    assert "w" in check_safetensors(tmp_path / "ok.safetensors")
+    assert check_safetensors(tmp_path / "ok.safetensors") == {}  # valid file, no metadata
     with pytest.raises(FactorizeError, match="no such file"):
         load_model(str(tmp_path / "absent.safetensors"))
     with pytest.raises(FactorizeError, match="not a model factorize can read"):
