@@ -412,8 +412,8 @@ def create_temp(final: Path) -> tuple[Path, int]:
             fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
         except FileExistsError:
             continue
-        except PermissionError:
-            raise FactorizeError(f"{final}: cannot create files in {final.parent} (permission denied)",
+        except OSError as e:
+            raise FactorizeError(f"{final}: cannot create files in {final.parent} ({e.strerror or e})",
                                  fix="choose a writable directory") from None
         return tmp, fd
     raise FactorizeError(f"{final}: could not create a temporary file in {final.parent}")
