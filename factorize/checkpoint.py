@@ -286,14 +286,15 @@ def shrink_checkpoint(
         passes = 2
     bound = sum(h.file_size for h in ckpt.files) + sum(job.reserve_for(h) for h in ckpt.files)
     check_free_space(out_dir, bound if job.plan is None else job.planned_bytes(), "the shrunk checkpoint")
-    created_dir = ckpt.index is not None and not out_dir.exists()
+    target_dir = finals[0].parent
+    created_dir = not target_dir.exists()
     if created_dir:
-        out_dir.mkdir(parents=False)
+        target_dir.mkdir(parents=False)
     try:
         written = job.write_all(finals, metadata)
     except BaseException:
         if created_dir:
-            shutil.rmtree(out_dir, ignore_errors=True)
+            shutil.rmtree(target_dir, ignore_errors=True)
         raise
     return {
         "plan": job.plan,
