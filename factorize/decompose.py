@@ -1,8 +1,16 @@
 """Decompose a weight matrix into its singular spectrum, with the predicted error at every rank.
 
-Two methods:
+Methods:
 
 * ``exact``: ``torch.linalg.svd`` (LAPACK) of the whole matrix; every singular value is known.
+* ``gram``: the symmetric eigendecomposition of the smaller Gram matrix (W W^T or W^T W) in float64, whose
+  eigenvalues are the squared singular values and whose eigenvectors are the singular vectors of that side
+  (Golub & Van Loan, Matrix Computations, 4th ed., sec. 8.6). Forming the Gram matrix squares the condition
+  number, so singular values below about sqrt(eps) * s_1 lose relative accuracy; truncation only needs the
+  energies s_i^2, which keep an absolute accuracy of about eps * s_1^2 in float64. Much faster than a full
+  LAPACK SVD on the CPU (one matrix product and one symmetric eigensolve instead of a bidiagonalisation).
+* ``auto``: ``randomized`` when the largest rank needed is well below min(m, n) (at most an eighth) and an
+  a-posteriori estimate puts its error within 1% of the optimum; ``gram`` otherwise.
 * ``randomized``: the randomized range finder with power (subspace) iterations of Halko, Martinsson & Tropp,
   "Finding structure with randomness", SIAM Review 53(2), 2011 (Algorithms 4.4 and 5.1): a Gaussian sketch of
   k + p columns, q power iterations re-orthonormalised by QR, then the SVD of the small projected matrix.
@@ -24,7 +32,9 @@ import torch
 
 from factorize.errors import FactorizeError
 
-METHODS = ("exact", "randomized")
+METHODS = ("auto", "exact", "gram", "randomized")
+RANDOMIZED_FRACTION = 8  # auto: randomized only when the rank needed is at most min(m, n) / this
+AUTO_TOLERANCE = 0.01  # auto: accept randomized factors only if provably within 1% of the optimal error
 
 
 @dataclass
@@ -125,8 +135,9 @@ def decompose(
 
     Args:
         matrix: the weight's matrix view (out x in); a torch tensor or numpy array. It is not modified.
-        method: ``"exact"`` or ``"randomized"``.
-        rank: for ``randomized``, how many leading singular triplets are needed (k); ignored by ``exact``.
+        method: ``"auto"``, ``"exact"``, ``"gram"`` or ``"randomized"``.
+        rank: for ``randomized`` and ``auto``, how many leading singular triplets are needed (k); ignored by
+            ``exact`` and ``gram``. Without it ``auto`` and ``randomized`` fall back to ``gram``.
         oversample: extra sketch columns p (Halko et al. 2011 suggest p = 5..10).
         power_iters: power iterations q; each sharpens a slowly decaying spectrum (Halko et al. 2011, sec. 4.5).
         seed: seed of the Gaussian sketch.
@@ -146,11 +157,15 @@ def decompose(
             f"{name}: the weight holds {bad} NaN or Inf value(s)",
             fix="repair or retrain the layer, or exclude it (exclude=[...] / --exclude)",
         )
-    if method == "randomized" and rank is not None:
-        if rank <= 0:
-            raise FactorizeError(f"{name}: rank must be >= 1, got {rank}")
-        return _randomized(w, rank, oversample, power_iters, seed)
-    return _exact(w)
+    if rank is not None and rank <= 0:
+        raise FactorizeError(f"{name}: rank must be >= 1, got {rank}")
+    if method == "exact":
+        return _exact(w)
+    if method == "gram" or rank is None:
+        return _gram(w)
+    if method == "randomized":
+        return _randomized(w, rank, oversample, power_iters, seed)[0]
+    return _auto(w, rank, oversample, power_iters, seed)
 
 
 def _exact(w: torch.Tensor) -> Spectrum:
@@ -160,24 +175,82 @@ def _exact(w: torch.Tensor) -> Spectrum:
     return Spectrum(U, S, Vh, total_energy=total, method="exact", exact=True)
 
 
-def _randomized(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: int) -> Spectrum:
+def _gram(w: torch.Tensor) -> Spectrum:
+    """Singular triplets from the eigendecomposition of the smaller Gram matrix, in float64."""
+    m, n = w.shape
+    wide = m <= n
+    w64 = w.to(torch.float64)
+    gram = w64 @ w64.T if wide else w64.T @ w64  # (k, k), k = min(m, n)
+    evals, evecs = torch.linalg.eigh(gram)  # ascending
+    evals, evecs = evals.flip(0).clamp_min(0), evecs.flip(1)
+    S = evals.sqrt()  # (k,)
+    inv = torch.where(S > S[0] * 1e-12, 1.0 / S, torch.zeros_like(S)) if S.numel() else S
+    if wide:
+        U, Vh = evecs, (evecs.T @ w64) * inv[:, None]  # U (m, k); Vh = S^-1 U^T W (k, n)
+    else:
+        Vh, U = evecs.T, (w64 @ evecs) * inv  # V (n, k); U = W V S^-1 (m, k)
+    U, Vh = _fix_signs(U, Vh)
+    total = float(torch.linalg.matrix_norm(w64) ** 2)
+    dtype = w.dtype
+    return Spectrum(U.to(dtype), S.to(dtype), Vh.to(dtype), total_energy=total, method="gram", exact=True)
+
+
+def _randomized(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: int) -> tuple[Spectrum, float]:
+    """Randomized SVD (Halko et al. 2011, Alg. 4.4 + 5.1). Also returns an a-posteriori estimate of how much more
+    energy the optimal rank-k truncation keeps than these factors (0 when the result is exact)."""
     m, n = w.shape
     k = min(rank, m, n)
     sketch = min(k + max(oversample, 0), m, n)
     if sketch >= min(m, n):  # the sketch would be as large as the matrix: exact is cheaper and better
-        return _exact(w)
+        return _exact(w), 0.0
     gen = torch.Generator(device="cpu").manual_seed(seed)
     omega = torch.randn(n, sketch, generator=gen, dtype=w.dtype).to(w.device)  # (n, k+p)
     Q, _ = torch.linalg.qr(w @ omega)  # (m, k+p): orthonormal basis of the sketched range
-    for _ in range(power_iters):  # subspace iteration, re-orthonormalised each half step (Halko et al. Alg. 4.4)
-        Z, _ = torch.linalg.qr(w.T @ Q)  # (n, k+p)
+    kept: list[float] = []
+    for it in range(power_iters + 1):
+        small = Q.T @ w  # (k+p, n)
+        kept.append(float((torch.linalg.svdvals(small)[:k].to(torch.float64) ** 2).sum()))
+        if it == power_iters:
+            break
+        Z, _ = torch.linalg.qr(small.T)  # (n, k+p): subspace iteration, re-orthonormalised each half step
         Q, _ = torch.linalg.qr(w @ Z)  # (m, k+p)
-    small = Q.T @ w  # (k+p, n)
     Ub, S, Vh = torch.linalg.svd(small, full_matrices=False)
     U = Q @ Ub  # (m, k+p)
     U, Vh = _fix_signs(U[:, :k], Vh[:k])
     total = float(torch.linalg.matrix_norm(w.to(torch.float64)) ** 2)  # exact ||W||_F^2
-    return Spectrum(U, S[:k], Vh, total_energy=total, method="randomized", exact=False)
+    spec = Spectrum(U, S[:k], Vh, total_energy=total, method="randomized", exact=False)
+    return spec, _gap_estimate(kept, S, k)
+
+
+def _gap_estimate(kept: list[float], S: torch.Tensor, k: int) -> float:
+    """Energy the optimal rank-k truncation keeps beyond the randomized one, estimated from convergence.
+
+    Each power iteration shrinks the captured-energy gap of subspace iteration by about
+    rho = (s_{l+1} / s_k)^4 for a sketch of l columns (Golub & Van Loan, sec. 8.2.4; Halko et al. 2011, sec. 4.5,
+    eq. 4.8), so with the last increment d the remaining gap is about d * rho / (1 - rho). s_{l+1} is proxied by
+    the smallest sketched value. Returns inf when no estimate is possible (no iteration, or rho close to 1).
+    """
+    if len(kept) < 2 or S[k - 1] <= 0:
+        return float("inf")
+    rho = float(S[-1] / S[k - 1]) ** 4
+    if rho >= 0.9:
+        return float("inf")
+    return max(kept[-1] - kept[-2], 0.0) * rho / (1 - rho)
+
+
+def _auto(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: int) -> Spectrum:
+    """Randomized where the rank needed is small and its error within 1% of optimal by the estimate; else gram."""
+    m, n = w.shape
+    if rank * RANDOMIZED_FRACTION > min(m, n):
+        return _gram(w)
+    spec, gap = _randomized(w, rank, max(oversample, rank // 2), max(power_iters, 2), seed)
+    err2 = spec.error(spec.computed_rank) ** 2  # the randomized factors' own error (exact, from ||W||_F)
+    if spec.exact or err2 == 0.0 or err2 <= (1 + AUTO_TOLERANCE) ** 2 * max(err2 - gap, 0.0):
+        spec.method = "auto:randomized" if not spec.exact else spec.method
+        return spec
+    out = _gram(w)
+    out.method = "auto:gram"
+    return out
 
 
 def _fix_signs(U: torch.Tensor, Vh: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:

@@ -115,3 +115,35 @@ def test_bad_input_is_named():
         decompose(torch.randn(3, 3), method="qr")
     with pytest.raises(FactorizeError, match="rank must be >= 1"):
         decompose(torch.randn(3, 3), method="randomized", rank=0)
+
+
+@pytest.mark.parametrize("shape", [(80, 50), (50, 80)])
+def test_gram_method_matches_lapack(shape):
+    # Reference: numpy.linalg.svd. The Gram route (Golub & Van Loan, sec. 8.6) keeps the energies s_i^2 to
+    # about eps * s_1^2 in float64, so singular values and truncations agree to near machine precision here.
+    W = torch.randn(*shape, generator=torch.Generator().manual_seed(5), dtype=torch.float64)
+    spec = decompose(W, method="gram")
+    U, s, Vt = np.linalg.svd(W.numpy(), full_matrices=False)
+    np.testing.assert_allclose(spec.S.numpy(), s, rtol=1e-10, atol=1e-12)
+    ref = (U[:, :7] * s[:7]) @ Vt[:7]
+    np.testing.assert_allclose(spec.truncated(7).numpy(), ref, atol=1e-10)
+    assert spec.exact and spec.method == "gram"
+
+
+@pytest.mark.parametrize("decay", [0.9, 0.97, 0.99])
+def test_auto_stays_within_one_percent_of_optimum(decay):
+    # Target of the fast path: at most 1% excess Frobenius error over the Eckart-Young optimum (numpy reference).
+    W = torch.from_numpy(_decaying(300, 240, decay=decay)).float()
+    s = np.linalg.svd(W.double().numpy(), compute_uv=False)
+    for rank in (8, 25):
+        spec = decompose(W, method="auto", rank=rank)
+        achieved = np.linalg.norm(W.double().numpy() - spec.truncated(rank).double().numpy())
+        assert achieved <= 1.01 * np.sqrt((s[rank:] ** 2).sum())
+
+
+def test_auto_falls_back_to_gram_when_the_estimate_cannot_vouch():
+    # A Gaussian matrix has a flat spectrum (Marchenko-Pastur), so subspace iteration converges slowly and the
+    # convergence estimate cannot certify 1%: auto must take the exact route.
+    W = torch.randn(400, 320, generator=torch.Generator().manual_seed(6))
+    assert decompose(W, method="auto", rank=30).method == "auto:gram"
+    assert decompose(W, method="auto", rank=100).method == "gram"  # rank not well below min(m, n)
