@@ -170,7 +170,7 @@ def load_weights(model: nn.Module, path: str | os.PathLike, *, allow_pickle: boo
         state = _tensors_only(_load_pickle(path, allow_pickle), path)
     else:
         check_safetensors(path)
-        if _has_plan(path):
+        if has_plan(path):
             from factorize import io
 
             return io.load(model, path)
@@ -198,7 +198,8 @@ def state_dict_problems(model: nn.Module, state: Mapping[str, torch.Tensor]) -> 
     return problems
 
 
-def _has_plan(path: Path) -> bool:
+def has_plan(path: str | os.PathLike) -> bool:
+    """Whether ``path`` is a factorize checkpoint (a plan in its metadata)."""
     try:
         from factorize import io
     except ImportError:  # pragma: no cover - the files module ships with the package

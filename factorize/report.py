@@ -171,8 +171,9 @@ class Report:
 # rich rendering
 
 
-def render_rich(report: Report, console: Console) -> None:
-    """Print ``report`` as tables on ``console``."""
+def render_rich(report: Report, console: Console, *, caution: bool = True) -> None:
+    """Print ``report`` as tables on ``console``. ``caution=False`` leaves the caution to the caller, for a page
+    that shows several reports and closes with the caution once."""
     summary = Table(title=report.title + (f": {report.model}" if report.model else ""), title_justify="left")
     summary.add_column("quantity")
     for name in ("before", "after", "change"):
@@ -199,7 +200,8 @@ def render_rich(report: Report, console: Console) -> None:
         console.print(layers)
     for note in report.notes:
         console.print(f"[yellow]Note:[/] {note}", highlight=False)
-    console.print(Panel(report.caution, title="caution", title_align="left", border_style="yellow"))
+    if caution:
+        console.print(Panel(report.caution, title="caution", title_align="left", border_style="yellow"))
 
 
 # ---------------------------------------------------------------------------------------------------------------
