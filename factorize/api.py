@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import copy
 from collections.abc import Iterable, Mapping
+from concurrent.futures import ThreadPoolExecutor, as_completed
 from dataclasses import dataclass, field
 
 import torch
@@ -48,11 +49,12 @@ class CompressResult:
 
 def _rank_needed(site: Site, policy: Policy) -> int:
     """How many leading singular triplets a policy can use for ``site`` (for partial decompositions)."""
-    if policy.rank is not None:
-        return min(policy.rank, site.max_rank)
-    if policy.keep is not None:
-        return max(1, min(site.max_rank, int(policy.keep * site.params / sum(site.shape))))
-    # energy / budget / overrides: anything at or past break-even keeps the layer dense, so no more is needed
+    if not policy.overrides:  # a per-pattern rule may ask for more than the policy: then the bound below
+        if policy.rank is not None:
+            return min(-(-policy.rank // policy.multiple) * policy.multiple, site.max_rank)  # rounded up
+        if policy.keep is not None:
+            return max(1, min(site.max_rank, int(policy.keep * site.params / sum(site.shape))))
+    # energy / budget / overrides: anything past break-even keeps the layer dense, so no more is needed
     return max(1, min(site.max_rank, site.break_even + policy.multiple))
 
 
@@ -60,21 +62,42 @@ def decompose_sites(
     model: nn.Module,
     sites: Iterable[Site],
     *,
-    method: str = "exact",
+    method: str = "auto",
     ranks: Mapping[str, int] | None = None,
     seed: int = 0,
     precision: str | None = None,
     progress: bool = False,
+    workers: int = 1,
     **options,
 ) -> dict[str, Spectrum]:
-    """Spectrum of every site's matrix view. ``ranks`` bounds the triplets a partial method computes."""
-    out: dict[str, Spectrum] = {}
+    """Spectrum of every site's matrix view. ``ranks`` bounds the triplets a partial method computes.
+
+    ``workers > 1`` decomposes independent layers concurrently in threads (LAPACK and BLAS release the GIL);
+    every layer gets the same seed and the same arithmetic, so results equal a serial run's.
+    """
     sites = list(sites)
-    for site in tqdm(sites, desc="decompose", unit="layer", disable=not progress, leave=False):
+
+    def one(site: Site) -> Spectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
         k = (ranks or {}).get(site.name)
-        out[site.name] = decompose(W, method=method, rank=k, seed=seed, precision=precision, name=site.name, **options)
-    return out
+        return decompose(W, method=method, rank=k, seed=seed, precision=precision, name=site.name, **options)
+
+    bar = tqdm(total=len(sites), desc="decompose", unit="layer", disable=not progress, leave=False)
+    out: dict[str, Spectrum] = {}
+    try:
+        if workers <= 1 or len(sites) <= 1:
+            for site in sites:
+                out[site.name] = one(site)
+                bar.update()
+        else:
+            with ThreadPoolExecutor(max_workers=workers) as pool:
+                futures = {pool.submit(one, site): site.name for site in sites}
+                for fut in as_completed(futures):
+                    out[futures[fut]] = fut.result()
+                    bar.update()
+    finally:
+        bar.close()
+    return {site.name: out[site.name] for site in sites}  # module order, whatever the finishing order
 
 
 def _policy_from(rank, energy, keep, budget, multiple, overrides, cost) -> Policy:
@@ -91,7 +114,7 @@ def compress(
     keep: float | None = None,
     include: str | Iterable[str] | None = None,
     exclude: str | Iterable[str] | None = None,
-    method: str = "exact",
+    method: str = "auto",
     multiple: int = 1,
     overrides: Iterable[Override | Mapping] | None = None,
     cost: str = "params",
@@ -100,6 +123,7 @@ def compress(
     precision: str | None = None,
     progress: bool = False,
     spectra: Mapping[str, Spectrum] | None = None,
+    workers: int = 1,
 ) -> CompressResult:
     """Factor the dense layers of ``model`` at ranks chosen from their singular spectra.
 
@@ -107,7 +131,9 @@ def compress(
         model: a trained ``nn.Module``; not modified unless ``inplace=True``.
         budget / rank / energy / keep: the rank policy (exactly one); see :mod:`factorize.ranks`.
         include / exclude: glob patterns on qualified module names.
-        method: ``"exact"`` (LAPACK SVD) or ``"randomized"`` (Halko, Martinsson & Tropp 2011).
+        method: ``"auto"`` (default: randomized SVD where the rank needed is small and provably near-optimal,
+            else the Gram eigensolve), ``"exact"`` (LAPACK SVD), ``"gram"`` or ``"randomized"`` (Halko,
+            Martinsson & Tropp 2011); see :mod:`factorize.decompose`.
         multiple: round ranks to this multiple (8 or 16 suit fast kernels).
         overrides: per-pattern exceptions (``Override`` or dicts with pattern and rank/energy/keep/dense).
         cost: what ``budget`` counts, ``"params"`` or ``"macs"``.
@@ -116,6 +142,7 @@ def compress(
         precision: ``"float32"`` or ``"float64"`` compute dtype for the SVD.
         progress: show a progress bar on stderr.
         spectra: spectra from an earlier call (``result.spectra``) to reuse instead of decomposing again.
+        workers: decompose this many layers concurrently (threads); results equal a serial run's.
 
     Returns:
         :class:`CompressResult` with ``.model`` and ``.plan``.
@@ -136,8 +163,12 @@ def compress(
     todo = [s for s in found.sites if not s.tied_with]
     have = dict(spectra or {})
     need = [s for s in todo if s.name not in have]
-    ranks = {s.name: _rank_needed(s, policy) for s in need} if method == "randomized" else None
-    have.update(decompose_sites(model, need, method=method, ranks=ranks, seed=seed, precision=precision, progress=progress))
+    ranks = {s.name: _rank_needed(s, policy) for s in need} if method in ("auto", "randomized") else None
+    have.update(
+        decompose_sites(
+            model, need, method=method, ranks=ranks, seed=seed, precision=precision, progress=progress, workers=workers
+        )
+    )
     plan = choose_ranks(found.sites, have, policy, method=method)
     params_before = count_parameters(model)
     target = model if inplace else copy.deepcopy(model)

@@ -160,3 +160,16 @@ def test_failed_rewrite_leaves_model_as_it_was(mlp, monkeypatch):
     with pytest.raises(RuntimeError):
         apply_plan(mlp, plan, inplace=True)
     assert {n: type(m) for n, m in mlp.named_modules()} == before
+
+
+def test_parallel_decomposition_equals_serial():
+    # Issue requirement: concurrent layers give results identical to a serial run.
+    torch.manual_seed(0)
+    model = torch.nn.Sequential(*[torch.nn.Linear(40, 40) for _ in range(6)])
+    serial = compress(model, budget=0.4, workers=1)
+    parallel = compress(model, budget=0.4, workers=3)
+    assert serial.plan == parallel.plan
+    for name, spec in serial.spectra.items():
+        assert torch.equal(spec.U, parallel.spectra[name].U) and torch.equal(spec.S, parallel.spectra[name].S)
+    for a, b in zip(serial.model.state_dict().values(), parallel.model.state_dict().values()):
+        assert torch.equal(a, b)
