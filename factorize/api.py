@@ -7,6 +7,7 @@
 from __future__ import annotations
 
 import copy
+import dataclasses
 from collections.abc import Iterable, Mapping
 from concurrent.futures import ThreadPoolExecutor, as_completed
 from dataclasses import dataclass, field
@@ -33,6 +34,7 @@ class CompressResult:
     spectra: dict[str, Spectrum] = field(default_factory=dict, repr=False)  # name -> spectrum (reusable)
     params_before: int = 0  # whole-model parameters, shared tensors counted once
     params_after: int = 0
+    timings: list[dict] = field(default_factory=list)  # per-layer dense vs factored timings (speed_check=True)
 
     @property
     def kept_fraction(self) -> float:
@@ -124,6 +126,8 @@ def compress(
     progress: bool = False,
     spectra: Mapping[str, Spectrum] | None = None,
     workers: int = 1,
+    speed_check: bool = False,
+    speed_example=None,
 ) -> CompressResult:
     """Factor the dense layers of ``model`` at ranks chosen from their singular spectra.
 
@@ -131,8 +135,8 @@ def compress(
         model: a trained ``nn.Module``; not modified unless ``inplace=True``.
         budget / rank / energy / keep: the rank policy (exactly one); see :mod:`factorize.ranks`.
         include / exclude: glob patterns on qualified module names.
-        method: ``"auto"`` (default: randomized SVD where the rank needed is small and provably near-optimal,
-            else the Gram eigensolve), ``"exact"`` (LAPACK SVD), ``"gram"`` or ``"randomized"`` (Halko,
+        method: ``"auto"`` (default: randomized SVD where the rank needed is small and an a-posteriori estimate
+            puts it within 1% of optimal, else the Gram eigensolve), ``"exact"`` (LAPACK SVD), ``"gram"`` or ``"randomized"`` (Halko,
             Martinsson & Tropp 2011); see :mod:`factorize.decompose`.
         multiple: round ranks to this multiple (8 or 16 suit fast kernels).
         overrides: per-pattern exceptions (``Override`` or dicts with pattern and rank/energy/keep/dense).
@@ -143,6 +147,9 @@ def compress(
         progress: show a progress bar on stderr.
         spectra: spectra from an earlier call (``result.spectra``) to reuse instead of decomposing again.
         workers: decompose this many layers concurrently (threads); results equal a serial run's.
+        speed_check: time each factored layer against its dense form on this machine (batch 1 and 32) and keep
+            dense those that are slower; under ``budget=`` the freed budget is re-allocated to the others.
+        speed_example: one sample batch to learn layer input shapes for the timing (needed for convolutions).
 
     Returns:
         :class:`CompressResult` with ``.model`` and ``.plan``.
@@ -171,8 +178,27 @@ def compress(
     )
     plan = choose_ranks(found.sites, have, policy, method=method)
     params_before = count_parameters(model)
-    target = model if inplace else copy.deepcopy(model)
+    target = copy.deepcopy(model) if (speed_check or not inplace) else model
     apply_plan(target, plan, spectra=have, inplace=True)
+    timings = []
+    if speed_check:
+        from factorize.speed import keep_fast  # speed imports evaluate, which needs this module loaded first
+
+        slow, timings = keep_fast(model, target, example=speed_example)
+        if slow:
+            policy = dataclasses.replace(policy, overrides=policy.overrides + tuple(Override(n, dense=True) for n in slow))
+            try:
+                plan = choose_ranks(found.sites, have, policy, method=method)
+            except FactorizeError as err:
+                raise FactorizeError(
+                    "the speed check kept layers dense that the budget cannot afford",
+                    [*slow.values(), str(err).splitlines()[0]],
+                    fix="raise the budget, or compress without the speed check and accept the measured slow-down",
+                ) from None
+            for name, reason in slow.items():
+                plan["sites"][name]["reason"] = reason
+        target = model if inplace else copy.deepcopy(model)
+        apply_plan(target, plan, spectra=have, inplace=True)
     return CompressResult(
         model=target,
         plan=plan,
@@ -180,6 +206,7 @@ def compress(
         spectra=have,
         params_before=params_before,
         params_after=count_parameters(target),
+        timings=[t.to_dict() for t in timings],
     )
 
 
