@@ -267,14 +267,13 @@ def _parents():
     g.add_argument("--seed", type=int, default=0, metavar="N", help="seed for random inputs and randomized SVD")
 
     policy = argparse.ArgumentParser(add_help=False)
-    g = policy.add_argument_group("rank policy (one of; default --budget 0.5)")
-    x = g.add_mutually_exclusive_group()
-    x.add_argument("--budget", type=_fraction("--budget"), metavar="F",
+    g = policy.add_argument_group("rank policy (one of --budget/--rank/--energy/--keep; default --budget 0.5)")
+    g.add_argument("--budget", type=_fraction("--budget"), metavar="F",
                    help="the selected layers together keep fraction F of their parameters, in (0, 1]")
-    x.add_argument("--rank", type=_positive_int("--rank"), metavar="N", help="the same rank N in every layer")
-    x.add_argument("--energy", type=_fraction("--energy"), metavar="T",
+    g.add_argument("--rank", type=_positive_int("--rank"), metavar="N", help="the same rank N in every layer")
+    g.add_argument("--energy", type=_fraction("--energy"), metavar="T",
                    help="per layer, the smallest rank keeping fraction T of the sum of squared singular values")
-    x.add_argument("--keep", type=_fraction("--keep"), metavar="F", help="each layer keeps fraction F of its parameters")
+    g.add_argument("--keep", type=_fraction("--keep"), metavar="F", help="each layer keeps fraction F of its parameters")
     _selection(g)
     g.add_argument("--recipe", metavar="FILE.toml", help="a TOML recipe (recipes/*.toml); options given here win")
 
@@ -291,7 +290,11 @@ def _selection(g) -> None:
     g.add_argument("--include", action="append", metavar="GLOB",
                    help="only layers whose name matches (repeatable; fnmatch rules, '*' crosses dots)")
     g.add_argument("--exclude", action="append", metavar="GLOB", help="never factor matching layers (repeatable)")
-    g.add_argument("--method", choices=("exact", "randomized"), help="SVD method (default: exact)")
+    from factorize.decompose import METHODS
+
+    g.add_argument("--method", choices=METHODS,
+                   help="how to decompose: exact (LAPACK SVD), gram (eigensolve of the smaller Gram matrix), "
+                   "randomized (Halko et al. 2011), auto (the library's choice; default)")
     g.add_argument("--multiple", type=_positive_int("--multiple"), metavar="N", help="round ranks to a multiple of N")
 
 
@@ -408,6 +411,11 @@ def _nonnegative(flag: str) -> Callable[[str], float]:
 def _load(args, ui: UI):
     from factorize.models import load_model
 
+    if ui.quiet and Path(args.model).is_dir():
+        with contextlib.suppress(ImportError):  # transformers draws its own progress bars on stderr
+            from transformers.utils import logging as hf_logging
+
+            hf_logging.disable_progress_bar()
     loaded = load_model(args.model, weights=args.weights, allow_pickle=args.allow_pickle)
     ui.note(f"model: {loaded.source} ({loaded.kind})")
     return loaded
@@ -424,6 +432,9 @@ def _policy_kwargs(args, ui: UI, *, default_budget: float | None = 0.5) -> dict:
         ui.note(f"recipe: {recipe.source}: {recipe.description}")
     chosen = {k: getattr(args, k, None) for k in ("budget", "rank", "energy", "keep")}
     chosen = {k: v for k, v in chosen.items() if v is not None}
+    if len(chosen) > 1:
+        raise FactorizeError(f"give one rank policy, not {len(chosen)} ({', '.join('--' + k for k in chosen)})",
+                             fix="keep one of --budget, --rank, --energy, --keep")
     if chosen:
         for k in ("budget", "rank", "energy", "keep"):
             kwargs.pop(k, None)
@@ -685,6 +696,7 @@ def _weights_file(loaded):
 
 
 def cmd_shrink(args, ui: UI) -> dict:
+    kwargs = _policy_kwargs(args, ui)
     loaded = _load(args, ui)
     output = _output_path(args, loaded)
     report_path = Path(args.report) if args.report else None
@@ -692,7 +704,6 @@ def cmd_shrink(args, ui: UI) -> dict:
         raise FactorizeError(f"{output}: is the input; factorize never overwrites its input",
                              fix="choose another --output")
     _check_outputs([output, report_path], args.force)
-    kwargs = _policy_kwargs(args, ui)
     if loaded.weights_only:
         if args.max_drift is not None:
             raise FactorizeError("--max-drift needs a model to run, and weights-only mode has none",
@@ -775,8 +786,8 @@ def cmd_sweep(args, ui: UI) -> dict:
     if plot_path is not None:
         _matplotlib()  # fail before any work when the plot cannot be drawn
     _check_outputs([csv_path, plot_path], args.force)
-    loaded = _load(args, ui)
     kwargs = _policy_kwargs(args, ui, default_budget=None)
+    loaded = _load(args, ui)
     for k in ("budget", "rank", "energy", "keep"):
         kwargs.pop(k, None)
     budgets = sorted(set(args.budgets), reverse=True)

@@ -132,7 +132,9 @@ def _kind_of(t: torch.Tensor, kind: str | None) -> str:
     return "logits" if t.dim() == 2 and t.shape[1] > 1 else "features"
 
 
-def output_drift(reference: Any, candidate: Any, *, kind: str | None = None) -> dict[str, float]:
+def output_drift(
+    reference: Any, candidate: Any, *, kind: str | None = None, masks: Sequence[torch.Tensor | None] | None = None
+) -> dict[str, float]:
     """How far ``candidate`` outputs are from ``reference`` outputs on the same inputs.
 
     Args:
@@ -142,6 +144,8 @@ def output_drift(reference: Any, candidate: Any, *, kind: str | None = None) -> 
         kind: ``"logits"`` (top-1 agreement and KL divergence over the last dimension), ``"scores"`` (top-1
             agreement only), ``"features"`` (neither), or None: ``"logits"`` for a 2-D output with more than
             one column, ``"features"`` otherwise.
+        masks: optional per-batch (B, T) token masks (a tokenizer's ``attention_mask``); for outputs of shape
+            (B, T, ...) only the unmasked positions count, so padding does not dilute or inflate the drift.
 
     Returns:
         ``relative_l2``: ||a - b||_2 / ||a||_2 over all outputs (Frobenius norm, a = reference);
@@ -168,12 +172,17 @@ def output_drift(reference: Any, candidate: Any, *, kind: str | None = None) -> 
     cosines: list[torch.Tensor] = []
     agree = rows = 0
     kl_sum = 0.0
-    for a, b in zip(refs, cands):
+    for i, (a, b) in enumerate(zip(refs, cands)):
         a64, b64 = a.detach().to(torch.float64), b.detach().to(torch.float64)
+        keep = _positions_mask(masks[i] if masks is not None and i < len(masks) else None, a64)  # (B, T) or None
+        if keep is not None:
+            a64, b64 = a64 * keep[..., None], b64 * keep[..., None]  # padded positions contribute nothing
         diff_sq += float(((a64 - b64) ** 2).sum())
         ref_sq += float((a64**2).sum())
         fa, fb = a64.reshape(a64.shape[0], -1), b64.reshape(b64.shape[0], -1)  # (B, features)
         cosines.append(_cosine_rows(fa, fb))
+        if kind in ("logits", "scores") and a64.dim() >= 2 and keep is not None:
+            a64, b64 = a64[keep.bool()], b64[keep.bool()]  # (tokens, C): only real positions are rows
         if kind in ("logits", "scores") and a64.dim() >= 2:
             agree += int((a64.argmax(-1) == b64.argmax(-1)).sum())
             rows += a64.numel() // a64.shape[-1]
@@ -193,6 +202,20 @@ def output_drift(reference: Any, candidate: Any, *, kind: str | None = None) -> 
         if kind == "logits":
             result["kl"] = kl_sum / rows
     return result
+
+
+def _positions_mask(mask: torch.Tensor | None, out: torch.Tensor) -> torch.Tensor | None:
+    """The (B, T) mask as float64 when it lines up with an output of shape (B, T, ...), else None."""
+    if mask is None or out.dim() < 3 or tuple(mask.shape) != tuple(out.shape[:2]):
+        return None
+    return mask.detach().cpu().to(torch.float64)
+
+
+def token_mask(batch: Any) -> torch.Tensor | None:
+    """A batch's ``attention_mask`` (tokenizer output), if it has one."""
+    if isinstance(batch, Mapping) and isinstance(batch.get("attention_mask"), torch.Tensor):
+        return batch["attention_mask"]
+    return None
 
 
 def _cosine_rows(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
@@ -259,7 +282,7 @@ def evaluate(
         bytes_before=count_bytes(original),
         bytes_after=count_bytes(compressed),
         layers=layer_reports(original, compressed, plan=plan, batch=batches[0], sites=sites),
-        drift=output_drift(ref, cand, kind=kind),
+        drift=output_drift(ref, cand, kind=kind, masks=[token_mask(b) for b in batches]),
         samples=sum(int(o.shape[0]) for o in ref),
         inputs=inputs,
         policy=dict(plan["policy"]) if plan and "policy" in plan else None,

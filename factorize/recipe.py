@@ -6,7 +6,7 @@ Keys (all optional except ``[policy]``; unknown keys are errors, so a typo never
     description = "..."             # free text, shown in reports
     include = ["glob", ...]         # only layers whose qualified name matches one of these are considered
     exclude = ["glob", ...]         # layers matching any of these are never factored
-    method = "exact"                # "exact" (LAPACK SVD) or "randomized" (Halko, Martinsson & Tropp 2011)
+    method = "exact"                # "auto", "exact" (LAPACK SVD), "gram" or "randomized" (Halko et al. 2011)
     multiple = 1                    # round ranks to a multiple of this (8 or 16 suit fast kernels)
     cost = "params"                 # what budget counts: "params" or "macs"
 

@@ -147,7 +147,7 @@ def test_evaluate_weight_error_and_accuracy_against_references(mlp) -> None:
 
     from factorize.evaluate import evaluate
 
-    result = factorize.compress(mlp, rank=5)
+    result = factorize.compress(mlp, rank=5, method="exact")  # exact SVD: Eckart-Young applies exactly
     gen = torch.Generator().manual_seed(3)
     batches = [torch.randn(16, 24, generator=gen) for _ in range(3)]
     labels = torch.randint(0, 10, (48,), generator=gen)
@@ -198,3 +198,18 @@ def test_evaluate_rejects_bad_labels_and_empty_inputs(mlp) -> None:
         evaluate(mlp, result.model, [torch.randn(8, 24)], labels=torch.tensor([1, 2, 3]), latency_repeats=0)
     with pytest.raises(FactorizeError, match="no sample inputs"):
         evaluate(mlp, result.model, [], latency_repeats=0)
+
+
+def test_output_drift_ignores_padded_positions_when_given_the_attention_mask() -> None:
+    gen = torch.Generator().manual_seed(4)
+    a = torch.randn(2, 5, 6, generator=gen)  # (B, T, C)
+    b = a + 0.1 * torch.randn(2, 5, 6, generator=gen)
+    mask = torch.tensor([[1, 1, 1, 0, 0], [1, 1, 1, 1, 1]])
+    b_junk = b.clone()
+    b_junk[0, 3:] = 1e3  # garbage at padded positions must not matter
+    masked = output_drift([a], [b_junk], masks=[mask], kind="logits")
+    real = mask.bool()
+    A, B = a[real].double().numpy(), b[real].double().numpy()  # (tokens, C) of real positions only
+    assert masked["relative_l2"] == pytest.approx(np.linalg.norm(A - B) / np.linalg.norm(A), rel=1e-9)
+    assert masked["top1_agreement"] == pytest.approx(np.mean(A.argmax(1) == B.argmax(1)))
+    assert output_drift([a], [b_junk])["relative_l2"] > 10  # unmasked, the padding dominates
