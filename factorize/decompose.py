@@ -9,7 +9,7 @@ Methods:
   number, so singular values below about sqrt(eps) * s_1 lose relative accuracy; truncation only needs the
   energies s_i^2, which keep an absolute accuracy of about eps * s_1^2 in float64. Much faster than a full
   LAPACK SVD on the CPU (one matrix product and one symmetric eigensolve instead of a bidiagonalisation).
-* ``auto``: ``randomized`` when the largest rank needed is well below min(m, n) (at most an eighth) and an
+* ``auto``: ``randomized`` when the largest rank needed is well below min(m, n) (sketch at most a sixth) and an
   a-posteriori estimate puts its error within 1% of the optimum; ``gram`` otherwise.
 * ``randomized``: the randomized range finder with power (subspace) iterations of Halko, Martinsson & Tropp,
   "Finding structure with randomness", SIAM Review 53(2), 2011 (Algorithms 4.4 and 5.1): a Gaussian sketch of
@@ -33,7 +33,7 @@ import torch
 from factorize.errors import FactorizeError
 
 METHODS = ("auto", "exact", "gram", "randomized")
-RANDOMIZED_FRACTION = 8  # auto: randomized only when the rank needed is at most min(m, n) / this
+RANDOMIZED_FRACTION = 6  # auto: randomized only when the sketch (rank + oversampling) is at most min(m, n) / this
 AUTO_TOLERANCE = 0.01  # auto: accept randomized factors only if provably within 1% of the optimal error
 
 
@@ -241,9 +241,10 @@ def _gap_estimate(kept: list[float], S: torch.Tensor, k: int) -> float:
 def _auto(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: int) -> Spectrum:
     """Randomized where the rank needed is small and its error within 1% of optimal by the estimate; else gram."""
     m, n = w.shape
-    if rank * RANDOMIZED_FRACTION > min(m, n):
+    oversample = max(oversample, rank // 2)
+    if (rank + oversample) * RANDOMIZED_FRACTION > min(m, n):
         return _gram(w)
-    spec, gap = _randomized(w, rank, max(oversample, rank // 2), max(power_iters, 2), seed)
+    spec, gap = _randomized(w, rank, oversample, max(power_iters, 2), seed)
     err2 = spec.error(spec.computed_rank) ** 2  # the randomized factors' own error (exact, from ||W||_F)
     if spec.exact or err2 == 0.0 or err2 <= (1 + AUTO_TOLERANCE) ** 2 * max(err2 - gap, 0.0):
         spec.method = "auto:randomized" if not spec.exact else spec.method
