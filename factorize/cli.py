@@ -75,9 +75,8 @@ class UI:
 
         self.json_mode, self.quiet = json_mode, quiet
         self.stdout = sys.stdout
-        width = None if self.stdout.isatty() else 120
-        self.out = Console(file=self.stdout, width=width, highlight=False)
-        self.err = Console(file=sys.stderr, stderr=True, highlight=False, width=None if sys.stderr.isatty() else 120)
+        self.out = Console(file=self.stdout, width=_width(self.stdout), highlight=False)
+        self.err = Console(file=sys.stderr, stderr=True, highlight=False, width=_width(sys.stderr))
         self.exit_code = 0
 
     @property
@@ -114,6 +113,12 @@ class UI:
         if self.json_mode and result is not None:
             self.stdout.write(json.dumps(_finite(result), allow_nan=False) + "\n")
         return self.exit_code
+
+
+def _width(stream) -> int | None:
+    """Terminal width on a terminal or when COLUMNS is set (rich reads both); 120 columns into a pipe or file."""
+    isatty = getattr(stream, "isatty", lambda: False)()
+    return None if isatty or os.environ.get("COLUMNS") else 120
 
 
 def _finite(value: Any) -> Any:
@@ -1074,16 +1079,17 @@ def _render_demo(result: dict, runs: list[dict], ui: UI) -> None:
         table.add_row(r["name"], f"{m}x{n}", f"{r['params']:,}", _opt(r["rank_90"]), _opt(r["rank_99"]),
                       str(r["break_even"]), spectrum_sketch(r["spectrum"]))
     ui.out.print(table)
-    summary = Table(title="2. shrink: mild and strong budgets, measured on the held-out digits", title_justify="left")
-    for name in ("budget", "params", "kept", "accuracy before", "accuracy after", "top-1 agree", "relative L2",
-                 "file", "reloads identically"):
+    summary = Table(title="2. shrink: mild and strong budgets, measured on the held-out digits; each saved to a "
+                    "temporary file and reloaded", title_justify="left")
+    for name in ("budget", "params", "kept", "acc. before", "acc. after", "top-1 agree", "relative L2", "file",
+                 "reload"):
         summary.add_column(name, justify="left" if name == "budget" else "right")
     for r in runs:
         rep = r["_report"]
         summary.add_row(f"{r['budget']:g}", f"{rep.params_after:,}", _pct(rep.kept_fraction),
                         _pct(rep.accuracy_before), _pct(rep.accuracy_after), _pct(rep.drift["top1_agreement"]),
                         _g4(rep.drift["relative_l2"]), f"{r['file_bytes'] / 1e3:.1f} kB",
-                        "yes" if r["reloaded_outputs_identical"] else "NO")
+                        "exact" if r["reloaded_outputs_identical"] else "DIFFERS")
     ui.out.print(summary)
     ui.out.print(f"\n3. the full report at the strongest budget ({runs[-1]['budget']:g}):")
     render_rich(runs[-1]["_report"], ui.out, caution=False)  # the caution closes the demo, once

@@ -415,3 +415,11 @@ def test_spectrum_sketch_shows_the_decay() -> None:
     # first slice: mean(10, 0.5) / 10 = 0.525 -> level round(0.525 * 8) = 4; the last slices are zeros (blank)
     assert sketch[0] == "▄" and sketch[1] == "▁" and sketch[-1] == " " and len(sketch) == 12
     assert spectrum_profile([3.0, 2.0, 1.0]) == [1.0, 2 / 3, 1 / 3]  # fewer values than the width: one each
+
+
+def test_plot_without_matplotlib_names_the_extra(monkeypatch, tmp_path) -> None:
+    monkeypatch.setitem(sys.modules, "matplotlib", None)  # makes `import matplotlib` fail
+    monkeypatch.chdir(tmp_path)
+    r = _in_process(["sweep", "-m", "factorize.default:load_default", "--plot", "s.png"])
+    assert r.rc == 2 and 'pip install "factorize[plot]"' in r.err, r
+    assert not (tmp_path / "s.png").exists()
