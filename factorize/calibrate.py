@@ -1,0 +1,469 @@
+"""Calibration: what each factorizable layer actually sees, as the second moment of its inputs.
+
+For a site with matrix view W (m x n) and inputs x_1..x_N (the rows of X, N x n), forward hooks accumulate,
+streamed over the sample batches and in float64:
+
+* ``second_moment``  C = X^T X = sum_i x_i x_i^T  (n x n)
+* ``total``          sum_i x_i                    (n,)   -- the mean, for centring and bias correction
+* ``abs_total``      sum_i |x_i|                  (n,)   -- per-channel activation magnitude (ASVD scaling)
+* ``count``          N
+
+The output error of any replacement W' on these inputs is then known without keeping X:
+||(W - W') X^T||_F^2 = trace((W - W') C (W - W')^T) (common practice; the basis of reduced-rank regression,
+Izenman 1975, and of SVD-LLM's truncation-aware whitening, Wang et al. 2024).
+
+What a "row" is depends on the kind, so that C matches the site's matrix view (see :mod:`factorize.walk`):
+
+* linear / transposed projection: the input flattened over every leading dimension (tokens, positions);
+* conv1d / conv2d: the unfolded input patches (``torch.nn.functional.unfold`` with the layer's kernel, stride,
+  padding and dilation), so rows have length in_channels * prod(kernel), the conv's matrix view;
+* embedding: the token ids; the input is one-hot, so C is diagonal and holds the token counts. Only the
+  diagonal is kept (``diagonal``), never a V x V matrix.
+
+Batches follow the batch contract of :func:`factorize.evaluate.feed` (tensor -> ``model(x)``, tuple/list ->
+``model(*x)``, dict -> ``model(**x)``). When a dict batch carries an ``attention_mask`` whose shape matches the
+leading dimensions of a layer's input (B, T), padded positions are left out: they never reach the outputs that
+matter and would only pollute the statistics.
+
+Memory: one n x n float64 matrix per site. ``per_site=True`` runs the batches once per site with only that
+site's hook installed, so only one such matrix is being filled at a time (and the forward pass stops right
+after the site where that is safe).
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Iterable, Mapping, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from typing import Any
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+from tqdm.auto import tqdm
+
+from factorize.errors import FactorizeError
+from factorize.evaluate import feed, token_mask
+from factorize.walk import Site, get_module, walk
+
+ROW_CHUNK = 16384  # rows converted to float64 at a time, so a big conv batch never doubles in memory at once
+
+
+@dataclass
+class InputStats:
+    """Streamed statistics of one site's inputs (float64, on the device the activations came from).
+
+    ``second_moment`` is None for embeddings, whose (diagonal) second moment is ``diagonal`` (token counts).
+    The ``reference_*`` and ``cross`` fields are only filled by :func:`collect_pair_stats` (sequential mode):
+    there X holds the inputs seen in the partly compressed model and X_ref those seen in the original, row by row.
+    """
+
+    name: str
+    kind: str
+    width: int  # n, the length of one input row
+    count: int = 0  # N, rows seen
+    second_moment: torch.Tensor | None = None  # (n, n) sum x x^T
+    diagonal: torch.Tensor | None = None  # (n,) embedding: token counts (the diagonal of C)
+    total: torch.Tensor | None = None  # (n,) sum x
+    abs_total: torch.Tensor | None = None  # (n,) sum |x|
+    cross: torch.Tensor | None = None  # (n, n) sum x_ref x^T (sequential mode)
+    reference_moment: torch.Tensor | None = None  # (n, n) sum x_ref x_ref^T (sequential mode)
+    reference_total: torch.Tensor | None = None  # (n,) sum x_ref (sequential mode)
+    batches: int = 0  # batches that reached this site
+
+    @property
+    def mean(self) -> torch.Tensor:
+        """Mean input row (n,)."""
+        return self.total / max(self.count, 1)
+
+    @property
+    def abs_mean(self) -> torch.Tensor:
+        """Mean absolute value per input channel (n,)."""
+        return self.abs_total / max(self.count, 1)
+
+    @property
+    def is_diagonal(self) -> bool:
+        return self.second_moment is None
+
+    def moment(self) -> torch.Tensor:
+        """C = X^T X as a dense (n, n) matrix (built from the diagonal for an embedding)."""
+        return torch.diag(self.diagonal) if self.second_moment is None else self.second_moment
+
+    def covariance(self) -> torch.Tensor:
+        """Centred second moment sum (x - mean)(x - mean)^T = C - N mean mean^T (n, n)."""
+        mu = self.mean
+        return self.moment() - self.count * torch.outer(mu, mu)
+
+    def to_dict(self) -> dict:
+        return {"name": self.name, "kind": self.kind, "width": self.width, "samples": self.count,
+                "batches": self.batches}
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# rows: each kind's input as a matrix whose rows match the site's matrix view
+
+
+def _conv_patches(module: nn.Module, x: torch.Tensor, kind: str) -> torch.Tensor:
+    """Unfolded patches (rows, in * prod(kernel)) of a conv input, in the layout of ``weight.reshape(out, -1)``."""
+    if kind == "conv1d":
+        if x.dim() == 2:
+            x = x.unsqueeze(0)  # unbatched (C, L)
+        pad = module._reversed_padding_repeated_twice  # (left, right); also covers padding="same"
+        if any(pad):
+            x = F.pad(x, pad, mode="constant" if module.padding_mode == "zeros" else module.padding_mode)
+        x4 = x.unsqueeze(2)  # (B, C, 1, L)
+        cols = F.unfold(x4, (1, module.kernel_size[0]), dilation=(1, module.dilation[0]), stride=(1, module.stride[0]))
+    else:
+        if x.dim() == 3:
+            x = x.unsqueeze(0)  # unbatched (C, H, W)
+        pad = module._reversed_padding_repeated_twice
+        if any(pad):
+            x = F.pad(x, pad, mode="constant" if module.padding_mode == "zeros" else module.padding_mode)
+        cols = F.unfold(x, module.kernel_size, dilation=module.dilation, stride=module.stride)  # (B, C*kh*kw, L)
+    return cols.transpose(1, 2).reshape(-1, cols.shape[1])  # (B*L, C*k)
+
+
+def input_rows(module: nn.Module, kind: str, x: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
+    """One site's input as rows matching its matrix view (embedding: the flat token ids).
+
+    ``mask`` (B, T) drops padded positions of linear / transposed / embedding inputs whose leading dimensions
+    are (B, T); it is ignored where the shapes do not line up (convolutions, pooled inputs).
+    """
+    if kind in ("conv1d", "conv2d"):
+        return _conv_patches(module, x, kind)
+    lead = x.shape if kind == "embedding" else x.shape[:-1]
+    if mask is not None and tuple(mask.shape) == tuple(lead):
+        keep = mask.to(x.device).bool()
+        return x[keep]  # (rows, n) or (rows,) ids
+    return x.reshape(-1) if kind == "embedding" else x.reshape(-1, x.shape[-1])
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# accumulation
+
+
+class _StopForward(Exception):
+    """Raised by a hook to end a forward pass early once everything needed was captured."""
+
+
+@dataclass
+class _State:
+    batch: int = 0  # index of the batch being fed
+    mask: torch.Tensor | None = None  # its attention mask, if any
+    stop_after: set = field(default_factory=set)  # sites whose capture ends the forward pass (early stop)
+    seen: set = field(default_factory=set)  # sites already counted for the current batch
+
+
+def _check_finite(rows: torch.Tensor, name: str, batch: int) -> None:
+    if rows.is_floating_point() and not bool(torch.isfinite(rows).all()):
+        bad = int((~torch.isfinite(rows)).sum())
+        raise FactorizeError(
+            f"layer {name}: {bad} non-finite activation value(s) (NaN or Inf) in its input on calibration batch {batch}",
+            fix="check that batch's inputs and the layers before this one (a NaN upstream spreads), or exclude the "
+            "layer with exclude=[...]",
+        )
+
+
+def _accumulate(stats: InputStats, rows: torch.Tensor) -> None:
+    """Add rows (N, n) -- or token ids (N,) for an embedding -- to ``stats``, in float64."""
+    if stats.kind == "embedding":
+        ids = rows.reshape(-1).to(torch.int64)
+        counts = torch.bincount(ids, minlength=stats.width).to(torch.float64)  # (V,)
+        if counts.shape[0] > stats.width:
+            raise FactorizeError(f"layer {stats.name}: token id {int(ids.max())} is outside the table of {stats.width}")
+        for attr in ("diagonal", "total", "abs_total"):  # one-hot rows: x x^T diagonal = x = |x| = counts
+            cur = getattr(stats, attr)
+            setattr(stats, attr, counts.clone() if cur is None else cur + counts.to(cur.device))
+        stats.count += int(ids.numel())
+        return
+    n = stats.width
+    if stats.second_moment is None:
+        dev = rows.device
+        stats.second_moment = torch.zeros(n, n, dtype=torch.float64, device=dev)
+        stats.total = torch.zeros(n, dtype=torch.float64, device=dev)
+        stats.abs_total = torch.zeros(n, dtype=torch.float64, device=dev)
+    for start in range(0, rows.shape[0], ROW_CHUNK):
+        chunk = rows[start:start + ROW_CHUNK].to(device=stats.second_moment.device, dtype=torch.float64)  # (c, n)
+        stats.second_moment.addmm_(chunk.T, chunk)  # C += X^T X
+        stats.total += chunk.sum(0)
+        stats.abs_total += chunk.abs().sum(0)
+    stats.count += int(rows.shape[0])
+
+
+def _first_tensor(args: tuple, kwargs: dict) -> torch.Tensor | None:
+    for v in (*args, *kwargs.values()):
+        if isinstance(v, torch.Tensor):
+            return v
+    return None
+
+
+def _make_hook(site: Site, stats: InputStats, state: _State, sink=None):
+    """A forward pre-hook that turns the site's input into rows and accumulates them (or hands them to ``sink``)."""
+
+    def hook(module, args, kwargs):
+        x = _first_tensor(args, kwargs)
+        if x is None:
+            return None
+        with torch.no_grad():
+            rows = input_rows(module, site.kind, x.detach(), state.mask)
+            _check_finite(rows, site.name, state.batch)
+            if sink is not None:
+                sink(rows)
+            else:
+                _accumulate(stats, rows)
+        if site.name not in state.seen:
+            state.seen.add(site.name)
+            stats.batches += 1
+        if site.name in state.stop_after:
+            raise _StopForward
+        return None
+
+    return hook
+
+
+@contextmanager
+def _eval_no_grad(model: nn.Module):
+    was_training = model.training
+    model.eval()
+    try:
+        with torch.no_grad():
+            yield
+    finally:
+        model.train(was_training)
+
+
+def _run(model: nn.Module, batches: Sequence[Any], state: _State, bar, start: int = 0) -> None:
+    """Feed every batch, turning a failure into an error that names the batch (numbered from ``start``)."""
+    for i, batch in enumerate(batches, start):
+        state.batch, state.mask = i, token_mask(batch)
+        state.seen = set()
+        try:
+            feed(model, batch)
+        except _StopForward:
+            pass
+        except FactorizeError:
+            raise
+        except Exception as err:  # noqa: BLE001 - any failure of the user's model on a batch is reported as such
+            raise FactorizeError(
+                f"calibration batch {i} did not run through the model: {type(err).__name__}: {err}",
+                fix="give batches the model accepts: a tensor is fed as model(x), a tuple or list as model(*x), a "
+                "dict (e.g. tokenizer output) as model(**x)",
+            ) from err
+        bar.update()
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# public
+
+
+def resolve_sites(model: nn.Module, sites: Iterable[Site | str] | None) -> list[Site]:
+    """Sites from :func:`factorize.walk.walk`, qualified names, or None (every site of the model)."""
+    found = walk(model)
+    if sites is None:
+        return list(found.sites)
+    by_name = found.by_name()
+    out, missing = [], []
+    for s in sites:
+        name = s.name if isinstance(s, Site) else s
+        if name in by_name:
+            out.append(by_name[name])
+        else:
+            missing.append(str(name))
+    if missing:
+        raise FactorizeError("no factorizable layer of that name in the model", missing,
+                             fix="use names from factorize.walk(model).sites")
+    return out
+
+
+def _as_batch_list(batches: Any) -> list:
+    if isinstance(batches, (torch.Tensor, Mapping)):
+        return [batches]  # one batch given on its own
+    items = list(batches)
+    if not items:
+        raise FactorizeError("no calibration batches", fix="give at least one batch of sample inputs")
+    return items
+
+
+def forward_order(model: nn.Module, sites: Sequence[Site], batch: Any) -> tuple[list[str], dict[str, int]]:
+    """The order in which a forward pass on ``batch`` first calls each site, and how often each is called.
+
+    Sites never called come last, in module order, with a count of 0.
+    """
+    order: list[str] = []
+    calls = {s.name: 0 for s in sites}
+    handles = []
+
+    def hook_for(name):
+        def hook(module, args):
+            if calls[name] == 0:
+                order.append(name)
+            calls[name] += 1
+
+        return hook
+
+    for s in sites:
+        handles.append(get_module(model, s.name).register_forward_pre_hook(hook_for(s.name)))
+    try:
+        with _eval_no_grad(model):
+            _run(model, [batch], _State(), _NoBar())
+    finally:
+        for h in handles:
+            h.remove()
+    order += [s.name for s in sites if calls[s.name] == 0]
+    return order, calls
+
+
+class _NoBar:
+    def update(self, n: int = 1) -> None:
+        pass
+
+    def close(self) -> None:
+        pass
+
+
+def collect_stats(
+    model: nn.Module,
+    sites: Iterable[Site | str] | None,
+    batches: Iterable[Any],
+    *,
+    progress: bool = False,
+    per_site: bool = False,
+) -> dict[str, InputStats]:
+    """Input second moment of every site, streamed over the calibration batches.
+
+    Args:
+        model: the model to run (not modified; it runs in eval mode under ``torch.no_grad()``, and its training
+            flag is restored).
+        sites: :class:`~factorize.walk.Site` objects, qualified names, or None for every site.
+        batches: sample-input batches under the batch contract; iterated once (``per_site=False``) or once per
+            site, so a generator is materialised into a list first.
+        progress: a progress bar on stderr.
+        per_site: collect one site at a time (one n x n matrix held while collecting, one pass per site) instead
+            of all sites in one pass.
+
+    Returns:
+        name -> :class:`InputStats`, in site order. A site the batches never reach has ``count == 0``.
+
+    Raises:
+        FactorizeError: a batch fails in the model (its index and the error are named), or non-finite
+            activations reach a site (the layer is named).
+
+    Warns:
+        When a site saw fewer rows than its input width: its second moment is then singular and the
+        activation-aware decomposition adds a ridge (see :mod:`factorize.aware`).
+    """
+    site_list = resolve_sites(model, sites)
+    batch_list = _as_batch_list(batches)
+    stats = {s.name: InputStats(s.name, s.kind, s.shape[1]) for s in site_list}
+    if per_site:
+        _, calls = forward_order(model, site_list, batch_list[0])
+        once = all(c == 1 for c in calls.values())
+        bar = tqdm(total=len(batch_list) * len(site_list), desc="calibrate", unit="batch", disable=not progress,
+                   leave=False)
+        try:
+            for s in site_list:
+                _collect(model, [s], batch_list, stats, bar, stop_early=once)
+        finally:
+            bar.close()
+    else:
+        bar = tqdm(total=len(batch_list), desc="calibrate", unit="batch", disable=not progress, leave=False)
+        try:
+            _collect(model, site_list, batch_list, stats, bar, stop_early=False)
+        finally:
+            bar.close()
+    _warn_few_samples(stats.values())
+    return stats
+
+
+def _collect(model, sites, batches, stats, bar, *, stop_early: bool) -> None:
+    state = _State(stop_after={s.name for s in sites} if stop_early and len(sites) == 1 else set())
+    handles = [
+        get_module(model, s.name).register_forward_pre_hook(_make_hook(s, stats[s.name], state), with_kwargs=True)
+        for s in sites
+    ]
+    try:
+        with _eval_no_grad(model):
+            _run(model, batches, state, bar)
+    finally:
+        for h in handles:
+            h.remove()
+
+
+def _warn_few_samples(stats: Iterable[InputStats]) -> None:
+    few = [f"{s.name}: {s.count} samples for input width {s.width}" for s in stats
+           if 0 < s.count < s.width and s.kind != "embedding"]
+    if few:
+        warnings.warn(
+            "too few calibration samples for some layers; their input second moment is singular, so the "
+            "activation-aware decomposition adds a ridge there (more sample inputs fix this):\n  "
+            + "\n  ".join(few),
+            stacklevel=3,
+        )
+
+
+def collect_pair_stats(
+    reference: nn.Module,
+    current: nn.Module,
+    site: Site,
+    batches: Sequence[Any],
+    *,
+    progress: bool = False,
+    stop_early: bool = True,
+) -> InputStats:
+    """Statistics of one site's inputs in two models fed the same batches (sequential mode).
+
+    ``current`` is the partly compressed model, ``reference`` the original; rows line up one to one (same
+    batch, same positions). Fills ``second_moment``/``total``/``abs_total`` from ``current``'s inputs X, and
+    ``reference_moment``/``reference_total``/``cross`` (sum x_ref x^T) from the pairs, which is what the
+    sequential refit needs to map the compressed model's inputs onto the original's outputs.
+    ``stop_early`` ends each forward pass once the site has run (safe only when it runs once per pass).
+    """
+    if site.kind == "embedding":
+        raise FactorizeError(f"{site.name}: sequential refit is not defined for embeddings (their input is token "
+                             "ids, unchanged by compression)", fix="compress embeddings without sequential=")
+    stats = InputStats(site.name, site.kind, site.shape[1])
+    ref_stats = InputStats(site.name, site.kind, site.shape[1])
+    state = _State(stop_after={site.name} if stop_early else set())
+    ref_rows: list[torch.Tensor] = []
+    cur_rows: list[torch.Tensor] = []
+    h_ref = get_module(reference, site.name).register_forward_pre_hook(
+        _make_hook(site, ref_stats, state, sink=ref_rows.append), with_kwargs=True)
+    h_cur = get_module(current, site.name).register_forward_pre_hook(
+        _make_hook(site, stats, state, sink=cur_rows.append), with_kwargs=True)
+    bar = tqdm(total=len(batches), desc=f"calibrate {site.name}", unit="batch", disable=not progress, leave=False)
+    try:
+        with _eval_no_grad(reference), _eval_no_grad(current):
+            for i, batch in enumerate(batches):
+                ref_rows.clear(), cur_rows.clear()
+                _run(reference, [batch], state, _NoBar(), start=i)
+                _run(current, [batch], state, _NoBar(), start=i)
+                _accumulate_pair(stats, ref_stats, torch.cat(ref_rows) if ref_rows else None,
+                                 torch.cat(cur_rows) if cur_rows else None)
+                bar.update()
+    finally:
+        h_ref.remove(), h_cur.remove()
+        bar.close()
+    stats.reference_moment, stats.reference_total = ref_stats.second_moment, ref_stats.total
+    stats.batches = len(batches)
+    return stats
+
+
+def _accumulate_pair(stats: InputStats, ref_stats: InputStats, xr: torch.Tensor | None, x: torch.Tensor | None) -> None:
+    if xr is None and x is None:
+        return
+    if xr is None or x is None or xr.shape != x.shape:
+        raise FactorizeError(
+            f"layer {stats.name}: the original and the partly compressed model fed it different inputs "
+            f"({None if xr is None else tuple(xr.shape)} vs {None if x is None else tuple(x.shape)})",
+            fix="sequential mode needs a model whose layers see the same positions whatever the weights; "
+            "compress without sequential=",
+        )
+    _accumulate(stats, x)
+    _accumulate(ref_stats, xr)
+    if stats.cross is None:
+        stats.cross = torch.zeros(stats.width, stats.width, dtype=torch.float64, device=stats.second_moment.device)
+    for start in range(0, x.shape[0], ROW_CHUNK):
+        a = xr[start:start + ROW_CHUNK].to(device=stats.cross.device, dtype=torch.float64)  # (c, n)
+        b = x[start:start + ROW_CHUNK].to(device=stats.cross.device, dtype=torch.float64)  # (c, n)
+        stats.cross.addmm_(a.T, b)  # sum x_ref x^T

@@ -1,0 +1,148 @@
+"""Calibration statistics: each site's input second moment, checked against direct computation."""
+
+from __future__ import annotations
+
+import copy
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+from factorize.calibrate import collect_pair_stats, collect_stats, forward_order
+from factorize.errors import FactorizeError
+from factorize.walk import matrix_of, walk
+
+from conftest import tiny_bert, tiny_gpt2
+
+pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")  # tiny inputs on purpose
+
+
+def _np(t: torch.Tensor) -> np.ndarray:
+    return t.detach().to(torch.float64).cpu().numpy()
+
+
+def test_linear_second_moment_matches_numpy(mlp):
+    torch.manual_seed(1)
+    x = torch.randn(50, 24)
+    stats = collect_stats(mlp, None, [x[:20], x[20:35], x[35:]])  # streamed over three batches
+    h1 = torch.relu(mlp.fc1(x)).detach()
+    h2 = torch.relu(mlp.fc2(h1)).detach()
+    # reference: X^T X computed directly in numpy float64 (definition of the second moment)
+    for name, inp in (("fc1", x), ("fc2", h1), ("head", h2)):
+        X = _np(inp)
+        np.testing.assert_allclose(_np(stats[name].second_moment), X.T @ X, rtol=1e-10, atol=1e-9)
+        np.testing.assert_allclose(_np(stats[name].mean), X.mean(0), rtol=1e-10, atol=1e-12)
+        np.testing.assert_allclose(_np(stats[name].abs_mean), np.abs(X).mean(0), rtol=1e-10, atol=1e-12)
+        assert stats[name].count == 50 and stats[name].batches == 3
+
+
+def test_per_site_collection_equals_one_pass(mlp):
+    torch.manual_seed(2)
+    batches = [torch.randn(16, 24) for _ in range(3)]
+    a = collect_stats(mlp, None, batches)
+    b = collect_stats(mlp, ["fc2", "head"], iter(batches), per_site=True)  # a generator is fine too
+    assert list(b) == ["fc2", "head"]
+    for name in b:
+        torch.testing.assert_close(a[name].second_moment, b[name].second_moment, rtol=1e-12, atol=1e-10)
+        assert a[name].count == b[name].count
+
+
+@pytest.mark.parametrize("padding_mode", ["zeros", "reflect"])
+def test_conv_patches_reproduce_the_convolution(cnn, padding_mode):
+    # A conv's output at every position is its matrix view times the unfolded input patch (im2col; common
+    # practice), so trace(W C W^T) must equal the squared norm of (conv output - bias) over all positions.
+    model = copy.deepcopy(cnn)
+    model.c1.padding_mode = padding_mode
+    torch.manual_seed(3)
+    x = torch.randn(4, 3, 16, 14)
+    stats = collect_stats(model, ["c1", "c2", "c3"], [x[:2], x[2:]])
+    outs = {}
+    hooks = [getattr(model, n).register_forward_hook(lambda m, i, o, n=n: outs.setdefault(n, o.detach()))
+             for n in ("c1", "c2", "c3")]
+    with torch.no_grad():
+        model(x)
+    for h in hooks:
+        h.remove()
+    for name in ("c1", "c2", "c3"):
+        conv = getattr(model, name)
+        W = matrix_of(conv, "conv2d" if name != "c3" else "conv1d").detach().double()
+        y = outs[name].double()
+        if conv.bias is not None:
+            y = y - conv.bias.detach().double().reshape(1, -1, *([1] * (y.dim() - 2)))
+        C = stats[name].second_moment
+        assert stats[name].width == W.shape[1]
+        assert stats[name].count == y.shape[0] * int(np.prod(y.shape[2:]))  # one row per output position
+        torch.testing.assert_close(torch.trace(W @ C @ W.T), (y**2).sum(), rtol=1e-6, atol=1e-6)
+        # and position by position: the patch mean maps to the mean output
+        torch.testing.assert_close(W @ stats[name].mean, y.transpose(0, 1).reshape(y.shape[1], -1).mean(1),
+                                   rtol=1e-5, atol=1e-6)  # conv output is float32
+
+
+def test_conv_same_padding():
+    torch.manual_seed(4)
+    conv = nn.Sequential(nn.Conv1d(3, 5, 4, padding="same", dilation=2))
+    x = torch.randn(2, 3, 10)
+    stats = collect_stats(conv, None, [x])
+    W = matrix_of(conv[0], "conv1d").detach().double()
+    y = (conv(x).detach().double() - conv[0].bias.detach().double()[None, :, None])
+    torch.testing.assert_close(torch.trace(W @ stats["0"].second_moment @ W.T), (y**2).sum(), rtol=1e-9, atol=1e-6)
+
+
+def test_embedding_counts_and_attention_mask(tied_lm):
+    model = tiny_bert()
+    ids = torch.tensor([[1, 5, 5, 7, 0, 0], [3, 5, 9, 2, 2, 4]])
+    mask = torch.tensor([[1, 1, 1, 1, 0, 0], [1, 1, 1, 1, 1, 1]])
+    stats = collect_stats(model, ["embeddings.word_embeddings", "encoder.layer.0.attention.self.query"],
+                          [{"input_ids": ids, "attention_mask": mask}])
+    emb = stats["embeddings.word_embeddings"]
+    # reference: numpy bincount of the unmasked ids (one-hot inputs: X^T X is diagonal with the counts)
+    expected = np.bincount(ids[mask.bool()].numpy(), minlength=64)
+    np.testing.assert_array_equal(_np(emb.diagonal), expected)
+    assert emb.second_moment is None and emb.count == int(mask.sum())
+    # padded positions are left out of the linear layers too
+    assert stats["encoder.layer.0.attention.self.query"].count == int(mask.sum())
+
+
+def test_transposed_projection_rows():
+    model = tiny_gpt2()
+    sites = [s for s in walk(model).sites if s.kind == "transposed"]
+    assert sites
+    ids = torch.randint(0, 64, (2, 7))
+    stats = collect_stats(model, sites[:2], [ids])
+    for s in sites[:2]:
+        assert stats[s.name].count == 14 and stats[s.name].width == s.shape[1]
+
+
+def test_failing_batch_is_named(mlp):
+    with pytest.raises(FactorizeError, match="calibration batch 1 did not run"):
+        collect_stats(mlp, None, [torch.randn(4, 24), torch.randn(4, 23)])
+
+
+def test_non_finite_activation_names_the_layer(mlp):
+    model = copy.deepcopy(mlp)
+    with torch.no_grad():
+        model.fc2.weight[0, 0] = float("inf")
+    x = torch.ones(3, 24)
+    with pytest.raises(FactorizeError, match="layer head: .*non-finite.*batch 0"):
+        collect_stats(model, None, [x])
+
+
+def test_too_few_samples_warns(mlp):
+    with pytest.warns(UserWarning, match="too few calibration samples"):
+        stats = collect_stats(mlp, ["fc2"], [torch.randn(10, 24)])
+    assert stats["fc2"].count == 10
+
+
+def test_forward_order_and_pair_stats(mlp):
+    torch.manual_seed(5)
+    sites = walk(mlp).sites
+    order, calls = forward_order(mlp, sites, torch.randn(2, 24))
+    assert order == ["fc1", "fc2", "head"] and set(calls.values()) == {1}
+    batches = [torch.randn(8, 24), torch.randn(8, 24)]
+    # with two identical models, cross = reference moment = own moment
+    pair = collect_pair_stats(mlp, copy.deepcopy(mlp), sites[1], batches)
+    single = collect_stats(mlp, ["fc2"], batches)["fc2"]
+    for t in (pair.second_moment, pair.reference_moment, pair.cross):
+        torch.testing.assert_close(t, single.second_moment, rtol=1e-12, atol=1e-10)
+    assert pair.count == 16
