@@ -460,6 +460,8 @@ def _sample_inputs(args, loaded, ui: UI):
 
     if args.batch_size < 1:
         raise FactorizeError(f"--batch-size must be >= 1, got {args.batch_size}", fix="e.g. --batch-size 32")
+    if args.max_samples is not None and args.max_samples < 1:
+        raise FactorizeError(f"--max-samples must be >= 1, got {args.max_samples}", fix="e.g. --max-samples 256")
     if args.inputs and args.random_inputs:
         raise FactorizeError("--inputs and --random-inputs exclude each other", fix="give one of them")
     if args.inputs:
@@ -753,9 +755,16 @@ def _shrink_model(args, loaded, output: Path, kwargs: dict, ui: UI):
     return report, result.plan
 
 
+def _no_inputs_in_weights_only(args) -> None:
+    if getattr(args, "inputs", None) or getattr(args, "random_inputs", None):
+        raise FactorizeError("sample inputs need a model to run, and weights-only mode (a bare safetensors file) has none",
+                             fix="drop --inputs/--random-inputs, or pass --model package.module:callable --weights FILE")
+
+
 def _shrink_weights_only(args, loaded, output: Path, kwargs: dict, ui: UI):
     from factorize.checkpoint import shrink_checkpoint
 
+    _no_inputs_in_weights_only(args)
     kwargs = {k: v for k, v in kwargs.items() if k != "cost"}
     with _weights_file(loaded) as src:
         done = shrink_checkpoint(src, output, force=args.force, progress=ui.progress, **kwargs)
@@ -848,6 +857,7 @@ def _sweep_model(args, loaded, budgets, kwargs, ui):
 def _sweep_weights_only(args, loaded, budgets, kwargs, ui):
     from tqdm.auto import tqdm
 
+    _no_inputs_in_weights_only(args)
     from factorize.checkpoint import select
     from factorize.decompose import decompose
     from factorize.io import open_checkpoint
