@@ -15,6 +15,7 @@ import io as _io
 import json
 import math
 import os
+import shutil
 import sys
 import tempfile
 from collections.abc import Callable, Sequence
@@ -522,16 +523,21 @@ def _output_path(args, loaded) -> Path:
     base = Path(base)
     if base.is_dir():
         return base.parent / (base.name + OUTPUT_SUFFIX)
-    name = base.name.removesuffix(".safetensors.index.json").removesuffix(base.suffix)
-    return base.with_name(name + OUTPUT_SUFFIX)
+    if _sharded(base):  # a sharded checkpoint gives a directory of shards
+        return base.parent.with_name(base.parent.name + OUTPUT_SUFFIX.removesuffix(".safetensors"))
+    return base.with_name(base.name.removesuffix(base.suffix) + OUTPUT_SUFFIX)
 
 
-def _check_outputs(paths: Sequence[Path | None], force: bool) -> None:
+def _sharded(path: Path | None) -> bool:
+    return path is not None and path.name.endswith(".safetensors.index.json")
+
+
+def _check_outputs(paths: Sequence[Path | None], force: bool, *, directory: Path | None = None) -> None:
     from factorize.io import check_output_path
 
     for p in paths:
         if p is not None:
-            check_output_path(p, force=force)
+            check_output_path(p, force=force, directory=p == directory)
 
 
 def _write_text(path: Path, text: str, force: bool) -> None:
@@ -710,7 +716,7 @@ def cmd_shrink(args, ui: UI) -> dict:
     if loaded.path is not None and output.resolve() == Path(loaded.path).resolve():
         raise FactorizeError(f"{output}: is the input; factorize never overwrites its input",
                              fix="choose another --output")
-    _check_outputs([output, report_path], args.force)
+    _check_outputs([output, report_path], args.force, directory=output if _sharded(loaded.path) else None)
     if loaded.weights_only:
         if args.max_drift is not None:
             raise FactorizeError("--max-drift needs a model to run, and weights-only mode has none",
@@ -719,7 +725,11 @@ def cmd_shrink(args, ui: UI) -> dict:
     else:
         report, plan = _shrink_model(args, loaded, output, kwargs, ui)
     if report_path is not None:
-        _write_text(report_path, report.to_markdown(), args.force)
+        try:
+            _write_text(report_path, report.to_markdown(), args.force)
+        except BaseException:  # no checkpoint without the report that was asked for
+            shutil.rmtree(output, ignore_errors=True) if output.is_dir() else output.unlink(missing_ok=True)
+            raise
     if not ui.json_mode:
         from factorize.report import render_rich
 

@@ -7,8 +7,9 @@
   into it strictly, listing every missing, unexpected and mis-shaped key at once; a factorize checkpoint (one
   whose metadata holds a plan) is loaded through :func:`factorize.io.load`, factored structure and all.
 * a directory holding a transformers model (``config.json`` plus ``*.safetensors``); needs the ``hf`` extra.
-* a bare ``.safetensors`` file -- weights-only mode (:mod:`factorize.checkpoint`): no architecture, so its 2-D
-  tensors are factored and reported by weight error only.
+* a bare ``.safetensors`` file, or the ``*.safetensors.index.json`` of a sharded checkpoint -- weights-only mode
+  (:mod:`factorize.checkpoint`): no architecture, so its 2-D tensors are factored and reported by weight error
+  only.
 * pickled checkpoints (``.pt``, ``.pth``, ``.bin``, ``.ckpt``, ``.pkl``) are refused: unpickling can run arbitrary
   code. ``allow_pickle=True`` (``--allow-pickle``) loads them with ``torch.load(weights_only=True)``, which
   restricts unpickling to tensors and plain containers.
@@ -46,7 +47,7 @@ class LoadedModel:
     model: nn.Module | None = None  # None in weights-only mode
     path: Path | None = None  # the file or directory behind it (for default output names)
     tokenizer: Any = None  # a transformers tokenizer when the directory has one
-    tensors: dict[str, torch.Tensor] | None = None  # weights-only mode: the tensors of the file
+    tensors: dict[str, torch.Tensor] | None = None  # opted-in pickle: its tensors (safetensors are streamed)
     build: Callable[[], nn.Module] | None = None  # a fresh, untrained instance of the architecture
 
     @property
@@ -78,9 +79,11 @@ def load_model(spec: str, *, weights: str | os.PathLike | None = None, allow_pic
     if path.suffix.lower() in PICKLE_SUFFIXES:
         tensors = _load_pickle(path, allow_pickle)
         return LoadedModel(source=spec, kind="pickle", path=path, tensors=_tensors_only(tensors, path))
-    if path.suffix.lower() == ".safetensors":
-        check_safetensors(path)
-        return LoadedModel(source=spec, kind="weights", path=path, tensors=read_safetensors(path))
+    if path.suffix.lower() == ".safetensors" or path.name.endswith(".safetensors.index.json"):
+        from factorize.io import open_checkpoint
+
+        open_checkpoint(path)  # every header checked (and every shard of an index); tensors are streamed later
+        return LoadedModel(source=spec, kind="weights", path=path)
     raise FactorizeError(
         f"{path}: not a model factorize can read (suffix {path.suffix or 'none'!r})",
         fix="pass a 'package.module:callable', a transformers directory, or a .safetensors file",
