@@ -96,6 +96,11 @@ def _build_work(d: Path) -> None:
     np.savez(d / "x.npz", x=x, labels=y)
     np.save(d / "wide.npy", gen.normal(size=(8, 30)).astype(np.float32))
     (d / "taken.safetensors").write_bytes(b"someone else's file")
+    (d / "shards").mkdir()  # a sharded checkpoint: two files and an index (weight_map), as transformers writes them
+    save_file({"fc1.weight": state["fc1.weight"], "fc1.bias": state["fc1.bias"]}, str(d / "shards" / "m-1.safetensors"))
+    save_file({k: v for k, v in state.items() if not k.startswith("fc1.")}, str(d / "shards" / "m-2.safetensors"))
+    index = {k: "m-1.safetensors" if k.startswith("fc1.") else "m-2.safetensors" for k in state}
+    (d / "shards" / "m.safetensors.index.json").write_text(json.dumps({"metadata": {}, "weight_map": index}))
     (d / "afile").write_text("a regular file, not a directory")
 
 
@@ -146,6 +151,7 @@ IN_PROCESS: dict[str, list[list[str]]] = {
     "human": [["shrink", "-m", "cli_models:build", "-w", "mlp.safetensors", "-i", "x.npz", "--rank", "6",
                "--recipe", "mlp-classifier.toml", "-o", "human.safetensors", "--repeats", "0", "-q"],
               ["shrink", "-m", "cli_models:build", "-w", "mlp.safetensors", "-o", "human.safetensors", "-q"]],
+    "sharded": [["shrink", "-m", "shards/m.safetensors.index.json", "--rank", "4", "--exclude", "head", "-q", "--json"]],
     "bert": [["shrink", "-m", "bert", "-i", "sentences.txt", "--recipe", "bert-encoder.toml", "-o", "bert.safetensors",
               "--repeats", "0", "-q", "--json"]],
     # bad input: exit 2, one message, no traceback, nothing written
@@ -276,6 +282,15 @@ def test_weights_only_shrink_loads_into_the_architecture(world) -> None:
     c = compare.json()["report"]
     assert c["drift"]["relative_l2"] > 0 and c["params_after"] < c["params_before"]
     assert "random inputs say little" in compare.err  # the visible warning
+
+
+def test_sharded_checkpoint_gives_a_directory_of_shards(world) -> None:
+    r = _one(world, "sharded")
+    assert r.rc == 0, r
+    out = world["dir"] / "shards.factorized"  # default: beside the input directory
+    assert r.json()["output"] == str(Path("shards.factorized"))
+    assert sorted(p.name for p in out.iterdir()) == ["m-1.safetensors", "m-2.safetensors", "m.safetensors.index.json"]
+    assert {layer["name"]: layer["rank"] for layer in r.json()["report"]["layers"]} == {"fc1": 4, "fc2": 4}
 
 
 def test_human_output_has_tables_and_the_caution(world) -> None:
