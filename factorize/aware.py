@@ -1,0 +1,346 @@
+"""Activation-aware decomposition: factors that keep what a layer outputs on real inputs, not its weights.
+
+Plain truncated SVD minimises ||W - W'||_F, the error of the weights. What matters is the error of the layer's
+outputs on the inputs it sees: for inputs X (rows x_i, second moment C = X^T X, see :mod:`factorize.calibrate`)
+
+    ||(W - W') X^T||_F^2 = trace((W - W') C (W - W')^T).
+
+**Whitening** (``method="whiten"``). Write C = L L^T (L a Cholesky factor, or the symmetric square root C^{1/2};
+both give the same answer). The rank-r W' minimising the output error is
+
+    W' = U_r U_r^T W,   U_r = the top r left singular vectors of W L,
+
+the reduced-rank regression solution (Izenman, "Reduced-rank regression for the multivariate linear model", J.
+Multivariate Analysis 1975): ||(W - W')X^T||_F = ||W L - W' L||_F, and by Eckart-Young the best rank-r
+approximation of W L is U_r U_r^T (W L). The same construction is SVD-LLM's truncation-aware whitening (Wang et
+al., "SVD-LLM", 2024), where the truncation loss equals the discarded whitened singular values: the predicted
+output error at rank r is sqrt(sum_{i>r} s_i^2) with s_i the singular values of W L, and the total output
+energy is ||W L||_F^2 = trace(W C W^T). No inverse of C is needed, so this works when C is singular.
+
+**Ridge.** C is factored as C + lambda I with lambda = ``ridge`` * mean(diag C), ridge = 1e-6 by default: a
+numerical safeguard that makes the Cholesky factor exist and changes the objective by lambda ||W - W'||_F^2,
+far below 1% of the output error. When a layer saw fewer samples than its input width, C is singular for a
+statistical reason and ridge = 1e-2 is used instead (a judgement call of this project, no published value): the
+directions the samples never explored then fall back to weight-space error instead of being free. If the
+Cholesky factorisation still fails, the symmetric square root from an eigendecomposition (eigenvalues clipped
+at 0) is used.
+
+**Diagonal scaling** (``method="scale"``, Yuan et al., "ASVD: activation-aware singular value decomposition",
+2023): scale input column j by s_j = (mean |x_j|)^alpha (alpha = 0.5 by default), take the SVD of W diag(s),
+truncate, and unscale. Since W diag(s) = U S V^T, the unscaled truncation U_r S_r V_r^T diag(s)^{-1} equals
+U_r U_r^T W: again a projection of W, with U from the scaled matrix. It needs only per-channel magnitudes to
+choose U; its output error at every rank is still computed exactly from C: with M = W C W^T,
+||(W - U_r U_r^T W) X^T||_F^2 = trace(M) - sum_{i<=r} u_i^T M u_i.
+
+**Centring and bias correction.** A layer with a bias can absorb the mean of the error: with mean input mu and
+b' = b + (W - W') mu, the output error is that of the centred inputs, so the same construction is applied to
+the covariance C - N mu mu^T. This never does worse than the uncentred solution (it has one more free vector);
+the correction is the "bias correction" used after quantization (Nagel et al., "Data-free quantization through
+weight equalization and bias correction", ICCV 2019 -- cited from memory).
+
+**Sequential refit** (``stats.cross`` set, see :func:`factorize.calibrate.collect_pair_stats`): when the inputs X
+now come from a partly compressed model while the targets are the original layer's outputs on the original
+inputs X_ref, the rank-r W' minimising ||W X_ref^T - W' X^T||_F is reduced-rank regression with a least-squares
+step first (Izenman 1975): W_ls = W C_rx (C + lambda I)^{-1} with C_rx = X_ref^T X, then W' = U_r U_r^T W_ls
+with U from W_ls L. The least-squares residual (no rank can remove it) is added to the predicted error.
+
+Factors: ``factors(r)`` returns B = U_r diag(sqrt(a)) and A = diag(1/sqrt(a)) U_r^T W (a_i = ||u_i^T W||), so
+B @ A = U_r U_r^T W exactly and each rank-one term is split evenly between the two factors by weight norm.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+from torch import nn
+from tqdm.auto import tqdm
+
+from factorize.calibrate import InputStats
+from factorize.decompose import Spectrum, compute_dtype_for, decompose
+from factorize.errors import FactorizeError
+from factorize.walk import Site, get_module, matrix_of
+
+AWARE_METHODS = ("whiten", "scale")
+DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
+FEW_SAMPLES_RIDGE = 1e-2  # relative ridge when a layer saw fewer samples than its input width (a judgement call)
+REFIT_RIDGE = 1e-3  # relative ridge of the sequential least-squares step
+DEFAULT_ALPHA = 0.5  # ASVD's scaling exponent (Yuan et al. 2023)
+
+
+@dataclass
+class AwareSpectrum(Spectrum):
+    """A :class:`~factorize.decompose.Spectrum` whose errors are output errors on the calibration inputs.
+
+    ``U`` (m x k) are the kept output directions, ``S`` the singular values of the whitened (or scaled) matrix,
+    and ``Vh`` = diag(1/S) U^T W_target, so ``U_r diag(S_r) Vh_r = U_r U_r^T W_target`` as for any spectrum.
+    ``energy[i]`` is the output energy (squared Frobenius error on the calibration inputs) that direction i
+    removes; ``total_energy`` is the output energy of the layer, trace(W C W^T), plus ``residual`` for a refit.
+    """
+
+    energy: np.ndarray | None = None  # (k,) output energy per direction (whiten: S^2; scale: u_i^T M u_i)
+    residual: float = 0.0  # output energy no rank removes (sequential refit's least-squares residual)
+    mean_shift: torch.Tensor | None = None  # (m,) W mu_ref, for the bias correction (None: no correction)
+    rows_mean: torch.Tensor | None = None  # (k,) (U^T W_target) mu, for the bias correction
+    ridge: float = 0.0  # absolute ridge lambda added to C
+    samples: int = 0  # calibration rows behind C
+
+    def energies(self) -> np.ndarray:
+        return self.energy if self.energy is not None else super().energies()
+
+    def factors(self, rank: int) -> tuple[torch.Tensor, torch.Tensor]:
+        """B (m x r), A (r x n) with B @ A = U_r U_r^T W_target, balanced by the norms of U_r^T W_target."""
+        if not 1 <= rank <= self.computed_rank:
+            raise FactorizeError(f"rank {rank} is outside 1..{self.computed_rank} for this spectrum")
+        rows = self.S[:rank, None] * self.Vh[:rank]  # (r, n) = U_r^T W_target
+        norms = torch.linalg.vector_norm(rows, dim=1)  # (r,)
+        root = torch.where(norms > 0, norms, torch.ones_like(norms)).sqrt()
+        return self.U[:, :rank] * root, rows / root[:, None]  # (m, r), (r, n)
+
+    def bias_shift(self, rank: int) -> torch.Tensor | None:
+        """Vector to add to the layer's bias at ``rank``: W mu_ref - W'_r mu (None when not centred)."""
+        if self.mean_shift is None or self.rows_mean is None:
+            return None
+        return self.mean_shift - self.U[:, :rank] @ self.rows_mean[:rank]  # (m,)
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# second-moment algebra
+
+
+def _ridge_for(stats: InputStats, C_diag: torch.Tensor, ridge: float | None) -> float:
+    rel = ridge if ridge is not None else (FEW_SAMPLES_RIDGE if stats.count < stats.width else DEFAULT_RIDGE)
+    mean_diag = float(C_diag.mean()) if C_diag.numel() else 0.0
+    return rel * mean_diag if mean_diag > 0 else rel
+
+
+def _sqrt_factor(C: torch.Tensor, lam: float) -> torch.Tensor:
+    """L with L L^T = C + lam I: Cholesky, or the symmetric square root when Cholesky fails (Golub & Van Loan
+    sec. 4.2 and 8.1)."""
+    n = C.shape[0]
+    eye = torch.eye(n, dtype=C.dtype, device=C.device)
+    L, info = torch.linalg.cholesky_ex(C + lam * eye)
+    if int(info) == 0:
+        return L
+    evals, evecs = torch.linalg.eigh(C + lam * eye)  # symmetric: C = V diag(e) V^T
+    return evecs * evals.clamp_min(0).sqrt()  # V diag(sqrt(e)); (V e^1/2)(V e^1/2)^T = C
+
+
+def _moments(stats: InputStats, center: bool):
+    """(C, mu) of the inputs, centred when asked (C then the covariance sum (x - mu)(x - mu)^T)."""
+    mu = stats.mean
+    if stats.is_diagonal:
+        return None, mu  # embedding: handled by column scaling
+    C = stats.covariance() if center else stats.second_moment
+    return C, mu
+
+
+def _check_stats(W: torch.Tensor, stats: InputStats, name: str) -> None:
+    if not isinstance(stats, InputStats):
+        raise FactorizeError(f"{name}: expected InputStats from factorize.calibrate.collect_stats, got "
+                             f"{type(stats).__name__}")
+    if stats.width != W.shape[1]:
+        raise FactorizeError(
+            f"{name}: the calibration statistics are for inputs of width {stats.width}, the weight has {W.shape[1]} "
+            "input columns", fix="collect statistics on the same model and layer")
+    if stats.count <= 0:
+        raise FactorizeError(f"{name}: the calibration batches never reached this layer (0 samples)",
+                             fix="give inputs that run through it, or exclude it")
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# the decomposition
+
+
+def decompose_aware(
+    W: torch.Tensor,
+    stats: InputStats,
+    *,
+    method: str = "whiten",
+    alpha: float = DEFAULT_ALPHA,
+    center: bool = False,
+    ridge: float | None = None,
+    refit_ridge: float = REFIT_RIDGE,
+    solver: str = "gram",
+    rank: int | None = None,
+    seed: int = 0,
+    precision: str | None = None,
+    name: str = "matrix",
+) -> AwareSpectrum:
+    """Activation-aware spectrum of a weight's matrix view W (m x n) given its input statistics.
+
+    Args:
+        W: the weight's matrix view (out x in); not modified.
+        stats: :class:`~factorize.calibrate.InputStats` of the layer's inputs (with ``cross`` set, the
+            sequential refit is used).
+        method: ``"whiten"`` (reduced-rank regression / SVD-LLM) or ``"scale"`` (ASVD diagonal scaling).
+        alpha: ASVD's exponent for ``"scale"``.
+        center: optimise the error of centred inputs, to be paired with the bias correction
+            (:meth:`AwareSpectrum.bias_shift`); only for layers with a bias.
+        ridge: relative ridge on C (default: 1e-6, or 1e-2 when the layer saw fewer samples than its width).
+        refit_ridge: relative ridge of the sequential least-squares step.
+        solver: SVD algorithm of :func:`factorize.decompose.decompose` on the whitened matrix (``"gram"``,
+            ``"exact"``, ``"randomized"`` or ``"auto"``; the last two compute only ``rank`` triplets).
+        rank: how many triplets a partial solver must compute.
+        seed / precision: as for :func:`factorize.decompose.decompose`.
+        name: the layer's name, for messages.
+
+    Returns:
+        An :class:`AwareSpectrum`; ``errors()`` are output errors ||(W - W'_r) X^T||_F on the calibration inputs.
+    """
+    if method not in AWARE_METHODS:
+        raise FactorizeError(f"unknown activation-aware method {method!r} for {name}",
+                             fix=f"use one of {', '.join(AWARE_METHODS)}")
+    W = torch.as_tensor(W).detach()
+    if W.dim() != 2:
+        raise FactorizeError(f"{name}: expected a 2-D matrix, got shape {tuple(W.shape)}")
+    _check_stats(W, stats, name)
+    if not bool(torch.isfinite(W).all()):
+        raise FactorizeError(f"{name}: the weight holds NaN or Inf values",
+                             fix="repair or retrain the layer, or exclude it")
+    out_dtype = compute_dtype_for(W, precision)
+    W64 = W.to(device=_device_of(stats, W), dtype=torch.float64)
+    if stats.cross is not None:
+        return _refit(W64, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha)
+    C, mu = _moments(stats, center and not stats.is_diagonal)
+    diag = stats.diagonal if C is None else C.diagonal()
+    lam = _ridge_for(stats, diag, ridge)
+    if method == "whiten":
+        Z = W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam)  # (m, n) = W L
+        spec = decompose(Z, method=solver, rank=rank, seed=seed, precision="float64", name=name)
+        energy, total = spec.energies(), spec.total_energy
+    else:
+        s = stats.abs_mean.clamp_min(0) ** alpha  # (n,) ASVD channel scales
+        s = torch.where(s > 0, s, s.max().clamp_min(1e-30) * 1e-8)  # dead channels: tiny, not zero
+        spec = decompose(W64 * s, method=solver, rank=rank, seed=seed, precision="float64", name=name)
+        M = _output_gram(W64, C, diag, lam)  # (m, m) = W (C + lam I) W^T
+        energy = ((spec.U.T @ M) * spec.U.T).sum(1).cpu().numpy()  # u_i^T M u_i
+        total = float(M.trace())
+    return _finish(W64, spec, energy, total, 0.0, mu if center else None, mu, lam, stats.count, out_dtype,
+                   method)
+
+
+def _device_of(stats: InputStats, W: torch.Tensor) -> torch.device:
+    t = stats.second_moment if stats.second_moment is not None else stats.diagonal
+    return t.device if t is not None else W.device
+
+
+def _output_gram(W: torch.Tensor, C: torch.Tensor | None, diag: torch.Tensor, lam: float) -> torch.Tensor:
+    if C is None:
+        return (W * (diag + lam)) @ W.T
+    return W @ C @ W.T + lam * (W @ W.T)
+
+
+def _finish(W_target, spec, energy, total, residual, mu_ref, mu, lam, count, out_dtype, method,
+            W_ref: torch.Tensor | None = None) -> AwareSpectrum:
+    """Build the AwareSpectrum: Vh = diag(1/S) U^T W_target (so U S Vh = U U^T W_target)."""
+    U = spec.U.to(torch.float64)  # (m, k)
+    rows = U.T @ W_target  # (k, n)
+    S = spec.S.to(torch.float64)
+    safe = torch.where(S > 0, S, torch.ones_like(S))
+    Vh = torch.where((S > 0)[:, None], rows / safe[:, None], torch.zeros_like(rows))
+    shift = rows_mean = None
+    if mu_ref is not None:
+        W0 = W_ref if W_ref is not None else W_target
+        shift = (W0 @ mu_ref).to(out_dtype)  # (m,)
+        rows_mean = (rows @ mu).to(out_dtype)  # (k,)
+    return AwareSpectrum(
+        U.to(out_dtype), S.to(out_dtype), Vh.to(out_dtype), total_energy=float(total) + residual,
+        method=method, exact=spec.exact, energy=np.asarray(energy, dtype=np.float64), residual=float(residual),
+        mean_shift=shift, rows_mean=rows_mean, ridge=float(lam), samples=int(count),
+    )
+
+
+def _refit(W, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha):
+    """Sequential refit: reduced-rank regression of the original outputs on the current inputs (Izenman 1975)."""
+    if method != "whiten":
+        raise FactorizeError(f"{name}: the sequential refit needs method='whiten'", fix="use method='whiten'")
+    n, N = stats.width, stats.count
+    mu, mu_ref = stats.mean, stats.reference_total / max(N, 1)
+    C = stats.second_moment  # sum x x^T (current inputs)
+    C_ref = stats.reference_moment  # sum x_ref x_ref^T
+    C_rx = stats.cross  # sum x_ref x^T
+    if center:
+        C = C - N * torch.outer(mu, mu)
+        C_ref = C_ref - N * torch.outer(mu_ref, mu_ref)
+        C_rx = C_rx - N * torch.outer(mu_ref, mu)
+    eye = torch.eye(n, dtype=C.dtype, device=C.device)
+    mean_diag = float(C.diagonal().mean()) or 1.0
+    lam_ls = refit_ridge * mean_diag
+    W_ls = torch.linalg.solve(C + lam_ls * eye, (W @ C_rx).T).T  # (m, n) = W C_rx (C + lam I)^{-1}
+    lam = _ridge_for(stats, C.diagonal(), ridge)
+    spec = decompose(W_ls @ _sqrt_factor(C, lam), method=solver, rank=rank, seed=seed, precision="float64", name=name)
+    # least-squares residual ||W X_ref^T - W_ls X^T||^2 = tr(W C_ref W^T) - 2 tr(W C_rx W_ls^T) + tr(W_ls C W_ls^T)
+    residual = float(((W @ C_ref) * W).sum() - 2 * ((W @ C_rx) * W_ls).sum() + ((W_ls @ C) * W_ls).sum())
+    residual = max(residual, 0.0)
+    return _finish(W_ls, spec, spec.energies(), spec.total_energy, residual, mu_ref if center else None, mu, lam,
+                   N, out_dtype, method, W_ref=W)
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# many sites at once, and the apply step
+
+
+def aware_spectra(
+    model: nn.Module,
+    sites: Iterable[Site],
+    stats: Mapping[str, InputStats],
+    *,
+    method: str = "whiten",
+    alpha: float = DEFAULT_ALPHA,
+    center: bool | str = "auto",
+    ridge: float | None = None,
+    solver: str = "gram",
+    ranks: Mapping[str, int] | None = None,
+    seed: int = 0,
+    precision: str | None = None,
+    progress: bool = False,
+) -> dict[str, AwareSpectrum]:
+    """Activation-aware spectrum of every site from its statistics.
+
+    ``center="auto"`` centres (with bias correction) the layers that have a bias and are not embeddings.
+    A site with no statistics, or whose statistics hold no sample, is an error listing every such site.
+    """
+    sites = list(sites)
+    missing = [s.name for s in sites if s.name not in stats or stats[s.name].count <= 0]
+    if missing:
+        raise FactorizeError(
+            "the calibration batches never reached some layers, so they have no input statistics", missing,
+            fix="give sample inputs that run through these layers, or exclude them (exclude=[...])",
+        )
+    out: dict[str, AwareSpectrum] = {}
+    for site in tqdm(sites, desc="decompose", unit="layer", disable=not progress, leave=False):
+        W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
+        c = _center_for(site, center)
+        k = (ranks or {}).get(site.name)
+        out[site.name] = decompose_aware(W, stats[site.name], method=method, alpha=alpha, center=c, ridge=ridge,
+                                         solver=solver, rank=k, seed=seed, precision=precision, name=site.name)
+    return out
+
+
+def _center_for(site: Site, center: bool | str) -> bool:
+    if center == "auto":
+        return site.has_bias and site.kind != "embedding"
+    if center and not site.has_bias:
+        return False  # nowhere to put the correction
+    return bool(center)
+
+
+@torch.no_grad()
+def apply_bias_shifts(model: nn.Module, plan: Mapping, spectra: Mapping[str, Spectrum]) -> None:
+    """Add each factored layer's bias correction (:meth:`AwareSpectrum.bias_shift`) to its output bias, in place.
+
+    Call once, right after :func:`factorize.api.apply_plan` built the factored layers from ``spectra``.
+    """
+    for name, e in plan["sites"].items():
+        spec = spectra.get(name)
+        if e.get("action") != "factor" or not isinstance(spec, AwareSpectrum):
+            continue
+        shift = spec.bias_shift(e["rank"])
+        layer = get_module(model, name)
+        bias = getattr(getattr(layer, "second", None), "bias", None)
+        if shift is None or bias is None:
+            continue
+        bias.add_(shift.to(device=bias.device, dtype=bias.dtype).reshape(bias.shape))
