@@ -728,7 +728,10 @@ def cmd_shrink(args, ui: UI) -> dict:
         try:
             _write_text(report_path, report.to_markdown(), args.force)
         except BaseException:  # no checkpoint without the report that was asked for
-            shutil.rmtree(output, ignore_errors=True) if output.is_dir() else output.unlink(missing_ok=True)
+            if output.is_dir():
+                shutil.rmtree(output, ignore_errors=True)
+            else:
+                output.unlink(missing_ok=True)
             raise
     if not ui.json_mode:
         from factorize.report import render_rich
@@ -742,9 +745,9 @@ def cmd_shrink(args, ui: UI) -> dict:
 def _shrink_model(args, loaded, output: Path, kwargs: dict, ui: UI):
     from factorize import io
     from factorize.api import compress
+    from factorize.count import count_bytes, count_parameters
     from factorize.evaluate import evaluate, layer_reports
     from factorize.report import Report
-    from factorize.count import count_bytes, count_parameters
 
     inputs = _sample_inputs(args, loaded, ui)
     _require_inputs_for_check(args, inputs)
