@@ -12,14 +12,19 @@ from factorize.api import CompressResult, apply_plan, compress, decompose_sites,
 from factorize.count import count_bytes, count_parameters
 from factorize.decompose import Spectrum, decompose
 from factorize.errors import DriftLimitExceeded, FactorizeError
+from factorize.evaluate import evaluate, output_drift, run_model
+from factorize.io import load, read_plan, save
 from factorize.layers import Factored, factored_layers, is_factored, to_dense
 from factorize.ranks import Override, Policy, choose_ranks, plan_ranks, plan_summary
+from factorize.recipe import load_recipe
+from factorize.report import Report
 from factorize.walk import Site, WalkResult, walk
 
 __version__ = "0.1.0"
 
 __all__ = [
     "CompressResult",
+    "Report",
     "DriftLimitExceeded",
     "Factored",
     "FactorizeError",
@@ -35,11 +40,18 @@ __all__ = [
     "count_parameters",
     "decompose",
     "decompose_sites",
+    "evaluate",
     "factored_layers",
     "is_factored",
+    "load",
+    "load_recipe",
     "merge",
+    "output_drift",
     "plan_ranks",
     "plan_summary",
+    "read_plan",
+    "run_model",
+    "save",
     "to_dense",
     "validate_plan",
     "walk",
