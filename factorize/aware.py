@@ -41,8 +41,11 @@ weight equalization and bias correction", ICCV 2019 -- cited from memory).
 **Sequential refit** (``stats.cross`` set, see :func:`factorize.calibrate.collect_pair_stats`): when the inputs X
 now come from a partly compressed model while the targets are the original layer's outputs on the original
 inputs X_ref, the rank-r W' minimising ||W X_ref^T - W' X^T||_F is reduced-rank regression with a least-squares
-step first (Izenman 1975): W_ls = W C_rx (C + lambda I)^{-1} with C_rx = X_ref^T X, then W' = U_r U_r^T W_ls
-with U from W_ls L. The least-squares residual (no rank can remove it) is added to the predicted error.
+step first (Izenman 1975): W_ls = (W C_rx + lambda W)(C + lambda I)^{-1} with C_rx = X_ref^T X -- a ridge that
+pulls towards the original W rather than towards 0, so identical inputs give back W exactly and directions the
+samples barely explore keep the original weights (generalised ridge regression towards a prior value; Hoerl &
+Kennard, Technometrics 1970, from memory) -- then W' = U_r U_r^T W_ls with U from W_ls L. The least-squares
+residual (no rank can remove it) is added to the predicted error.
 
 Factors: ``factors(r)`` returns B = U_r diag(sqrt(a)) and A = diag(1/sqrt(a)) U_r^T W (a_i = ||u_i^T W||), so
 B @ A = U_r U_r^T W exactly and each rank-one term is split evenly between the two factors by weight norm.
@@ -50,6 +53,7 @@ B @ A = U_r U_r^T W exactly and each rank-one term is split evenly between the t
 
 from __future__ import annotations
 
+import copy
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 
@@ -269,7 +273,8 @@ def _refit(W, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, 
     eye = torch.eye(n, dtype=C.dtype, device=C.device)
     mean_diag = float(C.diagonal().mean()) or 1.0
     lam_ls = refit_ridge * mean_diag
-    W_ls = torch.linalg.solve(C + lam_ls * eye, (W @ C_rx).T).T  # (m, n) = W C_rx (C + lam I)^{-1}
+    # ridge towards the original weight: argmin ||W X_ref^T - W_t X^T||^2 + lam ||W_t - W||^2
+    W_ls = torch.linalg.solve(C + lam_ls * eye, (W @ C_rx + lam_ls * W).T).T  # (m, n) = (W C_rx + lam W)(C + lam I)^-1
     lam = _ridge_for(stats, C.diagonal(), ridge)
     spec = decompose(W_ls @ _sqrt_factor(C, lam), method=solver, rank=rank, seed=seed, precision="float64", name=name)
     # least-squares residual ||W X_ref^T - W_ls X^T||^2 = tr(W C_ref W^T) - 2 tr(W C_rx W_ls^T) + tr(W_ls C W_ls^T)
@@ -344,3 +349,68 @@ def apply_bias_shifts(model: nn.Module, plan: Mapping, spectra: Mapping[str, Spe
         if shift is None or bias is None:
             continue
         bias.add_(shift.to(device=bias.device, dtype=bias.dtype).reshape(bias.shape))
+
+
+def compress_sequential(
+    model: nn.Module,
+    plan: Mapping,
+    batches: Iterable,
+    *,
+    method: str = "whiten",
+    center: bool | str = "auto",
+    ridge: float | None = None,
+    refit: bool = True,
+    refit_ridge: float = REFIT_RIDGE,
+    precision: str | None = None,
+    progress: bool = False,
+) -> tuple[nn.Module, dict[str, AwareSpectrum]]:
+    """Factor the plan's sites one at a time in forward order, each from the inputs it sees in the partly
+    compressed model, so later layers absorb the error of earlier ones.
+
+    Args:
+        model: the original model; not modified (a deep copy is compressed).
+        plan: ranks per site (e.g. from :func:`factorize.ranks.choose_ranks`); dense sites stay as they are.
+        batches: calibration batches (batch contract); every site costs one pass of each model over them (the
+            passes stop after the site when each site runs once per forward).
+        method: ``"whiten"`` (with ``refit``) or ``"scale"`` (``refit`` is then off).
+        center: as for :func:`aware_spectra`.
+        refit: fit the original layer's outputs from the compressed model's inputs (reduced-rank regression
+            with a least-squares step, Izenman 1975); False only re-whitens with the new inputs.
+        refit_ridge / ridge / precision: see :func:`decompose_aware`.
+        progress: progress bars on stderr.
+
+    Returns:
+        (compressed copy, name -> spectrum used for each factored site).
+    """
+    from factorize.calibrate import as_batch_list, collect_pair_stats, forward_order, resolve_sites
+    from factorize.layers import factor_module
+    from factorize.walk import set_module
+
+    batch_list = as_batch_list(batches)
+    names = [n for n, e in plan["sites"].items() if e.get("action") == "factor"]
+    sites = {s.name: s for s in resolve_sites(model, names)}
+    order, calls = forward_order(model, list(sites.values()), batch_list[0])
+    never = [n for n in order if calls[n] == 0]
+    if never:
+        raise FactorizeError("the calibration batches never reached some layers the plan factors", never,
+                             fix="give sample inputs that run through these layers, or keep them dense")
+    target = copy.deepcopy(model)
+    spectra: dict[str, AwareSpectrum] = {}
+    for name in tqdm(order, desc="sequential", unit="layer", disable=not progress, leave=False):
+        site = sites[name]
+        pair = collect_pair_stats(model, target, site, batch_list, stop_early=calls[name] == 1)
+        if not refit or method != "whiten":
+            pair.cross = None
+        W = matrix_of(get_module(model, name), site.kind)
+        spec = decompose_aware(W, pair, method=method, center=_center_for(site, center), ridge=ridge,
+                               refit_ridge=refit_ridge, precision=precision, name=name)
+        r = min(int(plan["sites"][name]["rank"]), spec.computed_rank)
+        B, A = spec.factors(r)
+        layer = factor_module(get_module(target, name), site.kind, B, A)
+        shift = spec.bias_shift(r)
+        if shift is not None and layer.second.bias is not None:
+            with torch.no_grad():
+                layer.second.bias.add_(shift.to(layer.second.bias.dtype))
+        set_module(target, name, layer)
+        spectra[name] = spec
+    return target, spectra

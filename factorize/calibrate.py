@@ -276,7 +276,7 @@ def resolve_sites(model: nn.Module, sites: Iterable[Site | str] | None) -> list[
     return out
 
 
-def _as_batch_list(batches: Any) -> list:
+def as_batch_list(batches: Any) -> list:
     if isinstance(batches, (torch.Tensor, Mapping)):
         return [batches]  # one batch given on its own
     items = list(batches)
@@ -354,7 +354,7 @@ def collect_stats(
         activation-aware decomposition adds a ridge (see :mod:`factorize.aware`).
     """
     site_list = resolve_sites(model, sites)
-    batch_list = _as_batch_list(batches)
+    batch_list = as_batch_list(batches)
     stats = {s.name: InputStats(s.name, s.kind, s.shape[1]) for s in site_list}
     if per_site:
         _, calls = forward_order(model, site_list, batch_list[0])
