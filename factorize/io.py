@@ -433,6 +433,7 @@ def write_atomic(final: Path, write: Callable[[Path], None], *, force: bool) -> 
     os.close(fd)
     try:
         write(tmp)
+        os.chmod(tmp, 0o666 & ~_umask())  # a writer may create its file private (0600); use the usual mode
         _fsync(tmp)
         if not force and final.exists():  # created by someone else meanwhile
             raise FactorizeError(f"{final}: the output appeared while writing", fix="pass force=True (--force)")
@@ -444,6 +445,20 @@ def write_atomic(final: Path, write: Callable[[Path], None], *, force: bool) -> 
     except BaseException:
         remove_quietly(tmp)
         raise
+
+
+def _umask() -> int:
+    """The process umask, read without changing it where /proc allows (os.umask can only set it)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except OSError:
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def _fsync(p: Path) -> None:

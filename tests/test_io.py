@@ -122,6 +122,16 @@ def test_header_follows_the_safetensors_layout(tmp_path, mlp):
     assert header["fc1.first.weight"]["shape"] == [4, 24] and header["fc1.second.weight"]["shape"] == [48, 4]
 
 
+def test_written_file_gets_the_usual_permissions(tmp_path, mlp):
+    result = factorize.compress(mlp, rank=4)
+    old = os.umask(0o022)
+    try:
+        path = io.save(result.model, tmp_path / "m.safetensors", plan=result.plan)
+    finally:
+        os.umask(old)
+    assert path.stat().st_mode & 0o777 == 0o644  # as any new file under umask 022, not private
+
+
 def test_save_never_modifies_the_model(tmp_path, mlp):
     result = factorize.compress(mlp, rank=4)
     before = {k: v.clone() for k, v in result.model.state_dict().items()}
