@@ -1,0 +1,416 @@
+"""Compression measured on sample inputs: the calibrated pipeline, and the search for a drift target.
+
+:func:`compress_calibrated` is what ``factorize.compress(..., calibration=batches)`` runs:
+
+    walk -> collect_stats -> activation-aware spectra -> (sensitivity probes) -> choose ranks -> apply
+    (per layer with bias correction, or sequentially so later layers absorb earlier errors)
+
+:func:`search_drift` answers "the smallest model whose drift stays under my limit": the smallest budget (fraction
+of the sites' parameters, or multiply-accumulates) whose measured output drift on held-out batches is at most
+``max_drift``. Spectra (and sensitivity weights) are computed once; each candidate budget only re-allocates
+ranks, rebuilds the factors from the stored spectra and runs the held-out batches.
+
+Drift, the default metric (``metric="relative_l2"``): ||y - y'||_F / ||y||_F over all held-out outputs (padded
+tokens left out), the same number ``--max-drift`` checks on the command line. ``metric="cosine"``: 1 - mean
+cosine similarity per sample (see :func:`factorize.evaluate.output_drift`).
+
+Search: bisection on the budget between ``budgets[0]`` and ``budgets[1]`` down to ``tolerance``, assuming drift
+does not grow with the budget (true of the predicted drift; measured drift can wiggle, so the answer is the
+smallest budget *measured* to meet the limit among those walked, never an interpolation). If even the largest
+budget misses the limit, :class:`DriftTargetUnreachable` (a :class:`~factorize.errors.DriftLimitExceeded`, exit
+code 1 on the command line) reports the closest budget and its drift.
+
+Drift measured on sample inputs is no guarantee of behaviour on other inputs; use in safety-relevant settings
+needs re-validation under the rules that govern them.
+"""
+
+from __future__ import annotations
+
+import copy
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import torch
+from torch import nn
+
+from factorize.api import CompressResult, apply_plan
+from factorize.aware import AWARE_METHODS, REFIT_RIDGE, apply_bias_shifts, aware_spectra, compress_sequential
+from factorize.calibrate import as_batch_list, collect_stats
+from factorize.count import count_parameters
+from factorize.errors import DriftLimitExceeded, FactorizeError
+from factorize.evaluate import output_drift, token_mask
+from factorize.ranks import Override, Policy, choose_ranks
+from factorize.sensitivity import Sensitivity, measure_sensitivity, run_outputs
+from factorize.walk import get_module, set_module, walk
+
+DRIFT_METRICS = ("relative_l2", "cosine")
+DEFAULT_BUDGETS = (0.05, 0.95)  # search range: fractions of the sites' parameters (or MACs)
+DEFAULT_TOLERANCE = 0.01  # stop bisecting when the bracket is this narrow
+
+
+@dataclass
+class DriftPoint:
+    """One budget the search tried."""
+
+    budget: float
+    drift: float | None  # None: the budget could not even hold rank 1 everywhere
+    kept_fraction: float | None  # the sites' parameters kept (from the plan)
+    note: str = ""
+
+
+@dataclass
+class DriftSearch:
+    """The walk of a drift search: every point tried and the answer."""
+
+    max_drift: float
+    metric: str
+    heldout: bool  # False when the drift was measured on the calibration batches
+    points: list[DriftPoint] = field(default_factory=list)
+    budget: float | None = None  # smallest budget measured to meet the limit (None: unreachable)
+    drift: float | None = None  # its drift
+
+    def closest(self) -> DriftPoint | None:
+        """The point with the smallest measured drift (the best the search saw)."""
+        measured = [p for p in self.points if p.drift is not None]
+        return min(measured, key=lambda p: (p.drift, p.budget)) if measured else None
+
+    def to_dict(self) -> dict:
+        return {"max_drift": self.max_drift, "metric": self.metric, "heldout": self.heldout, "budget": self.budget,
+                "drift": self.drift, "curve": [asdict(p) for p in sorted(self.points, key=lambda p: p.budget)]}
+
+
+class DriftTargetUnreachable(DriftLimitExceeded):
+    """No budget in the searched range keeps the drift under the limit; carries the search and the closest point."""
+
+    def __init__(self, search: DriftSearch) -> None:
+        self.search = search
+        best = search.closest()
+        self.closest_budget = best.budget if best else None
+        self.closest_drift = best.drift if best else None
+        where = "held-out" if search.heldout else "calibration"
+        msg = f"no budget up to {max(p.budget for p in search.points):g} keeps the {search.metric} drift under " \
+              f"{search.max_drift:g} on the {where} inputs"
+        if best is not None:
+            msg += f"; closest: budget {best.budget:g} with drift {best.drift:.4g}"
+        super().__init__(msg + "; raise the limit, exclude sensitive layers, or heal the model after compressing")
+
+
+@dataclass
+class CalibratedResult(CompressResult):
+    """:class:`~factorize.api.CompressResult` plus what calibration measured."""
+
+    stats: dict = field(default_factory=dict, repr=False)  # name -> InputStats summary (samples, width)
+    sensitivity: Sensitivity | None = None
+    search: DriftSearch | None = None
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# drift
+
+
+def measure_drift(
+    reference: list[torch.Tensor], model: nn.Module, batches: list, *, metric: str = "relative_l2",
+    output_fn: Callable | None = None,
+) -> float:
+    """Drift of ``model`` from precomputed ``reference`` outputs on ``batches`` (see the module docstring)."""
+    cand = run_outputs(model, batches, output_fn)
+    d = output_drift(reference, cand, kind="features", masks=[token_mask(b) for b in batches])
+    return d["relative_l2"] if metric == "relative_l2" else 1.0 - d["cosine_mean"]
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# the calibrated pipeline
+
+
+def _check_options(method: str, metric: str) -> None:
+    if method not in AWARE_METHODS:
+        raise FactorizeError(f"unknown activation-aware method {method!r}", fix=f"use one of {', '.join(AWARE_METHODS)}")
+    if metric not in DRIFT_METRICS:
+        raise FactorizeError(f"unknown drift metric {metric!r}", fix=f"use one of {', '.join(DRIFT_METRICS)}")
+
+
+class _Prepared:
+    """Everything computed once per model and calibration set: sites, statistics, spectra, sensitivity."""
+
+    def __init__(self, model, calibration, *, include, exclude, method, alpha, center, ridge, sensitivity,
+                 sensitivity_batches, output_fn, fractions, precision, progress, per_site):
+        self.model = model
+        self.found = walk(model, include=include, exclude=exclude)
+        if not self.found.sites:
+            raise FactorizeError("no factorizable layer found" + (" matching the include/exclude patterns"
+                                 if include or exclude else ""), [f"{s.name}: {s.reason}" for s in self.found.skipped],
+                                 fix="check the include/exclude globs against model.named_modules()")
+        self.batches = as_batch_list(calibration)
+        self.todo = [s for s in self.found.sites if not s.tied_with]
+        self.stats = collect_stats(model, self.todo, self.batches, progress=progress, per_site=per_site)
+        self.spectra = aware_spectra(model, self.todo, self.stats, method=method, alpha=alpha, center=center,
+                                     ridge=ridge, precision=precision, progress=progress)
+        self.sensitivity = None
+        if sensitivity:
+            probe = as_batch_list(sensitivity_batches) if sensitivity_batches is not None else self.batches
+            self.sensitivity = measure_sensitivity(model, self.todo, self.spectra, probe, fractions=fractions,
+                                                   output_fn=output_fn, progress=progress)
+        self.error_scale = self.sensitivity.error_scale() if self.sensitivity else None
+
+    def plan(self, policy: Policy, method: str) -> dict:
+        return choose_ranks(self.found.sites, self.spectra, policy, method=method, error_scale=self.error_scale)
+
+    def build(self, plan: dict, *, sequential: bool, method: str, center, ridge, refit: bool, refit_ridge: float,
+              precision, progress: bool) -> nn.Module:
+        if sequential:
+            model, seq_spectra = compress_sequential(self.model, plan, self.batches, method=method, center=center,
+                                                     ridge=ridge, refit=refit, refit_ridge=refit_ridge,
+                                                     precision=precision, progress=progress)
+            for name, spec in seq_spectra.items():  # predicted errors of the factors actually built
+                e = plan["sites"][name]
+                e["predicted_error"] = spec.relative_error(e["rank"])
+                e["energy_kept"] = spec.energy_fraction(e["rank"])
+            return model
+        model = apply_plan(self.model, plan, spectra=self.spectra)
+        apply_bias_shifts(model, plan, self.spectra)
+        return model
+
+    def annotate(self, plan: dict, *, method: str, sequential: bool) -> None:
+        """Record how the plan was calibrated (JSON-serialisable, carried into saved files)."""
+        plan["calibration"] = {
+            "method": method,
+            "sequential": bool(sequential),
+            "batches": len(self.batches),
+            "samples": {name: st.count for name, st in self.stats.items()},
+            "sensitivity": None if self.sensitivity is None else {
+                "metric": self.sensitivity.metric, "forward_passes": self.sensitivity.forward_passes,
+                "weights": self.sensitivity.error_scale()},
+        }
+        for name, e in plan["sites"].items():
+            if name in self.spectra:
+                e["predicted_error_space"] = "output"
+
+
+def compress_calibrated(
+    model: nn.Module,
+    calibration: Iterable[Any],
+    *,
+    budget: float | None = None,
+    rank: int | None = None,
+    energy: float | None = None,
+    keep: float | None = None,
+    include: str | Iterable[str] | None = None,
+    exclude: str | Iterable[str] | None = None,
+    method: str = "whiten",
+    alpha: float = 0.5,
+    center: bool | str = "auto",
+    ridge: float | None = None,
+    sequential: bool = False,
+    refit: bool = True,
+    refit_ridge: float = REFIT_RIDGE,
+    sensitivity: bool = False,
+    sensitivity_batches: Iterable[Any] | None = None,
+    fractions: tuple[float, ...] = (0.5, 0.25),
+    output_fn: Callable[[Any, Any], torch.Tensor] | None = None,
+    max_drift: float | None = None,
+    heldout: Iterable[Any] | None = None,
+    metric: str = "relative_l2",
+    budgets: tuple[float, float] = DEFAULT_BUDGETS,
+    tolerance: float = DEFAULT_TOLERANCE,
+    multiple: int = 1,
+    overrides: Iterable[Override | Mapping] | None = None,
+    cost: str = "params",
+    inplace: bool = False,
+    precision: str | None = None,
+    progress: bool = False,
+    per_site: bool = False,
+) -> CalibratedResult:
+    """Activation-aware compression from calibration batches (see the module docstring).
+
+    Args:
+        model: the trained model; not modified unless ``inplace=True``.
+        calibration: sample-input batches (batch contract). Their inputs set each layer's statistics; keep
+            them disjoint from the inputs you evaluate on.
+        budget / rank / energy / keep: the rank policy (exactly one, unless ``max_drift`` is given).
+        method: ``"whiten"`` (reduced-rank regression, the optimum per layer) or ``"scale"`` (ASVD).
+        alpha / center / ridge: see :func:`factorize.aware.decompose_aware`.
+        sequential: factor layers in forward order from the partly compressed model's inputs.
+        refit / refit_ridge: sequential only: fit the original outputs (see :func:`factorize.aware.compress_sequential`).
+        sensitivity: allocate ranks by measured final-output sensitivity (:mod:`factorize.sensitivity`); costs
+            one pass over ``sensitivity_batches`` (default: the calibration batches) per site and probe rank.
+        fractions / output_fn: probe ranks and what output to compare (e.g. a pooled sentence embedding).
+        max_drift: search for the smallest budget whose drift on ``heldout`` is at most this (see
+            :func:`search_drift`); replaces the rank policy.
+        heldout / metric / budgets / tolerance: of the drift search.
+        multiple / overrides / cost / inplace / precision / progress: as for :func:`factorize.compress`.
+        per_site: collect statistics one layer at a time (bounded memory for big models).
+    """
+    _check_options(method, metric)
+    if max_drift is not None:
+        if any(v is not None for v in (budget, rank, energy, keep)):
+            raise FactorizeError("max_drift= chooses the budget itself; it cannot be combined with a rank policy",
+                                 fix="drop budget=/rank=/energy=/keep=, or drop max_drift=")
+        return search_drift(model, max_drift, calibration, heldout, include=include, exclude=exclude,
+                            method=method, alpha=alpha, center=center, ridge=ridge, sequential=sequential,
+                            refit=refit, refit_ridge=refit_ridge, sensitivity=sensitivity,
+                            sensitivity_batches=sensitivity_batches, fractions=fractions, output_fn=output_fn,
+                            metric=metric, budgets=budgets, tolerance=tolerance, multiple=multiple,
+                            overrides=overrides, cost=cost, inplace=inplace, precision=precision, progress=progress,
+                            per_site=per_site)
+    ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
+    policy = Policy(rank=rank, energy=energy, keep=keep, budget=budget, multiple=multiple, overrides=ov, cost=cost)
+    prep = _Prepared(model, calibration, include=include, exclude=exclude, method=method, alpha=alpha,
+                     center=center, ridge=ridge, sensitivity=sensitivity, sensitivity_batches=sensitivity_batches,
+                     output_fn=output_fn, fractions=fractions, precision=precision, progress=progress,
+                     per_site=per_site)
+    plan = prep.plan(policy, method)
+    compressed = prep.build(plan, sequential=sequential, method=method, center=center, ridge=ridge, refit=refit,
+                            refit_ridge=refit_ridge, precision=precision, progress=progress)
+    prep.annotate(plan, method=method, sequential=sequential)
+    return _result(model, compressed, plan, prep, inplace)
+
+
+def _result(model: nn.Module, compressed: nn.Module, plan: dict, prep: _Prepared, inplace: bool,
+            search: DriftSearch | None = None) -> CalibratedResult:
+    params_before = count_parameters(model)
+    if inplace:  # swap the factored layers into the caller's model object (all built first, so nothing half-done)
+        for name, e in plan["sites"].items():
+            if e.get("action") == "factor":
+                set_module(model, name, get_module(compressed, name))
+        compressed = model
+    return CalibratedResult(
+        model=compressed, plan=plan, sites=prep.found, spectra=dict(prep.spectra), params_before=params_before,
+        params_after=count_parameters(compressed), stats={k: v.to_dict() for k, v in prep.stats.items()},
+        sensitivity=prep.sensitivity, search=search,
+    )
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# the search
+
+
+def search_drift(
+    model: nn.Module,
+    max_drift: float,
+    calibration: Iterable[Any],
+    heldout: Iterable[Any] | None = None,
+    *,
+    metric: str = "relative_l2",
+    budgets: tuple[float, float] = DEFAULT_BUDGETS,
+    tolerance: float = DEFAULT_TOLERANCE,
+    include: str | Iterable[str] | None = None,
+    exclude: str | Iterable[str] | None = None,
+    method: str = "whiten",
+    alpha: float = 0.5,
+    center: bool | str = "auto",
+    ridge: float | None = None,
+    sequential: bool = False,
+    refit: bool = True,
+    refit_ridge: float = REFIT_RIDGE,
+    sensitivity: bool = False,
+    sensitivity_batches: Iterable[Any] | None = None,
+    fractions: tuple[float, ...] = (0.5, 0.25),
+    output_fn: Callable[[Any, Any], torch.Tensor] | None = None,
+    multiple: int = 1,
+    overrides: Iterable[Override | Mapping] | None = None,
+    cost: str = "params",
+    inplace: bool = False,
+    precision: str | None = None,
+    progress: bool = False,
+    per_site: bool = False,
+) -> CalibratedResult:
+    """The smallest budget whose measured drift on ``heldout`` stays at most ``max_drift``.
+
+    Args:
+        model: the trained model; not modified unless ``inplace=True``.
+        max_drift: the limit, in ``metric`` units (relative L2 by default; 1 - mean cosine for ``"cosine"``).
+        calibration: batches for the statistics (and the sensitivity probes).
+        heldout: batches to measure drift on; None measures on the calibration batches (optimistic: say so).
+        budgets: the (smallest, largest) budget searched; tolerance: bisection stops at this bracket width.
+        sequential: build the final model sequentially (the search itself uses per-layer factors, which is
+            conservative: the sequential model's drift is re-measured and reported).
+        Other arguments: see :func:`compress_calibrated`.
+
+    Returns:
+        :class:`CalibratedResult` at the chosen budget; ``.search`` holds every budget walked and its drift.
+
+    Raises:
+        DriftTargetUnreachable: even ``budgets[1]`` drifts more than ``max_drift`` (carries the closest point).
+    """
+    _check_options(method, metric)
+    lo, hi = _check_search(max_drift, budgets, tolerance)
+    eval_batches = as_batch_list(heldout) if heldout is not None else as_batch_list(calibration)
+    prep = _Prepared(model, calibration, include=include, exclude=exclude, method=method, alpha=alpha, center=center,
+                     ridge=ridge, sensitivity=sensitivity, sensitivity_batches=sensitivity_batches,
+                     output_fn=output_fn, fractions=fractions, precision=precision, progress=progress,
+                     per_site=per_site)
+    reference = run_outputs(model, eval_batches, output_fn)
+    ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
+    search = DriftSearch(max_drift=max_drift, metric=metric, heldout=heldout is not None)
+    built: dict[float, tuple[dict, nn.Module]] = {}
+
+    def drift_at(b: float) -> float | None:
+        policy = Policy(budget=b, multiple=multiple, overrides=ov, cost=cost)
+        try:
+            plan = prep.plan(policy, method)
+        except FactorizeError as err:  # too small to hold rank 1 everywhere
+            search.points.append(DriftPoint(b, None, None, note=str(err).splitlines()[0]))
+            return None
+        candidate = prep.build(plan, sequential=False, method=method, center=center, ridge=ridge, refit=refit,
+                               refit_ridge=refit_ridge, precision=precision, progress=False)
+        d = measure_drift(reference, candidate, eval_batches, metric=metric, output_fn=output_fn)
+        kept = _kept_fraction(plan)
+        search.points.append(DriftPoint(b, d, kept))
+        built[b] = (plan, candidate)
+        return d
+
+    d_hi = drift_at(hi)
+    if d_hi is None or d_hi > max_drift:
+        raise DriftTargetUnreachable(search)
+    good = hi
+    d_lo = drift_at(lo)
+    if d_lo is not None and d_lo <= max_drift:
+        good = lo
+    else:
+        while hi - lo > tolerance:
+            mid = round((lo + hi) / 2, 6)
+            d = drift_at(mid)
+            if d is not None and d <= max_drift:
+                hi = good = mid
+            else:
+                lo = mid
+    plan, compressed = built[good]
+    search.budget, search.drift = good, next(p.drift for p in search.points if p.budget == good)
+    if sequential:
+        plan = copy.deepcopy(plan)
+        seq_model = prep.build(plan, sequential=True, method=method, center=center, ridge=ridge, refit=refit,
+                               refit_ridge=refit_ridge, precision=precision, progress=progress)
+        d_seq = measure_drift(reference, seq_model, eval_batches, metric=metric, output_fn=output_fn)
+        search.points.append(DriftPoint(good, d_seq, _kept_fraction(plan), note="sequential"))
+        if d_seq <= search.drift:
+            compressed, search.drift = seq_model, d_seq
+        else:  # keep the per-layer model, which was measured to meet the limit
+            sequential = False
+            plan = built[good][0]
+    prep.annotate(plan, method=method, sequential=sequential)
+    plan["search"] = search.to_dict()
+    return _result(model, compressed, plan, prep, inplace, search=search)
+
+
+def _check_search(max_drift, budgets, tolerance) -> tuple[float, float]:
+    problems = []
+    if isinstance(max_drift, bool) or not isinstance(max_drift, (int, float)) or not max_drift > 0:
+        problems.append(f"max_drift must be a positive number, got {max_drift!r}")
+    try:
+        lo, hi = (float(b) for b in budgets)
+    except (TypeError, ValueError):
+        lo, hi = -1.0, -1.0
+    if not 0 < lo < hi <= 1:
+        problems.append(f"budgets must be (smallest, largest) with 0 < smallest < largest <= 1, got {budgets!r}")
+    if not isinstance(tolerance, (int, float)) or not tolerance > 0:
+        problems.append(f"tolerance must be a positive number, got {tolerance!r}")
+    if problems:
+        raise FactorizeError("invalid drift search", problems, fix="e.g. max_drift=0.1, budgets=(0.05, 0.95)")
+    return lo, hi
+
+
+def _kept_fraction(plan: Mapping) -> float:
+    sites = plan["sites"].values()
+    before = sum(e["params"] for e in sites)
+    return sum(e["params_after"] for e in sites) / before if before else 1.0

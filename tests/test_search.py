@@ -1,0 +1,87 @@
+"""Target-drift search and the calibrated pipeline, on the embedded digits classifier."""
+
+from __future__ import annotations
+
+import pytest
+import torch
+
+from factorize.default import load_default, load_digits_split
+from factorize.errors import DriftLimitExceeded, FactorizeError
+from factorize.evaluate import output_drift
+from factorize.search import DriftTargetUnreachable, compress_calibrated, search_drift
+
+pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
+
+
+@pytest.fixture(scope="module")
+def digits():
+    model = load_default()
+    x_cal, _ = load_digits_split("calibration")  # 256 samples (Alpaydin & Kaynak, UCI 1998, via scikit-learn)
+    x_test, y_test = load_digits_split("test")
+    return model, [x_cal[:128], x_cal[128:]], [x_test[:270], x_test[270:]], y_test
+
+
+def _relative_l2(a: torch.nn.Module, b: torch.nn.Module, batches) -> float:
+    with torch.no_grad():
+        return output_drift([a(x) for x in batches], [b(x) for x in batches], kind="features")["relative_l2"]
+
+
+def test_search_finds_smallest_budget_under_the_limit(digits):
+    model, cal, held, _ = digits
+    result = search_drift(model, 0.25, cal, held, tolerance=0.02)
+    s = result.search
+    assert s.budget is not None and s.drift <= 0.25
+    # the returned model really has that drift on the held-out batches (independent re-measurement)
+    assert _relative_l2(model, result.model, held) == pytest.approx(s.drift, rel=1e-5)
+    # bisection: a smaller budget within the tolerance was measured to miss the limit (or the answer is the floor)
+    misses = [p.budget for p in s.points if p.drift is None or p.drift > 0.25]
+    assert s.budget == pytest.approx(0.05) or any(s.budget - 0.02 - 1e-9 <= b < s.budget for b in misses)
+    assert result.plan["search"]["budget"] == s.budget and len(result.plan["search"]["curve"]) == len(s.points)
+    assert result.params_after < result.params_before
+
+
+def test_unreachable_target_reports_the_closest_budget(digits):
+    model, cal, held, _ = digits
+    with pytest.raises(DriftTargetUnreachable) as info:
+        search_drift(model, 1e-6, cal, held, budgets=(0.2, 0.6))
+    err = info.value
+    assert isinstance(err, DriftLimitExceeded)  # the command line maps this to exit code 1
+    assert err.closest_budget == 0.6 and err.closest_drift > 1e-6
+    assert "closest: budget 0.6" in str(err)
+
+
+def test_cosine_metric_and_sequential_final_model(digits):
+    model, cal, held, _ = digits
+    result = search_drift(model, 0.02, cal, held, metric="cosine", sequential=True, tolerance=0.05)
+    s = result.search
+    with torch.no_grad():
+        d = output_drift([model(x) for x in held], [result.model(x) for x in held], kind="features")
+    assert 1 - d["cosine_mean"] == pytest.approx(s.drift, rel=1e-4, abs=1e-7) and s.drift <= 0.02
+    assert any(p.note == "sequential" for p in s.points)
+
+
+def test_compress_calibrated_budget_and_sensitivity(digits):
+    model, cal, held, y = digits
+    plain = compress_calibrated(model, cal, budget=0.4)
+    sens = compress_calibrated(model, cal, budget=0.4, sensitivity=True)
+    for r in (plain, sens):
+        assert r.plan["policy"]["budget"] == 0.4 and r.plan["calibration"]["method"] == "whiten"
+        assert r.plan["calibration"]["samples"]["fc1"] == 256
+    assert sens.plan["calibration"]["sensitivity"]["forward_passes"] > 0
+    kept = sum(e["params_after"] for e in sens.plan["sites"].values()) / sum(
+        e["params"] for e in sens.plan["sites"].values())
+    assert kept <= 0.4 + 1e-9
+    with torch.no_grad():  # the weights of the original are untouched
+        assert torch.equal(model.fc1.weight, load_default().fc1.weight)
+
+
+def test_bad_search_arguments(digits):
+    model, cal, held, _ = digits
+    with pytest.raises(FactorizeError, match="max_drift must be a positive number"):
+        search_drift(model, -1, cal, held)
+    with pytest.raises(FactorizeError, match="budgets must be"):
+        search_drift(model, 0.1, cal, held, budgets=(0.8, 0.2))
+    with pytest.raises(FactorizeError, match="unknown drift metric"):
+        search_drift(model, 0.1, cal, held, metric="kl")
+    with pytest.raises(FactorizeError, match="cannot be combined"):
+        compress_calibrated(model, cal, budget=0.5, max_drift=0.1)
