@@ -134,7 +134,8 @@ class _Prepared:
     """Everything computed once per model and calibration set: sites, statistics, spectra, sensitivity."""
 
     def __init__(self, model, calibration, *, include, exclude, method, alpha, center, ridge, sensitivity,
-                 sensitivity_batches, output_fn, fractions, precision, progress, per_site):
+                 sensitivity_batches, output_fn, fractions, precision, progress, per_site, solver="gram",
+                 multiple=1):
         self.model = model
         self.found = walk(model, include=include, exclude=exclude)
         if not self.found.sites:
@@ -144,8 +145,11 @@ class _Prepared:
         self.batches = as_batch_list(calibration)
         self.todo = [s for s in self.found.sites if not s.tied_with]
         self.stats = collect_stats(model, self.todo, self.batches, progress=progress, per_site=per_site)
+        ranks = None
+        if solver in ("auto", "randomized"):  # past break-even a layer stays dense: no more triplets needed
+            ranks = {s.name: max(1, min(s.max_rank, s.break_even + multiple)) for s in self.todo}
         self.spectra = aware_spectra(model, self.todo, self.stats, method=method, alpha=alpha, center=center,
-                                     ridge=ridge, precision=precision, progress=progress)
+                                     ridge=ridge, solver=solver, ranks=ranks, precision=precision, progress=progress)
         self.sensitivity = None
         if sensitivity:
             probe = as_batch_list(sensitivity_batches) if sensitivity_batches is not None else self.batches
@@ -220,6 +224,7 @@ def compress_calibrated(
     precision: str | None = None,
     progress: bool = False,
     per_site: bool = False,
+    solver: str = "gram",
 ) -> CalibratedResult:
     """Activation-aware compression from calibration batches (see the module docstring).
 
@@ -240,6 +245,7 @@ def compress_calibrated(
         heldout / metric / budgets / tolerance: of the drift search.
         multiple / overrides / cost / inplace / precision / progress: as for :func:`factorize.compress`.
         per_site: collect statistics one layer at a time (bounded memory for big models).
+        solver: SVD algorithm for the whitened matrices (``"gram"``, ``"exact"``, ``"randomized"``, ``"auto"``).
     """
     _check_options(method, metric)
     if max_drift is not None:
@@ -252,13 +258,13 @@ def compress_calibrated(
                             sensitivity_batches=sensitivity_batches, fractions=fractions, output_fn=output_fn,
                             metric=metric, budgets=budgets, tolerance=tolerance, multiple=multiple,
                             overrides=overrides, cost=cost, inplace=inplace, precision=precision, progress=progress,
-                            per_site=per_site)
+                            per_site=per_site, solver=solver)
     ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
     policy = Policy(rank=rank, energy=energy, keep=keep, budget=budget, multiple=multiple, overrides=ov, cost=cost)
     prep = _Prepared(model, calibration, include=include, exclude=exclude, method=method, alpha=alpha,
                      center=center, ridge=ridge, sensitivity=sensitivity, sensitivity_batches=sensitivity_batches,
                      output_fn=output_fn, fractions=fractions, precision=precision, progress=progress,
-                     per_site=per_site)
+                     per_site=per_site, solver=solver, multiple=multiple)
     plan = prep.plan(policy, method)
     compressed = prep.build(plan, sequential=sequential, method=method, center=center, ridge=ridge, refit=refit,
                             refit_ridge=refit_ridge, precision=precision, progress=progress)
@@ -314,6 +320,7 @@ def search_drift(
     precision: str | None = None,
     progress: bool = False,
     per_site: bool = False,
+    solver: str = "gram",
 ) -> CalibratedResult:
     """The smallest budget whose measured drift on ``heldout`` stays at most ``max_drift``.
 
@@ -339,7 +346,7 @@ def search_drift(
     prep = _Prepared(model, calibration, include=include, exclude=exclude, method=method, alpha=alpha, center=center,
                      ridge=ridge, sensitivity=sensitivity, sensitivity_batches=sensitivity_batches,
                      output_fn=output_fn, fractions=fractions, precision=precision, progress=progress,
-                     per_site=per_site)
+                     per_site=per_site, solver=solver, multiple=multiple)
     reference = run_outputs(model, eval_batches, output_fn)
     ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
     search = DriftSearch(max_drift=max_drift, metric=metric, heldout=heldout is not None)
@@ -414,3 +421,49 @@ def _kept_fraction(plan: Mapping) -> float:
     sites = plan["sites"].values()
     before = sum(e["params"] for e in sites)
     return sum(e["params_after"] for e in sites) / before if before else 1.0
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# the entry from factorize.compress
+
+
+def compress_from_api(
+    model: nn.Module,
+    *,
+    calibration,
+    calibrate,
+    aware_method: str | None,
+    method: str,
+    sequential: bool,
+    sensitivity: bool,
+    max_drift: float | None,
+    heldout,
+    drift_metric: str,
+    output_fn,
+    spectra,
+    speed_check: bool,
+    **options,
+) -> CalibratedResult:
+    """Validate the calibration options of :func:`factorize.compress` and run :func:`compress_calibrated`."""
+    if calibration is not None and calibrate is not None:
+        raise FactorizeError("calibration= and calibrate= are the same option, given twice",
+                             fix="pass the sample batches once, as calibration=")
+    batches = calibration if calibration is not None else calibrate
+    asked = [name for name, on in (("method=" + repr(method), method in AWARE_METHODS),
+                                    ("aware_method=", aware_method is not None), ("sequential=", sequential),
+                                    ("sensitivity=", sensitivity), ("max_drift=", max_drift is not None)) if on]
+    if batches is None:
+        raise FactorizeError(f"{', '.join(asked)} needs calibration sample inputs",
+                             fix="pass calibration=batches (tensors, tuples or dicts the model accepts)")
+    if aware_method is not None and method in AWARE_METHODS and aware_method != method:
+        raise FactorizeError(f"method={method!r} and aware_method={aware_method!r} disagree",
+                             fix="give the activation-aware method once")
+    aware = aware_method or (method if method in AWARE_METHODS else "whiten")
+    solver = method if method in ("exact", "gram", "randomized") else "gram"
+    unsupported = [f"{k}=" for k, v in (("spectra", spectra), ("speed_check", speed_check)) if v]
+    if unsupported:
+        raise FactorizeError(f"{', '.join(unsupported)} cannot be combined with calibration yet",
+                             fix="compress without calibration to use them, or drop them")
+    return compress_calibrated(model, batches, method=aware, sequential=sequential, sensitivity=sensitivity,
+                               max_drift=max_drift, heldout=heldout, metric=drift_metric, output_fn=output_fn,
+                               solver=solver, **options)

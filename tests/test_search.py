@@ -85,3 +85,27 @@ def test_bad_search_arguments(digits):
         search_drift(model, 0.1, cal, held, metric="kl")
     with pytest.raises(FactorizeError, match="cannot be combined"):
         compress_calibrated(model, cal, budget=0.5, max_drift=0.1)
+
+
+def test_compress_entry_points(digits):
+    import factorize
+    from factorize.search import CalibratedResult
+
+    model, cal, held, _ = digits
+    a = factorize.compress(model, budget=0.3, calibration=cal)
+    b = factorize.compress(model, budget=0.3, calibrate=cal)  # alias
+    c = factorize.compress(model, budget=0.3, method="whiten", calibration=cal)
+    assert all(isinstance(r, CalibratedResult) for r in (a, b, c))
+    assert a.plan["sites"] == b.plan["sites"] == c.plan["sites"]
+    plain = factorize.compress(model, budget=0.3)  # no calibration: the plain path, unchanged
+    assert not isinstance(plain, CalibratedResult) and "calibration" not in plain.plan
+    # activation-aware factors keep the outputs on held-out digits closer than plain ones (same budget)
+    assert _relative_l2(model, a.model, held) < _relative_l2(model, plain.model, held)
+    r = factorize.compress(model, max_drift=0.2, calibration=cal, heldout=held)
+    assert r.search.drift <= 0.2
+    with pytest.raises(FactorizeError, match="sequential= needs calibration"):
+        factorize.compress(model, budget=0.5, sequential=True)
+    with pytest.raises(FactorizeError, match="given twice"):
+        factorize.compress(model, budget=0.5, calibration=cal, calibrate=cal)
+    with pytest.raises(FactorizeError, match="disagree"):
+        factorize.compress(model, budget=0.5, calibration=cal, method="scale", aware_method="whiten")
