@@ -128,6 +128,15 @@ def compress(
     workers: int = 1,
     speed_check: bool = False,
     speed_example=None,
+    calibration: Iterable | None = None,
+    calibrate: Iterable | None = None,
+    aware_method: str | None = None,
+    sequential: bool = False,
+    sensitivity: bool = False,
+    max_drift: float | None = None,
+    heldout: Iterable | None = None,
+    drift_metric: str = "relative_l2",
+    output_fn=None,
 ) -> CompressResult:
     """Factor the dense layers of ``model`` at ranks chosen from their singular spectra.
 
@@ -150,10 +159,30 @@ def compress(
         speed_check: time each factored layer against its dense form on this machine (batch 1 and 32) and keep
             dense those that are slower; under ``budget=`` the freed budget is re-allocated to the others.
         speed_example: one sample batch to learn layer input shapes for the timing (needed for convolutions).
+        calibration: sample-input batches (``calibrate=`` is an alias): activation-aware factors that keep each
+            layer's outputs on these inputs (see :mod:`factorize.aware` and :func:`factorize.search.compress_calibrated`).
+        aware_method: ``"whiten"`` (default with calibration) or ``"scale"``; ``method="whiten"``/``"scale"`` too.
+        sequential: with calibration, factor layers in forward order so later layers absorb earlier errors.
+        sensitivity: with calibration, allocate ranks by measured final-output sensitivity.
+        max_drift: with calibration, the smallest budget whose drift on ``heldout`` stays under this
+            (``drift_metric`` ``"relative_l2"`` or ``"cosine"``); raises ``DriftLimitExceeded`` when unreachable.
+        output_fn: ``output_fn(output, batch) -> tensor`` compared for sensitivity and drift (default: the
+            primary output).
 
     Returns:
-        :class:`CompressResult` with ``.model`` and ``.plan``.
+        :class:`CompressResult` with ``.model`` and ``.plan`` (a ``CalibratedResult`` with calibration).
     """
+    if (calibration is not None or calibrate is not None or aware_method is not None or method in ("whiten", "scale")
+            or sequential or sensitivity or max_drift is not None):
+        from factorize.search import compress_from_api  # the calibrated path lives in factorize.search
+
+        return compress_from_api(
+            model, calibration=calibration, calibrate=calibrate, aware_method=aware_method, method=method,
+            sequential=sequential, sensitivity=sensitivity, max_drift=max_drift, heldout=heldout,
+            drift_metric=drift_metric, output_fn=output_fn, budget=budget, rank=rank, energy=energy, keep=keep,
+            include=include, exclude=exclude, multiple=multiple, overrides=overrides, cost=cost, inplace=inplace,
+            precision=precision, progress=progress, spectra=spectra, speed_check=speed_check,
+        )
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
     if method not in METHODS:
