@@ -4,8 +4,8 @@ An entry is keyed by the content of the matrix and by everything that changes th
 
     key = blake2b-256( JSON{cache format, shape, dtype, method, options} || raw little-endian matrix bytes )
 
-where ``options`` are the decomposition options that matter for the method (``exact``: the compute precision;
-``randomized``: rank, oversampling, power iterations, seed and precision). The layer's name is not part of the
+where ``options`` are the decomposition options that matter for the method (``exact`` and ``gram``: the compute precision;
+``randomized`` and ``auto``: rank, oversampling, power iterations, seed and precision). The layer's name is not part of the
 key: two layers with identical weights share an entry. blake2b is RFC 7693.
 
 Each entry is one safetensors file ``<key>.safetensors`` holding ``U``, ``S``, ``Vh`` exactly as
@@ -32,8 +32,10 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import threading
 import warnings
 from collections.abc import Callable, Iterable, Mapping
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import torch
@@ -73,8 +75,10 @@ def normalise_options(matrix: torch.Tensor, method: str, options: Mapping) -> di
     if method not in METHODS:
         raise FactorizeError(f"unknown method {method!r}", fix=f"use one of {', '.join(METHODS)}")
     precision = str(compute_dtype_for(matrix, options.get("precision"))).removeprefix("torch.")
-    if method == "exact" or options.get("rank") is None:
-        return {"method": "exact", "precision": precision}  # decompose ignores the rest for exact
+    if method in ("exact", "gram"):
+        return {"method": method, "precision": precision}  # decompose ignores rank, sketch and seed here
+    if options.get("rank") is None:
+        return {"method": "gram", "precision": precision}  # auto / randomized without a rank fall back to gram
     opts = {k: options.get(k, v) for k, v in _RANDOMIZED_DEFAULTS.items()}
     return {"method": method, "precision": precision, "rank": int(options["rank"]), **{k: int(v) for k, v in opts.items()}}
 
@@ -101,6 +105,12 @@ class SpectrumCache:
             ) from None
         self.directory = d
         self.hits = self.misses = self.stored = self.corrupt = 0
+        self._lock = threading.Lock()  # counters may be bumped from worker threads
+
+    def _count(self, **steps: int) -> None:
+        with self._lock:
+            for name, n in steps.items():
+                setattr(self, name, getattr(self, name) + n)
 
     # -- keys and paths
 
@@ -128,17 +138,16 @@ class SpectrumCache:
         key = key or self.key(matrix, method, **options)
         path = self.path_for(key)
         if not path.exists():
-            self.misses += 1
+            self._count(misses=1)
             return None
         try:
             spec = self._read(path, key, tuple(matrix.shape))
         except Exception as e:  # noqa: BLE001 - any unreadable entry is ignored, said, and recomputed
-            self.corrupt += 1
-            self.misses += 1
+            self._count(corrupt=1, misses=1)
             warnings.warn(f"cache entry {path} is unusable ({e}); ignoring it and recomputing", CacheWarning,
                           stacklevel=2)
             return None
-        self.hits += 1
+        self._count(hits=1)
         return spec
 
     def _read(self, path: Path, key: str, shape: tuple[int, int]) -> Spectrum:
@@ -173,7 +182,7 @@ class SpectrumCache:
         except FactorizeError as e:
             warnings.warn(f"could not store a cache entry in {self.directory}: {e}", CacheWarning, stacklevel=2)
             return False
-        self.stored += 1
+        self._count(stored=1)
         return True
 
     def get_or_compute(
@@ -221,17 +230,19 @@ def cached_decompose_sites(
     sites: Iterable,
     cache: SpectrumCache | str | os.PathLike | None,
     *,
-    method: str = "exact",
+    method: str = "auto",
     ranks: Mapping[str, int] | None = None,
     seed: int = 0,
     precision: str | None = None,
     progress: bool = False,
+    workers: int = 1,
     **options,
 ) -> dict[str, Spectrum]:
     """Drop-in for :func:`factorize.api.decompose_sites` that reads and fills ``cache``.
 
-    Same arguments and results as ``decompose_sites`` (bit-identical spectra on a hit); ``cache=None`` simply
-    decomposes.
+    Same arguments and results as ``decompose_sites`` (bit-identical spectra on a hit, module order, the same
+    seed for every layer); ``cache=None`` simply calls ``decompose_sites``. ``workers > 1`` runs layers in
+    threads as ``decompose_sites`` does.
     """
     from factorize.api import decompose_sites
     from factorize.walk import get_module, matrix_of
@@ -240,12 +251,24 @@ def cached_decompose_sites(
     sites = list(sites)
     if store is None:
         return decompose_sites(model, sites, method=method, ranks=ranks, seed=seed, precision=precision,
-                               progress=progress, **options)
-    out: dict[str, Spectrum] = {}
-    for site in tqdm(sites, desc="decompose", unit="layer", disable=not progress, leave=False):
+                               progress=progress, workers=workers, **options)
+
+    def one(site) -> Spectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
         k = (ranks or {}).get(site.name)
-        out[site.name] = store.get_or_compute(
-            W, method, rank=k, seed=seed, precision=precision, name=site.name, **options
-        )
+        return store.get_or_compute(W, method, rank=k, seed=seed, precision=precision, name=site.name, **options)
+
+    with tqdm(total=len(sites), desc="decompose", unit="layer", disable=not progress, leave=False) as bar:
+        if workers <= 1 or len(sites) <= 1:
+            out = {}
+            for site in sites:
+                out[site.name] = one(site)
+                bar.update()
+        else:
+            with ThreadPoolExecutor(max_workers=workers) as pool:
+                futures = {site.name: pool.submit(one, site) for site in sites}
+                out = {}
+                for name, fut in futures.items():
+                    out[name] = fut.result()
+                    bar.update()
     return out

@@ -237,7 +237,7 @@ def shrink_checkpoint(
     keep: float | None = None,
     include: str | Iterable[str] | None = None,
     exclude: str | Iterable[str] | None = None,
-    method: str = "exact",
+    method: str = "auto",
     multiple: int = 1,
     overrides: Iterable[Override | Mapping] | None = None,
     seed: int = 0,
@@ -255,7 +255,8 @@ def shrink_checkpoint(
             ``force``, and never the input itself.
         budget / rank / energy / keep / multiple / overrides: the rank policy, as in :func:`factorize.compress`.
         include / exclude: glob patterns on module names (``layers.*.mlp.*``) or tensor names.
-        method: ``"exact"`` or ``"randomized"``; seed and precision as in :func:`factorize.decompose.decompose`.
+        method: ``"auto"`` (default, as :func:`factorize.compress`), ``"exact"``, ``"gram"`` or ``"randomized"``;
+            seed and precision as in :func:`factorize.decompose.decompose`.
         cache_dir: a spectrum cache directory (or :class:`SpectrumCache`) to reuse decompositions across runs.
         metadata: extra string entries for the output's metadata.
         progress: progress bar on stderr.
@@ -337,7 +338,8 @@ class _Job:
         self.chosen = {c.weight.name: c for c in chosen}
         self.biases = {c.bias.name: c for c in chosen if c.bias is not None}
         self.sites = [c.site for c in chosen]
-        self.k = {s.name: (_rank_needed(s, policy) if method == "randomized" else None) for s in self.sites}
+        partial = method in ("auto", "randomized")
+        self.k = {s.name: (_rank_needed(s, policy) if partial else None) for s in self.sites}
         self.plan: dict | None = None
         self.entries: dict[str, dict] = {}
         self.report: dict[str, dict] = {}

@@ -62,6 +62,9 @@ def test_key_depends_on_content_and_options_that_matter():
     assert k not in others and len(others) == 8
     assert SpectrumCache.key(W, "randomized", rank=5) == SpectrumCache.key(W, "randomized", rank=5, seed=0,
                                                                           oversample=10, power_iters=2)
+    # decompose falls back to gram for auto / randomized without a rank, and gram ignores rank and seed
+    assert SpectrumCache.key(W, "auto") == SpectrumCache.key(W, "gram") == SpectrumCache.key(W, "gram", rank=4)
+    assert SpectrumCache.key(W, "gram") != k and SpectrumCache.key(W, "auto", rank=5) != SpectrumCache.key(W, "randomized", rank=5)
 
 
 def test_hit_skips_decomposition_and_is_bit_identical(tmp_path, counted):
@@ -134,8 +137,9 @@ def test_cached_decompose_sites_matches_and_feeds_compress(tmp_path, mlp, counte
     sites = [s for s in walk(mlp).sites]
     plain = decompose_sites(mlp, sites)
     cached = cached_decompose_sites(mlp, sites, tmp_path)
-    again = cached_decompose_sites(mlp, sites, tmp_path)
-    assert len(counted) == len(sites)  # the second call made no decomposition
+    again = cached_decompose_sites(mlp, sites, tmp_path, workers=2)
+    assert len(counted) == len(sites)  # the second call (in threads) made no decomposition
+    assert list(again) == [s.name for s in sites]
     for name in plain:
         assert torch.equal(plain[name].U, again[name].U) and torch.equal(plain[name].S, cached[name].S)
     a = factorize.compress(mlp, budget=0.5)
