@@ -9,6 +9,8 @@ Typical use::
 """
 
 from factorize.api import CompressResult, apply_plan, compress, decompose_sites, merge, validate_plan
+from factorize.cache import SpectrumCache
+from factorize.checkpoint import shrink_checkpoint
 from factorize.count import count_bytes, count_parameters
 from factorize.decompose import Spectrum, decompose
 from factorize.errors import DriftLimitExceeded, FactorizeError
@@ -32,6 +34,7 @@ __all__ = [
     "Policy",
     "Site",
     "Spectrum",
+    "SpectrumCache",
     "WalkResult",
     "apply_plan",
     "choose_ranks",
@@ -51,6 +54,7 @@ __all__ = [
     "plan_summary",
     "read_plan",
     "run_model",
+    "shrink_checkpoint",
     "save",
     "to_dense",
     "validate_plan",

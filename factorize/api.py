@@ -70,18 +70,25 @@ def decompose_sites(
     precision: str | None = None,
     progress: bool = False,
     workers: int = 1,
+    cache=None,
     **options,
 ) -> dict[str, Spectrum]:
     """Spectrum of every site's matrix view. ``ranks`` bounds the triplets a partial method computes.
 
     ``workers > 1`` decomposes independent layers concurrently in threads (LAPACK and BLAS release the GIL);
-    every layer gets the same seed and the same arithmetic, so results equal a serial run's.
+    every layer gets the same seed and the same arithmetic, so results equal a serial run's. ``cache`` (a
+    directory or :class:`factorize.cache.SpectrumCache`) reads and fills an on-disk cache of spectra.
     """
+    from factorize.cache import as_cache  # cache imports io, which imports this module
+
     sites = list(sites)
+    store = as_cache(cache)
 
     def one(site: Site) -> Spectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
         k = (ranks or {}).get(site.name)
+        if store is not None:
+            return store.get_or_compute(W, method, rank=k, seed=seed, precision=precision, name=site.name, **options)
         return decompose(W, method=method, rank=k, seed=seed, precision=precision, name=site.name, **options)
 
     bar = tqdm(total=len(sites), desc="decompose", unit="layer", disable=not progress, leave=False)
@@ -126,6 +133,7 @@ def compress(
     progress: bool = False,
     spectra: Mapping[str, Spectrum] | None = None,
     workers: int = 1,
+    cache=None,
     speed_check: bool = False,
     speed_example=None,
     calibration: Iterable | None = None,
@@ -156,6 +164,8 @@ def compress(
         progress: show a progress bar on stderr.
         spectra: spectra from an earlier call (``result.spectra``) to reuse instead of decomposing again.
         workers: decompose this many layers concurrently (threads); results equal a serial run's.
+        cache: a directory (or :class:`factorize.cache.SpectrumCache`) of spectra keyed by weight content, so a
+            second run on the same weights skips the decomposition.
         speed_check: time each factored layer against its dense form on this machine (batch 1 and 32) and keep
             dense those that are slower; under ``budget=`` the freed budget is re-allocated to the others.
         speed_example: one sample batch to learn layer input shapes for the timing (needed for convolutions).
@@ -202,7 +212,8 @@ def compress(
     ranks = {s.name: _rank_needed(s, policy) for s in need} if method in ("auto", "randomized") else None
     have.update(
         decompose_sites(
-            model, need, method=method, ranks=ranks, seed=seed, precision=precision, progress=progress, workers=workers
+            model, need, method=method, ranks=ranks, seed=seed, precision=precision, progress=progress,
+            workers=workers, cache=cache,
         )
     )
     plan = choose_ranks(found.sites, have, policy, method=method)

@@ -245,30 +245,6 @@ def cached_decompose_sites(
     threads as ``decompose_sites`` does.
     """
     from factorize.api import decompose_sites
-    from factorize.walk import get_module, matrix_of
 
-    store = as_cache(cache)
-    sites = list(sites)
-    if store is None:
-        return decompose_sites(model, sites, method=method, ranks=ranks, seed=seed, precision=precision,
-                               progress=progress, workers=workers, **options)
-
-    def one(site) -> Spectrum:
-        W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
-        k = (ranks or {}).get(site.name)
-        return store.get_or_compute(W, method, rank=k, seed=seed, precision=precision, name=site.name, **options)
-
-    with tqdm(total=len(sites), desc="decompose", unit="layer", disable=not progress, leave=False) as bar:
-        if workers <= 1 or len(sites) <= 1:
-            out = {}
-            for site in sites:
-                out[site.name] = one(site)
-                bar.update()
-        else:
-            with ThreadPoolExecutor(max_workers=workers) as pool:
-                futures = {site.name: pool.submit(one, site) for site in sites}
-                out = {}
-                for name, fut in futures.items():
-                    out[name] = fut.result()
-                    bar.update()
-    return out
+    return decompose_sites(model, sites, method=method, ranks=ranks, seed=seed, precision=precision,
+                           progress=progress, workers=workers, cache=cache, **options)

@@ -173,3 +173,13 @@ def test_parallel_decomposition_equals_serial():
         assert torch.equal(spec.U, parallel.spectra[name].U) and torch.equal(spec.S, parallel.spectra[name].S)
     for a, b in zip(serial.model.state_dict().values(), parallel.model.state_dict().values()):
         assert torch.equal(a, b)
+
+
+def test_cache_directory_skips_decomposition_on_second_run(mlp, tmp_path, monkeypatch):
+    first = compress(mlp, budget=0.5, cache=tmp_path / "cache")
+    calls = []
+    monkeypatch.setattr(factorize.cache, "decompose", lambda *a, **k: calls.append(1))
+    second = compress(mlp, budget=0.5, cache=tmp_path / "cache")
+    assert not calls and second.plan == first.plan
+    for name, spec in first.spectra.items():
+        assert torch.equal(spec.U, second.spectra[name].U)
