@@ -18,6 +18,7 @@ import os
 import shutil
 import sys
 import tempfile
+import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -47,7 +48,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     ui = UI(json_mode=args.json, quiet=args.quiet)
     try:
-        with ui.capture_stdout():
+        with ui.capture_stdout(), warnings.catch_warnings():
+            warnings.showwarning = lambda message, *_a, **_k: ui.warn(str(message))  # one line, no source echo
             result = args.handler(args, ui)
     except DriftLimitExceeded as err:
         return ui.fail(str(err), 1)
@@ -182,7 +184,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(handler=cmd_scan)
 
     p = sub.add_parser(
-        "shrink", parents=[common, model, inputs, policy, out, _check_options()], formatter_class=_Formatter,
+        "shrink", parents=[common, model, inputs, policy, out, _check_options(), _quality_options(shrink=True)],
+        formatter_class=_Formatter,
         help="write a compressed checkpoint and its report",
         description="Factor the model's dense layers under a rank policy, measure the result on sample inputs,\n"
         "and write the compressed checkpoint (safetensors, with the plan in its metadata; reload it with\n"
@@ -193,12 +196,15 @@ def build_parser() -> argparse.ArgumentParser:
             "    --recipe recipes/mlp-classifier.toml --output small.safetensors --report review.md",
             "factorize shrink --model ./bert-dir --inputs sentences.txt --recipe bert-encoder.toml --max-drift 0.1",
             "factorize shrink --model checkpoint.safetensors --rank 64 --exclude '*embed*'   # weights-only mode",
+            "factorize shrink --model ./bert-dir --calibration calib.txt --inputs heldout.txt --sensitivity \\\n"
+            "    --target-drift 0.1 --heal 200",
         ),
     )
     p.set_defaults(handler=cmd_shrink)
 
     p = sub.add_parser(
-        "sweep", parents=[common, model, inputs, _sweep_policy(), _sweep_options()], formatter_class=_Formatter,
+        "sweep", parents=[common, model, inputs, _sweep_policy(), _sweep_options(), _quality_options(shrink=False)],
+        formatter_class=_Formatter,
         help="evaluate a grid of budgets from one decomposition pass",
         description="Compress at each budget of a grid, reusing one decomposition of every layer, and tabulate\n"
         "parameters kept against output drift (and accuracy when labels are given) to find the knee of\n"
@@ -298,9 +304,11 @@ def _selection(g) -> None:
     g.add_argument("--exclude", action="append", metavar="GLOB", help="never factor matching layers (repeatable)")
     from factorize.decompose import METHODS
 
-    g.add_argument("--method", choices=METHODS,
+    g.add_argument("--method", choices=METHODS + AWARE_METHODS,
                    help="how to decompose: exact (LAPACK SVD), gram (eigensolve of the smaller Gram matrix), "
-                   "randomized (Halko et al. 2011), auto (the library's choice; default)")
+                   "randomized (Halko et al. 2011), auto (the library's choice; default); with --calibration: "
+                   "whiten (reduced-rank regression on the layer inputs; the default there) or scale (per-channel "
+                   "activation scaling)")
     g.add_argument("--multiple", type=_positive_int("--multiple"), metavar="N", help="round ranks to a multiple of N")
 
 
@@ -313,6 +321,39 @@ def _scan_options():
                    help=f"the suggested rank keeps this fraction of sum(s^2) (default {SCAN_ENERGY})")
     g.add_argument("--multiple", type=_positive_int("--multiple"), default=1, metavar="N",
                    help="round suggested ranks up to a multiple of N")
+    return p
+
+
+AWARE_METHODS = ("whiten", "scale")
+
+
+def _quality_options(*, shrink: bool):
+    """Activation-aware factors, healing and speed options (shrink has them all, sweep the decomposition ones)."""
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("activation-aware factors" + (", healing" if shrink else "") + " and speed")
+    g.add_argument("--calibration", "-c", metavar="FILE",
+                   help="sample inputs (same formats as --inputs) the factors are fitted to: each layer keeps its "
+                   "outputs on them (whitening); keep them apart from --inputs, where drift is measured")
+    g.add_argument("--sequential", action="store_true",
+                   help="with --calibration: factor layers in forward order, each fitted to the inputs the partly "
+                   "compressed model gives it")
+    g.add_argument("--sensitivity", action="store_true",
+                   help="with --calibration: allocate the budget by each layer's measured effect on the final output")
+    g.add_argument("--cache", metavar="DIR", help="keep spectra in DIR so a later run on the same weights skips the SVD")
+    g.add_argument("--workers", type=_positive_int("--workers"), default=1, metavar="N",
+                   help="decompose N layers at a time (threads; results equal a serial run)")
+    if shrink:
+        g.add_argument("--target-drift", type=_nonnegative("--target-drift"), metavar="X",
+                       help="with --calibration: the smallest budget whose relative L2 drift on --inputs stays <= X "
+                       "(exit 1 with the closest budget when none does)")
+        g.add_argument("--heal", type=_positive_int("--heal"), metavar="STEPS",
+                       help="after compressing, fine-tune the factors for STEPS steps to match the original on "
+                       "--calibration (distillation); the best state on --inputs is kept")
+        g.add_argument("--heal-lr", type=_nonnegative("--heal-lr"), default=1e-4, metavar="LR",
+                       help="learning rate for --heal (default 1e-4)")
+        g.add_argument("--speed-check", action="store_true",
+                       help="time each factored layer against its dense form here (batch 1 and 32) and keep dense "
+                       "the ones that are slower")
     return p
 
 
@@ -751,11 +792,19 @@ def _shrink_model(args, loaded, output: Path, kwargs: dict, ui: UI):
 
     inputs = _sample_inputs(args, loaded, ui)
     _require_inputs_for_check(args, inputs)
+    calibration = _calibration_inputs(args, loaded, inputs, ui)
+    kwargs.update(_quality_kwargs(args, calibration, inputs, kwargs, ui))
+    if inputs is not None and calibration is None and getattr(args, "speed_check", False):
+        kwargs["speed_example"] = inputs.batches[0]
     result = compress(loaded.model, progress=ui.progress, **kwargs)
+    notes = list(inputs.notes) if inputs is not None else []
+    notes += _calibration_notes(result, calibration)
+    if getattr(args, "heal", None):
+        notes += _heal(args, loaded, result, calibration, inputs, ui)
     if inputs is not None:
         report = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
                           latency_repeats=_repeats(args, 7), title="factorize shrink", model_name=loaded.source,
-                          inputs=inputs.source, notes=inputs.notes, progress=ui.progress)
+                          inputs=inputs.source, notes=notes, progress=ui.progress)
         _max_drift_check(args, report)
     else:
         report = Report(title="factorize shrink", model=loaded.source, params_before=count_parameters(loaded.model),
@@ -768,6 +817,85 @@ def _shrink_model(args, loaded, output: Path, kwargs: dict, ui: UI):
     return report, result.plan
 
 
+def _calibration_inputs(args, loaded, inputs, ui: UI):
+    """The --calibration sample inputs, loaded and checked like --inputs; None when not given."""
+    path = getattr(args, "calibration", None)
+    if not path:
+        return None
+    from factorize.inputs import check_inputs, load_inputs, prepare
+
+    calib = load_inputs(path, batch_size=args.batch_size, labels_key=args.labels_key, tokenizer=loaded.tokenizer)
+    for note in calib.notes:
+        ui.warn(note)
+    calib = prepare(calib, loaded.model)
+    check_inputs(loaded.model, calib, path)
+    if args.inputs and Path(args.inputs).resolve() == Path(path).resolve():
+        ui.warn("--calibration and --inputs are the same file: the factors were fitted to the inputs drift is "
+                "measured on, so the drift shown is optimistic")
+    ui.note(f"calibration inputs: {calib.source}")
+    return calib
+
+
+def _quality_kwargs(args, calibration, inputs, kwargs: dict, ui: UI) -> dict:
+    """compress() options for activation-aware factors, target drift, cache, workers and the speed check."""
+    target = getattr(args, "target_drift", None)
+    wanted = [flag for flag, on in (
+        ("--method " + str(kwargs.get("method")), kwargs.get("method") in AWARE_METHODS),
+        ("--sequential", getattr(args, "sequential", False)), ("--sensitivity", getattr(args, "sensitivity", False)),
+        ("--target-drift", target is not None), ("--heal", getattr(args, "heal", None) is not None)) if on]
+    if wanted and calibration is None:
+        raise FactorizeError(f"{', '.join(wanted)} needs --calibration FILE",
+                             fix="pass --calibration with sample inputs of your own (kept apart from --inputs)")
+    if calibration is None:
+        return {"cache": getattr(args, "cache", None), "workers": getattr(args, "workers", 1),
+                "speed_check": getattr(args, "speed_check", False)}
+    problems = [f for f, on in (("--cache", getattr(args, "cache", None)), ("--workers", getattr(args, "workers", 1) > 1),
+                                ("--speed-check", getattr(args, "speed_check", False))) if on]
+    if problems:
+        raise FactorizeError(f"{', '.join(problems)} cannot be combined with --calibration yet",
+                             fix="drop them, or compress without --calibration")
+    kwargs.pop("seed", None)
+    extra = {"calibration": calibration.batches, "sequential": args.sequential, "sensitivity": args.sensitivity}
+    if target is not None:
+        for k in ("budget", "rank", "energy", "keep"):
+            if getattr(args, k, None) is not None:
+                raise FactorizeError(f"--target-drift chooses the budget itself; it cannot be combined with --{k}",
+                                     fix=f"drop --{k} or --target-drift")
+            kwargs.pop(k, None)
+        if inputs is None:
+            raise FactorizeError("--target-drift needs --inputs to measure drift on",
+                                 fix="pass --inputs FILE with held-out samples (not the calibration file)")
+        extra.update(max_drift=target, heldout=inputs.batches)
+    return extra
+
+
+def _calibration_notes(result, calibration) -> list[str]:
+    if calibration is None:
+        return []
+    notes = [f"activation-aware factors ({result.plan.get('calibration', {}).get('method', 'whiten')}) fitted to "
+             f"{calibration.source}"]
+    search = getattr(result, "search", None)
+    if search is not None:
+        walked = ", ".join(f"{p.budget:.3g} -> {p.drift:.4g}" for p in search.points)
+        notes.append(f"target drift {search.max_drift:g} ({search.metric}): budgets tried (budget -> drift): {walked}")
+    return notes
+
+
+def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
+    """Distil the compressed model towards the original on the calibration inputs; held-out: --inputs."""
+    from factorize.heal import heal
+
+    done = heal(result.model, loaded.model, calibration.batches, steps=args.heal, lr=args.heal_lr,
+                heldout=inputs.batches if inputs is not None else None, progress=ui.progress)
+    result.plan["heal"] = done.to_dict()
+    if inputs is None:
+        ui.warn("--heal without --inputs: no held-out check, the last state is kept")
+    drift = "" if done.initial_drift is None else \
+        f"; held-out {done.metric} {done.initial_drift:.4g} -> {done.best_drift:.4g} (best step {done.best_step})"
+    return [f"healed {done.steps_run} steps ({done.loss} loss, lr {done.lr:g}, {done.seconds:.1f} s){drift}: "
+            f"{done.reason}"]
+
+
 def _no_inputs_in_weights_only(args) -> None:
     if getattr(args, "inputs", None) or getattr(args, "random_inputs", None):
         raise FactorizeError("sample inputs need a model to run, and weights-only mode (a bare safetensors file) has none",
@@ -778,10 +906,20 @@ def _shrink_weights_only(args, loaded, output: Path, kwargs: dict, ui: UI):
     from factorize.checkpoint import shrink_checkpoint
 
     _no_inputs_in_weights_only(args)
+    _no_model_options_in_weights_only(args)
     kwargs = {k: v for k, v in kwargs.items() if k != "cost"}
     with _weights_file(loaded) as src:
-        done = shrink_checkpoint(src, output, force=args.force, progress=ui.progress, **kwargs)
+        done = shrink_checkpoint(src, output, force=args.force, progress=ui.progress, cache_dir=args.cache, **kwargs)
     return _weights_only_report(done, loaded.source), done["plan"]
+
+
+def _no_model_options_in_weights_only(args) -> None:
+    flags = [f for f, on in (("--calibration", getattr(args, "calibration", None)),
+                             ("--heal", getattr(args, "heal", None)), ("--speed-check", getattr(args, "speed_check", False)),
+                             ("--target-drift", getattr(args, "target_drift", None))) if on]
+    if flags:
+        raise FactorizeError(f"{', '.join(flags)} need a model to run, and weights-only mode (a bare safetensors "
+                             "file) has none", fix="pass --model package.module:callable --weights FILE")
 
 
 def _weights_only_report(done: dict, source: str):
@@ -843,11 +981,17 @@ def _sweep_model(args, loaded, budgets, kwargs, ui):
     inputs = _sample_inputs(args, loaded, ui)
     if inputs is None:
         ui.warn("no sample inputs given: only parameters and weight errors are shown; pass --inputs FILE for drift")
+    calibration = _calibration_inputs(args, loaded, inputs, ui)
+    quality = _quality_kwargs(args, calibration, inputs, kwargs, ui)
+    build = _calibrated_builder(loaded.model, calibration, quality, kwargs, ui) if calibration is not None else None
     rows, spectra = [], None
     for budget in budgets:
-        result = compress(loaded.model, budget=budget, spectra=spectra, progress=ui.progress and spectra is None,
-                          **kwargs)
-        spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum
+        if build is not None:
+            result = build(budget)
+        else:
+            result = compress(loaded.model, budget=budget, spectra=spectra, progress=ui.progress and spectra is None,
+                              cache=quality["cache"], workers=quality["workers"], **kwargs)
+            spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum
         row = {"budget": budget, "params_before": result.params_before, "params_after": result.params_after,
                "kept_fraction": result.kept_fraction, "factored_layers": sum(
                    1 for e in result.plan["sites"].values() if e["action"] == "factor")}
@@ -867,10 +1011,35 @@ def _sweep_model(args, loaded, budgets, kwargs, ui):
     return rows, None if inputs is None else inputs.source
 
 
+def _calibrated_builder(model, calibration, quality: dict, kwargs: dict, ui: UI):
+    """budget -> compressed result, from one set of calibration statistics, spectra and sensitivities."""
+    from factorize.count import count_parameters
+    from factorize.ranks import Override, Policy
+    from factorize.search import CalibratedResult, Calibration
+
+    method = kwargs.get("method") if kwargs.get("method") in AWARE_METHODS else "whiten"
+    solver = kwargs.get("method") if kwargs.get("method") in ("exact", "gram", "randomized", "auto") else "gram"
+    multiple = kwargs.get("multiple") or 1
+    calib = Calibration(model, calibration.batches, include=kwargs.get("include"), exclude=kwargs.get("exclude"),
+                        method=method, solver=solver, sensitivity=quality["sensitivity"], multiple=multiple,
+                        progress=ui.progress)
+    overrides = tuple(o if isinstance(o, Override) else Override(**o) for o in kwargs.get("overrides") or ())
+
+    def build(budget: float):
+        plan = calib.plan(Policy(budget=budget, multiple=multiple, overrides=overrides))
+        compressed = calib.build(plan, sequential=quality["sequential"])
+        calib.annotate(plan, sequential=quality["sequential"])
+        return CalibratedResult(model=compressed, plan=plan, sites=calib.found, spectra=dict(calib.spectra),
+                                params_before=count_parameters(model), params_after=count_parameters(compressed))
+
+    return build
+
+
 def _sweep_weights_only(args, loaded, budgets, kwargs, ui):
     from tqdm.auto import tqdm
 
     _no_inputs_in_weights_only(args)
+    _no_model_options_in_weights_only(args)
     from factorize.checkpoint import select
     from factorize.decompose import decompose
     from factorize.io import open_checkpoint
@@ -882,7 +1051,8 @@ def _sweep_weights_only(args, loaded, budgets, kwargs, ui):
             raise FactorizeError(f"{loaded.source}: no 2-D tensor named <module>.weight matches the patterns",
                                  fix="check --include/--exclude against the tensor names")
         sites = [c.site for c in chosen]
-        spectra = {c.module: decompose(_read_tensor(c.weight_file.path, c.weight.name), name=c.module)
+        spectra = {c.module: decompose(_read_tensor(c.weight_file.path, c.weight.name), name=c.module,
+                                       method=kwargs.get("method") or "auto")
                    for c in tqdm(chosen, desc="decompose", unit="layer", disable=not ui.progress, leave=False)}
     overrides = tuple(o if isinstance(o, Override) else Override(**o) for o in kwargs.get("overrides") or ())
     rows = []

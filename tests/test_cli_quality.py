@@ -1,0 +1,88 @@
+"""The command line's activation-aware, target-drift, healing, cache and worker options, on the embedded digits
+classifier and the held-out part of scikit-learn's digits data (Alpaydin & Kaynak, UCI)."""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import json
+
+import pytest
+from safetensors.torch import save_file
+
+from factorize.cli import main
+from factorize.default import load_digits_split
+
+MODEL = "factorize.default:load_default"
+
+
+def _run(argv):
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        rc = main(argv)
+    return rc, out.getvalue(), err.getvalue()
+
+
+@pytest.fixture(scope="module")
+def data(tmp_path_factory):
+    d = tmp_path_factory.mktemp("quality")
+    for split in ("calibration", "test"):
+        x, y = load_digits_split(split)
+        save_file({"inputs": x.contiguous(), "labels": y.contiguous()}, str(d / f"{split}.safetensors"))
+    return d
+
+
+def _shrink(data, *extra):
+    argv = ["shrink", "-m", MODEL, "-i", str(data / "test.safetensors"), "-o", str(data / "out.safetensors"),
+            "--force", "--json", "-q", "--repeats", "0", *extra]
+    rc, out, err = _run(argv)
+    return rc, (json.loads(out) if out.strip() else None), err
+
+
+def test_calibrated_shrink_beats_plain_at_a_strong_budget(data):
+    rc, plain, _ = _shrink(data, "--budget", "0.05")
+    assert rc == 0
+    rc, aware, _ = _shrink(data, "--budget", "0.05", "-c", str(data / "calibration.safetensors"))
+    assert rc == 0 and aware["plan"]["calibration"]["method"] == "whiten"
+    # Held-out digits accuracy (Alpaydin & Kaynak, UCI): fitting each layer to its real inputs keeps more.
+    assert aware["report"]["accuracy_after"] > plain["report"]["accuracy_after"]
+    assert aware["report"]["drift"]["relative_l2"] < plain["report"]["drift"]["relative_l2"]
+
+
+def test_target_drift_meets_the_limit_or_exits_1(data):
+    calib = str(data / "calibration.safetensors")
+    rc, done, _ = _shrink(data, "-c", calib, "--target-drift", "0.05")
+    assert rc == 0 and done["report"]["drift"]["relative_l2"] <= 0.05
+    assert any("budgets tried" in n for n in done["report"]["notes"])
+    rc, failed, err = _shrink(data, "-c", calib, "--target-drift", "1e-9")
+    assert rc == 1 and failed["exit_code"] == 1 and "closest" in failed["error"]
+
+
+def test_heal_keeps_the_best_held_out_state(data):
+    rc, done, _ = _shrink(data, "--budget", "0.05", "-c", str(data / "calibration.safetensors"), "--heal", "30")
+    assert rc == 0
+    heal = done["plan"]["heal"]
+    assert heal["best_drift"] <= heal["initial_drift"]  # healing never worsens held-out drift
+    assert abs(done["report"]["drift"]["relative_l2"] - heal["best_drift"]) < 1e-4
+
+
+@pytest.mark.parametrize("flags,match", [
+    (["--heal", "5"], "--heal needs --calibration"),
+    (["--sequential"], "--sequential needs --calibration"),
+    (["--method", "whiten"], "needs --calibration"),
+])
+def test_calibration_only_options_say_so(data, flags, match):
+    rc, out, err = _shrink(data, *flags)
+    assert rc == 2 and match in out["error"] and "--calibration" in out["fix"]
+
+
+def test_sweep_with_calibration_and_with_cache(data):
+    rc, out, _ = _run(["sweep", "-m", MODEL, "-c", str(data / "calibration.safetensors"), "--budgets", "0.3,0.1",
+                       "--json", "-q"])
+    assert rc == 0 and [r["budget"] for r in json.loads(out)["rows"]] == [0.3, 0.1]
+    cache = data / "cache"
+    first = _run(["sweep", "-m", MODEL, "--budgets", "0.3,0.1", "--cache", str(cache), "--workers", "2", "--json", "-q"])
+    again = _run(["sweep", "-m", MODEL, "--budgets", "0.3,0.1", "--cache", str(cache), "--json", "-q"])
+    assert first[0] == again[0] == 0 and any(cache.iterdir())
+    rows = lambda r: [(x["budget"], x["params_after"], x["relative_l2"]) for x in json.loads(r[1])["rows"]]  # noqa: E731
+    assert rows(first) == rows(again)
