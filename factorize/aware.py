@@ -47,8 +47,17 @@ samples barely explore keep the original weights (generalised ridge regression t
 Kennard, Technometrics 1970, from memory) -- then W' = U_r U_r^T W_ls with U from W_ls L. The least-squares
 residual (no rank can remove it) is added to the predicted error.
 
-Factors: ``factors(r)`` returns B = U_r diag(sqrt(a)) and A = diag(1/sqrt(a)) U_r^T W (a_i = ||u_i^T W||), so
-B @ A = U_r U_r^T W exactly and each rank-one term is split evenly between the two factors by weight norm.
+**Output weighting** (``output_gram=G``, see :func:`factorize.calibrate.collect_output_grams`): not every output
+direction of a layer matters equally downstream. With G the mean Gauss-Newton matrix of the final output with
+respect to the layer's output, trace(G dW C dW^T) approximates the final-output error of a weight error dW
+(first order, Kronecker-factored as in K-FAC, Martens & Grosse 2015). Write G + mu I = R^2 (R symmetric, mu =
+0.1 * mean(diag G), a judgement call that keeps R^{-1} well conditioned); the rank-r minimiser of
+||R (W - W') L||_F is W' = R^{-1} U_r U_r^T R W with U_r the top left singular vectors of R W L (Eckart-Young
+applied to R W L; R and L invertible), a two-sided version of the whitening above and of Fisher-weighted SVD
+(Hsu et al. 2022). Errors are then in final-output units, comparable across layers.
+
+Factors: ``factors(r)`` returns B = U_r diag(c) and A = diag(1/c) U_r^T W with c_i = sqrt(||u_i^T W|| / ||u_i||),
+so B @ A = U_r U_r^T W exactly and each rank-one term is split evenly between the two factors by weight norm.
 """
 
 from __future__ import annotations
@@ -72,13 +81,15 @@ DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
 FEW_SAMPLES_RIDGE = 1e-2  # relative ridge when a layer saw fewer samples than its input width (a judgement call)
 REFIT_RIDGE = 1e-3  # relative ridge of the sequential least-squares step
 DEFAULT_ALPHA = 0.5  # ASVD's scaling exponent (Yuan et al. 2023)
+OUTPUT_RIDGE = 0.1  # relative ridge on the output Gram matrix (a judgement call; keeps R^{-1} well conditioned)
 
 
 @dataclass
 class AwareSpectrum(Spectrum):
     """A :class:`~factorize.decompose.Spectrum` whose errors are output errors on the calibration inputs.
 
-    ``U`` (m x k) are the kept output directions, ``S`` the singular values of the whitened (or scaled) matrix,
+    ``U`` (m x k) are the kept output directions (orthonormal unless output-weighted: then R^{-1} U), ``S`` the
+    singular values of the whitened (or scaled) matrix,
     and ``Vh`` = diag(1/S) U^T W_target, so ``U_r diag(S_r) Vh_r = U_r U_r^T W_target`` as for any spectrum.
     ``energy[i]`` is the output energy (squared Frobenius error on the calibration inputs) that direction i
     removes; ``total_energy`` is the output energy of the layer, trace(W C W^T), plus ``residual`` for a refit.
@@ -99,9 +110,12 @@ class AwareSpectrum(Spectrum):
         if not 1 <= rank <= self.computed_rank:
             raise FactorizeError(f"rank {rank} is outside 1..{self.computed_rank} for this spectrum")
         rows = self.S[:rank, None] * self.Vh[:rank]  # (r, n) = U_r^T W_target
-        norms = torch.linalg.vector_norm(rows, dim=1)  # (r,)
-        root = torch.where(norms > 0, norms, torch.ones_like(norms)).sqrt()
-        return self.U[:, :rank] * root, rows / root[:, None]  # (m, r), (r, n)
+        cols = self.U[:, :rank]  # (m, r)
+        a = torch.linalg.vector_norm(rows, dim=1)  # (r,)
+        b = torch.linalg.vector_norm(cols, dim=0)  # (r,)
+        ok = (a > 0) & (b > 0)
+        c = torch.where(ok, a / torch.where(ok, b, torch.ones_like(b)), torch.ones_like(a)).sqrt()  # sqrt(a / b)
+        return cols * c, rows / c[:, None]  # (m, r), (r, n): column i of B and row i of A have equal norms
 
     def bias_shift(self, rank: int) -> torch.Tensor | None:
         """Vector to add to the layer's bias at ``rank``: W mu_ref - W'_r mu (None when not centred)."""
@@ -167,6 +181,8 @@ def decompose_aware(
     center: bool = False,
     ridge: float | None = None,
     refit_ridge: float = REFIT_RIDGE,
+    output_gram: torch.Tensor | None = None,
+    output_ridge: float = OUTPUT_RIDGE,
     solver: str = "gram",
     rank: int | None = None,
     seed: int = 0,
@@ -185,6 +201,10 @@ def decompose_aware(
             (:meth:`AwareSpectrum.bias_shift`); only for layers with a bias.
         ridge: relative ridge on C (default: 1e-6, or 1e-2 when the layer saw fewer samples than its width).
         refit_ridge: relative ridge of the sequential least-squares step.
+        output_gram: G (m x m), how much each output direction moves the final output
+            (:func:`factorize.calibrate.collect_output_grams`); when given, the error is weighted on both sides,
+            ||G^{1/2} (W - W') L||_F, and errors are in final-output units (see the module docstring).
+        output_ridge: relative ridge on G (G + mu I, mu = output_ridge * mean(diag G)).
         solver: SVD algorithm of :func:`factorize.decompose.decompose` on the whitened matrix (``"gram"``,
             ``"exact"``, ``"randomized"`` or ``"auto"``; the last two compute only ``rank`` triplets).
         rank: how many triplets a partial solver must compute.
@@ -206,13 +226,19 @@ def decompose_aware(
                              fix="repair or retrain the layer, or exclude it")
     out_dtype = compute_dtype_for(W, precision)
     W64 = W.to(device=_device_of(stats, W), dtype=torch.float64)
+    left = _left_weight(output_gram, W64, output_ridge, name)
+    if left is not None and method != "whiten":
+        raise FactorizeError(f"{name}: output weighting needs method='whiten'", fix="use method='whiten'")
     if stats.cross is not None:
-        return _refit(W64, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha)
+        return _refit(W64, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha,
+                      left)
     C, mu = _moments(stats, center and not stats.is_diagonal)
     diag = stats.diagonal if C is None else C.diagonal()
     lam = _ridge_for(stats, diag, ridge)
     if method == "whiten":
         Z = W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam)  # (m, n) = W L
+        if left is not None:
+            Z = left[0] @ Z  # (m, n) = R W L
         spec = decompose(Z, method=solver, rank=rank, seed=seed, precision="float64", name=name)
         energy, total = spec.energies(), spec.total_energy
     else:
@@ -223,7 +249,7 @@ def decompose_aware(
         energy = ((spec.U.T @ M) * spec.U.T).sum(1).cpu().numpy()  # u_i^T M u_i
         total = float(M.trace())
     return _finish(W64, spec, energy, total, 0.0, mu if center else None, mu, lam, stats.count, out_dtype,
-                   method)
+                   method, left=left)
 
 
 def _device_of(stats: InputStats, W: torch.Tensor) -> torch.device:
@@ -237,11 +263,34 @@ def _output_gram(W: torch.Tensor, C: torch.Tensor | None, diag: torch.Tensor, la
     return W @ C @ W.T + lam * (W @ W.T)
 
 
+def _left_weight(G: torch.Tensor | None, W: torch.Tensor, rel: float, name: str):
+    """(R, R^{-1}) with R = (G + mu I)^{1/2} symmetric, or None without an output Gram matrix."""
+    if G is None:
+        return None
+    G = torch.as_tensor(G).to(device=W.device, dtype=torch.float64)
+    m = W.shape[0]
+    if tuple(G.shape) != (m, m):
+        raise FactorizeError(f"{name}: the output weights are {tuple(G.shape)}, the layer has {m} outputs",
+                             fix="collect them on the same model and layer")
+    if not bool(torch.isfinite(G).all()):
+        raise FactorizeError(f"{name}: the output weights hold NaN or Inf values")
+    mean_diag = float(G.diagonal().mean())
+    mu = rel * mean_diag if mean_diag > 0 else 1.0
+    evals, evecs = torch.linalg.eigh(G + mu * torch.eye(m, dtype=G.dtype, device=G.device))
+    evals = evals.clamp_min(mu)  # G is PSD: the ridge is the floor
+    return (evecs * evals.sqrt()) @ evecs.T, (evecs / evals.sqrt()) @ evecs.T
+
+
 def _finish(W_target, spec, energy, total, residual, mu_ref, mu, lam, count, out_dtype, method,
-            W_ref: torch.Tensor | None = None) -> AwareSpectrum:
-    """Build the AwareSpectrum: Vh = diag(1/S) U^T W_target (so U S Vh = U U^T W_target)."""
+            W_ref: torch.Tensor | None = None, left=None) -> AwareSpectrum:
+    """Build the AwareSpectrum: Vh = diag(1/S) U^T W_target (so U S Vh = U U^T W_target). With an output weight R,
+    the kept directions are R^{-1} U and the rows U^T R W_target."""
     U = spec.U.to(torch.float64)  # (m, k)
-    rows = U.T @ W_target  # (k, n)
+    if left is not None:
+        rows = U.T @ left[0] @ W_target  # (k, n)
+        U = left[1] @ U  # (m, k), no longer orthonormal
+    else:
+        rows = U.T @ W_target  # (k, n)
     S = spec.S.to(torch.float64)
     safe = torch.where(S > 0, S, torch.ones_like(S))
     Vh = torch.where((S > 0)[:, None], rows / safe[:, None], torch.zeros_like(rows))
@@ -257,7 +306,7 @@ def _finish(W_target, spec, energy, total, residual, mu_ref, mu, lam, count, out
     )
 
 
-def _refit(W, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha):
+def _refit(W, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha, left=None):
     """Sequential refit: reduced-rank regression of the original outputs on the current inputs (Izenman 1975)."""
     if method != "whiten":
         raise FactorizeError(f"{name}: the sequential refit needs method='whiten'", fix="use method='whiten'")
@@ -276,12 +325,15 @@ def _refit(W, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, 
     # ridge towards the original weight: argmin ||W X_ref^T - W_t X^T||^2 + lam ||W_t - W||^2
     W_ls = torch.linalg.solve(C + lam_ls * eye, (W @ C_rx + lam_ls * W).T).T  # (m, n) = (W C_rx + lam W)(C + lam I)^-1
     lam = _ridge_for(stats, C.diagonal(), ridge)
-    spec = decompose(W_ls @ _sqrt_factor(C, lam), method=solver, rank=rank, seed=seed, precision="float64", name=name)
-    # least-squares residual ||W X_ref^T - W_ls X^T||^2 = tr(W C_ref W^T) - 2 tr(W C_rx W_ls^T) + tr(W_ls C W_ls^T)
-    residual = float(((W @ C_ref) * W).sum() - 2 * ((W @ C_rx) * W_ls).sum() + ((W_ls @ C) * W_ls).sum())
+    Z = W_ls @ _sqrt_factor(C, lam)  # (m, n)
+    Rw, Rls = (W, W_ls) if left is None else (left[0] @ W, left[0] @ W_ls)
+    spec = decompose(Z if left is None else left[0] @ Z, method=solver, rank=rank, seed=seed, precision="float64",
+                     name=name)
+    # least-squares residual ||R(W X_ref^T - W_ls X^T)||^2 = tr(Rw C_ref Rw^T) - 2 tr(Rw C_rx Rls^T) + tr(Rls C Rls^T)
+    residual = float(((Rw @ C_ref) * Rw).sum() - 2 * ((Rw @ C_rx) * Rls).sum() + ((Rls @ C) * Rls).sum())
     residual = max(residual, 0.0)
     return _finish(W_ls, spec, spec.energies(), spec.total_energy, residual, mu_ref if center else None, mu, lam,
-                   N, out_dtype, method, W_ref=W)
+                   N, out_dtype, method, W_ref=W, left=left)
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -299,6 +351,8 @@ def aware_spectra(
     ridge: float | None = None,
     solver: str = "gram",
     ranks: Mapping[str, int] | None = None,
+    output_grams: Mapping[str, torch.Tensor] | None = None,
+    output_ridge: float = OUTPUT_RIDGE,
     seed: int = 0,
     precision: str | None = None,
     progress: bool = False,
@@ -306,6 +360,7 @@ def aware_spectra(
     """Activation-aware spectrum of every site from its statistics.
 
     ``center="auto"`` centres (with bias correction) the layers that have a bias and are not embeddings.
+    ``output_grams`` (from :func:`factorize.calibrate.collect_output_grams`) weight each site's output directions.
     A site with no statistics, or whose statistics hold no sample, is an error listing every such site.
     """
     sites = list(sites)
@@ -320,8 +375,10 @@ def aware_spectra(
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
         c = _center_for(site, center)
         k = (ranks or {}).get(site.name)
+        G = (output_grams or {}).get(site.name)
         out[site.name] = decompose_aware(W, stats[site.name], method=method, alpha=alpha, center=c, ridge=ridge,
-                                         solver=solver, rank=k, seed=seed, precision=precision, name=site.name)
+                                         output_gram=G, output_ridge=output_ridge, solver=solver, rank=k, seed=seed,
+                                         precision=precision, name=site.name)
     return out
 
 
@@ -361,6 +418,8 @@ def compress_sequential(
     ridge: float | None = None,
     refit: bool = True,
     refit_ridge: float = REFIT_RIDGE,
+    output_grams: Mapping[str, torch.Tensor] | None = None,
+    output_ridge: float = OUTPUT_RIDGE,
     precision: str | None = None,
     progress: bool = False,
 ) -> tuple[nn.Module, dict[str, AwareSpectrum]]:
@@ -376,7 +435,8 @@ def compress_sequential(
         center: as for :func:`aware_spectra`.
         refit: fit the original layer's outputs from the compressed model's inputs (reduced-rank regression
             with a least-squares step, Izenman 1975); False only re-whitens with the new inputs.
-        refit_ridge / ridge / precision: see :func:`decompose_aware`.
+        refit_ridge / ridge / output_grams / output_ridge / precision: see :func:`decompose_aware`
+            (output weights are those of the original model).
         progress: progress bars on stderr.
 
     Returns:
@@ -403,7 +463,8 @@ def compress_sequential(
             pair.cross = None
         W = matrix_of(get_module(model, name), site.kind)
         spec = decompose_aware(W, pair, method=method, center=_center_for(site, center), ridge=ridge,
-                               refit_ridge=refit_ridge, precision=precision, name=name)
+                               refit_ridge=refit_ridge, output_gram=(output_grams or {}).get(name),
+                               output_ridge=output_ridge, precision=precision, name=name)
         r = min(int(plan["sites"][name]["rank"]), spec.computed_rank)
         B, A = spec.factors(r)
         layer = factor_module(get_module(target, name), site.kind, B, A)

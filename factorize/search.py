@@ -36,7 +36,7 @@ from torch import nn
 
 from factorize.api import CompressResult, apply_plan
 from factorize.aware import AWARE_METHODS, REFIT_RIDGE, apply_bias_shifts, aware_spectra, compress_sequential
-from factorize.calibrate import as_batch_list, collect_stats
+from factorize.calibrate import as_batch_list, collect_output_grams, collect_stats
 from factorize.count import count_parameters
 from factorize.errors import DriftLimitExceeded, FactorizeError
 from factorize.evaluate import output_drift, token_mask
@@ -123,20 +123,63 @@ def measure_drift(
 # the calibrated pipeline
 
 
-def _check_options(method: str, metric: str) -> None:
-    if method not in AWARE_METHODS:
-        raise FactorizeError(f"unknown activation-aware method {method!r}", fix=f"use one of {', '.join(AWARE_METHODS)}")
-    if metric not in DRIFT_METRICS:
-        raise FactorizeError(f"unknown drift metric {metric!r}", fix=f"use one of {', '.join(DRIFT_METRICS)}")
+SENSITIVITY_MODES = ("probes", "gradients", "both")
 
 
-class _Prepared:
-    """Everything computed once per model and calibration set: sites, statistics, spectra, sensitivity."""
+def _sensitivity_mode(sensitivity: bool | str) -> str | None:
+    if sensitivity is True:
+        return "both"
+    if sensitivity is False or sensitivity is None:
+        return None
+    if sensitivity not in SENSITIVITY_MODES:
+        raise FactorizeError(f"unknown sensitivity mode {sensitivity!r}",
+                             fix="use True (= 'both'), 'probes', 'gradients', 'both' or False")
+    return sensitivity
 
-    def __init__(self, model, calibration, *, include, exclude, method, alpha, center, ridge, sensitivity,
-                 sensitivity_batches, output_fn, fractions, precision, progress, per_site, solver="gram",
-                 multiple=1):
-        self.model = model
+
+def auto_fractions(budget: float | None) -> tuple[float, float]:
+    """Probe ranks near the operating point: the budget and half of it (0.5 and 0.25 without a budget)."""
+    if budget is None:
+        return (0.5, 0.25)
+    b = min(max(float(budget), 0.02), 0.9)
+    return (b, b / 2)
+
+
+class Calibration:
+    """Everything computed once per model and calibration set -- sites, input statistics, output weights,
+    activation-aware spectra, measured sensitivity -- so that many budgets can be tried cheaply.
+
+    Args:
+        model: the original model (only read).
+        calibration: sample-input batches (batch contract).
+        include / exclude: glob patterns for the sites.
+        method / alpha / center / ridge / solver / precision: of :func:`factorize.aware.aware_spectra`.
+        sensitivity: False; ``"probes"`` (per-layer weights from truncation probes, :mod:`factorize.sensitivity`);
+            ``"gradients"`` (output directions weighted by the final output's Gauss-Newton matrix,
+            :func:`factorize.calibrate.collect_output_grams`); ``"both"`` or True (gradients, then probes).
+        sensitivity_batches: probe inputs (default: the calibration batches).
+        fractions: probe ranks as fractions of each layer's parameters.
+        projections: random projections per batch for the output weights.
+        output_fn: ``output_fn(output, batch) -> tensor``: the output that matters (default: the primary one).
+        per_site: collect input statistics one layer at a time.
+        progress: progress bars on stderr.
+    """
+
+    def __init__(self, model: nn.Module, calibration: Iterable[Any], *, include=None, exclude=None,
+                 method: str = "whiten", alpha: float = 0.5, center: bool | str = "auto", ridge: float | None = None,
+                 solver: str = "gram", precision: str | None = None, sensitivity: bool | str = False,
+                 sensitivity_batches: Iterable[Any] | None = None, fractions: tuple[float, ...] = (0.5, 0.25),
+                 projections: int = 2, output_fn: Callable | None = None, multiple: int = 1,
+                 per_site: bool = False, progress: bool = False) -> None:
+        if method not in AWARE_METHODS:
+            raise FactorizeError(f"unknown activation-aware method {method!r}",
+                                 fix=f"use one of {', '.join(AWARE_METHODS)}")
+        mode = _sensitivity_mode(sensitivity)
+        if mode in ("gradients", "both") and method != "whiten":
+            raise FactorizeError("gradient sensitivity weights output directions of the whitened problem",
+                                 fix="use method='whiten', or sensitivity='probes'")
+        self.model, self.method, self.center, self.ridge, self.precision = model, method, center, ridge, precision
+        self.output_fn, self.progress, self.mode = output_fn, progress, mode
         self.found = walk(model, include=include, exclude=exclude)
         if not self.found.sites:
             raise FactorizeError("no factorizable layer found" + (" matching the include/exclude patterns"
@@ -145,27 +188,52 @@ class _Prepared:
         self.batches = as_batch_list(calibration)
         self.todo = [s for s in self.found.sites if not s.tied_with]
         self.stats = collect_stats(model, self.todo, self.batches, progress=progress, per_site=per_site)
+        self.output_grams = None
+        if mode in ("gradients", "both"):
+            self.output_grams = collect_output_grams(model, self.todo, self.batches, projections=projections,
+                                                     output_fn=output_fn, progress=progress)
         ranks = None
         if solver in ("auto", "randomized"):  # past break-even a layer stays dense: no more triplets needed
             ranks = {s.name: max(1, min(s.max_rank, s.break_even + multiple)) for s in self.todo}
         self.spectra = aware_spectra(model, self.todo, self.stats, method=method, alpha=alpha, center=center,
-                                     ridge=ridge, solver=solver, ranks=ranks, precision=precision, progress=progress)
-        self.sensitivity = None
-        if sensitivity:
-            probe = as_batch_list(sensitivity_batches) if sensitivity_batches is not None else self.batches
-            self.sensitivity = measure_sensitivity(model, self.todo, self.spectra, probe, fractions=fractions,
-                                                   output_fn=output_fn, progress=progress)
-        self.error_scale = self.sensitivity.error_scale() if self.sensitivity else None
+                                     ridge=ridge, solver=solver, ranks=ranks, output_grams=self.output_grams,
+                                     precision=precision, progress=progress)
+        self.sensitivity: Sensitivity | None = None
+        self.probe_batches = as_batch_list(sensitivity_batches) if sensitivity_batches is not None else self.batches
+        self.fractions = tuple(fractions)
+        if mode in ("probes", "both"):
+            self.measure(self.fractions)
 
-    def plan(self, policy: Policy, method: str) -> dict:
-        return choose_ranks(self.found.sites, self.spectra, policy, method=method, error_scale=self.error_scale)
+    def measure(self, fractions: tuple[float, ...]) -> Sensitivity:
+        """(Re)measure the probes at these rank fractions; later plans use the new weights."""
+        self.fractions = tuple(fractions)
+        self.sensitivity = measure_sensitivity(self.model, self.todo, self.spectra, self.probe_batches,
+                                               fractions=self.fractions, output_fn=self.output_fn,
+                                               progress=self.progress)
+        return self.sensitivity
 
-    def build(self, plan: dict, *, sequential: bool, method: str, center, ridge, refit: bool, refit_ridge: float,
-              precision, progress: bool) -> nn.Module:
+    @property
+    def error_scale(self) -> dict[str, float] | None:
+        """Weights for the budget allocator: measured (probes), 1 per layer (output-weighted spectra are already in
+        final-output units), or None (each layer's own relative error)."""
+        if self.sensitivity is not None:
+            return self.sensitivity.error_scale()
+        if self.output_grams is not None:
+            return {s.name: 1.0 for s in self.todo}
+        return None
+
+    def plan(self, policy: Policy) -> dict:
+        """Ranks for ``policy`` from the stored spectra (and sensitivity)."""
+        return choose_ranks(self.found.sites, self.spectra, policy, method=self.method, error_scale=self.error_scale)
+
+    def build(self, plan: dict, *, sequential: bool = False, refit: bool = True,
+              refit_ridge: float = REFIT_RIDGE) -> nn.Module:
+        """A compressed copy of the model for ``plan``: per-layer factors with bias correction, or sequential."""
         if sequential:
-            model, seq_spectra = compress_sequential(self.model, plan, self.batches, method=method, center=center,
-                                                     ridge=ridge, refit=refit, refit_ridge=refit_ridge,
-                                                     precision=precision, progress=progress)
+            model, seq_spectra = compress_sequential(
+                self.model, plan, self.batches, method=self.method, center=self.center, ridge=self.ridge,
+                refit=refit, refit_ridge=refit_ridge, output_grams=self.output_grams, precision=self.precision,
+                progress=self.progress)
             for name, spec in seq_spectra.items():  # predicted errors of the factors actually built
                 e = plan["sites"][name]
                 e["predicted_error"] = spec.relative_error(e["rank"])
@@ -175,20 +243,19 @@ class _Prepared:
         apply_bias_shifts(model, plan, self.spectra)
         return model
 
-    def annotate(self, plan: dict, *, method: str, sequential: bool) -> None:
+    def annotate(self, plan: dict, *, sequential: bool) -> None:
         """Record how the plan was calibrated (JSON-serialisable, carried into saved files)."""
         plan["calibration"] = {
-            "method": method,
+            "method": self.method,
             "sequential": bool(sequential),
+            "sensitivity": self.mode,
             "batches": len(self.batches),
             "samples": {name: st.count for name, st in self.stats.items()},
-            "sensitivity": None if self.sensitivity is None else {
+            "probes": None if self.sensitivity is None else {
                 "metric": self.sensitivity.metric, "forward_passes": self.sensitivity.forward_passes,
-                "weights": self.sensitivity.error_scale()},
+                "fractions": list(self.fractions), "weights": self.sensitivity.error_scale()},
+            "predicted_error": "final-output units" if self.output_grams is not None else "layer output",
         }
-        for name, e in plan["sites"].items():
-            if name in self.spectra:
-                e["predicted_error_space"] = "output"
 
 
 def compress_calibrated(
@@ -201,17 +268,10 @@ def compress_calibrated(
     keep: float | None = None,
     include: str | Iterable[str] | None = None,
     exclude: str | Iterable[str] | None = None,
-    method: str = "whiten",
-    alpha: float = 0.5,
-    center: bool | str = "auto",
-    ridge: float | None = None,
     sequential: bool = False,
     refit: bool = True,
     refit_ridge: float = REFIT_RIDGE,
-    sensitivity: bool = False,
-    sensitivity_batches: Iterable[Any] | None = None,
-    fractions: tuple[float, ...] = (0.5, 0.25),
-    output_fn: Callable[[Any, Any], torch.Tensor] | None = None,
+    fractions: tuple[float, ...] | str = "auto",
     max_drift: float | None = None,
     heldout: Iterable[Any] | None = None,
     metric: str = "relative_l2",
@@ -221,10 +281,7 @@ def compress_calibrated(
     overrides: Iterable[Override | Mapping] | None = None,
     cost: str = "params",
     inplace: bool = False,
-    precision: str | None = None,
-    progress: bool = False,
-    per_site: bool = False,
-    solver: str = "gram",
+    **options: Any,
 ) -> CalibratedResult:
     """Activation-aware compression from calibration batches (see the module docstring).
 
@@ -233,46 +290,41 @@ def compress_calibrated(
         calibration: sample-input batches (batch contract). Their inputs set each layer's statistics; keep
             them disjoint from the inputs you evaluate on.
         budget / rank / energy / keep: the rank policy (exactly one, unless ``max_drift`` is given).
-        method: ``"whiten"`` (reduced-rank regression, the optimum per layer) or ``"scale"`` (ASVD).
-        alpha / center / ridge: see :func:`factorize.aware.decompose_aware`.
         sequential: factor layers in forward order from the partly compressed model's inputs.
-        refit / refit_ridge: sequential only: fit the original outputs (see :func:`factorize.aware.compress_sequential`).
-        sensitivity: allocate ranks by measured final-output sensitivity (:mod:`factorize.sensitivity`); costs
-            one pass over ``sensitivity_batches`` (default: the calibration batches) per site and probe rank.
-        fractions / output_fn: probe ranks and what output to compare (e.g. a pooled sentence embedding).
+        refit / refit_ridge: sequential only (see :func:`factorize.aware.compress_sequential`).
+        fractions: probe ranks for ``sensitivity`` (``"auto"``: the budget and half of it, see
+            :func:`auto_fractions`).
         max_drift: search for the smallest budget whose drift on ``heldout`` is at most this (see
             :func:`search_drift`); replaces the rank policy.
         heldout / metric / budgets / tolerance: of the drift search.
-        multiple / overrides / cost / inplace / precision / progress: as for :func:`factorize.compress`.
-        per_site: collect statistics one layer at a time (bounded memory for big models).
-        solver: SVD algorithm for the whitened matrices (``"gram"``, ``"exact"``, ``"randomized"``, ``"auto"``).
+        multiple / overrides / cost / inplace: as for :func:`factorize.compress`.
+        options: for :class:`Calibration` -- method (``"whiten"``/``"scale"``), alpha, center, ridge, solver,
+            precision, sensitivity (False, True, ``"probes"``, ``"gradients"``, ``"both"``),
+            sensitivity_batches, projections, output_fn, per_site, progress.
     """
-    _check_options(method, metric)
+    if metric not in DRIFT_METRICS:
+        raise FactorizeError(f"unknown drift metric {metric!r}", fix=f"use one of {', '.join(DRIFT_METRICS)}")
     if max_drift is not None:
         if any(v is not None for v in (budget, rank, energy, keep)):
             raise FactorizeError("max_drift= chooses the budget itself; it cannot be combined with a rank policy",
                                  fix="drop budget=/rank=/energy=/keep=, or drop max_drift=")
         return search_drift(model, max_drift, calibration, heldout, include=include, exclude=exclude,
-                            method=method, alpha=alpha, center=center, ridge=ridge, sequential=sequential,
-                            refit=refit, refit_ridge=refit_ridge, sensitivity=sensitivity,
-                            sensitivity_batches=sensitivity_batches, fractions=fractions, output_fn=output_fn,
-                            metric=metric, budgets=budgets, tolerance=tolerance, multiple=multiple,
-                            overrides=overrides, cost=cost, inplace=inplace, precision=precision, progress=progress,
-                            per_site=per_site, solver=solver)
+                            sequential=sequential, refit=refit, refit_ridge=refit_ridge,
+                            fractions=(0.5, 0.25) if fractions == "auto" else fractions, metric=metric,
+                            budgets=budgets, tolerance=tolerance, multiple=multiple, overrides=overrides, cost=cost,
+                            inplace=inplace, **options)
     ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
     policy = Policy(rank=rank, energy=energy, keep=keep, budget=budget, multiple=multiple, overrides=ov, cost=cost)
-    prep = _Prepared(model, calibration, include=include, exclude=exclude, method=method, alpha=alpha,
-                     center=center, ridge=ridge, sensitivity=sensitivity, sensitivity_batches=sensitivity_batches,
-                     output_fn=output_fn, fractions=fractions, precision=precision, progress=progress,
-                     per_site=per_site, solver=solver, multiple=multiple)
-    plan = prep.plan(policy, method)
-    compressed = prep.build(plan, sequential=sequential, method=method, center=center, ridge=ridge, refit=refit,
-                            refit_ridge=refit_ridge, precision=precision, progress=progress)
-    prep.annotate(plan, method=method, sequential=sequential)
-    return _result(model, compressed, plan, prep, inplace)
+    fr = auto_fractions(budget if budget is not None else keep) if fractions == "auto" else fractions
+    calib = Calibration(model, calibration, include=include, exclude=exclude, fractions=fr, multiple=multiple,
+                        **options)
+    plan = calib.plan(policy)
+    compressed = calib.build(plan, sequential=sequential, refit=refit, refit_ridge=refit_ridge)
+    calib.annotate(plan, sequential=sequential)
+    return _result(model, compressed, plan, calib, inplace)
 
 
-def _result(model: nn.Module, compressed: nn.Module, plan: dict, prep: _Prepared, inplace: bool,
+def _result(model: nn.Module, compressed: nn.Module, plan: dict, calib: Calibration, inplace: bool,
             search: DriftSearch | None = None) -> CalibratedResult:
     params_before = count_parameters(model)
     if inplace:  # swap the factored layers into the caller's model object (all built first, so nothing half-done)
@@ -281,9 +333,9 @@ def _result(model: nn.Module, compressed: nn.Module, plan: dict, prep: _Prepared
                 set_module(model, name, get_module(compressed, name))
         compressed = model
     return CalibratedResult(
-        model=compressed, plan=plan, sites=prep.found, spectra=dict(prep.spectra), params_before=params_before,
-        params_after=count_parameters(compressed), stats={k: v.to_dict() for k, v in prep.stats.items()},
-        sensitivity=prep.sensitivity, search=search,
+        model=compressed, plan=plan, sites=calib.found, spectra=dict(calib.spectra), params_before=params_before,
+        params_after=count_parameters(compressed), stats={k: v.to_dict() for k, v in calib.stats.items()},
+        sensitivity=calib.sensitivity, search=search,
     )
 
 
@@ -302,25 +354,14 @@ def search_drift(
     tolerance: float = DEFAULT_TOLERANCE,
     include: str | Iterable[str] | None = None,
     exclude: str | Iterable[str] | None = None,
-    method: str = "whiten",
-    alpha: float = 0.5,
-    center: bool | str = "auto",
-    ridge: float | None = None,
     sequential: bool = False,
     refit: bool = True,
     refit_ridge: float = REFIT_RIDGE,
-    sensitivity: bool = False,
-    sensitivity_batches: Iterable[Any] | None = None,
-    fractions: tuple[float, ...] = (0.5, 0.25),
-    output_fn: Callable[[Any, Any], torch.Tensor] | None = None,
     multiple: int = 1,
     overrides: Iterable[Override | Mapping] | None = None,
     cost: str = "params",
     inplace: bool = False,
-    precision: str | None = None,
-    progress: bool = False,
-    per_site: bool = False,
-    solver: str = "gram",
+    **options: Any,
 ) -> CalibratedResult:
     """The smallest budget whose measured drift on ``heldout`` stays at most ``max_drift``.
 
@@ -328,11 +369,14 @@ def search_drift(
         model: the trained model; not modified unless ``inplace=True``.
         max_drift: the limit, in ``metric`` units (relative L2 by default; 1 - mean cosine for ``"cosine"``).
         calibration: batches for the statistics (and the sensitivity probes).
-        heldout: batches to measure drift on; None measures on the calibration batches (optimistic: say so).
+        heldout: batches to measure drift on; None measures on the calibration batches (optimistic: the
+            result's ``search.heldout`` is then False).
+        metric: ``"relative_l2"`` or ``"cosine"``.
         budgets: the (smallest, largest) budget searched; tolerance: bisection stops at this bracket width.
-        sequential: build the final model sequentially (the search itself uses per-layer factors, which is
-            conservative: the sequential model's drift is re-measured and reported).
-        Other arguments: see :func:`compress_calibrated`.
+        sequential: build the final model sequentially (the search itself uses per-layer factors; the sequential
+            model's drift is re-measured, and it is kept only if it drifts less).
+        options: for :class:`Calibration` (method, sensitivity, output_fn, ...); ``output_fn`` also defines the
+            output the drift is measured on.
 
     Returns:
         :class:`CalibratedResult` at the chosen budget; ``.search`` holds every budget walked and its drift.
@@ -340,31 +384,27 @@ def search_drift(
     Raises:
         DriftTargetUnreachable: even ``budgets[1]`` drifts more than ``max_drift`` (carries the closest point).
     """
-    _check_options(method, metric)
+    if metric not in DRIFT_METRICS:
+        raise FactorizeError(f"unknown drift metric {metric!r}", fix=f"use one of {', '.join(DRIFT_METRICS)}")
     lo, hi = _check_search(max_drift, budgets, tolerance)
     eval_batches = as_batch_list(heldout) if heldout is not None else as_batch_list(calibration)
-    prep = _Prepared(model, calibration, include=include, exclude=exclude, method=method, alpha=alpha, center=center,
-                     ridge=ridge, sensitivity=sensitivity, sensitivity_batches=sensitivity_batches,
-                     output_fn=output_fn, fractions=fractions, precision=precision, progress=progress,
-                     per_site=per_site, solver=solver, multiple=multiple)
+    options.setdefault("fractions", (0.5, 0.25))
+    calib = Calibration(model, calibration, include=include, exclude=exclude, multiple=multiple, **options)
+    output_fn = options.get("output_fn")
     reference = run_outputs(model, eval_batches, output_fn)
     ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
     search = DriftSearch(max_drift=max_drift, metric=metric, heldout=heldout is not None)
-    built: dict[float, tuple[dict, nn.Module]] = {}
+    plans: dict[float, dict] = {}
 
     def drift_at(b: float) -> float | None:
-        policy = Policy(budget=b, multiple=multiple, overrides=ov, cost=cost)
         try:
-            plan = prep.plan(policy, method)
+            plan = calib.plan(Policy(budget=b, multiple=multiple, overrides=ov, cost=cost))
         except FactorizeError as err:  # too small to hold rank 1 everywhere
             search.points.append(DriftPoint(b, None, None, note=str(err).splitlines()[0]))
             return None
-        candidate = prep.build(plan, sequential=False, method=method, center=center, ridge=ridge, refit=refit,
-                               refit_ridge=refit_ridge, precision=precision, progress=False)
-        d = measure_drift(reference, candidate, eval_batches, metric=metric, output_fn=output_fn)
-        kept = _kept_fraction(plan)
-        search.points.append(DriftPoint(b, d, kept))
-        built[b] = (plan, candidate)
+        d = measure_drift(reference, calib.build(plan), eval_batches, metric=metric, output_fn=output_fn)
+        search.points.append(DriftPoint(b, d, _kept_fraction(plan)))
+        plans[b] = plan
         return d
 
     d_hi = drift_at(hi)
@@ -382,22 +422,21 @@ def search_drift(
                 hi = good = mid
             else:
                 lo = mid
-    plan, compressed = built[good]
+    plan = plans[good]
     search.budget, search.drift = good, next(p.drift for p in search.points if p.budget == good)
+    compressed = calib.build(plan)  # rebuilt: only plans are kept during the walk, never many model copies
     if sequential:
-        plan = copy.deepcopy(plan)
-        seq_model = prep.build(plan, sequential=True, method=method, center=center, ridge=ridge, refit=refit,
-                               refit_ridge=refit_ridge, precision=precision, progress=progress)
+        seq_plan = copy.deepcopy(plan)
+        seq_model = calib.build(seq_plan, sequential=True, refit=refit, refit_ridge=refit_ridge)
         d_seq = measure_drift(reference, seq_model, eval_batches, metric=metric, output_fn=output_fn)
-        search.points.append(DriftPoint(good, d_seq, _kept_fraction(plan), note="sequential"))
+        search.points.append(DriftPoint(good, d_seq, _kept_fraction(seq_plan), note="sequential"))
         if d_seq <= search.drift:
-            compressed, search.drift = seq_model, d_seq
+            compressed, plan, search.drift = seq_model, seq_plan, d_seq
         else:  # keep the per-layer model, which was measured to meet the limit
             sequential = False
-            plan = built[good][0]
-    prep.annotate(plan, method=method, sequential=sequential)
+    calib.annotate(plan, sequential=sequential)
     plan["search"] = search.to_dict()
-    return _result(model, compressed, plan, prep, inplace, search=search)
+    return _result(model, compressed, plan, calib, inplace, search=search)
 
 
 def _check_search(max_drift, budgets, tolerance) -> tuple[float, float]:
@@ -435,7 +474,7 @@ def compress_from_api(
     aware_method: str | None,
     method: str,
     sequential: bool,
-    sensitivity: bool,
+    sensitivity: bool | str,
     max_drift: float | None,
     heldout,
     drift_metric: str,

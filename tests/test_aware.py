@@ -266,3 +266,28 @@ def test_sequential_mode_runs_in_forward_order():
         d_layer = float(torch.linalg.matrix_norm(per_layer(x) - ref) / torch.linalg.matrix_norm(ref))
     assert d_seq < d_layer
     assert all(p.requires_grad for p in seq.parameters())  # still a trainable model
+
+
+def test_output_weighted_whitening_is_two_sided_eckart_young():
+    # With an output weight R = (G + mu I)^{1/2} and input factor L, ||R (W - W') L||_F is minimised by
+    # W' = R^{-1} [R W L]_r L^{-1} (Eckart-Young on R W L, R and L invertible); reference via numpy's SVD.
+    W, X = _case(14, 18, 300, seed=21)
+    g = torch.Generator().manual_seed(22)
+    J = torch.randn(6, 14, generator=g, dtype=torch.float64)
+    G = J.T @ J / 6  # rank 6 of 14: the ridge makes it invertible
+    spec = decompose_aware(W, _stats_from(X), ridge=0.0, output_gram=G, output_ridge=0.1)
+    mu = 0.1 * float(G.diagonal().mean())
+    e, V = np.linalg.eigh(G.numpy() + mu * np.eye(14))
+    R = (V * np.sqrt(e)) @ V.T
+    C = (X.T @ X).numpy()
+    Lc = np.linalg.cholesky(C)
+    U, s, Vt = np.linalg.svd(R @ W.numpy() @ Lc)
+    for r in (1, 5, 10):
+        reference = np.linalg.solve(R, (U[:, :r] * s[:r]) @ Vt[:r]) @ np.linalg.inv(Lc)
+        B, A = spec.factors(r)
+        np.testing.assert_allclose((B @ A).numpy(), reference, rtol=1e-6, atol=1e-7 * np.abs(reference).max())
+        measured = np.linalg.norm(R @ (W.numpy() - (B @ A).numpy()) @ X.numpy().T)
+        assert spec.error(r) == pytest.approx(measured, rel=1e-6)
+        torch.testing.assert_close(B.norm(dim=0), A.norm(dim=1), rtol=1e-8, atol=1e-10)  # balanced factors
+    with pytest.raises(FactorizeError, match="output weights are"):
+        decompose_aware(W, _stats_from(X), output_gram=torch.eye(5, dtype=torch.float64))

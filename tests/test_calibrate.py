@@ -146,3 +146,30 @@ def test_forward_order_and_pair_stats(mlp):
     for t in (pair.second_moment, pair.reference_moment, pair.cross):
         torch.testing.assert_close(t, single.second_moment, rtol=1e-12, atol=1e-10)
     assert pair.count == 16
+
+
+def test_output_grams_match_exact_jacobians(mlp):
+    # G = (1/N) sum_t J_t^T J_t with J_t = d model(x_t) / d layer output. The random-projection estimate is
+    # unbiased (Hutchinson 1990: E[v v^T] = I); reference: exact Jacobians from torch.autograd.functional.
+    from factorize.calibrate import collect_output_grams
+
+    torch.manual_seed(6)
+    x = torch.randn(12, 24)
+    flags = [p.requires_grad for p in mlp.parameters()]
+    for p in mlp.parameters():
+        p.requires_grad_(False)  # a frozen model still works; flags are restored
+    grams = collect_output_grams(mlp, ["fc1", "fc2"], [x[:6], x[6:]], projections=600, seed=1)
+    assert all(not p.requires_grad for p in mlp.parameters()) and all(p.grad is None for p in mlp.parameters())
+    for p, f in zip(mlp.parameters(), flags):
+        p.requires_grad_(f)
+    h1 = mlp.fc1(x).detach()
+    h2 = mlp.fc2(torch.relu(h1)).detach()
+    tail = {"fc1": lambda h: mlp.head(torch.relu(mlp.fc2(torch.relu(h)))), "fc2": lambda h: mlp.head(torch.relu(h))}
+    for name, hs in (("fc1", h1), ("fc2", h2)):
+        exact = torch.zeros(48, 48, dtype=torch.float64)
+        for t in range(x.shape[0]):
+            J = torch.autograd.functional.jacobian(tail[name], hs[t]).double()  # (10, 48)
+            exact += J.T @ J
+        exact /= x.shape[0]
+        rel = float(torch.linalg.matrix_norm(grams[name] - exact) / torch.linalg.matrix_norm(exact))
+        assert rel < 0.1, (name, rel)  # Monte-Carlo error of 600 projections

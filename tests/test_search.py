@@ -67,7 +67,10 @@ def test_compress_calibrated_budget_and_sensitivity(digits):
     for r in (plain, sens):
         assert r.plan["policy"]["budget"] == 0.4 and r.plan["calibration"]["method"] == "whiten"
         assert r.plan["calibration"]["samples"]["fc1"] == 256
-    assert sens.plan["calibration"]["sensitivity"]["forward_passes"] > 0
+    assert sens.plan["calibration"]["sensitivity"] == "both"  # True: output weights, then probes
+    assert sens.plan["calibration"]["probes"]["forward_passes"] > 0
+    assert sens.plan["calibration"]["probes"]["fractions"] == [0.4, 0.2]  # near the operating point
+    assert sens.plan["calibration"]["predicted_error"] == "final-output units"
     kept = sum(e["params_after"] for e in sens.plan["sites"].values()) / sum(
         e["params"] for e in sens.plan["sites"].values())
     assert kept <= 0.4 + 1e-9
