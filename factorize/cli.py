@@ -984,7 +984,7 @@ def _sweep_model(args, loaded, budgets, kwargs, ui):
     calibration = _calibration_inputs(args, loaded, inputs, ui)
     quality = _quality_kwargs(args, calibration, inputs, kwargs, ui)
     build = _calibrated_builder(loaded.model, calibration, quality, kwargs, ui) if calibration is not None else None
-    rows, spectra = [], None
+    rows, spectra, memo = [], None, {}  # memo: the original's outputs, computed once for every budget
     for budget in budgets:
         if build is not None:
             result = build(budget)
@@ -997,7 +997,8 @@ def _sweep_model(args, loaded, budgets, kwargs, ui):
                    1 for e in result.plan["sites"].values() if e["action"] == "factor")}
         if inputs is not None:
             rep = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
-                           latency_repeats=_repeats(args, 0), model_name=loaded.source, inputs=inputs.source)
+                           latency_repeats=_repeats(args, 0), model_name=loaded.source, inputs=inputs.source,
+                           memo=memo)
             row.update({k: rep.drift.get(k) for k in ("relative_l2", "cosine_mean", "cosine_min", "top1_agreement",
                                                         "kl")})
             row.update(accuracy_before=rep.accuracy_before, accuracy_after=rep.accuracy_after,

@@ -251,6 +251,7 @@ def evaluate(
     inputs: str = "",
     notes: Iterable[str] = (),
     progress: bool = False,
+    memo: dict | None = None,
 ) -> Report:
     """Measure what compression saved and what it cost, on sample inputs.
 
@@ -264,6 +265,8 @@ def evaluate(
         kind: what the outputs hold, see :func:`output_drift`.
         title / model_name / inputs / notes: labels carried into the report.
         progress: progress bars on stderr.
+        memo: a dict shared by calls that evaluate several compressed versions of the same original on the same
+            batches (a sweep): the original's outputs and the layers' output positions are computed once.
 
     Returns:
         A :class:`factorize.report.Report`.
@@ -272,7 +275,10 @@ def evaluate(
     if not batches:
         raise FactorizeError("no sample inputs to evaluate on", fix="give at least one batch of sample inputs")
     bar = _progress(progress)
-    ref = run_model(original, bar(batches, "original"))
+    memo = {} if memo is None else memo
+    if "reference" not in memo:
+        memo["reference"] = run_model(original, bar(batches, "original"))
+    ref = memo["reference"]
     cand = run_model(compressed, bar(batches, "compressed"))
     report = Report(
         title=title,
@@ -281,7 +287,7 @@ def evaluate(
         params_after=count_parameters(compressed),
         bytes_before=count_bytes(original),
         bytes_after=count_bytes(compressed),
-        layers=layer_reports(original, compressed, plan=plan, batch=batches[0], sites=sites),
+        layers=layer_reports(original, compressed, plan=plan, batch=batches[0], sites=sites, memo=memo),
         drift=output_drift(ref, cand, kind=kind, masks=[token_mask(b) for b in batches]),
         samples=sum(int(o.shape[0]) for o in ref),
         inputs=inputs,
@@ -417,9 +423,11 @@ def layer_reports(
     plan: Mapping | None = None,
     batch: Any = None,
     sites: Iterable[str] | None = None,
+    memo: dict | None = None,
 ) -> list[LayerReport]:
     """One :class:`LayerReport` per site of the plan (or per factored layer of ``compressed`` without a plan):
-    rank, parameters, measured weight error, and, when a batch is given, MACs per sample from hooks."""
+    rank, parameters, measured weight error, and, when a batch is given, MACs per sample from hooks (measured
+    once per ``memo``)."""
     factored = factored_layers(compressed)
     entries: dict[str, dict] = dict(plan["sites"]) if plan else {
         name: {"kind": layer.kind, "shape": list(layer.product().shape), "rank": layer.rank} for name, layer in factored.items()
@@ -427,7 +435,10 @@ def layer_reports(
     if sites is not None:
         wanted = set(sites)
         entries = {k: v for k, v in entries.items() if k in wanted}
-    positions = output_positions(original, list(entries), batch) if batch is not None and entries else {}
+    memo = {} if memo is None else memo
+    if batch is not None and entries and not set(entries) <= set(memo.get("positions", {})):
+        memo["positions"] = {**memo.get("positions", {}), **output_positions(original, list(entries), batch)}
+    positions = memo.get("positions", {}) if batch is not None else {}
     rows = []
     for name, e in entries.items():
         kind, shape = e["kind"], tuple(int(s) for s in e["shape"])
