@@ -15,11 +15,13 @@ from factorize.count import count_bytes, count_parameters
 from factorize.decompose import Spectrum, decompose
 from factorize.errors import DriftLimitExceeded, FactorizeError
 from factorize.evaluate import evaluate, output_drift, run_model
+from factorize.heal import HealResult, heal
 from factorize.io import load, read_plan, save
 from factorize.layers import Factored, factored_layers, is_factored, to_dense
 from factorize.ranks import Override, Policy, choose_ranks, plan_ranks, plan_summary
 from factorize.recipe import load_recipe
 from factorize.report import Report
+from factorize.training import ProgressiveSchedule, compress_in_training, merge_in_training, refactor
 from factorize.walk import Site, WalkResult, walk
 
 __version__ = "0.1.0"
@@ -29,9 +31,11 @@ __all__ = [
     "Report",
     "DriftLimitExceeded",
     "Factored",
+    "HealResult",
     "FactorizeError",
     "Override",
     "Policy",
+    "ProgressiveSchedule",
     "Site",
     "Spectrum",
     "SpectrumCache",
@@ -39,20 +43,24 @@ __all__ = [
     "apply_plan",
     "choose_ranks",
     "compress",
+    "compress_in_training",
     "count_bytes",
     "count_parameters",
     "decompose",
     "decompose_sites",
     "evaluate",
     "factored_layers",
+    "heal",
     "is_factored",
     "load",
     "load_recipe",
     "merge",
+    "merge_in_training",
     "output_drift",
     "plan_ranks",
     "plan_summary",
     "read_plan",
+    "refactor",
     "run_model",
     "shrink_checkpoint",
     "save",
