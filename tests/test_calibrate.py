@@ -158,7 +158,7 @@ def test_output_grams_match_exact_jacobians(mlp):
     flags = [p.requires_grad for p in mlp.parameters()]
     for p in mlp.parameters():
         p.requires_grad_(False)  # a frozen model still works; flags are restored
-    grams = collect_output_grams(mlp, ["fc1", "fc2"], [x[:6], x[6:]], projections=600, seed=1)
+    grams = collect_output_grams(mlp, ["fc1", "fc2"], [x[:6], x[6:]], projections=200, seed=1)
     assert all(not p.requires_grad for p in mlp.parameters()) and all(p.grad is None for p in mlp.parameters())
     for p, f in zip(mlp.parameters(), flags):
         p.requires_grad_(f)
@@ -172,4 +172,4 @@ def test_output_grams_match_exact_jacobians(mlp):
             exact += J.T @ J
         exact /= x.shape[0]
         rel = float(torch.linalg.matrix_norm(grams[name] - exact) / torch.linalg.matrix_norm(exact))
-        assert rel < 0.1, (name, rel)  # Monte-Carlo error of 600 projections
+        assert rel < 0.15, (name, rel)  # Monte-Carlo error of 200 projections x 12 rows
