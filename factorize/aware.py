@@ -88,11 +88,11 @@ OUTPUT_RIDGE = 0.1  # relative ridge on the output Gram matrix (a judgement call
 class AwareSpectrum(Spectrum):
     """A :class:`~factorize.decompose.Spectrum` whose errors are output errors on the calibration inputs.
 
-    ``U`` (m x k) are the kept output directions (orthonormal unless output-weighted: then R^{-1} U), ``S`` the
-    singular values of the whitened (or scaled) matrix,
-    and ``Vh`` = diag(1/S) U^T W_target, so ``U_r diag(S_r) Vh_r = U_r U_r^T W_target`` as for any spectrum.
-    ``energy[i]`` is the output energy (squared Frobenius error on the calibration inputs) that direction i
-    removes; ``total_energy`` is the output energy of the layer, trace(W C W^T), plus ``residual`` for a refit.
+    ``U`` (m x k) holds the kept output directions (orthonormal, or R^{-1} U when output-weighted), ``S`` the
+    singular values of the whitened (or scaled) matrix, and ``Vh`` = diag(1/S) U^T W_target, so that
+    ``U_r diag(S_r) Vh_r`` is the rank-r replacement, as for any spectrum. ``energy[i]`` is the output energy
+    (squared Frobenius error on the calibration inputs) that direction i removes; ``total_energy`` is the output
+    energy of the layer, trace(W C W^T) (weighted by G when output-weighted), plus ``residual`` for a refit.
     """
 
     energy: np.ndarray | None = None  # (k,) output energy per direction (whiten: S^2; scale: u_i^T M u_i)

@@ -570,10 +570,19 @@ def collect_output_grams(
                 f = output_fn(out, batch) if output_fn is not None else primary_output(out)
                 names = [n for n in captured if any(t.requires_grad for t in captured[n])]
                 tensors = [t for n in names for t in captured[n]]
+                if not f.requires_grad or not tensors:
+                    raise FactorizeError(
+                        "the model's output does not depend differentiably on its layers (it is computed without "
+                        "autograd, or detached), so gradient sensitivity cannot be measured",
+                        fix="use sensitivity='probes', which only runs the model forward")
                 for k in range(projections):
                     v = _projection_for(f, mask, gen)
-                    grads = torch.autograd.grad((f * v).sum(), tensors, retain_graph=k + 1 < projections,
-                                                allow_unused=True)
+                    try:
+                        grads = torch.autograd.grad((f * v).sum(), tensors, retain_graph=k + 1 < projections,
+                                                    allow_unused=True)
+                    except RuntimeError as err:
+                        raise FactorizeError(f"backward pass failed on calibration batch {i}: {err}",
+                                             fix="use sensitivity='probes', which only runs the model forward") from err
                     j = 0
                     for n in names:
                         for _ in captured[n]:

@@ -173,3 +173,19 @@ def test_output_grams_match_exact_jacobians(mlp):
         exact /= x.shape[0]
         rel = float(torch.linalg.matrix_norm(grams[name] - exact) / torch.linalg.matrix_norm(exact))
         assert rel < 0.15, (name, rel)  # Monte-Carlo error of 200 projections x 12 rows
+
+
+def test_output_grams_need_a_differentiable_model(mlp):
+    from factorize.calibrate import collect_output_grams
+
+    class Frozen(nn.Module):
+        def __init__(self, inner):
+            super().__init__()
+            self.inner = inner
+
+        def forward(self, x):
+            with torch.no_grad():  # e.g. a model that computes its output without autograd
+                return self.inner(x)
+
+    with pytest.raises(FactorizeError, match="sensitivity='probes'"):
+        collect_output_grams(Frozen(mlp), ["inner.fc1"], [torch.randn(4, 24)])
