@@ -2,8 +2,13 @@
 
 :func:`compress_calibrated` is what ``factorize.compress(..., calibration=batches)`` runs:
 
-    walk -> collect_stats -> activation-aware spectra -> (sensitivity probes) -> choose ranks -> apply
-    (per layer with bias correction, or sequentially so later layers absorb earlier errors)
+    walk -> collect_stats -> (output weights) -> activation-aware spectra -> (sensitivity probes)
+         -> choose ranks -> apply (per layer with bias correction, or sequentially so later layers absorb
+            earlier errors)
+
+:class:`Calibration` holds everything computed once (statistics, output weights, spectra, probe weights), so
+that many budgets cost one rank allocation and one factor build each (``factorize sweep`` and the drift search
+use it that way).
 
 :func:`search_drift` answers "the smallest model whose drift stays under my limit": the smallest budget (fraction
 of the sites' parameters, or multiply-accumulates) whose measured output drift on held-out batches is at most
@@ -11,7 +16,8 @@ of the sites' parameters, or multiply-accumulates) whose measured output drift o
 ranks, rebuilds the factors from the stored spectra and runs the held-out batches.
 
 Drift, the default metric (``metric="relative_l2"``): ||y - y'||_F / ||y||_F over all held-out outputs (padded
-tokens left out), the same number ``--max-drift`` checks on the command line. ``metric="cosine"``: 1 - mean
+tokens left out; the output is ``output_fn(output, batch)`` when given, else the primary output), the same
+number ``--max-drift`` checks on the command line. ``metric="cosine"``: 1 - mean
 cosine similarity per sample (see :func:`factorize.evaluate.output_drift`).
 
 Search: bisection on the budget between ``budgets[0]`` and ``budgets[1]`` down to ``tolerance``, assuming drift
