@@ -8,15 +8,13 @@ decision is made from timings on the machine at hand, at batch 1 and at a larger
 
 from __future__ import annotations
 
-import statistics
-import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import torch
 from torch import nn
 
-from factorize.evaluate import run_model
+from factorize.evaluate import paired_ms, run_model
 from factorize.layers import Factored
 from factorize.walk import get_module
 
@@ -37,33 +35,6 @@ class LayerTiming:
     def to_dict(self) -> dict:
         return {"name": self.name, "batch": self.batch, "dense_ms": self.dense_ms,
                 "factored_ms": self.factored_ms, "speedup": self.speedup}
-
-
-def median_ms(fn: Callable[[], object], *, repeats: int = 20, warmup: int = 3) -> float:
-    """Median wall time of ``fn()`` in milliseconds (median: robust to a busy shared machine)."""
-    with torch.inference_mode():
-        for _ in range(warmup):
-            fn()
-        times = []
-        for _ in range(repeats):
-            start = time.perf_counter()
-            fn()
-            times.append(time.perf_counter() - start)
-    return 1000 * statistics.median(times)
-
-
-def paired_ms(a: Callable[[], object], b: Callable[[], object], *, repeats: int = 20, warmup: int = 3):
-    """Median times of ``a`` and ``b`` measured interleaved (a, b, a, b, ...), so machine noise hits both alike."""
-    with torch.inference_mode():
-        for _ in range(warmup):
-            a(), b()
-        ta, tb = [], []
-        for _ in range(repeats):
-            for fn, acc in ((a, ta), (b, tb)):
-                start = time.perf_counter()
-                fn()
-                acc.append(time.perf_counter() - start)
-    return 1000 * statistics.median(ta), 1000 * statistics.median(tb)
 
 
 def record_input_shapes(model: nn.Module, names: Sequence[str], batch) -> dict[str, tuple[int, ...]]:
