@@ -3,7 +3,7 @@
 What it shows:
   * ``factorize.compress(model, budget=...)`` on a trained classifier (the embedded default, a 64-512-512-256-10
     MLP trained on the handwritten digits of Alpaydin & Kaynak, UCI 1998, as bundled with scikit-learn);
-  * ``heal(compressed, original, data, heldout=..., steps=...)`` (``factorize.heal``): distillation on unlabelled sample
+  * ``factorize.heal(compressed, original, data, heldout=..., steps=...)``: distillation on unlabelled sample
     inputs, with held-out drift checks and the best state kept;
   * accuracy before compression, after compression and after healing, always on the test split, which neither
     training nor healing ever sees (healing uses the calibration split: 192 samples to train, 64 held out).
@@ -24,7 +24,6 @@ import torch
 
 import factorize
 from factorize.default import load_default, load_digits_split
-from factorize.heal import heal
 
 SMOKE = os.environ.get("FACTORIZE_SMOKE") == "1"
 
@@ -49,7 +48,7 @@ def main() -> None:
     print(f"parameters: {result.params_before:,} -> {result.params_after:,} ({result.kept_fraction:.1%} of the model)")
     before = accuracy(compressed, x_test, y_test)
 
-    healed = heal(
+    healed = factorize.heal(
         compressed, original, list(x_cal[:192].split(32)), heldout=[x_cal[192:]], steps=args.steps, lr=1e-3,
         progress=not SMOKE,
     )

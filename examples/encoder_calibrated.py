@@ -6,7 +6,7 @@ What it shows:
   * ``factorize.compress(encoder, budget=0.5, include="encoder.*", calibration=batches)``: the encoder's linear
     layers keep half of their parameters, with ranks and factors chosen from what the layers see on the
     calibration sentences (``factorize.default.CALIBRATION_SENTENCES``);
-  * ``heal(...)`` on the calibration sentences only (the last 48 of them for the drift checks that pick the
+  * ``factorize.heal(...)`` on the calibration sentences only (the last 48 of them for the drift checks that pick the
     best state);
   * the held-out mean cosine between the original and the compressed sentence embeddings (mean pooling over the
     tokens, then L2 normalisation: how this model makes sentence embeddings) before and after healing, on the
@@ -29,7 +29,6 @@ from torch import nn
 
 import factorize
 from factorize.default import CALIBRATION_SENTENCES, HELDOUT_SENTENCES
-from factorize.heal import heal
 
 SMOKE = os.environ.get("FACTORIZE_SMOKE") == "1"
 
@@ -87,7 +86,7 @@ def main() -> None:
 
     teacher, student = SentenceEmbedder(encoder), SentenceEmbedder(result.model)
     before = mean_cosine(teacher, student, held_batches)
-    healed = heal(student, teacher, train_batches, heldout=check_batches, steps=args.steps, loss="cosine",
+    healed = factorize.heal(student, teacher, train_batches, heldout=check_batches, steps=args.steps, loss="cosine",
                   metric="cosine_mean", lr=3e-4, progress=not SMOKE)
     after = mean_cosine(teacher, student, held_batches)
     print(f"healing: {healed.steps_run} steps in {healed.seconds:.1f} s, kept step {healed.best_step}; {healed.reason}")

@@ -1,7 +1,7 @@
 """Progressive compression inside a plain PyTorch training loop, then save the compressed model with its plan.
 
 What it shows:
-  * ``ProgressiveSchedule(budgets=[0.8, 0.5, 0.3], epochs=[3, 5, 7])``: at each of those epochs the model is
+  * ``factorize.ProgressiveSchedule(budgets=[0.8, 0.5, 0.3], epochs=[3, 5, 7])``: at each of those epochs the model is
     compressed in place to the next, lower budget (a fraction of its original linear parameters) and a new
     optimizer of the same type and settings comes back; the epochs in between are the recovery, which is just
     the ordinary loop going on;
@@ -25,10 +25,10 @@ from pathlib import Path
 import torch
 import torch.nn.functional as F
 
+import factorize
 from factorize import io
 from factorize.count import count_parameters
 from factorize.default import DigitsMLP, load_digits_split
-from factorize.training import ProgressiveSchedule
 
 SMOKE = os.environ.get("FACTORIZE_SMOKE") == "1"
 EPOCHS = 4 if SMOKE else 10
@@ -61,7 +61,7 @@ def main() -> None:
     x_test, y_test = load_digits_split("test")
     model = DigitsMLP()
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-3)
-    schedule = ProgressiveSchedule(budgets=[0.8, 0.5, 0.3], epochs=[1, 2, 3] if SMOKE else [3, 5, 7])
+    schedule = factorize.ProgressiveSchedule(budgets=[0.8, 0.5, 0.3], epochs=[1, 2, 3] if SMOKE else [3, 5, 7])
 
     for epoch in range(EPOCHS):
         optimizer = schedule.step(epoch, model, optimizer)  # compresses at the scheduled epochs
