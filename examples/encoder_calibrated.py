@@ -86,8 +86,8 @@ def main() -> None:
 
     teacher, student = SentenceEmbedder(encoder), SentenceEmbedder(result.model)
     before = mean_cosine(teacher, student, held_batches)
-    healed = factorize.heal(student, teacher, train_batches, heldout=check_batches, steps=args.steps, loss="cosine",
-                  metric="cosine_mean", lr=3e-4, progress=not SMOKE)
+    healed = factorize.heal(student, teacher, train_batches, heldout=check_batches, steps=args.steps,
+                            loss="cosine", metric="cosine_mean", lr=3e-4, progress=not SMOKE)
     after = mean_cosine(teacher, student, held_batches)
     print(f"healing: {healed.steps_run} steps in {healed.seconds:.1f} s, kept step {healed.best_step}; {healed.reason}")
     print(f"held-out mean cosine to the original ({len(heldout)} sentences): compressed {before:.4f}, "
