@@ -175,24 +175,47 @@ def _exact(w: torch.Tensor) -> Spectrum:
     return Spectrum(U, S, Vh, total_energy=total, method="exact", exact=True)
 
 
+GRAM_BLOCK = 1024  # rows/columns converted to float64 at a time: memory stays near the matrix itself
+
+
 def _gram(w: torch.Tensor) -> Spectrum:
-    """Singular triplets from the eigendecomposition of the smaller Gram matrix, in float64."""
+    """Singular triplets from the eigendecomposition of the smaller Gram matrix, in float64.
+
+    The float64 work is done in blocks of ``GRAM_BLOCK`` rows or columns, so no float64 copy of the whole matrix
+    is ever held; ||W||_F^2 is the trace of the Gram matrix.
+    """
     m, n = w.shape
     wide = m <= n
-    w64 = w.to(torch.float64)
-    gram = w64 @ w64.T if wide else w64.T @ w64  # (k, k), k = min(m, n)
+    k = min(m, n)
+    gram = torch.zeros(k, k, dtype=torch.float64, device=w.device)  # (k, k), k = min(m, n)
+    for blk in _blocks(w, wide):
+        b64 = blk.to(torch.float64)
+        gram += b64 @ b64.T if wide else b64.T @ b64
+    total = float(gram.diagonal().sum())
     evals, evecs = torch.linalg.eigh(gram)  # ascending
     evals, evecs = evals.flip(0).clamp_min(0), evecs.flip(1)
     S = evals.sqrt()  # (k,)
     inv = torch.where(S > S[0] * 1e-12, 1.0 / S, torch.zeros_like(S)) if S.numel() else S
-    if wide:
-        U, Vh = evecs, (evecs.T @ w64) * inv[:, None]  # U (m, k); Vh = S^-1 U^T W (k, n)
-    else:
-        Vh, U = evecs.T, (w64 @ evecs) * inv  # V (n, k); U = W V S^-1 (m, k)
-    U, Vh = _fix_signs(U, Vh)
-    total = float(torch.linalg.matrix_norm(w64) ** 2)
-    dtype = w.dtype
-    return Spectrum(U.to(dtype), S.to(dtype), Vh.to(dtype), total_energy=total, method="gram", exact=True)
+    if wide:  # U = eigenvectors (m, k); Vh = S^-1 U^T W (k, n), column block by column block
+        U = evecs
+        Vh = torch.cat([((evecs.T @ blk.to(torch.float64)) * inv[:, None]).to(w.dtype) for blk in _blocks(w, True)], 1)
+    else:  # V = eigenvectors (n, k); U = W V S^-1 (m, k), row block by row block
+        Vh = evecs.T
+        U = torch.cat([((blk.to(torch.float64) @ evecs) * inv).to(w.dtype) for blk in _blocks(w, False)], 0)
+    U, Vh = _fix_signs(U.to(w.dtype), Vh.to(w.dtype))
+    return Spectrum(U, S.to(w.dtype), Vh, total_energy=total, method="gram", exact=True)
+
+
+def _blocks(w: torch.Tensor, columns: bool):
+    """Column blocks (for a wide matrix) or row blocks (for a tall one) of ``GRAM_BLOCK``."""
+    size = w.shape[1] if columns else w.shape[0]
+    for start in range(0, size, GRAM_BLOCK):
+        yield w[:, start:start + GRAM_BLOCK] if columns else w[start:start + GRAM_BLOCK]
+
+
+def _frobenius2(w: torch.Tensor) -> float:
+    """||W||_F^2 accumulated in float64 one row block at a time (no float64 copy of the whole matrix)."""
+    return float(sum(float((blk.to(torch.float64) ** 2).sum()) for blk in _blocks(w, False)))
 
 
 def _randomized(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: int) -> tuple[Spectrum, float]:
@@ -217,8 +240,7 @@ def _randomized(w: torch.Tensor, rank: int, oversample: int, power_iters: int, s
     Ub, S, Vh = torch.linalg.svd(small, full_matrices=False)
     U = Q @ Ub  # (m, k+p)
     U, Vh = _fix_signs(U[:, :k], Vh[:k])
-    total = float(torch.linalg.matrix_norm(w.to(torch.float64)) ** 2)  # exact ||W||_F^2
-    spec = Spectrum(U, S[:k], Vh, total_energy=total, method="randomized", exact=False)
+    spec = Spectrum(U, S[:k], Vh, total_energy=_frobenius2(w), method="randomized", exact=False)  # exact ||W||_F^2
     return spec, _gap_estimate(kept, S, k)
 
 
