@@ -207,8 +207,7 @@ class Calibration:
         self.sensitivity: Sensitivity | None = None
         self.probe_batches = as_batch_list(sensitivity_batches) if sensitivity_batches is not None else self.batches
         self.fractions = tuple(fractions)
-        if mode in ("probes", "both"):
-            self.measure(self.fractions)
+        self.wants_probes = mode in ("probes", "both")  # measured at the first budget plan (only budgets use them)
 
     def measure(self, fractions: tuple[float, ...]) -> Sensitivity:
         """(Re)measure the probes at these rank fractions; later plans use the new weights."""
@@ -229,7 +228,10 @@ class Calibration:
         return None
 
     def plan(self, policy: Policy) -> dict:
-        """Ranks for ``policy`` from the stored spectra (and sensitivity)."""
+        """Ranks for ``policy`` from the stored spectra (and sensitivity). Probe weights only shape a ``budget``
+        allocation, so they are measured (once) on the first budget plan that needs them."""
+        if policy.budget is not None and self.wants_probes and self.sensitivity is None:
+            self.measure(self.fractions)
         return choose_ranks(self.found.sites, self.spectra, policy, method=self.method, error_scale=self.error_scale)
 
     def build(self, plan: dict, *, sequential: bool = False, refit: bool = True,
