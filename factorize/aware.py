@@ -79,7 +79,7 @@ from factorize.walk import Site, get_module, matrix_of
 AWARE_METHODS = ("whiten", "scale")
 DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
 FEW_SAMPLES_RIDGE = 1e-2  # relative ridge when a layer saw fewer samples than its input width (a judgement call)
-REFIT_RIDGE = 1e-3  # relative ridge of the sequential least-squares step
+REFIT_RIDGE = 0.1  # relative ridge of the sequential least-squares step (chosen by measurement, see docs/quality.md)
 DEFAULT_ALPHA = 0.5  # ASVD's scaling exponent (Yuan et al. 2023)
 OUTPUT_RIDGE = 0.1  # relative ridge on the output Gram matrix (a judgement call; keeps R^{-1} well conditioned)
 
