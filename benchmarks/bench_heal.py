@@ -226,7 +226,7 @@ def main() -> None:
     parser.add_argument("--quick", action="store_true", help="few steps, to check the script runs")
     parser.add_argument("--skip-encoder", action="store_true")
     parser.add_argument("--digits-steps", type=int, default=600)
-    parser.add_argument("--digits-lr", type=float, default=1e-3)
+    parser.add_argument("--digits-lr", type=float, default=1e-4)
     parser.add_argument("--encoder-steps", type=int, default=300)
     parser.add_argument("--encoder-lr", type=float, default=3e-4)
     parser.add_argument("--sequential", action="store_true", help="encoder: sequential calibrated compression")

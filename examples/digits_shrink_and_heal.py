@@ -49,7 +49,7 @@ def main() -> None:
     before = accuracy(compressed, x_test, y_test)
 
     healed = factorize.heal(
-        compressed, original, list(x_cal[:192].split(32)), heldout=[x_cal[192:]], steps=args.steps, lr=1e-3,
+        compressed, original, list(x_cal[:192].split(32)), heldout=[x_cal[192:]], steps=args.steps,
         progress=not SMOKE,
     )
     print(f"healing: {healed.steps_run} steps in {healed.seconds:.1f} s, kept step {healed.best_step}; {healed.reason}")
