@@ -876,7 +876,8 @@ def _calibration_notes(result, calibration) -> list[str]:
              f"{calibration.source}"]
     search = getattr(result, "search", None)
     if search is not None:
-        walked = ", ".join(f"{p.budget:.3g} -> {p.drift:.4g}" for p in search.points)
+        walked = ", ".join(f"{p.budget:.3g} -> " + ("not feasible" if p.drift is None else f"{p.drift:.4g}")
+                           for p in search.points)
         notes.append(f"target drift {search.max_drift:g} ({search.metric}): budgets tried (budget -> drift): {walked}")
     return notes
 
