@@ -350,7 +350,10 @@ def _quality_options(*, shrink: bool):
                        help="after compressing, fine-tune the factors for STEPS steps to match the original on "
                        "--calibration (distillation); the best state on --inputs is kept")
         g.add_argument("--heal-lr", type=_nonnegative("--heal-lr"), default=1e-4, metavar="LR",
-                       help="learning rate for --heal (default 1e-4)")
+                       help="learning rate for --heal (default 1e-4; the peak rate with --heal-schedule cosine)")
+        g.add_argument("--heal-schedule", choices=("constant", "cosine"), default="constant",
+                       help="learning-rate schedule for --heal: constant (default), or cosine (a 5%% linear warm-up, "
+                       "then a half cosine down to zero)")
         g.add_argument("--speed-check", action="store_true",
                        help="time each factored layer against its dense form here (batch 1 and 32) and keep dense "
                        "the ones that are slower")
@@ -887,13 +890,15 @@ def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
     from factorize.heal import heal
 
     done = heal(result.model, loaded.model, calibration.batches, steps=args.heal, lr=args.heal_lr,
+                schedule=args.heal_schedule,
                 heldout=inputs.batches if inputs is not None else None, progress=ui.progress)
     result.plan["heal"] = done.to_dict()
     if inputs is None:
         ui.warn("--heal without --inputs: no held-out check, the last state is kept")
     drift = "" if done.initial_drift is None else \
         f"; held-out {done.metric} {done.initial_drift:.4g} -> {done.best_drift:.4g} (best step {done.best_step})"
-    return [f"healed {done.steps_run} steps ({done.loss} loss, lr {done.lr:g}, {done.seconds:.1f} s){drift}: "
+    schedule = ", cosine schedule" if done.schedule == "cosine" else ""
+    return [f"healed {done.steps_run} steps ({done.loss} loss, lr {done.lr:g}{schedule}, {done.seconds:.1f} s){drift}: "
             f"{done.reason}"]
 
 

@@ -56,6 +56,8 @@ from factorize.evaluate import feed, output_drift, primary_output
 from factorize.layers import factored_layers
 
 LOSSES = ("auto", "kl", "mse", "cosine")
+SCHEDULES = ("constant", "cosine")
+WARMUP_FRACTION = 0.05  # schedule "cosine": share of the steps spent warming the learning rate up linearly
 TRAIN = ("factored", "all")
 METRICS = {"relative_l2": False, "cosine_mean": True, "kl": False, "top1_agreement": True}  # name -> higher is better
 
@@ -89,6 +91,7 @@ class HealResult:
     non_finite: bool = False  # True when the loss became NaN or Inf and the best state was restored
     temperature: float | None = None  # for loss "kl"
     lr: float = 0.0
+    schedule: str = "constant"
 
     @property
     def initial_drift(self) -> float | None:
@@ -118,6 +121,7 @@ class _Options:
     loss: str
     temperature: float
     lr: float
+    schedule: str
     eval_every: int
     patience: int | None
     train: str
@@ -144,6 +148,7 @@ def heal(
     loss: str = "auto",
     temperature: float = 2.0,
     lr: float = 1e-4,
+    schedule: str = "constant",
     eval_every: int | None = None,
     patience: int | None = 5,
     train: str = "factored",
@@ -170,7 +175,11 @@ def heal(
             no early stopping and no best-state guarantee (the final state is returned).
         loss: ``"auto"``, ``"kl"``, ``"mse"`` or ``"cosine"`` (see the module docstring for the ``auto`` rule).
         temperature: T for ``"kl"`` (Hinton et al. 2015).
-        lr: Adam learning rate.
+        lr: Adam learning rate (the peak rate under a schedule).
+        schedule: ``"constant"`` keeps ``lr``; ``"cosine"`` warms it up linearly over the first 5% of the steps
+            and then decays it to zero at ``steps`` along a half cosine (warm-up: Goyal et al. 2017; cosine
+            decay: Loshchilov & Hutter, "SGDR", ICLR 2017 -- common practice). A warm-up lets a larger ``lr``
+            start without Adam's first, full-size steps undoing the compressed weights.
         eval_every: steps between held-out checks; default ``max(1, steps // 10)``.
         patience: stop after this many checks without a better held-out drift; None never stops early.
         train: ``"factored"`` trains only the factored layers (the rest is frozen); ``"all"`` trains every
@@ -195,8 +204,8 @@ def heal(
         FactorizeError: bad arguments, outputs of different shapes, a batch that does not run through a model,
             outputs that are not finite before training.
     """
-    opts = _validate(compressed, teacher, data, steps, heldout, loss, temperature, lr, eval_every, patience, train,
-                     match_layers, metric, seed, device, max_grad_norm, shuffle, progress)
+    opts = _validate(compressed, teacher, data, steps, heldout, loss, temperature, lr, schedule, eval_every, patience,
+                     train, match_layers, metric, seed, device, max_grad_norm, shuffle, progress)
     with _session(compressed, teacher, opts) as trainable:
         return _Healer(compressed, teacher, data, heldout, trainable, opts).run()
 
@@ -213,7 +222,7 @@ def _is_number(v: Any) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
 
 
-def _validate(student, teacher, data, steps, heldout, loss, temperature, lr, eval_every, patience, train,
+def _validate(student, teacher, data, steps, heldout, loss, temperature, lr, schedule, eval_every, patience, train,
               match_layers, metric, seed, device, max_grad_norm, shuffle, progress) -> _Options:
     for what, m in (("compressed", student), ("teacher", teacher)):
         if not isinstance(m, nn.Module):
@@ -235,6 +244,8 @@ def _validate(student, teacher, data, steps, heldout, loss, temperature, lr, eva
         problems.append(f"temperature must be a number > 0, got {temperature!r}")
     if not _is_number(lr) or lr <= 0:
         problems.append(f"lr must be a number > 0, got {lr!r}")
+    if schedule not in SCHEDULES:
+        problems.append(f"schedule must be one of {', '.join(SCHEDULES)}, got {schedule!r}")
     if eval_every is not None and (not _is_int(eval_every) or eval_every < 1):
         problems.append(f"eval_every must be an integer >= 1 or None, got {eval_every!r}")
     if patience is not None and (not _is_int(patience) or patience < 1):
@@ -257,7 +268,7 @@ def _validate(student, teacher, data, steps, heldout, loss, temperature, lr, eva
     if train == "factored" and not factored_layers(student):
         raise FactorizeError("the compressed model has no factored layer to train",
                              fix="compress the model first (factorize.compress), or pass train='all'")
-    return _Options(steps, loss, float(temperature), float(lr), eval_every or max(1, steps // 10), patience, train,
+    return _Options(steps, loss, float(temperature), float(lr), schedule, eval_every or max(1, steps // 10), patience, train,
                     weight, metric, seed, max_grad_norm, shuffle, progress, _resolve_device(device, student))
 
 
@@ -427,6 +438,19 @@ class _LayerTaps:
             h.remove()
 
 
+def _lr_factor(schedule: str, steps: int):
+    """The multiplier of ``lr`` before optimizer step ``i + 1`` (``i`` = steps taken), for ``LambdaLR``."""
+    if schedule == "constant":
+        return lambda i: 1.0
+    warm = max(1, round(WARMUP_FRACTION * steps))
+
+    def factor(i: int) -> float:
+        if i < warm:
+            return (i + 1) / warm
+        return 0.5 * (1.0 + math.cos(math.pi * min(1.0, (i - warm) / max(1, steps - warm))))
+    return factor
+
+
 class _Healer:
     """State of one healing run (kept out of ``heal`` to keep each step short)."""
 
@@ -435,6 +459,7 @@ class _Healer:
         self.params = [p for _, p in trainable]
         self.generator = torch.Generator().manual_seed(opts.seed)
         self.optimizer = torch.optim.Adam(self.params, lr=opts.lr)
+        self.scheduler = torch.optim.lr_scheduler.LambdaLR(self.optimizer, _lr_factor(opts.schedule, opts.steps))
         self.heldout = None if heldout is None else list(heldout)
         self.kind: str | None = None if opts.loss == "auto" else opts.loss
         self.losses: list[float] = []
@@ -468,6 +493,7 @@ class _Healer:
             steps_run=len(self.losses), trained_parameters=sum(p.numel() for p in self.params),
             seconds=time.perf_counter() - start, device=str(opts.device), non_finite=non_finite,
             temperature=opts.temperature if self.kind == "kl" else None, lr=opts.lr,
+            schedule=opts.schedule,
         )
 
     def _loop(self) -> tuple[str, bool, bool]:
@@ -605,6 +631,7 @@ class _Healer:
         if self.opts.max_grad_norm is not None:
             torch.nn.utils.clip_grad_norm_(self.params, self.opts.max_grad_norm)
         self.optimizer.step()
+        self.scheduler.step()
         return value
 
     def _raise_not_finite(self, index: int, s: torch.Tensor, t: torch.Tensor) -> None:

@@ -66,6 +66,16 @@ def test_heal_keeps_the_best_held_out_state(data):
     assert abs(done["report"]["drift"]["relative_l2"] - heal["best_drift"]) < 1e-4
 
 
+def test_heal_schedule_is_passed_through_and_recorded(data):
+    rc, done, _ = _shrink(data, "--budget", "0.05", "-c", str(data / "calibration.safetensors"), "--heal", "20",
+                          "--heal-lr", "1e-3", "--heal-schedule", "cosine")
+    assert rc == 0
+    heal = done["plan"]["heal"]
+    assert heal["schedule"] == "cosine" and heal["lr"] == 1e-3
+    assert heal["best_drift"] <= heal["initial_drift"]
+    assert any("cosine schedule" in n for n in done["report"]["notes"])
+
+
 @pytest.mark.parametrize("flags,match", [
     (["--heal", "5"], "--heal needs --calibration"),
     (["--sequential"], "--sequential needs --calibration"),

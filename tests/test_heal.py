@@ -14,7 +14,7 @@ import factorize
 from factorize.default import load_default, load_digits_split
 from factorize.errors import FactorizeError
 from factorize.evaluate import output_drift
-from factorize.heal import HealResult, _resolve_loss, distill_loss, heal
+from factorize.heal import HealResult, _lr_factor, _resolve_loss, distill_loss, heal
 from tests.conftest import MLP, tiny_bert
 
 
@@ -145,6 +145,30 @@ def test_same_seed_gives_identical_weights_and_another_seed_does_not() -> None:
     assert any(not torch.equal(runs[0][k], runs[2][k]) for k in runs[0])  # the seed sets the batch order
 
 
+def test_cosine_schedule_warms_up_then_follows_a_half_cosine_to_zero() -> None:
+    # Linear warm-up (Goyal et al. 2017) then lr * (1 + cos(pi * progress)) / 2 (Loshchilov & Hutter 2017).
+    steps = 200
+    f = _lr_factor("cosine", steps)
+    warm = 10  # 5% of 200
+    assert [f(i) for i in range(warm)] == pytest.approx([(i + 1) / warm for i in range(warm)])
+    assert f(warm) == pytest.approx(1.0)
+    assert f(warm + (steps - warm) // 2) == pytest.approx(0.5, abs=1e-9)
+    assert 0.0 < f(steps - 1) < 1e-3
+    decay = [f(i) for i in range(warm, steps)]
+    assert all(a >= b for a, b in zip(decay, decay[1:]))
+    assert _lr_factor("constant", steps)(123) == 1.0
+
+
+def test_cosine_schedule_heals_and_keeps_the_best_state() -> None:
+    teacher, student, data, heldout = _compressed_mlp()
+    before = _drift(teacher, student, heldout)
+    result = heal(student, teacher, data, steps=40, heldout=heldout, lr=3e-3, schedule="cosine", eval_every=5,
+                  progress=False)
+    assert result.schedule == "cosine"
+    assert _drift(teacher, student, heldout) <= before
+    assert result.best_drift < result.initial_drift  # the MLP at rank 4 has room to heal
+
+
 # --- losses ------------------------------------------------------------------------------------------------
 
 
@@ -249,6 +273,7 @@ def test_data_that_does_not_run_names_the_batch() -> None:
     ({"steps": 2, "temperature": -1.0}, "temperature must be"),
     ({"steps": 2, "train": "some"}, "train must be one of"),
     ({"steps": 2, "metric": "accuracy"}, "metric must be one of"),
+    ({"steps": 2, "schedule": "linear"}, "schedule must be one of"),
 ])
 def test_bad_arguments(kwargs, text) -> None:
     teacher, student, data, _ = _compressed_mlp()
