@@ -21,15 +21,19 @@ from factorize.layers import Factored, factored_layers, is_factored, to_dense
 from factorize.ranks import Override, Policy, choose_ranks, plan_ranks, plan_summary
 from factorize.recipe import load_recipe
 from factorize.report import Report
+from factorize.search import CalibratedResult, Calibration, DriftTargetUnreachable, search_drift
 from factorize.training import ProgressiveSchedule, compress_in_training, merge_in_training, refactor
 from factorize.walk import Site, WalkResult, walk
 
 __version__ = "0.1.0"
 
 __all__ = [
+    "CalibratedResult",
+    "Calibration",
     "CompressResult",
     "Report",
     "DriftLimitExceeded",
+    "DriftTargetUnreachable",
     "Factored",
     "HealResult",
     "FactorizeError",
@@ -62,6 +66,7 @@ __all__ = [
     "read_plan",
     "refactor",
     "run_model",
+    "search_drift",
     "shrink_checkpoint",
     "save",
     "to_dense",

@@ -112,3 +112,20 @@ def test_compress_entry_points(digits):
         factorize.compress(model, budget=0.5, calibration=cal, calibrate=cal)
     with pytest.raises(FactorizeError, match="disagree"):
         factorize.compress(model, budget=0.5, calibration=cal, method="scale", aware_method="whiten")
+
+
+def test_one_calibration_serves_many_budgets_like_compress(digits):
+    # The top-level names a training script uses to try several budgets on one set of calibration statistics.
+    import factorize
+
+    model, cal, held, _ = digits
+    calib = factorize.Calibration(model, cal)
+    for budget in (0.5, 0.2):
+        plan = calib.plan(factorize.Policy(budget=budget))
+        built = calib.build(plan)
+        direct = factorize.compress(model, budget=budget, calibration=cal)
+        assert {n: e["rank"] for n, e in plan["sites"].items()} == {n: e["rank"] for n, e in direct.plan["sites"].items()}
+        with torch.no_grad():
+            for x in held:
+                torch.testing.assert_close(built(x), direct.model(x), rtol=1e-5, atol=1e-6)
+    assert factorize.search_drift is search_drift and factorize.DriftTargetUnreachable is DriftTargetUnreachable
