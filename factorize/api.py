@@ -140,7 +140,7 @@ def compress(
     calibrate: Iterable | None = None,
     aware_method: str | None = None,
     sequential: bool = False,
-    sensitivity: bool = False,
+    sensitivity: bool | str = False,
     max_drift: float | None = None,
     heldout: Iterable | None = None,
     drift_metric: str = "relative_l2",
@@ -173,7 +173,8 @@ def compress(
             layer's outputs on these inputs (see :mod:`factorize.aware` and :func:`factorize.search.compress_calibrated`).
         aware_method: ``"whiten"`` (default with calibration) or ``"scale"``; ``method="whiten"``/``"scale"`` too.
         sequential: with calibration, factor layers in forward order so later layers absorb earlier errors.
-        sensitivity: with calibration, allocate ranks by measured final-output sensitivity.
+        sensitivity: with calibration, allocate ranks by measured final-output sensitivity: True or ``"both"``
+            (gradients, then probes), ``"gradients"`` or ``"probes"`` alone.
         max_drift: with calibration, the smallest budget whose drift on ``heldout`` stays under this
             (``drift_metric`` ``"relative_l2"`` or ``"cosine"``); raises ``DriftLimitExceeded`` when unreachable.
         output_fn: ``output_fn(output, batch) -> tensor`` compared for sensitivity and drift (default: the

@@ -337,8 +337,11 @@ def _quality_options(*, shrink: bool):
     g.add_argument("--sequential", action="store_true",
                    help="with --calibration: factor layers in forward order, each fitted to the inputs the partly "
                    "compressed model gives it")
-    g.add_argument("--sensitivity", action="store_true",
-                   help="with --calibration: allocate the budget by each layer's measured effect on the final output")
+    g.add_argument("--sensitivity", nargs="?", const=True, default=False, choices=("gradients", "probes", "both"),
+                   metavar="HOW",
+                   help="with --calibration: allocate the budget by each layer's measured effect on the final output; "
+                   "HOW: gradients (cheapest: one forward and two backward passes per batch), probes (truncation "
+                   "probes, two per layer), both (the default)")
     g.add_argument("--cache", metavar="DIR", help="keep spectra in DIR so a later run on the same weights skips the SVD")
     g.add_argument("--workers", type=_positive_int("--workers"), default=1, metavar="N",
                    help="decompose N layers at a time (threads; results equal a serial run)")

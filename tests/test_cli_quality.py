@@ -49,6 +49,19 @@ def test_calibrated_shrink_beats_plain_at_a_strong_budget(data):
     assert aware["report"]["drift"]["relative_l2"] < plain["report"]["drift"]["relative_l2"]
 
 
+@pytest.mark.parametrize("flag, mode", [(["--sensitivity"], "both"), (["--sensitivity", "probes"], "probes"),
+                                        (["--sensitivity", "gradients"], "gradients")])
+def test_sensitivity_modes_reach_the_plan(data, flag, mode):
+    rc, done, _ = _shrink(data, "--budget", "0.1", "-c", str(data / "calibration.safetensors"), *flag)
+    assert rc == 0 and done["plan"]["calibration"]["sensitivity"] == mode
+
+
+def test_unknown_sensitivity_mode_is_a_usage_error(data, capsys):
+    with pytest.raises(SystemExit) as info:  # argparse's usage error: exit 2 with a message, no traceback
+        main(["shrink", "-m", MODEL, "-c", str(data / "calibration.safetensors"), "--sensitivity", "hessian"])
+    assert info.value.code == 2 and "invalid choice: 'hessian'" in capsys.readouterr().err
+
+
 def test_target_drift_meets_the_limit_or_exits_1(data):
     calib = str(data / "calibration.safetensors")
     rc, done, _ = _shrink(data, "-c", calib, "--target-drift", "0.05")
