@@ -13,7 +13,8 @@
   to the original's embeddings is measured on HELDOUT_SENTENCES, which neither calibration nor healing sees.
   Target: healed held-out mean cosine at 50% >= 0.95.
 
-Run from the repository root:  python benchmarks/bench_heal.py  [--quick]  [--skip-encoder]  [--transfer N]  [--method M]
+Run from the repository root:
+    python benchmarks/bench_heal.py  [--quick]  [--skip-encoder]  [--transfer N]  [--method M]  (--help: all)
 Writes benchmarks/results/heal.md (``--out`` to change).
 """
 
@@ -75,20 +76,6 @@ def bench_digits(steps: int, lr: float) -> list[dict]:
     return rows
 
 
-class SentenceEmbedder(nn.Module):
-    """Attention-masked mean of the last hidden states, L2-normalised (how all-MiniLM-L6-v2 embeds sentences)."""
-
-    def __init__(self, encoder: nn.Module) -> None:
-        super().__init__()
-        self.encoder = encoder
-
-    def forward(self, input_ids, attention_mask, token_type_ids=None):
-        h = self.encoder(input_ids=input_ids, attention_mask=attention_mask,
-                         token_type_ids=token_type_ids).last_hidden_state  # (B, T, d)
-        m = attention_mask.unsqueeze(-1).to(h.dtype)  # (B, T, 1)
-        return F.normalize((h * m).sum(1) / m.sum(1).clamp_min(1e-9), dim=-1)  # (B, d)
-
-
 class TokenStates(nn.Module):
     """The last hidden state of every token (``--encoder-loss tokens`` heals on these; padding is masked by heal)."""
 
@@ -99,6 +86,15 @@ class TokenStates(nn.Module):
     def forward(self, input_ids, attention_mask, token_type_ids=None):
         return self.encoder(input_ids=input_ids, attention_mask=attention_mask,
                             token_type_ids=token_type_ids).last_hidden_state  # (B, T, d)
+
+
+class SentenceEmbedder(TokenStates):
+    """Attention-masked mean of the last hidden states, L2-normalised (how all-MiniLM-L6-v2 embeds sentences)."""
+
+    def forward(self, input_ids, attention_mask, token_type_ids=None):
+        h = super().forward(input_ids, attention_mask, token_type_ids)  # (B, T, d)
+        m = attention_mask.unsqueeze(-1).to(h.dtype)  # (B, T, 1)
+        return F.normalize((h * m).sum(1) / m.sum(1).clamp_min(1e-9), dim=-1)  # (B, d)
 
 
 def _cosine(a: nn.Module, b: nn.Module, batches: list[dict]) -> tuple[float, float]:
@@ -134,13 +130,11 @@ def bench_encoder(budgets: list[float], steps: int, lr: float, schedule: str, me
         student = SentenceEmbedder(result.model)
         before = _cosine(teacher, student, evaluation)
         if target == "tokens":  # mean squared error on every token's hidden state; best state by relative L2
-            healed = heal(TokenStates(result.model), TokenStates(encoder), train, heldout=checks, steps=steps,
-                          loss="mse", metric="relative_l2", lr=lr, schedule=schedule, eval_every=max(1, steps // 10),
-                          patience=None, progress=False, match_layers=match)
+            pair, loss, metric = (TokenStates(result.model), TokenStates(encoder)), "mse", "relative_l2"
         else:  # cosine between the sentence embeddings, the quantity reported
-            healed = heal(student, teacher, train, heldout=checks, steps=steps, loss="cosine", metric="cosine_mean",
-                          lr=lr, schedule=schedule, eval_every=max(1, steps // 10), patience=None,
-                          progress=False, match_layers=match)
+            pair, loss, metric = (student, teacher), "cosine", "cosine_mean"
+        healed = heal(*pair, train, heldout=checks, steps=steps, loss=loss, metric=metric, lr=lr, schedule=schedule,
+                      eval_every=max(1, steps // 10), patience=None, progress=False, match_layers=match)
         after = _cosine(teacher, student, evaluation)
         rows.append({
             "budget": budget, "kept": _site_fraction(result.plan), "compressed": before[0], "compressed_min": before[1],

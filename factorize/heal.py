@@ -268,8 +268,8 @@ def _validate(student, teacher, data, steps, heldout, loss, temperature, lr, sch
     if train == "factored" and not factored_layers(student):
         raise FactorizeError("the compressed model has no factored layer to train",
                              fix="compress the model first (factorize.compress), or pass train='all'")
-    return _Options(steps, loss, float(temperature), float(lr), schedule, eval_every or max(1, steps // 10), patience, train,
-                    weight, metric, seed, max_grad_norm, shuffle, progress, _resolve_device(device, student))
+    return _Options(steps, loss, float(temperature), float(lr), schedule, eval_every or max(1, steps // 10), patience,
+                    train, weight, metric, seed, max_grad_norm, shuffle, progress, _resolve_device(device, student))
 
 
 def _model_device(model: nn.Module) -> torch.device:
