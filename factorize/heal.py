@@ -178,8 +178,8 @@ def heal(
         lr: Adam learning rate (the peak rate under a schedule).
         schedule: ``"constant"`` keeps ``lr``; ``"cosine"`` warms it up linearly over the first 5% of the steps
             and then decays it to zero at ``steps`` along a half cosine (warm-up: Goyal et al. 2017; cosine
-            decay: Loshchilov & Hutter, "SGDR", ICLR 2017 -- common practice). A warm-up lets a larger ``lr``
-            start without Adam's first, full-size steps undoing the compressed weights.
+            decay: Loshchilov & Hutter, "SGDR", ICLR 2017; both cited from memory -- common practice). A warm-up
+            lets a larger ``lr`` start without Adam's first, full-size steps undoing the compressed weights.
         eval_every: steps between held-out checks; default ``max(1, steps // 10)``.
         patience: stop after this many checks without a better held-out drift; None never stops early.
         train: ``"factored"`` trains only the factored layers (the rest is frozen); ``"all"`` trains every

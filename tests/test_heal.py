@@ -146,7 +146,8 @@ def test_same_seed_gives_identical_weights_and_another_seed_does_not() -> None:
 
 
 def test_cosine_schedule_warms_up_then_follows_a_half_cosine_to_zero() -> None:
-    # Linear warm-up (Goyal et al. 2017) then lr * (1 + cos(pi * progress)) / 2 (Loshchilov & Hutter 2017).
+    # Linear warm-up (Goyal et al. 2017) then lr * (1 + cos(pi * progress)) / 2 (Loshchilov & Hutter, SGDR, 2017);
+    # both formulas cited from memory.
     steps = 200
     f = _lr_factor("cosine", steps)
     warm = 10  # 5% of 200
