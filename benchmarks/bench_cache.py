@@ -1,7 +1,7 @@
 """A weights-only shrink with a warm spectrum cache vs without one.
 
 Generates a float32 checkpoint of transformer-shaped matrices in a temporary directory under /tmp and times
-``factorize.checkpoint.shrink_checkpoint`` side by side in one run:
+``factorize.checkpoints.stream.shrink_checkpoint`` side by side in one run:
 
 * ``no cache``: the ordinary shrink (a budget policy decomposes every matrix twice: values first, factors next);
 * ``cold cache``: an empty cache directory (the first pass stores, the second pass reads);
@@ -28,7 +28,7 @@ from pathlib import Path
 import torch
 from safetensors.torch import save_file
 
-from factorize.checkpoint import shrink_checkpoint
+from factorize.checkpoints.stream import shrink_checkpoint
 
 ROOT = Path(__file__).resolve().parents[1]
 MB = 2**20

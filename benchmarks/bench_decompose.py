@@ -21,7 +21,7 @@ import time
 import numpy as np
 import torch
 
-from factorize.decompose import decompose
+from factorize.spectra.decompose import decompose
 
 
 def minilm_weights() -> list[torch.Tensor]:

@@ -38,7 +38,7 @@ sys.path.insert(0, str(REPO))
 
 import factorize  # noqa: E402
 from factorize.default import CALIBRATION_SENTENCES, HELDOUT_SENTENCES, load_default, load_digits_split  # noqa: E402
-from factorize.heal import heal  # noqa: E402
+from factorize.training.heal import heal  # noqa: E402
 
 sys.path.insert(0, str(REPO / "benchmarks"))
 from stdlib_text import stdlib_sentences  # noqa: E402

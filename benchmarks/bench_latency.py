@@ -16,7 +16,7 @@ import torch
 from torch import nn
 
 import factorize
-from factorize.evaluate import paired_ms
+from factorize.measure.timing import paired_ms
 
 
 class Block(nn.Module):

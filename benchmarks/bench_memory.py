@@ -7,7 +7,7 @@ its own subprocess so that the peak resident set size belongs to that job alone 
 across fork + exec):
 
 * ``baseline``: importing torch and factorize and opening the checkpoint (what any run costs);
-* ``stream``:   ``factorize.checkpoint.shrink_checkpoint`` (weights-only mode, streaming);
+* ``stream``:   ``factorize.checkpoints.stream.shrink_checkpoint`` (weights-only mode, streaming);
 * ``load-all``: ``safetensors.torch.load_file`` of every shard at once, the naive approach, for comparison.
 
 Target (issue 6): peak of ``stream`` <= 0.5 x checkpoint size + 300 MB. The temporary directory is deleted at the

@@ -39,9 +39,10 @@ from pathlib import Path
 import torch
 
 import factorize
-from factorize.evaluate import output_drift, token_mask
-from factorize.ranks import Policy
-from factorize.search import Calibration, auto_fractions
+from factorize.measure.drift import output_drift
+from factorize.model.feed import token_mask
+from factorize.plan.ranks import Policy
+from factorize.calibrated.search import Calibration, auto_fractions
 
 RESULTS = Path(__file__).with_name("results") / "quality.md"
 TARGETS = {0.5: 0.90, 0.75: 0.97}  # encoder held-out mean cosine (issue 4)
@@ -140,7 +141,7 @@ def methods(model, cal, budgets, *, include, output_fn, probe_batches, sequentia
 
 def prediction_check(model, cal, include, budget):
     """Max relative gap between predicted and measured layer output error on the calibration data."""
-    from factorize.walk import get_module
+    from factorize.model.sites import get_module
 
     calib = Calibration(model, cal, include=include)
     plan = calib.plan(Policy(budget=budget))

@@ -1,10 +1,10 @@
 """Load a compressed checkpoint for inference in a fresh process.
 
 What it shows:
-  * ``factorize.io.save(model, path, plan=result.plan)`` writes one safetensors file holding the compressed
+  * ``factorize.checkpoints.files.save(model, path, plan=result.plan)`` writes one safetensors file holding the compressed
     weights and, in its metadata, the plan (which layers are factored, at which rank);
   * a new Python process that never saw the compressed model builds a plain, fresh ``DigitsMLP`` and calls
-    ``factorize.io.load(model, path)``: the factored structure is rebuilt from the plan and the weights are
+    ``factorize.checkpoints.files.load(model, path)``: the factored structure is rebuilt from the plan and the weights are
     loaded; no pickle, no original model needed;
   * the outputs of the reloaded model match the in-memory compressed model exactly, and its test accuracy is
     printed.
@@ -24,7 +24,7 @@ from pathlib import Path
 import torch
 
 import factorize
-from factorize import io
+
 from factorize.default import load_default, load_digits_split
 
 REPO = Path(__file__).resolve().parents[1]
@@ -34,12 +34,12 @@ def child(checkpoint: str, outputs: str) -> None:
     """Runs in the fresh process: load the checkpoint into a new architecture and predict."""
     from factorize.default import DigitsMLP
 
-    model = io.load(DigitsMLP(), checkpoint).eval()
+    model = factorize.load(DigitsMLP(), checkpoint).eval()
     x_test, y_test = load_digits_split("test")
     with torch.no_grad():
         logits = model(x_test)  # (540, 10)
     torch.save(logits, outputs)
-    plan = io.read_plan(checkpoint)
+    plan = factorize.read_plan(checkpoint)
     ranks = {name: e["rank"] for name, e in plan["sites"].items() if e["action"] == "factor"}
     accuracy = (logits.argmax(dim=1) == y_test).float().mean().item()
     print(f"[fresh process] loaded {Path(checkpoint).name}: factored ranks {ranks}; test accuracy {accuracy:.2%}")
@@ -51,7 +51,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         checkpoint = Path(tmp) / "digits_30.safetensors"
         outputs = Path(tmp) / "logits.pt"
-        io.save(result.model, checkpoint, plan=result.plan)
+        factorize.save(result.model, checkpoint, plan=result.plan)
         print(f"saved {checkpoint.name} ({checkpoint.stat().st_size:,} bytes, "
               f"{result.params_after:,} of {result.params_before:,} parameters)")
         env = {**os.environ, "PYTHONPATH": os.pathsep.join(filter(None, [str(REPO), os.environ.get("PYTHONPATH")]))}

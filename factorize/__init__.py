@@ -8,24 +8,44 @@ Typical use::
     result.plan    # JSON-serialisable plan
 """
 
-from factorize.api import CompressResult, apply_plan, compress, decompose_sites, merge, validate_plan
-from factorize.cache import SpectrumCache
-from factorize.checkpoint import shrink_checkpoint
-from factorize.count import count_bytes, count_parameters
-from factorize.decompose import Spectrum, decompose
+from factorize.calibrated.search import (
+    CalibratedResult,
+    Calibration,
+    DriftTargetUnreachable,
+    search_drift,
+)
+from factorize.checkpoints.files import load, read_plan, save
+from factorize.checkpoints.stream import shrink_checkpoint
 from factorize.errors import DriftLimitExceeded, FactorizeError
-from factorize.evaluate import evaluate, output_drift, run_model
-from factorize.heal import HealResult, heal
-from factorize.io import load, read_plan, save
-from factorize.layers import Factored, factored_layers, is_factored, to_dense
-from factorize.ranks import Override, Policy, choose_ranks, plan_ranks, plan_summary
-from factorize.recipe import load_recipe
-from factorize.report import Report
-from factorize.search import CalibratedResult, Calibration, DriftTargetUnreachable, search_drift
-from factorize.training import ProgressiveSchedule, compress_in_training, merge_in_training, refactor
-from factorize.walk import Site, WalkResult, walk
+from factorize.measure.drift import output_drift
+from factorize.measure.evaluate import evaluate
+from factorize.measure.report import Report
+from factorize.model.count import count_bytes, count_parameters
+from factorize.model.feed import run_model
+from factorize.model.sites import Site, WalkResult, walk
+from factorize.pipeline import compress
+from factorize.plan.ranks import (
+    Override,
+    Policy,
+    choose_ranks,
+    plan_ranks,
+    plan_summary,
+)
+from factorize.plan.recipe import load_recipe
+from factorize.rewrite.apply import CompressResult, apply_plan, merge, validate_plan
+from factorize.rewrite.layers import Factored, factored_layers, is_factored, to_dense
+from factorize.spectra.cache import SpectrumCache
+from factorize.spectra.decompose import Spectrum, decompose
+from factorize.spectra.sites import decompose_sites
+from factorize.training.heal import HealResult, heal
+from factorize.training.loop import (
+    ProgressiveSchedule,
+    compress_in_training,
+    merge_in_training,
+    refactor,
+)
 
-__version__ = "0.1.0"
+from factorize._version import __version__  # noqa: E402  (re-exported)
 
 __all__ = [
     "CalibratedResult",

@@ -112,7 +112,8 @@ def test_randomized_method(mlp):
 def test_spectra_reuse_skips_decomposition(mlp, monkeypatch):
     first = compress(mlp, budget=0.5)
     calls = []
-    monkeypatch.setattr(factorize.api, "decompose", lambda *a, **k: calls.append(1))
+    monkeypatch.setattr(factorize.spectra.sites, "decompose", lambda *a, **k: calls.append(1))
+    monkeypatch.setattr(factorize.rewrite.apply, "decompose", lambda *a, **k: calls.append(1))
     second = compress(mlp, budget=0.3, spectra=first.spectra)
     assert not calls and second.params_after < first.params_after
 
@@ -146,7 +147,7 @@ def test_plan_for_other_model_lists_every_offender(mlp):
 
 def test_failed_rewrite_leaves_model_as_it_was(mlp, monkeypatch):
     plan = compress(mlp, rank=2).plan
-    real = factorize.api.factor_module
+    real = factorize.rewrite.apply.factor_module
     calls = []
 
     def flaky(*args, **kwargs):
@@ -155,7 +156,7 @@ def test_failed_rewrite_leaves_model_as_it_was(mlp, monkeypatch):
             raise RuntimeError("simulated failure")
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(factorize.api, "factor_module", flaky)
+    monkeypatch.setattr(factorize.rewrite.apply, "factor_module", flaky)
     before = {n: type(m) for n, m in mlp.named_modules()}
     with pytest.raises(RuntimeError):
         apply_plan(mlp, plan, inplace=True)
@@ -178,7 +179,7 @@ def test_parallel_decomposition_equals_serial():
 def test_cache_directory_skips_decomposition_on_second_run(mlp, tmp_path, monkeypatch):
     first = compress(mlp, budget=0.5, cache=tmp_path / "cache")
     calls = []
-    monkeypatch.setattr(factorize.cache, "decompose", lambda *a, **k: calls.append(1))
+    monkeypatch.setattr(factorize.spectra.cache, "decompose", lambda *a, **k: calls.append(1))
     second = compress(mlp, budget=0.5, cache=tmp_path / "cache")
     assert not calls and second.plan == first.plan
     for name, spec in first.spectra.items():

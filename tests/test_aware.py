@@ -10,12 +10,12 @@ import scipy.linalg
 import torch
 from torch import nn
 
-from factorize.api import apply_plan
-from factorize.aware import AwareSpectrum, apply_bias_shifts, aware_spectra, decompose_aware
-from factorize.calibrate import InputStats, collect_pair_stats, collect_stats
+from factorize.rewrite.apply import apply_plan
+from factorize.calibrated.aware import AwareSpectrum, apply_bias_shifts, aware_spectra, decompose_aware
+from factorize.calibrated.stats import InputStats, collect_pair_stats, collect_stats
 from factorize.errors import FactorizeError
-from factorize.ranks import Policy, choose_ranks
-from factorize.walk import matrix_of, walk
+from factorize.plan.ranks import Policy, choose_ranks
+from factorize.model.sites import matrix_of, walk
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
 
@@ -244,7 +244,7 @@ def test_sequential_mode_runs_in_forward_order():
     # The first factored layer sees the original inputs, so its sequential factors equal the per-layer ones
     # (the refit's ridge pulls towards the original weight, so identical inputs give back W); later layers are
     # refitted and the whole model tracks the original at least as well on the calibration inputs (empirical).
-    from factorize.aware import compress_sequential
+    from factorize.calibrated.aware import compress_sequential
     from factorize.default import load_default, load_digits_split
 
     model = load_default()

@@ -15,13 +15,13 @@ from safetensors import safe_open
 from safetensors.torch import save_file
 
 import factorize
-from factorize import cache as cache_mod
-from factorize import checkpoint
-from factorize.api import decompose_sites
-from factorize.cache import CacheWarning, SpectrumCache, cached_decompose_sites
-from factorize.decompose import decompose
+from factorize.spectra import cache as cache_mod
+from factorize.checkpoints import stream as checkpoint
+from factorize.spectra.sites import decompose_sites
+from factorize.spectra.cache import CacheWarning, SpectrumCache, cached_decompose_sites
+from factorize.spectra.decompose import decompose
 from factorize.errors import FactorizeError
-from factorize.walk import walk
+from factorize.model.sites import walk
 
 
 @pytest.fixture

@@ -9,9 +9,9 @@ import pytest
 import torch
 from torch import nn
 
-from factorize.calibrate import collect_pair_stats, collect_stats, forward_order
+from factorize.calibrated.stats import collect_pair_stats, collect_stats, forward_order
 from factorize.errors import FactorizeError
-from factorize.walk import matrix_of, walk
+from factorize.model.sites import matrix_of, walk
 
 from conftest import tiny_bert, tiny_gpt2
 
@@ -151,7 +151,7 @@ def test_forward_order_and_pair_stats(mlp):
 def test_output_grams_match_exact_jacobians(mlp):
     # G = (1/N) sum_t J_t^T J_t with J_t = d model(x_t) / d layer output. The random-projection estimate is
     # unbiased (Hutchinson 1990: E[v v^T] = I); reference: exact Jacobians from torch.autograd.functional.
-    from factorize.calibrate import collect_output_grams
+    from factorize.calibrated.gradients import collect_output_grams
 
     torch.manual_seed(6)
     x = torch.randn(12, 24)
@@ -176,7 +176,7 @@ def test_output_grams_match_exact_jacobians(mlp):
 
 
 def test_output_grams_need_a_differentiable_model(mlp):
-    from factorize.calibrate import collect_output_grams
+    from factorize.calibrated.gradients import collect_output_grams
 
     class Frozen(nn.Module):
         def __init__(self, inner):

@@ -9,6 +9,7 @@ the sharded-checkpoint index layout (``weight_map``: tensor name -> shard file) 
 from __future__ import annotations
 
 import json
+import shutil
 from collections import namedtuple
 
 import numpy as np
@@ -19,7 +20,8 @@ from safetensors.torch import load_file, save_file
 from torch import nn
 
 import factorize
-from factorize import checkpoint, io
+from factorize.checkpoints import files as io
+from factorize.checkpoints import stream as checkpoint
 from factorize.errors import FactorizeError
 from tests.conftest import MLP
 
@@ -254,7 +256,7 @@ def test_failure_mid_way_leaves_nothing(tmp_path, monkeypatch, sharded):
 
 def test_free_disk_checked_before_writing(tmp_path, monkeypatch):
     src = _write(tmp_path, _model())
-    monkeypatch.setattr(io.shutil, "disk_usage", lambda p: namedtuple("U", "total used free")(10**6, 10**6, 100))
+    monkeypatch.setattr(shutil, "disk_usage", lambda p: namedtuple("U", "total used free")(10**6, 10**6, 100))
     with pytest.raises(FactorizeError, match="not enough free disk space"):
         checkpoint.shrink_checkpoint(src, tmp_path / "out.safetensors", rank=3)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["in.safetensors"]

@@ -27,7 +27,7 @@ import torch
 from safetensors.torch import save_file
 
 from factorize.cli import main, spectrum_profile, spectrum_sketch
-from factorize.report import CAUTION
+from factorize.measure.report import CAUTION
 
 USER_MODULE = """
 import torch
@@ -249,7 +249,7 @@ def test_shrink_writes_checkpoint_and_report_and_compare_reproduces_its_drift(wo
     assert rep["caution"] == CAUTION
     md = (world["dir"] / "review.md").read_text()
     assert "| parameters |" in md and "no guarantee" in md and "safety-relevant" in md
-    # compare loads the checkpoint into a fresh instance (factorize.io.load); the outputs are identical to the
+    # compare loads the checkpoint into a fresh instance (factorize.checkpoints.files.load); the outputs are identical to the
     # compressed model in memory, so the drift is the same
     assert compare.rc == 0, compare
     c = compare.json()["report"]

@@ -11,7 +11,8 @@ from scipy.stats import entropy as scipy_entropy
 from torch import nn
 
 from factorize.errors import FactorizeError
-from factorize.evaluate import output_drift, primary_output, run_model
+from factorize.measure.drift import output_drift
+from factorize.model.feed import primary_output, run_model
 
 
 class _Tupled(nn.Module):
@@ -120,7 +121,7 @@ def test_output_drift_rejects_mismatched_outputs() -> None:
 
 def test_evaluate_counts_macs_with_hooks_on_a_cnn(cnn) -> None:
     import factorize
-    from factorize.evaluate import evaluate
+    from factorize.measure.evaluate import evaluate
 
     result = factorize.compress(cnn, rank=4)
     x = torch.randn(3, 3, 10, 10, generator=torch.Generator().manual_seed(0))
@@ -145,7 +146,7 @@ def test_evaluate_weight_error_and_accuracy_against_references(mlp) -> None:
     import factorize
     from sklearn.metrics import accuracy_score
 
-    from factorize.evaluate import evaluate
+    from factorize.measure.evaluate import evaluate
 
     result = factorize.compress(mlp, rank=5, method="exact")  # exact SVD: Eckart-Young applies exactly
     gen = torch.Generator().manual_seed(3)
@@ -175,7 +176,7 @@ def test_evaluate_weight_error_and_accuracy_against_references(mlp) -> None:
 
 def test_evaluate_counts_tied_weights_once_and_embedding_macs(tied_lm) -> None:
     import factorize
-    from factorize.evaluate import evaluate
+    from factorize.measure.evaluate import evaluate
 
     result = factorize.compress(tied_lm, rank=4)
     ids = torch.randint(0, 50, (2, 6), generator=torch.Generator().manual_seed(0))
@@ -191,7 +192,7 @@ def test_evaluate_counts_tied_weights_once_and_embedding_macs(tied_lm) -> None:
 
 def test_evaluate_rejects_bad_labels_and_empty_inputs(mlp) -> None:
     import factorize
-    from factorize.evaluate import evaluate
+    from factorize.measure.evaluate import evaluate
 
     result = factorize.compress(mlp, rank=5)
     with pytest.raises(FactorizeError, match="3 labels for 8 predictions"):

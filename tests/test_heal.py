@@ -13,8 +13,8 @@ from torch import nn
 import factorize
 from factorize.default import load_default, load_digits_split
 from factorize.errors import FactorizeError
-from factorize.evaluate import output_drift
-from factorize.heal import HealResult, _lr_factor, _resolve_loss, distill_loss, heal
+from factorize.measure.drift import output_drift
+from factorize.training.heal import HealResult, _lr_factor, _resolve_loss, distill_loss, heal
 from tests.conftest import MLP, tiny_bert
 
 

@@ -8,14 +8,7 @@ import torch
 from safetensors.torch import save_file
 
 from factorize.errors import FactorizeError
-from factorize.inputs import (
-    RANDOM_WARNING,
-    check_inputs,
-    load_inputs,
-    parse_shape,
-    prepare,
-    random_inputs,
-)
+from factorize.measure.inputs import RANDOM_WARNING, check_inputs, load_inputs, parse_shape, prepare, random_inputs
 
 
 def test_npy_single_input_is_split_into_batches(tmp_path) -> None:

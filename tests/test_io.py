@@ -8,6 +8,7 @@ the data; github.com/huggingface/safetensors, "Format") and the reference reader
 from __future__ import annotations
 
 import json
+import shutil
 import os
 import struct
 from collections import namedtuple
@@ -19,9 +20,10 @@ from safetensors.torch import save_file
 from torch import nn
 
 import factorize
-from factorize import io
+from factorize import storage
+from factorize.checkpoints import files as io
 from factorize.errors import FactorizeError
-from factorize.layers import Factored
+from factorize.rewrite.layers import Factored
 from tests.conftest import CNN, MLP, TiedLM, tiny_gpt2
 
 
@@ -182,7 +184,7 @@ def test_failed_overwrite_keeps_the_old_file(tmp_path, mlp, monkeypatch):
 
 def test_not_enough_disk_space(tmp_path, mlp, monkeypatch):
     result = factorize.compress(mlp, rank=4)
-    monkeypatch.setattr(io.shutil, "disk_usage", lambda p: namedtuple("U", "total used free")(10**6, 10**6, 1000))
+    monkeypatch.setattr(shutil, "disk_usage", lambda p: namedtuple("U", "total used free")(10**6, 10**6, 1000))
     with pytest.raises(FactorizeError, match="not enough free disk space"):
         io.save(result.model, tmp_path / "m.safetensors", plan=result.plan)
     assert list(tmp_path.iterdir()) == []
@@ -197,7 +199,7 @@ def test_unwritable_or_missing_directory(tmp_path, mlp, monkeypatch):
     locked.chmod(0o500)
     if os.geteuid() == 0:  # root ignores permission bits: make the access check see what a user would
         real = os.access
-        monkeypatch.setattr(io.os, "access", lambda p, mode: False if str(p) == str(locked) else real(p, mode))
+        monkeypatch.setattr(os, "access", lambda p, mode: False if str(p) == str(locked) else real(p, mode))
     with pytest.raises(FactorizeError, match="cannot write in") as e:
         io.save(result.model, locked / "m.safetensors", plan=result.plan)
     assert "permission denied" in str(e.value)
@@ -211,7 +213,7 @@ def test_directory_refusing_new_files(tmp_path, mlp, monkeypatch):
     def refuse(*a, **k):
         raise PermissionError(13, "Permission denied")
 
-    monkeypatch.setattr(io.os, "open", refuse)
+    monkeypatch.setattr(os, "open", refuse)
     with pytest.raises(FactorizeError, match="cannot create files"):
         io.save(result.model, tmp_path / "m.safetensors", plan=result.plan)
     monkeypatch.undo()
@@ -281,7 +283,7 @@ def test_header_entry_past_the_end(tmp_path):
     bad = tmp_path / "bad.safetensors"
     bad.write_bytes(struct.pack("<Q", len(header)) + header + b"\0" * 16)  # 16 of 64 data bytes
     with pytest.raises(FactorizeError, match="truncated"):
-        io.read_header(bad)
+        storage.read_header(bad)
 
 
 def test_plain_safetensors_is_not_a_factorize_checkpoint(tmp_path, mlp):

@@ -12,7 +12,7 @@ import torch
 from safetensors.torch import save_file
 
 from factorize.errors import FactorizeError
-from factorize.models import check_safetensors, load_model
+from factorize.checkpoints.models import check_safetensors, load_model
 
 USER_MODULE = """
 import torch

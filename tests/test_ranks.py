@@ -9,8 +9,8 @@ import pytest
 import torch
 
 from factorize import FactorizeError, Override, Policy, choose_ranks, decompose, plan_summary, walk
-from factorize.api import decompose_sites
-from factorize.walk import Site
+from factorize.spectra.sites import decompose_sites
+from factorize.model.sites import Site
 
 
 def _site(name, m, n):

@@ -10,10 +10,10 @@ from torch import nn
 
 import factorize
 from factorize.errors import FactorizeError
-from factorize.evaluate import output_drift
-from factorize.layers import factored_layers
-from factorize.ranks import Override
-from factorize.recipe import RECIPES_DIR, load_recipe, parse_recipe, shipped_recipes
+from factorize.measure.drift import output_drift
+from factorize.rewrite.layers import factored_layers
+from factorize.plan.ranks import Override
+from factorize.plan.recipe import RECIPES_DIR, load_recipe, parse_recipe, shipped_recipes
 
 
 def _factored(model) -> set[str]:

@@ -7,7 +7,7 @@ import json
 
 from rich.console import Console
 
-from factorize.report import CAUTION, LayerReport, Report, render_rich
+from factorize.measure.report import CAUTION, LayerReport, Report, render_rich
 
 
 def _report(**over) -> Report:

@@ -7,8 +7,8 @@ import torch
 
 from factorize.default import load_default, load_digits_split
 from factorize.errors import DriftLimitExceeded, FactorizeError
-from factorize.evaluate import output_drift
-from factorize.search import DriftTargetUnreachable, compress_calibrated, search_drift
+from factorize.measure.drift import output_drift
+from factorize.calibrated.search import DriftTargetUnreachable, compress_calibrated, search_drift
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
 
@@ -92,7 +92,7 @@ def test_bad_search_arguments(digits):
 
 def test_compress_entry_points(digits):
     import factorize
-    from factorize.search import CalibratedResult
+    from factorize.calibrated.search import CalibratedResult
 
     model, cal, held, _ = digits
     a = factorize.compress(model, budget=0.3, calibration=cal)

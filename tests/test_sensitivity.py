@@ -8,14 +8,15 @@ import pytest
 import torch
 from torch import nn
 
-from factorize.api import apply_plan, decompose_sites
-from factorize.aware import apply_bias_shifts, aware_spectra
-from factorize.calibrate import collect_stats
+from factorize.rewrite.apply import apply_plan
+from factorize.spectra.sites import decompose_sites
+from factorize.calibrated.aware import apply_bias_shifts, aware_spectra
+from factorize.calibrated.stats import collect_stats
 from factorize.errors import FactorizeError
-from factorize.evaluate import output_drift
-from factorize.ranks import Policy, choose_ranks, plan_ranks
-from factorize.sensitivity import measure_sensitivity
-from factorize.walk import walk
+from factorize.measure.drift import output_drift
+from factorize.plan.ranks import Policy, choose_ranks, plan_ranks
+from factorize.calibrated.sensitivity import measure_sensitivity
+from factorize.model.sites import walk
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
 

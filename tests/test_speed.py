@@ -8,7 +8,7 @@ import torch
 from torch import nn
 
 import factorize
-from factorize.speed import LayerTiming, keep_fast, record_input_shapes, slower_layers
+from factorize.measure.speed import LayerTiming, keep_fast, record_input_shapes, slower_layers
 
 
 def test_slower_layers_named_with_reason():
@@ -30,7 +30,7 @@ def test_keep_fast_times_every_factored_layer(cnn):
 
 def test_speed_check_keeps_slow_layers_dense_and_reallocates(monkeypatch):
     # Force a verdict so the plan logic is tested without depending on this machine's timings.
-    monkeypatch.setattr("factorize.speed.keep_fast", lambda *a, **k: ({"1": "measured slower factored than dense"}, []))
+    monkeypatch.setattr("factorize.measure.speed.keep_fast", lambda *a, **k: ({"1": "measured slower factored than dense"}, []))
     torch.manual_seed(0)
     model = nn.Sequential(*[nn.Linear(64, 64) for _ in range(4)])
     plain = factorize.compress(model, budget=0.5)
@@ -41,6 +41,6 @@ def test_speed_check_keeps_slow_layers_dense_and_reallocates(monkeypatch):
     summary = factorize.plan_summary(checked.plan)
     assert summary["params_after"] <= 0.5 * summary["params_before"]  # budget still honoured
     assert checked.plan["sites"]["0"]["rank"] < plain.plan["sites"]["0"]["rank"]  # the others paid for it
-    monkeypatch.setattr("factorize.speed.keep_fast", lambda *a, **k: ({"0": "slow", "1": "slow", "2": "slow"}, []))
+    monkeypatch.setattr("factorize.measure.speed.keep_fast", lambda *a, **k: ({"0": "slow", "1": "slow", "2": "slow"}, []))
     with pytest.raises(factorize.FactorizeError, match="speed check kept layers dense"):
         factorize.compress(model, budget=0.5, speed_check=True)

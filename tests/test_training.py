@@ -10,8 +10,8 @@ from torch import nn
 
 import factorize
 from factorize.errors import FactorizeError
-from factorize.layers import factor_module, factored_layers
-from factorize.training import (
+from factorize.rewrite.layers import factor_module, factored_layers
+from factorize.training.loop import (
     ProgressiveSchedule,
     compress_in_training,
     factored_spectrum,
@@ -176,7 +176,7 @@ def test_merge_in_training_gives_dense_layers_and_a_working_optimizer() -> None:
 
 
 def test_progressive_schedule_lowers_the_budget_and_saves_a_loadable_file(tmp_path) -> None:
-    from factorize import io
+    from factorize.checkpoints import files as io
 
     x, y = _digits(400)
     torch.manual_seed(0)

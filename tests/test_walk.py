@@ -8,7 +8,7 @@ from conftest import tiny_bert, tiny_gpt2
 from torch import nn
 
 from factorize import FactorizeError, walk
-from factorize.walk import is_transposed_projection, matrix_of
+from factorize.model.sites import is_transposed_projection, matrix_of
 
 
 def test_mlp_sites_and_break_even(mlp):

@@ -14,9 +14,10 @@ from dataclasses import dataclass
 import torch
 from torch import nn
 
-from factorize.evaluate import paired_ms, run_model
-from factorize.layers import Factored
-from factorize.walk import get_module
+from factorize.measure.timing import paired_ms
+from factorize.model.feed import run_model
+from factorize.model.sites import get_module
+from factorize.rewrite.layers import Factored
 
 
 @dataclass(frozen=True)

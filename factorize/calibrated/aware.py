@@ -38,7 +38,7 @@ the covariance C - N mu mu^T. This never does worse than the uncentred solution 
 the correction is the "bias correction" used after quantization (Nagel et al., "Data-free quantization through
 weight equalization and bias correction", ICCV 2019 -- cited from memory).
 
-**Sequential refit** (``stats.cross`` set, see :func:`factorize.calibrate.collect_pair_stats`): when the inputs X
+**Sequential refit** (``stats.cross`` set, see :func:`factorize.calibrated.stats.collect_pair_stats`): when the inputs X
 now come from a partly compressed model while the targets are the original layer's outputs on the original
 inputs X_ref, the rank-r W' minimising ||W X_ref^T - W' X^T||_F is reduced-rank regression with a least-squares
 step first (Izenman 1975): W_ls = (W C_rx + lambda W)(C + lambda I)^{-1} with C_rx = X_ref^T X -- a ridge that
@@ -47,7 +47,7 @@ samples barely explore keep the original weights (generalised ridge regression t
 Kennard, Technometrics 1970, from memory) -- then W' = U_r U_r^T W_ls with U from W_ls L. The least-squares
 residual (no rank can remove it) is added to the predicted error.
 
-**Output weighting** (``output_gram=G``, see :func:`factorize.calibrate.collect_output_grams`): not every output
+**Output weighting** (``output_gram=G``, see :func:`factorize.calibrated.gradients.collect_output_grams`): not every output
 direction of a layer matters equally downstream. With G the mean Gauss-Newton matrix of the final output with
 respect to the layer's output, trace(G dW C dW^T) approximates the final-output error of a weight error dW
 (first order, Kronecker-factored as in K-FAC, Martens & Grosse 2015). Write G + mu I = R^2 (R symmetric, mu =
@@ -71,10 +71,10 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
-from factorize.calibrate import InputStats
-from factorize.decompose import Spectrum, compute_dtype_for, decompose
+from factorize.calibrated.stats import InputStats
 from factorize.errors import FactorizeError
-from factorize.walk import Site, get_module, matrix_of
+from factorize.model.sites import Site, get_module, matrix_of
+from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose
 
 AWARE_METHODS = ("whiten", "scale")
 DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
@@ -86,7 +86,7 @@ OUTPUT_RIDGE = 0.1  # relative ridge on the output Gram matrix (a judgement call
 
 @dataclass
 class AwareSpectrum(Spectrum):
-    """A :class:`~factorize.decompose.Spectrum` whose errors are output errors on the calibration inputs.
+    """A :class:`~factorize.spectra.decompose.Spectrum` whose errors are output errors on the calibration inputs.
 
     ``U`` (m x k) holds the kept output directions (orthonormal, or R^{-1} U when output-weighted), ``S`` the
     singular values of the whitened (or scaled) matrix, and ``Vh`` = diag(1/S) U^T W_target, so that
@@ -157,7 +157,7 @@ def _moments(stats: InputStats, center: bool):
 
 def _check_stats(W: torch.Tensor, stats: InputStats, name: str) -> None:
     if not isinstance(stats, InputStats):
-        raise FactorizeError(f"{name}: expected InputStats from factorize.calibrate.collect_stats, got "
+        raise FactorizeError(f"{name}: expected InputStats from factorize.calibrated.stats.collect_stats, got "
                              f"{type(stats).__name__}")
     if stats.width != W.shape[1]:
         raise FactorizeError(
@@ -193,7 +193,7 @@ def decompose_aware(
 
     Args:
         W: the weight's matrix view (out x in); not modified.
-        stats: :class:`~factorize.calibrate.InputStats` of the layer's inputs (with ``cross`` set, the
+        stats: :class:`~factorize.calibrated.stats.InputStats` of the layer's inputs (with ``cross`` set, the
             sequential refit is used).
         method: ``"whiten"`` (reduced-rank regression / SVD-LLM) or ``"scale"`` (ASVD diagonal scaling).
         alpha: ASVD's exponent for ``"scale"``.
@@ -202,13 +202,13 @@ def decompose_aware(
         ridge: relative ridge on C (default: 1e-6, or 1e-2 when the layer saw fewer samples than its width).
         refit_ridge: relative ridge of the sequential least-squares step.
         output_gram: G (m x m), how much each output direction moves the final output
-            (:func:`factorize.calibrate.collect_output_grams`); when given, the error is weighted on both sides,
+            (:func:`factorize.calibrated.gradients.collect_output_grams`); when given, the error is weighted on both sides,
             ||G^{1/2} (W - W') L||_F, and errors are in final-output units (see the module docstring).
         output_ridge: relative ridge on G (G + mu I, mu = output_ridge * mean(diag G)).
-        solver: SVD algorithm of :func:`factorize.decompose.decompose` on the whitened matrix (``"gram"``,
+        solver: SVD algorithm of :func:`factorize.spectra.decompose.decompose` on the whitened matrix (``"gram"``,
             ``"exact"``, ``"randomized"`` or ``"auto"``; the last two compute only ``rank`` triplets).
         rank: how many triplets a partial solver must compute.
-        seed / precision: as for :func:`factorize.decompose.decompose`.
+        seed / precision: as for :func:`factorize.spectra.decompose.decompose`.
         name: the layer's name, for messages.
 
     Returns:
@@ -360,7 +360,7 @@ def aware_spectra(
     """Activation-aware spectrum of every site from its statistics.
 
     ``center="auto"`` centres (with bias correction) the layers that have a bias and are not embeddings.
-    ``output_grams`` (from :func:`factorize.calibrate.collect_output_grams`) weight each site's output directions.
+    ``output_grams`` (from :func:`factorize.calibrated.gradients.collect_output_grams`) weight each site's output directions.
     A site with no statistics, or whose statistics hold no sample, is an error listing every such site.
     """
     sites = list(sites)
@@ -394,7 +394,7 @@ def _center_for(site: Site, center: bool | str) -> bool:
 def apply_bias_shifts(model: nn.Module, plan: Mapping, spectra: Mapping[str, Spectrum]) -> None:
     """Add each factored layer's bias correction (:meth:`AwareSpectrum.bias_shift`) to its output bias, in place.
 
-    Call once, right after :func:`factorize.api.apply_plan` built the factored layers from ``spectra``.
+    Call once, right after :func:`factorize.rewrite.apply.apply_plan` built the factored layers from ``spectra``.
     """
     for name, e in plan["sites"].items():
         spec = spectra.get(name)
@@ -428,7 +428,7 @@ def compress_sequential(
 
     Args:
         model: the original model; not modified (a deep copy is compressed).
-        plan: ranks per site (e.g. from :func:`factorize.ranks.choose_ranks`); dense sites stay as they are.
+        plan: ranks per site (e.g. from :func:`factorize.plan.ranks.choose_ranks`); dense sites stay as they are.
         batches: calibration batches (batch contract); every site costs one pass of each model over them (the
             passes stop after the site when each site runs once per forward).
         method: ``"whiten"`` (with ``refit``) or ``"scale"`` (``refit`` is then off).
@@ -442,9 +442,14 @@ def compress_sequential(
     Returns:
         (compressed copy, name -> spectrum used for each factored site).
     """
-    from factorize.calibrate import as_batch_list, collect_pair_stats, forward_order, resolve_sites
-    from factorize.layers import factor_module
-    from factorize.walk import set_module
+    from factorize.calibrated.stats import (
+        as_batch_list,
+        collect_pair_stats,
+        forward_order,
+        resolve_sites,
+    )
+    from factorize.model.sites import set_module
+    from factorize.rewrite.layers import factor_module
 
     batch_list = as_batch_list(batches)
     names = [n for n, e in plan["sites"].items() if e.get("action") == "factor"]

@@ -16,7 +16,7 @@ from __future__ import annotations
 import torch
 from torch import nn
 
-from factorize.walk import matrix_of
+from factorize.model.sites import matrix_of
 
 
 class Factored(nn.Module):

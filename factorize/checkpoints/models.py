@@ -5,7 +5,7 @@
 * ``package.module:callable`` -- a function or class that builds the ``nn.Module`` when called with no
   arguments (or a module-level ``nn.Module`` instance). ``--weights FILE.safetensors`` then loads a state dict
   into it strictly, listing every missing, unexpected and mis-shaped key at once; a factorize checkpoint (one
-  whose metadata holds a plan) is loaded through :func:`factorize.io.load`, factored structure and all.
+  whose metadata holds a plan) is loaded through :func:`factorize.checkpoints.files.load`, factored structure and all.
 * a directory holding a transformers model (``config.json`` plus ``*.safetensors``); needs the ``hf`` extra.
 * a bare ``.safetensors`` file, or the ``*.safetensors.index.json`` of a sharded checkpoint -- weights-only mode
   (:mod:`factorize.checkpoint`): no architecture, so its 2-D tensors are factored and reported by weight error
@@ -80,7 +80,7 @@ def load_model(spec: str, *, weights: str | os.PathLike | None = None, allow_pic
         tensors = _load_pickle(path, allow_pickle)
         return LoadedModel(source=spec, kind="pickle", path=path, tensors=_tensors_only(tensors, path))
     if path.suffix.lower() == ".safetensors" or path.name.endswith(".safetensors.index.json"):
-        from factorize.io import open_checkpoint
+        from factorize.checkpoints.files import open_checkpoint
 
         open_checkpoint(path)  # every header checked (and every shard of an index); tensors are streamed later
         return LoadedModel(source=spec, kind="weights", path=path)
@@ -163,7 +163,7 @@ def _fresh_copy(model: nn.Module) -> nn.Module:
 def load_weights(model: nn.Module, path: str | os.PathLike, *, allow_pickle: bool = False) -> nn.Module:
     """Load a weights file into ``model`` strictly.
 
-    A factorize checkpoint (a plan in its metadata) is loaded with :func:`factorize.io.load`, which first rebuilds
+    A factorize checkpoint (a plan in its metadata) is loaded with :func:`factorize.checkpoints.files.load`, which first rebuilds
     the factored structure. Otherwise the file's tensors must match the model's state dict exactly: every
     missing, unexpected and mis-shaped key is listed in one error.
     """
@@ -174,7 +174,7 @@ def load_weights(model: nn.Module, path: str | os.PathLike, *, allow_pickle: boo
     else:
         check_safetensors(path)
         if has_plan(path):
-            from factorize import io
+            from factorize.checkpoints import files as io
 
             return io.load(model, path)
         state = read_safetensors(path)
@@ -204,7 +204,7 @@ def state_dict_problems(model: nn.Module, state: Mapping[str, torch.Tensor]) -> 
 def has_plan(path: str | os.PathLike) -> bool:
     """Whether ``path`` is a factorize checkpoint (a plan in its metadata)."""
     try:
-        from factorize import io
+        from factorize.checkpoints import files as io
     except ImportError:  # pragma: no cover - the files module ships with the package
         return False
     try:
@@ -257,9 +257,9 @@ def _check_readable(path: Path) -> None:
 
 
 def check_safetensors(path: str | os.PathLike) -> dict:
-    """Validate a safetensors file's layout before loading it (:func:`factorize.io.read_header`: a file cut
+    """Validate a safetensors file's layout before loading it (:func:`factorize.storage.read_header`: a file cut
     short, a header claiming more data than the file holds, a corrupt header) and return its metadata."""
-    from factorize.io import read_header
+    from factorize.storage import read_header
 
     return read_header(path).metadata
 

@@ -9,7 +9,7 @@ where ``options`` are the decomposition options that matter for the method (``ex
 key: two layers with identical weights share an entry. blake2b is RFC 7693.
 
 Each entry is one safetensors file ``<key>.safetensors`` holding ``U``, ``S``, ``Vh`` exactly as
-:func:`factorize.decompose.decompose` returned them (so a cache hit gives bit-identical factors), with metadata:
+:func:`factorize.spectra.decompose.decompose` returned them (so a cache hit gives bit-identical factors), with metadata:
 the key, the method, ``exact``, ``total_energy`` (as a float hex string, exact) and a blake2b checksum of the
 three tensors. Entries are written atomically (temporary file, then rename), so concurrent runs never see half
 an entry.
@@ -35,18 +35,16 @@ import os
 import threading
 import warnings
 from collections.abc import Callable, Iterable, Mapping
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import torch
 from safetensors import safe_open
 from safetensors.torch import save_file
 from torch import nn
-from tqdm.auto import tqdm
 
-from factorize.decompose import METHODS, Spectrum, compute_dtype_for, decompose
 from factorize.errors import FactorizeError
-from factorize.io import create_temp, read_header, remove_quietly, write_atomic
+from factorize.spectra.decompose import METHODS, Spectrum, compute_dtype_for, decompose
+from factorize.storage import create_temp, read_header, remove_quietly, write_atomic
 
 CACHE_FORMAT = "factorize.spectrum"
 CACHE_VERSION = 1
@@ -238,13 +236,13 @@ def cached_decompose_sites(
     workers: int = 1,
     **options,
 ) -> dict[str, Spectrum]:
-    """Drop-in for :func:`factorize.api.decompose_sites` that reads and fills ``cache``.
+    """Drop-in for :func:`factorize.spectra.sites.decompose_sites` that reads and fills ``cache``.
 
     Same arguments and results as ``decompose_sites`` (bit-identical spectra on a hit, module order, the same
     seed for every layer); ``cache=None`` simply calls ``decompose_sites``. ``workers > 1`` runs layers in
     threads as ``decompose_sites`` does.
     """
-    from factorize.api import decompose_sites
+    from factorize.spectra.sites import decompose_sites
 
     return decompose_sites(model, sites, method=method, ranks=ranks, seed=seed, precision=precision,
                            progress=progress, workers=workers, cache=cache, **options)

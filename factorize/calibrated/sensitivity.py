@@ -14,8 +14,8 @@ against the original outputs. Per site, a weight w is fitted by least squares th
 with d = relative_l2^2 (``metric="relative_l2"``, default) or 1 - mean cosine (``metric="cosine"``); both are
 to first order proportional to the squared output perturbation, which is what makes the model linear in E.
 Assuming errors of different layers add (first order; they interact at large errors), the predicted drift of a
-plan is sum_l w_l E_l(r_l): ``error_scale()`` hands the w_l to :func:`factorize.ranks.choose_ranks` /
-:func:`factorize.ranks.allocate_budget`, whose greedy step then maximises the predicted drift removed per
+plan is sum_l w_l E_l(r_l): ``error_scale()`` hands the w_l to :func:`factorize.plan.ranks.choose_ranks` /
+:func:`factorize.plan.ranks.allocate_budget`, whose greedy step then maximises the predicted drift removed per
 parameter (or multiply-accumulate) spent. A robust layer gets little rank; a sensitive one may stay dense.
 
 Cost, stated honestly: one reference pass plus ``len(sites) * len(fractions)`` passes over the probe batches.
@@ -32,11 +32,12 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
-from factorize.aware import AwareSpectrum
-from factorize.decompose import Spectrum
+from factorize.calibrated.aware import AwareSpectrum
 from factorize.errors import FactorizeError
-from factorize.evaluate import feed, output_drift, primary_output, token_mask
-from factorize.walk import Site, get_module
+from factorize.measure.drift import output_drift
+from factorize.model.feed import feed, primary_output, token_mask
+from factorize.model.sites import Site, get_module
+from factorize.spectra.decompose import Spectrum
 
 METRICS = ("relative_l2", "cosine")
 DEFAULT_FRACTIONS = (0.5, 0.25)  # probe ranks: these fractions of each layer's parameters

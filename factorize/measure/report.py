@@ -55,7 +55,7 @@ class Report:
     bytes_before: int = 0  # parameters and buffers, shared tensors counted once
     bytes_after: int = 0
     layers: list[LayerReport] = field(default_factory=list)
-    drift: dict[str, float] | None = None  # see factorize.evaluate.output_drift
+    drift: dict[str, float] | None = None  # see factorize.measure.drift.output_drift
     accuracy_before: float | None = None
     accuracy_after: float | None = None
     latency_ms_before: float | None = None  # median over latency_repeats forward passes of one batch

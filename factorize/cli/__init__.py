@@ -162,7 +162,7 @@ def build_parser() -> argparse.ArgumentParser:
         + "\nRun 'factorize COMMAND --help' for each command's options. Exit codes: 0 done, 1 a requested check\n"
         "failed (--max-drift), 2 bad usage or bad input.",
     )
-    from factorize import __version__
+    from factorize._version import __version__
 
     parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
@@ -302,7 +302,7 @@ def _selection(g) -> None:
     g.add_argument("--include", action="append", metavar="GLOB",
                    help="only layers whose name matches (repeatable; fnmatch rules, '*' crosses dots)")
     g.add_argument("--exclude", action="append", metavar="GLOB", help="never factor matching layers (repeatable)")
-    from factorize.decompose import METHODS
+    from factorize.spectra.decompose import METHODS
 
     g.add_argument("--method", choices=METHODS + AWARE_METHODS,
                    help="how to decompose: exact (LAPACK SVD), gram (eigensolve of the smaller Gram matrix), "
@@ -462,7 +462,7 @@ def _nonnegative(flag: str) -> Callable[[str], float]:
 
 
 def _load(args, ui: UI):
-    from factorize.models import load_model
+    from factorize.checkpoints.models import load_model
 
     if ui.quiet and Path(args.model).is_dir():
         with contextlib.suppress(ImportError):  # transformers draws its own progress bars on stderr
@@ -478,7 +478,7 @@ def _policy_kwargs(args, ui: UI, *, default_budget: float | None = 0.5) -> dict:
     """compress() keyword arguments from --recipe plus the command-line options (which win)."""
     kwargs: dict[str, Any] = {}
     if getattr(args, "recipe", None):
-        from factorize.recipe import load_recipe
+        from factorize.plan.recipe import load_recipe
 
         recipe = load_recipe(args.recipe)
         kwargs = recipe.compress_kwargs()
@@ -504,7 +504,12 @@ def _policy_kwargs(args, ui: UI, *, default_budget: float | None = 0.5) -> dict:
 
 def _sample_inputs(args, loaded, ui: UI):
     """The sample inputs named on the command line, or the model's built-in default; None when there are none."""
-    from factorize.inputs import check_inputs, load_inputs, prepare, random_inputs
+    from factorize.measure.inputs import (
+        check_inputs,
+        load_inputs,
+        prepare,
+        random_inputs,
+    )
 
     if args.batch_size < 1:
         raise FactorizeError(f"--batch-size must be >= 1, got {args.batch_size}", fix="e.g. --batch-size 32")
@@ -517,7 +522,7 @@ def _sample_inputs(args, loaded, ui: UI):
                              tokenizer=loaded.tokenizer, limit=args.max_samples)
         source = args.inputs
     elif args.random_inputs:
-        from factorize.inputs import parse_shape
+        from factorize.measure.inputs import parse_shape
 
         shape = parse_shape(args.random_inputs)
         if args.max_samples:
@@ -539,7 +544,7 @@ def _sample_inputs(args, loaded, ui: UI):
 
 def _default_inputs(loaded, args):
     """The embedded default's held-out digits; the built-in held-out sentences for a model with a tokenizer."""
-    from factorize.inputs import SampleInputs, sentences_inputs
+    from factorize.measure.inputs import SampleInputs, sentences_inputs
 
     if loaded.is_default and loaded.path is None:
         from factorize.default import load_digits_split
@@ -580,7 +585,7 @@ def _sharded(path: Path | None) -> bool:
 
 
 def _check_outputs(paths: Sequence[Path | None], force: bool, *, directory: Path | None = None) -> None:
-    from factorize.io import check_output_path
+    from factorize.storage import check_output_path
 
     for p in paths:
         if p is not None:
@@ -588,7 +593,7 @@ def _check_outputs(paths: Sequence[Path | None], force: bool, *, directory: Path
 
 
 def _write_text(path: Path, text: str, force: bool) -> None:
-    from factorize.io import write_atomic
+    from factorize.storage import write_atomic
 
     write_atomic(path, lambda tmp: tmp.write_text(text, encoding="utf-8"), force=force)
 
@@ -634,8 +639,8 @@ def cmd_scan(args, ui: UI) -> dict:
 
 
 def _scan_model(args, loaded, ui):
-    from factorize.api import decompose_sites
-    from factorize.walk import walk
+    from factorize.model.sites import walk
+    from factorize.spectra.sites import decompose_sites
 
     found = walk(loaded.model, include=args.include, exclude=args.exclude)
     if not found.sites:
@@ -650,11 +655,11 @@ def _scan_model(args, loaded, ui):
 def _scan_weights_only(args, loaded, ui):
     from tqdm.auto import tqdm
 
-    from factorize.decompose import decompose
+    from factorize.spectra.decompose import decompose
 
     with _weights_file(loaded) as path:
-        from factorize.checkpoint import select
-        from factorize.io import open_checkpoint
+        from factorize.checkpoints.files import open_checkpoint
+        from factorize.checkpoints.stream import select
 
         chosen, passed = select(open_checkpoint(path), args.include, args.exclude)
         rows = []
@@ -781,7 +786,7 @@ def cmd_shrink(args, ui: UI) -> dict:
                 output.unlink(missing_ok=True)
             raise
     if not ui.json_mode:
-        from factorize.report import render_rich
+        from factorize.measure.report import render_rich
 
         render_rich(report, ui.out)
         ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
@@ -790,11 +795,11 @@ def cmd_shrink(args, ui: UI) -> dict:
 
 
 def _shrink_model(args, loaded, output: Path, kwargs: dict, ui: UI):
-    from factorize import io
-    from factorize.api import compress
-    from factorize.count import count_bytes, count_parameters
-    from factorize.evaluate import evaluate, layer_reports
-    from factorize.report import Report
+    from factorize.checkpoints import files as io
+    from factorize.measure.evaluate import evaluate, layer_reports
+    from factorize.measure.report import Report
+    from factorize.model.count import count_bytes, count_parameters
+    from factorize.pipeline import compress
 
     inputs = _sample_inputs(args, loaded, ui)
     _require_inputs_for_check(args, inputs)
@@ -828,7 +833,7 @@ def _calibration_inputs(args, loaded, inputs, ui: UI):
     path = getattr(args, "calibration", None)
     if not path:
         return None
-    from factorize.inputs import check_inputs, load_inputs, prepare
+    from factorize.measure.inputs import check_inputs, load_inputs, prepare
 
     calib = load_inputs(path, batch_size=args.batch_size, labels_key=args.labels_key, tokenizer=loaded.tokenizer)
     for note in calib.notes:
@@ -890,7 +895,7 @@ def _calibration_notes(result, calibration) -> list[str]:
 
 def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
     """Distil the compressed model towards the original on the calibration inputs; held-out: --inputs."""
-    from factorize.heal import heal
+    from factorize.training.heal import heal
 
     done = heal(result.model, loaded.model, calibration.batches, steps=args.heal, lr=args.heal_lr,
                 schedule=args.heal_schedule,
@@ -912,7 +917,7 @@ def _no_inputs_in_weights_only(args) -> None:
 
 
 def _shrink_weights_only(args, loaded, output: Path, kwargs: dict, ui: UI):
-    from factorize.checkpoint import shrink_checkpoint
+    from factorize.checkpoints.stream import shrink_checkpoint
 
     _no_inputs_in_weights_only(args)
     _no_model_options_in_weights_only(args)
@@ -932,7 +937,7 @@ def _no_model_options_in_weights_only(args) -> None:
 
 
 def _weights_only_report(done: dict, source: str):
-    from factorize.report import LayerReport, Report
+    from factorize.measure.report import LayerReport, Report
 
     layers = []
     for row in done["tensors"].values():
@@ -970,7 +975,7 @@ def cmd_sweep(args, ui: UI) -> dict:
         inputs_source = None
     else:
         rows, inputs_source = _sweep_model(args, loaded, budgets, kwargs, ui)
-    from factorize.report import CAUTION
+    from factorize.measure.report import CAUTION
 
     result = {"command": "sweep", "model": loaded.source, "inputs": inputs_source, "rows": rows, "caution": CAUTION}
     if csv_path is not None:
@@ -984,8 +989,8 @@ def cmd_sweep(args, ui: UI) -> dict:
 
 
 def _sweep_model(args, loaded, budgets, kwargs, ui):
-    from factorize.api import compress
-    from factorize.evaluate import evaluate
+    from factorize.measure.evaluate import evaluate
+    from factorize.pipeline import compress
 
     inputs = _sample_inputs(args, loaded, ui)
     if inputs is None:
@@ -1023,9 +1028,9 @@ def _sweep_model(args, loaded, budgets, kwargs, ui):
 
 def _calibrated_builder(model, calibration, quality: dict, kwargs: dict, ui: UI):
     """budget -> compressed result, from one set of calibration statistics, spectra and sensitivities."""
-    from factorize.count import count_parameters
-    from factorize.ranks import Override, Policy
-    from factorize.search import CalibratedResult, Calibration
+    from factorize.calibrated.search import CalibratedResult, Calibration
+    from factorize.model.count import count_parameters
+    from factorize.plan.ranks import Override, Policy
 
     method = kwargs.get("method") if kwargs.get("method") in AWARE_METHODS else "whiten"
     solver = kwargs.get("method") if kwargs.get("method") in ("exact", "gram", "randomized", "auto") else "gram"
@@ -1050,10 +1055,10 @@ def _sweep_weights_only(args, loaded, budgets, kwargs, ui):
 
     _no_inputs_in_weights_only(args)
     _no_model_options_in_weights_only(args)
-    from factorize.checkpoint import select
-    from factorize.decompose import decompose
-    from factorize.io import open_checkpoint
-    from factorize.ranks import Override, Policy, choose_ranks, plan_summary
+    from factorize.checkpoints.files import open_checkpoint
+    from factorize.checkpoints.stream import select
+    from factorize.plan.ranks import Override, Policy, choose_ranks, plan_summary
+    from factorize.spectra.decompose import decompose
 
     with _weights_file(loaded) as path:
         chosen, _ = select(open_checkpoint(path), kwargs.get("include"), kwargs.get("exclude"))
@@ -1107,7 +1112,7 @@ def _matplotlib():
 
 
 def _plot_sweep(rows: list[dict], path: Path, title: str, force: bool) -> None:
-    from factorize.io import write_atomic
+    from factorize.storage import write_atomic
 
     plt = _matplotlib()
     fig, ax = plt.subplots(figsize=(6.4, 4.2), dpi=120)
@@ -1170,7 +1175,7 @@ def _g4(v: float) -> str:
 
 
 def cmd_compare(args, ui: UI) -> dict:
-    from factorize.evaluate import evaluate
+    from factorize.measure.evaluate import evaluate
 
     report_path = Path(args.report) if args.report else None
     _check_outputs([report_path], args.force)
@@ -1189,7 +1194,7 @@ def cmd_compare(args, ui: UI) -> dict:
     if report_path is not None:
         _write_text(report_path, report.to_markdown(), args.force)
     if not ui.json_mode:
-        from factorize.report import render_rich
+        from factorize.measure.report import render_rich
 
         render_rich(report, ui.out)
     result = {"command": "compare", "model": loaded.source, "against": args.against, "report": report.to_json(),
@@ -1203,14 +1208,19 @@ def cmd_compare(args, ui: UI) -> dict:
 
 def _load_against(args, loaded, ui):
     """The second model: a factorize checkpoint or weights for --model's architecture, or another model spec."""
-    from factorize.models import PICKLE_SUFFIXES, has_plan, load_model, load_weights
+    from factorize.checkpoints.models import (
+        PICKLE_SUFFIXES,
+        has_plan,
+        load_model,
+        load_weights,
+    )
 
     spec = Path(args.against)
     is_file = spec.is_file() or spec.suffix.lower() in (".safetensors",) + PICKLE_SUFFIXES
     if is_file and loaded.build is not None:
         fresh = loaded.build()
         if spec.suffix.lower() == ".safetensors" and spec.exists() and has_plan(spec):
-            from factorize import io
+            from factorize.checkpoints import files as io
 
             ui.note(f"against: {spec} (factorize checkpoint, loaded into a fresh {type(fresh).__name__})")
             model = io.load(fresh, spec)
@@ -1231,12 +1241,13 @@ def _load_against(args, loaded, ui):
 def cmd_demo(args, ui: UI) -> dict:
     import torch
 
-    from factorize import io
-    from factorize.api import compress, decompose_sites
+    from factorize.checkpoints import files as io
     from factorize.default import DigitsMLP, load_default, load_digits_split
-    from factorize.evaluate import evaluate
-    from factorize.report import CAUTION
-    from factorize.walk import walk
+    from factorize.measure.evaluate import evaluate
+    from factorize.measure.report import CAUTION
+    from factorize.model.sites import walk
+    from factorize.pipeline import compress
+    from factorize.spectra.sites import decompose_sites
 
     model = load_default()
     x, y = load_digits_split("test")  # held out: never used in training (factorize/default/README.md)
@@ -1271,7 +1282,7 @@ def _render_demo(result: dict, runs: list[dict], ui: UI) -> None:
     from rich.panel import Panel
     from rich.table import Table
 
-    from factorize.report import render_rich
+    from factorize.measure.report import render_rich
 
     ui.out.print(f"[bold]factorize demo[/]: {result['model']}\ndata: {result['data']}", highlight=False)
     table = Table(title="1. scan: what the spectra allow", title_justify="left")

@@ -23,7 +23,7 @@ Typical loop::
     for epoch in range(8):
         optimizer = schedule.step(epoch, model, optimizer)  # compresses at epochs 2, 4, 6
         train_one_epoch(model, optimizer)                   # also the recovery between steps
-    factorize.io.save(model, "model.safetensors", plan=schedule.plan)
+    factorize.checkpoints.files.save(model, "model.safetensors", plan=schedule.plan)
 
 Learning rate after compressing: a step on the factors moves the product by about
 ``-lr (B B^T G + G A^T A)`` (G the gradient with respect to W), and with the singular values split evenly between
@@ -44,13 +44,20 @@ from typing import Any
 import torch
 from torch import nn
 
-from factorize.api import CompressResult, compress, decompose_sites, merge
-from factorize.count import count_parameters
-from factorize.decompose import Spectrum, compute_dtype_for
 from factorize.errors import FactorizeError
-from factorize.layers import Factored, factor_module, factored_layers, fill_factors
-from factorize.ranks import Override, Policy, choose_ranks
-from factorize.walk import Site, WalkResult, get_module, set_module, walk
+from factorize.model.count import count_parameters
+from factorize.model.sites import Site, WalkResult, get_module, set_module, walk
+from factorize.pipeline import compress
+from factorize.plan.ranks import Override, Policy, choose_ranks
+from factorize.rewrite.apply import CompressResult, merge
+from factorize.rewrite.layers import (
+    Factored,
+    factor_module,
+    factored_layers,
+    fill_factors,
+)
+from factorize.spectra.decompose import Spectrum, compute_dtype_for
+from factorize.spectra.sites import decompose_sites
 
 POLICY_KEYS = ("budget", "rank", "energy", "keep")
 
@@ -149,7 +156,7 @@ def refactor(
     a failure leaves the model as it was.
 
     Returns a :class:`factorize.CompressResult` whose ``plan`` describes the whole model (every factored layer),
-    ready for :func:`factorize.io.save`.
+    ready for :func:`factorize.checkpoints.files.save`.
     """
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
@@ -315,7 +322,7 @@ class ProgressiveSchedule:
     matching budget (a fraction of the original dense parameters of the factorizable layers) and returns the
     rebuilt optimizer, otherwise the optimizer it was given. The epochs in between are the recovery: the user's
     loop simply keeps training. ``plan`` always describes the model as it stands, ready for
-    :func:`factorize.io.save`. ``calibration=`` (where supported) applies to the first step only; later steps
+    :func:`factorize.checkpoints.files.save`. ``calibration=`` (where supported) applies to the first step only; later steps
     re-truncate the factored layers from their own product.
     """
 

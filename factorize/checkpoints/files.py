@@ -27,11 +27,8 @@ from __future__ import annotations
 
 import json
 import os
-import secrets
-import shutil
-import struct
 import warnings
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -41,7 +38,15 @@ from safetensors.torch import save_file
 from torch import nn
 
 from factorize.errors import FactorizeError
-from factorize.ranks import PLAN_FORMAT
+from factorize.plan.ranks import PLAN_FORMAT
+from factorize.storage import (
+    Header,
+    _check_readable_file,
+    check_free_space,
+    check_output_path,
+    read_header,
+    write_atomic,
+)
 
 FORMAT_NAME = "factorize.checkpoint"
 FORMAT_VERSION = 1
@@ -52,152 +57,6 @@ KEY_ALIASES = "factorize.aliases"
 KEY_LIBRARY = "factorize.library_version"
 KEY_PLAN_IN = "factorize.plan_in"  # shards of a sharded checkpoint: the plan lives in this index file
 RESERVED_PREFIX = "factorize."
-
-# safetensors dtype names (the open format's spec) -> torch dtype
-DTYPES: dict[str, torch.dtype] = {
-    "F64": torch.float64, "F32": torch.float32, "F16": torch.float16, "BF16": torch.bfloat16,
-    "I64": torch.int64, "I32": torch.int32, "I16": torch.int16, "I8": torch.int8, "U8": torch.uint8,
-    "BOOL": torch.bool,
-}
-for _name, _attr in (("U16", "uint16"), ("U32", "uint32"), ("U64", "uint64"), ("F8_E4M3", "float8_e4m3fn"),
-                     ("F8_E5M2", "float8_e5m2")):
-    if hasattr(torch, _attr):
-        DTYPES[_name] = getattr(torch, _attr)
-DTYPE_NAMES: dict[torch.dtype, str] = {v: k for k, v in DTYPES.items()}
-MAX_HEADER_BYTES = 100_000_000  # the reference reader's own limit on the JSON header
-DISK_MARGIN_BYTES = 16 * 2**20  # keep this much free beyond the bytes we write
-
-
-# ---------------------------------------------------------------------------------------------------------------
-# reading safetensors headers with clear errors
-
-
-@dataclass(frozen=True)
-class TensorInfo:
-    """One tensor entry of a safetensors header."""
-
-    name: str
-    dtype: str  # safetensors name, e.g. "F32"
-    shape: tuple[int, ...]
-    start: int  # byte offsets within the data section
-    end: int
-
-    @property
-    def nbytes(self) -> int:
-        return self.end - self.start
-
-    @property
-    def torch_dtype(self) -> torch.dtype | None:
-        return DTYPES.get(self.dtype)
-
-
-@dataclass
-class Header:
-    """A parsed safetensors header: tensors (in header order), string metadata, where the data starts."""
-
-    path: Path
-    tensors: dict[str, TensorInfo] = field(default_factory=dict)
-    metadata: dict[str, str] = field(default_factory=dict)
-    data_start: int = 0
-    file_size: int = 0
-
-
-def read_header(path: str | os.PathLike) -> Header:
-    """Parse and check the header of a safetensors file without reading tensor data.
-
-    Layout checked (safetensors format spec): 8-byte little-endian unsigned header length N; N bytes of UTF-8 JSON
-    whose top level is an object; every entry has ``dtype``, ``shape`` and ``data_offsets`` [start, end) with
-    ``end - start = numel * itemsize``; the largest ``end`` fits in the file. Raises :class:`FactorizeError`
-    naming the file and what is wrong (missing, not safetensors, truncated, header past the end of the file).
-    """
-    p = Path(path)
-    _check_readable_file(p)
-    size = p.stat().st_size
-    with open(p, "rb") as f:
-        head = f.read(8)
-        if len(head) < 8:
-            raise FactorizeError(
-                f"{p}: not a safetensors file ({size} bytes, too short to hold the 8-byte header length)",
-                fix="pass a .safetensors file; a download or copy may have been cut off",
-            )
-        (n,) = struct.unpack("<Q", head)
-        if n > MAX_HEADER_BYTES or n < 2:
-            raise FactorizeError(
-                f"{p}: not a safetensors file (the first 8 bytes give a header length of {n})"
-                + _format_hint(head),
-                fix="pass a .safetensors file (pickled .pt/.bin checkpoints must be converted first)",
-            )
-        if 8 + n > size:
-            raise FactorizeError(
-                f"{p}: the header claims {n} bytes but the file holds only {size - 8} after the length field: "
-                "the file is truncated or not a safetensors file",
-                fix="re-download or re-copy the file",
-            )
-        raw = f.read(n)
-    try:
-        header = json.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as e:
-        raise FactorizeError(
-            f"{p}: not a safetensors file (the header is not valid UTF-8 JSON: {e})" + _format_hint(head),
-            fix="pass a .safetensors file",
-        ) from None
-    if not isinstance(header, dict):
-        raise FactorizeError(f"{p}: not a safetensors file (the header is not a JSON object)")
-    return _parse_entries(p, header, 8 + n, size)
-
-
-def _format_hint(head: bytes) -> str:
-    if head.startswith(b"PK\x03\x04"):
-        return "; it looks like a zip archive, e.g. a torch.save checkpoint"
-    if head[:1] == b"\x80":
-        return "; it looks like a Python pickle"
-    return ""
-
-
-def _check_readable_file(p: Path) -> None:
-    if not p.exists():
-        raise FactorizeError(f"{p}: no such file", fix="check the path")
-    if p.is_dir():
-        raise FactorizeError(f"{p}: is a directory, expected a .safetensors file", fix="pass the file inside it")
-    if not os.access(p, os.R_OK):
-        raise FactorizeError(f"{p}: not readable (permission denied)", fix="fix the file's permissions")
-
-
-def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
-    out = Header(path=p, data_start=data_start, file_size=size)
-    meta = header.get("__metadata__", {}) or {}
-    if not isinstance(meta, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in meta.items()):
-        raise FactorizeError(f"{p}: corrupt safetensors header (__metadata__ must map strings to strings)")
-    out.metadata = dict(meta)
-    problems = []
-    data_len = size - data_start
-    for name, e in header.items():
-        if name == "__metadata__":
-            continue
-        try:
-            dtype, shape, (start, end) = e["dtype"], tuple(int(d) for d in e["shape"]), e["data_offsets"]
-            start, end = int(start), int(end)
-        except (KeyError, TypeError, ValueError):
-            problems.append(f"{name}: entry is not {{dtype, shape, data_offsets}}")
-            continue
-        info = TensorInfo(name, dtype, shape, start, end)
-        td = info.torch_dtype
-        if td is not None:
-            numel = 1
-            for d in shape:
-                numel *= d
-            if end - start != numel * torch.empty((), dtype=td).element_size() or start < 0:
-                problems.append(f"{name}: {dtype} {list(shape)} needs {numel} elements, offsets say {end - start} bytes")
-        if end > data_len:
-            raise FactorizeError(
-                f"{p}: the header claims tensor data up to byte {data_start + end} but the file has {size} bytes: "
-                "the file is truncated",
-                fix="re-download or re-copy the file",
-            )
-        out.tensors[name] = info
-    if problems:
-        raise FactorizeError(f"{p}: corrupt safetensors header", problems, fix="re-create the file")
-    return out
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -324,7 +183,7 @@ def _plan_and_aliases(ckpt: Checkpoint, path) -> tuple[dict, dict[str, str]]:
 def checkpoint_metadata(plan: Mapping, aliases: Mapping[str, str] | None = None,
                         extra: Mapping[str, str] | None = None) -> dict[str, str]:
     """The metadata map of a factorize checkpoint (used by :func:`save` and the weights-only writer)."""
-    from factorize import __version__
+    from factorize._version import __version__
 
     meta = dict(_user_metadata(extra))
     meta.update({
@@ -367,108 +226,6 @@ def _user_metadata(extra: Mapping[str, str] | None) -> dict[str, str]:
 # atomic writes
 
 
-def check_output_path(path: str | os.PathLike, *, force: bool, directory: bool = False) -> Path:
-    """Refuse an existing output unless ``force``; check that its parent directory exists and is writable.
-    ``directory=True``: the output is a directory of shards (an existing one must be a directory)."""
-    p = Path(path)
-    if p.exists() and not force:
-        raise FactorizeError(f"{p}: the output already exists", fix="choose another path, or pass force=True (--force)")
-    if p.exists() and p.is_dir() != directory:
-        raise FactorizeError(f"{p}: exists and is {'not ' if directory else ''}a directory",
-                             fix="choose another output path")
-    d = p.parent if str(p.parent) else Path(".")
-    if not d.is_dir():
-        raise FactorizeError(f"{p}: the directory {d} does not exist", fix=f"create it first (mkdir -p {d})")
-    if not os.access(d, os.W_OK | os.X_OK):
-        raise FactorizeError(f"{p}: cannot write in {d} (permission denied)", fix="choose a writable directory")
-    return p
-
-
-def check_free_space(directory: str | os.PathLike, nbytes: int, what: str) -> None:
-    """Fail before writing when ``directory``'s filesystem has less than ``nbytes`` (+ a margin) free."""
-    free = shutil.disk_usage(directory).free
-    if free < nbytes + DISK_MARGIN_BYTES:
-        raise FactorizeError(
-            f"not enough free disk space in {directory} for {what}: needs {_human(nbytes)}, {_human(free)} free",
-            fix="free some space or write the output to another disk",
-        )
-
-
-def _human(n: float) -> str:
-    for unit in ("B", "KB", "MB", "GB", "TB"):
-        if abs(n) < 1024 or unit == "TB":
-            return f"{n:.1f} {unit}" if unit != "B" else f"{int(n)} B"
-        n /= 1024
-    return f"{n} B"
-
-
-def create_temp(final: Path) -> tuple[Path, int]:
-    """A new temporary file beside ``final`` (same directory, so os.replace is atomic): (path, fd).
-
-    Created with mode 0o666 so the umask applies as for any new file."""
-    for _ in range(100):
-        tmp = final.with_name(f".{final.name}.{secrets.token_hex(6)}.tmp")
-        try:
-            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
-        except FileExistsError:
-            continue
-        except OSError as e:
-            raise FactorizeError(f"{final}: cannot create files in {final.parent} ({e.strerror or e})",
-                                 fix="choose a writable directory") from None
-        return tmp, fd
-    raise FactorizeError(f"{final}: could not create a temporary file in {final.parent}")
-
-
-def remove_quietly(p: Path) -> None:
-    try:
-        p.unlink()
-    except FileNotFoundError:
-        pass
-
-
-def write_atomic(final: Path, write: Callable[[Path], None], *, force: bool) -> None:
-    """Run ``write(tmp)`` on a temporary file beside ``final``, fsync it, then ``os.replace`` it into place.
-    On any failure the temporary file is removed and ``final`` is untouched."""
-    tmp, fd = create_temp(final)
-    os.close(fd)
-    try:
-        write(tmp)
-        os.chmod(tmp, 0o666 & ~_umask())  # a writer may create its file private (0600); use the usual mode
-        _fsync(tmp)
-        if not force and final.exists():  # created by someone else meanwhile
-            raise FactorizeError(f"{final}: the output appeared while writing", fix="pass force=True (--force)")
-        os.replace(tmp, final)
-    except OSError as e:
-        remove_quietly(tmp)
-        raise FactorizeError(f"{final}: writing failed ({e.strerror or e}); nothing was written",
-                             fix="check free space and permissions, then retry") from e
-    except BaseException:
-        remove_quietly(tmp)
-        raise
-
-
-def _umask() -> int:
-    """The process umask, read without changing it where /proc allows (os.umask can only set it)."""
-    try:
-        with open("/proc/self/status", encoding="ascii") as f:
-            for line in f:
-                if line.startswith("Umask:"):
-                    return int(line.split()[1], 8)
-    except OSError:
-        pass
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
-def _fsync(p: Path) -> None:
-    fd = os.open(p, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 # ---------------------------------------------------------------------------------------------------------------
 # save / load a compressed model
 
@@ -499,7 +256,7 @@ def _dedupe(state: Mapping[str, torch.Tensor]) -> tuple[dict[str, torch.Tensor],
 
 
 def _check_plan_matches(model: nn.Module, plan: Mapping) -> None:
-    from factorize.layers import Factored, factored_layers
+    from factorize.rewrite.layers import Factored, factored_layers
 
     factored = factored_layers(model)
     problems = []
@@ -566,8 +323,8 @@ def load(model: nn.Module, path: str | os.PathLike, *, strict: bool = True) -> n
     one :class:`FactorizeError`, and the model is left as it was. With ``strict=False`` missing and unexpected
     keys are allowed (a warning lists them) and differing dtypes are cast; shapes must still match.
     """
-    from factorize.api import apply_plan, validate_plan
-    from factorize.walk import get_module, set_module
+    from factorize.model.sites import get_module, set_module
+    from factorize.rewrite.apply import apply_plan, validate_plan
 
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}",

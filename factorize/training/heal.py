@@ -4,7 +4,7 @@ After factorization a short fine-tune wins back most of what the truncation cost
 compressed model (the *student*) to match the original (the *teacher*) on sample inputs; no labels are needed.
 
 Losses (``loss=``), computed on the primary output (a tensor, ``logits``, ``last_hidden_state``, or the first
-tensor; see :func:`factorize.evaluate.primary_output`):
+tensor; see :func:`factorize.model.feed.primary_output`):
 
 * ``"kl"``: knowledge distillation with a temperature T (Hinton, Vinyals & Dean, "Distilling the knowledge in a
   neural network", 2015): ``T^2 * KL(softmax(t / T) || softmax(s / T))`` summed over the last dimension and
@@ -13,7 +13,7 @@ tensor; see :func:`factorize.evaluate.primary_output`):
 * ``"cosine"``: ``1 - cos(s, t)`` per output vector along the last dimension (embeddings, hidden states).
 * ``"auto"`` picks from the teacher's output on the first batch:
   ``logits`` field -> ``kl``; ``last_hidden_state`` field -> ``cosine``; a plain 2-D tensor (batch, k) with
-  k > 1 -> ``kl`` (read as class logits, the same shape rule as :func:`factorize.evaluate.output_drift`);
+  k > 1 -> ``kl`` (read as class logits, the same shape rule as :func:`factorize.measure.drift.output_drift`);
   a tensor of 3 or more dimensions -> ``cosine`` (per-position features); anything else (one value per
   sample) -> ``mse``. A model that returns a (batch, d) embedding or several regression targets should pass
   ``loss="cosine"`` or ``loss="mse"`` explicitly.
@@ -25,7 +25,7 @@ For (batch, positions, features) outputs fed from a dict batch holding an ``atte
 the teacher's dense layer of the same name, ``||y_s - y_t||^2 / ||y_t||^2`` (matching intermediate
 representations: Romero et al., "FitNets: hints for thin deep nets", ICLR 2015 -- cited from memory).
 
-Safety: the held-out drift (``factorize.evaluate.output_drift``) is measured before training (step 0) and every
+Safety: the held-out drift (``factorize.measure.drift.output_drift``) is measured before training (step 0) and every
 ``eval_every`` steps; the state with the best held-out drift, step 0 included, is restored at the end, so healing
 never returns a model that drifts more on the held-out inputs than the unhealed one. Drift measured on sample
 inputs is no guarantee of behaviour on other inputs; use in safety-relevant settings needs re-validation under
@@ -52,8 +52,9 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.errors import FactorizeError
-from factorize.evaluate import feed, output_drift, primary_output
-from factorize.layers import factored_layers
+from factorize.measure.drift import output_drift
+from factorize.model.feed import feed, primary_output
+from factorize.rewrite.layers import factored_layers
 
 LOSSES = ("auto", "kl", "mse", "cosine")
 SCHEDULES = ("constant", "cosine")

@@ -18,7 +18,7 @@ ranks, rebuilds the factors from the stored spectra and runs the held-out batche
 Drift, the default metric (``metric="relative_l2"``): ||y - y'||_F / ||y||_F over all held-out outputs (padded
 tokens left out; the output is ``output_fn(output, batch)`` when given, else the primary output), the same
 number ``--max-drift`` checks on the command line. ``metric="cosine"``: 1 - mean
-cosine similarity per sample (see :func:`factorize.evaluate.output_drift`).
+cosine similarity per sample (see :func:`factorize.measure.drift.output_drift`).
 
 Search: bisection on the budget between ``budgets[0]`` and ``budgets[1]`` down to ``tolerance``, assuming drift
 does not grow with the budget (true of the predicted drift; measured drift can wiggle, so the answer is the
@@ -40,15 +40,27 @@ from typing import Any
 import torch
 from torch import nn
 
-from factorize.api import CompressResult, apply_plan
-from factorize.aware import AWARE_METHODS, REFIT_RIDGE, apply_bias_shifts, aware_spectra, compress_sequential
-from factorize.calibrate import as_batch_list, collect_output_grams, collect_stats
-from factorize.count import count_parameters
+from factorize.calibrated.aware import (
+    AWARE_METHODS,
+    REFIT_RIDGE,
+    apply_bias_shifts,
+    aware_spectra,
+    compress_sequential,
+)
+from factorize.calibrated.gradients import collect_output_grams
+from factorize.calibrated.sensitivity import (
+    Sensitivity,
+    measure_sensitivity,
+    run_outputs,
+)
+from factorize.calibrated.stats import as_batch_list, collect_stats
 from factorize.errors import DriftLimitExceeded, FactorizeError
-from factorize.evaluate import output_drift, token_mask
-from factorize.ranks import Override, Policy, choose_ranks
-from factorize.sensitivity import Sensitivity, measure_sensitivity, run_outputs
-from factorize.walk import get_module, set_module, walk
+from factorize.measure.drift import output_drift
+from factorize.model.count import count_parameters
+from factorize.model.feed import token_mask
+from factorize.model.sites import get_module, set_module, walk
+from factorize.plan.ranks import Override, Policy, choose_ranks
+from factorize.rewrite.apply import CompressResult, apply_plan
 
 DRIFT_METRICS = ("relative_l2", "cosine")
 DEFAULT_BUDGETS = (0.05, 0.95)  # search range: fractions of the sites' parameters (or MACs)
@@ -104,7 +116,7 @@ class DriftTargetUnreachable(DriftLimitExceeded):
 
 @dataclass
 class CalibratedResult(CompressResult):
-    """:class:`~factorize.api.CompressResult` plus what calibration measured."""
+    """:class:`~factorize.rewrite.apply.CompressResult` plus what calibration measured."""
 
     stats: dict = field(default_factory=dict, repr=False)  # name -> InputStats summary (samples, width)
     sensitivity: Sensitivity | None = None
@@ -159,10 +171,10 @@ class Calibration:
         model: the original model (only read).
         calibration: sample-input batches (batch contract).
         include / exclude: glob patterns for the sites.
-        method / alpha / center / ridge / solver / precision: of :func:`factorize.aware.aware_spectra`.
+        method / alpha / center / ridge / solver / precision: of :func:`factorize.calibrated.aware.aware_spectra`.
         sensitivity: False; ``"probes"`` (per-layer weights from truncation probes, :mod:`factorize.sensitivity`);
             ``"gradients"`` (output directions weighted by the final output's Gauss-Newton matrix,
-            :func:`factorize.calibrate.collect_output_grams`); ``"both"`` or True (gradients, then probes).
+            :func:`factorize.calibrated.gradients.collect_output_grams`); ``"both"`` or True (gradients, then probes).
         sensitivity_batches: probe inputs (default: the calibration batches).
         fractions: probe ranks as fractions of each layer's parameters.
         projections: random projections per batch for the output weights.
@@ -299,7 +311,7 @@ def compress_calibrated(
             them disjoint from the inputs you evaluate on.
         budget / rank / energy / keep: the rank policy (exactly one, unless ``max_drift`` is given).
         sequential: factor layers in forward order from the partly compressed model's inputs.
-        refit / refit_ridge: sequential only (see :func:`factorize.aware.compress_sequential`).
+        refit / refit_ridge: sequential only (see :func:`factorize.calibrated.aware.compress_sequential`).
         fractions: probe ranks for ``sensitivity`` (``"auto"``: the budget and half of it, see
             :func:`auto_fractions`).
         max_drift: search for the smallest budget whose drift on ``heldout`` is at most this (see
@@ -474,43 +486,3 @@ def _kept_fraction(plan: Mapping) -> float:
 # the entry from factorize.compress
 
 
-def compress_from_api(
-    model: nn.Module,
-    *,
-    calibration,
-    calibrate,
-    aware_method: str | None,
-    method: str,
-    sequential: bool,
-    sensitivity: bool | str,
-    max_drift: float | None,
-    heldout,
-    drift_metric: str,
-    output_fn,
-    spectra,
-    speed_check: bool,
-    **options,
-) -> CalibratedResult:
-    """Validate the calibration options of :func:`factorize.compress` and run :func:`compress_calibrated`."""
-    if calibration is not None and calibrate is not None:
-        raise FactorizeError("calibration= and calibrate= are the same option, given twice",
-                             fix="pass the sample batches once, as calibration=")
-    batches = calibration if calibration is not None else calibrate
-    asked = [name for name, on in (("method=" + repr(method), method in AWARE_METHODS),
-                                    ("aware_method=", aware_method is not None), ("sequential=", sequential),
-                                    ("sensitivity=", sensitivity), ("max_drift=", max_drift is not None)) if on]
-    if batches is None:
-        raise FactorizeError(f"{', '.join(asked)} needs calibration sample inputs",
-                             fix="pass calibration=batches (tensors, tuples or dicts the model accepts)")
-    if aware_method is not None and method in AWARE_METHODS and aware_method != method:
-        raise FactorizeError(f"method={method!r} and aware_method={aware_method!r} disagree",
-                             fix="give the activation-aware method once")
-    aware = aware_method or (method if method in AWARE_METHODS else "whiten")
-    solver = method if method in ("exact", "gram", "randomized") else "gram"
-    unsupported = [f"{k}=" for k, v in (("spectra", spectra), ("speed_check", speed_check)) if v]
-    if unsupported:
-        raise FactorizeError(f"{', '.join(unsupported)} cannot be combined with calibration yet",
-                             fix="compress without calibration to use them, or drop them")
-    return compress_calibrated(model, batches, method=aware, sequential=sequential, sensitivity=sensitivity,
-                               max_drift=max_drift, heldout=heldout, metric=drift_metric, output_fn=output_fn,
-                               solver=solver, **options)

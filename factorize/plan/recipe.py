@@ -32,9 +32,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from factorize.decompose import METHODS
 from factorize.errors import FactorizeError
-from factorize.ranks import POLICY_KEYS, Override, Policy
+from factorize.plan.ranks import POLICY_KEYS, Override, Policy
+from factorize.spectra.decompose import METHODS
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -44,7 +44,7 @@ else:  # pragma: no cover - exercised on Python 3.10 only
 RECIPE_VERSION = 1
 TOP_KEYS = ("recipe", "description", "include", "exclude", "method", "multiple", "cost", "policy", "layer")
 LAYER_KEYS = ("match", "rank", "energy", "keep", "dense")
-RECIPES_DIR = Path(__file__).resolve().parents[1] / "recipes"  # the shipped recipes, in a source checkout
+RECIPES_DIR = Path(__file__).resolve().parents[1] / "recipes"  # shipped as package data (recipes/ at the top of a checkout links here)
 
 
 @dataclass

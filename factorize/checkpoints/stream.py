@@ -3,7 +3,7 @@
 Every selected 2-D floating tensor ``<module>.weight`` of shape (out, in) is treated as the weight of a linear
 layer. Where the plan factors it, the output holds ``<module>.first.weight`` (r, in) = A and
 ``<module>.second.weight`` (out, r) = B, and ``<module>.bias`` becomes ``<module>.second.bias`` -- exactly the
-state-dict keys of :class:`factorize.layers.Factored` -- so ``factorize.io.load(model, output)`` loads the result
+state-dict keys of :class:`factorize.rewrite.layers.Factored` -- so ``factorize.checkpoints.files.load(model, output)`` loads the result
 into the user's architecture (the plan in the metadata says kind ``"linear"`` and the shape). Every other tensor
 is copied unchanged. Layers that are not ``nn.Linear`` in the user's model (embeddings, GPT-2's transposed
 ``Conv1D``) must be excluded, or the load reports the mismatch.
@@ -40,16 +40,37 @@ import torch
 from safetensors import safe_open
 from tqdm.auto import tqdm
 
-from factorize.cache import SpectrumCache, as_cache
-from factorize.decompose import METHODS, Spectrum, decompose
+from factorize.checkpoints.files import (
+    FORMAT_NAME,
+    FORMAT_VERSION,
+    KEY_FORMAT,
+    KEY_LIBRARY,
+    KEY_PLAN_IN,
+    KEY_VERSION,
+    Checkpoint,
+    checkpoint_metadata,
+    open_checkpoint,
+)
 from factorize.errors import FactorizeError
-from factorize.io import (
-    DTYPE_NAMES, FORMAT_NAME, FORMAT_VERSION, KEY_FORMAT, KEY_LIBRARY, KEY_PLAN_IN, KEY_VERSION, Checkpoint, Header,
-    TensorInfo, check_free_space, check_output_path, checkpoint_metadata, create_temp, open_checkpoint,
+from factorize.model.sites import Site
+from factorize.plan.ranks import (
+    PLAN_FORMAT,
+    PLAN_VERSION,
+    Override,
+    Policy,
+    choose_ranks,
+)
+from factorize.spectra.cache import SpectrumCache, as_cache
+from factorize.spectra.decompose import METHODS, Spectrum, decompose
+from factorize.storage import (
+    DTYPE_NAMES,
+    Header,
+    TensorInfo,
+    check_free_space,
+    check_output_path,
+    create_temp,
     remove_quietly,
 )
-from factorize.ranks import PLAN_FORMAT, PLAN_VERSION, Override, Policy, choose_ranks
-from factorize.walk import Site
 
 FLOAT_DTYPES = ("F64", "F32", "F16", "BF16")
 ERROR_BLOCK_ROWS = 1024  # rows per block when measuring ||W - BA||_F, bounding the extra memory
@@ -256,7 +277,7 @@ def shrink_checkpoint(
         budget / rank / energy / keep / multiple / overrides: the rank policy, as in :func:`factorize.compress`.
         include / exclude: glob patterns on module names (``layers.*.mlp.*``) or tensor names.
         method: ``"auto"`` (default, as :func:`factorize.compress`), ``"exact"``, ``"gram"`` or ``"randomized"``;
-            seed and precision as in :func:`factorize.decompose.decompose`.
+            seed and precision as in :func:`factorize.spectra.decompose.decompose`.
         cache_dir: a spectrum cache directory (or :class:`SpectrumCache`) to reuse decompositions across runs.
         metadata: extra string entries for the output's metadata.
         progress: progress bar on stderr.
@@ -331,7 +352,9 @@ class _Job:
     """One shrink: the plan (built globally or per layer), the streamed writes, and the report."""
 
     def __init__(self, ckpt, chosen, policy, method, seed, precision, cache, progress) -> None:
-        from factorize.api import _rank_needed  # the same partial-decomposition size as compress() uses
+        from factorize.plan.ranks import (
+            _rank_needed,  # the same partial-decomposition size as compress() uses
+        )
 
         self.ckpt, self.policy, self.method = ckpt, policy, method
         self.seed, self.precision, self.cache, self.progress = seed, precision, cache, progress
@@ -389,7 +412,7 @@ class _Job:
 
     def write_all(self, finals: list[Path], metadata: Mapping[str, str] | None) -> list[Path]:
         """Write every output file to a temporary name, then rename them all into place (index last)."""
-        from factorize import __version__
+        from factorize._version import __version__
 
         sharded = self.ckpt.index is not None
         temps: list[Path] = []

@@ -28,7 +28,7 @@ import torch
 from torch import nn
 
 from factorize.errors import FactorizeError
-from factorize.evaluate import feed
+from factorize.model.feed import feed
 
 LABELS_KEY = "labels"
 INPUT_SUFFIXES = (".safetensors", ".npz", ".npy", ".txt")
@@ -40,7 +40,7 @@ RANDOM_WARNING = (
 
 @dataclass
 class SampleInputs:
-    """Batches of sample inputs (batch contract of :func:`factorize.evaluate.run_model`) and optional labels."""
+    """Batches of sample inputs (batch contract of :func:`factorize.model.feed.run_model`) and optional labels."""
 
     batches: list[Any]
     labels: torch.Tensor | None = None  # (N,) int64, in batch order
@@ -73,7 +73,7 @@ def load_inputs(
     elif suffix == ".npz":
         arrays = _npz(p)
     elif suffix == ".safetensors":
-        from factorize.models import read_safetensors
+        from factorize.checkpoints.models import read_safetensors
 
         arrays = read_safetensors(p)
     else:

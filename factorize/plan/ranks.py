@@ -33,9 +33,9 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from factorize.decompose import Spectrum
 from factorize.errors import FactorizeError
-from factorize.walk import Site
+from factorize.model.sites import Site
+from factorize.spectra.decompose import Spectrum
 
 PLAN_FORMAT = "factorize.plan"
 PLAN_VERSION = 1
@@ -336,3 +336,15 @@ def plan_summary(plan: Mapping) -> dict:
         "params_after": after,
         "kept_fraction": after / before if before else 1.0,
     }
+
+
+def _rank_needed(site: Site, policy: Policy) -> int:
+    """How many leading singular triplets a policy can use for ``site`` (for partial decompositions)."""
+    if not policy.overrides:  # a per-pattern rule may ask for more than the policy: then the bound below
+        if policy.rank is not None:
+            return min(-(-policy.rank // policy.multiple) * policy.multiple, site.max_rank)  # rounded up
+        if policy.keep is not None:
+            return max(1, min(site.max_rank, int(policy.keep * site.params / sum(site.shape))))
+    # energy / budget / overrides: anything past break-even keeps the layer dense, so no more is needed
+    return max(1, min(site.max_rank, site.break_even + policy.multiple))
+

@@ -1,0 +1,245 @@
+"""Evaluate a compressed model against its original: what was saved and what it cost.
+
+Three layers, each usable on its own:
+
+* :func:`run_model` feeds batches of sample inputs to a model and collects its primary output tensor;
+* :func:`output_drift` compares two sets of outputs (relative L2 error, cosine similarity per sample, top-1
+  agreement and KL divergence for class scores);
+* :func:`evaluate` measures everything for one report: parameters and bytes, multiply-accumulates of the
+  factored layers, per-layer weight error, output drift, accuracy when labels are given, and latency.
+
+Batch contract (the same as calibration, see DESIGN.md): a tensor is fed as ``model(x)``, a tuple or list as
+``model(*x)``, a dict (e.g. tokenizer output) as ``model(**x)``. Output contract: a tensor is used as is; from a
+``ModelOutput``-like object or a mapping, ``logits`` then ``last_hidden_state`` are taken; from a tuple or list,
+the first tensor.
+
+Drift measured on sample inputs says how the compressed model behaves on those inputs only; it is no
+guarantee of behaviour on other inputs (see :data:`factorize.measure.report.CAUTION`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping, Sequence
+from typing import Any
+
+import torch
+from torch import nn
+from tqdm.auto import tqdm
+
+from factorize.errors import FactorizeError
+from factorize.measure.drift import _as_batches, _ratio, output_drift
+from factorize.measure.report import LayerReport, Report
+from factorize.measure.timing import median_latency
+from factorize.model.count import count_bytes, count_parameters
+from factorize.model.feed import batch_size, primary_output, run_model, token_mask
+from factorize.model.sites import get_module, matrix_of
+from factorize.rewrite.layers import Factored, factored_layers
+
+# ---------------------------------------------------------------------------------------------------------------
+# running a model
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# drift
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# the full evaluation
+
+
+def evaluate(
+    original: nn.Module,
+    compressed: nn.Module,
+    batches: Iterable[Any],
+    *,
+    labels: torch.Tensor | Sequence[torch.Tensor] | None = None,
+    plan: Mapping | None = None,
+    latency_repeats: int = 7,
+    sites: Iterable[str] | None = None,
+    kind: str | None = None,
+    title: str = "factorize report",
+    model_name: str = "",
+    inputs: str = "",
+    notes: Iterable[str] = (),
+    progress: bool = False,
+    memo: dict | None = None,
+) -> Report:
+    """Measure what compression saved and what it cost, on sample inputs.
+
+    Args:
+        original / compressed: the two models (neither is modified; their training flags are restored).
+        batches: sample-input batches under the batch contract; iterated several times, so a list is best.
+        labels: class labels for accuracy, one per sample in batch order (a tensor, or one tensor per batch).
+        plan: the compression plan; when given, dense sites appear in the per-layer table with their reason.
+        latency_repeats: timed forward passes per model on the first batch (0 skips timing).
+        sites: restrict the per-layer table to these qualified names.
+        kind: what the outputs hold, see :func:`output_drift`.
+        title / model_name / inputs / notes: labels carried into the report.
+        progress: progress bars on stderr.
+        memo: a dict shared by calls that evaluate several compressed versions of the same original on the same
+            batches (a sweep): the original's outputs and the layers' output positions are computed once.
+
+    Returns:
+        A :class:`factorize.measure.report.Report`.
+    """
+    batches = list(batches)
+    if not batches:
+        raise FactorizeError("no sample inputs to evaluate on", fix="give at least one batch of sample inputs")
+    bar = _progress(progress)
+    memo = {} if memo is None else memo
+    if "reference" not in memo:
+        memo["reference"] = run_model(original, bar(batches, "original"))
+    ref = memo["reference"]
+    cand = run_model(compressed, bar(batches, "compressed"))
+    report = Report(
+        title=title,
+        model=model_name,
+        params_before=count_parameters(original),
+        params_after=count_parameters(compressed),
+        bytes_before=count_bytes(original),
+        bytes_after=count_bytes(compressed),
+        layers=layer_reports(original, compressed, plan=plan, batch=batches[0], sites=sites, memo=memo),
+        drift=output_drift(ref, cand, kind=kind, masks=[token_mask(b) for b in batches]),
+        samples=sum(int(o.shape[0]) for o in ref),
+        inputs=inputs,
+        policy=dict(plan["policy"]) if plan and "policy" in plan else None,
+        notes=list(notes),
+    )
+    if labels is not None:
+        report.accuracy_before = accuracy(ref, labels)
+        report.accuracy_after = accuracy(cand, labels)
+    if latency_repeats > 0:
+        report.latency_ms_before, report.latency_ms_after = median_latency(
+            original, compressed, batches[0], repeats=latency_repeats
+        )
+        report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
+    return report
+
+
+def _progress(enabled: bool):
+    def wrap(items: list, desc: str):
+        return tqdm(items, desc=desc, unit="batch", disable=not enabled, leave=False)
+
+    return wrap
+
+
+def accuracy(outputs: Sequence[torch.Tensor] | torch.Tensor, labels: torch.Tensor | Sequence[torch.Tensor]) -> float:
+    """Fraction of samples whose argmax over the last dimension equals the label."""
+    preds = torch.cat([o.argmax(-1).reshape(-1) for o in _as_batches(outputs)])  # (N,)
+    truth = labels if isinstance(labels, torch.Tensor) else torch.cat([torch.as_tensor(t).reshape(-1) for t in labels])
+    truth = truth.reshape(-1).to(torch.int64)
+    if preds.numel() != truth.numel():
+        raise FactorizeError(
+            f"{truth.numel()} labels for {preds.numel()} predictions",
+            fix="give one class label per sample (labels of shape (N,)), in the order of the inputs",
+        )
+    return float((preds == truth).double().mean())
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# per-layer numbers
+
+
+def output_positions(model: nn.Module, names: Iterable[str], batch: Any) -> dict[str, int]:
+    """Output positions per sample of each named layer, measured with forward hooks on one batch.
+
+    A linear layer applied to (B, T, n) has T positions per sample; a conv has one per output pixel. A layer the
+    forward pass never calls gets 0.
+    """
+    n_samples = max(batch_size(batch), 1)
+    counts: dict[str, int] = {}
+    handles = []
+
+    def hook_for(name: str):
+        def hook(module, args, output):
+            out = primary_output(output)
+            m = _out_channels(module)
+            counts[name] = counts.get(name, 0) + out.numel() // (n_samples * m)
+
+        return hook
+
+    for name in names:
+        module = get_module(model, name)
+        handles.append(module.register_forward_hook(hook_for(name)))
+    try:
+        run_model(model, [batch])
+    finally:
+        for h in handles:
+            h.remove()
+    return {name: counts.get(name, 0) for name in names}
+
+
+def _out_channels(module: nn.Module) -> int:
+    if isinstance(module, Factored):
+        return int(module.factor_b().shape[0])
+    if isinstance(module, nn.Embedding):
+        return module.embedding_dim
+    if isinstance(module, nn.modules.conv._ConvNd):
+        return module.out_channels
+    if isinstance(module, nn.Linear):
+        return module.out_features
+    return int(module.weight.shape[-1])  # transposed projection: weight (in, out)
+
+
+def _macs(kind: str, shape: Sequence[int], rank: int | None, positions: int) -> int:
+    """Multiply-accumulates per sample: mn per position dense, r(m + n) factored (common practice). A dense
+    embedding is a lookup (0 MACs); factored, each looked-up row of r numbers is mapped to m outputs (rm)."""
+    m, n = shape
+    if kind == "embedding":
+        return 0 if rank is None else rank * m * positions
+    return (m * n if rank is None else rank * (m + n)) * positions
+
+
+@torch.no_grad()
+def weight_error(original: torch.Tensor, approximation: torch.Tensor) -> float:
+    """``||W - W'||_F / ||W||_F`` in float64 (0 for an all-zero W that is matched exactly)."""
+    W, V = original.detach().to(torch.float64).cpu(), approximation.detach().to(torch.float64).cpu()
+    return _ratio(float(torch.linalg.matrix_norm(W - V)), float(torch.linalg.matrix_norm(W)))
+
+
+def layer_reports(
+    original: nn.Module,
+    compressed: nn.Module,
+    *,
+    plan: Mapping | None = None,
+    batch: Any = None,
+    sites: Iterable[str] | None = None,
+    memo: dict | None = None,
+) -> list[LayerReport]:
+    """One :class:`LayerReport` per site of the plan (or per factored layer of ``compressed`` without a plan):
+    rank, parameters, measured weight error, and, when a batch is given, MACs per sample from hooks (measured
+    once per ``memo``)."""
+    factored = factored_layers(compressed)
+    entries: dict[str, dict] = dict(plan["sites"]) if plan else {
+        name: {"kind": layer.kind, "shape": list(layer.product().shape), "rank": layer.rank} for name, layer in factored.items()
+    }
+    if sites is not None:
+        wanted = set(sites)
+        entries = {k: v for k, v in entries.items() if k in wanted}
+    memo = {} if memo is None else memo
+    if batch is not None and entries and not set(entries) <= set(memo.get("positions", {})):
+        memo["positions"] = {**memo.get("positions", {}), **output_positions(original, list(entries), batch)}
+    positions = memo.get("positions", {}) if batch is not None else {}
+    rows = []
+    for name, e in entries.items():
+        kind, shape = e["kind"], tuple(int(s) for s in e["shape"])
+        layer = factored.get(name)
+        rank = layer.rank if layer is not None else None
+        W = matrix_of(get_module(original, name), kind)
+        after = layer.product() if layer is not None else matrix_of(get_module(compressed, name), kind)
+        pos = positions.get(name)
+        m, n = shape
+        rows.append(LayerReport(
+            name=name,
+            kind=kind,
+            shape=shape,
+            rank=rank,
+            params=m * n,
+            params_after=m * n if rank is None else rank * (m + n),
+            macs=None if pos is None else _macs(kind, shape, None, pos),
+            macs_after=None if pos is None else _macs(kind, shape, rank, pos),
+            weight_error=weight_error(W, after),
+            predicted_error=e.get("predicted_error"),
+            reason=e.get("reason", ""),
+        ))
+    return rows
