@@ -8,6 +8,7 @@ Typical use::
     result.plan    # JSON-serialisable plan
 """
 
+from factorize._version import __version__
 from factorize.calibrated.search import (
     CalibratedResult,
     Calibration,
@@ -45,9 +46,8 @@ from factorize.training.loop import (
     refactor,
 )
 
-from factorize._version import __version__  # noqa: E402  (re-exported)
-
 __all__ = [
+    "__version__",
     "CalibratedResult",
     "Calibration",
     "CompressResult",

@@ -265,3 +265,24 @@ def _fsync(p: Path) -> None:
     finally:
         os.close(fd)
 
+
+
+def check_safetensors(path: str | os.PathLike) -> dict:
+    """Validate a safetensors file's layout before loading it (:func:`factorize.storage.read_header`: a file cut
+    short, a header claiming more data than the file holds, a corrupt header) and return its metadata."""
+    return read_header(path).metadata
+
+
+
+def read_safetensors(path: str | os.PathLike) -> dict[str, torch.Tensor]:
+    """All tensors of a safetensors file (validated first), with safetensors' own errors named by file."""
+    from safetensors import SafetensorError
+    from safetensors.torch import load_file
+
+    check_safetensors(path)
+    try:
+        return load_file(str(path))
+    except SafetensorError as err:
+        raise FactorizeError(f"{path}: not a valid safetensors file: {err}",
+                             fix="copy or download it again, or save it again from the model") from None
+

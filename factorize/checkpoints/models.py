@@ -31,6 +31,7 @@ import torch
 from torch import nn
 
 from factorize.errors import FactorizeError
+from factorize.storage import check_safetensors, read_safetensors
 
 PICKLE_SUFFIXES = (".pt", ".pth", ".bin", ".ckpt", ".pkl")
 DEFAULT_SPEC = "factorize.default:load_default"  # the embedded digits classifier
@@ -256,25 +257,8 @@ def _check_readable(path: Path) -> None:
         raise FactorizeError(f"{path}: not readable (permission denied)", fix="check the file's permissions")
 
 
-def check_safetensors(path: str | os.PathLike) -> dict:
-    """Validate a safetensors file's layout before loading it (:func:`factorize.storage.read_header`: a file cut
-    short, a header claiming more data than the file holds, a corrupt header) and return its metadata."""
-    from factorize.storage import read_header
-
-    return read_header(path).metadata
 
 
-def read_safetensors(path: str | os.PathLike) -> dict[str, torch.Tensor]:
-    """All tensors of a safetensors file (validated first), with safetensors' own errors named by file."""
-    from safetensors import SafetensorError
-    from safetensors.torch import load_file
-
-    check_safetensors(path)
-    try:
-        return load_file(str(path))
-    except SafetensorError as err:
-        raise FactorizeError(f"{path}: not a valid safetensors file: {err}",
-                             fix="copy or download it again, or save it again from the model") from None
 
 
 # ---------------------------------------------------------------------------------------------------------------

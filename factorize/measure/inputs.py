@@ -73,7 +73,7 @@ def load_inputs(
     elif suffix == ".npz":
         arrays = _npz(p)
     elif suffix == ".safetensors":
-        from factorize.checkpoints.models import read_safetensors
+        from factorize.storage import read_safetensors
 
         arrays = read_safetensors(p)
     else:

@@ -34,13 +34,12 @@ import json
 import os
 import threading
 import warnings
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 
 import torch
 from safetensors import safe_open
 from safetensors.torch import save_file
-from torch import nn
 
 from factorize.errors import FactorizeError
 from factorize.spectra.decompose import METHODS, Spectrum, compute_dtype_for, decompose
@@ -221,28 +220,3 @@ def as_cache(cache: SpectrumCache | str | os.PathLike | None) -> SpectrumCache |
     if cache is None or isinstance(cache, SpectrumCache):
         return cache
     return SpectrumCache(cache)
-
-
-def cached_decompose_sites(
-    model: nn.Module,
-    sites: Iterable,
-    cache: SpectrumCache | str | os.PathLike | None,
-    *,
-    method: str = "auto",
-    ranks: Mapping[str, int] | None = None,
-    seed: int = 0,
-    precision: str | None = None,
-    progress: bool = False,
-    workers: int = 1,
-    **options,
-) -> dict[str, Spectrum]:
-    """Drop-in for :func:`factorize.spectra.sites.decompose_sites` that reads and fills ``cache``.
-
-    Same arguments and results as ``decompose_sites`` (bit-identical spectra on a hit, module order, the same
-    seed for every layer); ``cache=None`` simply calls ``decompose_sites``. ``workers > 1`` runs layers in
-    threads as ``decompose_sites`` does.
-    """
-    from factorize.spectra.sites import decompose_sites
-
-    return decompose_sites(model, sites, method=method, ranks=ranks, seed=seed, precision=precision,
-                           progress=progress, workers=workers, cache=cache, **options)

@@ -11,8 +11,9 @@ import pytest
 import torch
 from safetensors.torch import save_file
 
+from factorize.checkpoints.models import load_model
 from factorize.errors import FactorizeError
-from factorize.checkpoints.models import check_safetensors, load_model
+from factorize.storage import check_safetensors
 
 USER_MODULE = """
 import torch

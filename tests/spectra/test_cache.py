@@ -15,13 +15,13 @@ from safetensors import safe_open
 from safetensors.torch import save_file
 
 import factorize
-from factorize.spectra import cache as cache_mod
 from factorize.checkpoints import stream as checkpoint
-from factorize.spectra.sites import decompose_sites
-from factorize.spectra.cache import CacheWarning, SpectrumCache, cached_decompose_sites
-from factorize.spectra.decompose import decompose
 from factorize.errors import FactorizeError
 from factorize.model.sites import walk
+from factorize.spectra import cache as cache_mod
+from factorize.spectra.cache import CacheWarning, SpectrumCache
+from factorize.spectra.decompose import decompose
+from factorize.spectra.sites import decompose_sites
 
 
 @pytest.fixture
@@ -136,8 +136,8 @@ def test_failed_store_warns_and_continues(tmp_path, monkeypatch):
 def test_cached_decompose_sites_matches_and_feeds_compress(tmp_path, mlp, counted):
     sites = [s for s in walk(mlp).sites]
     plain = decompose_sites(mlp, sites)
-    cached = cached_decompose_sites(mlp, sites, tmp_path)
-    again = cached_decompose_sites(mlp, sites, tmp_path, workers=2)
+    cached = decompose_sites(mlp, sites, cache=tmp_path)
+    again = decompose_sites(mlp, sites, cache=tmp_path, workers=2)
     assert len(counted) == len(sites)  # the second call (in threads) made no decomposition
     assert list(again) == [s.name for s in sites]
     for name in plain:
