@@ -28,6 +28,8 @@ from tqdm.auto import tqdm
 
 from factorize.errors import FactorizeError
 from factorize.measure.drift import _as_batches, _ratio, output_drift
+from factorize.measure.perplexity import is_causal_lm, token_ids
+from factorize.measure.perplexity import perplexity as perplexity_of
 from factorize.measure.report import LayerReport, Report
 from factorize.measure.timing import median_latency
 from factorize.model.count import count_bytes, count_parameters
@@ -63,6 +65,7 @@ def evaluate(
     notes: Iterable[str] = (),
     progress: bool = False,
     memo: dict | None = None,
+    perplexity: bool | None = None,
 ) -> Report:
     """Measure what compression saved and what it cost, on sample inputs.
 
@@ -78,6 +81,8 @@ def evaluate(
         progress: progress bars on stderr.
         memo: a dict shared by calls that evaluate several compressed versions of the same original on the same
             batches (a sweep): the original's outputs and the layers' output positions are computed once.
+        perplexity: measure next-token perplexity (:mod:`factorize.measure.perplexity`); None (default) does so
+            for a causal language model (a transformers ``...ForCausalLM``/``...LMHeadModel``) given token ids.
 
     Returns:
         A :class:`factorize.measure.report.Report`.
@@ -103,8 +108,13 @@ def evaluate(
         samples=sum(int(o.shape[0]) for o in ref),
         inputs=inputs,
         policy=dict(plan["policy"]) if plan and "policy" in plan else None,
+        calibrated=None if plan is None else "calibration" in plan,
         notes=list(notes),
     )
+    if perplexity or (perplexity is None and is_causal_lm(original) and token_ids(batches[0]) is not None):
+        if "perplexity" not in memo:
+            memo["perplexity"] = perplexity_of(original, batches)
+        report.perplexity_before, report.perplexity_after = memo["perplexity"], perplexity_of(compressed, batches)
     if labels is not None:
         report.accuracy_before = accuracy(ref, labels)
         report.accuracy_after = accuracy(cand, labels)

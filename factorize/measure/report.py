@@ -65,6 +65,9 @@ class Report:
     samples: int = 0  # sample inputs the drift was measured on
     inputs: str = ""  # where the sample inputs came from
     policy: dict | None = None  # the plan's rank policy
+    calibrated: bool | None = None  # whether the plan was fitted to calibration inputs (None: unknown)
+    perplexity_before: float | None = None  # causal language models: exp(mean next-token loss) on the inputs
+    perplexity_after: float | None = None
     notes: list[str] = field(default_factory=list)  # warnings worth showing (e.g. random inputs)
     caution: str = CAUTION
 
@@ -90,6 +93,44 @@ class Report:
         return sum(values) if values and None not in values else None
 
     @property
+    def perplexity_ratio(self) -> float | None:
+        if self.perplexity_before and self.perplexity_after is not None:
+            return self.perplexity_after / self.perplexity_before
+        return None
+
+    def advice(self) -> list[str]:
+        """Plain-words warnings when the measured drift is high, each naming the next step (empty when it is not).
+
+        The thresholds are judgement calls, not published constants: a mean cosine under 0.95, a relative L2
+        error over 0.2, top-1 agreement under 95%, an accuracy loss over 1 point, or a perplexity ratio over
+        1.10 is a change a user should look at before shipping.
+        """
+        d = self.drift or {}
+        found = []
+        if d.get("cosine_mean") is not None and "top1_agreement" not in d and d["cosine_mean"] < 0.95:
+            found.append(f"mean cosine similarity to the original is {d['cosine_mean']:.3f}")
+        elif d.get("relative_l2") is not None and "top1_agreement" not in d and not d["relative_l2"] <= 0.2:
+            found.append(f"relative L2 error of the outputs is {d['relative_l2']:.3g}")
+        if d.get("top1_agreement") is not None and d["top1_agreement"] < 0.95:
+            found.append(f"top-1 agreement with the original is {100 * d['top1_agreement']:.1f}%")
+        if self.accuracy_before is not None and self.accuracy_after is not None \
+                and self.accuracy_after < self.accuracy_before - 0.01:
+            found.append(f"accuracy fell by {100 * (self.accuracy_before - self.accuracy_after):.2f} points")
+        ratio = self.perplexity_ratio
+        if ratio is not None and not ratio <= 1.10:
+            found.append(f"perplexity rose to {ratio:.3f}x the original's")
+        if not found:
+            return []
+        if self.calibrated is False:
+            step = ("compress with calibration inputs (Python: calibration=batches; terminal: --calibration FILE), "
+                    "which fits factors and ranks to what the layers see; then, if still too high, raise the budget "
+                    "or heal the model")
+        else:
+            step = ("raise the budget, exclude the most sensitive layers, or heal the compressed model on unlabelled "
+                    "inputs (factorize.heal; terminal: --heal)")
+        return [f"High drift: {'; '.join(found)}. Next step: {step}."]
+
+    @property
     def worst_weight_error(self) -> float | None:
         errors = [layer.weight_error for layer in self.factored if layer.weight_error is not None]
         return max(errors) if errors else None
@@ -109,6 +150,8 @@ class Report:
             macs_after=self.macs_after,
             worst_weight_error=self.worst_weight_error,
             factored_layers=len(self.factored),
+            perplexity_ratio=self.perplexity_ratio,
+            advice=self.advice(),
         )
         return _finite(data)
 
@@ -130,6 +173,8 @@ class Report:
                 lines.append("| " + " | ".join(_layer_cells(layer)) + " |")
         for note in self.notes:
             lines += ["", f"Note: {note}"]
+        for line in self.advice():
+            lines += ["", f"**{line}**"]
         lines += ["", f"> **Caution.** {self.caution}", ""]
         return "\n".join(lines)
 
@@ -145,6 +190,9 @@ class Report:
         if self.accuracy_before is not None:
             rows.append(("accuracy", _pct(self.accuracy_before), _pct(self.accuracy_after),
                          _points(self.accuracy_before, self.accuracy_after)))
+        if self.perplexity_before is not None:
+            rows.append(("perplexity (next token)", f"{self.perplexity_before:.4g}", f"{self.perplexity_after:.4g}",
+                         _change(self.perplexity_before, self.perplexity_after)))
         if self.latency_ms_before is not None:
             rows.append((f"latency, median of {self.latency_repeats} (batch {self.latency_batch})",
                          f"{self.latency_ms_before:.3f} ms", f"{self.latency_ms_after:.3f} ms",
@@ -200,6 +248,8 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
         console.print(layers)
     for note in report.notes:
         console.print(f"[yellow]Note:[/] {note}", highlight=False)
+    for line in report.advice():
+        console.print(f"[bold red]{line}[/]", highlight=False)
     if caution:
         console.print(Panel(report.caution, title="caution", title_align="left", border_style="yellow"))
 
