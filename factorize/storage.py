@@ -186,12 +186,13 @@ def check_free_space(directory: str | os.PathLike, nbytes: int, what: str) -> No
     free = shutil.disk_usage(directory).free
     if free < nbytes + DISK_MARGIN_BYTES:
         raise FactorizeError(
-            f"not enough free disk space in {directory} for {what}: needs {_human(nbytes)}, {_human(free)} free",
+            f"not enough free disk space in {directory} for {what}: needs {human_bytes(nbytes)}, {human_bytes(free)} free",
             fix="free some space or write the output to another disk",
         )
 
 
-def _human(n: float) -> str:
+def human_bytes(n: float) -> str:
+    """A byte count for people: 1.5 GB."""
     for unit in ("B", "KB", "MB", "GB", "TB"):
         if abs(n) < 1024 or unit == "TB":
             return f"{n:.1f} {unit}" if unit != "B" else f"{int(n)} B"

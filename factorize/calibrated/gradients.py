@@ -10,7 +10,12 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
-from factorize.calibrated.stats import _check_finite, as_batch_list, resolve_sites
+from factorize.calibrated.stats import (
+    _check_finite,
+    as_batch_list,
+    check_memory,
+    resolve_sites,
+)
 from factorize.errors import FactorizeError
 from factorize.model.feed import feed, token_mask
 from factorize.model.sites import Site, get_module
@@ -85,6 +90,7 @@ def collect_output_grams(
     if not isinstance(projections, int) or projections < 1:
         raise FactorizeError(f"projections must be a positive integer, got {projections!r}")
     site_list = resolve_sites(model, sites)
+    check_memory({s.name: 8 * s.shape[0] ** 2 * 2 for s in site_list}, "output weights")  # G and its factor
     batch_list = as_batch_list(batches)
     grams = {s.name: torch.zeros(s.shape[0], s.shape[0], dtype=torch.float64) for s in site_list}
     rows = {s.name: 0 for s in site_list}

@@ -32,6 +32,7 @@ after the site where that is safe).
 
 from __future__ import annotations
 
+import os
 import warnings
 from collections.abc import Iterable, Mapping, Sequence
 from contextlib import contextmanager
@@ -44,10 +45,13 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.errors import FactorizeError
+from factorize.storage import human_bytes
 from factorize.model.feed import feed, token_mask
 from factorize.model.sites import Site, get_module, walk
 
 ROW_CHUNK = 16384  # rows converted to float64 at a time, so a big conv batch never doubles in memory at once
+MEMORY_SHARE = 0.5  # statistics may take at most this share of the memory available when collection starts
+WORK_COPIES = 3  # the whitening step holds about this many n x n float64 matrices per layer at once (C, L, L^-1)
 
 
 @dataclass
@@ -322,6 +326,49 @@ class _NoBar:
         pass
 
 
+def available_memory() -> int:
+    """Bytes of memory available to this process now (MemAvailable on Linux; else the free physical pages)."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    try:
+        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):
+        return 2**63 - 1  # unknown: do not refuse
+
+
+def check_memory(needs: dict[str, int], what: str, *, limit: int | None = None) -> None:
+    """Refuse, before anything is allocated, statistics whose matrices would not fit in memory.
+
+    ``needs``: bytes per layer. ``limit``: the bytes allowed (default: MEMORY_SHARE of the memory available now).
+    The error names every layer that alone exceeds the limit, with its bytes, and the way out.
+    """
+    source = "the limit given" if limit is not None else "half of the memory available now"
+    limit = int(MEMORY_SHARE * available_memory()) if limit is None else limit
+    total = sum(needs.values())
+    if total <= limit:
+        return
+    big = sorted(((b, n) for n, b in needs.items() if b > limit / 4), reverse=True) or \
+        sorted(((b, n) for n, b in needs.items()), reverse=True)[:5]
+    raise FactorizeError(
+        f"the {what} of {len(needs)} layers would need {human_bytes(total)}, more than the {human_bytes(limit)} allowed "
+        f"({source})",
+        [f"{name}: {human_bytes(b)}" for b, name in big],
+        fix="leave the widest layers out of calibration (exclude=[...] / --exclude, or compress them without "
+        "calibration in a second call), compress fewer layers per call (include=...), or free memory",
+    )
+
+
+def stats_bytes(site: Site) -> int:
+    """Bytes the input statistics of ``site`` take while whitening (embeddings keep a diagonal only)."""
+    n = site.shape[1]
+    return 8 * n * (4 if site.kind == "embedding" else WORK_COPIES * n)
+
+
 def collect_stats(
     model: nn.Module,
     sites: Iterable[Site | str] | None,
@@ -329,6 +376,7 @@ def collect_stats(
     *,
     progress: bool = False,
     per_site: bool = False,
+    memory_limit: int | None = None,
 ) -> dict[str, InputStats]:
     """Input second moment of every site, streamed over the calibration batches.
 
@@ -341,6 +389,8 @@ def collect_stats(
         progress: a progress bar on stderr.
         per_site: collect one site at a time (one n x n matrix held while collecting, one pass per site) instead
             of all sites in one pass.
+        memory_limit: bytes the statistics may take (default: half of the memory available now); checked
+            before anything is allocated.
 
     Returns:
         name -> :class:`InputStats`, in site order. A site the batches never reach has ``count == 0``.
@@ -354,6 +404,7 @@ def collect_stats(
         activation-aware decomposition adds a ridge (see :mod:`factorize.aware`).
     """
     site_list = resolve_sites(model, sites)
+    check_memory({s.name: stats_bytes(s) for s in site_list}, "input statistics", limit=memory_limit)
     batch_list = as_batch_list(batches)
     stats = {s.name: InputStats(s.name, s.kind, s.shape[1]) for s in site_list}
     if per_site:

@@ -189,3 +189,22 @@ def test_output_grams_need_a_differentiable_model(mlp):
 
     with pytest.raises(FactorizeError, match="sensitivity='probes'"):
         collect_output_grams(Frozen(mlp), ["inner.fc1"], [torch.randn(4, 24)])
+
+
+def test_statistics_that_would_not_fit_are_refused_before_allocating(monkeypatch):
+    # a conv whose unfolded input is 16 x 9 x 9 = 1296 wide needs 3 x 1296^2 x 8 bytes (about 40 MB) to whiten;
+    # with a 1 MB allowance the call must fail up front, naming the layer and its bytes, and never run the model
+    from factorize.calibrated.stats import check_memory, collect_stats, stats_bytes
+
+    model = nn.Sequential(nn.Conv2d(3, 16, 3), nn.Conv2d(16, 8, 9))
+    calls = []
+    model.register_forward_pre_hook(lambda *a: calls.append(1))
+    sites = walk(model).sites
+    assert stats_bytes(sites[1]) == 3 * 1296**2 * 8
+    with pytest.raises(FactorizeError) as err:
+        collect_stats(model, sites, [torch.randn(2, 3, 20, 20)], memory_limit=2**20)
+    text = str(err.value)
+    assert "1: 38.4 MB" in text and "exclude" in text and not calls  # 40,310,784 bytes
+    check_memory({"a": 10, "b": 20}, "input statistics", limit=30)  # exactly at the limit: allowed
+    with pytest.raises(FactorizeError, match="a: 21 B"):
+        check_memory({"a": 21, "b": 10}, "input statistics", limit=30)
