@@ -7,7 +7,7 @@ import os
 import secrets
 import shutil
 import struct
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -286,4 +286,37 @@ def read_safetensors(path: str | os.PathLike) -> dict[str, torch.Tensor]:
     except SafetensorError as err:
         raise FactorizeError(f"{path}: not a valid safetensors file: {err}",
                              fix="copy or download it again, or save it again from the model") from None
+
+
+def safetensors_header(entries: Mapping[str, dict], metadata: Mapping[str, str] | None, *, pad_to: int = 0) -> bytes:
+    """The 8-byte length plus JSON header of a safetensors file, with every key sorted (so the same tensors and
+    metadata always give the same bytes) and padded with spaces to a multiple of 8 bytes, or to ``pad_to`` bytes
+    when that is larger (the format allows trailing whitespace in the header)."""
+    body = {"__metadata__": dict(metadata)} if metadata else {}
+    body.update(entries)
+    header = json.dumps(body, separators=(",", ":"), sort_keys=True).encode()
+    size = max(-(-(8 + len(header)) // 8) * 8, pad_to)
+    header += b" " * (size - 8 - len(header))
+    return struct.pack("<Q", len(header)) + header
+
+
+def write_safetensors(path: str | os.PathLike, tensors: Mapping[str, torch.Tensor],
+                      metadata: Mapping[str, str] | None = None) -> None:
+    """Write ``tensors`` as a safetensors file, byte for byte the same for the same input.
+
+    The reference writer orders metadata keys differently from one run to the next; this one sorts them and
+    lays the tensors out in name order. Readers see an ordinary safetensors file.
+    """
+    entries, blobs, offset = {}, [], 0
+    for name in sorted(tensors):
+        t = tensors[name].detach().contiguous().cpu()
+        n = t.numel() * t.element_size()
+        entries[name] = {"dtype": DTYPE_NAMES[t.dtype], "shape": list(t.shape), "data_offsets": [offset, offset + n]}
+        blobs.append(t)
+        offset += n
+    with open(path, "wb") as f:
+        f.write(safetensors_header(entries, metadata))
+        for t in blobs:
+            if t.numel():
+                f.write(memoryview(t.reshape(-1).view(torch.uint8).numpy()))
 

@@ -45,9 +45,9 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.errors import FactorizeError
-from factorize.storage import human_bytes
 from factorize.model.feed import feed, token_mask
 from factorize.model.sites import Site, get_module, walk
+from factorize.storage import human_bytes
 
 ROW_CHUNK = 16384  # rows converted to float64 at a time, so a big conv batch never doubles in memory at once
 MEMORY_SHARE = 0.5  # statistics may take at most this share of the memory available when collection starts

@@ -34,7 +34,6 @@ from pathlib import Path
 
 import torch
 from safetensors import safe_open
-from safetensors.torch import save_file
 from torch import nn
 
 from factorize.errors import FactorizeError
@@ -46,6 +45,7 @@ from factorize.storage import (
     check_output_path,
     read_header,
     write_atomic,
+    write_safetensors,
 )
 
 FORMAT_NAME = "factorize.checkpoint"
@@ -311,7 +311,7 @@ def save(
     tensors = {k: (v if v.is_contiguous() else v.contiguous()).cpu() for k, v in tensors.items()}
     nbytes = sum(t.numel() * t.element_size() for t in tensors.values()) + len(json.dumps(meta)) + 64 * len(tensors)
     check_free_space(final.parent, nbytes, f"{final.name}")
-    write_atomic(final, lambda tmp: save_file(tensors, str(tmp), metadata=meta), force=force)
+    write_atomic(final, lambda tmp: write_safetensors(tmp, tensors, meta), force=force)
     return final
 
 

@@ -31,7 +31,6 @@ import json
 import math
 import os
 import shutil
-import struct
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
@@ -70,6 +69,7 @@ from factorize.storage import (
     check_output_path,
     create_temp,
     remove_quietly,
+    safetensors_header,
 )
 
 FLOAT_DTYPES = ("F64", "F32", "F16", "BF16")
@@ -173,11 +173,10 @@ class _StreamWriter:
 
     def finish(self, metadata: Mapping[str, str]) -> int:
         """Write the header, flush and fsync; returns the file size."""
-        header = json.dumps({"__metadata__": dict(metadata), **self.entries}, separators=(",", ":")).encode()
-        if 8 + len(header) <= self.reserve:
-            header += b" " * (self.reserve - 8 - len(header))
+        header = safetensors_header(self.entries, metadata)
+        if len(header) <= self.reserve:
             self.f.seek(0)
-            self.f.write(struct.pack("<Q", len(header)) + header)
+            self.f.write(safetensors_header(self.entries, metadata, pad_to=self.reserve))
         else:
             self._rewrite_with(header)
         self.f.flush()
@@ -186,12 +185,11 @@ class _StreamWriter:
         return self.tmp.stat().st_size
 
     def _rewrite_with(self, header: bytes) -> None:
-        header += b" " * (_align8(8 + len(header)) - 8 - len(header))
         old, old_f = self.tmp, self.f
         old_f.flush()
         self.tmp, fd = create_temp(self.final)
         self.f = os.fdopen(fd, "wb")
-        self.f.write(struct.pack("<Q", len(header)) + header)
+        self.f.write(header)
         with open(old, "rb") as src:
             src.seek(self.reserve)
             shutil.copyfileobj(src, self.f, 16 * 2**20)

@@ -39,11 +39,16 @@ from pathlib import Path
 
 import torch
 from safetensors import safe_open
-from safetensors.torch import save_file
 
 from factorize.errors import FactorizeError
 from factorize.spectra.decompose import METHODS, Spectrum, compute_dtype_for, decompose
-from factorize.storage import create_temp, read_header, remove_quietly, write_atomic
+from factorize.storage import (
+    create_temp,
+    read_header,
+    remove_quietly,
+    write_atomic,
+    write_safetensors,
+)
 
 CACHE_FORMAT = "factorize.spectrum"
 CACHE_VERSION = 1
@@ -174,7 +179,7 @@ class SpectrumCache:
             "factorize.total_energy": float(spectrum.total_energy).hex(), "factorize.checksum": _checksum(U, S, Vh),
         }
         try:
-            write_atomic(self.path_for(key), lambda tmp: save_file({"U": U, "S": S, "Vh": Vh}, str(tmp), metadata=meta),
+            write_atomic(self.path_for(key), lambda tmp: write_safetensors(tmp, {"U": U, "S": S, "Vh": Vh}, meta),
                          force=True)
         except FactorizeError as e:
             warnings.warn(f"could not store a cache entry in {self.directory}: {e}", CacheWarning, stacklevel=2)

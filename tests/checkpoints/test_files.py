@@ -8,10 +8,11 @@ the data; github.com/huggingface/safetensors, "Format") and the reference reader
 from __future__ import annotations
 
 import json
-import shutil
 import os
+import shutil
 import struct
 from collections import namedtuple
+from pathlib import Path
 
 import pytest
 import torch
@@ -25,6 +26,8 @@ from factorize.checkpoints import files as io
 from factorize.errors import FactorizeError
 from factorize.rewrite.layers import Factored
 from tests.conftest import CNN, MLP, TiedLM, tiny_gpt2
+
+REPO = Path(__file__).resolve().parents[2]
 
 
 def _out(y):
@@ -161,12 +164,12 @@ def test_existing_output_refused_unless_force(tmp_path, mlp):
 def test_failure_mid_write_leaves_nothing(tmp_path, mlp, monkeypatch):
     result = factorize.compress(mlp, rank=4)
 
-    def broken(tensors, filename, metadata=None):
+    def broken(filename, tensors, metadata=None):
         with open(filename, "wb") as f:
             f.write(b"\x10\x00\x00\x00\x00\x00\x00\x00{half")  # a partial file, then the writer dies
         raise RuntimeError("simulated crash while writing")
 
-    monkeypatch.setattr(io, "save_file", broken)
+    monkeypatch.setattr(io, "write_safetensors", broken)
     with pytest.raises(RuntimeError, match="simulated"):
         io.save(result.model, tmp_path / "m.safetensors", plan=result.plan)
     assert list(tmp_path.iterdir()) == []
@@ -176,7 +179,7 @@ def test_failed_overwrite_keeps_the_old_file(tmp_path, mlp, monkeypatch):
     result = factorize.compress(mlp, rank=4)
     path = io.save(result.model, tmp_path / "m.safetensors", plan=result.plan)
     old = path.read_bytes()
-    monkeypatch.setattr(io, "save_file", lambda *a, **k: (_ for _ in ()).throw(OSError(28, "No space left on device")))
+    monkeypatch.setattr(io, "write_safetensors", lambda *a, **k: (_ for _ in ()).throw(OSError(28, "No space left on device")))
     with pytest.raises(FactorizeError, match="No space left"):
         io.save(result.model, path, plan=result.plan, force=True)
     assert path.read_bytes() == old and list(tmp_path.iterdir()) == [path]
@@ -348,3 +351,29 @@ def test_not_strict_allows_extra_model_keys(saved):
         m = io.load(Wider(), path, strict=False)
     x = torch.randn(3, 24)
     assert torch.equal(m(x), result.model(x))
+
+
+def test_the_same_model_saves_to_the_same_bytes(tmp_path, mlp):
+    # the reference safetensors writer orders metadata keys differently from run to run; ours sorts them, so the
+    # same model and plan give byte-identical files (checked across separate processes below, where hash seeds
+    # differ, and within one process here)
+    import subprocess
+    import sys
+
+    result = factorize.compress(mlp, rank=4)
+    a = io.save(result.model, tmp_path / "a.safetensors", plan=result.plan, metadata={"z": "1", "a": "2", "m": "3"})
+    b = io.save(result.model, tmp_path / "b.safetensors", plan=result.plan, metadata={"m": "3", "z": "1", "a": "2"})
+    assert a.read_bytes() == b.read_bytes()
+    with safe_open(str(a), "pt") as f:  # still an ordinary safetensors file for the reference reader
+        assert set(f.keys()) == set(result.model.state_dict()) and f.metadata()["z"] == "1"
+    script = (
+        "import sys, torch, factorize; from tests.conftest import MLP; torch.manual_seed(0); m = MLP(); "
+        "r = factorize.compress(m, rank=4); factorize.save(r.model, sys.argv[1], plan=r.plan)"
+    )
+    outs = []
+    for i, seed in enumerate(("1", "2")):
+        out = tmp_path / f"p{i}.safetensors"
+        env = {**os.environ, "PYTHONHASHSEED": seed}
+        subprocess.run([sys.executable, "-c", script, str(out)], check=True, env=env, cwd=REPO)
+        outs.append(out.read_bytes())
+    assert outs[0] == outs[1]

@@ -125,7 +125,7 @@ def test_failed_store_warns_and_continues(tmp_path, monkeypatch):
     def disk_full(*a, **k):
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(cache_mod, "save_file", disk_full)
+    monkeypatch.setattr(cache_mod, "write_safetensors", disk_full)
     W = _matrix()
     with pytest.warns(CacheWarning, match="could not store"):
         spec = store.get_or_compute(W, "exact")
