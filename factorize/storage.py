@@ -99,12 +99,15 @@ def read_header(path: str | os.PathLike) -> Header:
             )
         raw = f.read(n)
     try:
-        header = json.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as e:
+        header = json.loads(raw.decode("utf-8"), parse_constant=_no_constant)
+    except (UnicodeDecodeError, json.JSONDecodeError, ValueError) as e:
         raise FactorizeError(
             f"{p}: not a safetensors file (the header is not valid UTF-8 JSON: {e})" + _format_hint(head),
             fix="pass a .safetensors file",
         ) from None
+    except RecursionError:
+        raise FactorizeError(f"{p}: corrupt safetensors header (JSON nested too deeply)",
+                             fix="re-create the file") from None
     if not isinstance(header, dict):
         raise FactorizeError(f"{p}: not a safetensors file (the header is not a JSON object)")
     return _parse_entries(p, header, 8 + n, size)
@@ -139,12 +142,15 @@ def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
         if name == "__metadata__":
             continue
         try:
-            dtype, shape, (start, end) = e["dtype"], tuple(int(d) for d in e["shape"]), e["data_offsets"]
-            start, end = int(start), int(end)
+            dtype, shape, (start, end) = e["dtype"], e["shape"], e["data_offsets"]
         except (KeyError, TypeError, ValueError):
-            problems.append(f"{name}: entry is not {{dtype, shape, data_offsets}}")
+            problems.append(f"{_printable(name)}: entry is not {{dtype, shape, data_offsets}}")
             continue
-        info = TensorInfo(name, dtype, shape, start, end)
+        bad = _entry_problem(dtype, shape, start, end)
+        if bad:
+            problems.append(f"{_printable(name)}: {bad}")
+            continue
+        info = TensorInfo(name, dtype, tuple(shape), start, end)
         td = info.torch_dtype
         if td is not None:
             numel = 1
@@ -162,6 +168,40 @@ def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
     if problems:
         raise FactorizeError(f"{p}: corrupt safetensors header", problems, fix="re-create the file")
     return out
+
+
+MAX_DIM = 2**40  # no real tensor has a dimension this long; larger values are corrupt headers
+MAX_ELEMENTS = 2**45  # 32 T elements: beyond any checkpoint this library can process
+
+
+def _no_constant(name: str):
+    raise ValueError(f"{name} is not allowed in a safetensors header")
+
+
+def _is_int(v) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _entry_problem(dtype, shape, start, end) -> str:
+    """What is wrong with one header entry's fields, or '' (types, ranges, and a known dtype)."""
+    if not isinstance(dtype, str) or dtype not in DTYPES:
+        return (f"dtype {_printable(str(dtype))} is not supported (supported: {', '.join(sorted(DTYPES))})")
+    if not isinstance(shape, list) or not all(_is_int(d) and 0 <= d <= MAX_DIM for d in shape):
+        return f"shape {_printable(str(shape))[:80]} is not a list of integers in 0..2^40"
+    if not (_is_int(start) and _is_int(end) and 0 <= start <= end):
+        offsets = f"[{_printable(str(start))[:40]}, {_printable(str(end))[:40]}]"
+        return f"data_offsets {offsets} are not integers with 0 <= start <= end"
+    numel = 1
+    for d in shape:
+        numel *= d
+    if numel > MAX_ELEMENTS:
+        return f"shape {shape} holds {numel} elements, more than any checkpoint could"
+    return ""
+
+
+def _printable(text: str) -> str:
+    """``text`` with control characters (terminal escape sequences among them) replaced by '?'."""
+    return "".join(c if c.isprintable() else "?" for c in text)
 
 
 def check_output_path(path: str | os.PathLike, *, force: bool, directory: bool = False) -> Path:

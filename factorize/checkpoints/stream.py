@@ -127,6 +127,9 @@ def select(ckpt: Checkpoint, include=None, exclude=None) -> tuple[list[_Candidat
         if module is None:
             passed[name] = "not named <module>.weight, so there is no layer to rewrite; copied"
             continue
+        if min(info.shape) == 0:
+            passed[name] = f"shape {list(info.shape)} has no element to factor; copied"
+            continue
         bias_name = module + ".bias"
         bias = where[bias_name].tensors[bias_name] if bias_name in where else None
         if bias is not None and bias.shape != (info.shape[0],):

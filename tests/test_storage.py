@@ -1,0 +1,88 @@
+"""The safetensors header reader against corrupt and hostile files: every one a clean FactorizeError.
+
+The layout rules come from the open safetensors format (8-byte little-endian header length, a JSON object of
+entries {dtype, shape, data_offsets}, optional string-to-string __metadata__); the reference reader
+(safetensors.safe_open) is used to confirm that what we accept, it accepts too.
+"""
+
+from __future__ import annotations
+
+import json
+import struct
+
+import pytest
+import torch
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from safetensors import safe_open
+
+from factorize.errors import FactorizeError
+from factorize.storage import read_header, write_safetensors
+
+
+def _file(tmp_path, header: bytes | str, data: bytes = b"", name="f.safetensors"):
+    raw = header.encode() if isinstance(header, str) else header
+    p = tmp_path / name
+    p.write_bytes(struct.pack("<Q", len(raw)) + raw + data)
+    return p
+
+
+@pytest.mark.parametrize(
+    ("header", "match"),
+    [
+        ('{"w": {"dtype": "F32", "shape": [2], "data_offsets": [0, Infinity]}}', "not valid UTF-8 JSON"),
+        ('{"w": {"dtype": "F32", "shape": [NaN], "data_offsets": [0, 8]}}', "not valid UTF-8 JSON"),
+        ('{"w": {"dtype": "F32", "shape": [1e400], "data_offsets": [0, 8]}}', "not a list of integers"),
+        ('{"w": {"dtype": "F32", "shape": [true, 2], "data_offsets": [0, 8]}}', "not a list of integers"),
+        ('{"w": {"dtype": "F32", "shape": 2, "data_offsets": [0, 8]}}', "not a list of integers"),
+        ('{"w": {"dtype": "F32", "shape": [-1], "data_offsets": [0, 8]}}', "not a list of integers"),
+        ('{"w": {"dtype": "F32", "shape": [0, 1099511627777], "data_offsets": [0, 0]}}', "not a list of integers"),
+        ('{"w": {"dtype": "F32", "shape": [1048576, 1048576, 1048576], "data_offsets": [0, 0]}}', "elements"),
+        ('{"w": {"dtype": "C64", "shape": [2], "data_offsets": [0, 16]}}', "C64 is not supported"),
+        ('{"w": {"dtype": "F32", "shape": [2], "data_offsets": [8, 0]}}', "not integers with 0 <= start <= end"),
+        ('{"w": {"dtype": "F32", "shape": [2], "data_offsets": [0.0, 8.0]}}', "not integers"),
+        ('{"w": {"dtype": "F32", "shape": [2]}}', "entry is not"),
+        ('{"w": 3}', "entry is not"),
+        ('{"__metadata__": {"a": 1}}', "__metadata__ must map strings to strings"),
+        ('[1, 2]', "not a JSON object"),
+        ("[" * 200_000 + "]" * 200_000, "nested too deeply|not valid"),
+        ('{"w\\u001b[31m": {"dtype": "X", "shape": [2], "data_offsets": [0, 8]}}', r"w\?\[31m"),
+    ],
+)
+def test_bad_headers_are_clean_errors(tmp_path, header, match):
+    p = _file(tmp_path, header, b"\0" * 16)
+    with pytest.raises(FactorizeError, match=match) as err:
+        read_header(p)
+    assert "\x1b" not in str(err.value)  # control characters never reach the terminal
+
+
+def test_a_good_file_round_trips_through_the_reference_reader(tmp_path):
+    tensors = {"b": torch.arange(6, dtype=torch.float32).reshape(2, 3), "a": torch.ones(4, dtype=torch.bfloat16)}
+    p = tmp_path / "ok.safetensors"
+    write_safetensors(p, tensors, {"k": "v"})
+    h = read_header(p)
+    assert h.metadata == {"k": "v"} and set(h.tensors) == {"a", "b"}
+    with safe_open(str(p), "pt") as f:  # reference: the safetensors library's own reader
+        for k, v in tensors.items():
+            assert torch.equal(f.get_tensor(k), v)
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.binary(max_size=300), cut=st.integers(min_value=0, max_value=400))
+def test_fuzz_random_and_mutated_files_never_escape_as_other_errors(tmp_path, data, cut):
+    # random bytes, and a valid file with random bytes spliced in: either parsed or a FactorizeError, nothing else
+    p = tmp_path / "fuzz.safetensors"
+    p.write_bytes(data)
+    try:
+        read_header(p)
+    except FactorizeError:
+        pass
+    good = tmp_path / "good.safetensors"
+    write_safetensors(good, {"w": torch.zeros(3, 2)}, {"factorize.plan": json.dumps({"sites": {}})})
+    raw = good.read_bytes()
+    cut = min(cut, len(raw))
+    p.write_bytes(raw[:cut] + data[:16] + raw[cut + len(data[:16]):])
+    try:
+        read_header(p)
+    except FactorizeError:
+        pass
