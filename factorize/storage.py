@@ -240,12 +240,18 @@ def human_bytes(n: float) -> str:
     return f"{n} B"
 
 
-def create_temp(final: Path) -> tuple[Path, int]:
-    """A new temporary file beside ``final`` (same directory, so os.replace is atomic): (path, fd).
+TEMP_SUFFIX = ".factorize-tmp"  # temporary files are named .<final name>.<pid>-<random>.factorize-tmp
 
-    Created with mode 0o666 so the umask applies as for any new file."""
+
+def create_temp(final: Path) -> tuple[Path, int]:
+    """A new temporary file beside ``final`` (same directory, so the final rename is atomic): (path, fd).
+
+    The name carries this process's id, so a later run can tell a leftover of a killed writer (whose process is
+    gone) from a live one, and removes such leftovers first (:func:`remove_stale_temps`). Created with mode
+    0o666 so the umask applies as for any new file."""
+    remove_stale_temps(final.parent if str(final.parent) else Path("."), final.name)
     for _ in range(100):
-        tmp = final.with_name(f".{final.name}.{secrets.token_hex(6)}.tmp")
+        tmp = final.with_name(f".{final.name}.{os.getpid()}-{secrets.token_hex(6)}{TEMP_SUFFIX}")
         try:
             fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
         except FileExistsError:
@@ -257,6 +263,53 @@ def create_temp(final: Path) -> tuple[Path, int]:
     raise FactorizeError(f"{final}: could not create a temporary file in {final.parent}")
 
 
+def remove_stale_temps(directory: str | os.PathLike, name: str | None = None) -> list[Path]:
+    """Remove temporary files that a killed factorize writer left in ``directory`` (for outputs called ``name``,
+    or all); files of writers still running are kept. Returns the files removed."""
+    removed = []
+    pattern = f".{name}.*{TEMP_SUFFIX}" if name else f".*{TEMP_SUFFIX}"
+    for p in Path(directory).glob(pattern):
+        pid = p.name[: -len(TEMP_SUFFIX)].rpartition(".")[2].partition("-")[0]
+        if pid.isdigit() and not _alive(int(pid)):
+            remove_quietly(p)
+            removed.append(p)
+    return removed
+
+
+def _alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError, OSError):
+        return True  # exists but not ours, or cannot tell: keep its files
+    return True
+
+
+def publish(tmp: Path, final: Path, *, force: bool) -> None:
+    """Move a finished temporary file to ``final``. Without ``force`` the name is claimed exclusively (a hard
+    link fails if ``final`` exists), so of two writers racing for one path exactly one succeeds."""
+    if force:
+        os.replace(tmp, final)
+        return
+    try:
+        os.link(tmp, final)
+    except FileExistsError:
+        raise FactorizeError(f"{final}: the output appeared while writing (another writer got there first)",
+                             fix="choose another path, or pass force=True (--force) to replace it") from None
+    except OSError:  # a filesystem without hard links: claim the name with an exclusive create, then replace it
+        try:
+            os.close(os.open(final, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666))
+        except FileExistsError:
+            raise FactorizeError(f"{final}: the output appeared while writing (another writer got there first)",
+                                 fix="choose another path, or pass force=True (--force) to replace it") from None
+        os.replace(tmp, final)
+        return
+    remove_quietly(tmp)
+
+
 def remove_quietly(p: Path) -> None:
     try:
         p.unlink()
@@ -265,17 +318,15 @@ def remove_quietly(p: Path) -> None:
 
 
 def write_atomic(final: Path, write: Callable[[Path], None], *, force: bool) -> None:
-    """Run ``write(tmp)`` on a temporary file beside ``final``, fsync it, then ``os.replace`` it into place.
-    On any failure the temporary file is removed and ``final`` is untouched."""
+    """Run ``write(tmp)`` on a temporary file beside ``final``, fsync it, then move it into place
+    (:func:`publish`). On any failure the temporary file is removed and ``final`` is untouched."""
     tmp, fd = create_temp(final)
     os.close(fd)
     try:
         write(tmp)
         os.chmod(tmp, 0o666 & ~_umask())  # a writer may create its file private (0600); use the usual mode
         _fsync(tmp)
-        if not force and final.exists():  # created by someone else meanwhile
-            raise FactorizeError(f"{final}: the output appeared while writing", fix="pass force=True (--force)")
-        os.replace(tmp, final)
+        publish(tmp, final, force=force)
     except OSError as e:
         remove_quietly(tmp)
         raise FactorizeError(f"{final}: writing failed ({e.strerror or e}); nothing was written",

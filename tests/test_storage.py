@@ -8,7 +8,10 @@ entries {dtype, shape, data_offsets}, optional string-to-string __metadata__); t
 from __future__ import annotations
 
 import json
+import os
 import struct
+import subprocess
+import sys
 
 import pytest
 import torch
@@ -86,3 +89,37 @@ def test_fuzz_random_and_mutated_files_never_escape_as_other_errors(tmp_path, da
         read_header(p)
     except FactorizeError:
         pass
+
+
+def test_two_writers_racing_for_one_path_exactly_one_wins(tmp_path):
+    # without force the final name is claimed exclusively: the second publish must fail, the first file stays
+    from factorize.storage import create_temp, publish
+
+    final = tmp_path / "out.safetensors"
+    temps = []
+    for payload in (b"first", b"second"):
+        tmp, fd = create_temp(final)
+        os.write(fd, payload)
+        os.close(fd)
+        temps.append(tmp)
+    publish(temps[0], final, force=False)
+    with pytest.raises(FactorizeError, match="appeared while writing"):
+        publish(temps[1], final, force=False)
+    assert final.read_bytes() == b"first"
+    publish(temps[1], final, force=True)  # force replaces
+    assert final.read_bytes() == b"second"
+
+
+def test_leftovers_of_a_killed_writer_are_removed_by_the_next_run(tmp_path):
+    from factorize.storage import TEMP_SUFFIX, create_temp, remove_stale_temps
+
+    final = tmp_path / "m.safetensors"
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    stale = tmp_path / f".m.safetensors.{int(dead.stdout)}-abcdef{TEMP_SUFFIX}"  # that process has exited
+    stale.write_bytes(b"x" * 100)
+    live = tmp_path / f".m.safetensors.{os.getpid()}-abcdef{TEMP_SUFFIX}"  # this process: still writing
+    live.write_bytes(b"y")
+    tmp, fd = create_temp(final)  # the next run's first temp file clears the dead writer's leftover
+    os.close(fd)
+    assert not stale.exists() and live.exists() and tmp.name.endswith(TEMP_SUFFIX)
+    assert remove_stale_temps(tmp_path) == []  # nothing else is stale

@@ -62,6 +62,7 @@ from factorize.plan.ranks import (
 from factorize.spectra.cache import SpectrumCache, as_cache
 from factorize.spectra.decompose import METHODS, Spectrum, decompose
 from factorize.storage import (
+    publish,
     DTYPE_NAMES,
     Header,
     TensorInfo,
@@ -314,7 +315,7 @@ def shrink_checkpoint(
     if created_dir:
         target_dir.mkdir(parents=False)
     try:
-        written = job.write_all(finals, metadata)
+        written = job.write_all(finals, metadata, force=force)
     except BaseException:
         if created_dir:
             shutil.rmtree(target_dir, ignore_errors=True)
@@ -345,7 +346,10 @@ def _outputs(ckpt: Checkpoint, dst: Path, force: bool) -> tuple[Path, list[Path]
         raise FactorizeError(f"{dst}: is the input checkpoint's directory; its shards are never overwritten",
                              fix="choose another output directory")
     check_output_path(dst, force=force, directory=True)
-    finals = [dst / h.path.name for h in ckpt.files] + [dst / ckpt.index.name]
+    names = [h.path.name for h in ckpt.files]
+    if len(set(names)) < len(names):  # shards of one name in several input folders: number them, never overwrite
+        names = [f"{Path(n).stem}-{i:05d}-of-{len(names):05d}.safetensors" for i, n in enumerate(names, 1)]
+    finals = [dst / n for n in names] + [dst / ckpt.index.name]
     return (dst if dst.exists() else dst.parent), finals
 
 
@@ -411,7 +415,7 @@ class _Job:
                     n += 2 * _entry_bound(c.module + ".second.bias", 1)
         return n
 
-    def write_all(self, finals: list[Path], metadata: Mapping[str, str] | None) -> list[Path]:
+    def write_all(self, finals: list[Path], metadata: Mapping[str, str] | None, *, force: bool) -> list[Path]:
         """Write every output file to a temporary name, then rename them all into place (index last)."""
         from factorize._version import __version__
 
@@ -437,7 +441,7 @@ class _Job:
                 total = sum(w.offset for w in writers)
                 temps.append(self._write_index(finals[-1], weight_map, total, metadata))
             for tmp, final in zip(temps, finals):
-                os.replace(tmp, final)
+                publish(tmp, final, force=force)
                 done.append(final)
         except OSError as e:
             self._cleanup(writers, temps, done)

@@ -274,3 +274,21 @@ def test_header_larger_than_reserve_falls_back_to_a_copy(tmp_path, monkeypatch):
     with torch.no_grad():
         torch.testing.assert_close(io.load(MLP(), out)(x), factorize.compress(model, rank=4).model(x))
     assert sorted(p.name for p in tmp_path.iterdir()) == ["in.safetensors", "out.safetensors"]
+
+
+def test_shards_of_one_name_in_two_folders_keep_apart(tmp_path):
+    # an index may place shards called the same in different folders; the output must not let one replace the other
+    src = tmp_path / "src"
+    (src / "a").mkdir(parents=True)
+    (src / "b").mkdir()
+    g = torch.Generator().manual_seed(0)
+    save_file({"x.weight": torch.randn(32, 24, generator=g)}, str(src / "a" / "w.safetensors"))
+    save_file({"y.weight": torch.randn(32, 24, generator=g)}, str(src / "b" / "w.safetensors"))
+    index = src / "model.safetensors.index.json"
+    index.write_text(json.dumps({"weight_map": {"x.weight": "a/w.safetensors", "y.weight": "b/w.safetensors"}}))
+    out = tmp_path / "out"
+    result = checkpoint.shrink_checkpoint(index, out, rank=4)
+    names = sorted(p.name for p in out.iterdir())
+    assert len(result["files"]) == 3 and len(set(names)) == 3
+    written = json.loads((out / "model.safetensors.index.json").read_text())["weight_map"]
+    assert {written["x.first.weight"], written["y.first.weight"]} == {n for n in names if n.endswith(".safetensors")}
