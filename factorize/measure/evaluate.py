@@ -26,6 +26,7 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
+from factorize._version import __version__
 from factorize.errors import FactorizeError
 from factorize.measure.drift import _as_batches, _ratio, output_drift
 from factorize.measure.perplexity import is_causal_lm, token_ids
@@ -110,7 +111,10 @@ def evaluate(
         policy=dict(plan["policy"]) if plan and "policy" in plan else None,
         calibrated=None if plan is None else "calibration" in plan,
         notes=list(notes),
+        versions=versions(),
     )
+    if plan:
+        _describe_plan(report, plan)
     if perplexity or (perplexity is None and is_causal_lm(original) and token_ids(batches[0]) is not None):
         if "perplexity" not in memo:
             memo["perplexity"] = perplexity_of(original, batches)
@@ -124,6 +128,22 @@ def evaluate(
         )
         report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
     return report
+
+
+def versions() -> dict:
+    """The library and torch versions and the thread count in force: what a reader needs to rerun a result."""
+    return {"factorize": __version__, "torch": torch.__version__.split("+")[0], "threads": torch.get_num_threads()}
+
+
+def _describe_plan(report: Report, plan: Mapping) -> None:
+    entries = [e for e in plan.get("sites", {}).values() if isinstance(e, Mapping)]
+    before = sum(int(e.get("params", 0)) for e in entries)
+    if before:
+        report.sites_kept = sum(int(e.get("params_after", e.get("params", 0))) for e in entries) / before
+    report.method = str(plan.get("method", ""))
+    calibration = plan.get("calibration")
+    if isinstance(calibration, Mapping):
+        report.calibration_batches = calibration.get("batches")
 
 
 def _progress(enabled: bool):

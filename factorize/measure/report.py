@@ -66,6 +66,11 @@ class Report:
     inputs: str = ""  # where the sample inputs came from
     policy: dict | None = None  # the plan's rank policy
     calibrated: bool | None = None  # whether the plan was fitted to calibration inputs (None: unknown)
+    method: str = ""  # the plan's decomposition method
+    recipe: str = ""  # the recipe the policy came from, if any
+    calibration_batches: int | None = None  # calibration batches the plan was fitted to
+    sites_kept: float | None = None  # fraction of the plan's sites' parameters kept
+    versions: dict = field(default_factory=dict)  # factorize, torch, and the thread count the run used
     perplexity_before: float | None = None  # causal language models: exp(mean next-token loss) on the inputs
     perplexity_after: float | None = None
     notes: list[str] = field(default_factory=list)  # warnings worth showing (e.g. random inputs)
@@ -83,14 +88,36 @@ class Report:
 
     @property
     def macs_before(self) -> int | None:
-        """Multiply-accumulates per sample of the factored layers, before (None when not measured)."""
-        values = [layer.macs for layer in self.factored]
+        """Multiply-accumulates per sample of every layer in the table (factored or kept dense), before; the
+        same set of layers as :attr:`macs_after`, so the two compare (None when not measured)."""
+        values = [layer.macs for layer in self.layers]
         return sum(values) if values and None not in values else None
 
     @property
     def macs_after(self) -> int | None:
-        values = [layer.macs_after for layer in self.factored]
+        values = [layer.macs_after for layer in self.layers]
         return sum(values) if values and None not in values else None
+
+    def setup(self) -> str:
+        """One line saying how the result was made and measured, so a pasted report describes itself."""
+        parts = []
+        if self.policy:
+            rule = ", ".join(f"{k}={v}" for k, v in self.policy.items() if k in ("budget", "rank", "energy", "keep"))
+            parts.append(f"policy {rule or 'given'}" + (f" (recipe {self.recipe})" if self.recipe else ""))
+        if self.sites_kept is not None:
+            parts.append(f"kept {self.sites_kept:.3f} of the factorizable layers' parameters")
+        if self.method:
+            parts.append(f"method {self.method}")
+        if self.calibrated is not None:
+            parts.append(f"calibrated on {self.calibration_batches} batches" if self.calibrated else "no calibration")
+        if self.samples:
+            parts.append(f"measured on {self.samples} samples")
+        if self.versions:
+            parts.append(", ".join(f"{k} {v}" for k, v in self.versions.items()))
+        return "; ".join(parts)
+
+    def __str__(self) -> str:
+        return self.to_markdown()
 
     @property
     def perplexity_ratio(self) -> float | None:
@@ -151,6 +178,7 @@ class Report:
             worst_weight_error=self.worst_weight_error,
             factored_layers=len(self.factored),
             perplexity_ratio=self.perplexity_ratio,
+            setup=self.setup(),
             advice=self.advice(),
         )
         return _finite(data)
@@ -160,6 +188,8 @@ class Report:
         lines = [f"## {self.title}", ""]
         if self.model:
             lines += [f"Model: `{self.model}`", ""]
+        if self.setup():
+            lines += [f"Setup: {self.setup()}.", ""]
         lines += ["| quantity | before | after | change |", "| --- | ---: | ---: | ---: |"]
         lines += [f"| {q} | {b} | {a} | {c} |" for q, b, a, c in self.summary_rows()]
         if self.drift is not None:
@@ -185,7 +215,7 @@ class Report:
             ("bytes", _bytes(self.bytes_before), _bytes(self.bytes_after), _change(self.bytes_before, self.bytes_after)),
         ]
         if self.macs_before is not None:
-            rows.append(("MACs/sample, factored layers", _int(self.macs_before), _int(self.macs_after),
+            rows.append(("MACs/sample, layers in the table", _int(self.macs_before), _int(self.macs_after),
                          _change(self.macs_before, self.macs_after)))
         if self.accuracy_before is not None:
             rows.append(("accuracy", _pct(self.accuracy_before), _pct(self.accuracy_after),
@@ -229,6 +259,8 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
     for row in report.summary_rows():
         summary.add_row(*row)
     console.print(summary)
+    if report.setup():
+        console.print(f"setup: {report.setup()}", highlight=False, soft_wrap=True)
     if report.drift is not None:
         drift = Table(title=f"output drift on {report.samples} sample inputs ({report.inputs or 'given inputs'})",
                       title_justify="left")

@@ -42,7 +42,7 @@ def _report(**over) -> Report:
 def test_derived_numbers() -> None:
     r = _report()
     assert r.kept_fraction == 0.4
-    assert r.macs_before == 600 and r.macs_after == 300  # factored layers only
+    assert r.macs_before == 800 and r.macs_after == 500  # every layer in the table, dense ones too, both sides
     assert r.worst_weight_error == 0.125
     assert [layer.name for layer in r.factored] == ["fc1"]
     assert _report(layers=[]).macs_before is None
@@ -82,3 +82,14 @@ def test_rich_rendering_goes_to_the_injected_console() -> None:
     buf = io.StringIO()
     render_rich(_report(drift=None, accuracy_before=None, latency_ms_before=None), Console(file=buf, width=140))
     assert "relative L2" not in buf.getvalue() and "no guarantee" in buf.getvalue()
+
+
+def test_report_describes_how_it_was_made() -> None:
+    r = _report(policy={"budget": 0.5}, recipe="bert-encoder.toml", method="auto", calibrated=True,
+                calibration_batches=4, sites_kept=0.4987, versions={"factorize": "0.1.0", "torch": "2.13.0", "threads": 1})
+    line = r.setup()
+    for part in ("budget=0.5", "recipe bert-encoder.toml", "kept 0.499", "method auto", "calibrated on 4 batches",
+                 "measured on 40 samples", "torch 2.13.0", "threads 1"):
+        assert part in line
+    assert line in r.to_markdown() and r.to_json()["setup"] == line
+    assert str(r) == r.to_markdown()  # print(report) is readable, not a dataclass dump
