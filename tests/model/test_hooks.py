@@ -40,10 +40,10 @@ def test_forward_hooks_see_outputs_and_are_removed():
 
 def test_hooks_removed_after_an_exception():
     model = _model()
-    with pytest.raises(RuntimeError, match="inside the block"):
-        with forward_hooks(model, {"0": lambda *a: None}), forward_pre_hooks(model, {"2": lambda *a: None}):
-            assert model[0]._forward_hooks and model[2]._forward_pre_hooks
-            raise RuntimeError("inside the block")
+    with (pytest.raises(RuntimeError, match="inside the block"),
+          forward_hooks(model, {"0": lambda *a: None}), forward_pre_hooks(model, {"2": lambda *a: None})):
+        assert model[0]._forward_hooks and model[2]._forward_pre_hooks
+        raise RuntimeError("inside the block")
     assert _no_hooks(model)
 
 
@@ -53,9 +53,8 @@ def test_hook_raising_inside_forward_is_removed():
     def boom(module, args):
         raise ValueError("stop here")
 
-    with pytest.raises(ValueError, match="stop here"):
-        with forward_pre_hooks(model, {"2": boom}):
-            model(torch.randn(2, 4))
+    with pytest.raises(ValueError, match="stop here"), forward_pre_hooks(model, {"2": boom}):
+        model(torch.randn(2, 4))
     assert _no_hooks(model)
     model(torch.randn(2, 4))  # runs again without the hook
 
@@ -77,9 +76,8 @@ def test_pre_hooks_with_kwargs_and_the_model_itself():
 def test_unknown_name_registers_nothing_and_keeps_foreign_hooks():
     model = _model()
     theirs = model[0].register_forward_hook(lambda *a: None)  # a hook the user put there: not ours to remove
-    with pytest.raises(AttributeError):
-        with forward_hooks(model, {"2": lambda *a: None, "nope": lambda *a: None}):
-            pass
+    with pytest.raises(AttributeError), forward_hooks(model, {"2": lambda *a: None, "nope": lambda *a: None}):
+        pass
     assert not model[2]._forward_hooks
     with forward_hooks(model, {"0": lambda *a: None}):
         assert len(model[0]._forward_hooks) == 2
