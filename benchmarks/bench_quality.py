@@ -141,6 +141,7 @@ def methods(model, cal, budgets, *, include, output_fn, probe_batches, sequentia
 
 def prediction_check(model, cal, include, budget):
     """Max relative gap between predicted and measured layer output error on the calibration data."""
+    from factorize.model.hooks import forward_hooks
     from factorize.model.sites import get_module
 
     calib = Calibration(model, cal, include=include)
@@ -148,7 +149,7 @@ def prediction_check(model, cal, include, budget):
     compressed = calib.build(plan)
     err2: dict[str, float] = {}
     state = {}
-    hooks = []
+    hooks = {}
     for name, e in plan["sites"].items():
         if e["action"] != "factor":
             continue
@@ -162,13 +163,11 @@ def prediction_check(model, cal, include, budget):
                     d = d[mask.bool()]
                 err2[name] = err2.get(name, 0.0) + float((d ** 2).sum())
 
-        hooks.append(get_module(model, name).register_forward_hook(hook))
-    with torch.no_grad():
+        hooks[name] = hook
+    with forward_hooks(model, hooks), torch.no_grad():
         for b in cal:
             state["mask"] = token_mask(b)
             model(**b) if isinstance(b, dict) else model(b)
-    for h in hooks:
-        h.remove()
     gaps = {n: abs(calib.spectra[n].error(plan["sites"][n]["rank"]) - v ** 0.5) / v ** 0.5 for n, v in err2.items()}
     worst = max(gaps, key=gaps.get)
     return {"layers": len(gaps), "max_gap": gaps[worst], "worst_layer": worst,

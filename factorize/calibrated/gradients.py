@@ -18,7 +18,8 @@ from factorize.calibrated.stats import (
 )
 from factorize.errors import FactorizeError
 from factorize.model.feed import feed, token_mask
-from factorize.model.sites import Site, get_module
+from factorize.model.hooks import forward_hooks
+from factorize.model.sites import Site
 
 
 def _output_rows(kind: str, g: torch.Tensor, mask: torch.Tensor | None) -> torch.Tensor:
@@ -103,11 +104,10 @@ def collect_output_grams(
         return hook
 
     gen = torch.Generator().manual_seed(seed)
-    handles = [get_module(model, s.name).register_forward_hook(hook_for(s.name)) for s in site_list]
     bar = tqdm(total=len(batch_list), desc="output weights", unit="batch", disable=not progress, leave=False)
     kinds = {s.name: s.kind for s in site_list}
     try:
-        with _grad_on(model):
+        with forward_hooks(model, {s.name: hook_for(s.name) for s in site_list}), _grad_on(model):
             for i, batch in enumerate(batch_list):
                 captured.clear()
                 mask = token_mask(batch)
@@ -146,8 +146,6 @@ def collect_output_grams(
                                 rows[n] += r.shape[0]
                 bar.update()
     finally:
-        for h in handles:
-            h.remove()
         bar.close()
         captured.clear()
     for n in grams:

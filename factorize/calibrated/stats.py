@@ -46,7 +46,8 @@ from tqdm.auto import tqdm
 
 from factorize.errors import FactorizeError
 from factorize.model.feed import feed, token_mask
-from factorize.model.sites import Site, get_module, walk
+from factorize.model.hooks import forward_pre_hooks
+from factorize.model.sites import Site, walk
 from factorize.storage import human_bytes
 
 ROW_CHUNK = 16384  # rows converted to float64 at a time, so a big conv batch never doubles in memory at once
@@ -296,7 +297,6 @@ def forward_order(model: nn.Module, sites: Sequence[Site], batch: Any) -> tuple[
     """
     order: list[str] = []
     calls = {s.name: 0 for s in sites}
-    handles = []
 
     def hook_for(name):
         def hook(module, args):
@@ -306,14 +306,8 @@ def forward_order(model: nn.Module, sites: Sequence[Site], batch: Any) -> tuple[
 
         return hook
 
-    for s in sites:
-        handles.append(get_module(model, s.name).register_forward_pre_hook(hook_for(s.name)))
-    try:
-        with _eval_no_grad(model):
-            _run(model, [batch], _State(), _NoBar())
-    finally:
-        for h in handles:
-            h.remove()
+    with forward_pre_hooks(model, {s.name: hook_for(s.name) for s in sites}), _eval_no_grad(model):
+        _run(model, [batch], _State(), _NoBar())
     order += [s.name for s in sites if calls[s.name] == 0]
     return order, calls
 
@@ -429,16 +423,9 @@ def collect_stats(
 
 def _collect(model, sites, batches, stats, bar, *, stop_early: bool) -> None:
     state = _State(stop_after={s.name for s in sites} if stop_early and len(sites) == 1 else set())
-    handles = [
-        get_module(model, s.name).register_forward_pre_hook(_make_hook(s, stats[s.name], state), with_kwargs=True)
-        for s in sites
-    ]
-    try:
-        with _eval_no_grad(model):
-            _run(model, batches, state, bar)
-    finally:
-        for h in handles:
-            h.remove()
+    hooks = {s.name: _make_hook(s, stats[s.name], state) for s in sites}
+    with forward_pre_hooks(model, hooks, with_kwargs=True), _eval_no_grad(model):
+        _run(model, batches, state, bar)
 
 
 def _warn_few_samples(stats: Iterable[InputStats]) -> None:
@@ -478,13 +465,13 @@ def collect_pair_stats(
     state = _State(stop_after={site.name} if stop_early else set())
     ref_rows: list[torch.Tensor] = []
     cur_rows: list[torch.Tensor] = []
-    h_ref = get_module(reference, site.name).register_forward_pre_hook(
-        _make_hook(site, ref_stats, state, sink=ref_rows.append), with_kwargs=True)
-    h_cur = get_module(current, site.name).register_forward_pre_hook(
-        _make_hook(site, stats, state, sink=cur_rows.append), with_kwargs=True)
+    ref_hook = {site.name: _make_hook(site, ref_stats, state, sink=ref_rows.append)}
+    cur_hook = {site.name: _make_hook(site, stats, state, sink=cur_rows.append)}
     bar = tqdm(total=len(batches), desc=f"calibrate {site.name}", unit="batch", disable=not progress, leave=False)
     try:
-        with _eval_no_grad(reference), _eval_no_grad(current):
+        with (forward_pre_hooks(reference, ref_hook, with_kwargs=True),
+              forward_pre_hooks(current, cur_hook, with_kwargs=True),
+              _eval_no_grad(reference), _eval_no_grad(current)):
             for i, batch in enumerate(batches):
                 ref_rows.clear(), cur_rows.clear()
                 _run(reference, [batch], state, _NoBar(), start=i)
@@ -493,7 +480,6 @@ def collect_pair_stats(
                                  torch.cat(cur_rows) if cur_rows else None)
                 bar.update()
     finally:
-        h_ref.remove(), h_cur.remove()
         bar.close()
     stats.reference_moment, stats.reference_total = ref_stats.second_moment, ref_stats.total
     stats.batches = len(batches)

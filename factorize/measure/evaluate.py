@@ -35,6 +35,7 @@ from factorize.measure.report import LayerReport, Report
 from factorize.measure.timing import median_latency
 from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size, primary_output, run_model, token_mask
+from factorize.model.hooks import forward_hooks
 from factorize.model.sites import get_module, matrix_of
 from factorize.rewrite.layers import Factored, factored_layers
 
@@ -178,7 +179,6 @@ def output_positions(model: nn.Module, names: Iterable[str], batch: Any) -> dict
     """
     n_samples = max(batch_size(batch), 1)
     counts: dict[str, int] = {}
-    handles = []
 
     def hook_for(name: str):
         def hook(module, args, output):
@@ -188,14 +188,8 @@ def output_positions(model: nn.Module, names: Iterable[str], batch: Any) -> dict
 
         return hook
 
-    for name in names:
-        module = get_module(model, name)
-        handles.append(module.register_forward_hook(hook_for(name)))
-    try:
+    with forward_hooks(model, {name: hook_for(name) for name in names}):
         run_model(model, [batch])
-    finally:
-        for h in handles:
-            h.remove()
     return {name: counts.get(name, 0) for name in names}
 
 

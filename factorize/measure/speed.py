@@ -16,6 +16,7 @@ from torch import nn
 
 from factorize.measure.timing import paired_ms
 from factorize.model.feed import run_model
+from factorize.model.hooks import forward_hooks
 from factorize.model.sites import get_module
 from factorize.rewrite.layers import Factored
 
@@ -41,16 +42,13 @@ class LayerTiming:
 def record_input_shapes(model: nn.Module, names: Sequence[str], batch) -> dict[str, tuple[int, ...]]:
     """Shape of the input each named layer sees on one sample batch (forward hooks, nothing kept but shapes)."""
     shapes: dict[str, tuple[int, ...]] = {}
-    hooks = []
+    hooks = {}
     for name in names:
         def hook(_m, args, _out, name=name):
             shapes.setdefault(name, tuple(args[0].shape))
-        hooks.append(get_module(model, name).register_forward_hook(hook))
-    try:
+        hooks[name] = hook
+    with forward_hooks(model, hooks):
         run_model(model, [batch])
-    finally:
-        for h in hooks:
-            h.remove()
     return shapes
 
 

@@ -3,23 +3,10 @@
 After factorization a short fine-tune wins back most of what the truncation cost. ``heal`` trains the
 compressed model (the *student*) to match the original (the *teacher*) on sample inputs; no labels are needed.
 
-Losses (``loss=``), computed on the primary output (a tensor, ``logits``, ``last_hidden_state``, or the first
-tensor; see :func:`factorize.model.feed.primary_output`):
-
-* ``"kl"``: knowledge distillation with a temperature T (Hinton, Vinyals & Dean, "Distilling the knowledge in a
-  neural network", 2015): ``T^2 * KL(softmax(t / T) || softmax(s / T))`` summed over the last dimension and
-  averaged over rows; the ``T^2`` factor keeps gradient magnitudes comparable across temperatures (same paper).
-* ``"mse"``: mean squared error between the outputs (regression heads).
-* ``"cosine"``: ``1 - cos(s, t)`` per output vector along the last dimension (embeddings, hidden states).
-* ``"auto"`` picks from the teacher's output on the first batch:
-  ``logits`` field -> ``kl``; ``last_hidden_state`` field -> ``cosine``; a plain 2-D tensor (batch, k) with
-  k > 1 -> ``kl`` (read as class logits, the same shape rule as :func:`factorize.measure.drift.output_drift`);
-  a tensor of 3 or more dimensions -> ``cosine`` (per-position features); anything else (one value per
-  sample) -> ``mse``. A model that returns a (batch, d) embedding or several regression targets should pass
-  ``loss="cosine"`` or ``loss="mse"`` explicitly.
-
-For (batch, positions, features) outputs fed from a dict batch holding an ``attention_mask`` of shape
-(batch, positions), padded positions are left out of the loss.
+The losses (``loss=``: ``"kl"``, ``"mse"``, ``"cosine"``, or ``"auto"`` to pick one from the teacher's output)
+and the masking of padded positions are described in :mod:`factorize.training.losses`; the learning-rate
+schedules in :mod:`factorize.training.schedule`; the checking of the arguments and the preparation of both
+models in :mod:`factorize.training.setup`. This module holds ``heal`` and the training loop.
 
 ``match_layers`` adds, for every factored layer, the relative squared error between its output and the output of
 the teacher's dense layer of the same name, ``||y_s - y_t||^2 / ||y_t||^2`` (matching intermediate
@@ -42,25 +29,22 @@ import math
 import time
 import warnings
 from collections.abc import Iterable, Iterator, Mapping, Sequence
-from contextlib import contextmanager
-from dataclasses import asdict, dataclass, field
+from contextlib import ExitStack
+from dataclasses import asdict, dataclass
 from typing import Any
 
 import torch
-import torch.nn.functional as F
 from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.errors import FactorizeError
 from factorize.measure.drift import output_drift
 from factorize.model.feed import feed, primary_output
+from factorize.model.hooks import Hook, forward_hooks
 from factorize.rewrite.layers import factored_layers
-
-LOSSES = ("auto", "kl", "mse", "cosine")
-SCHEDULES = ("constant", "cosine")
-WARMUP_FRACTION = 0.05  # schedule "cosine": share of the steps spent warming the learning rate up linearly
-TRAIN = ("factored", "all")
-METRICS = {"relative_l2": False, "cosine_mean": True, "kl": False, "top1_agreement": True}  # name -> higher is better
+from factorize.training.losses import distill_loss, layer_match_loss, resolve_loss, row_mask
+from factorize.training.schedule import lr_factor
+from factorize.training.setup import METRICS, HealOptions, session, validate
 
 
 @dataclass
@@ -116,25 +100,6 @@ class HealResult:
         return d
 
 
-@dataclass
-class _Options:
-    steps: int
-    loss: str
-    temperature: float
-    lr: float
-    schedule: str
-    eval_every: int
-    patience: int | None
-    train: str
-    match_weight: float
-    metric: str
-    seed: int
-    max_grad_norm: float | None
-    shuffle: bool
-    progress: bool
-    device: torch.device = field(default_factory=lambda: torch.device("cpu"))
-
-
 # ---------------------------------------------------------------------------------------------------------------
 # public entry point
 
@@ -174,7 +139,8 @@ def heal(
         steps: number of optimizer steps (>= 1).
         heldout: batches for the held-out drift check; never trained on. Strongly recommended: without it there is
             no early stopping and no best-state guarantee (the final state is returned).
-        loss: ``"auto"``, ``"kl"``, ``"mse"`` or ``"cosine"`` (see the module docstring for the ``auto`` rule).
+        loss: ``"auto"``, ``"kl"``, ``"mse"`` or ``"cosine"`` (see :mod:`factorize.training.losses` for the
+            ``auto`` rule).
         temperature: T for ``"kl"`` (Hinton et al. 2015).
         lr: Adam learning rate (the peak rate under a schedule).
         schedule: ``"constant"`` keeps ``lr``; ``"cosine"`` warms it up linearly over the first 5% of the steps
@@ -205,203 +171,13 @@ def heal(
         FactorizeError: bad arguments, outputs of different shapes, a batch that does not run through a model,
             outputs that are not finite before training.
     """
-    opts = _validate(compressed, teacher, data, steps, heldout, loss, temperature, lr, schedule, eval_every, patience,
-                     train, match_layers, metric, seed, device, max_grad_norm, shuffle, progress)
-    with _session(compressed, teacher, opts) as trainable:
+    options = HealOptions(steps=steps, loss=loss, temperature=temperature, lr=lr, schedule=schedule,
+                          eval_every=eval_every, patience=patience, train=train, match_layers=match_layers,
+                          metric=metric, seed=seed, device=device, max_grad_norm=max_grad_norm, shuffle=shuffle,
+                          progress=progress)
+    opts = validate(compressed, teacher, data, heldout, options)
+    with session(compressed, teacher, opts) as trainable:
         return _Healer(compressed, teacher, data, heldout, trainable, opts).run()
-
-
-# ---------------------------------------------------------------------------------------------------------------
-# validation and set-up
-
-
-def _is_int(v: Any) -> bool:
-    return isinstance(v, int) and not isinstance(v, bool)
-
-
-def _is_number(v: Any) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
-
-
-def _validate(student, teacher, data, steps, heldout, loss, temperature, lr, schedule, eval_every, patience, train,
-              match_layers, metric, seed, device, max_grad_norm, shuffle, progress) -> _Options:
-    for what, m in (("compressed", student), ("teacher", teacher)):
-        if not isinstance(m, nn.Module):
-            raise FactorizeError(f"{what} must be a torch.nn.Module, got {type(m).__name__}",
-                                 fix="pass the compressed model and the original model")
-    if student is teacher:
-        raise FactorizeError("the teacher is the compressed model itself",
-                             fix="pass the original model as teacher (compress() returns a copy unless inplace=True)")
-    problems = []
-    if not _is_int(steps) or steps <= 0:
-        problems.append(f"steps must be an integer >= 1, got {steps!r}")
-    if loss not in LOSSES:
-        problems.append(f"loss must be one of {', '.join(LOSSES)}, got {loss!r}")
-    if train not in TRAIN:
-        problems.append(f"train must be one of {', '.join(TRAIN)}, got {train!r}")
-    if metric not in METRICS:
-        problems.append(f"metric must be one of {', '.join(METRICS)}, got {metric!r}")
-    if not _is_number(temperature) or temperature <= 0:
-        problems.append(f"temperature must be a number > 0, got {temperature!r}")
-    if not _is_number(lr) or lr <= 0:
-        problems.append(f"lr must be a number > 0, got {lr!r}")
-    if schedule not in SCHEDULES:
-        problems.append(f"schedule must be one of {', '.join(SCHEDULES)}, got {schedule!r}")
-    if eval_every is not None and (not _is_int(eval_every) or eval_every < 1):
-        problems.append(f"eval_every must be an integer >= 1 or None, got {eval_every!r}")
-    if patience is not None and (not _is_int(patience) or patience < 1):
-        problems.append(f"patience must be an integer >= 1 or None, got {patience!r}")
-    if max_grad_norm is not None and (not _is_number(max_grad_norm) or max_grad_norm <= 0):
-        problems.append(f"max_grad_norm must be a number > 0 or None, got {max_grad_norm!r}")
-    if not _is_int(seed):
-        problems.append(f"seed must be an integer, got {seed!r}")
-    weight = float(match_layers) if isinstance(match_layers, (bool, int, float)) else -1.0
-    if not math.isfinite(weight) or weight < 0:
-        problems.append(f"match_layers must be True/False or a weight >= 0, got {match_layers!r}")
-    for what, batches in (("data", data), ("heldout", heldout)):
-        if batches is None and what == "heldout":
-            continue
-        if isinstance(batches, (torch.Tensor, Mapping)) or not isinstance(batches, Iterable):
-            problems.append(f"{what} must be an iterable of batches, got a {type(batches).__name__}")
-    if problems:
-        raise FactorizeError("invalid healing arguments", problems,
-                             fix="data/heldout take a list of batches, e.g. [x] or list(x.split(32)); see help(heal)")
-    if train == "factored" and not factored_layers(student):
-        raise FactorizeError("the compressed model has no factored layer to train",
-                             fix="compress the model first (factorize.compress), or pass train='all'")
-    return _Options(steps, loss, float(temperature), float(lr), schedule, eval_every or max(1, steps // 10), patience,
-                    train, weight, metric, seed, max_grad_norm, shuffle, progress, _resolve_device(device, student))
-
-
-def _model_device(model: nn.Module) -> torch.device:
-    for t in model.parameters():
-        return t.device
-    for t in model.buffers():
-        return t.device
-    return torch.device("cpu")
-
-
-def _resolve_device(device: str | torch.device | None, student: nn.Module) -> torch.device:
-    if device is None:
-        return _model_device(student)
-    try:
-        dev = torch.device(device)
-    except (RuntimeError, TypeError) as e:
-        raise FactorizeError(f"unknown device {device!r}: {e}", fix="use None, 'cpu' or 'cuda'") from None
-    if dev.type == "cuda" and not torch.cuda.is_available():
-        raise FactorizeError(
-            "device='cuda' was asked for, but torch.cuda.is_available() is False on this machine",
-            fix="use device='cpu' (or None), or install a CUDA build of torch on a machine with a GPU",
-        )
-    if dev.type not in ("cpu", "cuda"):
-        raise FactorizeError(f"device {device!r} is not supported", fix="use None, 'cpu' or 'cuda'")
-    return dev
-
-
-def _trainable(student: nn.Module, teacher: nn.Module, train: str) -> list[tuple[str, nn.Parameter]]:
-    if train == "factored":
-        chosen = {}
-        for name, layer in factored_layers(student).items():
-            for pname, p in layer.named_parameters():
-                chosen.setdefault(id(p), (f"{name}.{pname}", p))
-        params = list(chosen.values())
-    else:
-        params = [(n, p) for n, p in student.named_parameters() if p.is_floating_point()]
-    if not params:
-        raise FactorizeError("no floating-point parameter to train", fix="check the model, or pass train='factored'")
-    teacher_ids = {id(p) for p in teacher.parameters()}
-    shared = [n for n, p in params if id(p) in teacher_ids]
-    if shared:
-        raise FactorizeError(
-            "the teacher and the compressed model share parameters, so healing would change the teacher",
-            shared[:10], fix="pass a separate copy of the original model as teacher (copy.deepcopy before compressing)",
-        )
-    return params
-
-
-@contextmanager
-def _session(student: nn.Module, teacher: nn.Module, opts: _Options) -> Iterator[list[tuple[str, nn.Parameter]]]:
-    """Freeze, switch to eval mode and move to the device for healing; undo all of it afterwards."""
-    trainable = _trainable(student, teacher, opts.train)
-    flags = [(p, p.requires_grad) for p in student.parameters()]
-    modes = [(m, m.training) for model in (student, teacher) for m in model.modules()]
-    homes = [(model, _model_device(model)) for model in (student, teacher)]
-    try:
-        for model in (student, teacher):
-            if _model_device(model) != opts.device:
-                model.to(opts.device)  # moves parameter data in place: parameter identity is kept
-            model.eval()
-        for p, _ in flags:
-            p.requires_grad_(False)
-        for _, p in trainable:
-            p.requires_grad_(True)
-        yield trainable
-    finally:
-        for p, flag in flags:
-            p.requires_grad_(flag)
-        for m, mode in modes:
-            m.training = mode
-        for model, home in homes:
-            if _model_device(model) != home:
-                model.to(home)
-
-
-# ---------------------------------------------------------------------------------------------------------------
-# losses
-
-
-def _resolve_loss(loss: str, output: Any) -> str:
-    """The ``auto`` rule (module docstring)."""
-    if loss != "auto":
-        return loss
-    field_of = (lambda k: output.get(k)) if isinstance(output, Mapping) else (lambda k: getattr(output, k, None))
-    if not isinstance(output, torch.Tensor):
-        if isinstance(field_of("logits"), torch.Tensor):
-            return "kl"
-        if isinstance(field_of("last_hidden_state"), torch.Tensor):
-            return "cosine"
-    t = primary_output(output)
-    if t.dim() == 2 and t.shape[1] > 1:
-        return "kl"
-    if t.dim() >= 3:
-        return "cosine"
-    return "mse"
-
-
-def _row_mask(batch: Any, out: torch.Tensor) -> torch.Tensor | None:
-    """(rows,) weights leaving padded positions out, for (B, T, d) outputs fed from a dict with attention_mask."""
-    mask = batch.get("attention_mask") if isinstance(batch, Mapping) else None
-    if not isinstance(mask, torch.Tensor) or out.dim() != 3 or tuple(mask.shape) != tuple(out.shape[:2]):
-        return None
-    return mask.reshape(-1).to(out.dtype)  # (B*T,)
-
-
-def _mean_rows(per_row: torch.Tensor, mask: torch.Tensor | None) -> torch.Tensor:
-    if mask is None:
-        return per_row.mean()
-    return (per_row * mask).sum() / mask.sum().clamp_min(1.0)
-
-
-def distill_loss(kind: str, student: torch.Tensor, teacher: torch.Tensor, *, temperature: float = 2.0,
-                 mask: torch.Tensor | None = None) -> torch.Tensor:
-    """The distillation loss between two output tensors of the same shape (rows: vectors along the last dim).
-
-    ``mask`` (rows,) weighs the rows (0 leaves a padded position out).
-    """
-    d = student.shape[-1]
-    s, t = student.reshape(-1, d).float(), teacher.reshape(-1, d).float()  # (rows, d)
-    if kind == "kl":
-        # Hinton, Vinyals & Dean 2015: T^2 * KL(softmax(t/T) || softmax(s/T)), per row, summed over classes
-        log_p = F.log_softmax(t / temperature, dim=-1)  # (rows, d)
-        log_q = F.log_softmax(s / temperature, dim=-1)
-        per_row = (log_p.exp() * (log_p - log_q)).sum(-1) * temperature**2  # (rows,)
-    elif kind == "cosine":
-        per_row = 1.0 - F.cosine_similarity(s, t, dim=-1, eps=1e-8)  # (rows,)
-    elif kind == "mse":
-        per_row = ((s - t) ** 2).mean(-1)  # (rows,)
-    else:
-        raise ValueError(f"unknown loss {kind!r}")
-    return _mean_rows(per_row, mask)
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -419,56 +195,32 @@ def _to_device(batch: Any, device: torch.device) -> Any:
     return batch
 
 
-class _LayerTaps:
-    """Forward hooks that record the outputs of named layers in a model during one forward pass."""
-
-    def __init__(self, model: nn.Module, names: Sequence[str]) -> None:
-        self.outputs: dict[str, torch.Tensor] = {}
-        self._handles = []
-        for name in names:
-            module = model.get_submodule(name)
-            self._handles.append(module.register_forward_hook(self._hook(name)))
-
-    def _hook(self, name: str):
-        def record(_module, _inputs, output):
-            self.outputs[name] = output
-        return record
-
-    def remove(self) -> None:
-        for h in self._handles:
-            h.remove()
-
-
-def _lr_factor(schedule: str, steps: int):
-    """The multiplier of ``lr`` before optimizer step ``i + 1`` (``i`` = steps taken), for ``LambdaLR``."""
-    if schedule == "constant":
-        return lambda i: 1.0
-    warm = max(1, round(WARMUP_FRACTION * steps))
-
-    def factor(i: int) -> float:
-        if i < warm:
-            return (i + 1) / warm
-        return 0.5 * (1.0 + math.cos(math.pi * min(1.0, (i - warm) / max(1, steps - warm))))
-    return factor
+def _recorders(outputs: dict[str, Any], names: Sequence[str]) -> dict[str, Hook]:
+    """Forward hooks that store the output of each named layer in ``outputs`` (match_layers)."""
+    def record(name: str) -> Hook:
+        def hook(_module, _inputs, output):
+            outputs[name] = output
+        return hook
+    return {name: record(name) for name in names}
 
 
 class _Healer:
     """State of one healing run (kept out of ``heal`` to keep each step short)."""
 
-    def __init__(self, student, teacher, data, heldout, trainable, opts: _Options) -> None:
+    def __init__(self, student, teacher, data, heldout, trainable, opts: HealOptions) -> None:
         self.student, self.teacher, self.data, self.opts = student, teacher, data, opts
         self.params = [p for _, p in trainable]
         self.generator = torch.Generator().manual_seed(opts.seed)
         self.optimizer = torch.optim.Adam(self.params, lr=opts.lr)
-        self.scheduler = torch.optim.lr_scheduler.LambdaLR(self.optimizer, _lr_factor(opts.schedule, opts.steps))
+        self.scheduler = torch.optim.lr_scheduler.LambdaLR(self.optimizer, lr_factor(opts.schedule, opts.steps))
         self.heldout = None if heldout is None else list(heldout)
         self.kind: str | None = None if opts.loss == "auto" else opts.loss
         self.losses: list[float] = []
         self.checks: list[HealCheck] = []
         self.best_step, self.best_score, self.best_state = 0, math.inf, self._snapshot()
         self.teacher_cache: dict[int, torch.Tensor] = {}
-        self.layer_names = sorted(factored_layers(student)) if opts.match_weight > 0 else []
-        self.taps: tuple[_LayerTaps, _LayerTaps] | None = None
+        self.layer_names = sorted(factored_layers(student)) if opts.match_layers > 0 else []
+        self.taps: tuple[dict[str, Any], dict[str, Any]] | None = None  # layer outputs, student's and teacher's
         self.bar = None
 
     # ---- run ------------------------------------------------------------------------------------------------
@@ -476,17 +228,17 @@ class _Healer:
     def run(self) -> HealResult:
         start = time.perf_counter()
         opts = self.opts
-        if self.layer_names:
-            self._check_layer_names()
-            self.taps = (_LayerTaps(self.student, self.layer_names), _LayerTaps(self.teacher, self.layer_names))
-        self.bar = tqdm(total=opts.steps, desc="heal", unit="step", disable=not opts.progress, dynamic_ncols=True)
-        try:
-            reason, stopped, non_finite = self._loop()
-        finally:
-            self.bar.close()
-            if self.taps:
-                for tap in self.taps:
-                    tap.remove()
+        with ExitStack() as hooks:
+            if self.layer_names:
+                self._check_layer_names()
+                self.taps = ({}, {})
+                for model, outputs in zip((self.student, self.teacher), self.taps):
+                    hooks.enter_context(forward_hooks(model, _recorders(outputs, self.layer_names)))
+            self.bar = tqdm(total=opts.steps, desc="heal", unit="step", disable=not opts.progress, dynamic_ncols=True)
+            try:
+                reason, stopped, non_finite = self._loop()
+            finally:
+                self.bar.close()
         self._restore(self.best_state)
         return HealResult(
             model=self.student, losses=self.losses, checks=self.checks, best_step=self.best_step,
@@ -610,7 +362,7 @@ class _Healer:
         batch = _to_device(batch, self.opts.device)
         t_out, t = self._teacher_output(index, batch)
         if self.kind is None:
-            self.kind = _resolve_loss(self.opts.loss, t_out)
+            self.kind = resolve_loss(self.opts.loss, t_out)
         with torch.enable_grad():
             s = primary_output(self._run(self.student, batch, index, "data", "the compressed model"))
             if s.shape != t.shape:
@@ -619,9 +371,9 @@ class _Healer:
                     f"teacher {tuple(t.shape)}, compressed {tuple(s.shape)}",
                     fix="heal a model against the original it was compressed from, on the same inputs",
                 )
-            loss = distill_loss(self.kind, s, t, temperature=self.opts.temperature, mask=_row_mask(batch, t))
+            loss = distill_loss(self.kind, s, t, temperature=self.opts.temperature, mask=row_mask(batch, t))
             if self.layer_names:
-                loss = loss + self.opts.match_weight * self._layer_loss()
+                loss = loss + self.opts.match_layers * self._layer_loss()
             value = float(loss.detach())
             if not math.isfinite(value):
                 if step == 1:
@@ -652,20 +404,10 @@ class _Healer:
 
     def _layer_loss(self) -> torch.Tensor:
         s_taps, t_taps = self.taps
-        terms = []
-        for name in self.layer_names:
-            ys, yt = s_taps.outputs.get(name), t_taps.outputs.get(name)
-            if not isinstance(ys, torch.Tensor) or not isinstance(yt, torch.Tensor):
-                continue  # the layer did not run on this batch
-            if ys.shape != yt.shape:
-                raise FactorizeError(
-                    f"match_layers: layer {name} gives {tuple(ys.shape)} in the compressed model but "
-                    f"{tuple(yt.shape)} in the teacher", fix="pass the original model, or match_layers=False")
-            yt = yt.detach().float()
-            terms.append(((ys.float() - yt) ** 2).sum() / (yt**2).sum().clamp_min(1e-12))  # relative squared error
-        s_taps.outputs.clear()
-        t_taps.outputs.clear()
-        return torch.stack(terms).mean() if terms else torch.zeros((), device=self.opts.device)
+        loss = layer_match_loss(s_taps, t_taps, self.layer_names, self.opts.device)
+        s_taps.clear()
+        t_taps.clear()
+        return loss
 
     # ---- held-out checks and best state ---------------------------------------------------------------------
 
@@ -677,8 +419,8 @@ class _Healer:
                 outputs.append(primary_output(self._run(self.student, b, i, "heldout", "the compressed model"))
                                .detach().cpu())
         if self.taps:
-            for tap in self.taps:
-                tap.outputs.clear()
+            for layer_outputs in self.taps:
+                layer_outputs.clear()
         metrics = output_drift(self.heldout_reference, outputs)
         if self.opts.metric not in metrics:
             raise FactorizeError(

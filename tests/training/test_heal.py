@@ -1,4 +1,4 @@
-"""Tests for factorize/heal.py: distillation healing of a compressed model."""
+"""Tests for factorize/training/heal.py: distillation healing of a compressed model."""
 
 from __future__ import annotations
 
@@ -7,14 +7,13 @@ import warnings
 
 import pytest
 import torch
-import torch.nn.functional as F
 from torch import nn
 
 import factorize
 from factorize.default import load_default, load_digits_split
 from factorize.errors import FactorizeError
 from factorize.measure.drift import output_drift
-from factorize.training.heal import HealResult, _lr_factor, _resolve_loss, distill_loss, heal
+from factorize.training.heal import HealResult, heal
 from tests.conftest import MLP, tiny_bert
 
 
@@ -145,21 +144,6 @@ def test_same_seed_gives_identical_weights_and_another_seed_does_not() -> None:
     assert any(not torch.equal(runs[0][k], runs[2][k]) for k in runs[0])  # the seed sets the batch order
 
 
-def test_cosine_schedule_warms_up_then_follows_a_half_cosine_to_zero() -> None:
-    # Linear warm-up (Goyal et al. 2017) then lr * (1 + cos(pi * progress)) / 2 (Loshchilov & Hutter, SGDR, 2017);
-    # both formulas cited from memory.
-    steps = 200
-    f = _lr_factor("cosine", steps)
-    warm = 10  # 5% of 200
-    assert [f(i) for i in range(warm)] == pytest.approx([(i + 1) / warm for i in range(warm)])
-    assert f(warm) == pytest.approx(1.0)
-    assert f(warm + (steps - warm) // 2) == pytest.approx(0.5, abs=1e-9)
-    assert 0.0 < f(steps - 1) < 1e-3
-    decay = [f(i) for i in range(warm, steps)]
-    assert all(a >= b for a, b in zip(decay, decay[1:]))
-    assert _lr_factor("constant", steps)(123) == 1.0
-
-
 def test_cosine_schedule_heals_and_keeps_the_best_state() -> None:
     teacher, student, data, heldout = _compressed_mlp()
     before = _drift(teacher, student, heldout)
@@ -168,43 +152,6 @@ def test_cosine_schedule_heals_and_keeps_the_best_state() -> None:
     assert result.schedule == "cosine"
     assert _drift(teacher, student, heldout) <= before
     assert result.best_drift < result.initial_drift  # the MLP at rank 4 has room to heal
-
-
-# --- losses ------------------------------------------------------------------------------------------------
-
-
-def test_kl_loss_matches_torch_kl_div_with_temperature_squared() -> None:
-    # Hinton, Vinyals & Dean 2015: T^2 * KL(p_T || q_T); reference: torch.nn.functional.kl_div (batchmean).
-    gen = torch.Generator().manual_seed(0)
-    s, t = torch.randn(8, 5, generator=gen), torch.randn(8, 5, generator=gen)
-    T = 3.0
-    ref = F.kl_div(F.log_softmax(s / T, -1), F.log_softmax(t / T, -1), log_target=True, reduction="batchmean")
-    assert torch.allclose(distill_loss("kl", s, t, temperature=T), ref * T * T, atol=1e-6)
-    assert float(distill_loss("kl", t, t)) == pytest.approx(0.0, abs=1e-7)
-
-
-def test_cosine_and_mse_losses_match_torch_references() -> None:
-    gen = torch.Generator().manual_seed(0)
-    s, t = torch.randn(2, 7, 4, generator=gen), torch.randn(2, 7, 4, generator=gen)
-    cos = F.cosine_similarity(s, t, dim=-1)  # (2, 7)
-    assert torch.allclose(distill_loss("cosine", s, t), (1 - cos).mean(), atol=1e-6)
-    assert torch.allclose(distill_loss("mse", s, t), F.mse_loss(s, t), atol=1e-6)
-    mask = torch.ones(2, 7)
-    mask[1, 4:] = 0  # padded positions leave the loss
-    expected = (1 - cos)[mask.bool()].mean()
-    assert torch.allclose(distill_loss("cosine", s, t, mask=mask.reshape(-1)), expected, atol=1e-6)
-
-
-def test_auto_loss_rule() -> None:
-    transformers = pytest.importorskip("transformers")
-    assert _resolve_loss("auto", torch.zeros(4, 10)) == "kl"  # (batch, classes): logits
-    assert _resolve_loss("auto", torch.zeros(4, 6, 8)) == "cosine"  # per-position features
-    assert _resolve_loss("auto", torch.zeros(4)) == "mse"
-    assert _resolve_loss("auto", torch.zeros(4, 1)) == "mse"
-    assert _resolve_loss("auto", {"logits": torch.zeros(2, 3, 5)}) == "kl"
-    hidden = transformers.modeling_outputs.BaseModelOutput(last_hidden_state=torch.zeros(2, 3, 4))
-    assert _resolve_loss("auto", hidden) == "cosine"
-    assert _resolve_loss("mse", torch.zeros(4, 10)) == "mse"
 
 
 # --- transformers model, dict batches, layer matching ------------------------------------------------------
