@@ -19,7 +19,8 @@ guarantee of behaviour on other inputs (see :data:`factorize.measure.report.CAUT
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping, Sequence
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from typing import Any
 
 import torch
@@ -63,6 +64,7 @@ def evaluate(
     notes: Iterable[str] = (),
     progress: bool = False,
     memo: dict | None = None,
+    clock: Callable[[], float] = time.perf_counter,
 ) -> Report:
     """Measure what compression saved and what it cost, on sample inputs.
 
@@ -78,6 +80,7 @@ def evaluate(
         progress: progress bars on stderr.
         memo: a dict shared by calls that evaluate several compressed versions of the same original on the same
             batches (a sweep): the original's outputs and the layers' output positions are computed once.
+        clock: the latency clock in seconds (default :func:`time.perf_counter`; tests pass a fake one).
 
     Returns:
         A :class:`factorize.measure.report.Report`.
@@ -110,7 +113,7 @@ def evaluate(
         report.accuracy_after = accuracy(cand, labels)
     if latency_repeats > 0:
         report.latency_ms_before, report.latency_ms_after = median_latency(
-            original, compressed, batches[0], repeats=latency_repeats
+            original, compressed, batches[0], repeats=latency_repeats, clock=clock
         )
         report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
     return report
