@@ -46,7 +46,7 @@ def test_tied_embedding_and_head(tied_lm):
 
 
 def test_transposed_projection_rule():
-    transformers = pytest.importorskip("transformers")
+    pytest.importorskip("transformers")
     from transformers.pytorch_utils import Conv1D
 
     assert is_transposed_projection(Conv1D(7, 5))  # GPT-2 style: weight (in=5, out=7), y = x @ W + b
@@ -61,7 +61,13 @@ def test_transposed_projection_rule():
 
     assert not is_transposed_projection(NotAProjection())
     assert not is_transposed_projection(nn.Linear(5, 7))
-    assert transformers is not None
+    # the premise, from transformers itself (transformers.pytorch_utils.Conv1D: "works like a linear layer but
+    # the weights are transposed"): weight (in, out) and y = x @ W + b
+    conv = Conv1D(7, 5)
+    nn.init.normal_(conv.bias)
+    x = torch.randn(3, 5, generator=torch.Generator().manual_seed(0))
+    assert tuple(conv.weight.shape) == (5, 7)
+    torch.testing.assert_close(conv(x), x @ conv.weight + conv.bias)
 
 
 def test_tiny_bert_finds_every_projection():
