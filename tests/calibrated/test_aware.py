@@ -249,7 +249,7 @@ def test_sequential_mode_runs_in_forward_order():
     from factorize.default import load_default, load_digits_split
 
     model = load_default()
-    x, _ = load_digits_split("calibration")
+    x, _ = load_digits_split("calibration")  # scikit-learn's digits (Alpaydin & Kaynak, UCI 1998), 256 samples
     batches = [x[:128], x[128:]]
     sites = walk(model).sites
     spectra = aware_spectra(model, sites, collect_stats(model, sites, batches))

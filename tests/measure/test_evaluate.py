@@ -101,7 +101,7 @@ def test_output_drift_features_flatten_all_but_batch_and_skip_class_metrics() ->
     d = output_drift(a, b)
     assert "top1_agreement" not in d and "kl" not in d
     A, B = a.reshape(6, -1).double().numpy(), b.reshape(6, -1).double().numpy()
-    cos = [1 - scipy_cosine_distance(A[i], B[i]) for i in range(6)]
+    cos = [1 - scipy_cosine_distance(A[i], B[i]) for i in range(6)]  # scipy reference, as above
     assert d["cosine_min"] == pytest.approx(min(cos), rel=1e-9)
     # kind="logits" on (B, T, V): per-token top-1 and KL over the last dimension
     d = output_drift(a, b, kind="logits")
@@ -212,6 +212,7 @@ def test_output_drift_ignores_padded_positions_when_given_the_attention_mask() -
     masked = output_drift([a], [b_junk], masks=[mask], kind="logits")
     real = mask.bool()
     A, B = a[real].double().numpy(), b[real].double().numpy()  # (tokens, C) of real positions only
+    # references: numpy's Frobenius norm for the relative L2 error, numpy argmax for top-1
     assert masked["relative_l2"] == pytest.approx(np.linalg.norm(A - B) / np.linalg.norm(A), rel=1e-9)
     assert masked["top1_agreement"] == pytest.approx(np.mean(A.argmax(1) == B.argmax(1)))
     assert output_drift([a], [b_junk])["relative_l2"] > 10  # unmasked, the padding dominates

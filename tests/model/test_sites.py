@@ -71,7 +71,7 @@ def test_transposed_projection_rule():
 
 
 def test_tiny_bert_finds_every_projection():
-    found = walk(tiny_bert())
+    found = walk(tiny_bert())  # transformers.BertModel from a tiny config; its module names, as transformers has them
     kinds = {s.name: s.kind for s in found}
     for layer in range(2):
         for proj in ("attention.self.query", "attention.self.key", "attention.self.value",
@@ -81,6 +81,8 @@ def test_tiny_bert_finds_every_projection():
 
 
 def test_tiny_gpt2_transposed_projections_and_tied_head():
+    # transformers.GPT2LMHeadModel from a tiny config (n_embd 32): Conv1D projections, c_attn holding q, k, v
+    # (out 3 * 32), the MLP 4x wide (out 128), lm_head tied to wte (transformers' default for GPT-2)
     found = walk(tiny_gpt2())
     sites = found.by_name()
     for layer in range(2):
