@@ -76,7 +76,7 @@ def test_full_rank_factoring_reproduces_outputs(make, inputs):
 
 
 def test_gpt2_every_projection_factored_and_tied_weights_dense():
-    model = tiny_gpt2()
+    model = tiny_gpt2()  # transformers.GPT2LMHeadModel from a tiny config; lm_head tied to wte (its default)
     result = compress(model, keep=0.5)
     sites = result.plan["sites"]
     for layer in range(2):
@@ -88,7 +88,7 @@ def test_gpt2_every_projection_factored_and_tied_weights_dense():
 
 
 def test_bert_every_projection_factored():
-    result = compress(tiny_bert(), keep=0.5, exclude="embeddings.*")
+    result = compress(tiny_bert(), keep=0.5, exclude="embeddings.*")  # transformers.BertModel, tiny config
     factored = set(factorize.plan_ranks(result.plan))
     expected = {s.name for s in walk(tiny_bert(), exclude="embeddings.*")}
     assert factored == expected
@@ -158,7 +158,7 @@ def test_failed_rewrite_leaves_model_as_it_was(mlp, monkeypatch):
 
     monkeypatch.setattr(factorize.rewrite.apply, "factor_module", flaky)
     before = {n: type(m) for n, m in mlp.named_modules()}
-    with pytest.raises(RuntimeError):
+    with pytest.raises(RuntimeError, match="simulated failure"):  # the injected failure, not some other error
         apply_plan(mlp, plan, inplace=True)
     assert {n: type(m) for n, m in mlp.named_modules()} == before
 

@@ -19,7 +19,8 @@ guarantee of behaviour on other inputs (see :data:`factorize.measure.report.CAUT
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping, Sequence
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from typing import Any
 
 import torch
@@ -68,6 +69,7 @@ def evaluate(
     progress: bool = False,
     memo: dict | None = None,
     perplexity: bool | None = None,
+    clock: Callable[[], float] = time.perf_counter,
 ) -> Report:
     """Measure what compression saved and what it cost, on sample inputs.
 
@@ -85,6 +87,7 @@ def evaluate(
             batches (a sweep): the original's outputs and the layers' output positions are computed once.
         perplexity: measure next-token perplexity (:mod:`factorize.measure.perplexity`); None (default) does so
             for a causal language model (a transformers ``...ForCausalLM``/``...LMHeadModel``) given token ids.
+        clock: the latency clock in seconds (default :func:`time.perf_counter`; tests pass a fake one).
 
     Returns:
         A :class:`factorize.measure.report.Report`.
@@ -125,7 +128,7 @@ def evaluate(
         report.accuracy_after = accuracy(cand, labels)
     if latency_repeats > 0:
         report.latency_ms_before, report.latency_ms_after = median_latency(
-            original, compressed, batches[0], repeats=latency_repeats
+            original, compressed, batches[0], repeats=latency_repeats, clock=clock
         )
         report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
     return report

@@ -8,7 +8,8 @@ decision is made from timings on the machine at hand, at batch 1 and at a larger
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+import time
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 
 import torch
@@ -67,11 +68,13 @@ def time_layers(
     *,
     batches: Sequence[int] = (1, 32),
     repeats: int = 20,
+    clock: Callable[[], float] = time.perf_counter,
 ) -> list[LayerTiming]:
     """Time every factored layer of ``compressed`` against the same layer of ``original``.
 
     ``input_shapes`` gives each layer's input shape (from :func:`record_input_shapes`, or ``(1, n)`` for a linear
-    layer fed single vectors); the leading (batch) dimension is replaced by each entry of ``batches``.
+    layer fed single vectors); the leading (batch) dimension is replaced by each entry of ``batches``. ``clock``
+    (seconds) is handed to :func:`factorize.measure.timing.paired_ms`.
     """
     out = []
     for name, shape in input_shapes.items():
@@ -81,7 +84,7 @@ def time_layers(
         dense = get_module(original, name)
         for b in batches:
             x = _probe_input(dense, shape, b, fac.second.weight)
-            d, f = paired_ms(lambda: dense(x), lambda: fac(x), repeats=repeats)
+            d, f = paired_ms(lambda: dense(x), lambda: fac(x), repeats=repeats, clock=clock)
             out.append(LayerTiming(name, b, d, f))
     return out
 
@@ -105,12 +108,15 @@ def keep_fast(
     example=None,
     batches: Sequence[int] = (1, 32),
     repeats: int = 20,
+    timer: Callable[..., list[LayerTiming]] = time_layers,
 ) -> tuple[dict[str, str], list[LayerTiming]]:
     """Time every factored layer of ``compressed`` against ``model`` and name those that do not pay.
 
     ``example`` is one sample batch (tensor, tuple or dict) used to learn each layer's input shape; without it,
     linear layers are timed on single vectors (1, n) and layers that need a spatial shape (convolutions) are not
-    timed. Returns (name -> reason for the layers to keep dense, all timings).
+    timed. ``timer(model, compressed, input_shapes, batches=..., repeats=...)`` does the timing (default
+    :func:`time_layers`; pass another, e.g. one with a fake clock, to decide from timings not measured here).
+    Returns (name -> reason for the layers to keep dense, all timings).
     """
     names = [n for n, m in compressed.named_modules() if isinstance(m, Factored)]
     if example is not None:
@@ -123,5 +129,5 @@ def keep_fast(
                 shapes[n] = (1, layer.first.in_features)
             elif layer.kind == "embedding":
                 shapes[n] = (1, 16)  # 16 token ids per row
-    timings = time_layers(model, compressed, shapes, batches=batches, repeats=repeats)
+    timings = timer(model, compressed, shapes, batches=batches, repeats=repeats)
     return slower_layers(timings), timings

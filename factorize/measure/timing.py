@@ -1,4 +1,8 @@
-"""TODO docstring."""
+"""Wall-clock timing of forward passes, two callables interleaved so a slow spell of a shared machine hits both.
+
+The clock is a parameter (default :func:`time.perf_counter`) so tests can drive the interleaving and the median
+with a fake clock instead of patching this module.
+"""
 
 from __future__ import annotations
 
@@ -13,33 +17,44 @@ from torch import nn
 from factorize.model.feed import feed
 
 
-def median_latency(a: nn.Module, b: nn.Module, batch: Any, *, repeats: int = 7) -> tuple[float, float]:
+def median_latency(
+    a: nn.Module, b: nn.Module, batch: Any, *, repeats: int = 7, clock: Callable[[], float] = time.perf_counter
+) -> tuple[float, float]:
     """Median wall time in milliseconds of one forward pass of each model on ``batch``.
 
     The two models are timed alternately (a, b, a, b, ...) after warm-up passes, so a slow spell of a shared
     machine hits both alike. Fewer multiply-accumulates do not always mean lower latency (common practice),
-    which is why this is measured rather than derived.
+    which is why this is measured rather than derived. ``clock`` returns seconds, as :func:`time.perf_counter`.
     """
     flags = (a.training, b.training)
     a.eval(), b.eval()
     try:
-        return paired_ms(lambda: (feed(a, batch), _sync(a)), lambda: (feed(b, batch), _sync(b)), repeats=repeats)
+        return paired_ms(lambda: (feed(a, batch), _sync(a)), lambda: (feed(b, batch), _sync(b)), repeats=repeats,
+                         clock=clock)
     finally:
         a.train(flags[0]), b.train(flags[1])
 
 
-def paired_ms(a: Callable[[], Any], b: Callable[[], Any], *, repeats: int = 20, warmup: int = 3) -> tuple[float, float]:
+def paired_ms(
+    a: Callable[[], Any],
+    b: Callable[[], Any],
+    *,
+    repeats: int = 20,
+    warmup: int = 3,
+    clock: Callable[[], float] = time.perf_counter,
+) -> tuple[float, float]:
     """Median times in milliseconds of ``a()`` and ``b()``, measured interleaved after ``warmup`` calls of each
-    (the first calls pay for lazy initialisation and cold caches, and would otherwise count)."""
+    (the first calls pay for lazy initialisation and cold caches, and would otherwise count). ``clock`` returns
+    seconds (default :func:`time.perf_counter`); it is read just before and just after each timed call."""
     times: tuple[list[float], list[float]] = ([], [])
     with torch.inference_mode():
         for _ in range(warmup):
             a(), b()
         for _ in range(repeats):
             for fn, acc in ((a, times[0]), (b, times[1])):
-                start = time.perf_counter()
+                start = clock()
                 fn()
-                acc.append(1000.0 * (time.perf_counter() - start))
+                acc.append(1000.0 * (clock() - start))
     return statistics.median(times[0]), statistics.median(times[1])
 
 

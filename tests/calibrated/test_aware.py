@@ -100,12 +100,13 @@ def test_predicted_error_matches_measured(method, center):
     for r in (2, 8, 20):
         B, A = spec.factors(r)
         err = X @ (W - B @ A).T  # (N, m)
+        shift = spec.bias_shift(r)
+        assert (shift is not None) == center  # a bias correction exactly when centred
         if center:
-            err = err - spec.bias_shift(r)  # the corrected bias removes the mean error
+            torch.testing.assert_close(shift, (W - B @ A) @ mu, rtol=1e-8, atol=1e-9)
+            err = err - shift  # the corrected bias removes the mean error
         measured = float(torch.linalg.matrix_norm(err))
         assert spec.error(r) == pytest.approx(measured, rel=1e-4)
-        if center:
-            torch.testing.assert_close(spec.bias_shift(r), (W - B @ A) @ mu, rtol=1e-8, atol=1e-9)
 
 
 def test_centring_never_worse_and_scale_never_beats_whitening():
@@ -248,7 +249,7 @@ def test_sequential_mode_runs_in_forward_order():
     from factorize.default import load_default, load_digits_split
 
     model = load_default()
-    x, _ = load_digits_split("calibration")
+    x, _ = load_digits_split("calibration")  # scikit-learn's digits (Alpaydin & Kaynak, UCI 1998), 256 samples
     batches = [x[:128], x[128:]]
     sites = walk(model).sites
     spectra = aware_spectra(model, sites, collect_stats(model, sites, batches))

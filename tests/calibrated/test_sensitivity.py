@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import copy
 
+import numpy as np
 import pytest
 import torch
+from scipy.spatial.distance import cosine as scipy_cosine_distance
 from torch import nn
 
 from factorize.rewrite.apply import apply_plan
@@ -101,8 +103,28 @@ def test_cosine_metric_and_bad_input():
     model = TwoBranch().eval()
     sites = walk(model).sites
     spectra = decompose_sites(model, sites)
-    sens = measure_sensitivity(model, sites, spectra, _batches(), metric="cosine")
-    assert sens.metric == "cosine" and all(ls.weight >= 0 for ls in sens.layers.values())
+    batches = _batches()
+    sens = measure_sensitivity(model, sites, spectra, batches, metric="cosine")
+    assert sens.metric == "cosine" and set(sens.layers) == {"a", "b"}
+    # Each probe against references: E(r) from numpy's SVD of the weight (sum of the discarded s_i^2), d(r) = 1 -
+    # mean cosine (scipy.spatial.distance.cosine) of the outputs with that layer alone truncated to rank r, and
+    # w the least-squares slope through the origin (numpy.linalg.lstsq).
+    X = torch.cat(batches).double().numpy()
+    reference = torch.cat([model(x) for x in batches]).detach().double().numpy()
+    for name, ls in sens.layers.items():
+        layer = getattr(model, name)
+        W = layer.weight.detach().double().numpy()
+        U, S, Vt = np.linalg.svd(W)
+        gain = model.gain_a if name == "a" else model.gain_b
+        for r, energy, drift in zip(ls.ranks, ls.layer_energy, ls.drift):
+            assert energy == pytest.approx(float((S[r:] ** 2).sum()), rel=1e-5)
+            W_r = (U[:, :r] * S[:r]) @ Vt[:r]
+            probed = reference + gain * (X @ (W_r - W).T)  # only this branch changes; its bias is kept
+            cos = np.array([1 - scipy_cosine_distance(reference[i], probed[i]) for i in range(len(X))])
+            assert drift == pytest.approx(1 - cos.mean(), rel=1e-3, abs=1e-9)
+        slope = np.linalg.lstsq(np.array(ls.layer_energy)[:, None], np.array(ls.drift), rcond=None)[0][0]
+        assert slope > 0 and ls.weight == pytest.approx(slope, rel=1e-6)  # positive, so the clamp at 0 is idle
+    assert sens.layers["a"].weight > 100 * sens.layers["b"].weight  # gains 10 vs 0.1: the chain rule, squared
     with pytest.raises(FactorizeError, match="unknown drift metric"):
         measure_sensitivity(model, sites, spectra, _batches(), metric="kl")
     with pytest.raises(FactorizeError, match="probe fractions"):

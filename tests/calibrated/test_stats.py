@@ -90,7 +90,7 @@ def test_conv_same_padding():
 
 
 def test_embedding_counts_and_attention_mask(tied_lm):
-    model = tiny_bert()
+    model = tiny_bert()  # transformers.BertModel from a tiny config (vocab 64)
     ids = torch.tensor([[1, 5, 5, 7, 0, 0], [3, 5, 9, 2, 2, 4]])
     mask = torch.tensor([[1, 1, 1, 1, 0, 0], [1, 1, 1, 1, 1, 1]])
     stats = collect_stats(model, ["embeddings.word_embeddings", "encoder.layer.0.attention.self.query"],
@@ -105,7 +105,7 @@ def test_embedding_counts_and_attention_mask(tied_lm):
 
 
 def test_transposed_projection_rows():
-    model = tiny_gpt2()
+    model = tiny_gpt2()  # transformers.GPT2LMHeadModel from a tiny config: Conv1D (transposed) projections
     sites = [s for s in walk(model).sites if s.kind == "transposed"]
     assert sites
     ids = torch.randint(0, 64, (2, 7))

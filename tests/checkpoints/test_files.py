@@ -90,7 +90,7 @@ def test_round_trip_is_bit_exact(tmp_path, case):
 
 
 def test_gpt2_tie_is_kept_and_stored_once(tmp_path):
-    model = tiny_gpt2()
+    model = tiny_gpt2()  # transformers.GPT2LMHeadModel from a tiny config: lm_head tied to wte (its default)
     result = factorize.compress(model, rank=4)
     path = io.save(result.model, tmp_path / "g.safetensors", plan=result.plan)
     with safe_open(str(path), framework="pt") as f:  # reference reader

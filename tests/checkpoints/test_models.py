@@ -60,7 +60,7 @@ def test_callable_builds_the_module_and_a_fresh_instance(user_module) -> None:
     assert fresh is not loaded.model and type(fresh).__name__ == "Net"
     # a class works too, and so does a module-level instance
     assert type(load_model(f"{user_module}:Net").model).__name__ == "Net"
-    assert load_model(f"{user_module}:instance").model is not None
+    assert load_model(f"{user_module}:instance").model is sys.modules[user_module].instance
 
 
 def test_callable_errors_are_clear(user_module) -> None:

@@ -13,6 +13,7 @@ from torch import nn
 from factorize.errors import FactorizeError
 from factorize.measure.drift import output_drift
 from factorize.model.feed import primary_output, run_model
+from tests.measure.fakeclock import Costly, FakeClock
 
 
 class _Tupled(nn.Module):
@@ -100,7 +101,7 @@ def test_output_drift_features_flatten_all_but_batch_and_skip_class_metrics() ->
     d = output_drift(a, b)
     assert "top1_agreement" not in d and "kl" not in d
     A, B = a.reshape(6, -1).double().numpy(), b.reshape(6, -1).double().numpy()
-    cos = [1 - scipy_cosine_distance(A[i], B[i]) for i in range(6)]
+    cos = [1 - scipy_cosine_distance(A[i], B[i]) for i in range(6)]  # scipy reference, as above
     assert d["cosine_min"] == pytest.approx(min(cos), rel=1e-9)
     # kind="logits" on (B, T, V): per-token top-1 and KL over the last dimension
     d = output_drift(a, b, kind="logits")
@@ -132,8 +133,8 @@ def test_evaluate_counts_macs_with_hooks_on_a_cnn(cnn) -> None:
     assert rows["c1"].macs == 16 * 27 * 100
     # c2: stride 2, padding 2, dilation 2 on 10x10: out = floor((10 + 4 - 2*2 - 1)/2) + 1 = 5 -> 25 positions
     assert rows["c2"].macs == 24 * 16 * 9 * 25
-    if rows["c2"].rank is not None:
-        assert rows["c2"].macs_after == rows["c2"].rank * (24 + 144) * 25
+    assert rows["c2"].rank == 4  # factored at the asked rank (24x144 at rank 4 saves), so macs_after applies
+    assert rows["c2"].macs_after == 4 * (24 + 144) * 25
     # c3 (Conv1d over the flattened 5x5 map, length 25, padding 2 -> 25 positions), fc: one position
     assert rows["c3"].macs == 20 * 24 * 5 * 25
     assert rows["fc"].macs == 7 * 20
@@ -211,6 +212,20 @@ def test_output_drift_ignores_padded_positions_when_given_the_attention_mask() -
     masked = output_drift([a], [b_junk], masks=[mask], kind="logits")
     real = mask.bool()
     A, B = a[real].double().numpy(), b[real].double().numpy()  # (tokens, C) of real positions only
+    # references: numpy's Frobenius norm for the relative L2 error, numpy argmax for top-1
     assert masked["relative_l2"] == pytest.approx(np.linalg.norm(A - B) / np.linalg.norm(A), rel=1e-9)
     assert masked["top1_agreement"] == pytest.approx(np.mean(A.argmax(1) == B.argmax(1)))
     assert output_drift([a], [b_junk])["relative_l2"] > 10  # unmasked, the padding dominates
+
+
+def test_evaluate_latency_is_the_median_of_interleaved_passes_on_the_clock_given() -> None:
+    from factorize.measure.evaluate import evaluate
+
+    clock = FakeClock()
+    slow, fast = Costly(clock, 2.0, "slow"), Costly(clock, 1.0, "fast")
+    x = torch.randn(6, 4, generator=torch.Generator().manual_seed(5))
+    report = evaluate(slow, fast, [x, x[:2]], latency_repeats=5, clock=clock)
+    assert report.latency_ms_before == pytest.approx(2.0, abs=1e-9)
+    assert report.latency_ms_after == pytest.approx(1.0, abs=1e-9)  # a 2.0x ratio, exactly
+    assert report.latency_repeats == 5 and report.latency_batch == 6  # timed on the first batch
+    assert clock.log[-30:] == ["read", "slow", "read", "read", "fast", "read"] * 5

@@ -46,7 +46,7 @@ def test_tied_embedding_and_head(tied_lm):
 
 
 def test_transposed_projection_rule():
-    transformers = pytest.importorskip("transformers")
+    pytest.importorskip("transformers")
     from transformers.pytorch_utils import Conv1D
 
     assert is_transposed_projection(Conv1D(7, 5))  # GPT-2 style: weight (in=5, out=7), y = x @ W + b
@@ -61,11 +61,17 @@ def test_transposed_projection_rule():
 
     assert not is_transposed_projection(NotAProjection())
     assert not is_transposed_projection(nn.Linear(5, 7))
-    assert transformers is not None
+    # the premise, from transformers itself (transformers.pytorch_utils.Conv1D: "works like a linear layer but
+    # the weights are transposed"): weight (in, out) and y = x @ W + b
+    conv = Conv1D(7, 5)
+    nn.init.normal_(conv.bias)
+    x = torch.randn(3, 5, generator=torch.Generator().manual_seed(0))
+    assert tuple(conv.weight.shape) == (5, 7)
+    torch.testing.assert_close(conv(x), x @ conv.weight + conv.bias)
 
 
 def test_tiny_bert_finds_every_projection():
-    found = walk(tiny_bert())
+    found = walk(tiny_bert())  # transformers.BertModel from a tiny config; its module names, as transformers has them
     kinds = {s.name: s.kind for s in found}
     for layer in range(2):
         for proj in ("attention.self.query", "attention.self.key", "attention.self.value",
@@ -75,6 +81,8 @@ def test_tiny_bert_finds_every_projection():
 
 
 def test_tiny_gpt2_transposed_projections_and_tied_head():
+    # transformers.GPT2LMHeadModel from a tiny config (n_embd 32): Conv1D projections, c_attn holding q, k, v
+    # (out 3 * 32), the MLP 4x wide (out 128), lm_head tied to wte (transformers' default for GPT-2)
     found = walk(tiny_gpt2())
     sites = found.by_name()
     for layer in range(2):

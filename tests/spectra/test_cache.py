@@ -77,6 +77,7 @@ def test_hit_skips_decomposition_and_is_bit_identical(tmp_path, counted):
     for a, b in ((again.U, fresh.U), (again.S, fresh.S), (again.Vh, fresh.Vh)):
         assert torch.equal(a, b)
     assert again.total_energy == fresh.total_energy and again.exact and first.method == "exact"
+    # reference: numpy.linalg.svd
     np.testing.assert_allclose(again.S.numpy(), np.linalg.svd(W.double().numpy(), compute_uv=False), rtol=1e-5)
     with safe_open(str(store.path_for(SpectrumCache.key(W))), framework="pt") as f:  # a plain safetensors file
         assert set(f.keys()) == {"U", "S", "Vh"}

@@ -92,15 +92,15 @@ def test_half_precision_is_decomposed_in_float32():
     W = torch.randn(16, 12, generator=torch.Generator().manual_seed(4)).half()
     spec = decompose(W)
     assert spec.S.dtype == torch.float32
-    ref = np.linalg.svd(W.double().numpy(), compute_uv=False)
+    ref = np.linalg.svd(W.double().numpy(), compute_uv=False)  # numpy reference, of the same half values
     np.testing.assert_allclose(spec.S.double().numpy(), ref, rtol=1e-5)
 
 
 def test_energy_rank_matches_cumulative_sum():
     W = torch.from_numpy(_decaying(50, 40, decay=0.8))
     spec = decompose(W)
-    s2 = np.linalg.svd(W.numpy(), compute_uv=False) ** 2
-    frac = np.cumsum(s2) / s2.sum()
+    s2 = np.linalg.svd(W.numpy(), compute_uv=False) ** 2  # numpy reference
+    frac = np.cumsum(s2) / s2.sum()  # energy kept by rank r: sum_{i<=r} s_i^2 / ||W||_F^2 (common practice)
     for t in (0.5, 0.9, 0.99):
         r = spec.rank_for_energy(t)
         assert frac[r - 1] >= t - 1e-12 and (r == 1 or frac[r - 2] < t)

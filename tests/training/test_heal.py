@@ -67,23 +67,35 @@ def test_healing_recovers_digits_accuracy_on_the_untouched_test_split() -> None:
 # --- never worse than unhealed -----------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("lr", [1e-3, 0.3])
-def test_healing_never_returns_a_model_with_more_heldout_drift(lr: float) -> None:
-    # lr=0.3 is far too large for Adam on this model (common practice: 1e-4..1e-3), so training makes the
-    # held-out drift worse; the best state (step 0 included) must be what comes back.
+def _heal_checked(lr: float):
+    """Heal with checks every 5 steps, no early stop; return what the never-worse rule is judged on."""
     teacher, student, data, heldout = _compressed_mlp()
     unhealed = _state(student)
     before = _drift(teacher, student, heldout)
     result = heal(student, teacher, data, steps=60, heldout=heldout, lr=lr, eval_every=5, patience=None,
                   progress=False)
     after = _drift(teacher, student, heldout)
-    assert after <= before + 1e-7
+    assert after <= before + 1e-7  # never worse than unhealed
     assert abs(after - result.best_drift) < 1e-6
     assert result.checks[0].step == 0 and abs(result.initial_drift - before) < 1e-6
-    if result.best_step == 0:
-        assert all(torch.equal(unhealed[k], v) for k, v in student.state_dict().items())
-    if lr == 0.3:
-        assert max(c.drift for c in result.checks) > before  # training really went wrong along the way
+    unchanged = all(torch.equal(unhealed[k], v) for k, v in student.state_dict().items())
+    return result, before, [c.drift for c in result.checks[1:]], unchanged
+
+
+def test_healing_that_only_makes_drift_worse_returns_the_unhealed_model() -> None:
+    # lr=0.3 is far too large for Adam on this model (common practice: 1e-4..1e-3), so every check after step 0
+    # has more held-out drift (measured 0.50 before, 2.3..18.9 after); step 0 must be what comes back, bit for bit.
+    result, before, later, unchanged = _heal_checked(0.3)
+    assert min(later) > before
+    assert result.best_step == 0 and unchanged
+
+
+def test_healing_that_helps_returns_the_best_checked_state() -> None:
+    # lr=1e-3 improves at every check (measured 0.50 -> 0.39 over 60 steps): a later state comes back.
+    result, before, later, unchanged = _heal_checked(1e-3)
+    assert max(later) < before
+    assert result.best_step > 0 and not unchanged
+    assert result.best_drift == pytest.approx(min(later), abs=1e-6)
 
 
 def test_early_stopping_with_patience() -> None:
