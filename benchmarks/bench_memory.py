@@ -45,14 +45,14 @@ mode, src, dst, method, rank = sys.argv[1:6]
 t0 = time.perf_counter()
 if mode == "baseline":
     import factorize, factorize.checkpoints.stream
-    from factorize.io import open_checkpoint
+    from factorize.checkpoints.files import open_checkpoint
     open_checkpoint(src)
 elif mode == "stream":
     from factorize.checkpoints.stream import shrink_checkpoint
     rep = shrink_checkpoint(src, dst, rank=int(rank), method=method)
 elif mode == "load-all":
     from safetensors.torch import load_file
-    from factorize.io import open_checkpoint
+    from factorize.checkpoints.files import open_checkpoint
     held = [load_file(str(h.path)) for h in open_checkpoint(src).files]
     total = sum(float(t.sum()) for shard in held for t in shard.values())  # touch every byte
 seconds = time.perf_counter() - t0
