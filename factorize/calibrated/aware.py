@@ -64,7 +64,6 @@ from __future__ import annotations
 
 import copy
 from collections.abc import Iterable, Mapping
-from concurrent.futures import ThreadPoolExecutor, as_completed
 from dataclasses import dataclass
 
 import numpy as np
@@ -79,6 +78,7 @@ from factorize.plan.policy import (
     AWARE_METHODS,  # the names, declared once with the Policy
 )
 from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose
+from factorize.spectra.sites import per_site
 
 DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
 FEW_SAMPLES_RIDGE = 1e-2  # relative ridge when a layer saw fewer samples than its input width (a judgement call)
@@ -385,22 +385,7 @@ def aware_spectra(
                                output_gram=G, output_ridge=output_ridge, solver=solver, rank=k, seed=seed,
                                precision=precision, name=site.name)
 
-    bar = tqdm(total=len(sites), desc="decompose", unit="layer", disable=not progress, leave=False)
-    out: dict[str, AwareSpectrum] = {}
-    try:
-        if workers <= 1 or len(sites) <= 1:
-            for site in sites:
-                out[site.name] = one(site)
-                bar.update()
-        else:  # independent layers in threads (LAPACK/BLAS release the GIL); same seed and arithmetic per layer
-            with ThreadPoolExecutor(max_workers=workers) as pool:
-                futures = {pool.submit(one, site): site.name for site in sites}
-                for fut in as_completed(futures):
-                    out[futures[fut]] = fut.result()
-                    bar.update()
-    finally:
-        bar.close()
-    return {site.name: out[site.name] for site in sites}  # module order, whatever the finishing order
+    return per_site(one, sites, workers=workers, progress=progress)
 
 
 def _center_for(site: Site, center: bool | str) -> bool:
