@@ -48,7 +48,7 @@ from factorize.errors import FactorizeError
 from factorize.model.count import count_parameters
 from factorize.model.sites import Site, WalkResult, get_module, set_module, walk
 from factorize.pipeline import compress
-from factorize.plan.policy import Policy, resolve_policy
+from factorize.plan.policy import POLICY_KEYS, Policy, resolve_policy
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, merge
 from factorize.rewrite.layers import (
@@ -59,9 +59,6 @@ from factorize.rewrite.layers import (
 )
 from factorize.spectra.decompose import Spectrum, compute_dtype_for
 from factorize.spectra.sites import decompose_sites
-
-POLICY_KEYS = ("budget", "rank", "energy", "keep")
-
 
 # ---------------------------------------------------------------------------------------------------------------
 # spectrum of a factored layer, and a factored layer at a lower rank
