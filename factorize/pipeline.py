@@ -20,7 +20,7 @@ from typing import Any
 from torch import nn
 
 from factorize.calibrated.options import CalibrationOptions, calibrated_setup
-from factorize.calibrated.search import CalibratedResult, compress_calibrated  # noqa: F401 - the result type compress returns with calibration
+from factorize.calibrated.search import CalibratedResult, compress_calibrated  # noqa: F401 - re-exported
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters

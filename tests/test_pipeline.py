@@ -240,7 +240,8 @@ def _weight_macs(model, x) -> int:
                       if isinstance(module, torch.nn.Conv2d) else module.in_features)
         total[0] += out.numel() // x.shape[0] * per_output
 
-    handles = [m.register_forward_hook(hook) for m in model.modules() if isinstance(m, (torch.nn.Conv2d, torch.nn.Linear))]
+    leaves = [m for m in model.modules() if isinstance(m, (torch.nn.Conv2d, torch.nn.Linear))]
+    handles = [m.register_forward_hook(hook) for m in leaves]
     with torch.no_grad():
         model(x)
     for h in handles:
