@@ -9,6 +9,7 @@ Typical use::
 """
 
 from factorize._version import __version__
+from factorize.calibrated.options import CalibrationOptions
 from factorize.calibrated.search import (
     CalibratedResult,
     Calibration,
@@ -50,6 +51,7 @@ __all__ = [
     "__version__",
     "CalibratedResult",
     "Calibration",
+    "CalibrationOptions",
     "CompressResult",
     "Report",
     "DriftLimitExceeded",

@@ -1,7 +1,12 @@
-"""The one-call Python API and the apply step.
+"""The one-call Python API: ``compress``, the only place that combines spectra, plan and rewrite.
 
 ``compress`` runs walk -> decompose -> choose ranks -> apply; each step is also usable on its own
-(:func:`factorize.model.sites.walk`, :func:`decompose_sites`, :func:`factorize.plan.ranks.choose_ranks`, :func:`apply_plan`).
+(:func:`factorize.model.sites.walk`, :func:`decompose_sites`, :func:`factorize.plan.ranks.choose_ranks`,
+:func:`apply_plan`). With calibration inputs it runs :func:`factorize.calibrated.search.compress_calibrated`.
+
+Its keywords are parsed in one place, :func:`parse_options`, into a :class:`~factorize.plan.policy.Policy`
+(what to compress and how far), :class:`RunOptions` (how the plain path runs) and, on the calibrated path,
+:class:`~factorize.calibrated.options.CalibrationOptions`.
 """
 
 from __future__ import annotations
@@ -9,162 +14,135 @@ from __future__ import annotations
 import copy
 import dataclasses
 from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+from typing import Any
 
 from torch import nn
 
-from factorize.calibrated.aware import AWARE_METHODS
-from factorize.calibrated.search import CalibratedResult, compress_calibrated
+from factorize.calibrated.options import CalibrationOptions, calibrated_setup
+from factorize.calibrated.search import CalibratedResult, compress_calibrated  # noqa: F401 - re-exported
 from factorize.errors import FactorizeError
+from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
-from factorize.model.sites import (
-    walk,
-)
-from factorize.plan.ranks import (
+from factorize.model.sites import WalkResult, walk
+from factorize.plan.policy import (
+    AWARE_METHODS,
+    POLICY_KEYWORDS,
     Override,
     Policy,
-    _rank_needed,
-    choose_ranks,
+    rank_needed,
+    resolve_policy,
 )
+from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, apply_plan
-from factorize.spectra.decompose import METHODS, Spectrum
+from factorize.spectra.decompose import Spectrum
 from factorize.spectra.sites import decompose_sites
 
 
-def _policy_from(rank, energy, keep, budget, multiple, overrides, cost) -> Policy:
-    ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
-    return Policy(rank=rank, energy=energy, keep=keep, budget=budget, multiple=multiple, overrides=ov, cost=cost)
+@dataclass(frozen=True)
+class RunOptions:
+    """How :func:`compress` runs, beyond the Policy (see its Args)."""
+
+    precision: str | None = None
+    spectra: Mapping[str, Spectrum] | None = None
+    workers: int = 1
+    cache: Any = None
+    speed_check: bool = False
+    speed_example: Any = None
+    example: Any = None
+
+
+RUN_KEYWORDS = tuple(f.name for f in dataclasses.fields(RunOptions))
+# the calibrated-path keywords compress accepts (precision, workers and progress come from the run options, the
+# solver from the Policy's method)
+CALIBRATION_KEYWORDS = tuple(f.name for f in dataclasses.fields(CalibrationOptions)
+                             if f.name not in ("solver", "precision", "workers", "progress", "example"))
+ALIASES = {"calibrate": "calibration"}
 
 
 def compress(
     model: nn.Module,
+    policy: Policy | None = None,
     *,
-    budget: float | None = None,
-    rank: int | None = None,
-    energy: float | None = None,
-    keep: float | None = None,
-    include: str | Iterable[str] | None = None,
-    exclude: str | Iterable[str] | None = None,
-    method: str = "auto",
-    multiple: int = 1,
-    overrides: Iterable[Override | Mapping] | None = None,
-    cost: str = "params",
-    inplace: bool = False,
-    seed: int = 0,
-    precision: str | None = None,
-    progress: bool = False,
-    spectra: Mapping[str, Spectrum] | None = None,
-    workers: int = 1,
-    cache=None,
-    speed_check: bool = False,
-    speed_example=None,
     calibration: Iterable | None = None,
-    calibrate: Iterable | None = None,
-    aware_method: str | None = None,
-    sequential: bool = False,
-    sensitivity: bool | str = False,
-    max_drift: float | None = None,
     heldout: Iterable | None = None,
-    drift_metric: str = "relative_l2",
-    output_fn=None,
+    inplace: bool = False,
+    progress: bool = False,
+    **options: Any,
 ) -> CompressResult:
     """Factor the dense layers of ``model`` at ranks chosen from their singular spectra.
 
     Args:
         model: a trained ``nn.Module``; not modified unless ``inplace=True``.
-        budget / rank / energy / keep: the rank policy (exactly one); see :mod:`factorize.ranks`.
-        include / exclude: glob patterns on qualified module names.
-        method: ``"auto"`` (default: randomized SVD where the rank needed is small and an a-posteriori estimate
-            puts it within 1% of optimal, else the Gram eigensolve), ``"exact"`` (LAPACK SVD), ``"gram"`` or ``"randomized"`` (Halko,
-            Martinsson & Tropp 2011); see :mod:`factorize.decompose`.
-        multiple: round ranks to this multiple (8 or 16 suit fast kernels).
-        overrides: per-pattern exceptions (``Override`` or dicts with pattern and rank/energy/keep/dense).
-        cost: what ``budget`` counts, ``"params"`` or ``"macs"``.
-        inplace: rewrite ``model`` itself instead of a deep copy.
-        seed: seed for randomized decompositions.
-        precision: ``"float32"`` or ``"float64"`` compute dtype for the SVD.
-        progress: show a progress bar on stderr.
-        spectra: spectra from an earlier call (``result.spectra``) to reuse instead of decomposing again.
-        workers: decompose this many layers concurrently (threads); results equal a serial run's.
-        cache: a directory (or :class:`factorize.spectra.cache.SpectrumCache`) of spectra keyed by weight content, so a
-            second run on the same weights skips the decomposition.
-        speed_check: time each factored layer against its dense form on this machine (batch 1 and 32) and keep
-            dense those that are slower; under ``budget=`` the freed budget is re-allocated to the others.
-        speed_example: one sample batch to learn layer input shapes for the timing (needed for convolutions).
+        policy: a :class:`~factorize.plan.policy.Policy`; or, instead, its keywords:
+            ``budget`` / ``rank`` / ``energy`` / ``keep`` (the rank rule, exactly one, see
+            :mod:`factorize.plan.ranks`); ``include`` / ``exclude`` (glob patterns on qualified module names);
+            ``method``: ``"auto"`` (default: randomized SVD where the rank needed is small and an a-posteriori
+            estimate puts it within 1% of optimal, else the Gram eigensolve), ``"exact"`` (LAPACK SVD), ``"gram"``
+            or ``"randomized"`` (Halko, Martinsson & Tropp 2011), see :mod:`factorize.spectra.decompose`;
+            ``"whiten"`` / ``"scale"`` ask for activation-aware factors (need calibration); ``multiple`` (round
+            ranks to this multiple; 8 or 16 suit fast kernels); ``overrides`` (per-pattern exceptions:
+            ``Override`` or mappings with pattern and rank/energy/keep/dense); ``cost``: what ``budget`` counts,
+            ``"params"`` or ``"macs"`` (multiply-accumulates per sample, measured on ``example`` or the first
+            calibration batch); ``seed`` (for randomized decompositions).
         calibration: sample-input batches (``calibrate=`` is an alias): activation-aware factors that keep each
-            layer's outputs on these inputs (see :mod:`factorize.aware` and :func:`factorize.calibrated.search.compress_calibrated`).
-        aware_method: ``"whiten"`` (default with calibration) or ``"scale"``; ``method="whiten"``/``"scale"`` too.
-        sequential: with calibration, factor layers in forward order so later layers absorb earlier errors.
-        sensitivity: with calibration, allocate ranks by measured final-output sensitivity: True or ``"both"``
-            (gradients, then probes), ``"gradients"`` or ``"probes"`` alone.
-        max_drift: with calibration, the smallest budget whose drift on ``heldout`` stays under this
-            (``drift_metric`` ``"relative_l2"`` or ``"cosine"``); raises ``DriftLimitExceeded`` when unreachable.
-        output_fn: ``output_fn(output, batch) -> tensor`` compared for sensitivity and drift (default: the
-            primary output).
+            layer's outputs on these inputs (see :mod:`factorize.calibrated.aware` and
+            :func:`factorize.calibrated.search.compress_calibrated`).
+        heldout: batches the ``max_drift`` search measures drift on.
+        inplace: rewrite ``model`` itself instead of a deep copy.
+        progress: show progress bars on stderr.
+        options: run options --
+            ``precision``: ``"float32"`` or ``"float64"`` compute dtype for the SVD;
+            ``spectra``: spectra from an earlier call (``result.spectra``) to reuse instead of decomposing again;
+            ``workers``: decompose this many layers concurrently (threads); results equal a serial run's;
+            ``cache``: a directory (or :class:`factorize.spectra.cache.SpectrumCache`) of spectra keyed by weight
+            content, so a second run on the same weights skips the decomposition (not with calibration: its
+            spectra depend on the inputs too);
+            ``speed_check``: time each factored layer against its dense form on this machine (batch 1 and 32) and
+            keep dense those that are slower; under ``budget=`` the freed budget is re-allocated to the others;
+            ``speed_example``: one sample batch to learn layer input shapes for the timing (needed for convs);
+            ``example``: one sample batch to count multiply-accumulates on for ``cost="macs"``.
+            With calibration, also -- ``aware_method``: ``"whiten"`` (default) or ``"scale"``;
+            ``sequential``: factor layers in forward order so later layers absorb earlier errors;
+            ``sensitivity``: allocate ranks by measured final-output sensitivity: True or ``"both"`` (gradients,
+            then probes), ``"gradients"`` or ``"probes"`` alone; ``max_drift``: the smallest budget whose drift on
+            ``heldout`` stays under this (``drift_metric`` ``"relative_l2"`` or ``"cosine"``), raising
+            ``DriftLimitExceeded`` when unreachable; ``output_fn``: ``output_fn(output, batch) -> tensor``
+            compared for sensitivity and drift (default: the primary output); and the other fields of
+            :class:`~factorize.calibrated.options.CalibrationOptions` (alpha, center, ridge, fractions, ...).
 
     Returns:
         :class:`CompressResult` with ``.model`` and ``.plan`` (a ``CalibratedResult`` with calibration).
-    """
-    if (calibration is not None or calibrate is not None or aware_method is not None or method in ("whiten", "scale")
-            or sequential or sensitivity or max_drift is not None):
-        from factorize.pipeline import (
-            compress_from_api,  # the calibrated path lives in factorize.search
-        )
 
-        return compress_from_api(
-            model, calibration=calibration, calibrate=calibrate, aware_method=aware_method, method=method,
-            sequential=sequential, sensitivity=sensitivity, max_drift=max_drift, heldout=heldout,
-            drift_metric=drift_metric, output_fn=output_fn, budget=budget, rank=rank, energy=energy, keep=keep,
-            include=include, exclude=exclude, multiple=multiple, overrides=overrides, cost=cost, inplace=inplace,
-            precision=precision, progress=progress, spectra=spectra, speed_check=speed_check,
-        )
+    Raises:
+        FactorizeError: bad input, e.g. an unknown keyword (the message lists the accepted ones), a Policy
+            together with policy keywords, or no factorizable layer.
+    """
+    policy, run, calibrated, batches = parse_options(policy, calibration, options, progress=progress)
+    if calibrated is not None:
+        return compress_calibrated(model, batches, policy, calibrated, heldout=heldout, inplace=inplace)
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
-    if method not in METHODS:
-        raise FactorizeError(f"unknown method {method!r}", fix=f"use one of {', '.join(METHODS)}")
-    policy = _policy_from(rank, energy, keep, budget, multiple, overrides, cost)
-    found = walk(model, include=include, exclude=exclude)
-    if not found.sites:
-        raise FactorizeError(
-            "no factorizable layer found" + (" matching the include/exclude patterns" if include or exclude else ""),
-            [f"{s.name}: {s.reason}" for s in found.skipped],
-            fix="factorize handles nn.Linear, nn.Conv1d/2d (groups=1), nn.Embedding and transposed projections; "
-            "check the include/exclude globs against model.named_modules()",
-        )
+    found = walk(model, include=policy.include, exclude=policy.exclude).require_sites(policy.filtered)
+    if policy.cost == "macs":
+        found = WalkResult(with_macs(model, found.sites, run.example), found.skipped)
     todo = [s for s in found.sites if not s.tied_with]
-    have = dict(spectra or {})
+    have = dict(run.spectra or {})
     need = [s for s in todo if s.name not in have]
-    ranks = {s.name: _rank_needed(s, policy) for s in need} if method in ("auto", "randomized") else None
+    ranks = {s.name: rank_needed(s, policy) for s in need} if policy.method in ("auto", "randomized") else None
     have.update(
         decompose_sites(
-            model, need, method=method, ranks=ranks, seed=seed, precision=precision, progress=progress,
-            workers=workers, cache=cache,
+            model, need, method=policy.method, ranks=ranks, seed=policy.seed, precision=run.precision,
+            progress=progress, workers=run.workers, cache=run.cache,
         )
     )
-    plan = choose_ranks(found.sites, have, policy, method=method)
+    plan = choose_ranks(found.sites, have, policy, method=policy.method)
     params_before = count_parameters(model)
-    target = copy.deepcopy(model) if (speed_check or not inplace) else model
+    target = copy.deepcopy(model) if (run.speed_check or not inplace) else model
     apply_plan(target, plan, spectra=have, inplace=True)
     timings = []
-    if speed_check:
-        from factorize.measure.speed import (
-            keep_fast,  # speed imports evaluate, which needs this module loaded first
-        )
-
-        slow, timings = keep_fast(model, target, example=speed_example)
-        if slow:
-            policy = dataclasses.replace(policy, overrides=policy.overrides + tuple(Override(n, dense=True) for n in slow))
-            try:
-                plan = choose_ranks(found.sites, have, policy, method=method)
-            except FactorizeError as err:
-                raise FactorizeError(
-                    "the speed check kept layers dense that the budget cannot afford",
-                    [*slow.values(), str(err).splitlines()[0]],
-                    fix="raise the budget, or compress without the speed check and accept the measured slow-down",
-                ) from None
-            for name, reason in slow.items():
-                plan["sites"][name]["reason"] = reason
-        target = model if inplace else copy.deepcopy(model)
-        apply_plan(target, plan, spectra=have, inplace=True)
+    if run.speed_check:
+        plan, target, timings = _keep_fast(model, target, found, have, plan, policy, run, inplace)
     return CompressResult(
         model=target,
         plan=plan,
@@ -176,44 +154,89 @@ def compress(
     )
 
 
-def compress_from_api(
-    model: nn.Module,
-    *,
-    calibration,
-    calibrate,
-    aware_method: str | None,
-    method: str,
-    sequential: bool,
-    sensitivity: bool | str,
-    max_drift: float | None,
-    heldout,
-    drift_metric: str,
-    output_fn,
-    spectra,
-    speed_check: bool,
-    **options,
-) -> CalibratedResult:
-    """Validate the calibration options of :func:`factorize.compress` and run :func:`compress_calibrated`."""
-    if calibration is not None and calibrate is not None:
-        raise FactorizeError("calibration= and calibrate= are the same option, given twice",
-                             fix="pass the sample batches once, as calibration=")
-    batches = calibration if calibration is not None else calibrate
-    asked = [name for name, on in (("method=" + repr(method), method in AWARE_METHODS),
-                                    ("aware_method=", aware_method is not None), ("sequential=", sequential),
-                                    ("sensitivity=", sensitivity), ("max_drift=", max_drift is not None)) if on]
-    if batches is None:
-        raise FactorizeError(f"{', '.join(asked)} needs calibration sample inputs",
-                             fix="pass calibration=batches (tensors, tuples or dicts the model accepts)")
-    if aware_method is not None and method in AWARE_METHODS and aware_method != method:
-        raise FactorizeError(f"method={method!r} and aware_method={aware_method!r} disagree",
-                             fix="give the activation-aware method once")
-    aware = aware_method or (method if method in AWARE_METHODS else "whiten")
-    solver = method if method in ("exact", "gram", "randomized") else "gram"
-    unsupported = [f"{k}=" for k, v in (("spectra", spectra), ("speed_check", speed_check)) if v]
+def _keep_fast(model, target, found, have, plan, policy, run, inplace):
+    """Time the factored layers and re-plan with the slow ones dense (see ``speed_check``)."""
+    from factorize.measure.speed import (
+        keep_fast,  # speed imports evaluate, which needs this module loaded first
+    )
+
+    slow, timings = keep_fast(model, target, example=run.speed_example)
+    if not slow:
+        return plan, target, timings
+    policy = dataclasses.replace(policy, overrides=policy.overrides + tuple(Override(n, dense=True) for n in slow))
+    try:
+        plan = choose_ranks(found.sites, have, policy, method=policy.method)
+    except FactorizeError as err:
+        raise FactorizeError(
+            "the speed check kept layers dense that the budget cannot afford",
+            [*slow.values(), str(err).splitlines()[0]],
+            fix="raise the budget, or compress without the speed check and accept the measured slow-down",
+        ) from None
+    for name, reason in slow.items():
+        plan["sites"][name]["reason"] = reason
+    target = model if inplace else copy.deepcopy(model)
+    apply_plan(target, plan, spectra=have, inplace=True)
+    return plan, target, timings
+
+
+def parse_options(
+    policy: Policy | None, calibration: Iterable | None, options: Mapping[str, Any], *, progress: bool = False,
+) -> tuple[Policy, RunOptions, CalibrationOptions | None, Iterable | None]:
+    """The keywords of :func:`compress`, parsed in one place: (policy, run options, calibration options or None
+    for the plain path, calibration batches). Every problem is a FactorizeError naming the keyword."""
+    options = dict(options)
+    if "calibrate" in options:
+        alias = options.pop("calibrate")
+        if calibration is not None and alias is not None:
+            raise FactorizeError("calibration= and calibrate= are the same option, given twice",
+                                 fix="pass the sample batches once, as calibration=")
+        calibration = alias if calibration is None else calibration
+    accepted = (*POLICY_KEYWORDS, *RUN_KEYWORDS, *CALIBRATION_KEYWORDS)
+    unknown = [k for k in options if k not in accepted]
+    if unknown:
+        raise FactorizeError(
+            f"compress() got unknown keyword{'s' if len(unknown) > 1 else ''}: {', '.join(unknown)}",
+            fix="accepted: policy, calibration, calibrate, heldout, inplace, progress, " + ", ".join(accepted))
+    policy_kw = {k: v for k, v in options.items() if k in POLICY_KEYWORDS}
+    run = RunOptions(**{k: v for k, v in options.items() if k in RUN_KEYWORDS})
+    calib_kw = {k: v for k, v in options.items() if k in CALIBRATION_KEYWORDS}
+    method = policy.method if policy is not None else policy_kw.get("method")
+    asked = ([f"method={method!r}"] if method in AWARE_METHODS else []) + [
+        f"{k}=" for k, v in calib_kw.items() if _differs(v, getattr(CalibrationOptions, k))]
+    if calibration is None:
+        if asked:
+            raise FactorizeError(f"{', '.join(asked)} needs calibration sample inputs",
+                                 fix="pass calibration=batches (tensors, tuples or dicts the model accepts)")
+        policy = resolve_policy(policy, policy_kw)
+        if run.example is not None and policy.cost != "macs":
+            raise FactorizeError("example= is only used to count multiply-accumulates for cost='macs'",
+                                 fix="drop example=, or pass cost='macs' (for the speed check: speed_example=)")
+        return policy, run, None, None
+    _refuse_with_calibration(run)
+    policy, calibrated = calibrated_setup(policy, None, {
+        **policy_kw, **calib_kw, "precision": run.precision, "workers": run.workers, "progress": progress,
+        "example": run.example})
+    return policy, run, calibrated, calibration
+
+
+def _refuse_with_calibration(run: RunOptions) -> None:
+    """Run options the calibrated path cannot honour: refused, never silently dropped."""
+    unsupported = [f"{k}=" for k in ("spectra", "speed_check") if getattr(run, k)]
     if unsupported:
         raise FactorizeError(f"{', '.join(unsupported)} cannot be combined with calibration yet",
                              fix="compress without calibration to use them, or drop them")
-    return compress_calibrated(model, batches, method=aware, sequential=sequential, sensitivity=sensitivity,
-                               max_drift=max_drift, heldout=heldout, metric=drift_metric, output_fn=output_fn,
-                               solver=solver, **options)
+    if run.cache is not None:
+        raise FactorizeError(
+            "cache= cannot be combined with calibration: the cache keys spectra by weight content only, while "
+            "calibrated spectra also depend on the calibration inputs, so a cached one could belong to other inputs",
+            fix="drop cache= (the calibrated spectra are kept on the result: use Calibration to try many budgets), "
+                "or compress without calibration to use the cache")
 
+
+def _differs(value: Any, default: Any) -> bool:
+    """True when a keyword was given a value other than its default (tensors and callables count as given)."""
+    if value is default:
+        return False
+    if isinstance(value, (bool, int, float, str, tuple, type(None))):
+        return value != default
+    return True

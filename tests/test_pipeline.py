@@ -184,3 +184,92 @@ def test_cache_directory_skips_decomposition_on_second_run(mlp, tmp_path, monkey
     assert not calls and second.plan == first.plan
     for name, spec in first.spectra.items():
         assert torch.equal(spec.U, second.spectra[name].U)
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# the front door: a Policy or keywords, parsed in one place
+
+
+def test_policy_object_and_keywords_give_the_same_plan(mlp):
+    by_keywords = compress(mlp, budget=0.5, exclude="head", overrides=[{"pattern": "fc1", "rank": 3}], seed=1)
+    policy = factorize.Policy.from_keywords(budget=0.5, exclude="head", overrides=[{"pattern": "fc1", "rank": 3}],
+                                            seed=1)
+    assert compress(mlp, policy).plan == by_keywords.plan
+    with pytest.raises(FactorizeError, match="both given"):
+        compress(mlp, policy, rank=4)
+
+
+def test_unknown_keyword_names_it_and_lists_the_accepted_ones(mlp):
+    with pytest.raises(FactorizeError, match="unknown keyword: bugdet") as info:
+        compress(mlp, bugdet=0.5)
+    assert "budget" in info.value.fix and "speed_check" in info.value.fix and "max_drift" in info.value.fix
+
+
+def test_no_factorizable_layer_is_one_error_on_both_paths():
+    model = torch.nn.Sequential(torch.nn.ReLU())
+    with pytest.raises(FactorizeError) as plain:
+        compress(model, budget=0.5)
+    with pytest.raises(FactorizeError) as calibrated:
+        compress(model, budget=0.5, calibration=[torch.randn(2, 3)])
+    assert str(plain.value) == str(calibrated.value)
+    assert str(plain.value).startswith("no factorizable layer found")
+
+
+class StridedCNN(torch.nn.Module):
+    """Three conv stages at 16x16, 8x8 and 4x4 output positions (stride 2), then a linear head."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.c1 = torch.nn.Conv2d(3, 16, 3, padding=1)
+        self.c2 = torch.nn.Conv2d(16, 32, 3, stride=2, padding=1)
+        self.c3 = torch.nn.Conv2d(32, 32, 3, stride=2, padding=1)
+        self.fc = torch.nn.Linear(32, 10)
+
+    def forward(self, x):  # (B, 3, 16, 16)
+        h = torch.relu(self.c3(torch.relu(self.c2(torch.relu(self.c1(x))))))
+        return self.fc(h.mean((-2, -1)))
+
+
+def _weight_macs(model, x) -> int:
+    """Multiply-accumulates per sample of every Conv2d / Linear leaf, counted with forward hooks: each output
+    number of a conv costs in_channels/groups * prod(kernel) MACs, of a linear in_features (common practice)."""
+    total = [0]
+
+    def hook(module, args, out):
+        per_output = (module.in_channels // module.groups * module.kernel_size[0] * module.kernel_size[1]
+                      if isinstance(module, torch.nn.Conv2d) else module.in_features)
+        total[0] += out.numel() // x.shape[0] * per_output
+
+    leaves = [m for m in model.modules() if isinstance(m, (torch.nn.Conv2d, torch.nn.Linear))]
+    handles = [m.register_forward_hook(hook) for m in leaves]
+    with torch.no_grad():
+        model(x)
+    for h in handles:
+        h.remove()
+    return total[0]
+
+
+@pytest.mark.filterwarnings("ignore:too few calibration samples")
+def test_macs_budget_counts_output_positions():
+    torch.manual_seed(0)
+    model = StridedCNN().eval()
+    x = torch.randn(2, 3, 16, 16)
+    by_params = compress(model, budget=0.4)
+    by_macs = compress(model, budget=0.4, cost="macs", example=x)
+    ranks_params, ranks_macs = factorize.plan_ranks(by_params.plan), factorize.plan_ranks(by_macs.plan)
+    assert ranks_macs != ranks_params
+    # the last, 4x4 stage costs fewest MACs per parameter, so a MACs budget can afford it a higher rank
+    assert ranks_macs["c3"] > ranks_params["c3"]
+    kept = _weight_macs(by_macs.model, x) / _weight_macs(model, x)
+    assert kept <= 0.4 + 1e-9
+    assert _weight_macs(by_params.model, x) / _weight_macs(model, x) > 0.4  # params budget overshoots in MACs
+    assert by_macs.plan["policy"]["cost"] == "macs"
+    calibrated = compress(model, budget=0.4, cost="macs", calibration=[x])  # the calibration batch counts MACs
+    assert _weight_macs(calibrated.model, x) / _weight_macs(model, x) <= 0.4 + 1e-9
+
+
+def test_macs_budget_without_an_example_is_refused(mlp):
+    with pytest.raises(FactorizeError, match="needs a sample input"):
+        compress(mlp, budget=0.5, cost="macs")
+    with pytest.raises(FactorizeError, match="only used to count multiply-accumulates"):
+        compress(mlp, budget=0.5, example=torch.randn(2, 24))

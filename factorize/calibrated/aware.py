@@ -74,9 +74,12 @@ from tqdm.auto import tqdm
 from factorize.calibrated.stats import InputStats
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site, get_module, matrix_of
+from factorize.plan.policy import (
+    AWARE_METHODS,  # the names, declared once with the Policy
+)
 from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose
+from factorize.spectra.sites import per_site
 
-AWARE_METHODS = ("whiten", "scale")
 DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
 FEW_SAMPLES_RIDGE = 1e-2  # relative ridge when a layer saw fewer samples than its input width (a judgement call)
 REFIT_RIDGE = 0.1  # relative ridge of the sequential least-squares step (chosen by measurement, see docs/quality.md)
@@ -356,12 +359,14 @@ def aware_spectra(
     seed: int = 0,
     precision: str | None = None,
     progress: bool = False,
+    workers: int = 1,
 ) -> dict[str, AwareSpectrum]:
     """Activation-aware spectrum of every site from its statistics.
 
     ``center="auto"`` centres (with bias correction) the layers that have a bias and are not embeddings.
     ``output_grams`` (from :func:`factorize.calibrated.gradients.collect_output_grams`) weight each site's output directions.
     A site with no statistics, or whose statistics hold no sample, is an error listing every such site.
+    ``workers > 1`` decomposes that many layers at once in threads; results equal a serial run's.
     """
     sites = list(sites)
     missing = [s.name for s in sites if s.name not in stats or stats[s.name].count <= 0]
@@ -370,16 +375,17 @@ def aware_spectra(
             "the calibration batches never reached some layers, so they have no input statistics", missing,
             fix="give sample inputs that run through these layers, or exclude them (exclude=[...])",
         )
-    out: dict[str, AwareSpectrum] = {}
-    for site in tqdm(sites, desc="decompose", unit="layer", disable=not progress, leave=False):
+
+    def one(site: Site) -> AwareSpectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
         c = _center_for(site, center)
         k = (ranks or {}).get(site.name)
         G = (output_grams or {}).get(site.name)
-        out[site.name] = decompose_aware(W, stats[site.name], method=method, alpha=alpha, center=c, ridge=ridge,
-                                         output_gram=G, output_ridge=output_ridge, solver=solver, rank=k, seed=seed,
-                                         precision=precision, name=site.name)
-    return out
+        return decompose_aware(W, stats[site.name], method=method, alpha=alpha, center=c, ridge=ridge,
+                               output_gram=G, output_ridge=output_ridge, solver=solver, rank=k, seed=seed,
+                               precision=precision, name=site.name)
+
+    return per_site(one, sites, workers=workers, progress=progress)
 
 
 def _center_for(site: Site, center: bool | str) -> bool:

@@ -33,6 +33,7 @@ needs re-validation under the rules that govern them.
 from __future__ import annotations
 
 import copy
+import dataclasses
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import asdict, dataclass, field
 from typing import Any
@@ -41,13 +42,21 @@ import torch
 from torch import nn
 
 from factorize.calibrated.aware import (
-    AWARE_METHODS,
     REFIT_RIDGE,
     apply_bias_shifts,
     aware_spectra,
     compress_sequential,
 )
 from factorize.calibrated.gradients import collect_output_grams
+from factorize.calibrated.options import (  # noqa: F401 - DRIFT_METRICS and the defaults are re-exported
+    DEFAULT_BUDGETS,
+    DEFAULT_TOLERANCE,
+    DRIFT_METRICS,
+    SENSITIVITY_MODES,
+    CalibrationOptions,
+    calibrated_setup,
+    sensitivity_mode,
+)
 from factorize.calibrated.sensitivity import (
     Sensitivity,
     measure_sensitivity,
@@ -56,15 +65,13 @@ from factorize.calibrated.sensitivity import (
 from factorize.calibrated.stats import as_batch_list, collect_stats
 from factorize.errors import DriftLimitExceeded, FactorizeError
 from factorize.measure.drift import output_drift
+from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
 from factorize.model.feed import token_mask
-from factorize.model.sites import get_module, set_module, walk
-from factorize.plan.ranks import Override, Policy, choose_ranks
+from factorize.model.sites import WalkResult, get_module, set_module, walk
+from factorize.plan.policy import Policy
+from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, apply_plan
-
-DRIFT_METRICS = ("relative_l2", "cosine")
-DEFAULT_BUDGETS = (0.05, 0.95)  # search range: fractions of the sites' parameters (or MACs)
-DEFAULT_TOLERANCE = 0.01  # stop bisecting when the bracket is this narrow
 
 
 @dataclass
@@ -141,20 +148,6 @@ def measure_drift(
 # the calibrated pipeline
 
 
-SENSITIVITY_MODES = ("probes", "gradients", "both")
-
-
-def _sensitivity_mode(sensitivity: bool | str) -> str | None:
-    if sensitivity is True:
-        return "both"
-    if sensitivity is False or sensitivity is None:
-        return None
-    if sensitivity not in SENSITIVITY_MODES:
-        raise FactorizeError(f"unknown sensitivity mode {sensitivity!r}",
-                             fix="use True (= 'both'), 'probes', 'gradients', 'both' or False")
-    return sensitivity
-
-
 def auto_fractions(budget: float | None) -> tuple[float, float]:
     """Probe ranks near the operating point: the budget and half of it (0.5 and 0.25 without a budget)."""
     if budget is None:
@@ -170,55 +163,70 @@ class Calibration:
     Args:
         model: the original model (only read).
         calibration: sample-input batches (batch contract).
-        include / exclude: glob patterns for the sites.
-        method / alpha / center / ridge / solver / precision: of :func:`factorize.calibrated.aware.aware_spectra`.
-        sensitivity: False; ``"probes"`` (per-layer weights from truncation probes, :mod:`factorize.sensitivity`);
+        policy: the :class:`~factorize.plan.policy.Policy` whose ``include`` / ``exclude`` select the sites, whose
+            ``multiple`` bounds partial decompositions, whose ``seed`` seeds randomized solvers and whose ``method``
+            may name the activation-aware method or the solver. Its rank rule is not used here: :meth:`plan`
+            takes a policy per call. Without a policy, ``include`` / ``exclude`` / ``multiple`` / ``seed`` may be
+            given as keywords.
+        options: :class:`~factorize.calibrated.options.CalibrationOptions`, or its fields as keywords:
+            aware_method (``"whiten"``/``"scale"``; ``method=`` is accepted for it here), solver / alpha / center /
+            ridge / precision (of :func:`factorize.calibrated.aware.aware_spectra`); sensitivity: False,
+            ``"probes"`` (per-layer weights from truncation probes, :mod:`factorize.calibrated.sensitivity`),
             ``"gradients"`` (output directions weighted by the final output's Gauss-Newton matrix,
-            :func:`factorize.calibrated.gradients.collect_output_grams`); ``"both"`` or True (gradients, then probes).
-        sensitivity_batches: probe inputs (default: the calibration batches).
-        fractions: probe ranks as fractions of each layer's parameters.
-        projections: random projections per batch for the output weights.
-        output_fn: ``output_fn(output, batch) -> tensor``: the output that matters (default: the primary one).
-        per_site: collect input statistics one layer at a time.
-        progress: progress bars on stderr.
+            :func:`factorize.calibrated.gradients.collect_output_grams`), ``"both"`` or True (gradients, then
+            probes); sensitivity_batches (probe inputs, default: the calibration batches); fractions (probe ranks
+            as fractions of each layer's parameters, ``"auto"``: 0.5 and 0.25); projections (random projections
+            per batch for the output weights); output_fn (``output_fn(output, batch) -> tensor``: the output that
+            matters); per_site (collect statistics one layer at a time); example (a batch to count MACs on for
+            ``cost="macs"``, default: the first calibration batch); workers (layers decomposed at once, threads);
+            progress (bars on stderr).
     """
 
-    def __init__(self, model: nn.Module, calibration: Iterable[Any], *, include=None, exclude=None,
-                 method: str = "whiten", alpha: float = 0.5, center: bool | str = "auto", ridge: float | None = None,
-                 solver: str = "gram", precision: str | None = None, sensitivity: bool | str = False,
-                 sensitivity_batches: Iterable[Any] | None = None, fractions: tuple[float, ...] = (0.5, 0.25),
-                 projections: int = 2, output_fn: Callable | None = None, multiple: int = 1,
-                 per_site: bool = False, progress: bool = False) -> None:
-        if method not in AWARE_METHODS:
-            raise FactorizeError(f"unknown activation-aware method {method!r}",
-                                 fix=f"use one of {', '.join(AWARE_METHODS)}")
-        mode = _sensitivity_mode(sensitivity)
+    def __init__(self, model: nn.Module, calibration: Iterable[Any], policy: Policy | None = None,
+                 options: CalibrationOptions | None = None, **keywords: Any) -> None:
+        selection = {k: keywords.pop(k) for k in ("include", "exclude", "multiple", "seed") if k in keywords}
+        if "method" in keywords:  # Calibration's own name for the activation-aware method
+            keywords["aware_method"] = keywords.pop("method")
+        if policy is not None and selection:
+            raise FactorizeError("a Policy and include/exclude/multiple/seed keywords were both given",
+                                 [f"{k}=" for k in selection], fix="put them into the Policy, or drop the Policy")
+        if options is not None and keywords:
+            raise FactorizeError("CalibrationOptions and option keywords were both given", [f"{k}=" for k in keywords],
+                                 fix="put them into the options, or pass keywords only")
+        options = options if options is not None else CalibrationOptions.from_keywords(**keywords)
+        method, solver = options.methods(policy)
+        mode = sensitivity_mode(options.sensitivity)
         if mode in ("gradients", "both") and method != "whiten":
             raise FactorizeError("gradient sensitivity weights output directions of the whitened problem",
                                  fix="use method='whiten', or sensitivity='probes'")
-        self.model, self.method, self.center, self.ridge, self.precision = model, method, center, ridge, precision
-        self.output_fn, self.progress, self.mode = output_fn, progress, mode
-        self.found = walk(model, include=include, exclude=exclude)
-        if not self.found.sites:
-            raise FactorizeError("no factorizable layer found" + (" matching the include/exclude patterns"
-                                 if include or exclude else ""), [f"{s.name}: {s.reason}" for s in self.found.skipped],
-                                 fix="check the include/exclude globs against model.named_modules()")
+        if policy is not None:
+            selection = {"include": policy.include, "exclude": policy.exclude, "multiple": policy.multiple,
+                         "seed": policy.seed}
+        include, exclude = selection.get("include"), selection.get("exclude")
+        multiple = selection.get("multiple") or 1
+        self.model, self.method, self.center, self.ridge = model, method, options.center, options.ridge
+        self.precision, self.output_fn, self.progress, self.mode = options.precision, options.output_fn, \
+            options.progress, mode
+        self.options = options
+        self.found = walk(model, include=include, exclude=exclude).require_sites(bool(include or exclude))
         self.batches = as_batch_list(calibration)
         self.todo = [s for s in self.found.sites if not s.tied_with]
-        self.stats = collect_stats(model, self.todo, self.batches, progress=progress, per_site=per_site)
+        self.stats = collect_stats(model, self.todo, self.batches, progress=self.progress, per_site=options.per_site)
         self.output_grams = None
         if mode in ("gradients", "both"):
-            self.output_grams = collect_output_grams(model, self.todo, self.batches, projections=projections,
-                                                     output_fn=output_fn, progress=progress)
+            self.output_grams = collect_output_grams(model, self.todo, self.batches, projections=options.projections,
+                                                     output_fn=self.output_fn, progress=self.progress)
         ranks = None
         if solver in ("auto", "randomized"):  # past break-even a layer stays dense: no more triplets needed
             ranks = {s.name: max(1, min(s.max_rank, s.break_even + multiple)) for s in self.todo}
-        self.spectra = aware_spectra(model, self.todo, self.stats, method=method, alpha=alpha, center=center,
-                                     ridge=ridge, solver=solver, ranks=ranks, output_grams=self.output_grams,
-                                     precision=precision, progress=progress)
+        self.spectra = aware_spectra(model, self.todo, self.stats, method=method, alpha=options.alpha,
+                                     center=self.center, ridge=self.ridge, solver=solver, ranks=ranks,
+                                     output_grams=self.output_grams, seed=selection.get("seed") or 0,
+                                     precision=self.precision, progress=self.progress, workers=options.workers)
         self.sensitivity: Sensitivity | None = None
-        self.probe_batches = as_batch_list(sensitivity_batches) if sensitivity_batches is not None else self.batches
-        self.fractions = tuple(fractions)
+        probes = options.sensitivity_batches
+        self.probe_batches = as_batch_list(probes) if probes is not None else self.batches
+        self.fractions = (0.5, 0.25) if options.fractions == "auto" else tuple(options.fractions)
         self.wants_probes = mode in ("probes", "both")  # measured at the first budget plan (only budgets use them)
 
     def measure(self, fractions: tuple[float, ...]) -> Sensitivity:
@@ -244,6 +252,9 @@ class Calibration:
         allocation, so they are measured (once) on the first budget plan that needs them."""
         if policy.budget is not None and self.wants_probes and self.sensitivity is None:
             self.measure(self.fractions)
+        if policy.cost == "macs" and not all(s.macs_per_sample for s in self.found.sites):
+            example = self.options.example if self.options.example is not None else self.batches[0]
+            self.found = WalkResult(with_macs(self.model, self.found.sites, example), self.found.skipped)
         return choose_ranks(self.found.sites, self.spectra, policy, method=self.method, error_scale=self.error_scale)
 
     def build(self, plan: dict, *, sequential: bool = False, refit: bool = True,
@@ -281,27 +292,12 @@ class Calibration:
 def compress_calibrated(
     model: nn.Module,
     calibration: Iterable[Any],
+    policy: Policy | None = None,
+    options: CalibrationOptions | None = None,
     *,
-    budget: float | None = None,
-    rank: int | None = None,
-    energy: float | None = None,
-    keep: float | None = None,
-    include: str | Iterable[str] | None = None,
-    exclude: str | Iterable[str] | None = None,
-    sequential: bool = False,
-    refit: bool = True,
-    refit_ridge: float = REFIT_RIDGE,
-    fractions: tuple[float, ...] | str = "auto",
-    max_drift: float | None = None,
     heldout: Iterable[Any] | None = None,
-    metric: str = "relative_l2",
-    budgets: tuple[float, float] = DEFAULT_BUDGETS,
-    tolerance: float = DEFAULT_TOLERANCE,
-    multiple: int = 1,
-    overrides: Iterable[Override | Mapping] | None = None,
-    cost: str = "params",
     inplace: bool = False,
-    **options: Any,
+    **keywords: Any,
 ) -> CalibratedResult:
     """Activation-aware compression from calibration batches (see the module docstring).
 
@@ -309,38 +305,29 @@ def compress_calibrated(
         model: the trained model; not modified unless ``inplace=True``.
         calibration: sample-input batches (batch contract). Their inputs set each layer's statistics; keep
             them disjoint from the inputs you evaluate on.
-        budget / rank / energy / keep: the rank policy (exactly one, unless ``max_drift`` is given).
-        sequential: factor layers in forward order from the partly compressed model's inputs.
-        refit / refit_ridge: sequential only (see :func:`factorize.calibrated.aware.compress_sequential`).
-        fractions: probe ranks for ``sensitivity`` (``"auto"``: the budget and half of it, see
-            :func:`auto_fractions`).
-        max_drift: search for the smallest budget whose drift on ``heldout`` is at most this (see
-            :func:`search_drift`); replaces the rank policy.
-        heldout / metric / budgets / tolerance: of the drift search.
-        multiple / overrides / cost / inplace: as for :func:`factorize.compress`.
-        options: for :class:`Calibration` -- method (``"whiten"``/``"scale"``), alpha, center, ridge, solver,
-            precision, sensitivity (False, True, ``"probes"``, ``"gradients"``, ``"both"``),
-            sensitivity_batches, projections, output_fn, per_site, progress.
+        policy: the :class:`~factorize.plan.policy.Policy` (rank rule, include/exclude, overrides, multiple, cost,
+            method, seed); or its keywords (``budget=0.5``, ...), see :meth:`Policy.from_keywords`.
+        options: :class:`~factorize.calibrated.options.CalibrationOptions`, or its fields as keywords:
+            sequential (factor layers in forward order from the partly compressed model's inputs), refit /
+            refit_ridge (sequential only, see :func:`factorize.calibrated.aware.compress_sequential`), fractions
+            (probe ranks for ``sensitivity``; ``"auto"``: the budget and half of it, see :func:`auto_fractions`),
+            max_drift (search for the smallest budget whose drift on ``heldout`` is at most this, see
+            :func:`search_drift`; replaces the rank rule), drift_metric (or ``metric=``) / budgets / tolerance
+            (of the drift search), and those of :class:`Calibration`.
+        heldout: batches the drift search measures on.
+        inplace: rewrite ``model`` itself.
     """
-    if metric not in DRIFT_METRICS:
-        raise FactorizeError(f"unknown drift metric {metric!r}", fix=f"use one of {', '.join(DRIFT_METRICS)}")
-    if max_drift is not None:
-        if any(v is not None for v in (budget, rank, energy, keep)):
-            raise FactorizeError("max_drift= chooses the budget itself; it cannot be combined with a rank policy",
-                                 fix="drop budget=/rank=/energy=/keep=, or drop max_drift=")
-        return search_drift(model, max_drift, calibration, heldout, include=include, exclude=exclude,
-                            sequential=sequential, refit=refit, refit_ridge=refit_ridge,
-                            fractions=(0.5, 0.25) if fractions == "auto" else fractions, metric=metric,
-                            budgets=budgets, tolerance=tolerance, multiple=multiple, overrides=overrides, cost=cost,
-                            inplace=inplace, **options)
-    ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
-    policy = Policy(rank=rank, energy=energy, keep=keep, budget=budget, multiple=multiple, overrides=ov, cost=cost)
-    fr = auto_fractions(budget if budget is not None else keep) if fractions == "auto" else fractions
-    calib = Calibration(model, calibration, include=include, exclude=exclude, fractions=fr, multiple=multiple,
-                        **options)
+    policy, options = calibrated_setup(policy, options, keywords)
+    if options.max_drift is not None:
+        return search_drift(model, options.max_drift, calibration, heldout, policy, options, inplace=inplace)
+    if options.fractions == "auto":
+        options = dataclasses.replace(options, fractions=auto_fractions(
+            policy.budget if policy.budget is not None else policy.keep))
+    calib = Calibration(model, calibration, policy, options)
     plan = calib.plan(policy)
-    compressed = calib.build(plan, sequential=sequential, refit=refit, refit_ridge=refit_ridge)
-    calib.annotate(plan, sequential=sequential)
+    compressed = calib.build(plan, sequential=options.sequential, refit=options.refit,
+                             refit_ridge=options.refit_ridge)
+    calib.annotate(plan, sequential=options.sequential)
     return _result(model, compressed, plan, calib, inplace)
 
 
@@ -368,35 +355,30 @@ def search_drift(
     max_drift: float,
     calibration: Iterable[Any],
     heldout: Iterable[Any] | None = None,
+    policy: Policy | None = None,
+    options: CalibrationOptions | None = None,
     *,
-    metric: str = "relative_l2",
-    budgets: tuple[float, float] = DEFAULT_BUDGETS,
-    tolerance: float = DEFAULT_TOLERANCE,
-    include: str | Iterable[str] | None = None,
-    exclude: str | Iterable[str] | None = None,
-    sequential: bool = False,
-    refit: bool = True,
-    refit_ridge: float = REFIT_RIDGE,
-    multiple: int = 1,
-    overrides: Iterable[Override | Mapping] | None = None,
-    cost: str = "params",
     inplace: bool = False,
-    **options: Any,
+    **keywords: Any,
 ) -> CalibratedResult:
     """The smallest budget whose measured drift on ``heldout`` stays at most ``max_drift``.
 
     Args:
         model: the trained model; not modified unless ``inplace=True``.
-        max_drift: the limit, in ``metric`` units (relative L2 by default; 1 - mean cosine for ``"cosine"``).
+        max_drift: the limit, in ``drift_metric`` units (relative L2 by default; 1 - mean cosine for ``"cosine"``).
         calibration: batches for the statistics (and the sensitivity probes).
         heldout: batches to measure drift on; None measures on the calibration batches (optimistic: the
             result's ``search.heldout`` is then False).
-        metric: ``"relative_l2"`` or ``"cosine"``.
-        budgets: the (smallest, largest) budget searched; tolerance: bisection stops at this bracket width.
-        sequential: build the final model sequentially (the search itself uses per-layer factors; the sequential
-            model's drift is re-measured, and it is kept only if it drifts less).
-        options: for :class:`Calibration` (method, sensitivity, output_fn, ...); ``output_fn`` also defines the
-            output the drift is measured on.
+        policy: a :class:`~factorize.plan.policy.Policy` with ``budget=`` (each budget tried replaces it), or
+            its keywords without a rank rule (include, exclude, overrides, multiple, cost, method, seed).
+        options: :class:`~factorize.calibrated.options.CalibrationOptions` or its fields as keywords:
+            drift_metric (or ``metric=``: ``"relative_l2"`` or ``"cosine"``); budgets (the (smallest, largest)
+            budget searched); tolerance (bisection stops at this bracket width); sequential (build the final
+            model sequentially: the search itself uses per-layer factors; the sequential model's drift is
+            re-measured, and it is kept only if it drifts less); refit / refit_ridge; and those of
+            :class:`Calibration` (method, sensitivity, output_fn, ...); ``output_fn`` also defines the output the
+            drift is measured on.
+        inplace: rewrite ``model`` itself.
 
     Returns:
         :class:`CalibratedResult` at the chosen budget; ``.search`` holds every budget walked and its drift.
@@ -404,21 +386,21 @@ def search_drift(
     Raises:
         DriftTargetUnreachable: even ``budgets[1]`` drifts more than ``max_drift`` (carries the closest point).
     """
-    if metric not in DRIFT_METRICS:
-        raise FactorizeError(f"unknown drift metric {metric!r}", fix=f"use one of {', '.join(DRIFT_METRICS)}")
-    lo, hi = _check_search(max_drift, budgets, tolerance)
+    policy, options = calibrated_setup(policy, options, keywords, search=True)
+    metric, sequential = options.drift_metric, options.sequential
+    lo, hi = _check_search(max_drift, options.budgets, options.tolerance)
     eval_batches = as_batch_list(heldout) if heldout is not None else as_batch_list(calibration)
-    options.setdefault("fractions", (0.5, 0.25))
-    calib = Calibration(model, calibration, include=include, exclude=exclude, multiple=multiple, **options)
-    output_fn = options.get("output_fn")
+    if options.fractions == "auto":
+        options = dataclasses.replace(options, fractions=(0.5, 0.25))
+    calib = Calibration(model, calibration, policy, options)
+    output_fn = options.output_fn
     reference = run_outputs(model, eval_batches, output_fn)
-    ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
     search = DriftSearch(max_drift=max_drift, metric=metric, heldout=heldout is not None)
     plans: dict[float, dict] = {}
 
     def drift_at(b: float) -> float | None:
         try:
-            plan = calib.plan(Policy(budget=b, multiple=multiple, overrides=ov, cost=cost))
+            plan = calib.plan(policy.with_budget(b))
         except FactorizeError as err:  # too small to hold rank 1 everywhere
             search.points.append(DriftPoint(b, None, None, note=str(err).splitlines()[0]))
             return None
@@ -435,7 +417,7 @@ def search_drift(
     if d_lo is not None and d_lo <= max_drift:
         good = lo
     else:
-        while hi - lo > tolerance:
+        while hi - lo > options.tolerance:
             mid = round((lo + hi) / 2, 6)
             d = drift_at(mid)
             if d is not None and d <= max_drift:
@@ -447,7 +429,7 @@ def search_drift(
     compressed = calib.build(plan)  # rebuilt: only plans are kept during the walk, never many model copies
     if sequential:
         seq_plan = copy.deepcopy(plan)
-        seq_model = calib.build(seq_plan, sequential=True, refit=refit, refit_ridge=refit_ridge)
+        seq_model = calib.build(seq_plan, sequential=True, refit=options.refit, refit_ridge=options.refit_ridge)
         d_seq = measure_drift(reference, seq_model, eval_batches, metric=metric, output_fn=output_fn)
         search.points.append(DriftPoint(good, d_seq, _kept_fraction(seq_plan), note="sequential"))
         if d_seq <= search.drift:

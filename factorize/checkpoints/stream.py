@@ -34,6 +34,7 @@ import shutil
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import torch
 from safetensors import safe_open
@@ -52,11 +53,10 @@ from factorize.checkpoints.files import (
 )
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
+from factorize.plan.policy import Policy, rank_needed, resolve_policy
 from factorize.plan.ranks import (
     PLAN_FORMAT,
     PLAN_VERSION,
-    Override,
-    Policy,
     choose_ranks,
 )
 from factorize.spectra.cache import SpectrumCache, as_cache
@@ -253,22 +253,14 @@ def _relative_error(W: torch.Tensor, B: torch.Tensor, A: torch.Tensor) -> float:
 def shrink_checkpoint(
     src: str | os.PathLike,
     dst: str | os.PathLike,
+    policy: Policy | None = None,
     *,
-    budget: float | None = None,
-    rank: int | None = None,
-    energy: float | None = None,
-    keep: float | None = None,
-    include: str | Iterable[str] | None = None,
-    exclude: str | Iterable[str] | None = None,
-    method: str = "auto",
-    multiple: int = 1,
-    overrides: Iterable[Override | Mapping] | None = None,
-    seed: int = 0,
     precision: str | None = None,
     force: bool = False,
     cache_dir: str | os.PathLike | SpectrumCache | None = None,
     metadata: Mapping[str, str] | None = None,
     progress: bool = False,
+    **keywords: Any,
 ) -> dict:
     """Factor the linear-layer weights of a safetensors checkpoint, streaming, without the model's code.
 
@@ -276,10 +268,12 @@ def shrink_checkpoint(
         src: a ``.safetensors`` file, a ``*.safetensors.index.json``, or a directory holding one of them.
         dst: the output file (single-file input) or directory (sharded input); refused if it exists unless
             ``force``, and never the input itself.
-        budget / rank / energy / keep / multiple / overrides: the rank policy, as in :func:`factorize.compress`.
-        include / exclude: glob patterns on module names (``layers.*.mlp.*``) or tensor names.
-        method: ``"auto"`` (default, as :func:`factorize.compress`), ``"exact"``, ``"gram"`` or ``"randomized"``;
-            seed and precision as in :func:`factorize.spectra.decompose.decompose`.
+        policy: a :class:`~factorize.plan.policy.Policy`, or its keywords as in :func:`factorize.compress`
+            (budget / rank / energy / keep, multiple, overrides, seed); include / exclude match module names
+            (``layers.*.mlp.*``) or tensor names; method ``"auto"`` (default), ``"exact"``, ``"gram"`` or
+            ``"randomized"``. ``cost="macs"`` and the activation-aware methods are refused: there is no model to
+            run here.
+        precision: as in :func:`factorize.spectra.decompose.decompose`.
         cache_dir: a spectrum cache directory (or :class:`SpectrumCache`) to reuse decompositions across runs.
         metadata: extra string entries for the output's metadata.
         progress: progress bar on stderr.
@@ -289,10 +283,15 @@ def shrink_checkpoint(
         "files", "bytes_before", "bytes_after", "params_before", "params_after", "passes", "cache"}``.
         ``relative_error`` is measured on the stored factors: ||W - BA||_F / ||W||_F.
     """
-    if method not in METHODS:
-        raise FactorizeError(f"unknown method {method!r}", fix=f"use one of {', '.join(METHODS)}")
-    ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
-    policy = Policy(rank=rank, energy=energy, keep=keep, budget=budget, multiple=multiple, overrides=ov)
+    policy = resolve_policy(policy, keywords)
+    if policy.method not in METHODS:
+        raise FactorizeError(f"unknown method {policy.method!r} for a checkpoint without its model (activation-aware "
+                             "methods need the model and calibration inputs)", fix=f"use one of {', '.join(METHODS)}")
+    if policy.cost != "params":
+        raise FactorizeError("cost='macs' needs the model to count multiply-accumulates; a checkpoint alone has none",
+                             fix="use cost='params', or load the model and call factorize.compress(cost='macs', "
+                                 "example=batch)")
+    include, exclude, method, seed = policy.include, policy.exclude, policy.method, policy.seed
     ckpt = open_checkpoint(src)
     out_dir, finals = _outputs(ckpt, Path(dst), force)
     chosen, passed = select(ckpt, include, exclude)
@@ -305,7 +304,7 @@ def shrink_checkpoint(
     cache = as_cache(cache_dir)
     job = _Job(ckpt, chosen, policy, method, seed, precision, cache, progress)
     passes = 1
-    if budget is not None:
+    if policy.budget is not None:
         job.plan_globally()
         passes = 2
     bound = sum(h.file_size for h in ckpt.files) + sum(job.reserve_for(h) for h in ckpt.files)
@@ -357,17 +356,13 @@ class _Job:
     """One shrink: the plan (built globally or per layer), the streamed writes, and the report."""
 
     def __init__(self, ckpt, chosen, policy, method, seed, precision, cache, progress) -> None:
-        from factorize.plan.ranks import (
-            _rank_needed,  # the same partial-decomposition size as compress() uses
-        )
-
         self.ckpt, self.policy, self.method = ckpt, policy, method
         self.seed, self.precision, self.cache, self.progress = seed, precision, cache, progress
         self.chosen = {c.weight.name: c for c in chosen}
         self.biases = {c.bias.name: c for c in chosen if c.bias is not None}
         self.sites = [c.site for c in chosen]
         partial = method in ("auto", "randomized")
-        self.k = {s.name: (_rank_needed(s, policy) if partial else None) for s in self.sites}
+        self.k = {s.name: (rank_needed(s, policy) if partial else None) for s in self.sites}  # as compress()
         self.plan: dict | None = None
         self.entries: dict[str, dict] = {}
         self.report: dict[str, dict] = {}

@@ -19,6 +19,7 @@ guarantee of behaviour on other inputs (see :data:`factorize.measure.report.CAUT
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from typing import Any
@@ -37,7 +38,7 @@ from factorize.measure.timing import median_latency
 from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size, primary_output, run_model, token_mask
 from factorize.model.hooks import forward_hooks
-from factorize.model.sites import get_module, matrix_of
+from factorize.model.sites import Site, get_module, matrix_of
 from factorize.rewrite.layers import Factored, factored_layers
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -194,6 +195,25 @@ def output_positions(model: nn.Module, names: Iterable[str], batch: Any) -> dict
     with forward_hooks(model, {name: hook_for(name) for name in names}):
         run_model(model, [batch])
     return {name: counts.get(name, 0) for name in names}
+
+
+def with_macs(model: nn.Module, sites: Sequence[Site], example: Any) -> list[Site]:
+    """``sites`` with ``macs_per_sample`` measured: each site's parameters (mn) times its output positions per
+    sample on ``example`` (tokens of a linear layer, output pixels of a convolution), from :func:`output_positions`.
+
+    This is what ``cost="macs"`` budgets count (:mod:`factorize.plan.ranks`). A site the example never reaches
+    would count 0 and is an error, since its cost cannot be known.
+    """
+    if example is None:
+        raise FactorizeError("cost='macs' needs a sample input to count multiply-accumulates per sample",
+                             fix="pass example=batch (or calibration=batches), or use cost='params'")
+    positions = output_positions(model, [s.name for s in sites], example)
+    never = [s.name for s in sites if positions[s.name] == 0]
+    if never:
+        raise FactorizeError("the example input never reached some layers, so their multiply-accumulates are unknown",
+                             never, fix="give an example that runs through these layers, exclude them, "
+                                        "or use cost='params'")
+    return [dataclasses.replace(s, macs_per_sample=s.params * positions[s.name]) for s in sites]
 
 
 def _out_channels(module: nn.Module) -> int:

@@ -105,6 +105,19 @@ class WalkResult:
     def tied(self) -> list[Site]:
         return [s for s in self.sites if s.tied_with]
 
+    def require_sites(self, filtered: bool = False) -> WalkResult:
+        """This result, or the one error every entry point gives when the walk found nothing to factor.
+
+        ``filtered``: include/exclude patterns narrowed the walk (the message then says so)."""
+        if self.sites:
+            return self
+        raise FactorizeError(
+            "no factorizable layer found" + (" matching the include/exclude patterns" if filtered else ""),
+            [f"{s.name}: {s.reason}" for s in self.skipped],
+            fix="factorize handles nn.Linear, nn.Conv1d/2d (groups=1), nn.Embedding and transposed projections; "
+            "check the include/exclude globs against model.named_modules()",
+        )
+
 
 def is_transposed_projection(module: nn.Module) -> bool:
     """Duck-typing rule for projections that store their weight transposed (GPT-2's ``Conv1D`` and the like).

@@ -29,84 +29,14 @@ import fnmatch
 import heapq
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, field
-
-import numpy as np
 
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
+from factorize.plan.policy import POLICY_KEYS, Override, Policy, rank_needed  # noqa: F401 - re-exported
 from factorize.spectra.decompose import Spectrum
 
 PLAN_FORMAT = "factorize.plan"
 PLAN_VERSION = 1
-POLICY_KEYS = ("rank", "energy", "keep", "budget")
-
-
-@dataclass(frozen=True)
-class Override:
-    """A per-pattern exception to the policy: a fixed ``rank``, ``energy`` or ``keep``, or ``dense=True``."""
-
-    pattern: str  # glob on qualified names (fnmatch rules)
-    rank: int | None = None
-    energy: float | None = None
-    keep: float | None = None
-    dense: bool = False
-
-
-@dataclass(frozen=True)
-class Policy:
-    """How ranks are chosen; exactly one of rank, energy, keep, budget is set."""
-
-    rank: int | None = None  # same rank everywhere
-    energy: float | None = None  # fraction of sum(s^2) kept per layer, in (0, 1]
-    keep: float | None = None  # fraction of each layer's parameters kept, in (0, 1]
-    budget: float | None = None  # fraction of all sites' parameters (or MACs) kept, in (0, 1]
-    multiple: int = 1  # round ranks to a multiple of this (8 or 16 suit fast kernels)
-    cost: str = "params"  # what budget= counts: "params" or "macs"
-    overrides: tuple[Override, ...] = field(default_factory=tuple)
-
-    def __post_init__(self) -> None:
-        _validate_policy(self)
-
-    def to_dict(self) -> dict:
-        d = {k: v for k, v in asdict(self).items() if k != "overrides" and v is not None}
-        if self.overrides:
-            d["overrides"] = [{k: v for k, v in asdict(o).items() if v not in (None, False)} for o in self.overrides]
-        return d
-
-
-def _validate_policy(p: Policy) -> None:
-    given = [k for k in POLICY_KEYS if getattr(p, k) is not None]
-    if len(given) != 1:
-        raise FactorizeError(
-            f"exactly one rank policy is needed, got {len(given)}" + (f" ({', '.join(given)})" if given else ""),
-            fix="pass one of rank=N, energy=t, keep=f or budget=f",
-        )
-    problems = _check_values("", rank=p.rank, energy=p.energy, keep=p.keep, budget=p.budget)
-    if not isinstance(p.multiple, int) or p.multiple < 1:
-        problems.append(f"multiple must be a positive integer, got {p.multiple!r}")
-    if p.cost not in ("params", "macs"):
-        problems.append(f"cost must be 'params' or 'macs', got {p.cost!r}")
-    for o in p.overrides:
-        set_ = [k for k in ("rank", "energy", "keep") if getattr(o, k) is not None] + (["dense"] if o.dense else [])
-        if len(set_) != 1:
-            problems.append(f"override {o.pattern!r} must set exactly one of rank, energy, keep, dense")
-        problems += _check_values(f"override {o.pattern!r}: ", rank=o.rank, energy=o.energy, keep=o.keep)
-    if problems:
-        raise FactorizeError("invalid rank policy", problems, fix="ranks are integers >= 1; fractions lie in (0, 1]")
-
-
-def _check_values(prefix: str, **values) -> list[str]:
-    problems = []
-    rank = values.pop("rank")
-    if rank is not None and (isinstance(rank, bool) or not isinstance(rank, (int, np.integer)) or rank < 1):
-        problems.append(f"{prefix}rank must be an integer >= 1, got {rank!r}")
-    for key, v in values.items():
-        if v is None:
-            continue
-        if isinstance(v, bool) or not isinstance(v, (int, float, np.floating)) or not (0 < float(v) <= 1):
-            problems.append(f"{prefix}{key} must be a fraction in (0, 1], got {v!r}")
-    return problems
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -336,15 +266,3 @@ def plan_summary(plan: Mapping) -> dict:
         "params_after": after,
         "kept_fraction": after / before if before else 1.0,
     }
-
-
-def _rank_needed(site: Site, policy: Policy) -> int:
-    """How many leading singular triplets a policy can use for ``site`` (for partial decompositions)."""
-    if not policy.overrides:  # a per-pattern rule may ask for more than the policy: then the bound below
-        if policy.rank is not None:
-            return min(-(-policy.rank // policy.multiple) * policy.multiple, site.max_rank)  # rounded up
-        if policy.keep is not None:
-            return max(1, min(site.max_rank, int(policy.keep * site.params / sum(site.shape))))
-    # energy / budget / overrides: anything past break-even keeps the layer dense, so no more is needed
-    return max(1, min(site.max_rank, site.break_even + policy.multiple))
-

@@ -33,7 +33,7 @@ from pathlib import Path
 from typing import Any
 
 from factorize.errors import FactorizeError
-from factorize.plan.ranks import POLICY_KEYS, Override, Policy
+from factorize.plan.policy import POLICY_KEYS, Override, Policy
 from factorize.spectra.decompose import METHODS
 
 if sys.version_info >= (3, 11):
@@ -108,10 +108,12 @@ def parse_recipe(data: dict[str, Any], *, source: str = "recipe") -> Recipe:
     recipe.multiple = _typed(data, "multiple", int, 1, problems)
     recipe.cost = _typed(data, "cost", str, "params", problems)
     recipe.policy = _policy(data.get("policy"), problems)
-    recipe.overrides = _layers(data.get("layer", []), problems)
+    layers = _layers(data.get("layer", []), problems)
     if not problems:
         try:  # the core's own validation (fractions in (0, 1], ranks >= 1, one rule per override)
-            Policy(**recipe.policy, multiple=recipe.multiple, cost=recipe.cost, overrides=tuple(recipe.overrides))
+            policy = Policy.from_keywords(**recipe.policy, multiple=recipe.multiple, cost=recipe.cost,
+                                          overrides=layers)
+            recipe.overrides = list(policy.overrides)
         except FactorizeError as err:
             problems += err.problems or [str(err).splitlines()[0]]
     if problems:
@@ -152,7 +154,8 @@ def _policy(value: Any, problems: list[str]) -> dict:
     return given
 
 
-def _layers(value: Any, problems: list[str]) -> list[Override]:
+def _layers(value: Any, problems: list[str]) -> list[dict]:
+    """The [[layer]] tables as override mappings (``match`` becomes ``pattern``) for :meth:`Policy.from_keywords`."""
     if not isinstance(value, list):
         problems.append("[[layer]] entries must be an array of tables")
         return []
@@ -167,10 +170,8 @@ def _layers(value: Any, problems: list[str]) -> list[Override]:
                      for k in unknown]
         if "dense" in entry and entry["dense"] is not True:
             problems.append(f"{where} ({entry['match']!r}): dense must be true when given")
-        out.append(Override(
-            pattern=entry["match"], rank=entry.get("rank"), energy=entry.get("energy"), keep=entry.get("keep"),
-            dense=entry.get("dense") is True,
-        ))
+        out.append({"pattern": entry["match"], "rank": entry.get("rank"), "energy": entry.get("energy"),
+                    "keep": entry.get("keep"), "dense": entry.get("dense") is True})
     return out
 
 

@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor, as_completed
+from typing import TypeVar
 
 from torch import nn
 from tqdm.auto import tqdm
@@ -14,6 +15,8 @@ from factorize.model.sites import (
     matrix_of,
 )
 from factorize.spectra.decompose import Spectrum, decompose
+
+T = TypeVar("T")
 
 
 def decompose_sites(
@@ -49,8 +52,15 @@ def decompose_sites(
             return store.get_or_compute(W, method, rank=k, seed=seed, precision=precision, name=site.name, **options)
         return decompose(W, method=method, rank=k, seed=seed, precision=precision, name=site.name, **options)
 
-    bar = tqdm(total=len(sites), desc="decompose", unit="layer", disable=not progress, leave=False)
-    out: dict[str, Spectrum] = {}
+    return per_site(one, sites, workers=workers, progress=progress)
+
+
+def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 1, progress: bool = False,
+             desc: str = "decompose") -> dict[str, T]:
+    """``{site.name: one(site)}`` in module order; ``workers > 1`` runs that many sites at once in threads
+    (LAPACK and BLAS release the GIL), so a per-site function that is deterministic gives a serial run's results."""
+    bar = tqdm(total=len(sites), desc=desc, unit="layer", disable=not progress, leave=False)
+    out: dict[str, T] = {}
     try:
         if workers <= 1 or len(sites) <= 1:
             for site in sites:
@@ -65,4 +75,3 @@ def decompose_sites(
     finally:
         bar.close()
     return {site.name: out[site.name] for site in sites}  # module order, whatever the finishing order
-

@@ -38,7 +38,7 @@ An LR scheduler holds a reference to the old optimizer: build a new one for the 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import torch
@@ -48,7 +48,8 @@ from factorize.errors import FactorizeError
 from factorize.model.count import count_parameters
 from factorize.model.sites import Site, WalkResult, get_module, set_module, walk
 from factorize.pipeline import compress
-from factorize.plan.ranks import Override, Policy, choose_ranks
+from factorize.plan.policy import POLICY_KEYS, Policy, resolve_policy
+from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, merge
 from factorize.rewrite.layers import (
     Factored,
@@ -58,9 +59,6 @@ from factorize.rewrite.layers import (
 )
 from factorize.spectra.decompose import Spectrum, compute_dtype_for
 from factorize.spectra.sites import decompose_sites
-
-POLICY_KEYS = ("budget", "rank", "energy", "keep")
-
 
 # ---------------------------------------------------------------------------------------------------------------
 # spectrum of a factored layer, and a factored layer at a lower rank
@@ -131,19 +129,10 @@ def _keep_current(entry: dict, rank: int, site: Site) -> None:
 
 def refactor(
     model: nn.Module,
+    policy: Policy | None = None,
     *,
-    budget: float | None = None,
-    rank: int | None = None,
-    energy: float | None = None,
-    keep: float | None = None,
-    include: str | Iterable[str] | None = None,
-    exclude: str | Iterable[str] | None = None,
-    method: str = "exact",
-    multiple: int = 1,
-    overrides: Iterable[Override | Mapping] | None = None,
-    cost: str = "params",
-    seed: int = 0,
     precision: str | None = None,
+    **keywords: Any,
 ) -> CompressResult:
     """Choose new ranks for ``model`` **in place**, where some layers may already be factored.
 
@@ -157,14 +146,20 @@ def refactor(
 
     Returns a :class:`factorize.CompressResult` whose ``plan`` describes the whole model (every factored layer),
     ready for :func:`factorize.checkpoints.files.save`.
+
+    ``policy`` is a :class:`~factorize.plan.policy.Policy`, or its keywords as for :func:`factorize.compress`
+    (``method`` defaults to ``"exact"`` here). ``cost="macs"`` is refused: there is no sample input to count
+    multiply-accumulates on.
     """
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
-    ov = tuple(o if isinstance(o, Override) else Override(**o) for o in (overrides or ()))
-    policy = Policy(rank=rank, energy=energy, keep=keep, budget=budget, multiple=multiple, overrides=ov, cost=cost)
+    policy = resolve_policy(policy, keywords if policy is not None else {"method": "exact", **keywords})
+    if policy.cost == "macs":
+        raise FactorizeError("refactor cannot budget multiply-accumulates: it has no sample input to count them on",
+                             fix="use cost='params', or compress(model, cost='macs', example=batch) on a dense model")
+    method = policy.method
     factored = factored_layers(model)
-    excluded = [exclude] if isinstance(exclude, str) else list(exclude or [])
-    found = walk(model, include=include, exclude=excluded + [f"{n}.*" for n in factored])
+    found = walk(model, include=policy.include, exclude=list(policy.exclude or []) + [f"{n}.*" for n in factored])
     order = _module_order(model)
     sites = sorted([_factored_site(n, layer) for n, layer in factored.items()] + found.sites,
                    key=lambda s: order[s.name])
@@ -172,8 +167,8 @@ def refactor(
         raise FactorizeError("no factorizable or factored layer found", [f"{s.name}: {s.reason}" for s in found.skipped],
                              fix="check the include/exclude globs against model.named_modules()")
     spectra = {n: factored_spectrum(layer, precision=precision) for n, layer in factored.items()}
-    spectra.update(decompose_sites(model, [s for s in found.sites if not s.tied_with], method=method, seed=seed,
-                                   precision=precision))
+    spectra.update(decompose_sites(model, [s for s in found.sites if not s.tied_with], method=method,
+                                   seed=policy.seed, precision=precision))
     plan = choose_ranks(sites, spectra, policy, method=method)
     params_before = count_parameters(model)
     by_name = {s.name: s for s in sites}

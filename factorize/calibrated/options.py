@@ -1,0 +1,126 @@
+"""How a calibrated compression runs, beyond its Policy: one small dataclass, parsed from keywords in one place.
+
+:class:`CalibrationOptions` holds everything :class:`factorize.calibrated.search.Calibration`,
+:func:`~factorize.calibrated.search.compress_calibrated` and :func:`~factorize.calibrated.search.search_drift` need
+besides the model, the batches and the :class:`~factorize.plan.policy.Policy`: the activation-aware method and its
+numerical knobs, sensitivity measurement, sequential refitting, the drift search, and how to run (precision,
+threads, progress). :func:`calibrated_setup` turns the keywords of those functions into a Policy plus options.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass
+from typing import Any
+
+from factorize.calibrated.aware import DEFAULT_ALPHA, REFIT_RIDGE
+from factorize.errors import FactorizeError
+from factorize.plan.policy import AWARE_METHODS, POLICY_KEYWORDS, Policy, resolve_policy
+
+DRIFT_METRICS = ("relative_l2", "cosine")
+SENSITIVITY_MODES = ("probes", "gradients", "both")
+SOLVERS = ("auto", "exact", "gram", "randomized")
+DEFAULT_BUDGETS = (0.05, 0.95)  # drift search range: fractions of the sites' parameters (or MACs)
+DEFAULT_TOLERANCE = 0.01  # stop bisecting when the bracket is this narrow
+LEGACY_NAMES = {"metric": "drift_metric"}  # the drift functions' own name for drift_metric
+
+
+@dataclass(frozen=True)
+class CalibrationOptions:
+    """Options of the calibrated path (see :class:`~factorize.calibrated.search.Calibration` for each one).
+
+    ``aware_method`` / ``solver`` left at None follow the Policy's ``method``: ``"whiten"``/``"scale"`` choose the
+    activation-aware method, ``"exact"``/``"gram"``/``"randomized"`` the solver; otherwise whitening with the
+    Gram solver.
+    """
+
+    aware_method: str | None = None  # "whiten" (default) or "scale"
+    solver: str | None = None  # "auto", "exact", "gram" (default) or "randomized"
+    alpha: float = DEFAULT_ALPHA
+    center: bool | str = "auto"
+    ridge: float | None = None
+    precision: str | None = None
+    sensitivity: bool | str = False  # False, True (= "both"), "probes", "gradients", "both"
+    sensitivity_batches: Iterable[Any] | None = None
+    fractions: tuple[float, ...] | str = "auto"
+    projections: int = 2
+    output_fn: Callable | None = None
+    per_site: bool = False
+    sequential: bool = False
+    refit: bool = True
+    refit_ridge: float = REFIT_RIDGE
+    max_drift: float | None = None
+    drift_metric: str = "relative_l2"
+    budgets: tuple[float, float] = DEFAULT_BUDGETS
+    tolerance: float = DEFAULT_TOLERANCE
+    example: Any = None  # one batch to count MACs on (cost="macs"); default: the first calibration batch
+    workers: int = 1  # decompose this many layers at once (threads)
+    progress: bool = False
+
+    def __post_init__(self) -> None:
+        if self.aware_method is not None and self.aware_method not in AWARE_METHODS:
+            raise FactorizeError(f"unknown activation-aware method {self.aware_method!r}",
+                                 fix=f"use one of {', '.join(AWARE_METHODS)}")
+        if self.solver is not None and self.solver not in SOLVERS:
+            raise FactorizeError(f"unknown solver {self.solver!r}", fix=f"use one of {', '.join(SOLVERS)}")
+        if self.drift_metric not in DRIFT_METRICS:
+            raise FactorizeError(f"unknown drift metric {self.drift_metric!r}",
+                                 fix=f"use one of {', '.join(DRIFT_METRICS)}")
+        sensitivity_mode(self.sensitivity)
+
+    @classmethod
+    def from_keywords(cls, **keywords: Any) -> CalibrationOptions:
+        """Options from keywords named like the fields (``metric`` is accepted for ``drift_metric``)."""
+        kw = {LEGACY_NAMES.get(k, k): v for k, v in keywords.items()}
+        names = [f.name for f in dataclasses.fields(cls)]
+        unknown = [k for k in keywords if LEGACY_NAMES.get(k, k) not in names]
+        if unknown:
+            raise FactorizeError(f"unknown keyword{'s' if len(unknown) > 1 else ''}: {', '.join(unknown)}",
+                                 fix="accepted: " + ", ".join((*POLICY_KEYWORDS, *names)))
+        return cls(**kw)
+
+    def methods(self, policy: Policy | None) -> tuple[str, str]:
+        """(activation-aware method, solver) for this run, from these options and the policy's ``method``."""
+        method = policy.method if policy is not None else "auto"
+        if self.aware_method is not None and method in AWARE_METHODS and method != self.aware_method:
+            raise FactorizeError(f"method={method!r} and aware_method={self.aware_method!r} disagree",
+                                 fix="give the activation-aware method once")
+        aware = self.aware_method or (method if method in AWARE_METHODS else "whiten")
+        solver = self.solver or (method if method in ("exact", "gram", "randomized") else "gram")
+        return aware, solver
+
+
+def sensitivity_mode(sensitivity: bool | str) -> str | None:
+    """None, or the sensitivity measurement asked for ("probes", "gradients" or "both")."""
+    if sensitivity is True:
+        return "both"
+    if sensitivity is False or sensitivity is None:
+        return None
+    if sensitivity not in SENSITIVITY_MODES:
+        raise FactorizeError(f"unknown sensitivity mode {sensitivity!r}",
+                             fix="use True (= 'both'), 'probes', 'gradients', 'both' or False")
+    return sensitivity
+
+
+def calibrated_setup(policy: Policy | None, options: CalibrationOptions | None, keywords: Mapping[str, Any], *,
+                     search: bool = False) -> tuple[Policy, CalibrationOptions]:
+    """The Policy and options of a calibrated call, from a ready Policy / options or from keywords.
+
+    Policy keywords (:data:`~factorize.plan.policy.POLICY_KEYWORDS`) build the Policy, the others the options;
+    giving an object and keywords for it is an error. With ``max_drift`` (or ``search``) the drift search picks
+    the budget, so the keywords must not set a rank rule, and a given Policy must have ``budget=`` (its value is
+    replaced by each budget the search tries).
+    """
+    policy_kw = {k: v for k, v in keywords.items() if k in POLICY_KEYWORDS}
+    rest = {k: v for k, v in keywords.items() if k not in POLICY_KEYWORDS}
+    if options is not None and rest:
+        raise FactorizeError("CalibrationOptions and option keywords were both given", [f"{k}=" for k in rest],
+                             fix="put them into the options (dataclasses.replace(options, ...)) or pass keywords only")
+    options = options if options is not None else CalibrationOptions.from_keywords(**rest)
+    if not (search or options.max_drift is not None):
+        return resolve_policy(policy, policy_kw), options
+    if policy is not None and policy.budget is None:
+        raise FactorizeError("max_drift= chooses the budget itself; the Policy given sets another rank rule",
+                             fix="give a Policy with budget= (the search replaces its value), or drop max_drift=")
+    return resolve_policy(policy, policy_kw, budget=1.0), options  # the search replaces the budget
