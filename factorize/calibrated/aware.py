@@ -72,11 +72,11 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.calibrated.stats import InputStats
+from factorize.choices import AWARE_METHODS
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site, get_module, matrix_of
 from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose
 
-AWARE_METHODS = ("whiten", "scale")
 DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
 FEW_SAMPLES_RIDGE = 1e-2  # relative ridge when a layer saw fewer samples than its input width (a judgement call)
 REFIT_RIDGE = 0.1  # relative ridge of the sequential least-squares step (chosen by measurement, see docs/quality.md)

@@ -54,6 +54,7 @@ from factorize.calibrated.sensitivity import (
     run_outputs,
 )
 from factorize.calibrated.stats import as_batch_list, collect_stats
+from factorize.choices import SENSITIVITY_MODES
 from factorize.errors import DriftLimitExceeded, FactorizeError
 from factorize.measure.drift import output_drift
 from factorize.model.count import count_parameters
@@ -139,9 +140,6 @@ def measure_drift(
 
 # ---------------------------------------------------------------------------------------------------------------
 # the calibrated pipeline
-
-
-SENSITIVITY_MODES = ("probes", "gradients", "both")
 
 
 def _sensitivity_mode(sensitivity: bool | str) -> str | None:

@@ -51,13 +51,13 @@ import torch.nn.functional as F
 from torch import nn
 from tqdm.auto import tqdm
 
+from factorize.choices import HEAL_SCHEDULES as SCHEDULES
 from factorize.errors import FactorizeError
 from factorize.measure.drift import output_drift
 from factorize.model.feed import feed, primary_output
 from factorize.rewrite.layers import factored_layers
 
 LOSSES = ("auto", "kl", "mse", "cosine")
-SCHEDULES = ("constant", "cosine")
 WARMUP_FRACTION = 0.05  # schedule "cosine": share of the steps spent warming the learning rate up linearly
 TRAIN = ("factored", "all")
 METRICS = {"relative_l2": False, "cosine_mean": True, "kl": False, "top1_agreement": True}  # name -> higher is better
