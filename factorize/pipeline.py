@@ -14,6 +14,7 @@ from torch import nn
 
 from factorize.calibrated.aware import AWARE_METHODS
 from factorize.calibrated.search import CalibratedResult, compress_calibrated
+from factorize.choices import calibrated_methods
 from factorize.errors import FactorizeError
 from factorize.model.count import count_parameters
 from factorize.model.sites import (
@@ -207,8 +208,7 @@ def compress_from_api(
     if aware_method is not None and method in AWARE_METHODS and aware_method != method:
         raise FactorizeError(f"method={method!r} and aware_method={aware_method!r} disagree",
                              fix="give the activation-aware method once")
-    aware = aware_method or (method if method in AWARE_METHODS else "whiten")
-    solver = method if method in ("exact", "gram", "randomized") else "gram"
+    aware, solver = calibrated_methods(method, aware_method)  # shared with the command line's calibrated sweep
     unsupported = [f"{k}=" for k, v in (("spectra", spectra), ("speed_check", speed_check)) if v]
     if unsupported:
         raise FactorizeError(f"{', '.join(unsupported)} cannot be combined with calibration yet",
