@@ -7,7 +7,6 @@ clear message naming the file or layer, no traceback, and no partial output.
 
 from __future__ import annotations
 
-import contextlib
 import csv
 import io
 import json
@@ -26,7 +25,8 @@ import pytest
 import torch
 from safetensors.torch import save_file
 
-from factorize.cli import main, spectrum_profile, spectrum_sketch
+from factorize.cli import main
+from factorize.cli.render import spectrum_profile, spectrum_sketch
 from factorize.measure.report import CAUTION
 
 USER_MODULE = """
@@ -175,11 +175,10 @@ WRITTEN_BY_BAD_RUNS = ("bad1.safetensors", "bad2.safetensors", "bad3.safetensors
 
 def _in_process(argv: list[str]) -> Run:
     out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        try:
-            rc = main(argv)
-        except SystemExit as done:  # argparse usage errors
-            rc = done.code
+    try:
+        rc = main(argv, stdout=out, stderr=err)
+    except SystemExit as done:  # argparse usage errors
+        rc = done.code
     return Run(argv, rc, out.getvalue(), err.getvalue())
 
 
