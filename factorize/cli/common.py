@@ -192,7 +192,8 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
     if calibration is None:
         return {"cache": getattr(args, "cache", None), "workers": getattr(args, "workers", 1),
                 "speed_check": getattr(args, "speed_check", False)}
-    problems = [f for f, on in (("--cache", getattr(args, "cache", None)), ("--workers", getattr(args, "workers", 1) > 1),
+    problems = [f for f, on in (("--cache", getattr(args, "cache", None)),
+                                ("--workers", getattr(args, "workers", 1) > 1),
                                 ("--speed-check", getattr(args, "speed_check", False))) if on]
     if problems:
         raise FactorizeError(f"{', '.join(problems)} cannot be combined with --calibration yet",
@@ -237,10 +238,13 @@ def max_drift_check(args, report) -> None:
 def weights_only_checks(args) -> None:
     """Weights-only mode (a bare safetensors file) has no model to run: refuse the options that need one."""
     if getattr(args, "inputs", None) or getattr(args, "random_inputs", None):
-        raise FactorizeError("sample inputs need a model to run, and weights-only mode (a bare safetensors file) has none",
-                             fix="drop --inputs/--random-inputs, or pass --model package.module:callable --weights FILE")
+        raise FactorizeError("sample inputs need a model to run, and weights-only mode (a bare safetensors file) "
+                             "has none",
+                             fix="drop --inputs/--random-inputs, or pass --model package.module:callable "
+                             "--weights FILE")
     flags = [f for f, on in (("--calibration", getattr(args, "calibration", None)),
-                             ("--heal", getattr(args, "heal", None)), ("--speed-check", getattr(args, "speed_check", False)),
+                             ("--heal", getattr(args, "heal", None)),
+                             ("--speed-check", getattr(args, "speed_check", False)),
                              ("--target-drift", getattr(args, "target_drift", None))) if on]
     if flags:
         raise FactorizeError(f"{', '.join(flags)} need a model to run, and weights-only mode (a bare safetensors "

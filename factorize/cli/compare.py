@@ -32,7 +32,8 @@ def run(args, ui: UI) -> dict:
     loaded = load(args, ui)
     if loaded.weights_only:
         raise FactorizeError("compare runs both models, so --model must build one (weights-only files cannot run)",
-                             fix="pass --model package.module:callable (with --weights FILE) or a transformers directory")
+                             fix="pass --model package.module:callable (with --weights FILE) or a transformers "
+                             "directory")
     other, plan = _load_against(args, loaded, ui)
     inputs = sample_inputs(args, loaded, ui)
     if inputs is None:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 from collections.abc import Callable
+from typing import Any
 
 from factorize._version import __version__
 from factorize.choices import AWARE_METHODS, HEAL_SCHEDULES, METHODS, SENSITIVITY_MODES
@@ -104,7 +105,8 @@ def build_parser() -> argparse.ArgumentParser:
         "other model (callable or transformers directory).",
         epilog=_examples(
             "factorize compare --model factorize.default:load_default --against load_default.factorized.safetensors",
-            "factorize compare --model mypkg.models:build --weights a.safetensors --against b.safetensors --inputs x.npz",
+            "factorize compare --model mypkg.models:build --weights a.safetensors --against b.safetensors "
+            "--inputs x.npz",
         ),
     )
 
@@ -134,7 +136,8 @@ def _parents():
     g.add_argument("--model", "-m", required=True, metavar="SPEC",
                    help="package.module:callable that builds the model, a transformers directory (config.json + "
                    "safetensors), or a bare .safetensors file (weights-only mode)")
-    g.add_argument("--weights", "-w", metavar="FILE", help="a .safetensors state dict to load into the callable's model")
+    g.add_argument("--weights", "-w", metavar="FILE",
+                   help="a .safetensors state dict to load into the callable's model")
     g.add_argument("--allow-pickle", action="store_true",
                    help="allow pickled .pt/.pth/.bin checkpoints (loaded with torch.load(weights_only=True)); only "
                    "for files you trust")
@@ -147,7 +150,8 @@ def _parents():
     g.add_argument("--random-inputs", metavar="SHAPE",
                    help="seeded random inputs, e.g. 16x64 (16 samples of 64 features); they say little about real "
                    "drift")
-    g.add_argument("--labels-key", default="labels", metavar="KEY", help="key of the labels in --inputs (default: labels)")
+    g.add_argument("--labels-key", default="labels", metavar="KEY",
+                   help="key of the labels in --inputs (default: labels)")
     g.add_argument("--batch-size", type=int, default=64, metavar="N", help="samples per forward pass (default: 64)")
     g.add_argument("--max-samples", type=int, metavar="N", help="use at most N samples")
     g.add_argument("--repeats", type=int, default=None, metavar="N",
@@ -161,7 +165,8 @@ def _parents():
     g.add_argument("--rank", type=_positive_int("--rank"), metavar="N", help="the same rank N in every layer")
     g.add_argument("--energy", type=_fraction("--energy"), metavar="T",
                    help="per layer, the smallest rank keeping fraction T of the sum of squared singular values")
-    g.add_argument("--keep", type=_fraction("--keep"), metavar="F", help="each layer keeps fraction F of its parameters")
+    g.add_argument("--keep", type=_fraction("--keep"), metavar="F",
+                   help="each layer keeps fraction F of its parameters")
     _selection(g)
     g.add_argument("--recipe", metavar="FILE.toml", help="a TOML recipe (recipes/*.toml); options given here win")
 
@@ -213,7 +218,8 @@ def _quality_options(*, shrink: bool):
                    help="with --calibration: allocate the budget by each layer's measured effect on the final output; "
                    "HOW: gradients (cheapest: one forward and two backward passes per batch), probes (truncation "
                    "probes, two per layer), both (the default)")
-    g.add_argument("--cache", metavar="DIR", help="keep spectra in DIR so a later run on the same weights skips the SVD")
+    g.add_argument("--cache", metavar="DIR",
+                   help="keep spectra in DIR so a later run on the same weights skips the SVD")
     g.add_argument("--workers", type=_positive_int("--workers"), default=1, metavar="N",
                    help="decompose N layers at a time (threads; results equal a serial run)")
     if shrink:
@@ -281,17 +287,25 @@ def _demo_options():
     return p
 
 
-def _fraction(flag: str) -> Callable[[str], float]:
-    def parse(text: str) -> float:
+def _checked(flag: str, kind: type, takes: str, ok: Callable[[Any], bool], bad: str,
+             wants: str | None = None) -> Callable[[str], Any]:
+    """An argparse type: ``kind(text)`` that passes ``ok``; the messages say what ``flag`` takes."""
+    def parse(text: str):
         try:
-            v = float(text)
+            v = kind(text)
         except ValueError:
-            raise argparse.ArgumentTypeError(f"{text!r} is not a number; {flag} takes a fraction in (0, 1]") from None
-        if not 0 < v <= 1:
-            raise argparse.ArgumentTypeError(f"{v} is outside (0, 1]; {flag} takes a fraction such as 0.5")
+            noun = "an integer" if kind is int else "a number"
+            raise argparse.ArgumentTypeError(f"{text!r} is not {noun}; {flag} takes {takes}") from None
+        if not ok(v):
+            raise argparse.ArgumentTypeError(f"{v} {bad}; {flag} takes {wants or takes}")
         return v
 
     return parse
+
+
+def _fraction(flag: str) -> Callable[[str], float]:
+    return _checked(flag, float, "a fraction in (0, 1]", lambda v: 0 < v <= 1, "is outside (0, 1]",
+                    "a fraction such as 0.5")
 
 
 def _fractions(text: str) -> tuple[float, ...]:
@@ -303,26 +317,8 @@ def _fractions(text: str) -> tuple[float, ...]:
 
 
 def _positive_int(flag: str) -> Callable[[str], int]:
-    def parse(text: str) -> int:
-        try:
-            v = int(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{text!r} is not an integer; {flag} takes an integer >= 1") from None
-        if v < 1:
-            raise argparse.ArgumentTypeError(f"{v} is below 1; {flag} takes an integer >= 1")
-        return v
-
-    return parse
+    return _checked(flag, int, "an integer >= 1", lambda v: v >= 1, "is below 1")
 
 
 def _nonnegative(flag: str) -> Callable[[str], float]:
-    def parse(text: str) -> float:
-        try:
-            v = float(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{text!r} is not a number; {flag} takes a number >= 0") from None
-        if not v >= 0:
-            raise argparse.ArgumentTypeError(f"{v} is negative; {flag} takes a number >= 0")
-        return v
-
-    return parse
+    return _checked(flag, float, "a number >= 0", lambda v: v >= 0, "is negative")

@@ -55,7 +55,8 @@ def scan_row(site: Site, spec: Spectrum | None, target_energy: float, multiple: 
                rank_999=spec.rank_for_energy(0.999))
     r = int(math.ceil(spec.rank_for_energy(target_energy) / multiple) * multiple)
     saves = site.saves_at(r)
-    row.update(suggested_rank=r if saves else None, params_at_suggested=site.factored_params(r) if saves else site.params,
+    row.update(suggested_rank=r if saves else None,
+               params_at_suggested=site.factored_params(r) if saves else site.params,
                predicted_error=spec.relative_error(r) if saves else 0.0, spectrum=spectrum_profile(spec.S.tolist()),
                note="" if saves else f"rank {r} for {target_energy:g} of the energy is past break-even; keep dense")
     return row
