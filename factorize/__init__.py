@@ -6,66 +6,84 @@ Typical use::
     result = factorize.compress(model, budget=0.5)
     result.model   # compressed copy
     result.plan    # JSON-serialisable plan
+
+The names below are loaded on first use (PEP 562), so ``import factorize`` -- and with it the command line's
+``--help`` and usage errors -- does not import torch until something that needs it is touched.
 """
 
+from __future__ import annotations
+
+import importlib
+from typing import TYPE_CHECKING
+
 from factorize._version import __version__
-from factorize.calibrated.options import CalibrationOptions
-from factorize.calibrated.search import (
-    CalibratedResult,
-    Calibration,
-    DriftTargetUnreachable,
-    search_drift,
-)
-from factorize.checkpoints.files import load, read_plan, save
-from factorize.checkpoints.stream import shrink_checkpoint
-from factorize.errors import DriftLimitExceeded, FactorizeError
-from factorize.measure.drift import output_drift
-from factorize.measure.evaluate import evaluate
-from factorize.measure.report import Report
-from factorize.model.count import count_bytes, count_parameters
-from factorize.model.feed import run_model
-from factorize.model.sites import Site, WalkResult, walk
-from factorize.pipeline import compress
-from factorize.plan.ranks import (
-    Override,
-    Policy,
-    choose_ranks,
-    plan_ranks,
-    plan_summary,
-)
-from factorize.plan.recipe import load_recipe
-from factorize.rewrite.apply import CompressResult, apply_plan, merge, validate_plan
-from factorize.rewrite.layers import Factored, factored_layers, is_factored, to_dense
-from factorize.spectra.cache import SpectrumCache
-from factorize.spectra.decompose import Spectrum, decompose
-from factorize.spectra.sites import decompose_sites
-from factorize.training.heal import HealResult, heal
-from factorize.training.loop import (
-    ProgressiveSchedule,
-    compress_in_training,
-    merge_in_training,
-    refactor,
-)
+
+_EXPORTS = {  # public name -> the module that defines it
+    "CalibratedResult": "factorize.calibrated.search",
+    "Calibration": "factorize.calibrated.search",
+    "CalibrationOptions": "factorize.calibrated.options",
+    "CompressResult": "factorize.rewrite.apply",
+    "Report": "factorize.measure.report",
+    "DriftLimitExceeded": "factorize.errors",
+    "DriftTargetUnreachable": "factorize.calibrated.search",
+    "Factored": "factorize.rewrite.layers",
+    "HealResult": "factorize.training.heal",
+    "FactorizeError": "factorize.errors",
+    "Override": "factorize.plan.policy",
+    "Policy": "factorize.plan.policy",
+    "ProgressiveSchedule": "factorize.training.loop",
+    "Site": "factorize.model.sites",
+    "Spectrum": "factorize.spectra.decompose",
+    "SpectrumCache": "factorize.spectra.cache",
+    "WalkResult": "factorize.model.sites",
+    "apply_plan": "factorize.rewrite.apply",
+    "choose_ranks": "factorize.plan.ranks",
+    "compress": "factorize.pipeline",
+    "compress_in_training": "factorize.training.loop",
+    "count_bytes": "factorize.model.count",
+    "count_parameters": "factorize.model.count",
+    "decompose": "factorize.spectra.decompose",
+    "decompose_sites": "factorize.spectra.sites",
+    "evaluate": "factorize.measure.evaluate",
+    "factored_layers": "factorize.rewrite.layers",
+    "heal": "factorize.training.heal",
+    "is_factored": "factorize.rewrite.layers",
+    "load": "factorize.checkpoints.files",
+    "load_recipe": "factorize.plan.recipe",
+    "merge": "factorize.rewrite.apply",
+    "merge_in_training": "factorize.training.loop",
+    "output_drift": "factorize.measure.drift",
+    "plan_ranks": "factorize.plan.ranks",
+    "plan_summary": "factorize.plan.ranks",
+    "read_plan": "factorize.checkpoints.files",
+    "refactor": "factorize.training.loop",
+    "run_model": "factorize.model.feed",
+    "search_drift": "factorize.calibrated.search",
+    "shrink_checkpoint": "factorize.checkpoints.stream",
+    "save": "factorize.checkpoints.files",
+    "to_dense": "factorize.rewrite.layers",
+    "validate_plan": "factorize.rewrite.apply",
+    "walk": "factorize.model.sites",
+}
 
 __all__ = [
-    "__version__",
     "CalibratedResult",
     "Calibration",
-    "CalibrationOptions",
     "CompressResult",
-    "Report",
     "DriftLimitExceeded",
     "DriftTargetUnreachable",
     "Factored",
-    "HealResult",
     "FactorizeError",
+    "HealResult",
     "Override",
     "Policy",
     "ProgressiveSchedule",
+    "Report",
     "Site",
     "Spectrum",
     "SpectrumCache",
     "WalkResult",
+    "__version__",
     "apply_plan",
     "choose_ranks",
     "compress",
@@ -88,10 +106,67 @@ __all__ = [
     "read_plan",
     "refactor",
     "run_model",
+    "save",
     "search_drift",
     "shrink_checkpoint",
-    "save",
     "to_dense",
     "validate_plan",
     "walk",
 ]
+
+
+def __getattr__(name: str):
+    module = _EXPORTS.get(name)
+    if module is None:
+        raise AttributeError(f"module 'factorize' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value  # later look-ups skip this function
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))
+
+
+if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eagerly
+    from factorize.calibrated.search import (
+        CalibratedResult,
+        Calibration,
+        DriftTargetUnreachable,
+        search_drift,
+    )
+    from factorize.checkpoints.files import load, read_plan, save
+    from factorize.checkpoints.stream import shrink_checkpoint
+    from factorize.errors import DriftLimitExceeded, FactorizeError
+    from factorize.measure.drift import output_drift
+    from factorize.measure.evaluate import evaluate
+    from factorize.measure.report import Report
+    from factorize.model.count import count_bytes, count_parameters
+    from factorize.model.feed import run_model
+    from factorize.model.sites import Site, WalkResult, walk
+    from factorize.pipeline import compress
+    from factorize.plan.ranks import (
+        Override,
+        Policy,
+        choose_ranks,
+        plan_ranks,
+        plan_summary,
+    )
+    from factorize.plan.recipe import load_recipe
+    from factorize.rewrite.apply import CompressResult, apply_plan, merge, validate_plan
+    from factorize.rewrite.layers import (
+        Factored,
+        factored_layers,
+        is_factored,
+        to_dense,
+    )
+    from factorize.spectra.cache import SpectrumCache
+    from factorize.spectra.decompose import Spectrum, decompose
+    from factorize.spectra.sites import decompose_sites
+    from factorize.training.heal import HealResult, heal
+    from factorize.training.loop import (
+        ProgressiveSchedule,
+        compress_in_training,
+        merge_in_training,
+        refactor,
+    )

@@ -72,11 +72,9 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.calibrated.stats import InputStats
+from factorize.choices import AWARE_METHODS
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site, get_module, matrix_of
-from factorize.plan.policy import (
-    AWARE_METHODS,  # the names, declared once with the Policy
-)
 from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose
 from factorize.spectra.sites import per_site
 

@@ -15,11 +15,11 @@ from dataclasses import dataclass
 from typing import Any
 
 from factorize.calibrated.aware import DEFAULT_ALPHA, REFIT_RIDGE
+from factorize.choices import AWARE_METHODS, SENSITIVITY_MODES, calibrated_methods
 from factorize.errors import FactorizeError
-from factorize.plan.policy import AWARE_METHODS, POLICY_KEYWORDS, Policy, resolve_policy
+from factorize.plan.policy import POLICY_KEYWORDS, Policy, resolve_policy
 
 DRIFT_METRICS = ("relative_l2", "cosine")
-SENSITIVITY_MODES = ("probes", "gradients", "both")
 SOLVERS = ("auto", "exact", "gram", "randomized")
 DEFAULT_BUDGETS = (0.05, 0.95)  # drift search range: fractions of the sites' parameters (or MACs)
 DEFAULT_TOLERANCE = 0.01  # stop bisecting when the bracket is this narrow
@@ -86,9 +86,8 @@ class CalibrationOptions:
         if self.aware_method is not None and method in AWARE_METHODS and method != self.aware_method:
             raise FactorizeError(f"method={method!r} and aware_method={self.aware_method!r} disagree",
                                  fix="give the activation-aware method once")
-        aware = self.aware_method or (method if method in AWARE_METHODS else "whiten")
-        solver = self.solver or (method if method in ("exact", "gram", "randomized") else "gram")
-        return aware, solver
+        aware, solver = calibrated_methods(method, self.aware_method)  # the one mapping, shared with the CLI's sweep
+        return aware, self.solver or solver
 
 
 def sensitivity_mode(sensitivity: bool | str) -> str | None:

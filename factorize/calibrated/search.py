@@ -324,11 +324,27 @@ def compress_calibrated(
         options = dataclasses.replace(options, fractions=auto_fractions(
             policy.budget if policy.budget is not None else policy.keep))
     calib = Calibration(model, calibration, policy, options)
+    return compress_from(calib, policy, sequential=options.sequential, refit=options.refit,
+                         refit_ridge=options.refit_ridge, fractions=options.fractions, inplace=inplace)
+
+
+def compress_from(calib: Calibration, policy: Policy, *, sequential: bool = False, refit: bool = True,
+                  refit_ridge: float = REFIT_RIDGE, fractions: tuple[float, ...] | str = "auto",
+                  inplace: bool = False) -> CalibratedResult:
+    """The result :func:`compress_calibrated` gives for ``policy``, from statistics already in ``calib``.
+
+    A sweep over many policies builds one :class:`Calibration` and calls this per policy: each result equals
+    ``compress(model, calibration=..., <policy>)`` (probes, when asked for, are re-measured at the policy's own
+    ``fractions``, as a single call would measure them), while statistics and spectra are computed once.
+    """
+    fr = auto_fractions(policy.budget if policy.budget is not None else policy.keep) if fractions == "auto" \
+        else tuple(fractions)
+    if calib.wants_probes and policy.budget is not None and (calib.sensitivity is None or calib.fractions != fr):
+        calib.measure(fr)
     plan = calib.plan(policy)
-    compressed = calib.build(plan, sequential=options.sequential, refit=options.refit,
-                             refit_ridge=options.refit_ridge)
-    calib.annotate(plan, sequential=options.sequential)
-    return _result(model, compressed, plan, calib, inplace)
+    compressed = calib.build(plan, sequential=sequential, refit=refit, refit_ridge=refit_ridge)
+    calib.annotate(plan, sequential=sequential)
+    return _result(calib.model, compressed, plan, calib, inplace)
 
 
 def _result(model: nn.Module, compressed: nn.Module, plan: dict, calib: Calibration, inplace: bool,

@@ -52,6 +52,7 @@ from factorize.checkpoints.files import (
     open_checkpoint,
 )
 from factorize.errors import FactorizeError
+from factorize.measure.report import LayerReport, Report
 from factorize.model.sites import Site
 from factorize.plan.policy import Policy, rank_needed, resolve_policy
 from factorize.plan.ranks import (
@@ -62,13 +63,13 @@ from factorize.plan.ranks import (
 from factorize.spectra.cache import SpectrumCache, as_cache
 from factorize.spectra.decompose import METHODS, Spectrum, decompose
 from factorize.storage import (
-    publish,
     DTYPE_NAMES,
     Header,
     TensorInfo,
     check_free_space,
     check_output_path,
     create_temp,
+    publish,
     remove_quietly,
     safetensors_header,
 )
@@ -509,3 +510,49 @@ class _Job:
             self.params_after += bias.numel()
         self.report[c.weight.name] = row
 
+
+
+def checkpoint_spectra(
+    src: str | os.PathLike,
+    *,
+    include: str | Iterable[str] | None = None,
+    exclude: str | Iterable[str] | None = None,
+    method: str = "exact",
+    seed: int = 0,
+    progress: bool = False,
+) -> tuple[list[Site], dict[str, Spectrum], dict[str, str]]:
+    """The spectra of a checkpoint's linear-layer weights (as :func:`select` chooses them), one tensor at a time.
+
+    What a weights-only scan or sweep needs: the sites, their spectra (for :func:`factorize.plan.ranks.choose_ranks`
+    at any policy) and the tensors passed over with the reason. Raises when no tensor is selected.
+    """
+    chosen, passed = select(open_checkpoint(src), include, exclude)
+    if not chosen:
+        raise FactorizeError(f"{src}: no 2-D tensor named <module>.weight matches the patterns",
+                             [f"{k}: {v}" for k, v in passed.items()],
+                             fix="check the include/exclude patterns against the tensor names")
+    spectra = {c.module: decompose(_read(c.weight_file, c.weight.name), name=c.module, method=method, seed=seed)
+               for c in tqdm(chosen, desc="decompose", unit="layer", disable=not progress, leave=False)}
+    return [c.site for c in chosen], spectra, passed
+
+
+def stream_report(done: Mapping, source: str) -> Report:
+    """A :class:`~factorize.measure.report.Report` of a :func:`shrink_checkpoint` result: sizes and predicted
+    (Eckart-Young) weight errors only, since there is no architecture to run."""
+    layers = []
+    for row in done["tensors"].values():
+        m, n = row["shape"]
+        rank = row["rank"] if row["action"] == "factor" else None
+        layers.append(LayerReport(name=row["module"], kind="linear", shape=(m, n), rank=rank, params=m * n,
+                                  params_after=m * n if rank is None else rank * (m + n),
+                                  weight_error=row.get("relative_error", 0.0 if rank is None else None),
+                                  predicted_error=row.get("predicted_error")))
+    return Report(title="factorize shrink (weights-only)", model=source, params_before=done["params_before"],
+                  params_after=done["params_after"], bytes_before=done["bytes_before"],
+                  bytes_after=done["bytes_after"], layers=layers, policy=done["plan"]["policy"],
+                  notes=[WEIGHTS_ONLY_NOTE])
+
+
+WEIGHTS_ONLY_NOTE = ("weights-only mode: there is no architecture to run, so output drift was not measured; load the "
+                     "output into your model with factorize.load(model, path) and run 'factorize compare' on real "
+                     "inputs")

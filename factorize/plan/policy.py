@@ -18,13 +18,12 @@ from typing import Any
 
 import numpy as np
 
+from factorize.choices import AWARE_METHODS, METHODS
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
-from factorize.spectra.decompose import METHODS
 
 POLICY_KEYS = ("rank", "energy", "keep", "budget")
 POLICY_KEYWORDS = (*POLICY_KEYS, "include", "exclude", "overrides", "multiple", "cost", "method", "seed")
-AWARE_METHODS = ("whiten", "scale")  # activation-aware methods; they need calibration inputs (factorize.calibrated)
 OVERRIDE_KEYS = ("pattern", "rank", "energy", "keep", "dense")
 
 

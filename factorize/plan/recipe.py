@@ -6,7 +6,8 @@ Keys (all optional except ``[policy]``; unknown keys are errors, so a typo never
     description = "..."             # free text, shown in reports
     include = ["glob", ...]         # only layers whose qualified name matches one of these are considered
     exclude = ["glob", ...]         # layers matching any of these are never factored
-    method = "exact"                # "auto", "exact" (LAPACK SVD), "gram" or "randomized" (Halko et al. 2011)
+    method = "exact"                # "auto", "exact" (LAPACK SVD), "gram" or "randomized" (Halko et al. 2011);
+                                    # left out: the library default (compress's "auto")
     multiple = 1                    # round ranks to a multiple of this (8 or 16 suit fast kernels)
     cost = "params"                 # what budget counts: "params" or "macs"
 
@@ -55,23 +56,26 @@ class Recipe:
     description: str = ""
     include: list[str] | None = None
     exclude: list[str] | None = None
-    method: str = "exact"
+    method: str | None = None  # None: the library default (see factorize.compress)
     multiple: int = 1
     cost: str = "params"
     policy: dict[str, float | int] = field(default_factory=dict)  # exactly one of rank, energy, keep, budget
     overrides: list[Override] = field(default_factory=list)
 
     def compress_kwargs(self) -> dict[str, Any]:
-        """Keyword arguments for :func:`factorize.compress`."""
-        return {
+        """Keyword arguments for :func:`factorize.compress` (no ``method`` when the recipe names none, so the
+        library's default applies)."""
+        kwargs = {
             **self.policy,
             "include": self.include,
             "exclude": self.exclude,
-            "method": self.method,
             "multiple": self.multiple,
             "cost": self.cost,
             "overrides": list(self.overrides),
         }
+        if self.method is not None:
+            kwargs["method"] = self.method
+        return kwargs
 
 
 def load_recipe(path: str | os.PathLike) -> Recipe:
@@ -102,8 +106,8 @@ def parse_recipe(data: dict[str, Any], *, source: str = "recipe") -> Recipe:
     recipe.description = _typed(data, "description", str, "", problems)
     recipe.include = _patterns(data, "include", problems)
     recipe.exclude = _patterns(data, "exclude", problems)
-    recipe.method = _typed(data, "method", str, "exact", problems)
-    if recipe.method not in METHODS:
+    recipe.method = _typed(data, "method", str, None, problems) if "method" in data else None
+    if recipe.method is not None and recipe.method not in METHODS:
         problems.append(f"method = {recipe.method!r}: use one of {', '.join(METHODS)}")
     recipe.multiple = _typed(data, "multiple", int, 1, problems)
     recipe.cost = _typed(data, "cost", str, "params", problems)

@@ -31,9 +31,9 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from factorize.choices import METHODS
 from factorize.errors import FactorizeError
 
-METHODS = ("auto", "exact", "gram", "randomized")
 RANDOMIZED_FRACTION = 6  # auto: randomized only when the sketch (rank + oversampling) is at most min(m, n) / this
 AUTO_TOLERANCE = 0.01  # auto: accept randomized factors only if provably within 1% of the optimal error
 

@@ -42,7 +42,12 @@ from factorize.measure.drift import output_drift
 from factorize.model.feed import feed, primary_output
 from factorize.model.hooks import Hook, forward_hooks
 from factorize.rewrite.layers import factored_layers
-from factorize.training.losses import distill_loss, layer_match_loss, resolve_loss, row_mask
+from factorize.training.losses import (
+    distill_loss,
+    layer_match_loss,
+    resolve_loss,
+    row_mask,
+)
 from factorize.training.schedule import lr_factor
 from factorize.training.setup import METRICS, HealOptions, session, validate
 

@@ -10,7 +10,9 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 
-SCHEDULES = ("constant", "cosine")
+from factorize.choices import HEAL_SCHEDULES
+
+SCHEDULES = HEAL_SCHEDULES  # declared once, torch-free, for the command line
 WARMUP_FRACTION = 0.05  # schedule "cosine": share of the steps spent warming the learning rate up linearly
 
 

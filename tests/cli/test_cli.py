@@ -7,7 +7,6 @@ clear message naming the file or layer, no traceback, and no partial output.
 
 from __future__ import annotations
 
-import contextlib
 import csv
 import io
 import json
@@ -26,7 +25,8 @@ import pytest
 import torch
 from safetensors.torch import save_file
 
-from factorize.cli import main, spectrum_profile, spectrum_sketch
+from factorize.cli import main
+from factorize.cli.render import spectrum_profile, spectrum_sketch
 from factorize.measure.report import CAUTION
 
 USER_MODULE = """
@@ -175,11 +175,10 @@ WRITTEN_BY_BAD_RUNS = ("bad1.safetensors", "bad2.safetensors", "bad3.safetensors
 
 def _in_process(argv: list[str]) -> Run:
     out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        try:
-            rc = main(argv)
-        except SystemExit as done:  # argparse usage errors
-            rc = done.code
+    try:
+        rc = main(argv, stdout=out, stderr=err)
+    except SystemExit as done:  # argparse usage errors
+        rc = done.code
     return Run(argv, rc, out.getvalue(), err.getvalue())
 
 
@@ -298,7 +297,7 @@ def test_human_output_has_tables_and_the_caution(world) -> None:
     assert r.rc == 0, r
     for text in ("parameters", "relative L2 error", "top-1 agreement", "fc1", "no guarantee", "wrote human.safetensors"):
         assert text in r.out, text
-    assert r.err == "" or "warning" in r.err  # --quiet: no progress bars
+    assert r.err == ""  # --quiet: no progress bars and no notes; with --inputs given there is nothing to warn about
     # running it again without --force refuses to overwrite
     assert again.rc == 2 and "already exists" in again.err and "--force" in again.err
 
@@ -438,3 +437,16 @@ def test_plot_without_matplotlib_names_the_extra(monkeypatch, tmp_path) -> None:
     r = _in_process(["sweep", "-m", "factorize.default:load_default", "--plot", "s.png"])
     assert r.rc == 2 and 'pip install "factorize[plot]"' in r.err, r
     assert not (tmp_path / "s.png").exists()
+
+
+def test_main_writes_to_the_streams_it_is_given(capsys) -> None:
+    out, err = io.StringIO(), io.StringIO()
+    rc = main(["scan", "-m", "factorize.default:load_default", "--json"], stdout=out, stderr=err)
+    assert rc == 0 and [row["name"] for row in json.loads(out.getvalue())["layers"]]
+    assert "model: factorize.default:load_default" in err.getvalue()  # the note (not --quiet) reaches our stream
+    assert capsys.readouterr() == ("", "")  # and nothing went to the process streams
+    err = io.StringIO()
+    with pytest.raises(SystemExit) as done:  # argparse's usage error, also on the stream given
+        main(["scan"], stdout=out, stderr=err)
+    assert done.value.code == 2 and "required: --model" in err.getvalue()
+    assert capsys.readouterr() == ("", "")

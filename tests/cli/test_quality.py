@@ -3,7 +3,6 @@ classifier and the held-out part of scikit-learn's digits data (Alpaydin & Kayna
 
 from __future__ import annotations
 
-import contextlib
 import io
 import json
 
@@ -18,8 +17,7 @@ MODEL = "factorize.default:load_default"
 
 def _run(argv):
     out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        rc = main(argv)
+    rc = main(argv, stdout=out, stderr=err)
     return rc, out.getvalue(), err.getvalue()
 
 

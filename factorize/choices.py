@@ -1,0 +1,30 @@
+"""The named choices of the library's options, defined once, with no heavy import.
+
+The command line offers these values as ``choices=`` at start-up, before torch is imported, and the library
+validates against the same tuples, so the two can never disagree (``factorize --help`` stays fast because this
+module imports nothing).
+"""
+
+from __future__ import annotations
+
+METHODS = ("auto", "exact", "gram", "randomized")  # decomposition of a weight matrix (spectra.decompose)
+DEFAULT_METHOD = "auto"  # what factorize.compress decomposes with when no method is named
+AWARE_METHODS = ("whiten", "scale")  # activation-aware factors from calibration inputs (calibrated.aware)
+SENSITIVITY_MODES = ("probes", "gradients", "both")  # measured per-layer sensitivity (calibrated.search)
+HEAL_SCHEDULES = ("constant", "cosine")  # learning-rate schedule of healing (training.heal)
+SOLVERS = ("exact", "gram", "randomized")  # the eigensolvers a calibrated decomposition can be asked for by name
+DEFAULT_SOLVER = "gram"  # with calibration, what method "auto" (or an activation-aware method) decomposes with
+
+
+def calibrated_methods(method: str | None, aware_method: str | None = None) -> tuple[str, str]:
+    """Split one ``method=`` value into (activation-aware method, solver) for a calibrated compression.
+
+    ``method`` may name an activation-aware method (``"whiten"``, ``"scale"``) or a decomposition; ``"auto"``
+    (the default; ``None`` means the default) and the aware names decompose with :data:`DEFAULT_SOLVER`. Every
+    calibrated path (the ``compress`` call and the command line's sweep) goes through here, so the same options
+    give the same plan.
+    """
+    method = DEFAULT_METHOD if method is None else method
+    aware = aware_method or (method if method in AWARE_METHODS else "whiten")
+    solver = method if method in SOLVERS else DEFAULT_SOLVER
+    return aware, solver

@@ -1,0 +1,304 @@
+"""What every command needs: the model, the rank policy, the sample and calibration inputs, and output files.
+
+Each command turns its options into a :class:`factorize.Policy` plus keyword options (:class:`Options`) and
+calls the library; the checks here are about the command line's own options (which flags go together), with
+messages that name the flags.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import tempfile
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from factorize.checkpoints.models import LoadedModel, load_model
+from factorize.choices import AWARE_METHODS
+from factorize.default import HELDOUT_SENTENCES, load_digits_split
+from factorize.errors import DriftLimitExceeded, FactorizeError
+from factorize.measure.inputs import (
+    SampleInputs,
+    check_inputs,
+    load_inputs,
+    parse_shape,
+    prepare,
+    random_inputs,
+    sentences_inputs,
+)
+from factorize.plan.ranks import POLICY_KEYS, Override, Policy
+from factorize.plan.recipe import load_recipe
+from factorize.storage import check_output_path, write_atomic
+
+from .parser import OUTPUT_SUFFIX
+from .render import UI
+
+# ---------------------------------------------------------------------------------------------------------------
+# the model and the policy
+
+
+def load(args, ui: UI) -> LoadedModel:
+    """The model named by --model (and --weights), with a note on stderr saying what was loaded."""
+    if ui.quiet and Path(args.model).is_dir():
+        with contextlib.suppress(ImportError):  # transformers draws its own progress bars on stderr
+            from transformers.utils import logging as hf_logging
+
+            hf_logging.disable_progress_bar()
+    loaded = load_model(args.model, weights=args.weights, allow_pickle=args.allow_pickle)
+    ui.note(f"model: {loaded.source} ({loaded.kind})")
+    return loaded
+
+
+@dataclass
+class Options:
+    """The rank policy and layer selection asked for: the recipe's values, then the options given (which win)."""
+
+    rule: dict[str, Any]  # the one rank rule ({"budget": 0.5}), or {} when the command chooses it (sweep)
+    multiple: int = 1
+    cost: str = "params"
+    overrides: tuple[Override, ...] = ()
+    include: list[str] | None = None
+    exclude: list[str] | None = None
+    method: str | None = None  # None: the library's default
+    seed: int = 0
+
+    def policy(self, **rule: Any) -> Policy:
+        """The :class:`factorize.Policy` for this rule (default: the one asked for)."""
+        return Policy(**(rule or self.rule), multiple=self.multiple, cost=self.cost, overrides=self.overrides)
+
+    def keywords(self, policy: Policy | None = None) -> dict[str, Any]:
+        """Keyword arguments for :func:`factorize.compress`: the policy's fields (all but the rank rule when
+        ``policy`` is None), the selection, the seed, and the method only when one was named."""
+        kw: dict[str, Any] = {"include": self.include, "exclude": self.exclude, "seed": self.seed,
+                              "multiple": self.multiple, "cost": self.cost, "overrides": list(self.overrides)}
+        if policy is not None:
+            kw.update({k: getattr(policy, k) for k in POLICY_KEYS if getattr(policy, k) is not None})
+        if self.method is not None:
+            kw["method"] = self.method
+        return kw
+
+
+def options(args, ui: UI, *, default_budget: float | None = 0.5) -> Options:
+    """The :class:`Options` of --recipe plus the command-line options; the budget is ``default_budget`` when
+    neither names a rule."""
+    found: dict[str, Any] = {}
+    if getattr(args, "recipe", None):
+        recipe = load_recipe(args.recipe)
+        found = recipe.compress_kwargs()
+        ui.note(f"recipe: {recipe.source}: {recipe.description}")
+    chosen = {k: getattr(args, k, None) for k in POLICY_KEYS}
+    chosen = {k: v for k, v in chosen.items() if v is not None}
+    if len(chosen) > 1:
+        raise FactorizeError(f"give one rank policy, not {len(chosen)} ({', '.join('--' + k for k in chosen)})",
+                             fix="keep one of --budget, --rank, --energy, --keep")
+    rule = chosen or {k: found[k] for k in POLICY_KEYS if k in found}
+    if not rule and default_budget is not None:
+        rule = {"budget": default_budget}
+    for key in ("include", "exclude", "method", "multiple"):
+        value = getattr(args, key, None)
+        if value is not None:
+            found[key] = value
+    return Options(rule=rule, multiple=found.get("multiple", 1), cost=found.get("cost", "params"),
+                   overrides=tuple(found.get("overrides") or ()), include=found.get("include"),
+                   exclude=found.get("exclude"), method=found.get("method"), seed=getattr(args, "seed", 0))
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# sample and calibration inputs
+
+
+def sample_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None:
+    """The sample inputs named on the command line, or the model's built-in default; None when there are none."""
+    if args.batch_size < 1:
+        raise FactorizeError(f"--batch-size must be >= 1, got {args.batch_size}", fix="e.g. --batch-size 32")
+    if args.max_samples is not None and args.max_samples < 1:
+        raise FactorizeError(f"--max-samples must be >= 1, got {args.max_samples}", fix="e.g. --max-samples 256")
+    if args.inputs and args.random_inputs:
+        raise FactorizeError("--inputs and --random-inputs exclude each other", fix="give one of them")
+    if args.inputs:
+        inputs = load_inputs(args.inputs, batch_size=args.batch_size, labels_key=args.labels_key,
+                             tokenizer=loaded.tokenizer, limit=args.max_samples)
+        source = args.inputs
+    elif args.random_inputs:
+        shape = parse_shape(args.random_inputs)
+        if args.max_samples:
+            shape = (min(shape[0], args.max_samples),) + shape[1:]
+        inputs = random_inputs(loaded.model, shape, batch_size=args.batch_size, seed=args.seed)
+        source = f"--random-inputs {args.random_inputs}"
+    else:
+        inputs = _default_inputs(loaded, args)
+        if inputs is None:
+            return None
+        source = inputs.source
+    inputs = _checked(inputs, loaded, source, ui)
+    ui.note(f"sample inputs: {inputs.source}")
+    return inputs
+
+
+def _checked(inputs: SampleInputs, loaded: LoadedModel, source: str, ui: UI) -> SampleInputs:
+    """Warn about what the loader noticed, cast to the model's dtype, and check the first layer accepts them."""
+    for note in inputs.notes:
+        ui.warn(note)
+    inputs = prepare(inputs, loaded.model)
+    check_inputs(loaded.model, inputs, source)
+    return inputs
+
+
+def _default_inputs(loaded: LoadedModel, args) -> SampleInputs | None:
+    """The embedded default's held-out digits; the built-in held-out sentences for a model with a tokenizer."""
+    if loaded.is_default and loaded.path is None:
+        x, y = load_digits_split("test")
+        if args.max_samples:
+            x, y = x[: args.max_samples], y[: args.max_samples]
+        return SampleInputs(batches=list(x.split(args.batch_size)), labels=y, count=len(y),
+                            source=f"held-out digits (UCI, Alpaydin & Kaynak): {len(y)} samples")
+    if loaded.tokenizer is not None:
+        lines = list(HELDOUT_SENTENCES)[: args.max_samples]
+        inputs = sentences_inputs(lines, loaded.tokenizer, batch_size=args.batch_size,
+                                  source="built-in held-out English sentences")
+        inputs.notes.append("no --inputs given: drift is measured on built-in English sentences; pass --inputs "
+                            "with text from your own domain")
+        return inputs
+    return None
+
+
+def calibration_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None:
+    """The --calibration sample inputs, loaded and checked like --inputs; None when not given."""
+    path = getattr(args, "calibration", None)
+    if not path:
+        return None
+    calib = load_inputs(path, batch_size=args.batch_size, labels_key=args.labels_key, tokenizer=loaded.tokenizer)
+    calib = _checked(calib, loaded, path, ui)
+    if args.inputs and Path(args.inputs).resolve() == Path(path).resolve():
+        ui.warn("--calibration and --inputs are the same file: the factors were fitted to the inputs drift is "
+                "measured on, so the drift shown is optimistic")
+    ui.note(f"calibration inputs: {calib.source}")
+    return calib
+
+
+def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInputs | None,
+                     opts: Options) -> dict[str, Any]:
+    """compress() options for activation-aware factors, target drift, cache, workers and the speed check, after
+    checking which of those flags go together."""
+    target = getattr(args, "target_drift", None)
+    wanted = [flag for flag, on in (
+        (f"--method {opts.method}", opts.method in AWARE_METHODS),
+        ("--sequential", getattr(args, "sequential", False)), ("--sensitivity", getattr(args, "sensitivity", False)),
+        ("--target-drift", target is not None), ("--heal", getattr(args, "heal", None) is not None)) if on]
+    if wanted and calibration is None:
+        raise FactorizeError(f"{', '.join(wanted)} needs --calibration FILE",
+                             fix="pass --calibration with sample inputs of your own (kept apart from --inputs)")
+    if calibration is None:
+        return {"cache": getattr(args, "cache", None), "workers": getattr(args, "workers", 1),
+                "speed_check": getattr(args, "speed_check", False)}
+    problems = [f for f, on in (("--cache", getattr(args, "cache", None)),
+                                ("--workers", getattr(args, "workers", 1) > 1),
+                                ("--speed-check", getattr(args, "speed_check", False))) if on]
+    if problems:
+        raise FactorizeError(f"{', '.join(problems)} cannot be combined with --calibration yet",
+                             fix="drop them, or compress without --calibration")
+    extra = {"calibration": calibration.batches, "sequential": args.sequential, "sensitivity": args.sensitivity}
+    if target is not None:
+        for k in POLICY_KEYS:
+            if getattr(args, k, None) is not None:
+                raise FactorizeError(f"--target-drift chooses the budget itself; it cannot be combined with --{k}",
+                                     fix=f"drop --{k} or --target-drift")
+        if inputs is None:
+            raise FactorizeError("--target-drift needs --inputs to measure drift on",
+                                 fix="pass --inputs FILE with held-out samples (not the calibration file)")
+        extra.update(max_drift=target, heldout=inputs.batches)
+    return extra
+
+
+def repeats(args, default: int) -> int:
+    value = default if getattr(args, "repeats", None) is None else args.repeats
+    if value < 0:
+        raise FactorizeError(f"--repeats must be >= 0, got {value}", fix="e.g. --repeats 7, or 0 to skip timing")
+    return value
+
+
+def max_drift_check(args, report) -> None:
+    """Exit 1 (DriftLimitExceeded) when the measured drift is above --max-drift."""
+    limit = getattr(args, "max_drift", None)
+    if limit is None:
+        return
+    measured = report.drift["relative_l2"]
+    if measured > limit:
+        raise DriftLimitExceeded(
+            f"relative L2 output drift {measured:.4g} is above --max-drift {limit:g} "
+            f"(measured on {report.samples} sample inputs); nothing was written"
+        )
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# weights-only mode
+
+
+def weights_only_checks(args) -> None:
+    """Weights-only mode (a bare safetensors file) has no model to run: refuse the options that need one."""
+    if getattr(args, "inputs", None) or getattr(args, "random_inputs", None):
+        raise FactorizeError("sample inputs need a model to run, and weights-only mode (a bare safetensors file) "
+                             "has none",
+                             fix="drop --inputs/--random-inputs, or pass --model package.module:callable "
+                             "--weights FILE")
+    flags = [f for f, on in (("--calibration", getattr(args, "calibration", None)),
+                             ("--heal", getattr(args, "heal", None)),
+                             ("--speed-check", getattr(args, "speed_check", False)),
+                             ("--target-drift", getattr(args, "target_drift", None))) if on]
+    if flags:
+        raise FactorizeError(f"{', '.join(flags)} need a model to run, and weights-only mode (a bare safetensors "
+                             "file) has none", fix="pass --model package.module:callable --weights FILE")
+
+
+@contextlib.contextmanager
+def weights_file(loaded: LoadedModel):
+    """A safetensors path for weights-only mode (a pickled checkpoint, opted in, is converted to a temp file)."""
+    if loaded.kind != "pickle":
+        yield loaded.path
+        return
+    from safetensors.torch import save_file
+
+    with tempfile.TemporaryDirectory(prefix="factorize-") as d:
+        tmp = Path(d) / (loaded.path.stem + ".safetensors")
+        save_file({k: v.detach().clone().contiguous() for k, v in loaded.tensors.items()}, str(tmp))
+        yield tmp
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# output files
+
+
+def output_path(args, loaded: LoadedModel) -> Path:
+    """--output, or the input's name with OUTPUT_SUFFIX beside it (a directory of shards for a sharded input)."""
+    if args.output:
+        return Path(args.output)
+    base = loaded.path
+    if base is None:  # a callable without a weights file: name it after the callable, in the working directory
+        return Path(args.model.rpartition(":")[2].replace(".", "_") + OUTPUT_SUFFIX)
+    base = Path(base)
+    if base.is_dir():
+        return base.parent / (base.name + OUTPUT_SUFFIX)
+    if sharded(base):  # a sharded checkpoint gives a directory of shards
+        return base.parent.with_name(base.parent.name + OUTPUT_SUFFIX.removesuffix(".safetensors"))
+    return base.with_name(base.name.removesuffix(base.suffix) + OUTPUT_SUFFIX)
+
+
+def sharded(path: Path | None) -> bool:
+    return path is not None and Path(path).name.endswith(".safetensors.index.json")
+
+
+def check_outputs(paths: Sequence[Path | None], force: bool, *, directory: Path | None = None) -> None:
+    """Refuse, before any work, outputs that exist (without --force) or cannot be written."""
+    for p in paths:
+        if p is not None:
+            check_output_path(p, force=force, directory=p == directory)
+
+
+def write_text(path: Path, text: str, force: bool) -> None:
+    write_atomic(path, lambda tmp: tmp.write_text(text, encoding="utf-8"), force=force)
+
+
+def optional_path(value: str | None) -> Path | None:
+    return Path(value) if value else None
+

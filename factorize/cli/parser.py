@@ -1,0 +1,324 @@
+"""The command line's options: every command's argparse definition, and the parsers of option values.
+
+Imports only torch-free modules (argparse, :mod:`factorize.choices`, :mod:`factorize._version`), so that
+``factorize --help`` and usage errors answer without loading torch; :func:`factorize.cli.main` imports the
+chosen command's module after parsing.
+"""
+
+from __future__ import annotations
+
+import argparse
+from collections.abc import Callable
+from typing import Any
+
+from factorize._version import __version__
+from factorize.choices import AWARE_METHODS, HEAL_SCHEDULES, METHODS, SENSITIVITY_MODES
+
+PROG = "factorize"
+COMMANDS = ("scan", "shrink", "sweep", "compare", "demo")
+DEFAULT_BUDGETS = (0.9, 0.75, 0.5, 0.3)
+DEMO_BUDGETS = (0.3, 0.05)  # mild and strong, chosen from a measured sweep of the embedded default (docs/cli.md)
+SCAN_ENERGY = 0.9  # scan suggests the smallest rank keeping this fraction of sum(s^2): relative weight error <= 0.32
+OUTPUT_SUFFIX = ".factorized.safetensors"
+
+
+class _Formatter(argparse.RawDescriptionHelpFormatter):
+    def __init__(self, prog: str) -> None:
+        super().__init__(prog, max_help_position=32, width=100)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog=PROG,
+        formatter_class=_Formatter,
+        description="Shrink trained PyTorch models by low-rank factorization of their dense layers, and measure\n"
+        "what it saved (parameters, bytes, multiply-accumulates, latency) and what it cost (output drift,\n"
+        "accuracy) on sample inputs.",
+        epilog=_examples(
+            "factorize demo                                   # the whole job on the embedded digits model",
+            "factorize scan --model mypkg.models:build --weights model.safetensors",
+            "factorize shrink --model mypkg.models:build --weights model.safetensors --inputs samples.npz \\\n"
+            "    --budget 0.5 --max-drift 0.05 --report review.md",
+            "factorize sweep --model factorize.default:load_default --plot sweep.png",
+            "factorize compare --model mypkg.models:build --weights model.safetensors \\\n"
+            "    --against model.factorized.safetensors --inputs samples.npz",
+        )
+        + "\nRun 'factorize COMMAND --help' for each command's options. Exit codes: 0 done, 1 a requested check\n"
+        "failed (--max-drift), 2 bad usage or bad input.",
+    )
+    parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
+    common, model, inputs, policy, out = _parents()
+
+    sub.add_parser(
+        "scan", parents=[common, model, _scan_options()], formatter_class=_Formatter,
+        help="per-layer spectrum report: effective ranks, break-even, a suggested rank",
+        description="List every factorizable layer with its shape, parameters, the rank needed to keep 90%, 99%\n"
+        "and 99.9% of its spectral energy (sum of squared singular values), the break-even rank\n"
+        "floor(mn/(m+n)) past which factoring saves nothing, a suggested rank, and a sketch of the\n"
+        "singular-value decay (left: largest; bar height: s_i / s_max).",
+        epilog=_examples(
+            "factorize scan --model factorize.default:load_default",
+            "factorize scan --model ./bert-dir --include '*encoder.layer.*'",
+            "factorize scan --model checkpoint.safetensors --json     # weights-only mode",
+        ),
+    )
+
+    sub.add_parser(
+        "shrink", parents=[common, model, inputs, policy, out, _check_options(), _quality_options(shrink=True)],
+        formatter_class=_Formatter,
+        help="write a compressed checkpoint and its report",
+        description="Factor the model's dense layers under a rank policy, measure the result on sample inputs,\n"
+        "and write the compressed checkpoint (safetensors, with the plan in its metadata; reload it with\n"
+        "factorize.load(model, path)). Without a policy option the budget is 0.5.",
+        epilog=_examples(
+            "factorize shrink --model factorize.default:load_default --budget 0.5",
+            "factorize shrink --model mypkg.models:build --weights model.safetensors --inputs x.npz \\\n"
+            "    --recipe recipes/mlp-classifier.toml --output small.safetensors --report review.md",
+            "factorize shrink --model ./bert-dir --inputs sentences.txt --recipe bert-encoder.toml --max-drift 0.1",
+            "factorize shrink --model checkpoint.safetensors --rank 64 --exclude '*embed*'   # weights-only mode",
+            "factorize shrink --model ./bert-dir --calibration calib.txt --inputs heldout.txt --sensitivity \\\n"
+            "    --target-drift 0.1 --heal 200",
+        ),
+    )
+
+    sub.add_parser(
+        "sweep", parents=[common, model, inputs, _sweep_policy(), _sweep_options(), _quality_options(shrink=False)],
+        formatter_class=_Formatter,
+        help="evaluate a grid of budgets from one decomposition pass",
+        description="Compress at each budget of a grid, reusing one decomposition of every layer, and tabulate\n"
+        "parameters kept against output drift (and accuracy when labels are given) to find the knee of\n"
+        "the curve.",
+        epilog=_examples(
+            "factorize sweep --model factorize.default:load_default --plot sweep.png",
+            "factorize sweep --model mypkg.models:build --weights w.safetensors --inputs x.npz --budgets 0.8,0.6,0.4",
+            "factorize sweep --model factorize.default:load_default --json --csv sweep.csv",
+        ),
+    )
+
+    sub.add_parser(
+        "compare", parents=[common, model, inputs, _compare_options(), _check_options()], formatter_class=_Formatter,
+        help="output drift between two models on sample inputs",
+        description="Run two models on the same sample inputs and report the drift between their outputs.\n"
+        "--against may be a compressed checkpoint written by 'factorize shrink' (loaded into a fresh\n"
+        "instance of --model's architecture), a plain weights file for that architecture, or any\n"
+        "other model (callable or transformers directory).",
+        epilog=_examples(
+            "factorize compare --model factorize.default:load_default --against load_default.factorized.safetensors",
+            "factorize compare --model mypkg.models:build --weights a.safetensors --against b.safetensors "
+            "--inputs x.npz",
+        ),
+    )
+
+    sub.add_parser(
+        "demo", parents=[common, _demo_options()], formatter_class=_Formatter,
+        help="the whole job on the embedded digits classifier",
+        description="Scan, shrink at a mild and a strong budget, measure accuracy on the held-out part of the\n"
+        "handwritten-digits data (Alpaydin & Kaynak, UCI; as bundled with scikit-learn) before and after,\n"
+        "measure drift, save and reload the compressed model. Writes nothing to disk.",
+        epilog=_examples("factorize demo", "factorize demo --json", "factorize demo --budgets 0.6,0.2"),
+    )
+    return parser
+
+
+def _examples(*lines: str) -> str:
+    return "examples:\n" + "\n".join(f"  {line}" for line in lines)
+
+
+def _parents():
+    common = argparse.ArgumentParser(add_help=False)
+    g = common.add_argument_group("output")
+    g.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
+    g.add_argument("--quiet", "-q", action="store_true", help="no progress bars or notes on stderr")
+
+    model = argparse.ArgumentParser(add_help=False)
+    g = model.add_argument_group("model")
+    g.add_argument("--model", "-m", required=True, metavar="SPEC",
+                   help="package.module:callable that builds the model, a transformers directory (config.json + "
+                   "safetensors), or a bare .safetensors file (weights-only mode)")
+    g.add_argument("--weights", "-w", metavar="FILE",
+                   help="a .safetensors state dict to load into the callable's model")
+    g.add_argument("--allow-pickle", action="store_true",
+                   help="allow pickled .pt/.pth/.bin checkpoints (loaded with torch.load(weights_only=True)); only "
+                   "for files you trust")
+
+    inputs = argparse.ArgumentParser(add_help=False)
+    g = inputs.add_argument_group("sample inputs (where drift is measured)")
+    g.add_argument("--inputs", "-i", metavar="FILE",
+                   help=".safetensors/.npz/.npy tensors (first dimension = samples; labels under 'labels'), or a "
+                   ".txt of sentences (one per line) for a transformers directory with a tokenizer")
+    g.add_argument("--random-inputs", metavar="SHAPE",
+                   help="seeded random inputs, e.g. 16x64 (16 samples of 64 features); they say little about real "
+                   "drift")
+    g.add_argument("--labels-key", default="labels", metavar="KEY",
+                   help="key of the labels in --inputs (default: labels)")
+    g.add_argument("--batch-size", type=int, default=64, metavar="N", help="samples per forward pass (default: 64)")
+    g.add_argument("--max-samples", type=int, metavar="N", help="use at most N samples")
+    g.add_argument("--repeats", type=int, default=None, metavar="N",
+                   help="timed forward passes per model for the median latency (0: do not time)")
+    g.add_argument("--seed", type=int, default=0, metavar="N", help="seed for random inputs and randomized SVD")
+
+    policy = argparse.ArgumentParser(add_help=False)
+    g = policy.add_argument_group("rank policy (one of --budget/--rank/--energy/--keep; default --budget 0.5)")
+    g.add_argument("--budget", type=_fraction("--budget"), metavar="F",
+                   help="the selected layers together keep fraction F of their parameters, in (0, 1]")
+    g.add_argument("--rank", type=_positive_int("--rank"), metavar="N", help="the same rank N in every layer")
+    g.add_argument("--energy", type=_fraction("--energy"), metavar="T",
+                   help="per layer, the smallest rank keeping fraction T of the sum of squared singular values")
+    g.add_argument("--keep", type=_fraction("--keep"), metavar="F",
+                   help="each layer keeps fraction F of its parameters")
+    _selection(g)
+    g.add_argument("--recipe", metavar="FILE.toml", help="a TOML recipe (recipes/*.toml); options given here win")
+
+    out = argparse.ArgumentParser(add_help=False)
+    g = out.add_argument_group("files")
+    g.add_argument("--output", "-o", metavar="FILE",
+                   help=f"compressed checkpoint to write (default: next to the input, suffix {OUTPUT_SUFFIX})")
+    g.add_argument("--report", metavar="FILE.md", help="also write the report as Markdown")
+    g.add_argument("--force", "-f", action="store_true", help="replace existing output files")
+    return common, model, inputs, policy, out
+
+
+def _selection(g) -> None:
+    g.add_argument("--include", action="append", metavar="GLOB",
+                   help="only layers whose name matches (repeatable; fnmatch rules, '*' crosses dots)")
+    g.add_argument("--exclude", action="append", metavar="GLOB", help="never factor matching layers (repeatable)")
+    g.add_argument("--method", choices=METHODS + AWARE_METHODS,
+                   help="how to decompose: exact (LAPACK SVD), gram (eigensolve of the smaller Gram matrix), "
+                   "randomized (Halko et al. 2011), auto (the library's choice; default); with --calibration: "
+                   "whiten (reduced-rank regression on the layer inputs; the default there) or scale (per-channel "
+                   "activation scaling)")
+    g.add_argument("--multiple", type=_positive_int("--multiple"), metavar="N", help="round ranks to a multiple of N")
+
+
+def _scan_options():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("scan")
+    g.add_argument("--include", action="append", metavar="GLOB", help="only layers whose name matches (repeatable)")
+    g.add_argument("--exclude", action="append", metavar="GLOB", help="leave out matching layers (repeatable)")
+    g.add_argument("--target-energy", type=_fraction("--target-energy"), default=SCAN_ENERGY, metavar="T",
+                   help=f"the suggested rank keeps this fraction of sum(s^2) (default {SCAN_ENERGY})")
+    g.add_argument("--multiple", type=_positive_int("--multiple"), default=1, metavar="N",
+                   help="round suggested ranks up to a multiple of N")
+    return p
+
+
+def _quality_options(*, shrink: bool):
+    """Activation-aware factors, healing and speed options (shrink has them all, sweep the decomposition ones)."""
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("activation-aware factors" + (", healing" if shrink else "") + " and speed")
+    g.add_argument("--calibration", "-c", metavar="FILE",
+                   help="sample inputs (same formats as --inputs) the factors are fitted to: each layer keeps its "
+                   "outputs on them (whitening); keep them apart from --inputs, where drift is measured")
+    g.add_argument("--sequential", action="store_true",
+                   help="with --calibration: factor layers in forward order, each fitted to the inputs the partly "
+                   "compressed model gives it")
+    g.add_argument("--sensitivity", nargs="?", const=True, default=False, choices=SENSITIVITY_MODES,
+                   metavar="HOW",
+                   help="with --calibration: allocate the budget by each layer's measured effect on the final output; "
+                   "HOW: gradients (cheapest: one forward and two backward passes per batch), probes (truncation "
+                   "probes, two per layer), both (the default)")
+    g.add_argument("--cache", metavar="DIR",
+                   help="keep spectra in DIR so a later run on the same weights skips the SVD")
+    g.add_argument("--workers", type=_positive_int("--workers"), default=1, metavar="N",
+                   help="decompose N layers at a time (threads; results equal a serial run)")
+    if shrink:
+        g.add_argument("--target-drift", type=_nonnegative("--target-drift"), metavar="X",
+                       help="with --calibration: the smallest budget whose relative L2 drift on --inputs stays <= X "
+                       "(exit 1 with the closest budget when none does)")
+        g.add_argument("--heal", type=_positive_int("--heal"), metavar="STEPS",
+                       help="after compressing, fine-tune the factors for STEPS steps to match the original on "
+                       "--calibration (distillation); the best state on --inputs is kept")
+        g.add_argument("--heal-lr", type=_nonnegative("--heal-lr"), default=1e-4, metavar="LR",
+                       help="learning rate for --heal (default 1e-4; the peak rate with --heal-schedule cosine)")
+        g.add_argument("--heal-schedule", choices=HEAL_SCHEDULES, default="constant",
+                       help="learning-rate schedule for --heal: constant (default), or cosine (a 5%% linear warm-up, "
+                       "then a half cosine down to zero)")
+        g.add_argument("--speed-check", action="store_true",
+                       help="time each factored layer against its dense form here (batch 1 and 32) and keep dense "
+                       "the ones that are slower")
+    return p
+
+
+def _check_options():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("checks")
+    g.add_argument("--max-drift", type=_nonnegative("--max-drift"), metavar="X",
+                   help="exit 1 (and write no checkpoint) when the relative L2 output drift is above X")
+    return p
+
+
+def _sweep_policy():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("grid")
+    g.add_argument("--budgets", type=_fractions, default=DEFAULT_BUDGETS, metavar="F,F,...",
+                   help="budgets to evaluate (default: " + ",".join(map(str, DEFAULT_BUDGETS)) + ")")
+    _selection(g)
+    g.add_argument("--recipe", metavar="FILE.toml", help="take include/exclude/method/overrides from a recipe")
+    return p
+
+
+def _sweep_options():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("files")
+    g.add_argument("--csv", metavar="FILE", help="write the table as CSV")
+    g.add_argument("--plot", metavar="FILE.png", help="plot parameters kept against drift (needs matplotlib)")
+    g.add_argument("--force", "-f", action="store_true", help="replace existing output files")
+    return p
+
+
+def _compare_options():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("the other model")
+    g.add_argument("--against", "-a", required=True, metavar="SPEC",
+                   help="a checkpoint from 'factorize shrink' or a weights file for --model's architecture, or "
+                   "another model spec")
+    g.add_argument("--report", metavar="FILE.md", help="also write the report as Markdown")
+    g.add_argument("--force", "-f", action="store_true", help="replace an existing report file")
+    return p
+
+
+def _demo_options():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("demo")
+    g.add_argument("--budgets", type=_fractions, default=DEMO_BUDGETS, metavar="F,F",
+                   help="budgets to shrink at (default: " + ",".join(map(str, DEMO_BUDGETS)) + ")")
+    g.add_argument("--repeats", type=int, default=7, metavar="N", help="timed passes for latency (0: do not time)")
+    return p
+
+
+def _checked(flag: str, kind: type, takes: str, ok: Callable[[Any], bool], bad: str,
+             wants: str | None = None) -> Callable[[str], Any]:
+    """An argparse type: ``kind(text)`` that passes ``ok``; the messages say what ``flag`` takes."""
+    def parse(text: str):
+        try:
+            v = kind(text)
+        except ValueError:
+            noun = "an integer" if kind is int else "a number"
+            raise argparse.ArgumentTypeError(f"{text!r} is not {noun}; {flag} takes {takes}") from None
+        if not ok(v):
+            raise argparse.ArgumentTypeError(f"{v} {bad}; {flag} takes {wants or takes}")
+        return v
+
+    return parse
+
+
+def _fraction(flag: str) -> Callable[[str], float]:
+    return _checked(flag, float, "a fraction in (0, 1]", lambda v: 0 < v <= 1, "is outside (0, 1]",
+                    "a fraction such as 0.5")
+
+
+def _fractions(text: str) -> tuple[float, ...]:
+    parse = _fraction("--budgets")
+    values = tuple(parse(t.strip()) for t in text.split(",") if t.strip())
+    if not values:
+        raise argparse.ArgumentTypeError("give at least one budget, e.g. 0.9,0.5")
+    return values
+
+
+def _positive_int(flag: str) -> Callable[[str], int]:
+    return _checked(flag, int, "an integer >= 1", lambda v: v >= 1, "is below 1")
+
+
+def _nonnegative(flag: str) -> Callable[[str], float]:
+    return _checked(flag, float, "a number >= 0", lambda v: v >= 0, "is negative")

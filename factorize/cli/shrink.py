@@ -1,0 +1,136 @@
+"""``factorize shrink``: compress under a rank policy, measure on sample inputs, write the checkpoint and report."""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+from factorize.checkpoints import files
+from factorize.checkpoints.stream import shrink_checkpoint, stream_report
+from factorize.errors import FactorizeError
+from factorize.measure.evaluate import evaluate, layer_reports
+from factorize.measure.report import Report, render_rich
+from factorize.model.count import count_bytes, count_parameters
+from factorize.pipeline import compress
+from factorize.training.heal import heal
+
+from .common import (
+    Options,
+    calibration_inputs,
+    check_outputs,
+    load,
+    max_drift_check,
+    optional_path,
+    options,
+    output_path,
+    quality_keywords,
+    repeats,
+    sample_inputs,
+    sharded,
+    weights_file,
+    weights_only_checks,
+    write_text,
+)
+from .render import UI
+
+
+def run(args, ui: UI) -> dict:
+    opts = options(args, ui)
+    policy = opts.policy()  # a bad policy is reported before the model is loaded
+    loaded = load(args, ui)
+    output = output_path(args, loaded)
+    report_path = optional_path(args.report)
+    if loaded.path is not None and output.resolve() == Path(loaded.path).resolve():
+        raise FactorizeError(f"{output}: is the input; factorize never overwrites its input",
+                             fix="choose another --output")
+    check_outputs([output, report_path], args.force, directory=output if sharded(loaded.path) else None)
+    if loaded.weights_only:
+        if args.max_drift is not None:
+            raise FactorizeError("--max-drift needs a model to run, and weights-only mode has none",
+                                 fix="pass --model package.module:callable --weights FILE to measure drift")
+        report, plan = _shrink_weights_only(args, loaded, output, opts, ui)
+    else:
+        report, plan = _shrink_model(args, loaded, output, opts, policy, ui)
+    if report_path is not None:
+        try:
+            write_text(report_path, report.to_markdown(), args.force)
+        except BaseException:  # no checkpoint without the report that was asked for
+            if output.is_dir():
+                shutil.rmtree(output, ignore_errors=True)
+            else:
+                output.unlink(missing_ok=True)
+            raise
+    if not ui.json_mode:
+        render_rich(report, ui.out)
+        ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
+    return {"command": "shrink", "model": loaded.source, "output": str(output),
+            "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan}
+
+
+def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
+    inputs = sample_inputs(args, loaded, ui)
+    if args.max_drift is not None and inputs is None:
+        raise FactorizeError("--max-drift needs sample inputs to measure drift on",
+                             fix="pass --inputs FILE (or --random-inputs SHAPE)")
+    calibration = calibration_inputs(args, loaded, ui)
+    extra = quality_keywords(args, calibration, inputs, opts)
+    kwargs = opts.keywords(None if "max_drift" in extra else policy)  # --target-drift chooses the budget itself
+    if inputs is not None and calibration is None and args.speed_check:
+        extra["speed_example"] = inputs.batches[0]
+    result = compress(loaded.model, progress=ui.progress, **kwargs, **extra)
+    notes = list(inputs.notes) if inputs is not None else []
+    notes += _calibration_notes(result, calibration)
+    if args.heal:
+        notes += _heal(args, loaded, result, calibration, inputs, ui)
+    if inputs is not None:
+        report = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
+                          latency_repeats=repeats(args, 7), title="factorize shrink", model_name=loaded.source,
+                          inputs=inputs.source, notes=notes, progress=ui.progress)
+        max_drift_check(args, report)
+    else:
+        report = Report(title="factorize shrink", model=loaded.source, params_before=count_parameters(loaded.model),
+                        params_after=count_parameters(result.model), bytes_before=count_bytes(loaded.model),
+                        bytes_after=count_bytes(result.model), policy=result.plan["policy"],
+                        layers=layer_reports(loaded.model, result.model, plan=result.plan),
+                        notes=["no sample inputs given: output drift was not measured; pass --inputs FILE"])
+        ui.warn(report.notes[0])
+    files.save(result.model, output, plan=result.plan, force=args.force)
+    return report, result.plan
+
+
+def _calibration_notes(result, calibration) -> list[str]:
+    if calibration is None:
+        return []
+    method = result.plan.get("calibration", {}).get("method", "whiten")
+    notes = [f"activation-aware factors ({method}) fitted to {calibration.source}"]
+    search = getattr(result, "search", None)
+    if search is not None:
+        walked = ", ".join(f"{p.budget:.3g} -> " + ("not feasible" if p.drift is None else f"{p.drift:.4g}")
+                           for p in search.points)
+        notes.append(f"target drift {search.max_drift:g} ({search.metric}): budgets tried (budget -> drift): {walked}")
+    return notes
+
+
+def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
+    """Distil the compressed model towards the original on the calibration inputs; held-out: --inputs."""
+    done = heal(result.model, loaded.model, calibration.batches, steps=args.heal, lr=args.heal_lr,
+                schedule=args.heal_schedule,
+                heldout=inputs.batches if inputs is not None else None, progress=ui.progress)
+    result.plan["heal"] = done.to_dict()
+    if inputs is None:
+        ui.warn("--heal without --inputs: no held-out check, the last state is kept")
+    drift = "" if done.initial_drift is None else \
+        f"; held-out {done.metric} {done.initial_drift:.4g} -> {done.best_drift:.4g} (best step {done.best_step})"
+    schedule = ", cosine schedule" if done.schedule == "cosine" else ""
+    return [(f"healed {done.steps_run} steps ({done.loss} loss, lr {done.lr:g}{schedule}, {done.seconds:.1f} s)"
+             f"{drift}: {done.reason}")]
+
+
+def _shrink_weights_only(args, loaded, output: Path, opts: Options, ui: UI):
+    weights_only_checks(args)
+    kwargs = opts.keywords(opts.policy())
+    if kwargs.pop("cost") != "params":
+        ui.warn("weights-only mode counts parameters only: the recipe's cost is ignored")
+    with weights_file(loaded) as src:
+        done = shrink_checkpoint(src, output, force=args.force, progress=ui.progress, cache_dir=args.cache, **kwargs)
+    return stream_report(done, loaded.source), done["plan"]

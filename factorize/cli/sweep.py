@@ -1,0 +1,192 @@
+"""``factorize sweep``: a grid of budgets from one decomposition pass, tabulated (and as CSV and a plot)."""
+
+from __future__ import annotations
+
+import csv
+import io
+from pathlib import Path
+
+from rich.table import Table
+
+from factorize.calibrated.search import Calibration, compress_from
+from factorize.checkpoints.stream import checkpoint_spectra
+from factorize.choices import DEFAULT_METHOD, calibrated_methods
+from factorize.errors import FactorizeError
+from factorize.measure.evaluate import evaluate
+from factorize.measure.report import CAUTION
+from factorize.pipeline import compress
+from factorize.plan.ranks import choose_ranks, plan_summary
+from factorize.storage import write_atomic
+
+from .common import (
+    Options,
+    calibration_inputs,
+    check_outputs,
+    load,
+    optional_path,
+    options,
+    quality_keywords,
+    repeats,
+    sample_inputs,
+    weights_file,
+    weights_only_checks,
+    write_text,
+)
+from .render import UI, g4, pct
+
+PLOT_EXTRA = 'pip install "factorize[plot]"'
+DRIFT_KEYS = ("relative_l2", "cosine_mean", "cosine_min", "top1_agreement", "kl")
+REPORT_KEYS = ("accuracy_before", "accuracy_after", "worst_weight_error", "macs_before", "macs_after",
+               "latency_ms_before", "latency_ms_after")
+CSV_COLUMNS = ("budget", "params_before", "params_after", "kept_fraction", "factored_layers", *DRIFT_KEYS, *REPORT_KEYS)
+
+
+def run(args, ui: UI) -> dict:
+    csv_path, plot_path = optional_path(args.csv), optional_path(args.plot)
+    if plot_path is not None:
+        _matplotlib()  # fail before any work when the plot cannot be drawn
+    check_outputs([csv_path, plot_path], args.force)
+    opts = options(args, ui, default_budget=None)  # the grid gives the budgets; a recipe's rule is not used
+    loaded = load(args, ui)
+    budgets = sorted(set(args.budgets), reverse=True)
+    if loaded.weights_only:
+        rows, inputs_source = _sweep_weights_only(args, loaded, budgets, opts, ui), None
+    else:
+        rows, inputs_source = _sweep_model(args, loaded, budgets, opts, ui)
+    result = {"command": "sweep", "model": loaded.source, "inputs": inputs_source, "rows": rows, "caution": CAUTION}
+    if csv_path is not None:
+        write_text(csv_path, _csv_text(rows), args.force)
+    if plot_path is not None:
+        _plot(rows, plot_path, loaded.source, args.force)
+    result.update(csv=str(csv_path) if csv_path else None, plot=str(plot_path) if plot_path else None)
+    if not ui.json_mode:
+        render(result, ui)
+    return result
+
+
+def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
+    inputs = sample_inputs(args, loaded, ui)
+    if inputs is None:
+        ui.warn("no sample inputs given: only parameters and weight errors are shown; pass --inputs FILE for drift")
+    calibration = calibration_inputs(args, loaded, ui)
+    quality = quality_keywords(args, calibration, inputs, opts)
+    calib = None
+    if calibration is not None:  # one set of statistics and spectra for every budget, as compress would use them
+        aware, solver = calibrated_methods(opts.method)
+        calib = Calibration(loaded.model, calibration.batches, include=opts.include, exclude=opts.exclude,
+                            method=aware, solver=solver, sensitivity=args.sensitivity, multiple=opts.multiple,
+                            progress=ui.progress)
+    rows, spectra, memo = [], None, {}  # memo: the original's outputs, computed once for every budget
+    for budget in budgets:
+        policy = opts.policy(budget=budget)
+        if calib is not None:
+            result = compress_from(calib, policy, sequential=args.sequential)
+        else:
+            result = compress(loaded.model, **opts.keywords(policy), spectra=spectra,
+                              progress=ui.progress and spectra is None, cache=quality["cache"],
+                              workers=quality["workers"])
+            spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum
+        summary = plan_summary(result.plan)
+        row = {"budget": budget, "params_before": result.params_before, "params_after": result.params_after,
+               "kept_fraction": result.kept_fraction, "factored_layers": summary["factored"]}
+        if inputs is not None:
+            rep = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
+                           latency_repeats=repeats(args, 0), model_name=loaded.source, inputs=inputs.source,
+                           memo=memo)
+            row.update({k: rep.drift.get(k) for k in DRIFT_KEYS})
+            row.update({k: getattr(rep, k) for k in REPORT_KEYS})
+        else:
+            row["worst_weight_error"] = _worst_predicted_error(result.plan)
+        rows.append(row)
+    return rows, None if inputs is None else inputs.source
+
+
+def _worst_predicted_error(plan: dict) -> float:
+    errors = [e.get("predicted_error", 0.0) for e in plan["sites"].values() if e["action"] == "factor"]
+    return max(errors) if errors else 0.0
+
+
+def _sweep_weights_only(args, loaded, budgets, opts: Options, ui: UI) -> list[dict]:
+    weights_only_checks(args)
+    with weights_file(loaded) as path:
+        sites, spectra, _ = checkpoint_spectra(path, include=opts.include, exclude=opts.exclude,
+                                               method=opts.method or DEFAULT_METHOD, seed=opts.seed,
+                                               progress=ui.progress)
+    rows = []
+    for budget in budgets:
+        plan = choose_ranks(sites, spectra, opts.policy(budget=budget))
+        s = plan_summary(plan)
+        rows.append({"budget": budget, "params_before": s["params_before"], "params_after": s["params_after"],
+                     "kept_fraction": s["kept_fraction"], "factored_layers": s["factored"],
+                     "worst_weight_error": _worst_predicted_error(plan)})
+    ui.note("weights-only mode: parameters are the factored weights only; errors are predicted weight errors "
+            "(Eckart-Young), no drift")
+    return rows
+
+
+def _csv_text(rows: list[dict]) -> str:
+    buf = io.StringIO()
+    columns = [c for c in CSV_COLUMNS if any(r.get(c) is not None for r in rows)]
+    writer = csv.DictWriter(buf, fieldnames=columns, extrasaction="ignore", lineterminator="\n")
+    writer.writeheader()
+    for r in rows:
+        writer.writerow({c: "" if r.get(c) is None else r[c] for c in columns})
+    return buf.getvalue()
+
+
+def _matplotlib():
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        raise FactorizeError("--plot needs matplotlib, which is not installed",
+                             fix=f"install the plot extra: {PLOT_EXTRA} (or drop --plot)") from None
+    return plt
+
+
+def _plot(rows: list[dict], path: Path, title: str, force: bool) -> None:
+    plt = _matplotlib()
+    fig, ax = plt.subplots(figsize=(6.4, 4.2), dpi=120)
+    x = [100 * r["kept_fraction"] for r in rows]
+    key = "relative_l2" if rows and rows[0].get("relative_l2") is not None else "worst_weight_error"
+    ax.plot(x, [r[key] for r in rows], marker="o", color="tab:blue")
+    for r, xi in zip(rows, x):
+        ax.annotate(f"{r['budget']:g}", (xi, r[key]), textcoords="offset points", xytext=(4, 4), fontsize=8)
+    ax.set_xlabel("parameters kept (% of the original model)")
+    ax.set_ylabel("relative L2 output drift" if key == "relative_l2" else "worst relative weight error")
+    ax.set_title(f"factorize sweep: {title}", fontsize=10)
+    ax.grid(alpha=0.3)
+    if rows and rows[0].get("accuracy_after") is not None:
+        ax2 = ax.twinx()
+        ax2.plot(x, [100 * r["accuracy_after"] for r in rows], marker="s", color="tab:orange", label="accuracy")
+        ax2.axhline(100 * rows[0]["accuracy_before"], color="tab:orange", linestyle=":", linewidth=1)
+        ax2.set_ylabel("accuracy after (%), dotted: before", color="tab:orange")
+    fig.text(0.01, 0.01, "drift on sample inputs only; no guarantee on other inputs", fontsize=7, color="gray")
+    fig.tight_layout()
+    write_atomic(path, lambda tmp: fig.savefig(tmp, format="png"), force=force)
+    plt.close(fig)
+
+
+def render(result: dict, ui: UI) -> None:
+    rows = result["rows"]
+    table = Table(title=f"sweep: {result['model']}" + (f" on {result['inputs']}" if result["inputs"] else ""),
+                  title_justify="left")
+    columns = [("budget", "budget", lambda v: f"{v:g}"), ("params kept", "kept_fraction", pct),
+               ("params", "params_after", lambda v: f"{v:,}"), ("layers factored", "factored_layers", str),
+               ("relative L2", "relative_l2", g4), ("cosine worst", "cosine_min", lambda v: f"{v:.6f}"),
+               ("top-1 agree", "top1_agreement", pct), ("accuracy", "accuracy_after", pct),
+               ("worst weight err", "worst_weight_error", lambda v: f"{v:.4f}")]
+    columns = [c for c in columns if any(r.get(c[1]) is not None for r in rows)]
+    for title, _, _ in columns:
+        table.add_column(title, justify="left" if title == "budget" else "right")
+    for r in rows:
+        table.add_row(*["-" if r.get(key) is None else fmt(r[key]) for _, key, fmt in columns])
+    ui.out.print(table)
+    if rows and rows[0].get("accuracy_before") is not None:
+        ui.out.print(f"accuracy of the original: {pct(rows[0]['accuracy_before'])}")
+    for kind in ("csv", "plot"):
+        if result.get(kind):
+            ui.out.print(f"wrote {result[kind]}")
+    ui.caution(result["caution"])
