@@ -163,6 +163,11 @@ def _probe_transposed(module: nn.Module, weight: torch.Tensor, bias: torch.Tenso
 
 def _kind_of(module: nn.Module) -> tuple[str | None, str | None]:
     """(kind, None) for a factorizable module, (None, reason) for a dense layer we skip, (None, None) otherwise."""
+    if getattr(type(module), "_factorize_factored", False):
+        return None, None  # already factored (its two factor layers are walked as children)
+    reason = _unsafe(module)
+    if reason is not None:
+        return None, reason
     if isinstance(module, nn.Linear):
         return "linear", None
     if isinstance(module, (nn.Conv1d, nn.Conv2d)):
@@ -177,9 +182,28 @@ def _kind_of(module: nn.Module) -> tuple[str | None, str | None]:
         return "embedding", None
     if isinstance(module, nn.EmbeddingBag):
         return None, "EmbeddingBag is not supported; left dense"
+    if isinstance(module, nn.RNNBase):
+        return None, (f"{type(module).__name__} weights (weight_ih/weight_hh) feed a fused recurrent kernel that "
+                      "takes dense matrices; left dense")
+    if isinstance(module, nn.MultiheadAttention):
+        fused = "in_proj_weight" if module.in_proj_weight is not None else "q/k/v_proj_weight"
+        return None, (f"MultiheadAttention passes {fused} to a fused attention kernel as dense matrices; left dense "
+                      "(its out_proj is a site of its own)")
     if is_transposed_projection(module):
         return "transposed", None
     return None, None
+
+
+def _unsafe(module: nn.Module) -> str | None:
+    """Why a layer of a kind we handle still cannot be factored safely, or None."""
+    if not isinstance(module, (nn.Linear, nn.Embedding, nn.Conv1d, nn.Conv2d)):
+        return None
+    weight = module._parameters.get("weight")
+    if "parametrizations" in module._modules or weight is None:
+        return f"{type(module).__name__} computes its weight (a parametrization or a property); left dense"
+    if not weight.is_floating_point():
+        return f"{type(module).__name__} holds a {str(weight.dtype).removeprefix('torch.')} weight; left dense"
+    return None
 
 
 def matrix_of(module: nn.Module, kind: str) -> torch.Tensor:
@@ -263,7 +287,35 @@ def walk(
                 result.skipped.append(Skipped(name, reason))
             continue
         result.sites.append(_make_site(name, module, kind, owners))
+    result.skipped.extend(_uncovered(model, result, include_p, exclude_p))
     return result
+
+
+def _uncovered(model: nn.Module, found: WalkResult, include_p, exclude_p) -> list[Skipped]:
+    """A skip entry for every parameter with two or more dimensions that is neither the weight of a site nor held
+    by a skipped layer (a bare Parameter a forward uses directly: position tables, class tokens, ``F.linear``)."""
+    covered = {s.name for s in found.sites} | {s.name for s in found.skipped}
+    seen: set[int] = set()
+    for name in covered:
+        module = get_module(model, name)
+        if getattr(type(module), "_factorize_factored", False):
+            continue
+        seen.update(id(p) for p in module.parameters(recurse=False))
+    out = []
+    for mod_name, module in model.named_modules():
+        if getattr(type(module), "_factorize_factored", False):
+            continue  # factored: its weight is computed, its factors are children
+        if (include_p is not None and not _matches(mod_name, include_p)) or _matches(mod_name, exclude_p):
+            continue
+        for p_name, p in module.named_parameters(recurse=False):
+            if p.dim() < 2 or id(p) in seen:
+                continue
+            seen.add(id(p))
+            owner = type(module).__name__
+            out.append(Skipped(f"{mod_name}.{p_name}" if mod_name else p_name,
+                               f"a {tuple(p.shape)} parameter that {owner} uses directly (not the weight of a layer "
+                               "kind factorize handles); left dense"))
+    return out
 
 
 def _make_site(name: str, module: nn.Module, kind: str, owners: dict[int, list[str]]) -> Site:

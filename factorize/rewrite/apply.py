@@ -1,4 +1,5 @@
-"""TODO docstring."""
+"""Apply a plan to a model (swap in factored layers) and merge factored layers back (see
+:mod:`factorize.rewrite.layers` for the two forms and how the original classes come back)."""
 
 from __future__ import annotations
 
@@ -128,7 +129,9 @@ def apply_plan(
 
 @torch.no_grad()
 def merge(model: nn.Module, *, inplace: bool = False) -> nn.Module:
-    """Merge every factored layer back into a dense layer computing the same function."""
+    """Merge every factored layer back into a dense layer computing the same function, of the class and weight
+    layout of the layer it replaced (GPT-2's ``Conv1D`` stays ``Conv1D``; subclasses stay themselves), so the
+    merged model's state-dict keys are the original model's."""
     target = model if inplace else copy.deepcopy(model)
     for name, layer in factored_layers(target).items():
         set_module(target, name, to_dense(layer))

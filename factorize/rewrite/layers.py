@@ -1,34 +1,73 @@
 """Factored modules: a dense layer rewritten as two thin layers, and back.
 
-All of them are plain ``nn.Module`` subclasses built from stock torch layers, so they train with autograd, run
-under ``torch.compile`` and ``torch.export``, and serialise with an ordinary ``state_dict``. The weight matrix
-view W (m x n) of the original (see :mod:`factorize.walk`) is replaced by ``B @ A`` with B (m x r), A (r x n):
+The weight matrix view W (m x n) of the original (see :mod:`factorize.model.sites`) is replaced by ``B @ A``
+with B (m x r), A (r x n), held by two stock torch layers, ``first`` (A) and ``second`` (B and the original bias):
 
 * linear / transposed projection: ``Linear(n -> r, no bias)`` then ``Linear(r -> m, original bias)``;
 * conv1d / conv2d: a conv with the original kernel, stride, padding and dilation to r channels, then a 1x1 conv
   to the output channels with the original bias (channel decomposition: Zhang, Zou, He & Sun, "Accelerating very
   deep convolutional networks for classification and detection", TPAMI 2016);
 * embedding: ``Embedding(V, r)`` holding ``A^T`` then ``Linear(r -> d, no bias)`` holding ``B``.
+
+The state-dict keys are always ``<name>.first.weight``, ``<name>.second.weight`` and ``<name>.second.bias``
+(docs/file-format.md).
+
+**Drop-in.** Parents of a layer read more than its output: T5 reads ``wo.weight.dtype``, ViT and CLIP read
+``projection.weight.dtype``, ``nn.MultiheadAttention`` passes ``out_proj.weight`` to a functional kernel,
+MobileNetV2 reads ``conv.stride``, Whisper reads ``embed_positions.weight``. So a factored layer answers:
+
+* ``weight``: a **computed** tensor, the product ``B @ A`` in the original weight's layout (Linear (out, in),
+  conv (out, in, *k), embedding (V, d), transposed projection (in, out)) and the factors' dtype and device. It is
+  not a Parameter: reading it costs one matrix product, writing to it is refused, and it does not appear in
+  ``parameters()`` or ``state_dict()``;
+* ``bias``: the bias Parameter (held by ``second``);
+* every plain attribute of the module it replaced (``stride``, ``padding``, ``in_features``, ``nf``, ...), read
+  from a weight-less copy of that module kept beside the factors (not a child module, so no state-dict keys).
+
+Two forms, chosen by :func:`build_factored`:
+
+* **swapped** (the class is exactly ``nn.Linear``, ``nn.Conv1d``, ``nn.Conv2d``, ``nn.Embedding``, or a transposed
+  projection whose forward the walker probed): a :class:`Factored` module replaces it and runs the two thin
+  layers, which is where the savings in time come from;
+* **in place** (a subclass, e.g. Whisper's positional embedding called with an extra keyword, or
+  ``nn.MultiheadAttention``'s ``NonDynamicallyQuantizableLinear``): the module keeps its own class and forward
+  (the class becomes a subclass of both it and :class:`Factored`), its weight becomes computed from the two
+  factors. It saves parameters; its forward still runs the dense op on the computed weight unless the subclass
+  kept the stock forward, in which case the two thin layers run.
+
+:func:`to_dense` (and :func:`factorize.rewrite.apply.merge`) restores the original class and layout: GPT-2's
+``Conv1D`` comes back as ``Conv1D`` with its (in, out) weight, a subclass comes back as itself.
 """
 
 from __future__ import annotations
+
+import copy
 
 import torch
 from torch import nn
 
 from factorize.model.sites import matrix_of
 
+_STOCK = {"linear": nn.Linear, "conv1d": nn.Conv1d, "conv2d": nn.Conv2d, "embedding": nn.Embedding}
+_DENSE_KEYS = ("weight", "bias")
+
 
 class Factored(nn.Module):
-    """Base of every factored layer: ``first`` maps the input to r channels, ``second`` maps them out."""
+    """Base of every factored layer: ``first`` maps the input to r channels, ``second`` maps them out.
+
+    ``original`` is a weight-less copy of the module replaced (used for attribute reads and by :func:`to_dense`);
+    it is optional, e.g. for a layer built from bare factors.
+    """
 
     kind: str = ""
+    _factorize_factored = True  # read by the walker, which may not import this module (layering)
 
-    def __init__(self, first: nn.Module, second: nn.Module, kind: str) -> None:
+    def __init__(self, first: nn.Module, second: nn.Module, kind: str, original: nn.Module | None = None) -> None:
         super().__init__()
         self.first = first
         self.second = second
         self.kind = kind
+        self.__dict__["_original"] = original  # bypass nn.Module.__setattr__: not a child, no state-dict keys
 
     @property
     def rank(self) -> int:
@@ -48,26 +87,160 @@ class Factored(nn.Module):
         """``B @ A``: the dense matrix view this layer computes (m x n)."""
         return self.factor_b() @ self.factor_a()
 
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return self.second(self.first(x))
+    @property
+    def weight(self) -> torch.Tensor:
+        """The dense weight this layer computes, in the replaced module's layout. Computed on every read (one
+        matrix product; gradients flow to the factors); not a Parameter and not stored."""
+        W = self.product()
+        if self.kind in ("embedding", "transposed"):
+            return W.t()  # embedding (V, d); transposed projection stored (in, out)
+        if self.kind in ("conv1d", "conv2d"):
+            return W.reshape(W.shape[0], *self.first.weight.shape[1:])  # (out, in, *kernel)
+        return W
+
+    @property
+    def bias(self) -> torch.Tensor | None:
+        """The original bias (a Parameter held by ``second``), or None."""
+        return self.second.bias
+
+    @property
+    def original_class(self) -> type:
+        """The class of the module this layer replaced (what :func:`to_dense` gives back)."""
+        if type(self) is not Factored:
+            return _IN_PLACE_BASE[type(self)]
+        original = self.__dict__.get("_original")
+        return type(original) if original is not None else _STOCK.get(self.kind, nn.Linear)
+
+    def forward(self, input: torch.Tensor) -> torch.Tensor:  # noqa: A002 - the stock layers' argument name
+        return self.second(self.first(input))
+
+    def __getattr__(self, name: str):
+        try:
+            return super().__getattr__(name)
+        except AttributeError:
+            pass
+        original = self.__dict__.get("_original")
+        if original is not None and not name.startswith("_") and name in original.__dict__:
+            return original.__dict__[name]
+        derived = _derived_attributes(self)
+        if name in derived:
+            return derived[name]
+        raise AttributeError(f"'{type(self).__name__}' object has no attribute '{name}'")
 
     def extra_repr(self) -> str:
         return f"kind={self.kind}, rank={self.rank}"
+
+
+def _derived_attributes(layer: Factored) -> dict:
+    """Attributes of the replaced module rebuilt from the factors, for a layer built without ``original``."""
+    modules = layer.__dict__.get("_modules", {})
+    first, second = modules.get("first"), modules.get("second")
+    if first is None or second is None:
+        return {}
+    if layer.kind == "embedding":
+        return {"num_embeddings": first.num_embeddings, "embedding_dim": second.out_features,
+                "padding_idx": first.padding_idx, "max_norm": None, "norm_type": 2.0,
+                "scale_grad_by_freq": first.scale_grad_by_freq, "sparse": first.sparse}
+    if layer.kind in ("conv1d", "conv2d"):
+        return {"in_channels": first.in_channels, "out_channels": second.out_channels,
+                "kernel_size": first.kernel_size, "stride": first.stride, "padding": first.padding,
+                "dilation": first.dilation, "groups": 1, "padding_mode": first.padding_mode,
+                "transposed": False, "output_padding": first.output_padding}
+    out = {"in_features": first.in_features, "out_features": second.out_features}
+    if layer.kind == "transposed":
+        out.update(nx=first.in_features, nf=second.out_features)
+    return out
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# in-place form: the module keeps its class (a subclass of it and of Factored is made once per class)
+
+_IN_PLACE: dict[type, type] = {}
+_IN_PLACE_BASE: dict[type, type] = {}
+
+
+def _stock_base(cls: type) -> type | None:
+    for base in (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Embedding):
+        if issubclass(cls, base):
+            return base
+    return None
+
+
+def _keeps_stock_forward(cls: type) -> bool:
+    """Whether ``cls`` computes exactly its stock base's function (so the two thin layers may run instead)."""
+    base = _stock_base(cls)
+    if base is None or cls.forward is not base.forward:
+        return False
+    return not issubclass(cls, nn.modules.conv._ConvNd) or cls._conv_forward is base._conv_forward
+
+
+def _new_in_place(base: type) -> nn.Module:
+    """Unpickling helper: an empty instance of the in-place factored class of ``base``."""
+    cls = in_place_class(base)
+    return cls.__new__(cls)
+
+
+def _reduce_in_place(self, protocol):
+    rv = object.__reduce_ex__(self, max(protocol, 2))  # (copyreg.__newobj__, (cls,), state, ...)
+    return (_new_in_place, (_IN_PLACE_BASE[type(self)],), *rv[2:])
+
+
+def _in_place_repr(self) -> str:
+    return f"{_IN_PLACE_BASE[type(self)].extra_repr(self)}, factored kind={self.kind}, rank={self.rank}"
+
+
+def in_place_class(base: type) -> type:
+    """The class of an in-place factored ``base`` module: ``base``'s forward and methods, with ``weight`` and
+    ``bias`` computed from the factors. Made once per class; pickles as ``base`` (reduced through it)."""
+    if base not in _IN_PLACE:
+        ns = {"weight": Factored.weight, "bias": Factored.bias, "__reduce_ex__": _reduce_in_place,
+              "extra_repr": _in_place_repr, "__module__": base.__module__,
+              "__doc__": f"{base.__name__} with its weight factored in place (see factorize.rewrite.layers)."}
+        if _keeps_stock_forward(base):
+            ns["forward"] = Factored.forward
+        cls = type(f"Factored{base.__name__}", (base, Factored), ns)
+        _IN_PLACE[base], _IN_PLACE_BASE[cls] = cls, base
+    return _IN_PLACE[base]
+
+
+def _fresh_copy(module: nn.Module) -> nn.Module:
+    """A shallow copy of ``module`` that shares tensors but none of its registries (parameters, children, hooks)."""
+    new = copy.copy(module)
+    for key, value in list(new.__dict__.items()):
+        if isinstance(value, dict):
+            new.__dict__[key] = copy.copy(value)
+    return new
+
+
+def _shell(module: nn.Module) -> nn.Module:
+    """A weight-less copy of ``module``: its attributes and class, without weight and bias tensors."""
+    shell = _fresh_copy(module)
+    for key in _DENSE_KEYS:
+        if key in shell._parameters:
+            shell._parameters[key] = None
+    return shell
+
+
+def swaps(module: nn.Module, kind: str) -> bool:
+    """Whether a factored ``module`` is swapped for a :class:`Factored` (else it is factored in place)."""
+    return kind == "transposed" or type(module) is _STOCK.get(kind)
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# building, filling, merging
 
 
 def _empty_like_linear(n_in: int, n_out: int, bias: bool, ref: torch.Tensor) -> nn.Linear:
     return nn.Linear(n_in, n_out, bias=bias, device=ref.device, dtype=ref.dtype)
 
 
-def build_factored(module: nn.Module, kind: str, rank: int) -> Factored:
-    """An uninitialised factored layer with the structure of ``module`` at ``rank`` (weights to be filled)."""
+def _make_factors(module: nn.Module, kind: str, rank: int) -> tuple[nn.Module, nn.Module]:
     w = module.weight
-    m, n = matrix_of(module, kind).shape
-    bias = getattr(module, "bias", None)
-    has_bias = isinstance(bias, torch.Tensor)
+    m, _ = matrix_of(module, kind).shape
+    has_bias = isinstance(getattr(module, "bias", None), torch.Tensor)
     if kind in ("linear", "transposed"):
-        first = _empty_like_linear(n, rank, False, w)
-        second = _empty_like_linear(rank, m, has_bias, w)
+        _, n = matrix_of(module, kind).shape
+        first, second = _empty_like_linear(n, rank, False, w), _empty_like_linear(rank, m, has_bias, w)
     elif kind in ("conv1d", "conv2d"):
         conv = nn.Conv1d if kind == "conv1d" else nn.Conv2d
         first = conv(
@@ -83,7 +256,36 @@ def build_factored(module: nn.Module, kind: str, rank: int) -> Factored:
         second = _empty_like_linear(rank, m, False, w)
     else:
         raise ValueError(f"unknown kind {kind!r}")
-    return Factored(first, second, kind)
+    for p in (*first.parameters(), *second.parameters()):
+        p.requires_grad_(w.requires_grad)  # a frozen weight (Whisper's sinusoidal positions) stays frozen
+    return first, second
+
+
+def build_factored(module: nn.Module, kind: str, rank: int) -> Factored:
+    """An uninitialised factored layer with the structure of ``module`` at ``rank`` (weights to be filled).
+
+    ``module`` is not modified: the result is a new object, swapped (a :class:`Factored`) or in place (a copy of
+    ``module`` of its in-place factored class, sharing its other parameters and children); the caller puts it
+    where ``module`` was.
+    """
+    first, second = _make_factors(module, kind, rank)
+    if swaps(module, kind):
+        return Factored(first, second, kind, original=_shell(module))
+    layer = _fresh_copy(module)
+    layer.__dict__["_factorize_dense_keys"] = tuple(layer._parameters)  # key order, restored by to_dense
+    for key in _DENSE_KEYS:
+        layer._parameters.pop(key, None)
+    layer.__class__ = in_place_class(type(module))
+    layer.first, layer.second, layer.kind = first, second, kind
+    return layer
+
+
+def with_factors(layer: Factored, first: nn.Module, second: nn.Module) -> Factored:
+    """A copy of ``layer`` (same form, class and remembered original) holding new ``first`` and ``second`` layers,
+    e.g. at another rank. ``layer`` itself is not modified."""
+    new = _fresh_copy(layer)
+    new._modules["first"], new._modules["second"] = first, second
+    return new
 
 
 @torch.no_grad()
@@ -108,40 +310,66 @@ def factor_module(module: nn.Module, kind: str, B: torch.Tensor, A: torch.Tensor
     return layer
 
 
+def _parameter(value: torch.Tensor | None, like: torch.Tensor) -> nn.Parameter | None:
+    if value is None:
+        return None
+    return nn.Parameter(value.detach().clone(), requires_grad=like.requires_grad)
+
+
 @torch.no_grad()
 def to_dense(layer: Factored) -> nn.Module:
-    """Merge a factored layer back into one dense torch layer computing ``B @ A`` (a transposed projection comes
-    back as ``nn.Linear``, which computes the same function)."""
-    W = layer.product()  # (m, n)
-    m, n = W.shape
-    bias = layer.second.bias
-    ref = layer.second.weight
-    if layer.kind in ("linear", "transposed"):
-        dense = nn.Linear(n, m, bias=bias is not None, device=ref.device, dtype=ref.dtype)
-        dense.weight.copy_(W)
-    elif layer.kind in ("conv1d", "conv2d"):
-        f = layer.first
-        conv = nn.Conv1d if layer.kind == "conv1d" else nn.Conv2d
-        dense = conv(
-            f.in_channels, m, f.kernel_size, stride=f.stride, padding=f.padding, dilation=f.dilation,
-            bias=bias is not None, padding_mode=f.padding_mode, device=ref.device, dtype=ref.dtype,
-        )
-        dense.weight.copy_(W.reshape(dense.weight.shape))
-    else:  # embedding
-        f = layer.first
-        dense = nn.Embedding(
-            f.num_embeddings, m, padding_idx=f.padding_idx, scale_grad_by_freq=f.scale_grad_by_freq,
-            sparse=f.sparse, device=ref.device, dtype=ref.dtype,
-        )
-        dense.weight.copy_(W.t())
-    if bias is not None:
-        dense.bias.copy_(bias)
+    """Merge a factored layer back into one dense module computing ``B @ A``, of the class and weight layout of the
+    module it replaced (GPT-2's ``Conv1D`` stays ``Conv1D`` with its (in, out) weight; a subclass stays itself).
+    A :class:`Factored` built without ``original`` comes back as the stock torch layer of its kind (a transposed
+    projection as ``nn.Linear``, which computes the same function). ``layer`` is not modified."""
+    W, bias, ref = layer.weight.detach(), layer.second.bias, layer.second.weight
+    if type(layer) is not Factored:  # in place: give the module its own class back
+        dense = _fresh_copy(layer)
+        del dense._modules["first"], dense._modules["second"]
+        dense.__dict__.pop("kind", None)
+        order = dense.__dict__.pop("_factorize_dense_keys", _DENSE_KEYS)
+        dense.__class__ = _IN_PLACE_BASE[type(layer)]
+        fresh = {"weight": _parameter(W, ref), "bias": _parameter(bias, ref)}
+        rest = dict(dense._parameters)
+        dense._parameters.clear()
+        for key in order:
+            dense._parameters[key] = fresh[key] if key in fresh else rest.pop(key, None)
+        dense._parameters.update(rest)
+        dense.train(layer.training)
+        return dense
+    original = layer.__dict__.get("_original")
+    if original is not None:
+        dense = copy.deepcopy(original)
+        dense._parameters["weight"] = _parameter(W, ref)
+        if "bias" in dense._parameters or bias is not None:
+            dense._parameters["bias"] = _parameter(bias, ref)
+    else:
+        dense = _stock_dense(layer, W, ref)
     dense.train(layer.training)
     return dense
 
 
+def _stock_dense(layer: Factored, W: torch.Tensor, ref: torch.Tensor) -> nn.Module:
+    bias, f = layer.second.bias, layer.first
+    kw = {"device": ref.device, "dtype": ref.dtype}
+    if layer.kind in ("linear", "transposed"):
+        W = W.t() if layer.kind == "transposed" else W
+        dense = nn.Linear(W.shape[1], W.shape[0], bias=bias is not None, **kw)
+    elif layer.kind in ("conv1d", "conv2d"):
+        conv = nn.Conv1d if layer.kind == "conv1d" else nn.Conv2d
+        dense = conv(f.in_channels, W.shape[0], f.kernel_size, stride=f.stride, padding=f.padding,
+                     dilation=f.dilation, bias=bias is not None, padding_mode=f.padding_mode, **kw)
+    else:  # embedding
+        dense = nn.Embedding(f.num_embeddings, W.shape[1], padding_idx=f.padding_idx,
+                             scale_grad_by_freq=f.scale_grad_by_freq, sparse=f.sparse, **kw)
+    dense.weight.copy_(W)
+    if bias is not None:
+        dense.bias.copy_(bias)
+    return dense
+
+
 def is_factored(module: nn.Module) -> bool:
-    """Whether ``module`` is a factored layer made by factorize."""
+    """Whether ``module`` is a factored layer made by factorize (swapped or in place)."""
     return isinstance(module, Factored)
 
 

@@ -56,6 +56,7 @@ from factorize.rewrite.layers import (
     factor_module,
     factored_layers,
     fill_factors,
+    with_factors,
 )
 from factorize.spectra.decompose import Spectrum, compute_dtype_for
 from factorize.spectra.sites import decompose_sites
@@ -107,7 +108,7 @@ def _lower_rank(layer: Factored, B: torch.Tensor, A: torch.Tensor) -> Factored:
         new_first = type(first)(first.in_channels, r, first.kernel_size, stride=first.stride, padding=first.padding,
                                 dilation=first.dilation, bias=False, padding_mode=first.padding_mode, **like)
         new_second = type(second)(r, second.out_channels, 1, bias=has_bias, **like)
-    new = Factored(new_first, new_second, layer.kind)
+    new = with_factors(layer, new_first, new_second)  # keeps the form and the original class
     fill_factors(new, B, A, second.bias if has_bias else None)
     new.train(layer.training)
     return new

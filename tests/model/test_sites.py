@@ -96,3 +96,41 @@ def test_tiny_gpt2_transposed_projections_and_tied_head():
 def test_not_a_module():
     with pytest.raises(FactorizeError, match="expected a torch.nn.Module"):
         walk({"weight": torch.zeros(2, 2)})
+
+
+def test_every_weight_matrix_is_a_site_or_skipped_with_a_reason():
+    class Mixed(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.attn = nn.MultiheadAttention(8, 2)
+            self.rnn = nn.GRU(8, 8)
+            self.c3 = nn.Conv3d(2, 3, 3)
+            self.up = nn.ConvTranspose2d(3, 2, 2)
+            self.table = nn.Parameter(torch.zeros(1, 4, 8))  # used directly by forward, e.g. a position table
+            self.int_lin = nn.Linear(4, 4)
+
+    m = Mixed()
+    m.int_lin.weight = nn.Parameter(torch.zeros(4, 4, dtype=torch.int8), requires_grad=False)
+    found = walk(m)
+    assert [s.name for s in found] == ["attn.out_proj"]
+    reasons = {s.name: s.reason for s in found.skipped}
+    assert "in_proj_weight" in reasons["attn"] and "weight_ih" in reasons["rnn"]
+    assert "Conv3d" in reasons["c3"] and "ConvTranspose2d" in reasons["up"] and "int8" in reasons["int_lin"]
+    assert "(1, 4, 8)" in reasons["table"]
+    covered = {s.name for s in found} | set(reasons)
+    for name, p in m.named_parameters():
+        if p.dim() >= 2:
+            owner = name.rpartition(".")[0]
+            assert owner in covered or name in covered, name
+
+
+def test_factored_layers_are_not_walked_again():
+    from factorize.rewrite.layers import factor_module
+
+    class Sub(nn.Linear):  # a subclass is factored in place and is still an nn.Linear
+        pass
+
+    model = nn.Sequential(Sub(6, 6))
+    model[0] = factor_module(model[0], "linear", torch.randn(6, 2), torch.randn(2, 6))
+    assert isinstance(model[0], nn.Linear)
+    assert [s.name for s in walk(model)] == ["0.first", "0.second"]  # as for a swapped layer

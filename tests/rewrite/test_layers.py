@@ -98,3 +98,100 @@ def test_merge_keeps_training_mode_and_dtype():
     fac = _full_rank(lin, "linear")
     dense = to_dense(fac)
     assert isinstance(dense, nn.Linear) and dense.training and dense.weight.dtype == torch.float64
+
+
+# --- drop-in: what parents read, subclasses in place, merge back to the original class -------------------------
+
+DROP_IN = [
+    ("linear", lambda: nn.Linear(9, 12), ("in_features", "out_features")),
+    ("conv2d", lambda: nn.Conv2d(3, 8, 3, stride=2, padding=1), ("in_channels", "out_channels", "kernel_size",
+                                                                  "stride", "padding", "dilation", "groups",
+                                                                  "padding_mode")),
+    ("conv1d", lambda: nn.Conv1d(5, 7, 4, stride=2, padding=1), ("stride", "padding", "kernel_size")),
+    ("embedding", lambda: nn.Embedding(30, 6, padding_idx=0), ("num_embeddings", "embedding_dim", "padding_idx")),
+    ("transposed", _transposed, ("nf", "nx")),
+]
+
+
+@pytest.mark.parametrize("kind,make,attrs", DROP_IN)
+def test_factored_layer_answers_what_parents_read(kind, make, attrs):
+    torch.manual_seed(0)
+    layer = make().double()
+    fac = _full_rank(layer, kind)
+    assert fac.weight.shape == layer.weight.shape and fac.weight.dtype == layer.weight.dtype
+    torch.testing.assert_close(fac.weight, layer.weight, rtol=1e-10, atol=1e-10)  # full rank: the same weight
+    assert not isinstance(fac.weight, nn.Parameter) and "weight" not in dict(fac.named_parameters())
+    if getattr(layer, "bias", None) is not None:
+        assert fac.bias is fac.second.bias and torch.equal(fac.bias, layer.bias)
+    for a in attrs:
+        assert getattr(fac, a) == getattr(layer, a), a
+    with pytest.raises((KeyError, AttributeError)):  # the computed weight cannot be overwritten silently
+        fac.weight = nn.Parameter(layer.weight.detach().clone())
+
+
+@pytest.mark.parametrize("kind,make,attrs", DROP_IN)
+def test_merge_restores_class_layout_and_keys(kind, make, attrs):
+    torch.manual_seed(0)
+    layer = make().double()
+    dense = to_dense(_full_rank(layer, kind))
+    assert type(dense) is type(layer)
+    assert dense.state_dict().keys() == layer.state_dict().keys()
+    for key, value in layer.state_dict().items():
+        torch.testing.assert_close(dense.state_dict()[key], value, rtol=1e-10, atol=1e-10)
+    for a in attrs:
+        assert getattr(dense, a) == getattr(layer, a)
+
+
+class Positions(nn.Embedding):
+    """A position table called with extra keywords (the pattern of Whisper's decoder positions)."""
+
+    def forward(self, ids, past_length=0, position_ids=None):
+        if position_ids is not None:
+            return self.weight[position_ids]
+        return self.weight[past_length : past_length + ids.shape[-1]]
+
+
+def test_subclass_is_factored_in_place_and_keeps_its_forward():
+    import io
+
+    torch.manual_seed(0)
+    pos = Positions(40, 8).double()
+    fac = _full_rank(pos, "embedding")
+    assert isinstance(fac, Positions) and is_factored(fac)
+    assert sorted(fac.state_dict()) == ["first.weight", "second.weight"]  # the file format's keys
+    ids = torch.zeros(2, 5, dtype=torch.long)
+    torch.testing.assert_close(fac(ids, past_length=3), pos(ids, past_length=3))
+    torch.testing.assert_close(fac(ids, position_ids=torch.arange(5)), pos(ids, position_ids=torch.arange(5)))
+    buf = io.BytesIO()  # whole-module pickling works: the in-place class is rebuilt from the subclass
+    torch.save(fac, buf)
+    buf.seek(0)
+    again = torch.load(buf, weights_only=False)
+    assert type(again) is type(fac) and torch.equal(again.first.weight, fac.first.weight)
+    dense = to_dense(fac)
+    assert type(dense) is Positions and list(dense.state_dict()) == ["weight"]
+    torch.testing.assert_close(dense(ids, past_length=2), pos(ids, past_length=2))
+
+
+def test_frozen_weight_stays_frozen():
+    emb = nn.Embedding(20, 4).requires_grad_(False)
+    fac = _full_rank(emb, "embedding")
+    assert not any(p.requires_grad for p in fac.parameters())
+    assert not to_dense(fac).weight.requires_grad
+
+
+def test_multihead_attention_and_fused_encoder_path_run_with_factored_layers():
+    # nn.MultiheadAttention hands out_proj.weight to F.multi_head_attention_forward; nn.TransformerEncoderLayer in
+    # eval mode under no_grad passes every weight to one fused kernel (torch docs, "fast path").
+    torch.manual_seed(0)
+    enc = nn.TransformerEncoder(nn.TransformerEncoderLayer(16, 2, 32, batch_first=True), 2,
+                                enable_nested_tensor=False).eval()
+    x = torch.randn(3, 5, 16)
+    with torch.no_grad():
+        ref = enc(x)
+    for layer in enc.layers:
+        layer.self_attn.out_proj = _full_rank(layer.self_attn.out_proj, "linear")
+        layer.linear1 = _full_rank(layer.linear1, "linear")
+    assert isinstance(enc.layers[0].self_attn.out_proj, nn.modules.linear.NonDynamicallyQuantizableLinear)
+    with torch.no_grad():
+        torch.testing.assert_close(enc(x), ref, rtol=1e-4, atol=1e-4)
+    assert enc.train()(x).shape == ref.shape  # the unfused path too
