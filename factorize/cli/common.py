@@ -64,19 +64,14 @@ class Options:
     seed: int = 0
 
     def policy(self, **rule: Any) -> Policy:
-        """The :class:`factorize.Policy` for this rule (default: the one asked for)."""
-        return Policy(**(rule or self.rule), multiple=self.multiple, cost=self.cost, overrides=self.overrides)
+        """The :class:`factorize.Policy` for this rule (default: the one asked for): rank rule, selection, method,
+        seed, rounding, cost and overrides, built by the library's one constructor."""
+        return Policy.from_keywords(**(rule or self.rule), **self.selection())
 
-    def keywords(self, policy: Policy | None = None) -> dict[str, Any]:
-        """Keyword arguments for :func:`factorize.compress`: the policy's fields (all but the rank rule when
-        ``policy`` is None), the selection, the seed, and the method only when one was named."""
-        kw: dict[str, Any] = {"include": self.include, "exclude": self.exclude, "seed": self.seed,
-                              "multiple": self.multiple, "cost": self.cost, "overrides": list(self.overrides)}
-        if policy is not None:
-            kw.update({k: getattr(policy, k) for k in POLICY_KEYS if getattr(policy, k) is not None})
-        if self.method is not None:
-            kw["method"] = self.method
-        return kw
+    def selection(self) -> dict[str, Any]:
+        """Every policy keyword but the rank rule (for --target-drift, where the search chooses the budget)."""
+        return {"include": self.include, "exclude": self.exclude, "method": self.method, "seed": self.seed,
+                "multiple": self.multiple, "cost": self.cost, "overrides": self.overrides}
 
 
 def options(args, ui: UI, *, default_budget: float | None = 0.5) -> Options:
@@ -193,12 +188,12 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
         return {"cache": getattr(args, "cache", None), "workers": getattr(args, "workers", 1),
                 "speed_check": getattr(args, "speed_check", False)}
     problems = [f for f, on in (("--cache", getattr(args, "cache", None)),
-                                ("--workers", getattr(args, "workers", 1) > 1),
                                 ("--speed-check", getattr(args, "speed_check", False))) if on]
-    if problems:
+    if problems:  # cached spectra are keyed by the weights alone; calibrated ones depend on the inputs too
         raise FactorizeError(f"{', '.join(problems)} cannot be combined with --calibration yet",
                              fix="drop them, or compress without --calibration")
-    extra = {"calibration": calibration.batches, "sequential": args.sequential, "sensitivity": args.sensitivity}
+    extra = {"calibration": calibration.batches, "sequential": args.sequential, "sensitivity": args.sensitivity,
+             "workers": getattr(args, "workers", 1)}
     if target is not None:
         for k in POLICY_KEYS:
             if getattr(args, k, None) is not None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import shutil
 from pathlib import Path
 
@@ -74,10 +75,14 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
                              fix="pass --inputs FILE (or --random-inputs SHAPE)")
     calibration = calibration_inputs(args, loaded, ui)
     extra = quality_keywords(args, calibration, inputs, opts)
-    kwargs = opts.keywords(None if "max_drift" in extra else policy)  # --target-drift chooses the budget itself
     if inputs is not None and calibration is None and args.speed_check:
         extra["speed_example"] = inputs.batches[0]
-    result = compress(loaded.model, progress=ui.progress, **kwargs, **extra)
+    if inputs is not None and calibration is None and policy.cost == "macs":
+        extra["example"] = inputs.batches[0]  # multiply-accumulates are counted on a sample batch
+    if "max_drift" in extra:  # --target-drift chooses the budget itself
+        result = compress(loaded.model, progress=ui.progress, **opts.selection(), **extra)
+    else:
+        result = compress(loaded.model, policy, progress=ui.progress, **extra)
     notes = list(inputs.notes) if inputs is not None else []
     notes += _calibration_notes(result, calibration)
     if args.heal:
@@ -128,9 +133,10 @@ def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
 
 def _shrink_weights_only(args, loaded, output: Path, opts: Options, ui: UI):
     weights_only_checks(args)
-    kwargs = opts.keywords(opts.policy())
-    if kwargs.pop("cost") != "params":
+    policy = opts.policy()
+    if policy.cost != "params":
         ui.warn("weights-only mode counts parameters only: the recipe's cost is ignored")
+        policy = dataclasses.replace(policy, cost="params")
     with weights_file(loaded) as src:
-        done = shrink_checkpoint(src, output, force=args.force, progress=ui.progress, cache_dir=args.cache, **kwargs)
+        done = shrink_checkpoint(src, output, policy, force=args.force, progress=ui.progress, cache_dir=args.cache)
     return stream_report(done, loaded.source), done["plan"]

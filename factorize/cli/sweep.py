@@ -10,7 +10,7 @@ from rich.table import Table
 
 from factorize.calibrated.search import Calibration, compress_from
 from factorize.checkpoints.stream import checkpoint_spectra
-from factorize.choices import DEFAULT_METHOD, calibrated_methods
+from factorize.choices import DEFAULT_METHOD
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate
 from factorize.measure.report import CAUTION
@@ -72,17 +72,15 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
     quality = quality_keywords(args, calibration, inputs, opts)
     calib = None
     if calibration is not None:  # one set of statistics and spectra for every budget, as compress would use them
-        aware, solver = calibrated_methods(opts.method)
-        calib = Calibration(loaded.model, calibration.batches, include=opts.include, exclude=opts.exclude,
-                            method=aware, solver=solver, sensitivity=args.sensitivity, multiple=opts.multiple,
-                            progress=ui.progress)
+        calib = Calibration(loaded.model, calibration.batches, opts.policy(budget=budgets[0]),
+                            sensitivity=args.sensitivity, progress=ui.progress)
     rows, spectra, memo = [], None, {}  # memo: the original's outputs, computed once for every budget
     for budget in budgets:
         policy = opts.policy(budget=budget)
         if calib is not None:
             result = compress_from(calib, policy, sequential=args.sequential)
         else:
-            result = compress(loaded.model, **opts.keywords(policy), spectra=spectra,
+            result = compress(loaded.model, policy, spectra=spectra,
                               progress=ui.progress and spectra is None, cache=quality["cache"],
                               workers=quality["workers"])
             spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum

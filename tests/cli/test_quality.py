@@ -107,3 +107,22 @@ def test_sweep_with_calibration_and_with_cache(data):
     assert first[0] == again[0] == 0 and any(cache.iterdir())
     rows = lambda r: [(x["budget"], x["params_after"], x["relative_l2"]) for x in json.loads(r[1])["rows"]]  # noqa: E731
     assert rows(first) == rows(again)
+
+
+def test_workers_reach_the_calibrated_path_with_the_same_result(data):
+    calib = ["-c", str(data / "calibration.safetensors"), "--budget", "0.3"]
+    rc1, one, _ = _shrink(data, *calib)
+    rc2, two, _ = _shrink(data, *calib, "--workers", "2")
+    assert rc1 == rc2 == 0
+    ranks = lambda d: {k: v.get("rank") for k, v in d["plan"]["sites"].items()}  # noqa: E731
+    assert ranks(one) == ranks(two) and one["report"]["drift"] == two["report"]["drift"]
+
+
+def test_a_recipe_counting_macs_measures_them_on_the_inputs(data, tmp_path):
+    recipe = tmp_path / "macs.toml"
+    recipe.write_text('recipe = 1\ncost = "macs"\n\n[policy]\nbudget = 0.5\n')
+    rc, done, err = _shrink(data, "--recipe", str(recipe))
+    assert rc == 0, err
+    assert done["plan"]["policy"]["cost"] == "macs"
+    report = done["report"]  # the MACs kept, counted by the report's own hooks, stay within the budget
+    assert report["macs_after"] <= 0.5 * report["macs_before"] + 1
