@@ -26,3 +26,7 @@ class FactorizeError(ValueError):
 
 class DriftLimitExceeded(RuntimeError):
     """A requested check failed (for example measured drift above ``--max-drift``); exit code 1."""
+
+
+class UnverifiedModelWarning(UserWarning):
+    """A compressed model was returned without running it once (no sample input was at hand to run it on)."""

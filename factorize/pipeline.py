@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import copy
 import dataclasses
+import warnings
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -21,7 +22,7 @@ from torch import nn
 
 from factorize.calibrated.options import CalibrationOptions, calibrated_setup
 from factorize.calibrated.search import CalibratedResult, compress_calibrated  # noqa: F401 - re-exported
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, UnverifiedModelWarning
 from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
 from factorize.model.sites import WalkResult, walk
@@ -35,6 +36,7 @@ from factorize.plan.policy import (
 )
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, apply_plan
+from factorize.rewrite.verify import check_runs, keep_working
 from factorize.spectra.decompose import Spectrum
 from factorize.spectra.sites import decompose_sites
 
@@ -50,6 +52,7 @@ class RunOptions:
     speed_check: bool = False
     speed_example: Any = None
     example: Any = None
+    on_break: str = "dense"  # a factored layer that breaks the forward pass: "dense" (keep it dense) or "raise"
 
 
 RUN_KEYWORDS = tuple(f.name for f in dataclasses.fields(RunOptions))
@@ -101,7 +104,10 @@ def compress(
             ``speed_check``: time each factored layer against its dense form on this machine (batch 1 and 32) and
             keep dense those that are slower; under ``budget=`` the freed budget is re-allocated to the others;
             ``speed_example``: one sample batch to learn layer input shapes for the timing (needed for convs);
-            ``example``: one sample batch to count multiply-accumulates on for ``cost="macs"``.
+            ``example``: one sample batch to count multiply-accumulates on for ``cost="macs"``, and to run the
+            result on;
+            ``on_break``: what to do when the compressed model fails its check run (see Returns): ``"dense"``
+            (default) keeps the layers that break it dense and says why in the plan; ``"raise"`` raises.
             With calibration, also -- ``aware_method``: ``"whiten"`` (default) or ``"scale"``;
             ``sequential``: factor layers in forward order so later layers absorb earlier errors;
             ``sensitivity``: allocate ranks by measured final-output sensitivity: True or ``"both"`` (gradients,
@@ -112,15 +118,46 @@ def compress(
             :class:`~factorize.calibrated.options.CalibrationOptions` (alpha, center, ridge, fractions, ...).
 
     Returns:
-        :class:`CompressResult` with ``.model`` and ``.plan`` (a ``CalibratedResult`` with calibration).
+        :class:`CompressResult` with ``.model`` and ``.plan`` (a ``CalibratedResult`` with calibration). The
+        model has been run once on a sample batch (``example``, else the first calibration or held-out batch);
+        a factored layer that broke that run was kept dense, named in the plan with the reason. With no sample
+        batch at hand nothing is run, and an :class:`~factorize.errors.UnverifiedModelWarning` says so.
 
     Raises:
         FactorizeError: bad input, e.g. an unknown keyword (the message lists the accepted ones), a Policy
             together with policy keywords, or no factorizable layer.
     """
     policy, run, calibrated, batches = parse_options(policy, calibration, options, progress=progress)
+    batches = None if batches is None else list(batches)  # iterated again for the check run
+    heldout = None if heldout is None else list(heldout)
+    sample = next((b[0] for b in (batches, heldout) if b), None) if run.example is None else run.example
     if calibrated is not None:
-        return compress_calibrated(model, batches, policy, calibrated, heldout=heldout, inplace=inplace)
+        result = compress_calibrated(model, batches, policy, calibrated, heldout=heldout, inplace=inplace)
+    else:
+        result = _compress_plain(model, policy, run, inplace, progress)
+    return _checked(model, result, sample, run.on_break, inplace)
+
+
+def _checked(model: nn.Module, result: CompressResult, sample: Any, on_break: str, inplace: bool) -> CompressResult:
+    """Run the result once on ``sample``; keep dense (or raise for) the factored layers that break it."""
+    if sample is None:
+        warnings.warn("compress() had no sample input, so the compressed model was not run; pass example=batch "
+                      "(or calibration=) to check that it still runs", UnverifiedModelWarning, stacklevel=3)
+        return result
+    if inplace:  # the original layers are gone: the run can only be checked, not repaired layer by layer
+        error = check_runs(result.model, sample)
+        if error is not None:
+            raise FactorizeError(f"the compressed model fails its forward pass on the sample batch: {error}",
+                                 fix="compress a copy (inplace=False) so that breaking layers can be kept dense")
+        return result
+    verified = keep_working(model, result.model, result.plan, sample, on_break=on_break)
+    if verified.broken:
+        result.model, result.plan = verified.model, verified.plan
+        result.params_after = count_parameters(verified.model)
+    return result
+
+
+def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: bool, progress: bool):
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
     found = walk(model, include=policy.include, exclude=policy.exclude).require_sites(policy.filtered)
@@ -208,9 +245,6 @@ def parse_options(
             raise FactorizeError(f"{', '.join(asked)} needs calibration sample inputs",
                                  fix="pass calibration=batches (tensors, tuples or dicts the model accepts)")
         policy = resolve_policy(policy, policy_kw)
-        if run.example is not None and policy.cost != "macs":
-            raise FactorizeError("example= is only used to count multiply-accumulates for cost='macs'",
-                                 fix="drop example=, or pass cost='macs' (for the speed check: speed_example=)")
         return policy, run, None, None
     _refuse_with_calibration(run)
     policy, calibrated = calibrated_setup(policy, None, {

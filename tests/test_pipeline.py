@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import copy
 import json
+import warnings
 
 import pytest
 import torch
@@ -271,5 +272,33 @@ def test_macs_budget_counts_output_positions():
 def test_macs_budget_without_an_example_is_refused(mlp):
     with pytest.raises(FactorizeError, match="needs a sample input"):
         compress(mlp, budget=0.5, cost="macs")
-    with pytest.raises(FactorizeError, match="only used to count multiply-accumulates"):
-        compress(mlp, budget=0.5, example=torch.randn(2, 24))
+    # example= alone is accepted: besides counting MACs it is the batch the result is run on (tested below)
+
+
+def test_compress_runs_the_result_and_keeps_breaking_layers_dense():
+    # a parent that reads its child's weight as a stored Parameter breaks once the child is factored: compress,
+    # given a sample batch, must return a model that runs, with exactly those layers dense and the reason named
+    from tests.rewrite.test_verify import _model
+
+    model = _model()
+    batch = torch.randn(4, 32)
+    result = factorize.compress(model, rank=4, example=batch)
+    assert result.model(batch).shape == (4, 8)  # it runs
+    dense = {k for k, e in result.plan["sites"].items() if e["action"] == "dense"}
+    assert dense == {"1.fc", "3.fc"}
+    assert all("failed to run" in result.plan["sites"][k]["reason"] for k in dense)
+    assert factorize.is_factored(result.model[0]) and result.params_after == factorize.count_parameters(result.model)
+    calibrated = factorize.compress(model, rank=4, calibration=[batch, torch.randn(4, 32)])
+    assert calibrated.model(batch).shape == (4, 8)  # the first calibration batch serves as the check run
+    with pytest.raises(FactorizeError, match="1.fc"):
+        factorize.compress(model, rank=4, example=batch, on_break="raise")
+
+
+def test_compress_without_any_sample_input_warns_that_nothing_ran(mlp):
+    from factorize.errors import UnverifiedModelWarning
+
+    with pytest.warns(UnverifiedModelWarning, match="was not run"):
+        factorize.compress(mlp, budget=0.5)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UnverifiedModelWarning)
+        factorize.compress(mlp, budget=0.5, example=torch.randn(2, 24))  # a batch at hand: checked, no warning

@@ -77,8 +77,8 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
     extra = quality_keywords(args, calibration, inputs, opts)
     if inputs is not None and calibration is None and args.speed_check:
         extra["speed_example"] = inputs.batches[0]
-    if inputs is not None and calibration is None and policy.cost == "macs":
-        extra["example"] = inputs.batches[0]  # multiply-accumulates are counted on a sample batch
+    if inputs is not None and calibration is None:
+        extra["example"] = inputs.batches[0]  # the result is run on it (and multiply-accumulates counted there)
     if "max_drift" in extra:  # --target-drift chooses the budget itself
         result = compress(loaded.model, progress=ui.progress, **opts.selection(), **extra)
     else:
