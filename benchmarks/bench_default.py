@@ -679,7 +679,7 @@ def _case_note(key: str, case: dict, info: dict, unit_after: float) -> str:
                 "library docstrings (PSF License), split 80/10/10 by sentence: training "
                 f"{i['train_bytes']} bytes, calibration {i['cal_bytes']} bytes (4 batches x 8 x 128), held-out "
                 f"{i['held_bytes']} bytes. 4 blocks, width 192, byte vocabulary, trained {i['steps']} steps of 8 x 128 bytes "
-                "(AdamW, one-cycle schedule planned for 700 steps, stopped at 7 min). Original held-out perplexity "
+                "(AdamW, one-cycle schedule planned for 700 steps, capped at 7 min of training). Original held-out perplexity "
                 f"{i['perplexity']:.3f}. Layers: the blocks' linear layers. " + unit)
     if key == "digits":
         return (f"scikit-learn digits (Alpaydin & Kaynak, UCI 1998): {i['train']} training, {i['cal']} "
