@@ -370,6 +370,7 @@ def train_lm(shape: str, train: torch.Tensor, seconds: float, steps: int) -> nn.
         saved = torch.load(path)
         model.load_state_dict(saved["state"])
         model.trained_steps = saved["steps"]
+        model.from_cache = True
         log(f"loaded {path.name} ({saved['steps']} steps)")
         return model.eval()
     opt = torch.optim.AdamW(model.parameters(), lr=3e-3, weight_decay=0.1)
@@ -397,6 +398,7 @@ def train_lm(shape: str, train: torch.Tensor, seconds: float, steps: int) -> nn.
     torch.save({"state": model.state_dict(), "steps": done}, tmp)
     tmp.replace(path)
     model.trained_steps = done
+    model.from_cache = False
     log(f"trained {shape} for {done} steps in {time.perf_counter() - start:.0f} s")
     return model
 
@@ -423,7 +425,8 @@ def lm_case(shape: str, quick: bool) -> dict:
     log(f"{shape}: held-out perplexity {base:.3f}")
     return {"model": model, "cal": cal, "include": "transformer.h.*" if shape == "gpt2" else "model.layers.*",
             "evaluate": lambda m: {"ppl_ratio": perplexity(m, held_w) / base}, "logits": True,
-            "info": {"perplexity": base, "sentences": n, "steps": model.trained_steps, "train_bytes": len(train), "cal_bytes": 32 * SEQ,
+            "info": {"perplexity": base, "sentences": n, "steps": model.trained_steps, "cached": model.from_cache,
+                     "train_bytes": len(train), "cal_bytes": 32 * SEQ,
                      "held_bytes": held_w.numel()}}
 
 
@@ -678,8 +681,11 @@ def _case_note(key: str, case: dict, info: dict, unit_after: float) -> str:
         return (f"Text: {i['sentences']} English prose sentences from Python {platform.python_version()} standard-"
                 "library docstrings (PSF License), split 80/10/10 by sentence: training "
                 f"{i['train_bytes']} bytes, calibration {i['cal_bytes']} bytes (4 batches x 8 x 128), held-out "
-                f"{i['held_bytes']} bytes. 4 blocks, width 192, byte vocabulary, trained {i['steps']} steps of 8 x 128 bytes "
-                "(AdamW, one-cycle schedule planned for 700 steps, capped at 7 min of training). Original held-out perplexity "
+                f"{i['held_bytes']} bytes. 4 blocks, width 192, byte vocabulary, trained {i['steps']} steps of "
+                "8 x 128 bytes (AdamW, one-cycle schedule planned for 700 steps, capped at 7 min of training; "
+                + ("weights from benchmarks/.cache, trained by an earlier run" if i["cached"]
+                   else "trained in this run")
+                + "). Original held-out perplexity "
                 f"{i['perplexity']:.3f}. Layers: the blocks' linear layers. " + unit)
     if key == "digits":
         return (f"scikit-learn digits (Alpaydin & Kaynak, UCI 1998): {i['train']} training, {i['cal']} "
