@@ -10,7 +10,8 @@ from __future__ import annotations
 METHODS = ("auto", "exact", "gram", "randomized")  # decomposition of a weight matrix (spectra.decompose)
 DEFAULT_METHOD = "auto"  # what factorize.compress decomposes with when no method is named
 AWARE_METHODS = ("whiten", "scale")  # activation-aware factors from calibration inputs (calibrated.aware)
-SENSITIVITY_MODES = ("probes", "gradients", "both")  # measured per-layer sensitivity (calibrated.search)
+SENSITIVITY_MODES = ("probes", "gradients", "both", "none")  # measured per-layer sensitivity (calibrated.search)
+DEFAULT_SENSITIVITY = "gradients"  # with calibration and whitening: the best measured default (BENCHMARKS.md)
 HEAL_SCHEDULES = ("constant", "cosine")  # learning-rate schedule of healing (training.heal)
 SOLVERS = ("exact", "gram", "randomized")  # the eigensolvers a calibrated decomposition can be asked for by name
 DEFAULT_SOLVER = "gram"  # with calibration, what method "auto" (or an activation-aware method) decomposes with

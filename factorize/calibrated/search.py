@@ -195,7 +195,7 @@ class Calibration:
                                  fix="put them into the options, or pass keywords only")
         options = options if options is not None else CalibrationOptions.from_keywords(**keywords)
         method, solver = options.methods(policy)
-        mode = sensitivity_mode(options.sensitivity)
+        mode = sensitivity_mode(options.sensitivity, method)
         if mode in ("gradients", "both") and method != "whiten":
             raise FactorizeError("gradient sensitivity weights output directions of the whitened problem",
                                  fix="use method='whiten', or sensitivity='probes'")

@@ -213,11 +213,13 @@ def _quality_options(*, shrink: bool):
     g.add_argument("--sequential", action="store_true",
                    help="with --calibration: factor layers in forward order, each fitted to the inputs the partly "
                    "compressed model gives it")
-    g.add_argument("--sensitivity", nargs="?", const=True, default=False, choices=SENSITIVITY_MODES,
+    g.add_argument("--sensitivity", nargs="?", const=True, default=None, choices=SENSITIVITY_MODES,
                    metavar="HOW",
-                   help="with --calibration: allocate the budget by each layer's measured effect on the final output; "
-                   "HOW: gradients (cheapest: one forward and two backward passes per batch), probes (truncation "
-                   "probes, two per layer), both (the default)")
+                   help="with --calibration, how each layer's effect on the final output is measured to allocate the "
+                   "budget; without this option: gradients (one forward and two backward passes per batch, any "
+                   "depth); HOW: gradients, probes (truncation probes, two passes per layer), both (the default "
+                   "of a bare --sensitivity: gradients, then probes; slower, sometimes better), none (each layer's "
+                   "own error)")
     g.add_argument("--cache", metavar="DIR",
                    help="keep spectra in DIR so a later run on the same weights skips the SVD")
     g.add_argument("--workers", type=_positive_int("--workers"), default=1, metavar="N",
