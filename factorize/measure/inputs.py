@@ -174,7 +174,19 @@ def _text_inputs(p: Path, tokenizer, *, batch_size: int, max_length: int, limit:
 
 def sentences_inputs(lines: list[str], tokenizer, *, batch_size: int = 64, max_length: int = 128,
                      source: str = "sentences") -> SampleInputs:
-    """Tokenize a list of sentences into batches (for built-in sentence sets)."""
+    """Tokenize a list of sentences into batches (for built-in sentence sets).
+
+    Sentences of a batch are padded to the same length and the padding is masked. A tokenizer with no padding
+    token (usual for causal language models, e.g. GPT-2's) pads with its end-of-text token, as is common practice;
+    one with neither is refused.
+    """
+    if getattr(tokenizer, "pad_token", None) is None and len(lines) > 1:
+        eos = getattr(tokenizer, "eos_token", None)
+        if eos is None:
+            raise FactorizeError(
+                f"{source}: the tokenizer has neither a padding nor an end-of-text token, so sentences of different "
+                "lengths cannot share a batch", fix="set tokenizer.pad_token and save the tokenizer again")
+        tokenizer.pad_token = eos
     batches = [
         dict(tokenizer(lines[i:i + batch_size], padding=True, truncation=True, max_length=max_length,
                        return_tensors="pt"))
