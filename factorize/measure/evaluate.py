@@ -33,6 +33,7 @@ from factorize.errors import FactorizeError
 from factorize.measure.drift import _as_batches, _ratio, output_drift
 from factorize.measure.perplexity import is_causal_lm, token_ids
 from factorize.measure.perplexity import perplexity as perplexity_of
+from factorize.measure.pooling import pool
 from factorize.measure.report import LayerReport, Report
 from factorize.measure.timing import median_latency
 from factorize.model.count import count_bytes, count_parameters
@@ -70,6 +71,7 @@ def evaluate(
     progress: bool = False,
     memo: dict | None = None,
     perplexity: bool | None = None,
+    pooling: str | None = None,
     clock: Callable[[], float] = time.perf_counter,
 ) -> Report:
     """Measure what compression saved and what it cost, on sample inputs.
@@ -86,6 +88,8 @@ def evaluate(
         progress: progress bars on stderr.
         memo: a dict shared by calls that evaluate several compressed versions of the same original on the same
             batches (a sweep): the original's outputs and the layers' output positions are computed once.
+        pooling: judge per-token outputs by one pooled vector per sample, ``"mean"`` (over the attention mask),
+            ``"cls"`` or ``"last"`` (see :mod:`factorize.measure.pooling`); None compares the outputs as they are.
         perplexity: measure next-token perplexity (:mod:`factorize.measure.perplexity`); None (default) does so
             for a causal language model (a transformers ``...ForCausalLM``/``...LMHeadModel``) given token ids.
         clock: the latency clock in seconds (default :func:`time.perf_counter`; tests pass a fake one).
@@ -102,6 +106,11 @@ def evaluate(
         memo["reference"] = run_model(original, bar(batches, "original"))
     ref = memo["reference"]
     cand = run_model(compressed, bar(batches, "compressed"))
+    masks = [token_mask(b) for b in batches]
+    if pooling is not None:  # one vector per sample on both sides; the mask has been used by the pooling
+        ref = [pool(o, b, pooling) for o, b in zip(ref, batches)]
+        cand = [pool(o, b, pooling) for o, b in zip(cand, batches)]
+        masks = [None] * len(batches)
     report = Report(
         title=title,
         model=model_name,
@@ -110,7 +119,7 @@ def evaluate(
         bytes_before=count_bytes(original),
         bytes_after=count_bytes(compressed),
         layers=layer_reports(original, compressed, plan=plan, batch=batches[0], sites=sites, memo=memo),
-        drift=output_drift(ref, cand, kind=kind, masks=[token_mask(b) for b in batches]),
+        drift=output_drift(ref, cand, kind=kind, masks=masks),
         samples=sum(int(o.shape[0]) for o in ref),
         inputs=inputs,
         policy=dict(plan["policy"]) if plan and "policy" in plan else None,
