@@ -82,6 +82,9 @@ def options(args, ui: UI, *, default_budget: float | None = 0.5) -> Options:
         recipe = load_recipe(args.recipe)
         found = recipe.compress_kwargs()
         ui.note(f"recipe: {recipe.source}: {recipe.description}")
+        if recipe.calibration and not getattr(args, "calibration", None):
+            ui.warn(f"this recipe needs calibration inputs for good results ({recipe.calibration}); "
+                    "pass --calibration FILE")
     chosen = {k: getattr(args, k, None) for k in POLICY_KEYS}
     chosen = {k: v for k, v in chosen.items() if v is not None}
     if len(chosen) > 1:

@@ -4,6 +4,7 @@ Keys (all optional except ``[policy]``; unknown keys are errors, so a typo never
 
     recipe = 1                      # recipe format version
     description = "..."             # free text, shown in reports
+    calibration = "..."             # the calibration inputs the recipe needs for good results (a warning without)
     include = ["glob", ...]         # only layers whose qualified name matches one of these are considered
     exclude = ["glob", ...]         # layers matching any of these are never factored
     method = "exact"                # "auto", "exact" (LAPACK SVD), "gram" or "randomized" (Halko et al. 2011);
@@ -43,7 +44,8 @@ else:  # pragma: no cover - exercised on Python 3.10 only
     import tomli as tomllib
 
 RECIPE_VERSION = 1
-TOP_KEYS = ("recipe", "description", "include", "exclude", "method", "multiple", "cost", "policy", "layer")
+TOP_KEYS = ("recipe", "description", "calibration", "include", "exclude", "method", "multiple", "cost", "policy",
+            "layer")
 LAYER_KEYS = ("match", "rank", "energy", "keep", "dense")
 RECIPES_DIR = Path(__file__).resolve().parents[1] / "recipes"  # shipped as package data (recipes/ at the top of a checkout links here)
 
@@ -54,6 +56,7 @@ class Recipe:
 
     source: str  # file name, for messages
     description: str = ""
+    calibration: str = ""  # what calibration inputs the recipe needs to give good results ("" when none)
     include: list[str] | None = None
     exclude: list[str] | None = None
     method: str | None = None  # None: the library default (see factorize.compress)
@@ -104,6 +107,7 @@ def parse_recipe(data: dict[str, Any], *, source: str = "recipe") -> Recipe:
         problems.append(f"recipe = {version!r}: this factorize reads recipe version {RECIPE_VERSION}")
     recipe = Recipe(source=source)
     recipe.description = _typed(data, "description", str, "", problems)
+    recipe.calibration = _typed(data, "calibration", str, "", problems)
     recipe.include = _patterns(data, "include", problems)
     recipe.exclude = _patterns(data, "exclude", problems)
     recipe.method = _typed(data, "method", str, None, problems) if "method" in data else None

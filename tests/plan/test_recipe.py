@@ -133,3 +133,18 @@ def test_cnn_recipe_keeps_energy_per_layer_and_the_stem_dense() -> None:
         assert e["predicted_error"] <= (1 - 0.9) ** 0.5 + 1e-9  # Eckart-Young: error^2 = discarded energy
     x = torch.randn(2, 3, 8, 8)
     assert result.model(x).shape == (2, 10)
+
+
+def test_transformer_recipes_say_they_need_calibration_text(tmp_path):
+    import io
+
+    from factorize.cli import main
+    from factorize.plan.recipe import load_recipe
+
+    for name in ("bert-encoder.toml", "gpt-decoder.toml"):
+        assert "text" in load_recipe(name).calibration
+    assert load_recipe("mlp-classifier.toml").calibration == ""
+    out, err = io.StringIO(), io.StringIO()  # the terminal warns when such a recipe runs without --calibration
+    main(["shrink", "-m", "factorize.default:load_default", "--recipe", "bert-encoder.toml", "-o",
+          str(tmp_path / "x.safetensors")], stdout=out, stderr=err)
+    assert "needs calibration inputs" in err.getvalue()
