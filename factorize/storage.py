@@ -336,15 +336,23 @@ def write_atomic(final: Path, write: Callable[[Path], None], *, force: bool) -> 
         raise
 
 
-def _umask() -> int:
-    """The process umask, read without changing it where /proc allows (os.umask can only set it)."""
+def proc_field(path: str, key: str) -> str | None:
+    """The first value of ``key:`` in a Linux /proc file (e.g. ``/proc/meminfo``), or None where there is none."""
     try:
-        with open("/proc/self/status", encoding="ascii") as f:
+        with open(path, encoding="ascii") as f:
             for line in f:
-                if line.startswith("Umask:"):
-                    return int(line.split()[1], 8)
+                if line.startswith(key + ":"):
+                    return line.split()[1]
     except OSError:
         pass
+    return None
+
+
+def _umask() -> int:
+    """The process umask, read without changing it where /proc allows (os.umask can only set it)."""
+    value = proc_field("/proc/self/status", "Umask")
+    if value is not None:
+        return int(value, 8)
     mask = os.umask(0o022)
     os.umask(mask)
     return mask

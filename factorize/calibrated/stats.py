@@ -48,7 +48,7 @@ from factorize.errors import FactorizeError
 from factorize.model.feed import feed, token_mask
 from factorize.model.hooks import forward_pre_hooks
 from factorize.model.sites import Site, walk
-from factorize.storage import human_bytes
+from factorize.storage import human_bytes, proc_field
 
 ROW_CHUNK = 16384  # rows converted to float64 at a time, so a big conv batch never doubles in memory at once
 MEMORY_SHARE = 0.5  # statistics may take at most this share of the memory available when collection starts
@@ -322,13 +322,9 @@ class _NoBar:
 
 def available_memory() -> int:
     """Bytes of memory available to this process now (MemAvailable on Linux; else the free physical pages)."""
-    try:
-        with open("/proc/meminfo", encoding="ascii") as f:
-            for line in f:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
+    value = proc_field("/proc/meminfo", "MemAvailable")  # in kB
+    if value is not None:
+        return int(value) * 1024
     try:
         return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
     except (ValueError, OSError, AttributeError):
