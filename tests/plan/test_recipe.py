@@ -148,3 +148,22 @@ def test_transformer_recipes_say_they_need_calibration_text(tmp_path):
     main(["shrink", "-m", "factorize.default:load_default", "--recipe", "bert-encoder.toml", "-o",
           str(tmp_path / "x.safetensors")], stdout=out, stderr=err)
     assert "needs calibration inputs" in err.getvalue()
+
+
+def test_recipes_ship_inside_the_package():
+    # an installed wheel has no source checkout around it: the recipes must live in the package and be listed as
+    # package data (checked by building a wheel once: factorize/recipes/*.toml are in it)
+    import sys
+    from pathlib import Path
+
+    import factorize
+    from factorize.plan.recipe import RECIPES_DIR, shipped_recipes
+
+    if sys.version_info >= (3, 11):
+        import tomllib
+    else:  # pragma: no cover
+        import tomli as tomllib
+    package = Path(factorize.__file__).resolve().parent
+    assert RECIPES_DIR.resolve().parent == package and len(shipped_recipes()) >= 4
+    pyproject = tomllib.loads((package.parent / "pyproject.toml").read_text())
+    assert "recipes/*.toml" in pyproject["tool"]["setuptools"]["package-data"]["factorize"]
