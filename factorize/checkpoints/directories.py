@@ -371,11 +371,12 @@ def build_architecture(directory: str | os.PathLike) -> nn.Module:
                              fix="re-create the directory with save_directory") from None
     names = list(getattr(config, "architectures", None) or ())
     cls = next((getattr(transformers, n) for n in names if hasattr(transformers, n)), None)
-    if cls is None:
+    if cls is None and names:
         raise FactorizeError(f"{d / 'config.json'}: names no model class this transformers has "
                              f"(architectures: {names})",
                              fix="upgrade transformers to a version with that class, or fix 'architectures'")
-    model = cls(config)
+    # no 'architectures' (a config saved from a model built by hand): the base model of its type
+    model = transformers.AutoModel.from_config(config) if cls is None else cls(config)
     generation = d / "generation_config.json"
     if generation.is_file() and getattr(model, "generation_config", None) is not None:
         model.generation_config = transformers.GenerationConfig.from_pretrained(d, local_files_only=True)
