@@ -31,8 +31,8 @@ from .common import (
     sharded,
     weights_file,
     weights_only_checks,
-    writes_directory,
     write_text,
+    writes_directory,
 )
 from .render import UI
 

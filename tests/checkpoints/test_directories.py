@@ -32,7 +32,7 @@ from factorize.errors import FactorizeError
 
 transformers = pytest.importorskip("transformers")
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "rewrite"))
-from zoo import TRANSFORMERS  # noqa: E402  (tests/rewrite/zoo.py: tiny-config transformers models)
+from zoo import TRANSFORMERS
 
 pytestmark = pytest.mark.filterwarnings("ignore::UserWarning")
 CAUSAL = ["GPT-2", "Llama", "Mistral", "Qwen2", "Gemma", "Phi"]
@@ -83,7 +83,7 @@ def test_generate_gives_the_same_tokens(name, tmp_path) -> None:
     result, batch = _compressed(name)
     reloaded = load_directory(save_directory(result.model, result.plan, tmp_path / "lm"))
     ids = batch["input_ids"][:1]
-    kw = dict(max_new_tokens=6, do_sample=False, pad_token_id=0)  # greedy
+    kw = {"max_new_tokens": 6, "do_sample": False, "pad_token_id": 0}  # greedy
     with torch.no_grad():
         want = result.model.generate(ids, **kw)
         got = reloaded.generate(ids, **kw)
