@@ -37,6 +37,7 @@ _EXPORTS = {  # public name -> the module that defines it
     "SpectrumCache": "factorize.spectra.cache",
     "WalkResult": "factorize.model.sites",
     "apply_plan": "factorize.rewrite.apply",
+    "check_directory": "factorize.checkpoints.directories",
     "choose_ranks": "factorize.plan.ranks",
     "compress": "factorize.pipeline",
     "compress_in_training": "factorize.training.loop",
@@ -49,6 +50,7 @@ _EXPORTS = {  # public name -> the module that defines it
     "heal": "factorize.training.heal",
     "is_factored": "factorize.rewrite.layers",
     "load": "factorize.checkpoints.files",
+    "load_directory": "factorize.checkpoints.directories",
     "load_recipe": "factorize.plan.recipe",
     "merge": "factorize.rewrite.apply",
     "merge_in_training": "factorize.training.loop",
@@ -61,6 +63,7 @@ _EXPORTS = {  # public name -> the module that defines it
     "search_drift": "factorize.calibrated.search",
     "shrink_checkpoint": "factorize.checkpoints.stream",
     "save": "factorize.checkpoints.files",
+    "save_directory": "factorize.checkpoints.directories",
     "to_dense": "factorize.rewrite.layers",
     "validate_plan": "factorize.rewrite.apply",
     "walk": "factorize.model.sites",
@@ -85,6 +88,7 @@ __all__ = [
     "WalkResult",
     "__version__",
     "apply_plan",
+    "check_directory",
     "choose_ranks",
     "compress",
     "compress_in_training",
@@ -97,6 +101,7 @@ __all__ = [
     "heal",
     "is_factored",
     "load",
+    "load_directory",
     "load_recipe",
     "merge",
     "merge_in_training",
@@ -107,6 +112,7 @@ __all__ = [
     "refactor",
     "run_model",
     "save",
+    "save_directory",
     "search_drift",
     "shrink_checkpoint",
     "to_dense",
@@ -135,6 +141,7 @@ if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eag
         DriftTargetUnreachable,
         search_drift,
     )
+    from factorize.checkpoints.directories import check_directory, load_directory, save_directory
     from factorize.checkpoints.files import load, read_plan, save
     from factorize.checkpoints.stream import shrink_checkpoint
     from factorize.errors import DriftLimitExceeded, FactorizeError

@@ -6,7 +6,10 @@
   arguments (or a module-level ``nn.Module`` instance). ``--weights FILE.safetensors`` then loads a state dict
   into it strictly, listing every missing, unexpected and mis-shaped key at once; a factorize checkpoint (one
   whose metadata holds a plan) is loaded through :func:`factorize.checkpoints.files.load`, factored structure and all.
-* a directory holding a transformers model (``config.json`` plus ``*.safetensors``); needs the ``hf`` extra.
+* a directory holding a transformers model (``config.json`` plus ``*.safetensors``); needs the ``hf`` extra. A
+  directory holding a factorize checkpoint (written by :func:`factorize.save_directory`, or whose
+  ``model.safetensors`` has a plan in its metadata) is rebuilt through :func:`factorize.load_directory`; one whose
+  ``model.safetensors`` holds factored layers without a plan (``save_pretrained`` on a compressed model) is refused.
 * a bare ``.safetensors`` file, or the ``*.safetensors.index.json`` of a sharded checkpoint -- weights-only mode
   (:mod:`factorize.checkpoint`): no architecture, so its 2-D tensors are factored and reported by weight error
   only.
@@ -281,6 +284,11 @@ def _from_directory(path: Path, *, allow_pickle: bool) -> LoadedModel:
     if not config_file.is_file():
         raise FactorizeError(f"{path}: a directory without config.json is not a transformers model",
                              fix="point --model at the directory saved by save_pretrained(), or at a file")
+    from factorize.checkpoints import directories
+
+    if directories.directory_kind(path) in ("factorize", "factorize-file"):
+        return _from_factorize_directory(path)
+    directories.check_directory(path)  # a compressed model saved with save_pretrained: refused with the fix
     weight_files = sorted(path.glob("*.safetensors"))
     pickled = sorted(p for p in path.glob("*") if p.suffix in PICKLE_SUFFIXES)
     if not weight_files and pickled and not allow_pickle:
@@ -306,15 +314,29 @@ def _from_directory(path: Path, *, allow_pickle: bool) -> LoadedModel:
     except (OSError, ValueError, RuntimeError) as err:
         raise FactorizeError(f"{path}: transformers could not load the model: {str(err).splitlines()[0]}",
                              fix="check that the weights belong to config.json; save again with save_pretrained()") from None
-    tokenizer = None
-    if any((path / name).is_file() for name in TOKENIZER_FILES):
-        try:
-            tokenizer = transformers.AutoTokenizer.from_pretrained(path, local_files_only=True)
-        except (OSError, ValueError) as err:
-            raise FactorizeError(f"{path}: the tokenizer files could not be read: {str(err).splitlines()[0]}",
-                                 fix="save the tokenizer with tokenizer.save_pretrained() next to the model") from None
+    tokenizer = _tokenizer(transformers, path)
     return LoadedModel(source=str(path), kind="transformers", model=model.eval(), path=path, tokenizer=tokenizer,
                        build=build)
+
+
+def _from_factorize_directory(path: Path) -> LoadedModel:
+    """A directory holding a factorize checkpoint (written by save_directory, or a model.safetensors with a plan):
+    the compressed model, rebuilt through :func:`factorize.checkpoints.directories.load_directory`."""
+    from factorize.checkpoints.directories import build_architecture, load_directory
+
+    model = load_directory(path)
+    return LoadedModel(source=str(path), kind="transformers", model=model, path=path,
+                       tokenizer=_tokenizer(_transformers(), path), build=lambda: build_architecture(path))
+
+
+def _tokenizer(transformers, path: Path):
+    if not any((path / name).is_file() for name in TOKENIZER_FILES):
+        return None
+    try:
+        return transformers.AutoTokenizer.from_pretrained(path, local_files_only=True)
+    except (OSError, ValueError) as err:
+        raise FactorizeError(f"{path}: the tokenizer files could not be read: {str(err).splitlines()[0]}",
+                             fix="save the tokenizer with tokenizer.save_pretrained() next to the model") from None
 
 
 def _architecture_class(transformers, config):

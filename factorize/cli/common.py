@@ -282,6 +282,14 @@ def output_path(args, loaded: LoadedModel) -> Path:
     return base.with_name(base.name.removesuffix(base.suffix) + OUTPUT_SUFFIX)
 
 
+def writes_directory(args, loaded: LoadedModel, output: Path) -> bool:
+    """Whether shrink writes a transformers directory (:func:`factorize.save_directory`): the input is a
+    transformers directory and --output names a directory (no .safetensors suffix, or an existing directory)."""
+    if loaded.kind != "transformers" or not args.output:
+        return False
+    return output.is_dir() or not output.name.lower().endswith(".safetensors")
+
+
 def sharded(path: Path | None) -> bool:
     return path is not None and Path(path).name.endswith(".safetensors.index.json")
 

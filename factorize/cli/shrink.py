@@ -7,6 +7,7 @@ import shutil
 from pathlib import Path
 
 from factorize.checkpoints import files
+from factorize.checkpoints.directories import save_directory
 from factorize.checkpoints.stream import shrink_checkpoint, stream_report
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate, layer_reports
@@ -31,6 +32,7 @@ from .common import (
     weights_file,
     weights_only_checks,
     write_text,
+    writes_directory,
 )
 from .render import UI
 
@@ -44,14 +46,16 @@ def run(args, ui: UI) -> dict:
     if loaded.path is not None and output.resolve() == Path(loaded.path).resolve():
         raise FactorizeError(f"{output}: is the input; factorize never overwrites its input",
                              fix="choose another --output")
-    check_outputs([output, report_path], args.force, directory=output if sharded(loaded.path) else None)
+    as_directory = writes_directory(args, loaded, output)
+    check_outputs([output, report_path], args.force,
+                  directory=output if sharded(loaded.path) or as_directory else None)
     if loaded.weights_only:
         if args.max_drift is not None:
             raise FactorizeError("--max-drift needs a model to run, and weights-only mode has none",
                                  fix="pass --model package.module:callable --weights FILE to measure drift")
         report, plan = _shrink_weights_only(args, loaded, output, opts, ui)
     else:
-        report, plan = _shrink_model(args, loaded, output, opts, policy, ui)
+        report, plan = _shrink_model(args, loaded, output, opts, policy, ui, as_directory)
     if report_path is not None:
         try:
             write_text(report_path, report.to_markdown(), args.force)
@@ -68,7 +72,7 @@ def run(args, ui: UI) -> dict:
             "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan}
 
 
-def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
+def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_directory: bool = False):
     inputs = sample_inputs(args, loaded, ui)
     if args.max_drift is not None and inputs is None:
         raise FactorizeError("--max-drift needs sample inputs to measure drift on",
@@ -99,7 +103,10 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
                         layers=layer_reports(loaded.model, result.model, plan=result.plan),
                         notes=["no sample inputs given: output drift was not measured; pass --inputs FILE"])
         ui.warn(report.notes[0])
-    files.save(result.model, output, plan=result.plan, force=args.force)
+    if as_directory:  # config, factorize weights, factorize.json and tokenizer: reloads with load_directory
+        save_directory(result.model, result.plan, output, tokenizer=loaded.tokenizer, force=args.force)
+    else:
+        files.save(result.model, output, plan=result.plan, force=args.force)
     return report, result.plan
 
 
