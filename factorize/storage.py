@@ -270,7 +270,7 @@ def remove_stale_temps(directory: str | os.PathLike, name: str | None = None) ->
     pattern = f".{name}.*{TEMP_SUFFIX}" if name else f".*{TEMP_SUFFIX}"
     for p in Path(directory).glob(pattern):
         pid = p.name[: -len(TEMP_SUFFIX)].rpartition(".")[2].partition("-")[0]
-        if pid.isdigit() and not _alive(int(pid)):
+        if pid.isdigit() and p.is_file() and not _alive(int(pid)):
             remove_quietly(p)
             removed.append(p)
     return removed
