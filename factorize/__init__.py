@@ -26,6 +26,7 @@ _EXPORTS = {  # public name -> the module that defines it
     "Report": "factorize.measure.report",
     "DriftLimitExceeded": "factorize.errors",
     "DriftTargetUnreachable": "factorize.calibrated.search",
+    "Exported": "factorize.checkpoints.export",
     "Factored": "factorize.rewrite.layers",
     "HealResult": "factorize.training.heal",
     "FactorizeError": "factorize.errors",
@@ -45,6 +46,8 @@ _EXPORTS = {  # public name -> the module that defines it
     "decompose": "factorize.spectra.decompose",
     "decompose_sites": "factorize.spectra.sites",
     "evaluate": "factorize.measure.evaluate",
+    "export_onnx": "factorize.checkpoints.export",
+    "export_program": "factorize.checkpoints.export",
     "factored_layers": "factorize.rewrite.layers",
     "heal": "factorize.training.heal",
     "is_factored": "factorize.rewrite.layers",
@@ -72,6 +75,7 @@ __all__ = [
     "CompressResult",
     "DriftLimitExceeded",
     "DriftTargetUnreachable",
+    "Exported",
     "Factored",
     "FactorizeError",
     "HealResult",
@@ -93,6 +97,8 @@ __all__ = [
     "decompose",
     "decompose_sites",
     "evaluate",
+    "export_onnx",
+    "export_program",
     "factored_layers",
     "heal",
     "is_factored",
@@ -135,6 +141,7 @@ if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eag
         DriftTargetUnreachable,
         search_drift,
     )
+    from factorize.checkpoints.export import Exported, export_onnx, export_program
     from factorize.checkpoints.files import load, read_plan, save
     from factorize.checkpoints.stream import shrink_checkpoint
     from factorize.errors import DriftLimitExceeded, FactorizeError
