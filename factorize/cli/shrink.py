@@ -23,6 +23,7 @@ from .common import (
     max_drift_check,
     optional_path,
     options,
+    output_dtype,
     output_path,
     quality_keywords,
     repeats,
@@ -99,7 +100,9 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
                         layers=layer_reports(loaded.model, result.model, plan=result.plan),
                         notes=["no sample inputs given: output drift was not measured; pass --inputs FILE"])
         ui.warn(report.notes[0])
-    files.save(result.model, output, plan=result.plan, force=args.force)
+    if getattr(args, "dtype", None):
+        report.notes.append(f"checkpoint stored as {args.dtype}; drift above was measured before the cast")
+    files.save(output_dtype(args, result.model), output, plan=result.plan, force=args.force)
     return report, result.plan
 
 
