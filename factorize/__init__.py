@@ -26,6 +26,7 @@ _EXPORTS = {  # public name -> the module that defines it
     "Report": "factorize.measure.report",
     "DriftLimitExceeded": "factorize.errors",
     "DriftTargetUnreachable": "factorize.calibrated.search",
+    "Exported": "factorize.checkpoints.export",
     "Factored": "factorize.rewrite.layers",
     "HealResult": "factorize.training.heal",
     "FactorizeError": "factorize.errors",
@@ -46,6 +47,8 @@ _EXPORTS = {  # public name -> the module that defines it
     "decompose": "factorize.spectra.decompose",
     "decompose_sites": "factorize.spectra.sites",
     "evaluate": "factorize.measure.evaluate",
+    "export_onnx": "factorize.checkpoints.export",
+    "export_program": "factorize.checkpoints.export",
     "factored_layers": "factorize.rewrite.layers",
     "heal": "factorize.training.heal",
     "is_factored": "factorize.rewrite.layers",
@@ -75,6 +78,7 @@ __all__ = [
     "CompressResult",
     "DriftLimitExceeded",
     "DriftTargetUnreachable",
+    "Exported",
     "Factored",
     "FactorizeError",
     "HealResult",
@@ -97,6 +101,8 @@ __all__ = [
     "decompose",
     "decompose_sites",
     "evaluate",
+    "export_onnx",
+    "export_program",
     "factored_layers",
     "heal",
     "is_factored",
@@ -142,6 +148,7 @@ if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eag
         search_drift,
     )
     from factorize.checkpoints.directories import check_directory, load_directory, save_directory
+    from factorize.checkpoints.export import Exported, export_onnx, export_program
     from factorize.checkpoints.files import load, read_plan, save
     from factorize.checkpoints.stream import shrink_checkpoint
     from factorize.errors import DriftLimitExceeded, FactorizeError

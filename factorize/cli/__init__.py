@@ -1,4 +1,4 @@
-"""The ``factorize`` command line: scan, shrink, sweep, compare, demo.
+"""The ``factorize`` command line: scan, shrink, sweep, compare, export, demo.
 
 Output rules: tables (rich) and the report go to stdout; progress bars (tqdm) and warnings go to stderr, and
 progress vanishes with ``--quiet``. With ``--json`` stdout holds exactly one JSON object and nothing else (on

@@ -45,9 +45,50 @@ def load(args, ui: UI) -> LoadedModel:
             from transformers.utils import logging as hf_logging
 
             hf_logging.disable_progress_bar()
+    device = compute_device(args)  # a missing GPU is reported before the model is loaded
     loaded = load_model(args.model, weights=args.weights, allow_pickle=args.allow_pickle)
     ui.note(f"model: {loaded.source} ({loaded.kind})")
+    if device is not None and loaded.model is not None:
+        loaded.model.to(device)  # inputs follow the model (measure.inputs.prepare), factors are built beside it
+        ui.note(f"device: {device}")
+    elif device is not None and device.type != "cpu":
+        ui.warn("weights-only mode streams the file on the CPU: --device is not used")
     return loaded
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# device, threads and output dtype (--device, --threads, --dtype)
+
+
+def compute_device(args):
+    """The torch.device of --device (None when not given), after --threads is applied; a CUDA device that torch
+    does not see is refused (exit 2) before anything is loaded."""
+    import torch
+
+    threads = getattr(args, "threads", None)
+    if threads is not None:
+        torch.set_num_threads(threads)
+    name = getattr(args, "device", None)
+    if name is None:
+        return None
+    device = torch.device(name)
+    if device.type == "cuda":
+        if not torch.cuda.is_available():
+            raise FactorizeError(f"--device {name}: torch sees no CUDA GPU on this machine",
+                                 fix="drop --device (or pass --device cpu), or install a CUDA build of torch")
+        count = torch.cuda.device_count()
+        if device.index is not None and device.index >= count:
+            raise FactorizeError(f"--device {name}: this machine has {count} CUDA device(s), numbered from 0",
+                                 fix=f"pass --device cuda:0 ... cuda:{count - 1}")
+    return device
+
+
+def output_dtype(args, model):
+    """``model`` cast to --dtype for saving (the same object, cast in place), or unchanged without --dtype."""
+    import torch
+
+    name = getattr(args, "dtype", None)
+    return model if name is None else model.to(getattr(torch, name))
 
 
 @dataclass

@@ -35,6 +35,8 @@ def run(args, ui: UI) -> dict:
                              fix="pass --model package.module:callable (with --weights FILE) or a transformers "
                              "directory")
     other, plan = _load_against(args, loaded, ui)
+    if args.device is not None:
+        other.to(args.device)  # both models on the device the inputs are prepared for
     inputs = sample_inputs(args, loaded, ui)
     if inputs is None:
         raise FactorizeError("compare needs sample inputs", fix="pass --inputs FILE (or --random-inputs SHAPE)")

@@ -15,7 +15,9 @@ from factorize._version import __version__
 from factorize.choices import AWARE_METHODS, HEAL_SCHEDULES, METHODS, SENSITIVITY_MODES
 
 PROG = "factorize"
-COMMANDS = ("scan", "shrink", "sweep", "compare", "demo")
+COMMANDS = ("scan", "shrink", "sweep", "compare", "export", "demo")
+EXPORT_FORMATS = ("onnx", "pt2")
+OUTPUT_DTYPES = ("float16", "bfloat16")
 DEFAULT_BUDGETS = (0.9, 0.75, 0.5, 0.3)
 DEMO_BUDGETS = (0.3, 0.05)  # mild and strong, chosen from a measured sweep of the embedded default (docs/cli.md)
 SCAN_ENERGY = 0.9  # scan suggests the smallest rank keeping this fraction of sum(s^2): relative weight error <= 0.32
@@ -65,7 +67,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
 
     sub.add_parser(
-        "shrink", parents=[common, model, inputs, policy, out, _check_options(), _quality_options(shrink=True)],
+        "shrink", parents=[common, model, inputs, policy, out, _check_options(), _quality_options(shrink=True),
+                 _device_options(dtype=True)],
         formatter_class=_Formatter,
         help="write a compressed checkpoint and its report",
         description="Factor the model's dense layers under a rank policy, measure the result on sample inputs,\n"
@@ -83,7 +86,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
 
     sub.add_parser(
-        "sweep", parents=[common, model, inputs, _sweep_policy(), _sweep_options(), _quality_options(shrink=False)],
+        "sweep", parents=[common, model, inputs, _sweep_policy(), _sweep_options(), _quality_options(shrink=False),
+                 _device_options(dtype=False)],
         formatter_class=_Formatter,
         help="evaluate a grid of budgets from one decomposition pass",
         description="Compress at each budget of a grid, reusing one decomposition of every layer, and tabulate\n"
@@ -97,7 +101,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
 
     sub.add_parser(
-        "compare", parents=[common, model, inputs, _compare_options(), _check_options()], formatter_class=_Formatter,
+        "compare", parents=[common, model, inputs, _compare_options(), _check_options(), _device_options(dtype=False)],
+        formatter_class=_Formatter,
         help="output drift between two models on sample inputs",
         description="Run two models on the same sample inputs and report the drift between their outputs.\n"
         "--against may be a compressed checkpoint written by 'factorize shrink' (loaded into a fresh\n"
@@ -107,6 +112,20 @@ def build_parser() -> argparse.ArgumentParser:
             "factorize compare --model factorize.default:load_default --against load_default.factorized.safetensors",
             "factorize compare --model mypkg.models:build --weights a.safetensors --against b.safetensors "
             "--inputs x.npz",
+        ),
+    )
+
+    sub.add_parser(
+        "export", parents=[common, model, _export_options()], formatter_class=_Formatter,
+        help="write a (compressed) model as ONNX or a torch.export program (.pt2)",
+        description="Trace the model on one sample batch and write it as ONNX (run anywhere onnxruntime runs) or as\n"
+        "a torch.export program (.pt2, reload with torch.export.load). --weights may be a checkpoint from\n"
+        "'factorize shrink' (loaded into a fresh instance of --model's architecture) or plain weights. The\n"
+        "written file is run on the batch and the largest output difference to torch is reported.",
+        epilog=_examples(
+            "factorize export --model mypkg.models:build --weights model.factorized.safetensors \\\n"
+            "    --inputs x.npz -o model.onnx",
+            "factorize export --model factorize.default:load_default --random-inputs 4x64 --format pt2 -o digits.pt2",
         ),
     )
 
@@ -277,6 +296,51 @@ def _compare_options():
                    "another model spec")
     g.add_argument("--report", metavar="FILE.md", help="also write the report as Markdown")
     g.add_argument("--force", "-f", action="store_true", help="replace an existing report file")
+    return p
+
+
+def _device_options(*, dtype: bool):
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("device and threads")
+    g.add_argument("--device", type=_device, default=None, metavar="DEV",
+                   help="compute on cpu, cuda or cuda:N (cuda only where torch sees a GPU; default: where the model "
+                   "is, i.e. cpu)")
+    if dtype:
+        g.add_argument("--dtype", choices=OUTPUT_DTYPES, default=None,
+                       help="store the compressed checkpoint in this dtype (default: the model's own); drift is "
+                       "measured before the cast")
+    g.add_argument("--threads", type=_positive_int("--threads"), default=None, metavar="N",
+                   help="CPU threads torch may use (torch.set_num_threads; default: torch's choice)")
+    return p
+
+
+def _device(text: str) -> str:
+    """cpu, cuda or cuda:N (syntax only; whether a GPU is there is checked when the command runs)."""
+    name, _, index = text.strip().lower().partition(":")
+    if name == "cpu" and not index or name == "cuda" and (not index or index.isdigit()):
+        return text.strip().lower()
+    raise argparse.ArgumentTypeError(f"{text!r} is not a device; --device takes cpu, cuda or cuda:N")
+
+
+def _export_options():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("the batch the model is traced on")
+    g.add_argument("--inputs", "-i", metavar="FILE",
+                   help="sample inputs (as for shrink); the first --batch-size samples are used")
+    g.add_argument("--random-inputs", metavar="SHAPE", help="seeded random inputs, e.g. 4x64")
+    g.add_argument("--labels-key", default="labels", metavar="KEY", help="key of labels in --inputs (ignored)")
+    g.add_argument("--batch-size", type=int, default=2, metavar="N", help="samples in the traced batch (default: 2)")
+    g.add_argument("--max-samples", type=int, metavar="N", help=argparse.SUPPRESS)
+    g.add_argument("--seed", type=int, default=0, metavar="N", help="seed for --random-inputs")
+    g = p.add_argument_group("the file")
+    g.add_argument("--output", "-o", required=True, metavar="FILE", help="the file to write (.onnx or .pt2)")
+    g.add_argument("--format", choices=EXPORT_FORMATS, default=None,
+                   help="onnx or pt2 (default: from the --output suffix)")
+    g.add_argument("--opset", type=_positive_int("--opset"), default=None, metavar="N",
+                   help="ONNX opset version (default: the exporter's)")
+    g.add_argument("--fixed-batch", action="store_true",
+                   help="keep the traced batch size fixed (default: any batch size; needs >= 2 samples)")
+    g.add_argument("--force", "-f", action="store_true", help="replace an existing output file")
     return p
 
 

@@ -24,6 +24,7 @@ from .common import (
     max_drift_check,
     optional_path,
     options,
+    output_dtype,
     output_path,
     quality_keywords,
     repeats,
@@ -103,10 +104,13 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
                         layers=layer_reports(loaded.model, result.model, plan=result.plan),
                         notes=["no sample inputs given: output drift was not measured; pass --inputs FILE"])
         ui.warn(report.notes[0])
+    if getattr(args, "dtype", None):
+        report.notes.append(f"checkpoint stored as {args.dtype}; drift above was measured before the cast")
+    stored = output_dtype(args, result.model)
     if as_directory:  # config, factorize weights, factorize.json and tokenizer: reloads with load_directory
-        save_directory(result.model, result.plan, output, tokenizer=loaded.tokenizer, force=args.force)
+        save_directory(stored, result.plan, output, tokenizer=loaded.tokenizer, force=args.force)
     else:
-        files.save(result.model, output, plan=result.plan, force=args.force)
+        files.save(stored, output, plan=result.plan, force=args.force)
     return report, result.plan
 
 
