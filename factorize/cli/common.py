@@ -8,6 +8,7 @@ messages that name the flags.
 from __future__ import annotations
 
 import contextlib
+import os
 import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -297,3 +298,71 @@ def write_text(path: Path, text: str, force: bool) -> None:
 def optional_path(value: str | None) -> Path | None:
     return Path(value) if value else None
 
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# nothing lost: no output may name an input or another output
+
+INPUT_FLAGS = ("model", "weights", "inputs", "calibration", "recipe", "against")
+
+
+def input_paths(args) -> dict[str, list[Path]]:
+    """Every file (or directory) the command reads, by flag: --model/--weights/--inputs/--calibration/--recipe/
+    --against when they name something on disk; a sharded index brings its shard files with it."""
+    found: dict[str, list[Path]] = {}
+    for flag in INPUT_FLAGS:
+        value = getattr(args, flag, None)
+        if not value or not Path(value).exists():
+            continue
+        p = Path(value)
+        found[f"--{flag}"] = [p, *_shards_of(p)]
+    return found
+
+
+def _shards_of(p: Path) -> list[Path]:
+    if not p.is_file() or not p.name.endswith(".safetensors.index.json"):
+        return []
+    import json
+
+    try:
+        index = json.loads(p.read_text(encoding="utf-8"))
+        return [p.parent / s for s in set(index.get("weight_map", {}).values()) if isinstance(s, str)]
+    except (OSError, ValueError, AttributeError):
+        return []  # a broken index is reported by the loader, with its own message
+
+
+def check_no_clobber(args, outputs: dict[str, Path | None]) -> None:
+    """Refuse, before any work, an output that is an input (resolved, links included; --force does not change
+    this), lies inside an input directory, holds an input (an output directory), or is another output."""
+    inputs = input_paths(args)
+    problems: list[str] = []
+    seen: dict[Path, str] = {}
+    for flag, out in outputs.items():
+        if out is None:
+            continue
+        target = Path(out).resolve()
+        for in_flag, paths in inputs.items():
+            for p in paths:
+                if _same(target, p):
+                    problems.append(f"{flag} {out} is the {in_flag} file {p}")
+                elif p.is_dir() and p.resolve() in target.parents:
+                    problems.append(f"{flag} {out} lies inside the {in_flag} directory {p}")
+                elif flag != "--cache" and target in p.resolve().parents:  # cache files have their own names
+                    problems.append(f"{flag} {out} would hold the {in_flag} file {p}")
+        if target in seen:
+            problems.append(f"{flag} {out} is also {seen[target]}")
+        seen.setdefault(target, flag)
+    if problems:
+        raise FactorizeError("an output would overwrite an input or another output; factorize never modifies its "
+                             "inputs", list(dict.fromkeys(problems)),
+                             fix="give each output (-o/--output, --report, --csv, --plot, --cache) its own new path")
+
+
+def _same(target: Path, p: Path) -> bool:
+    """``target`` (resolved) is ``p``: equal after resolving links, or the same file on disk (a hard link)."""
+    if target == p.resolve():
+        return True
+    try:
+        return target.exists() and os.path.samefile(target, p)
+    except OSError:
+        return False

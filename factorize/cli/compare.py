@@ -16,6 +16,7 @@ from factorize.measure.evaluate import evaluate
 from factorize.measure.report import render_rich
 
 from .common import (
+    check_no_clobber,
     check_outputs,
     load,
     optional_path,
@@ -28,6 +29,7 @@ from .render import UI
 
 def run(args, ui: UI) -> dict:
     report_path = optional_path(args.report)
+    check_no_clobber(args, {"--report": report_path})
     check_outputs([report_path], args.force)
     loaded = load(args, ui)
     if loaded.weights_only:

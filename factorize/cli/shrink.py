@@ -18,6 +18,7 @@ from factorize.training.heal import heal
 from .common import (
     Options,
     calibration_inputs,
+    check_no_clobber,
     check_outputs,
     load,
     max_drift_check,
@@ -36,11 +37,13 @@ from .render import UI
 
 
 def run(args, ui: UI) -> dict:
+    check_no_clobber(args, _outputs(args))  # before anything is loaded
     opts = options(args, ui)
     policy = opts.policy()  # a bad policy is reported before the model is loaded
     loaded = load(args, ui)
     output = output_path(args, loaded)
     report_path = optional_path(args.report)
+    check_no_clobber(args, _outputs(args, output))  # the default output name is known now
     if loaded.path is not None and output.resolve() == Path(loaded.path).resolve():
         raise FactorizeError(f"{output}: is the input; factorize never overwrites its input",
                              fix="choose another --output")
@@ -66,6 +69,11 @@ def run(args, ui: UI) -> dict:
         ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
     return {"command": "shrink", "model": loaded.source, "output": str(output),
             "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan}
+
+
+def _outputs(args, output: Path | None = None) -> dict:
+    return {"--output": output or optional_path(args.output), "--report": optional_path(args.report),
+            "--cache": optional_path(args.cache)}
 
 
 def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
@@ -121,7 +129,7 @@ def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
     done = heal(result.model, loaded.model, calibration.batches, steps=args.heal, lr=args.heal_lr,
                 schedule=args.heal_schedule,
                 heldout=inputs.batches if inputs is not None else None, progress=ui.progress)
-    result.plan["heal"] = done.to_dict()
+    result.plan["heal"] = done.to_dict(timings=False)  # seconds go to the report, not the file
     if inputs is None:
         ui.warn("--heal without --inputs: no held-out check, the last state is kept")
     drift = "" if done.initial_drift is None else \
