@@ -48,7 +48,22 @@ def load(args, ui: UI) -> LoadedModel:
             hf_logging.disable_progress_bar()
     loaded = load_model(args.model, weights=args.weights, allow_pickle=args.allow_pickle)
     ui.note(f"model: {loaded.source} ({loaded.kind})")
+    warn_nonfinite_weights(loaded, ui)
     return loaded
+
+
+def warn_nonfinite_weights(loaded: LoadedModel, ui: UI) -> None:
+    """Name every parameter or buffer holding NaN or Inf (layers that are factored raise their own error; this
+    catches the others, e.g. excluded ones, whose NaN would otherwise show only as a non-finite drift)."""
+    if loaded.model is None:
+        return
+    import torch
+
+    bad = [f"{name} ({int((~torch.isfinite(t)).sum())})" for name, t in loaded.model.state_dict().items()
+           if t.is_floating_point() and not bool(torch.isfinite(t).all())]
+    if bad:
+        ui.warn(f"{len(bad)} tensor(s) of the model hold NaN or Inf values (count): {', '.join(bad[:10])}"
+                + (", ..." if len(bad) > 10 else "") + "; the outputs and every drift number will be unreliable")
 
 
 @dataclass
@@ -137,8 +152,27 @@ def _checked(inputs: SampleInputs, loaded: LoadedModel, source: str, ui: UI) -> 
     for note in inputs.notes:
         ui.warn(note)
     inputs = prepare(inputs, loaded.model)
+    refuse_nonfinite_inputs(inputs, source)
     check_inputs(loaded.model, inputs, source)
     return inputs
+
+
+def refuse_nonfinite_inputs(inputs: SampleInputs, source: str) -> None:
+    """NaN or Inf in float sample inputs make every drift number meaningless (and top-1 agreement of NaN outputs
+    reads 100%): refuse them, saying where."""
+    import torch
+
+    bad = []
+    for i, batch in enumerate(inputs.batches):
+        items = batch.items() if isinstance(batch, dict) else enumerate(batch if isinstance(batch, (list, tuple))
+                                                                         else [batch])
+        for key, t in items:
+            if isinstance(t, torch.Tensor) and t.is_floating_point() and not bool(torch.isfinite(t).all()):
+                bad.append(f"batch {i}" + (f", {key}" if isinstance(key, str) else "") +
+                           f": {int((~torch.isfinite(t)).sum())} NaN or Inf value(s)")
+    if bad:
+        raise FactorizeError(f"{source}: the sample inputs hold NaN or Inf values, so no drift can be measured",
+                             bad[:20], fix="clean the sample file (e.g. numpy.nan_to_num) or pass another one")
 
 
 def _default_inputs(loaded: LoadedModel, args) -> SampleInputs | None:
@@ -164,7 +198,8 @@ def calibration_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None
     path = getattr(args, "calibration", None)
     if not path:
         return None
-    calib = load_inputs(path, batch_size=args.batch_size, labels_key=args.labels_key, tokenizer=loaded.tokenizer)
+    calib = load_inputs(path, batch_size=args.batch_size, labels_key=args.labels_key, tokenizer=loaded.tokenizer,
+                        flag="--calibration")
     calib = _checked(calib, loaded, path, ui)
     if args.inputs and Path(args.inputs).resolve() == Path(path).resolve():
         ui.warn("--calibration and --inputs are the same file: the factors were fitted to the inputs drift is "

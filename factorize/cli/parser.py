@@ -156,7 +156,7 @@ def _parents():
     g.add_argument("--max-samples", type=int, metavar="N", help="use at most N samples")
     g.add_argument("--repeats", type=int, default=None, metavar="N",
                    help="timed forward passes per model for the median latency (0: do not time)")
-    g.add_argument("--seed", type=int, default=0, metavar="N", help="seed for random inputs and randomized SVD")
+    g.add_argument("--seed", type=_seed, default=0, metavar="N", help="seed for random inputs and randomized SVD")
 
     policy = argparse.ArgumentParser(add_help=False)
     g = policy.add_argument_group("rank policy (one of --budget/--rank/--energy/--keep; default --budget 0.5)")
@@ -231,7 +231,7 @@ def _quality_options(*, shrink: bool):
         g.add_argument("--heal", type=_positive_int("--heal"), metavar="STEPS",
                        help="after compressing, fine-tune the factors for STEPS steps to match the original on "
                        "--calibration (distillation); the best state on --inputs is kept")
-        g.add_argument("--heal-lr", type=_nonnegative("--heal-lr"), default=1e-4, metavar="LR",
+        g.add_argument("--heal-lr", type=_positive_finite("--heal-lr"), default=1e-4, metavar="LR",
                        help="learning rate for --heal (default 1e-4; the peak rate with --heal-schedule cosine)")
         g.add_argument("--heal-schedule", choices=HEAL_SCHEDULES, default="constant",
                        help="learning-rate schedule for --heal: constant (default), or cosine (a 5%% linear warm-up, "
@@ -298,6 +298,8 @@ def _checked(flag: str, kind: type, takes: str, ok: Callable[[Any], bool], bad: 
         except ValueError:
             noun = "an integer" if kind is int else "a number"
             raise argparse.ArgumentTypeError(f"{text!r} is not {noun}; {flag} takes {takes}") from None
+        if v != v:  # NaN passes no comparison, and "nan is negative" would be wrong
+            raise argparse.ArgumentTypeError(f"{text!r} is not a number; {flag} takes {wants or takes}")
         if not ok(v):
             raise argparse.ArgumentTypeError(f"{v} {bad}; {flag} takes {wants or takes}")
         return v
@@ -324,3 +326,10 @@ def _positive_int(flag: str) -> Callable[[str], int]:
 
 def _nonnegative(flag: str) -> Callable[[str], float]:
     return _checked(flag, float, "a number >= 0", lambda v: v >= 0, "is negative")
+
+
+def _positive_finite(flag: str) -> Callable[[str], float]:
+    return _checked(flag, float, "a finite number > 0", lambda v: 0 < v < float("inf"), "is not a finite number > 0")
+
+
+_seed = _checked("--seed", int, "an integer from 0 to 2**63 - 1", lambda v: 0 <= v < 2**63, "is out of range")

@@ -115,7 +115,7 @@ def evaluate(
         inputs=inputs,
         policy=dict(plan["policy"]) if plan and "policy" in plan else None,
         calibrated=None if plan is None else "calibration" in plan,
-        notes=list(notes),
+        notes=list(notes) + nonfinite_notes(ref, cand),
         versions=versions(),
     )
     if plan:
@@ -133,6 +133,18 @@ def evaluate(
         )
         report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
     return report
+
+
+def nonfinite_notes(reference: Sequence[torch.Tensor], candidate: Sequence[torch.Tensor]) -> list[str]:
+    """A note for each model whose outputs hold NaN or Inf: then drift and top-1 agreement mean nothing (the
+    argmax of NaN scores agrees trivially), and a reader must be told instead of seeing "100%"."""
+    notes = []
+    for who, outputs in (("original", reference), ("compressed", candidate)):
+        bad = sum(int((~torch.isfinite(o)).sum()) for o in outputs if o.is_floating_point())
+        if bad:
+            notes.append(f"NON-FINITE OUTPUTS: the {who} model gave {bad} NaN or Inf output value(s) on these inputs; "
+                         "the drift and agreement numbers are not meaningful (check the weights and the inputs)")
+    return notes
 
 
 def versions() -> dict:

@@ -133,6 +133,9 @@ class Report:
         1.10 is a change a user should look at before shipping.
         """
         d = self.drift or {}
+        if any(isinstance(v, float) and not math.isfinite(v) for v in d.values()):
+            return ["Non-finite drift: NaN or Inf in the outputs, so no drift number here can be trusted. Next step: "
+                    "look for NaN/Inf in the weights (the warning names them) and in the sample inputs."]
         found = []
         if d.get("cosine_mean") is not None and "top1_agreement" not in d and d["cosine_mean"] < 0.95:
             found.append(f"mean cosine similarity to the original is {d['cosine_mean']:.3f}")
