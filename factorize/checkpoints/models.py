@@ -224,11 +224,10 @@ def has_plan(path: str | os.PathLike) -> bool:
         from factorize.checkpoints import files as io
     except ImportError:  # pragma: no cover - the files module ships with the package
         return False
-    try:
-        io.read_plan(path)
+    try:  # the format marker decides; a marked file with a broken plan must say so, not load as plain weights
+        return io.open_checkpoint(path).metadata.get(io.KEY_FORMAT) == io.FORMAT_NAME
     except FactorizeError:
         return False
-    return True
 
 
 def _load_pickle(path: Path, allow: bool) -> Any:
