@@ -34,7 +34,7 @@ from factorize.measure.drift import _as_batches, _ratio, output_drift
 from factorize.measure.perplexity import is_causal_lm, token_ids
 from factorize.measure.perplexity import perplexity as perplexity_of
 from factorize.measure.report import LayerReport, Report
-from factorize.measure.timing import median_latency
+from factorize.measure.timing import latency_spread
 from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size, primary_output, run_model, token_mask
 from factorize.model.hooks import forward_hooks
@@ -128,10 +128,12 @@ def evaluate(
         report.accuracy_before = accuracy(ref, labels)
         report.accuracy_after = accuracy(cand, labels)
     if latency_repeats > 0:
-        report.latency_ms_before, report.latency_ms_after = median_latency(
-            original, compressed, batches[0], repeats=latency_repeats, clock=clock
-        )
+        before, after = latency_spread(original, compressed, batches[0], repeats=latency_repeats, clock=clock)
+        report.latency_ms_before, report.latency_ms_after = before.median, after.median
+        report.latency_iqr_before, report.latency_iqr_after = [before.q1, before.q3], [after.q1, after.q3]
+        report.latency_range_before, report.latency_range_after = [before.low, before.high], [after.low, after.high]
         report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
+        report.latency_threads = torch.get_num_threads()
     return report
 
 

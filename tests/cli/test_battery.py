@@ -263,3 +263,51 @@ def test_checkpoint_metadata_fuzz_lets_only_factorize_errors_out(version, aliase
     meta = {"factorize.format": "factorize.checkpoint", "factorize.format_version": version,
             "factorize.plan": json.dumps(GOOD_PLAN), "factorize.aliases": json.dumps(aliases)}
     _only_factorize_errors(lambda: files._plan_and_aliases(SimpleNamespace(metadata=meta), "fuzz.safetensors"))
+
+
+# --- 4. honest latency: spread, threads, and a note when the spread is too wide ---------------------------------
+
+
+class _Jittery(torch.nn.Module):
+    """A forward pass costing the next of ``costs`` milliseconds on a fake clock (no machine timing); only the
+    timer's passes (run under torch.inference_mode) spend, the passes that collect outputs do not."""
+
+    def __init__(self, clock, costs, name):
+        super().__init__()
+        self.fc, self.clock, self.costs, self.label = torch.nn.Linear(4, 3), clock, iter(costs), name
+
+    def forward(self, x):
+        if torch.is_inference_mode_enabled():
+            self.clock.spend(self.label, next(self.costs))
+        return self.fc(x)
+
+
+@pytest.mark.parametrize("before, after, conclusive", [
+    ([2.0] * 3 + [2.0, 2.1, 1.9, 2.0, 2.2, 1.8], [1.0] * 3 + [1.0, 1.1, 0.9, 1.0, 1.05, 0.95], True),
+    ([2.0] * 3 + [1.0, 3.0, 1.5, 2.5, 2.0, 1.2], [1.0] * 3 + [1.8, 1.0, 2.6, 1.4, 2.2, 0.9], False),
+])
+def test_latency_reports_its_spread_threads_and_whether_it_concludes(before, after, conclusive) -> None:
+    from factorize.measure.evaluate import evaluate
+    from factorize.measure.report import render_rich
+    from tests.measure.fakeclock import FakeClock
+
+    clock = FakeClock()
+    a, b = _Jittery(clock, before, "a"), _Jittery(clock, after, "b")
+    b.load_state_dict(a.state_dict())
+    rep = evaluate(a, b, [torch.randn(5, 4)], latency_repeats=6, clock=clock)
+    timed = sorted(before[3:])  # three warm-up passes are not timed
+    # quartiles with linear interpolation between order statistics: numpy.percentile's default (numpy reference)
+    assert rep.latency_iqr_before == pytest.approx(list(np.percentile(timed, [25, 75])))
+    assert rep.latency_range_before == pytest.approx([timed[0], timed[-1]])
+    assert rep.latency_threads == torch.get_num_threads() and rep.latency_conclusive is conclusive
+    text = rep.to_markdown()
+    assert f"{torch.get_num_threads()} threads" in text and "interquartile range" in text
+    assert ("Latency is inconclusive" in text) is (not conclusive)
+    assert rep.to_json()["latency_conclusive"] is conclusive
+    import io
+
+    from rich.console import Console
+
+    buf = io.StringIO()
+    render_rich(rep, Console(file=buf, width=200))
+    assert ("overlap: inconclusive" in buf.getvalue()) is (not conclusive)
