@@ -200,20 +200,36 @@ def _keep_fast(model, target, found, have, plan, policy, run, inplace):
     slow, timings = keep_fast(model, target, example=run.speed_example)
     if not slow:
         return plan, target, timings
-    policy = dataclasses.replace(policy, overrides=policy.overrides + tuple(Override(n, dense=True) for n in slow))
+    dense = policy.overrides + tuple(Override(n, dense=True) for n in slow)
     try:
-        plan = choose_ranks(found.sites, have, policy, method=policy.method)
-    except FactorizeError as err:
-        raise FactorizeError(
-            "the speed check kept layers dense that the budget cannot afford",
-            [*slow.values(), str(err).splitlines()[0]],
-            fix="raise the budget, or compress without the speed check and accept the measured slow-down",
-        ) from None
+        plan = choose_ranks(found.sites, have, dataclasses.replace(policy, overrides=dense), method=policy.method)
+    except FactorizeError:  # the budget cannot be met with them dense: it then covers the layers that pay
+        plan = _plan_without(found, have, policy, slow)
+        slow = {n: f"{r}; the budget applies to the other layers" for n, r in slow.items()}
     for name, reason in slow.items():
         plan["sites"][name]["reason"] = reason
     target = model if inplace else copy.deepcopy(model)
     apply_plan(target, plan, spectra=have, inplace=True)
     return plan, target, timings
+
+
+def _plan_without(found, have, policy, slow: Mapping[str, str]) -> dict:
+    """The plan with the ``slow`` layers taken out of the selection (kept dense) and the budget spread over the
+    rest; when no layer is left, or the rest cannot meet it either, one error naming every slow layer."""
+    escaped = tuple("".join(f"[{c}]" if c in "*?[]" else c for c in n) for n in slow)  # names as exact globs
+    try:
+        fewer = dataclasses.replace(policy, exclude=tuple(policy.exclude or ()) + escaped)
+        plan = choose_ranks(found.sites, have, fewer, method=policy.method)
+    except FactorizeError as err:
+        raise FactorizeError(
+            "the speed check found factored layers slower than dense, and the budget cannot be met without them",
+            [f"{n}: {r}" for n, r in slow.items()] + [str(err).splitlines()[0]],
+            fix="raise the budget, or compress without --speed-check and accept the measured slow-down",
+        ) from None
+    for name in slow:
+        plan["sites"].setdefault(name, {"action": "dense", "kind": found.by_name()[name].kind,
+                                        "shape": list(found.by_name()[name].shape)})
+    return plan
 
 
 def parse_options(

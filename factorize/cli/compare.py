@@ -65,7 +65,8 @@ def _load_against(args, loaded, ui: UI):
         fresh = loaded.build()
         if spec.suffix.lower() == ".safetensors" and spec.exists() and has_plan(spec):
             ui.note(f"against: {spec} (factorize checkpoint, loaded into a fresh {type(fresh).__name__})")
-            return files.load(fresh, spec).eval(), files.read_plan(spec)
+            strict = not getattr(args, "non_strict", False)
+            return files.load(fresh, spec, strict=strict).eval(), files.read_plan(spec)
         ui.note(f"against: {spec} (weights for {type(fresh).__name__})")
         return load_weights(fresh, spec, allow_pickle=args.allow_pickle).eval(), None
     other = load_model(args.against, allow_pickle=args.allow_pickle)

@@ -44,7 +44,9 @@ def build_parser() -> argparse.ArgumentParser:
             "    --against model.factorized.safetensors --inputs samples.npz",
         )
         + "\nRun 'factorize COMMAND --help' for each command's options. Exit codes: 0 done, 1 a requested check\n"
-        "failed (--max-drift), 2 bad usage or bad input.",
+        "failed (--max-drift), 2 bad usage or bad input.\n"
+        "Security: --model package.module:callable imports and runs Python code, searching the working directory\n"
+        "first; run factorize only where every module it could import is code you trust (pickles are refused).",
     )
     parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
@@ -135,7 +137,8 @@ def _parents():
     g = model.add_argument_group("model")
     g.add_argument("--model", "-m", required=True, metavar="SPEC",
                    help="package.module:callable that builds the model, a transformers directory (config.json + "
-                   "safetensors), or a bare .safetensors file (weights-only mode)")
+                   "safetensors), or a bare .safetensors file (weights-only mode). A callable IMPORTS AND RUNS "
+                   "CODE, from the working directory first: name only code you trust")
     g.add_argument("--weights", "-w", metavar="FILE",
                    help="a .safetensors state dict to load into the callable's model")
     g.add_argument("--allow-pickle", action="store_true",
@@ -277,6 +280,9 @@ def _compare_options():
                    "another model spec")
     g.add_argument("--report", metavar="FILE.md", help="also write the report as Markdown")
     g.add_argument("--force", "-f", action="store_true", help="replace an existing report file")
+    g.add_argument("--non-strict", action="store_true",
+                   help="load a factorize checkpoint given as --against tolerating missing and unexpected keys (listed in a warning) and casting "
+                   "dtypes, e.g. a transformers directory's extra buffers; shapes must still match")
     return p
 
 

@@ -67,6 +67,7 @@ def run(args, ui: UI) -> dict:
     if not ui.json_mode:
         render_rich(report, ui.out)
         ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
+        ui.out.print(next_steps(output, loaded, report_path), soft_wrap=True, markup=False)
     return {"command": "shrink", "model": loaded.source, "output": str(output),
             "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan}
 
@@ -92,7 +93,7 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
     else:
         result = compress(loaded.model, policy, progress=ui.progress, **extra)
     notes = list(inputs.notes) if inputs is not None else []
-    notes += _calibration_notes(result, calibration)
+    notes += _calibration_notes(result, calibration) + _speed_notes(result.plan)
     if args.heal:
         notes += _heal(args, loaded, result, calibration, inputs, ui)
     if inputs is not None:
@@ -109,6 +110,23 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
         ui.warn(report.notes[0])
     files.save(result.model, output, plan=result.plan, force=args.force)
     return report, result.plan
+
+
+def _speed_notes(plan: dict) -> list[str]:
+    """One note per layer the speed check kept dense, naming it and the times measured."""
+    return [f"speed check: {name}: {e.get('reason')}" for name, e in plan["sites"].items()
+            if isinstance(e, dict) and "measured slower" in str(e.get("reason", ""))]
+
+
+def next_steps(output: Path, loaded, report_path: Path | None) -> str:
+    """What to do with the result: reload it, measure it on your own inputs, or review the report."""
+    model = f"--model {loaded.source}" if loaded.kind == "callable" and loaded.path is None else \
+        (f"--model {loaded.source} --weights {loaded.path}" if loaded.kind == "callable" else "--model <your builder>")
+    steps = [f"reload it with factorize.load(fresh_model, '{output}')",
+             f"measure it on your own inputs: factorize compare {model} --against {output} --inputs FILE"]
+    if report_path is not None:
+        steps.append(f"review {report_path}")
+    return "next steps: " + "; ".join(steps)
 
 
 def _calibration_notes(result, calibration) -> list[str]:
