@@ -59,7 +59,8 @@ def render(result: dict, runs: list[dict], ui: UI) -> None:
     ui.out.print(f"[bold]factorize demo[/]: {result['model']}\ndata: {result['data']}", highlight=False)
     table = Table(title="1. scan: what the spectra allow", title_justify="left")
     for name in ("layer", "shape", "params", "r@90%", "r@99%", "break-even", "spectrum"):
-        table.add_column(name, justify="left" if name in ("layer", "shape", "spectrum") else "right", no_wrap=True)
+        table.add_column(name, justify="left" if name in ("layer", "shape", "spectrum") else "right",
+                         no_wrap=name != "layer", overflow="fold" if name == "layer" else "ellipsis")
     for r in result["scan"]:
         m, n = r["shape"]
         table.add_row(r["name"], f"{m}x{n}", f"{r['params']:,}", opt(r["rank_90"]), opt(r["rank_99"]),

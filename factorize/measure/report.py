@@ -309,7 +309,8 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
         for name, justify in (("layer", "left"), ("kind", "left"), ("shape", "left"), ("rank", "right"),
                               ("params", "right"), ("params after", "right"), ("weight error", "right"),
                               ("MACs after", "right")):
-            layers.add_column(name, justify=justify)  # type: ignore[arg-type]
+            layers.add_column(name, justify=justify,  # type: ignore[arg-type]
+                              overflow="fold" if name == "layer" else "ellipsis")  # full names, wrapped, never cut
         for layer in report.layers:
             layers.add_row(*_layer_cells(layer))
         console.print(layers)

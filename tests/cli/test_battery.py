@@ -311,3 +311,97 @@ def test_latency_reports_its_spread_threads_and_whether_it_concludes(before, aft
     buf = io.StringIO()
     render_rich(rep, Console(file=buf, width=200))
     assert ("overlap: inconclusive" in buf.getvalue()) is (not conclusive)
+
+
+# --- 5. a terminal that guides ----------------------------------------------------------------------------------
+
+LONG = "encoder.layer_with_a_rather_long_descriptive_name.attention.output_projection_block"
+
+
+def _first_column(text: str) -> str:
+    """The first column of every rich table row in ``text``, fragments joined (a folded name spans lines)."""
+    return "".join(line.split("│")[1].strip() for line in text.splitlines() if line.startswith("│"))
+
+
+@pytest.mark.parametrize("command", ["scan", "shrink"])
+def test_long_layer_names_are_shown_in_full_at_120_columns(tmp_path, monkeypatch, command) -> None:
+    attr = LONG.split(".", 1)[1].replace(".", "_")
+    (tmp_path / "longnames.py").write_text(textwrap.dedent(f"""
+        import torch
+        from torch import nn
+
+        class Block(nn.Module):
+            def __init__(self):
+                super().__init__()
+                self.{attr} = nn.Sequential(nn.Linear(32, 64), nn.ReLU(), nn.Linear(64, 32))
+
+            def forward(self, x):
+                return self.{attr}(x)
+
+        class Net(nn.Module):
+            def __init__(self):
+                super().__init__()
+                self.encoder = Block()
+
+            def forward(self, x):
+                return self.encoder(x)
+
+        def build():
+            torch.manual_seed(0)
+            return Net()
+        """))
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("COLUMNS", raising=False)  # into a pipe: 120 columns
+    argv = [command, "-m", "longnames:build", "-q"] + (["--random-inputs", "8x32", "--repeats", "0",
+                                                        "-o", "o.safetensors"] if command == "shrink" else [])
+    r = _in_process(argv)
+    sys.modules.pop("longnames", None)
+    assert r.rc == 0, r
+    name = "encoder." + LONG.split(".", 1)[1].replace(".", "_") + ".0"
+    assert len(name) > 60 and "…" not in r.out
+    assert name in _first_column(r.out), r.out
+    if command == "shrink":
+        assert "next steps:" in r.out and "factorize compare" in r.out
+
+
+def test_speed_check_works_on_the_digits_model_and_names_the_layers(tmp_path, monkeypatch) -> None:
+    monkeypatch.chdir(tmp_path)
+    r = _in_process(["shrink", "-m", "factorize.default:load_default", "--speed-check", "--repeats", "0",
+                     "-o", "d.safetensors", "--json", "-q"])
+    assert r.rc == 0, r  # it used to exit 2 when slow layers made the budget unaffordable
+    data = r.json()
+    for name, e in data["plan"]["sites"].items():  # every layer kept dense for speed is named in a note
+        if "measured slower" in str(e.get("reason", "")):
+            assert any(n.startswith(f"speed check: {name}: ") for n in data["report"]["notes"])
+
+
+def test_help_warns_that_a_callable_runs_code(capsys) -> None:
+    from factorize.cli import main
+
+    for argv in (["--help"], ["shrink", "--help"]):
+        with pytest.raises(SystemExit):
+            main(argv)
+        text = " ".join(capsys.readouterr().out.split())
+        assert "imports and runs" in text.lower() and "working directory" in text
+    doc = (Path(__file__).resolve().parents[2] / "docs" / "cli.md").read_text()
+    assert "Code execution warning" in doc
+
+
+def test_compare_non_strict_loads_a_checkpoint_with_an_extra_key(battery, monkeypatch) -> None:
+    """A checkpoint holding a key the architecture lacks (as a transformers position_ids buffer would)."""
+    from safetensors.torch import load_file
+
+    from factorize.storage import read_header, write_safetensors
+
+    d = battery["dir"]
+    monkeypatch.chdir(d)
+    tensors = load_file(str(d / "good.safetensors"))
+    tensors["position_ids"] = torch.arange(4)
+    if not (d / "extra.safetensors").exists():
+        write_safetensors(d / "extra.safetensors", tensors, read_header(d / "good.safetensors").metadata)
+    base = ["compare", *M, "--against", "extra.safetensors", "--random-inputs", "4x20", "--repeats", "0", "-q"]
+    strict = _in_process(base)
+    assert strict.rc == 2 and "position_ids" in strict.err and "Traceback" not in strict.err, strict
+    loose = _in_process(base + ["--non-strict", "--json"])
+    assert loose.rc == 0, loose
+    assert "position_ids" in loose.err  # the warning lists what was ignored
