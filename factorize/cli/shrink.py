@@ -12,6 +12,7 @@ from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate, layer_reports
 from factorize.measure.report import Report, render_rich
 from factorize.model.count import count_bytes, count_parameters
+from factorize.model.feed import batch_size
 from factorize.pipeline import compress
 from factorize.training.heal import heal
 
@@ -88,7 +89,8 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
         extra["speed_example"] = inputs.batches[0]
     if inputs is not None and calibration is None:
         extra["example"] = inputs.batches[0]  # the result is run on it (and multiply-accumulates counted there)
-    if "max_drift" in extra:  # --target-drift chooses the budget itself
+    if "max_drift" in extra:  # --target-drift chooses the budget itself, on one part of --inputs
+        extra["heldout"], inputs = split_for_search(inputs, ui)
         result = compress(loaded.model, progress=ui.progress, **opts.selection(), **extra)
     else:
         result = compress(loaded.model, policy, progress=ui.progress, **extra)
@@ -110,6 +112,44 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI):
         ui.warn(report.notes[0])
     files.save(result.model, output, plan=result.plan, force=args.force)
     return report, result.plan
+
+
+def split_for_search(inputs, ui: UI):
+    """(batches the target-drift search selects the budget on, the inputs the report measures drift on): the
+    held-out batches split in two, so the drift reported is not the one the budget was chosen for (that would be
+    optimistic). With a single batch of one sample there is nothing to split: both use it, with a warning."""
+    batches = list(inputs.batches)
+    if len(batches) == 1:
+        batches = _halves(batches[0])
+    if len(batches) < 2:
+        ui.warn("--target-drift: only one sample in --inputs, so the budget is chosen and reported on the same "
+                "sample; the drift shown is optimistic")
+        return inputs.batches, inputs
+    half = len(batches) // 2
+    chosen, report = batches[:half], batches[half:]
+    n_chosen = sum(batch_size(b) for b in chosen)
+    labels = None if inputs.labels is None else inputs.labels[n_chosen:]
+    note = (f"target drift: the budget was chosen on the first {n_chosen} samples of --inputs and the drift "
+            f"below is measured on the other {sum(batch_size(b) for b in report)}")
+    return chosen, dataclasses.replace(inputs, batches=report, labels=labels, count=inputs.count - n_chosen,
+                                       notes=[*inputs.notes, note])
+
+
+def _halves(batch) -> list:
+    """A batch (tensor, tuple/list or dict of tensors, samples first) as two halves; [batch] when it cannot be."""
+    n = batch_size(batch)
+    if n < 2:
+        return [batch]
+    cut = n // 2
+
+    def part(lo, hi):
+        if isinstance(batch, dict):
+            return {k: v[lo:hi] if hasattr(v, "shape") else v for k, v in batch.items()}
+        if isinstance(batch, (tuple, list)):
+            return type(batch)(v[lo:hi] if hasattr(v, "shape") else v for v in batch)
+        return batch[lo:hi]
+
+    return [part(0, cut), part(cut, n)]
 
 
 def _speed_notes(plan: dict) -> list[str]:

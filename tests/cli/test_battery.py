@@ -405,3 +405,24 @@ def test_compare_non_strict_loads_a_checkpoint_with_an_extra_key(battery, monkey
     loose = _in_process(base + ["--non-strict", "--json"])
     assert loose.rc == 0, loose
     assert "position_ids" in loose.err  # the warning lists what was ignored
+
+
+def test_target_drift_chooses_on_one_half_and_reports_on_the_other(tmp_path, monkeypatch) -> None:
+    """Held-out digits (Alpaydin & Kaynak, UCI, as bundled with scikit-learn): 540 samples in 9 batches of 64."""
+    from safetensors.torch import save_file
+
+    from factorize.default import load_digits_split
+
+    monkeypatch.chdir(tmp_path)
+    for split in ("calibration", "test"):
+        x, y = load_digits_split(split)
+        save_file({"inputs": x.contiguous(), "labels": y.contiguous()}, f"{split}.safetensors")
+    r = _in_process(["shrink", "-m", "factorize.default:load_default", "-c", "calibration.safetensors",
+                     "-i", "test.safetensors", "--target-drift", "0.05", "--repeats", "0", "-o", "t.safetensors",
+                     "--json", "-q"])
+    assert r.rc == 0, r
+    rep = r.json()["report"]
+    chosen = 4 * 64  # the first 4 of the 9 batches
+    assert rep["samples"] == 540 - chosen  # the report's drift is on the samples the search never saw
+    assert any(f"first {chosen} samples" in n and f"other {540 - chosen}" in n for n in rep["notes"])
+    assert rep["accuracy_after"] is not None  # labels were split with the batches
