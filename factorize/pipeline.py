@@ -214,21 +214,22 @@ def _keep_fast(model, target, found, have, plan, policy, run, inplace):
 
 
 def _plan_without(found, have, policy, slow: Mapping[str, str]) -> dict:
-    """The plan with the ``slow`` layers taken out of the selection (kept dense) and the budget spread over the
-    rest; when no layer is left, or the rest cannot meet it either, one error naming every slow layer."""
-    escaped = tuple("".join(f"[{c}]" if c in "*?[]" else c for c in n) for n in slow)  # names as exact globs
+    """The plan with the ``slow`` layers left out of the allocation (kept dense) and the budget spread over the
+    rest; when the rest cannot meet it either, one error naming every slow layer."""
+    from factorize.plan.ranks import _site_entry  # one plan row, as choose_ranks writes it
+
+    rest = [s for s in found.sites if s.name not in slow]
     try:
-        fewer = dataclasses.replace(policy, exclude=tuple(policy.exclude or ()) + escaped)
-        plan = choose_ranks(found.sites, have, fewer, method=policy.method)
+        plan = choose_ranks(rest, have, policy, method=policy.method)
     except FactorizeError as err:
         raise FactorizeError(
             "the speed check found factored layers slower than dense, and the budget cannot be met without them",
             [f"{n}: {r}" for n, r in slow.items()] + [str(err).splitlines()[0]],
             fix="raise the budget, or compress without --speed-check and accept the measured slow-down",
         ) from None
-    for name in slow:
-        plan["sites"].setdefault(name, {"action": "dense", "kind": found.by_name()[name].kind,
-                                        "shape": list(found.by_name()[name].shape)})
+    by_name = found.by_name()
+    plan["sites"] = {s.name: plan["sites"].get(s.name) or _site_entry(by_name[s.name], None, None, slow[s.name])
+                     for s in found.sites if s.name in plan["sites"] or s.name in slow}
     return plan
 
 
