@@ -213,7 +213,8 @@ def test_the_same_shrink_twice_gives_the_same_bytes(battery, mode, monkeypatch) 
 
 # --- 3. the plan parser under fuzz ----------------------------------------------------------------------------
 
-JSON = st.recursive(st.none() | st.booleans() | st.integers(-3, 10**20) | st.floats(allow_nan=True) | st.text(max_size=8),
+SCALARS = st.none() | st.booleans() | st.integers(-3, 10**20) | st.floats(allow_nan=True) | st.text(max_size=8)
+JSON = st.recursive(SCALARS,
                     lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=6), inner, max_size=4),
                     max_leaves=20)
 GOOD_PLAN = {"format": "factorize.plan", "version": 1, "method": "exact", "policy": {"rank": 4},
