@@ -200,20 +200,37 @@ def _keep_fast(model, target, found, have, plan, policy, run, inplace):
     slow, timings = keep_fast(model, target, example=run.speed_example)
     if not slow:
         return plan, target, timings
-    policy = dataclasses.replace(policy, overrides=policy.overrides + tuple(Override(n, dense=True) for n in slow))
+    dense = policy.overrides + tuple(Override(n, dense=True) for n in slow)
     try:
-        plan = choose_ranks(found.sites, have, policy, method=policy.method)
-    except FactorizeError as err:
-        raise FactorizeError(
-            "the speed check kept layers dense that the budget cannot afford",
-            [*slow.values(), str(err).splitlines()[0]],
-            fix="raise the budget, or compress without the speed check and accept the measured slow-down",
-        ) from None
+        plan = choose_ranks(found.sites, have, dataclasses.replace(policy, overrides=dense), method=policy.method)
+    except FactorizeError:  # the budget cannot be met with them dense: it then covers the layers that pay
+        plan = _plan_without(found, have, policy, slow)
+        slow = {n: f"{r}; the budget applies to the other layers" for n, r in slow.items()}
     for name, reason in slow.items():
         plan["sites"][name]["reason"] = reason
     target = model if inplace else copy.deepcopy(model)
     apply_plan(target, plan, spectra=have, inplace=True)
     return plan, target, timings
+
+
+def _plan_without(found, have, policy, slow: Mapping[str, str]) -> dict:
+    """The plan with the ``slow`` layers left out of the allocation (kept dense) and the budget spread over the
+    rest; when the rest cannot meet it either, one error naming every slow layer."""
+    from factorize.plan.ranks import _site_entry  # one plan row, as choose_ranks writes it
+
+    rest = [s for s in found.sites if s.name not in slow]
+    try:
+        plan = choose_ranks(rest, have, policy, method=policy.method)
+    except FactorizeError as err:
+        raise FactorizeError(
+            "the speed check found factored layers slower than dense, and the budget cannot be met without them",
+            [f"{n}: {r}" for n, r in slow.items()] + [str(err).splitlines()[0]],
+            fix="raise the budget, or compress without --speed-check and accept the measured slow-down",
+        ) from None
+    by_name = found.by_name()
+    plan["sites"] = {s.name: plan["sites"].get(s.name) or _site_entry(by_name[s.name], None, None, slow[s.name])
+                     for s in found.sites if s.name in plan["sites"] or s.name in slow}
+    return plan
 
 
 def parse_options(

@@ -41,6 +41,7 @@ from factorize.plan.ranks import PLAN_FORMAT
 from factorize.storage import (
     Header,
     _check_readable_file,
+    _printable,
     check_free_space,
     check_output_path,
     read_header,
@@ -161,9 +162,10 @@ def _plan_and_aliases(ckpt: Checkpoint, path) -> tuple[dict, dict[str, str]]:
             "(or safetensors.torch.load_model); to compress them, use factorize.compress or shrink_checkpoint",
         )
     version = meta.get(KEY_VERSION, "")
-    if not version.isdigit() or int(version) != FORMAT_VERSION:
+    if version != str(FORMAT_VERSION):  # ASCII digits only: int() would also take '１' or a 5000-digit number
         raise FactorizeError(
-            f"{path}: factorize checkpoint format version {version!r}; this factorize reads version {FORMAT_VERSION}",
+            f"{path}: factorize checkpoint format version {_printable(version[:20])!r}; this factorize reads version "
+            f"{FORMAT_VERSION}",
             fix="upgrade factorize to the version that wrote the file (see its 'factorize.library_version' "
             "metadata), or re-create the checkpoint with this version",
         )
@@ -175,7 +177,10 @@ def _plan_and_aliases(ckpt: Checkpoint, path) -> tuple[dict, dict[str, str]]:
                              fix="re-create the checkpoint") from None
     if not isinstance(plan, dict) or plan.get("format") != PLAN_FORMAT or not isinstance(plan.get("sites"), dict):
         raise FactorizeError(f"{path}: the metadata holds no valid factorize plan", fix="re-create the checkpoint")
-    if not isinstance(aliases, dict):
+    from factorize.rewrite.apply import check_plan
+
+    check_plan(plan, str(path))
+    if not isinstance(aliases, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in aliases.items()):
         raise FactorizeError(f"{path}: corrupt {KEY_ALIASES!r} metadata", fix="re-create the checkpoint")
     return plan, aliases
 

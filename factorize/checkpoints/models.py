@@ -118,6 +118,9 @@ def _from_callable(spec: str) -> tuple[nn.Module, Callable[[], nn.Module]]:
             f"--model {spec}: cannot import {err.name!r}",
             fix="check the module path, run from the directory that holds it, or add it to PYTHONPATH",
         ) from None
+    except (Exception, SystemExit) as err:  # noqa: BLE001 - the user's module may raise anything while importing
+        raise FactorizeError(f"--model {spec}: importing {module_name} failed: {_describe(err)}",
+                             fix=f"fix the error in {module_name} (try: python -c 'import {module_name}')") from None
     finally:
         if added:
             sys.path.remove(cwd)
@@ -146,12 +149,25 @@ def _call_builder(spec: str, target: Any) -> nn.Module:
     except TypeError as err:
         raise FactorizeError(f"--model {spec}: calling it with no arguments failed: {err}",
                              fix="wrap the constructor in a function that takes no arguments") from None
+    except (Exception, SystemExit) as err:  # noqa: BLE001 - the user's builder may raise (or exit) with anything
+        raise FactorizeError(f"--model {spec}: the builder failed: {_describe(err)}",
+                             fix="fix the builder so that calling it with no arguments returns the model") from None
     if not isinstance(model, nn.Module):
         raise FactorizeError(
             f"--model {spec} returned {type(model).__name__}, not a torch.nn.Module",
             fix="make the callable return the model (an nn.Module instance)",
         )
     return model
+
+
+def _describe(err: BaseException) -> str:
+    """One line for an exception raised by the user's code: its type and first line (sys.exit: the code)."""
+    if isinstance(err, SystemExit):
+        return f"it called sys.exit({err.code!r})"
+    if isinstance(err, SyntaxError):
+        return f"SyntaxError: {err.msg} ({err.filename}, line {err.lineno})"
+    first = str(err).splitlines()[0] if str(err) else ""
+    return type(err).__name__ + (f": {first}" if first else "")
 
 
 def _fresh_copy(model: nn.Module) -> nn.Module:
@@ -211,11 +227,10 @@ def has_plan(path: str | os.PathLike) -> bool:
         from factorize.checkpoints import files as io
     except ImportError:  # pragma: no cover - the files module ships with the package
         return False
-    try:
-        io.read_plan(path)
+    try:  # the format marker decides; a marked file with a broken plan must say so, not load as plain weights
+        return io.open_checkpoint(path).metadata.get(io.KEY_FORMAT) == io.FORMAT_NAME
     except FactorizeError:
         return False
-    return True
 
 
 def _load_pickle(path: Path, allow: bool) -> Any:

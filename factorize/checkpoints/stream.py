@@ -203,7 +203,10 @@ class _StreamWriter:
 
     def abort(self) -> None:
         if not self.f.closed:
-            self.f.close()
+            try:
+                self.f.close()  # flushing what is buffered can fail again (a full disk, a size limit)
+            except OSError:
+                pass
         remove_quietly(self.tmp)
 
 
@@ -441,7 +444,8 @@ class _Job:
                 done.append(final)
         except OSError as e:
             self._cleanup(writers, temps, done)
-            raise FactorizeError(f"writing {finals[0].parent} failed ({e.strerror or e}); nothing was left behind",
+            raise FactorizeError(f"{finals[0]}: writing the output failed ({e.strerror or e}); the input is "
+                                 "untouched and nothing was left behind",
                                  fix="check free space and permissions, then retry") from e
         except BaseException:
             self._cleanup(writers, temps, done)

@@ -14,6 +14,8 @@ from __future__ import annotations
 
 import contextlib
 import importlib
+import io
+import json
 import sys
 import warnings
 from collections.abc import Iterator, Sequence
@@ -32,11 +34,32 @@ def main(argv: Sequence[str] | None = None, *, stdout: IO[str] | None = None, st
     everything the run writes, the library's progress bars and warnings included."""
     with _streams(stdout, stderr):
         parser = build_parser()
-        args = parser.parse_args(argv)
+        args = _parse(parser, list(sys.argv[1:] if argv is None else argv))
         if not getattr(args, "command", None):
             parser.print_help(sys.stderr)
             return 2
         return _dispatch(args, UI(json_mode=args.json, quiet=args.quiet))
+
+
+def _parse(parser, argv: list[str]):
+    """argparse, except that with --json a usage error is also one JSON object on stdout (exit 2), as every
+    other error is; the usage text still goes to stderr."""
+    if "--json" not in argv:
+        return parser.parse_args(argv)
+    caught = io.StringIO()
+    try:
+        with contextlib.redirect_stderr(caught):
+            return parser.parse_args(argv)
+    except SystemExit as done:
+        text = caught.getvalue()
+        sys.stderr.write(text)
+        if done.code not in (0, None):
+            lines = [line for line in text.splitlines() if line.strip()]
+            message = lines[-1] if lines else "usage error"
+            message = message.split(": error: ", 1)[-1]
+            payload = {"error": message, "problems": [], "fix": "see 'factorize COMMAND --help'", "exit_code": 2}
+            sys.stdout.write(json.dumps(payload) + "\n")
+        raise
 
 
 @contextlib.contextmanager

@@ -8,6 +8,7 @@ messages that name the flags.
 from __future__ import annotations
 
 import contextlib
+import os
 import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -53,6 +54,7 @@ def load(args, ui: UI) -> LoadedModel:
         ui.note(f"device: {device}")
     elif device is not None and device.type != "cpu":
         ui.warn("weights-only mode streams the file on the CPU: --device is not used")
+    warn_nonfinite_weights(loaded, ui)
     return loaded
 
 
@@ -89,6 +91,20 @@ def output_dtype(args, model):
 
     name = getattr(args, "dtype", None)
     return model if name is None else model.to(getattr(torch, name))
+
+
+def warn_nonfinite_weights(loaded: LoadedModel, ui: UI) -> None:
+    """Name every parameter or buffer holding NaN or Inf (layers that are factored raise their own error; this
+    catches the others, e.g. excluded ones, whose NaN would otherwise show only as a non-finite drift)."""
+    if loaded.model is None:
+        return
+    import torch
+
+    bad = [f"{name} ({int((~torch.isfinite(t)).sum())})" for name, t in loaded.model.state_dict().items()
+           if t.is_floating_point() and not bool(torch.isfinite(t).all())]
+    if bad:
+        ui.warn(f"{len(bad)} tensor(s) of the model hold NaN or Inf values (count): {', '.join(bad[:10])}"
+                + (", ..." if len(bad) > 10 else "") + "; the outputs and every drift number will be unreliable")
 
 
 @dataclass
@@ -180,8 +196,27 @@ def _checked(inputs: SampleInputs, loaded: LoadedModel, source: str, ui: UI) -> 
     for note in inputs.notes:
         ui.warn(note)
     inputs = prepare(inputs, loaded.model)
+    refuse_nonfinite_inputs(inputs, source)
     check_inputs(loaded.model, inputs, source)
     return inputs
+
+
+def refuse_nonfinite_inputs(inputs: SampleInputs, source: str) -> None:
+    """NaN or Inf in float sample inputs make every drift number meaningless (and top-1 agreement of NaN outputs
+    reads 100%): refuse them, saying where."""
+    import torch
+
+    bad = []
+    for i, batch in enumerate(inputs.batches):
+        items = batch.items() if isinstance(batch, dict) else enumerate(batch if isinstance(batch, (list, tuple))
+                                                                         else [batch])
+        for key, t in items:
+            if isinstance(t, torch.Tensor) and t.is_floating_point() and not bool(torch.isfinite(t).all()):
+                bad.append(f"batch {i}" + (f", {key}" if isinstance(key, str) else "") +
+                           f": {int((~torch.isfinite(t)).sum())} NaN or Inf value(s)")
+    if bad:
+        raise FactorizeError(f"{source}: the sample inputs hold NaN or Inf values, so no drift can be measured",
+                             bad[:20], fix="clean the sample file (e.g. numpy.nan_to_num) or pass another one")
 
 
 def _default_inputs(loaded: LoadedModel, args) -> SampleInputs | None:
@@ -207,7 +242,8 @@ def calibration_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None
     path = getattr(args, "calibration", None)
     if not path:
         return None
-    calib = load_inputs(path, batch_size=args.batch_size, labels_key=args.labels_key, tokenizer=loaded.tokenizer)
+    calib = load_inputs(path, batch_size=args.batch_size, labels_key=args.labels_key, tokenizer=loaded.tokenizer,
+                        flag="--calibration")
     calib = _checked(calib, loaded, path, ui)
     if args.inputs and Path(args.inputs).resolve() == Path(path).resolve():
         ui.warn("--calibration and --inputs are the same file: the factors were fitted to the inputs drift is "
@@ -349,3 +385,71 @@ def write_text(path: Path, text: str, force: bool) -> None:
 def optional_path(value: str | None) -> Path | None:
     return Path(value) if value else None
 
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# nothing lost: no output may name an input or another output
+
+INPUT_FLAGS = ("model", "weights", "inputs", "calibration", "recipe", "against")
+
+
+def input_paths(args) -> dict[str, list[Path]]:
+    """Every file (or directory) the command reads, by flag: --model/--weights/--inputs/--calibration/--recipe/
+    --against when they name something on disk; a sharded index brings its shard files with it."""
+    found: dict[str, list[Path]] = {}
+    for flag in INPUT_FLAGS:
+        value = getattr(args, flag, None)
+        if not value or not Path(value).exists():
+            continue
+        p = Path(value)
+        found[f"--{flag}"] = [p, *_shards_of(p)]
+    return found
+
+
+def _shards_of(p: Path) -> list[Path]:
+    if not p.is_file() or not p.name.endswith(".safetensors.index.json"):
+        return []
+    import json
+
+    try:
+        index = json.loads(p.read_text(encoding="utf-8"))
+        return [p.parent / s for s in set(index.get("weight_map", {}).values()) if isinstance(s, str)]
+    except (OSError, ValueError, AttributeError):
+        return []  # a broken index is reported by the loader, with its own message
+
+
+def check_no_clobber(args, outputs: dict[str, Path | None]) -> None:
+    """Refuse, before any work, an output that is an input (resolved, links included; --force does not change
+    this), lies inside an input directory, holds an input (an output directory), or is another output."""
+    inputs = input_paths(args)
+    problems: list[str] = []
+    seen: dict[Path, str] = {}
+    for flag, out in outputs.items():
+        if out is None:
+            continue
+        target = Path(out).resolve()
+        for in_flag, paths in inputs.items():
+            for p in paths:
+                if _same(target, p):
+                    problems.append(f"{flag} {out} is the {in_flag} file {p}")
+                elif p.is_dir() and p.resolve() in target.parents:
+                    problems.append(f"{flag} {out} lies inside the {in_flag} directory {p}")
+                elif flag != "--cache" and target in p.resolve().parents:  # cache files have their own names
+                    problems.append(f"{flag} {out} would hold the {in_flag} file {p}")
+        if target in seen:
+            problems.append(f"{flag} {out} is also {seen[target]}")
+        seen.setdefault(target, flag)
+    if problems:
+        raise FactorizeError("an output would overwrite an input or another output; factorize never modifies its "
+                             "inputs", list(dict.fromkeys(problems)),
+                             fix="give each output (-o/--output, --report, --csv, --plot, --cache) its own new path")
+
+
+def _same(target: Path, p: Path) -> bool:
+    """``target`` (resolved) is ``p``: equal after resolving links, or the same file on disk (a hard link)."""
+    if target == p.resolve():
+        return True
+    try:
+        return target.exists() and os.path.samefile(target, p)
+    except OSError:
+        return False

@@ -16,6 +16,7 @@ from factorize.measure.evaluate import evaluate
 from factorize.measure.report import render_rich
 
 from .common import (
+    check_no_clobber,
     check_outputs,
     load,
     optional_path,
@@ -28,6 +29,7 @@ from .render import UI
 
 def run(args, ui: UI) -> dict:
     report_path = optional_path(args.report)
+    check_no_clobber(args, {"--report": report_path})
     check_outputs([report_path], args.force)
     loaded = load(args, ui)
     if loaded.weights_only:
@@ -65,7 +67,8 @@ def _load_against(args, loaded, ui: UI):
         fresh = loaded.build()
         if spec.suffix.lower() == ".safetensors" and spec.exists() and has_plan(spec):
             ui.note(f"against: {spec} (factorize checkpoint, loaded into a fresh {type(fresh).__name__})")
-            return files.load(fresh, spec).eval(), files.read_plan(spec)
+            strict = not getattr(args, "non_strict", False)
+            return files.load(fresh, spec, strict=strict).eval(), files.read_plan(spec)
         ui.note(f"against: {spec} (weights for {type(fresh).__name__})")
         return load_weights(fresh, spec, allow_pickle=args.allow_pickle).eval(), None
     other = load_model(args.against, allow_pickle=args.allow_pickle)

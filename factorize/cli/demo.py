@@ -21,6 +21,11 @@ from .render import UI, g4, opt, pct, spectrum_sketch
 from .scan import scan_row
 
 
+NEXT_STEPS = ("next steps: look at your own model's spectra with factorize scan --model mypkg.models:build "
+              "--weights model.safetensors; pick a budget with factorize sweep ... --inputs samples.npz; then "
+              "factorize shrink ... --calibration calib.npz --inputs samples.npz --report review.md")
+
+
 def run(args, ui: UI) -> dict:
     model = load_default()
     x, y = load_digits_split("test")  # held out: never used in training (factorize/default/README.md)
@@ -54,7 +59,8 @@ def render(result: dict, runs: list[dict], ui: UI) -> None:
     ui.out.print(f"[bold]factorize demo[/]: {result['model']}\ndata: {result['data']}", highlight=False)
     table = Table(title="1. scan: what the spectra allow", title_justify="left")
     for name in ("layer", "shape", "params", "r@90%", "r@99%", "break-even", "spectrum"):
-        table.add_column(name, justify="left" if name in ("layer", "shape", "spectrum") else "right", no_wrap=True)
+        table.add_column(name, justify="left" if name in ("layer", "shape", "spectrum") else "right",
+                         no_wrap=name != "layer", overflow="fold" if name == "layer" else "ellipsis")
     for r in result["scan"]:
         m, n = r["shape"]
         table.add_row(r["name"], f"{m}x{n}", f"{r['params']:,}", opt(r["rank_90"]), opt(r["rank_99"]),
@@ -75,3 +81,4 @@ def render(result: dict, runs: list[dict], ui: UI) -> None:
     ui.out.print(f"\n3. the full report at the strongest budget ({runs[-1]['budget']:g}):")
     render_rich(runs[-1]["_report"], ui.out, caution=False)  # the caution closes the demo, once
     ui.caution(result["caution"])
+    ui.out.print(NEXT_STEPS, soft_wrap=True, markup=False)

@@ -46,7 +46,9 @@ def build_parser() -> argparse.ArgumentParser:
             "    --against model.factorized.safetensors --inputs samples.npz",
         )
         + "\nRun 'factorize COMMAND --help' for each command's options. Exit codes: 0 done, 1 a requested check\n"
-        "failed (--max-drift), 2 bad usage or bad input.",
+        "failed (--max-drift), 2 bad usage or bad input.\n"
+        "Security: --model package.module:callable imports and runs Python code, searching the working directory\n"
+        "first; run factorize only where every module it could import is code you trust (pickles are refused).",
     )
     parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
@@ -154,7 +156,8 @@ def _parents():
     g = model.add_argument_group("model")
     g.add_argument("--model", "-m", required=True, metavar="SPEC",
                    help="package.module:callable that builds the model, a transformers directory (config.json + "
-                   "safetensors), or a bare .safetensors file (weights-only mode)")
+                   "safetensors), or a bare .safetensors file (weights-only mode). A callable IMPORTS AND RUNS "
+                   "CODE, from the working directory first: name only code you trust")
     g.add_argument("--weights", "-w", metavar="FILE",
                    help="a .safetensors state dict to load into the callable's model")
     g.add_argument("--allow-pickle", action="store_true",
@@ -175,7 +178,7 @@ def _parents():
     g.add_argument("--max-samples", type=int, metavar="N", help="use at most N samples")
     g.add_argument("--repeats", type=int, default=None, metavar="N",
                    help="timed forward passes per model for the median latency (0: do not time)")
-    g.add_argument("--seed", type=int, default=0, metavar="N", help="seed for random inputs and randomized SVD")
+    g.add_argument("--seed", type=_seed, default=0, metavar="N", help="seed for random inputs and randomized SVD")
 
     policy = argparse.ArgumentParser(add_help=False)
     g = policy.add_argument_group("rank policy (one of --budget/--rank/--energy/--keep; default --budget 0.5)")
@@ -250,7 +253,7 @@ def _quality_options(*, shrink: bool):
         g.add_argument("--heal", type=_positive_int("--heal"), metavar="STEPS",
                        help="after compressing, fine-tune the factors for STEPS steps to match the original on "
                        "--calibration (distillation); the best state on --inputs is kept")
-        g.add_argument("--heal-lr", type=_nonnegative("--heal-lr"), default=1e-4, metavar="LR",
+        g.add_argument("--heal-lr", type=_positive_finite("--heal-lr"), default=1e-4, metavar="LR",
                        help="learning rate for --heal (default 1e-4; the peak rate with --heal-schedule cosine)")
         g.add_argument("--heal-schedule", choices=HEAL_SCHEDULES, default="constant",
                        help="learning-rate schedule for --heal: constant (default), or cosine (a 5%% linear warm-up, "
@@ -296,6 +299,9 @@ def _compare_options():
                    "another model spec")
     g.add_argument("--report", metavar="FILE.md", help="also write the report as Markdown")
     g.add_argument("--force", "-f", action="store_true", help="replace an existing report file")
+    g.add_argument("--non-strict", action="store_true",
+                   help="load a factorize checkpoint given as --against tolerating missing and unexpected keys (listed in a warning) and casting "
+                   "dtypes, e.g. a transformers directory's extra buffers; shapes must still match")
     return p
 
 
@@ -362,6 +368,8 @@ def _checked(flag: str, kind: type, takes: str, ok: Callable[[Any], bool], bad: 
         except ValueError:
             noun = "an integer" if kind is int else "a number"
             raise argparse.ArgumentTypeError(f"{text!r} is not {noun}; {flag} takes {takes}") from None
+        if v != v:  # NaN passes no comparison, and "nan is negative" would be wrong
+            raise argparse.ArgumentTypeError(f"{text!r} is not a number; {flag} takes {wants or takes}")
         if not ok(v):
             raise argparse.ArgumentTypeError(f"{v} {bad}; {flag} takes {wants or takes}")
         return v
@@ -388,3 +396,10 @@ def _positive_int(flag: str) -> Callable[[str], int]:
 
 def _nonnegative(flag: str) -> Callable[[str], float]:
     return _checked(flag, float, "a number >= 0", lambda v: v >= 0, "is negative")
+
+
+def _positive_finite(flag: str) -> Callable[[str], float]:
+    return _checked(flag, float, "a finite number > 0", lambda v: 0 < v < float("inf"), "is not a finite number > 0")
+
+
+_seed = _checked("--seed", int, "an integer from 0 to 2**63 - 1", lambda v: 0 <= v < 2**63, "is out of range")

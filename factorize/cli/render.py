@@ -48,13 +48,15 @@ class UI:
             yield
 
     def warn(self, text: str) -> None:
-        self.err.print(f"[yellow]warning:[/] {text}", markup=True)
+        self.err.print(Text("warning: ", style="yellow") + Text(printable(text)))
 
     def note(self, text: str) -> None:
         if not self.quiet:
             self.err.print(text, markup=False)
 
     def fail(self, message: str, code: int, *, problems: Sequence[str] = (), fix: str | None = None) -> int:
+        message, problems = printable(message), [printable(p) for p in problems]
+        fix = None if fix is None else printable(fix)
         prefix = "error: " if code == 2 else "check failed: "
         self.err.print(Text(prefix, style="bold red") + Text(message), soft_wrap=True)
         if self.json_mode:
@@ -69,6 +71,12 @@ class UI:
 
     def caution(self, text: str) -> None:
         self.out.print(Panel(text, title="caution", title_align="left", border_style="yellow"))
+
+
+def printable(text: str) -> str:
+    """``text`` with control characters (terminal escape sequences among them) shown as '?'; line breaks stay.
+    Names in messages come from files and user code, and must not drive the terminal."""
+    return "".join(c if c.isprintable() or c == "\n" else "?" for c in str(text))
 
 
 def _width(stream) -> int | None:

@@ -67,7 +67,8 @@ def render(result: dict, ui: UI) -> None:
     for name, justify in (("layer", "left"), ("kind", "left"), ("shape", "left"), ("params", "right"),
                           ("r@90%", "right"), ("r@99%", "right"), ("r@99.9%", "right"), ("break-even", "right"),
                           ("suggested", "right"), ("spectrum", "left")):
-        table.add_column(name, justify=justify, no_wrap=name in ("spectrum", "shape"))  # type: ignore[arg-type]
+        table.add_column(name, justify=justify, no_wrap=name in ("spectrum", "shape"),  # type: ignore[arg-type]
+                         overflow="fold" if name == "layer" else "ellipsis")  # full layer names, wrapped
     for r in result["layers"]:
         m, n = r["shape"]
         table.add_row(r["name"], r["kind"], f"{m}x{n}", f"{r['params']:,}", opt(r["rank_90"]), opt(r["rank_99"]),

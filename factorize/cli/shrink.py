@@ -13,12 +13,14 @@ from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate, layer_reports
 from factorize.measure.report import Report, render_rich
 from factorize.model.count import count_bytes, count_parameters
+from factorize.model.feed import batch_size
 from factorize.pipeline import compress
 from factorize.training.heal import heal
 
 from .common import (
     Options,
     calibration_inputs,
+    check_no_clobber,
     check_outputs,
     load,
     max_drift_check,
@@ -39,11 +41,13 @@ from .render import UI
 
 
 def run(args, ui: UI) -> dict:
+    check_no_clobber(args, _outputs(args))  # before anything is loaded
     opts = options(args, ui)
     policy = opts.policy()  # a bad policy is reported before the model is loaded
     loaded = load(args, ui)
     output = output_path(args, loaded)
     report_path = optional_path(args.report)
+    check_no_clobber(args, _outputs(args, output))  # the default output name is known now
     if loaded.path is not None and output.resolve() == Path(loaded.path).resolve():
         raise FactorizeError(f"{output}: is the input; factorize never overwrites its input",
                              fix="choose another --output")
@@ -69,8 +73,14 @@ def run(args, ui: UI) -> dict:
     if not ui.json_mode:
         render_rich(report, ui.out)
         ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
+        ui.out.print(next_steps(output, loaded, report_path), soft_wrap=True, markup=False)
     return {"command": "shrink", "model": loaded.source, "output": str(output),
             "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan}
+
+
+def _outputs(args, output: Path | None = None) -> dict:
+    return {"--output": output or optional_path(args.output), "--report": optional_path(args.report),
+            "--cache": optional_path(args.cache)}
 
 
 def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_directory: bool = False):
@@ -84,12 +94,13 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
         extra["speed_example"] = inputs.batches[0]
     if inputs is not None and calibration is None:
         extra["example"] = inputs.batches[0]  # the result is run on it (and multiply-accumulates counted there)
-    if "max_drift" in extra:  # --target-drift chooses the budget itself
+    if "max_drift" in extra:  # --target-drift chooses the budget itself, on one part of --inputs
+        extra["heldout"], inputs = split_for_search(inputs, ui)
         result = compress(loaded.model, progress=ui.progress, **opts.selection(), **extra)
     else:
         result = compress(loaded.model, policy, progress=ui.progress, **extra)
     notes = list(inputs.notes) if inputs is not None else []
-    notes += _calibration_notes(result, calibration)
+    notes += _calibration_notes(result, calibration) + _speed_notes(result.plan)
     if args.heal:
         notes += _heal(args, loaded, result, calibration, inputs, ui)
     if inputs is not None:
@@ -114,6 +125,61 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
     return report, result.plan
 
 
+def split_for_search(inputs, ui: UI):
+    """(batches the target-drift search selects the budget on, the inputs the report measures drift on): the
+    held-out batches split in two, so the drift reported is not the one the budget was chosen for (that would be
+    optimistic). With a single batch of one sample there is nothing to split: both use it, with a warning."""
+    batches = list(inputs.batches)
+    if len(batches) == 1:
+        batches = _halves(batches[0])
+    if len(batches) < 2:
+        ui.warn("--target-drift: only one sample in --inputs, so the budget is chosen and reported on the same "
+                "sample; the drift shown is optimistic")
+        return inputs.batches, inputs
+    half = len(batches) // 2
+    chosen, report = batches[:half], batches[half:]
+    n_chosen = sum(batch_size(b) for b in chosen)
+    labels = None if inputs.labels is None else inputs.labels[n_chosen:]
+    note = (f"target drift: the budget was chosen on the first {n_chosen} samples of --inputs and the drift "
+            f"below is measured on the other {sum(batch_size(b) for b in report)}")
+    return chosen, dataclasses.replace(inputs, batches=report, labels=labels, count=inputs.count - n_chosen,
+                                       notes=[*inputs.notes, note])
+
+
+def _halves(batch) -> list:
+    """A batch (tensor, tuple/list or dict of tensors, samples first) as two halves; [batch] when it cannot be."""
+    n = batch_size(batch)
+    if n < 2:
+        return [batch]
+    cut = n // 2
+
+    def part(lo, hi):
+        if isinstance(batch, dict):
+            return {k: v[lo:hi] if hasattr(v, "shape") else v for k, v in batch.items()}
+        if isinstance(batch, (tuple, list)):
+            return type(batch)(v[lo:hi] if hasattr(v, "shape") else v for v in batch)
+        return batch[lo:hi]
+
+    return [part(0, cut), part(cut, n)]
+
+
+def _speed_notes(plan: dict) -> list[str]:
+    """One note per layer the speed check kept dense, naming it and the times measured."""
+    return [f"speed check: {name}: {e.get('reason')}" for name, e in plan["sites"].items()
+            if isinstance(e, dict) and "measured slower" in str(e.get("reason", ""))]
+
+
+def next_steps(output: Path, loaded, report_path: Path | None) -> str:
+    """What to do with the result: reload it, measure it on your own inputs, or review the report."""
+    model = f"--model {loaded.source}" if loaded.kind == "callable" and loaded.path is None else \
+        (f"--model {loaded.source} --weights {loaded.path}" if loaded.kind == "callable" else "--model <your builder>")
+    steps = [f"reload it with factorize.load(fresh_model, '{output}')",
+             f"measure it on your own inputs: factorize compare {model} --against {output} --inputs FILE"]
+    if report_path is not None:
+        steps.append(f"review {report_path}")
+    return "next steps: " + "; ".join(steps)
+
+
 def _calibration_notes(result, calibration) -> list[str]:
     if calibration is None:
         return []
@@ -132,7 +198,7 @@ def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
     done = heal(result.model, loaded.model, calibration.batches, steps=args.heal, lr=args.heal_lr,
                 schedule=args.heal_schedule,
                 heldout=inputs.batches if inputs is not None else None, progress=ui.progress)
-    result.plan["heal"] = done.to_dict()
+    result.plan["heal"] = done.to_dict(timings=False)  # seconds go to the report, not the file
     if inputs is None:
         ui.warn("--heal without --inputs: no held-out check, the last state is kept")
     drift = "" if done.initial_drift is None else \

@@ -21,6 +21,7 @@ from factorize.storage import write_atomic
 from .common import (
     Options,
     calibration_inputs,
+    check_no_clobber,
     check_outputs,
     load,
     optional_path,
@@ -45,6 +46,7 @@ def run(args, ui: UI) -> dict:
     csv_path, plot_path = optional_path(args.csv), optional_path(args.plot)
     if plot_path is not None:
         _matplotlib()  # fail before any work when the plot cannot be drawn
+    check_no_clobber(args, {"--csv": csv_path, "--plot": plot_path, "--cache": optional_path(args.cache)})
     check_outputs([csv_path, plot_path], args.force)
     opts = options(args, ui, default_budget=None)  # the grid gives the budgets; a recipe's rule is not used
     loaded = load(args, ui)

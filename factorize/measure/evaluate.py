@@ -35,7 +35,7 @@ from factorize.measure.perplexity import is_causal_lm, token_ids
 from factorize.measure.perplexity import perplexity as perplexity_of
 from factorize.measure.pooling import pool
 from factorize.measure.report import LayerReport, Report
-from factorize.measure.timing import median_latency
+from factorize.measure.timing import latency_spread
 from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size, primary_output, run_model, token_mask
 from factorize.model.hooks import forward_hooks
@@ -124,7 +124,7 @@ def evaluate(
         inputs=inputs,
         policy=dict(plan["policy"]) if plan and "policy" in plan else None,
         calibrated=None if plan is None else "calibration" in plan,
-        notes=list(notes),
+        notes=list(notes) + nonfinite_notes(ref, cand),
         versions=versions(),
     )
     if plan:
@@ -137,11 +137,25 @@ def evaluate(
         report.accuracy_before = accuracy(ref, labels)
         report.accuracy_after = accuracy(cand, labels)
     if latency_repeats > 0:
-        report.latency_ms_before, report.latency_ms_after = median_latency(
-            original, compressed, batches[0], repeats=latency_repeats, clock=clock
-        )
+        before, after = latency_spread(original, compressed, batches[0], repeats=latency_repeats, clock=clock)
+        report.latency_ms_before, report.latency_ms_after = before.median, after.median
+        report.latency_iqr_before, report.latency_iqr_after = [before.q1, before.q3], [after.q1, after.q3]
+        report.latency_range_before, report.latency_range_after = [before.low, before.high], [after.low, after.high]
         report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
+        report.latency_threads = torch.get_num_threads()
     return report
+
+
+def nonfinite_notes(reference: Sequence[torch.Tensor], candidate: Sequence[torch.Tensor]) -> list[str]:
+    """A note for each model whose outputs hold NaN or Inf: then drift and top-1 agreement mean nothing (the
+    argmax of NaN scores agrees trivially), and a reader must be told instead of seeing "100%"."""
+    notes = []
+    for who, outputs in (("original", reference), ("compressed", candidate)):
+        bad = sum(int((~torch.isfinite(o)).sum()) for o in outputs if o.is_floating_point())
+        if bad:
+            notes.append(f"NON-FINITE OUTPUTS: the {who} model gave {bad} NaN or Inf output value(s) on these inputs; "
+                         "the drift and agreement numbers are not meaningful (check the weights and the inputs)")
+    return notes
 
 
 def versions() -> dict:

@@ -18,7 +18,9 @@ given, what the model's first layer expects, and the fix. Nothing here prints; w
 
 from __future__ import annotations
 
+import math
 import os
+import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -57,13 +59,15 @@ def load_inputs(
     tokenizer: Any = None,
     max_length: int = 128,
     limit: int | None = None,
+    flag: str = "--inputs",
 ) -> SampleInputs:
-    """Read sample inputs from a file (see the module docstring for the formats)."""
+    """Read sample inputs from a file (see the module docstring for the formats); ``flag`` names the option the
+    path came from in messages (--inputs, --calibration)."""
     p = Path(path)
     if not p.exists():
-        raise FactorizeError(f"{p}: no such file", fix="check the --inputs path")
+        raise FactorizeError(f"{p}: no such file", fix=f"check the {flag} path")
     if not p.is_file() or not os.access(p, os.R_OK):
-        raise FactorizeError(f"{p}: not a readable file", fix="check the --inputs path and its permissions")
+        raise FactorizeError(f"{p}: not a readable file", fix=f"check the {flag} path and its permissions")
     _check_batch_size(batch_size)
     suffix = p.suffix.lower()
     if suffix == ".txt":
@@ -96,7 +100,7 @@ def _npy(p: Path) -> torch.Tensor:
     except ValueError as err:
         raise FactorizeError(f"{p}: cannot read it as a numeric .npy array ({err})",
                              fix="save a numeric array (np.save) without Python objects") from None
-    except (OSError, EOFError) as err:
+    except (OSError, EOFError, zipfile.BadZipFile) as err:
         raise FactorizeError(f"{p}: not a valid .npy file ({err})", fix="save it again with numpy.save") from None
     return _tensor(array, p, "")
 
@@ -108,7 +112,7 @@ def _npz(p: Path) -> dict[str, torch.Tensor]:
     except ValueError as err:
         raise FactorizeError(f"{p}: cannot read it as numeric arrays ({err})",
                              fix="save numeric arrays (np.savez) without Python objects") from None
-    except (OSError, EOFError) as err:
+    except (OSError, EOFError, zipfile.BadZipFile) as err:
         raise FactorizeError(f"{p}: not a valid .npz file ({err})", fix="save it again with numpy.savez") from None
 
 
@@ -225,6 +229,8 @@ def random_inputs(
     standard normal floats in the model's dtype otherwise. Always carries :data:`RANDOM_WARNING`."""
     _check_batch_size(batch_size)
     dims = parse_shape(shape) if isinstance(shape, str) else tuple(shape)
+    _check_random_size(dims)
+    _check_seed(seed)
     gen = torch.Generator().manual_seed(seed)
     first = _first_layer(model) if model is not None else None
     if isinstance(first, nn.Embedding):
@@ -236,6 +242,23 @@ def random_inputs(
     batches = list(x.split(batch_size))
     return SampleInputs(batches=batches, source=f"random inputs: {dims[0]} samples of {list(dims[1:])}, {what}",
                         count=dims[0], notes=[RANDOM_WARNING])
+
+
+MAX_RANDOM_ELEMENTS = 2**27  # 134M numbers (512 MiB of float32): more says nothing more about drift
+
+
+def _check_random_size(dims: tuple[int, ...]) -> None:
+    """Refuse, before allocating, random inputs of more than :data:`MAX_RANDOM_ELEMENTS` numbers."""
+    total = math.prod(dims)
+    if total > MAX_RANDOM_ELEMENTS:
+        raise FactorizeError(f"random inputs of shape {'x'.join(map(str, dims))} would hold {total:,} numbers, over "
+                             f"the limit of {MAX_RANDOM_ELEMENTS:,}",
+                             fix="ask for fewer samples (the first number), e.g. 64x" + "x".join(map(str, dims[1:])))
+
+
+def _check_seed(seed: int) -> None:
+    if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed < 2**63:
+        raise FactorizeError(f"seed {seed!r} is out of range", fix="give an integer from 0 to 2**63 - 1")
 
 
 def _float_dtype(model: nn.Module | None) -> torch.dtype:

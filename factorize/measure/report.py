@@ -16,6 +16,7 @@ from typing import Any
 from rich.console import Console
 from rich.panel import Panel
 from rich.table import Table
+from rich.text import Text
 
 REPORT_FORMAT = "factorize.report"
 REPORT_VERSION = 1
@@ -62,6 +63,11 @@ class Report:
     latency_ms_after: float | None = None
     latency_repeats: int = 0
     latency_batch: int = 0  # samples in the timed batch
+    latency_iqr_before: list[float] | None = None  # [first quartile, third quartile] of the timed passes, ms
+    latency_iqr_after: list[float] | None = None
+    latency_range_before: list[float] | None = None  # [fastest, slowest] timed pass, ms
+    latency_range_after: list[float] | None = None
+    latency_threads: int | None = None  # torch.get_num_threads() while timing
     samples: int = 0  # sample inputs the drift was measured on
     inputs: str = ""  # where the sample inputs came from
     policy: dict | None = None  # the plan's rank policy
@@ -133,6 +139,9 @@ class Report:
         1.10 is a change a user should look at before shipping.
         """
         d = self.drift or {}
+        if any(isinstance(v, float) and not math.isfinite(v) for v in d.values()):
+            return ["Non-finite drift: NaN or Inf in the outputs, so no drift number here can be trusted. Next step: "
+                    "look for NaN/Inf in the weights (the warning names them) and in the sample inputs."]
         found = []
         if d.get("cosine_mean") is not None and "top1_agreement" not in d and d["cosine_mean"] < 0.95:
             found.append(f"mean cosine similarity to the original is {d['cosine_mean']:.3f}")
@@ -158,6 +167,25 @@ class Report:
         return [f"High drift: {'; '.join(found)}. Next step: {step}."]
 
     @property
+    def latency_conclusive(self) -> bool | None:
+        """False when the two interquartile ranges of the timed passes overlap: the medians then differ by less
+        than the run-to-run spread, and the latency change cannot be told from noise (a judgement call, stricter
+        than comparing medians alone). None when no spread was measured."""
+        if not self.latency_iqr_before or not self.latency_iqr_after:
+            return None
+        (a1, a3), (b1, b3) = self.latency_iqr_before, self.latency_iqr_after
+        return a3 < b1 or b3 < a1
+
+    def latency_note(self) -> str | None:
+        """A sentence when the latency change is inside the noise (see :attr:`latency_conclusive`)."""
+        if self.latency_conclusive is not False:
+            return None
+        threads = f" with {self.latency_threads} threads" if self.latency_threads else ""
+        return (f"Latency is inconclusive: the interquartile ranges of the {self.latency_repeats} timed passes "
+                f"overlap{threads}, so the change is within this machine's run-to-run noise. Time again with more "
+                "repeats (--repeats), on an idle machine, or with a fixed thread count.")
+
+    @property
     def worst_weight_error(self) -> float | None:
         errors = [layer.weight_error for layer in self.factored if layer.weight_error is not None]
         return max(errors) if errors else None
@@ -178,6 +206,8 @@ class Report:
             worst_weight_error=self.worst_weight_error,
             factored_layers=len(self.factored),
             perplexity_ratio=self.perplexity_ratio,
+            latency_conclusive=self.latency_conclusive,
+            latency_note=self.latency_note(),
             setup=self.setup(),
             advice=self.advice(),
         )
@@ -201,7 +231,7 @@ class Report:
                       "| --- | --- | --- | ---: | ---: | ---: | ---: | ---: |"]
             for layer in self.layers:
                 lines.append("| " + " | ".join(_layer_cells(layer)) + " |")
-        for note in self.notes:
+        for note in self.notes + ([self.latency_note()] if self.latency_note() else []):
             lines += ["", f"Note: {note}"]
         for line in self.advice():
             lines += ["", f"**{line}**"]
@@ -224,9 +254,14 @@ class Report:
             rows.append(("perplexity (next token)", f"{self.perplexity_before:.4g}", f"{self.perplexity_after:.4g}",
                          _change(self.perplexity_before, self.perplexity_after)))
         if self.latency_ms_before is not None:
-            rows.append((f"latency, median of {self.latency_repeats} (batch {self.latency_batch})",
+            threads = f", {self.latency_threads} threads" if self.latency_threads else ""
+            rows.append((f"latency, median of {self.latency_repeats} (batch {self.latency_batch}{threads})",
                          f"{self.latency_ms_before:.3f} ms", f"{self.latency_ms_after:.3f} ms",
                          _change(self.latency_ms_before, self.latency_ms_after)))
+            if self.latency_iqr_before and self.latency_iqr_after:
+                rows.append(("latency, interquartile range", _ms_range(self.latency_iqr_before),
+                             _ms_range(self.latency_iqr_after),
+                             "overlap: inconclusive" if self.latency_conclusive is False else "apart"))
         return rows
 
     def drift_rows(self) -> list[tuple[str, str]]:
@@ -274,12 +309,13 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
         for name, justify in (("layer", "left"), ("kind", "left"), ("shape", "left"), ("rank", "right"),
                               ("params", "right"), ("params after", "right"), ("weight error", "right"),
                               ("MACs after", "right")):
-            layers.add_column(name, justify=justify)  # type: ignore[arg-type]
+            layers.add_column(name, justify=justify,  # type: ignore[arg-type]
+                              overflow="fold" if name == "layer" else "ellipsis")  # full names, wrapped, never cut
         for layer in report.layers:
             layers.add_row(*_layer_cells(layer))
         console.print(layers)
-    for note in report.notes:
-        console.print(f"[yellow]Note:[/] {note}", highlight=False)
+    for note in report.notes + ([report.latency_note()] if report.latency_note() else []):
+        console.print(Text("Note: ", style="yellow") + Text(note))
     for line in report.advice():
         console.print(f"[bold red]{line}[/]", highlight=False)
     if caution:
@@ -310,6 +346,10 @@ def _drift_value(key: str, v: float) -> str:
     if key.startswith("cosine"):
         return f"{v:.6f}"
     return f"{v:.4g}"
+
+
+def _ms_range(v: list[float]) -> str:
+    return f"{v[0]:.3f}-{v[1]:.3f} ms"
 
 
 def _int(v: int | None) -> str:

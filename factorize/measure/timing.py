@@ -9,6 +9,7 @@ from __future__ import annotations
 import statistics
 import time
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 import torch
@@ -46,6 +47,19 @@ def paired_ms(
     """Median times in milliseconds of ``a()`` and ``b()``, measured interleaved after ``warmup`` calls of each
     (the first calls pay for lazy initialisation and cold caches, and would otherwise count). ``clock`` returns
     seconds (default :func:`time.perf_counter`); it is read just before and just after each timed call."""
+    times = paired_samples(a, b, repeats=repeats, warmup=warmup, clock=clock)
+    return statistics.median(times[0]), statistics.median(times[1])
+
+
+def paired_samples(
+    a: Callable[[], Any],
+    b: Callable[[], Any],
+    *,
+    repeats: int = 20,
+    warmup: int = 3,
+    clock: Callable[[], float] = time.perf_counter,
+) -> tuple[list[float], list[float]]:
+    """Every timed call of :func:`paired_ms`, in milliseconds, in the order taken: (times of a, times of b)."""
     times: tuple[list[float], list[float]] = ([], [])
     with torch.inference_mode():
         for _ in range(warmup):
@@ -55,7 +69,38 @@ def paired_ms(
                 start = clock()
                 fn()
                 acc.append(1000.0 * (clock() - start))
-    return statistics.median(times[0]), statistics.median(times[1])
+    return times
+
+
+@dataclass(frozen=True)
+class Spread:
+    """The distribution of one model's timed passes, in milliseconds: median, quartiles (numpy's default linear
+    interpolation, i.e. ``statistics.quantiles(method="inclusive")``), min and max."""
+
+    median: float
+    q1: float
+    q3: float
+    low: float
+    high: float
+
+    @classmethod
+    def of(cls, times: list[float]) -> Spread:
+        q1, _, q3 = statistics.quantiles(times, n=4, method="inclusive") if len(times) > 1 else times * 3
+        return cls(statistics.median(times), q1, q3, min(times), max(times))
+
+
+def latency_spread(
+    a: nn.Module, b: nn.Module, batch: Any, *, repeats: int = 7, clock: Callable[[], float] = time.perf_counter
+) -> tuple[Spread, Spread]:
+    """:func:`median_latency` with the whole spread of each model's passes (a :class:`Spread` each)."""
+    flags = (a.training, b.training)
+    a.eval(), b.eval()
+    try:
+        ta, tb = paired_samples(lambda: (feed(a, batch), _sync(a)), lambda: (feed(b, batch), _sync(b)),
+                                repeats=repeats, clock=clock)
+    finally:
+        a.train(flags[0]), b.train(flags[1])
+    return Spread.of(ta), Spread.of(tb)
 
 
 def _sync(model: nn.Module) -> None:

@@ -166,6 +166,8 @@ def _validate_policy(p: Policy) -> None:
         problems.append(f"cost must be 'params' or 'macs', got {p.cost!r}")
     if isinstance(p.seed, bool) or not isinstance(p.seed, (int, np.integer)):
         problems.append(f"seed must be an integer, got {p.seed!r}")
+    elif not 0 <= int(p.seed) < 2**63:  # torch.Generator.manual_seed takes 64-bit seeds; numpy's none below 0
+        problems.append(f"seed must be in 0 .. 2**63 - 1, got {p.seed}")
     for name in ("include", "exclude"):
         bad = [repr(v) for v in getattr(p, name) or () if not isinstance(v, str)]
         if bad:

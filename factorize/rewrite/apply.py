@@ -6,12 +6,14 @@ from __future__ import annotations
 import copy
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 import torch
 from torch import nn
 
 from factorize.errors import FactorizeError
 from factorize.model.sites import (
+    KINDS,
     Site,
     WalkResult,
     get_module,
@@ -21,6 +23,7 @@ from factorize.model.sites import (
 )
 from factorize.plan.ranks import (
     PLAN_FORMAT,
+    PLAN_VERSION,
     plan_summary,
 )
 from factorize.rewrite.layers import (
@@ -58,21 +61,70 @@ class CompressResult:
         }
 
 
+KINDS_IN_PLANS = KINDS
+
+
+def check_plan(plan: Any, where: str = "") -> None:
+    """Check the plan's own structure, before any model is involved: the format, an integer version this library
+    reads, ``sites`` a mapping of name -> object, and each factored entry with a known kind, a [m, n] shape of
+    positive integers and an integer rank (not a bool). Raises one :class:`FactorizeError` listing every problem
+    (names shown without control characters); plans from files and from users go through here."""
+    prefix = f"{where}: " if where else ""
+    if not isinstance(plan, Mapping) or plan.get("format") != PLAN_FORMAT or not isinstance(plan.get("sites"), Mapping):
+        raise FactorizeError(f"{prefix}not a factorize plan",
+                             fix=f"pass the .plan of a compress() result (format {PLAN_FORMAT!r})")
+    problems = []
+    version = plan.get("version", PLAN_VERSION)
+    if isinstance(version, bool) or not isinstance(version, int) or not 1 <= version <= PLAN_VERSION:
+        problems.append(f"version {_shown(version)}: this factorize reads plan versions 1..{PLAN_VERSION}")
+    for name, e in plan["sites"].items():
+        problems += _entry_problems(_shown(name), e)
+    if problems:
+        raise FactorizeError(f"{prefix}the plan is malformed ({len(problems)} problem(s))", problems[:50],
+                             fix="re-create the plan with compress(), or correct the listed entries")
+
+
+def _entry_problems(name: str, e: Any) -> list[str]:
+    if not isinstance(e, Mapping):
+        return [f"{name}: the entry is a {type(e).__name__}, not an object"]
+    if e.get("action") not in ("factor", "dense"):
+        return [f"{name}: action {_shown(e.get('action'))} is not 'factor' or 'dense'"]
+    if e["action"] != "factor":
+        return []
+    found = []
+    if e.get("kind") not in KINDS_IN_PLANS:
+        found.append(f"{name}: kind {_shown(e.get('kind'))} is not one of {', '.join(KINDS_IN_PLANS)}")
+    shape = e.get("shape")
+    if not isinstance(shape, (list, tuple)) or len(shape) != 2 or not all(_positive_int(v) for v in shape):
+        found.append(f"{name}: shape {_shown(shape)} is not [m, n] of positive integers")
+    if not _positive_int(e.get("rank")):
+        found.append(f"{name}: rank {_shown(e.get('rank'))} is not a positive integer")
+    return found
+
+
+def _positive_int(v: Any) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool) and v >= 1
+
+
+def _shown(v: Any) -> str:
+    """A value for a message: repr, control characters replaced, long ones cut."""
+    text = "".join(c if c.isprintable() else "?" for c in (v if isinstance(v, str) else repr(v)))
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
 def validate_plan(model: nn.Module, plan: Mapping) -> dict[str, Site]:
     """Check that ``plan`` fits ``model``: every factored site exists with the same kind and shape.
 
     Returns the model's sites by name. Raises one :class:`FactorizeError` listing every mismatch.
     """
-    if not isinstance(plan, Mapping) or plan.get("format") != PLAN_FORMAT or not isinstance(plan.get("sites"), Mapping):
-        raise FactorizeError(
-            "not a factorize plan", fix=f"pass the .plan of a compress() result (format {PLAN_FORMAT!r})"
-        )
+    check_plan(plan)
     sites = walk(model).by_name()
     problems = []
     for name, e in plan["sites"].items():
         if e.get("action") != "factor":
             continue
         site = sites.get(name)
+        name = _shown(name)
         if site is None:
             problems.append(f"{name}: the plan factors it but the model has no such factorizable layer")
         elif site.kind != e.get("kind") or list(site.shape) != list(e.get("shape", [])):

@@ -96,9 +96,11 @@ class HealResult:
                 return c.drift
         return None
 
-    def to_dict(self) -> dict:
-        """JSON-serialisable summary (without the model)."""
-        d = {k: v for k, v in asdict(self).items() if k not in ("model", "checks")}
+    def to_dict(self, *, timings: bool = True) -> dict:
+        """JSON-serialisable summary (without the model). ``timings=False`` leaves out the wall-clock seconds, for
+        what is written into a file: the same command twice then gives the same bytes (timings go to the report)."""
+        dropped = ("model", "checks") if timings else ("model", "checks", "seconds")
+        d = {k: v for k, v in asdict(self).items() if k not in dropped}
         d["checks"] = [asdict(c) for c in self.checks]
         d["initial_drift"] = self.initial_drift
         d["best_drift"] = self.best_drift

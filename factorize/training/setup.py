@@ -98,8 +98,10 @@ def validate(student: Any, teacher: Any, data: Any, heldout: Any, options: HealO
         if isinstance(batches, (torch.Tensor, Mapping)) or not isinstance(batches, Iterable):
             problems.append(f"{what} must be an iterable of batches, got a {type(batches).__name__}")
     if problems:
+        batch_problem = any("iterable of batches" in p for p in problems)
         raise FactorizeError("invalid healing arguments", problems,
-                             fix="data/heldout take a list of batches, e.g. [x] or list(x.split(32)); see help(heal)")
+                             fix="data/heldout take a list of batches, e.g. [x] or list(x.split(32)); see help(heal)"
+                             if batch_problem else "correct the listed values; see help(heal)")
     if options.train == "factored" and not factored_layers(student):
         raise FactorizeError("the compressed model has no factored layer to train",
                              fix="compress the model first (factorize.compress), or pass train='all'")

@@ -188,7 +188,9 @@ def world(tmp_path_factory):
     _build_work(d)
     has_bert = _tiny_bert_dir(d) is not None
     before = {p.name: p.read_bytes() for p in d.iterdir() if p.is_file()}
-    env = {**os.environ, "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", "COLUMNS": "140"}
+    root = str(Path(__file__).resolve().parents[2])  # this checkout's factorize, not another installed copy
+    env = {**os.environ, "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", "COLUMNS": "140",
+           "PYTHONPATH": os.pathsep.join(filter(None, [root, os.environ.get("PYTHONPATH")]))}
 
     def run_steps(steps: list[list[str]]) -> list[Run]:
         out = []
