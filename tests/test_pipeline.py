@@ -302,3 +302,21 @@ def test_compress_without_any_sample_input_warns_that_nothing_ran(mlp):
     with warnings.catch_warnings():
         warnings.simplefilter("error", UnverifiedModelWarning)
         factorize.compress(mlp, budget=0.5, example=torch.randn(2, 24))  # a batch at hand: checked, no warning
+
+
+def test_conv3d_and_conv_transpose_models_compress_plain_and_calibrated():
+    # Conv3d and ConvTranspose2d are sites; the calibrated path (input rows per position, output-gradient rows by
+    # the im2col adjoint) runs on them, and the result keeps the output shape.
+    from torch import nn
+
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Conv3d(2, 16, 3, padding=1), nn.ReLU(), nn.Flatten(1, 2),
+                          nn.ConvTranspose2d(64, 6, 4, stride=2, padding=1))
+    batches = [torch.randn(4, 2, 4, 6, 6) for _ in range(3)]
+    kinds = {s.name: s.kind for s in factorize.walk(model)}
+    assert kinds == {"0": "conv3d", "3": "conv_transpose2d"}
+    for calibration in (None, batches):
+        result = factorize.compress(model, budget=0.6, calibration=calibration)
+        assert result.plan["sites"]["3"]["action"] == "factor"
+        with torch.no_grad():
+            assert result.model(batches[0]).shape == model(batches[0]).shape

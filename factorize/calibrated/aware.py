@@ -387,6 +387,8 @@ def aware_spectra(
 
 
 def _center_for(site: Site, center: bool | str) -> bool:
+    if site.kind.startswith("conv_transpose"):
+        return False  # its m = out * prod(kernel) rows overlap-add into the output: no per-channel bias absorbs a shift
     if center == "auto":
         return site.has_bias and site.kind != "embedding"
     if center and not site.has_bias:

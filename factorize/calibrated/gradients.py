@@ -7,6 +7,7 @@ from contextlib import contextmanager
 from typing import Any
 
 import torch
+import torch.nn.functional as F
 from torch import nn
 from tqdm.auto import tqdm
 
@@ -19,13 +20,29 @@ from factorize.calibrated.stats import (
 from factorize.errors import FactorizeError
 from factorize.model.feed import feed, token_mask
 from factorize.model.hooks import forward_hooks
-from factorize.model.sites import Site
+from factorize.model.sites import Site, get_module
 
 
-def _output_rows(kind: str, g: torch.Tensor, mask: torch.Tensor | None) -> torch.Tensor:
+def _transpose_output_rows(module: nn.Module, g: torch.Tensor) -> torch.Tensor:
+    """Rows (input positions, out * prod(kernel)) for a transposed conv: its output is the col2im scatter of the
+    per-position products, so the gradient of each product is the im2col (``F.unfold``) gather of the output
+    gradient with the same kernel, stride, padding and dilation (the adjoint of col2im)."""
+    one_d = len(module.kernel_size) == 1
+    if g.dim() == (2 if one_d else 3):
+        g = g.unsqueeze(0)  # unbatched
+    lift = (lambda t, fill: (fill, *t)) if one_d else (lambda t, fill: tuple(t))  # 1-D as a (1, L) image
+    cols = F.unfold(g.unsqueeze(2) if one_d else g, lift(module.kernel_size, 1), dilation=lift(module.dilation, 1),
+                    padding=lift(module.padding, 0), stride=lift(module.stride, 1))  # (B, out * k, L)
+    return cols.transpose(1, 2).reshape(-1, cols.shape[1])
+
+
+def _output_rows(kind: str, g: torch.Tensor, mask: torch.Tensor | None, module: nn.Module | None = None
+                 ) -> torch.Tensor:
     """A site's output (or its gradient) as rows of length m: conv (B, m, *spatial) -> (B * positions, m)."""
-    if kind in ("conv1d", "conv2d"):
-        if g.dim() == (3 if kind == "conv1d" else 4):
+    if kind.startswith("conv_transpose"):
+        return _transpose_output_rows(module, g)
+    if kind in ("conv1d", "conv2d", "conv3d"):
+        if g.dim() == {"conv1d": 3, "conv2d": 4, "conv3d": 5}[kind]:
             g = g.movedim(1, -1)  # channels last
         else:
             g = g.movedim(0, -1)  # unbatched
@@ -106,6 +123,7 @@ def collect_output_grams(
     gen = torch.Generator().manual_seed(seed)
     bar = tqdm(total=len(batch_list), desc="output weights", unit="batch", disable=not progress, leave=False)
     kinds = {s.name: s.kind for s in site_list}
+    modules = {s.name: get_module(model, s.name) for s in site_list}
     try:
         with forward_hooks(model, {s.name: hook_for(s.name) for s in site_list}), _grad_on(model):
             for i, batch in enumerate(batch_list):
@@ -139,7 +157,7 @@ def collect_output_grams(
                             j += 1
                             if g is None:
                                 continue
-                            r = _output_rows(kinds[n], g.detach(), mask).to(torch.float64).cpu()  # (rows, m)
+                            r = _output_rows(kinds[n], g.detach(), mask, modules[n]).to(torch.float64).cpu()  # (rows, m)
                             _check_finite(r, n, i)
                             grams[n].addmm_(r.T, r)
                             if k == 0:

@@ -7,10 +7,17 @@ alike:
 kind           module                           matrix view (m x n)
 =============  ===============================  ====================================================
 linear         ``nn.Linear``                    ``weight`` (out_features x in_features)
-conv1d/conv2d  ``nn.Conv1d`` / ``nn.Conv2d``    ``weight.reshape(out, in * prod(kernel))``, groups=1
+conv1d/2d/3d   ``nn.Conv1d`` / ``2d`` / ``3d``     ``weight.reshape(out, in * prod(kernel))``, groups=1
+conv_transpose ``nn.ConvTranspose1d`` / ``2d``  ``weight.reshape(in, out * prod(kernel)).T``, groups=1
+ 1d/2d                                           (out * prod(kernel) x in; see below)
 embedding      ``nn.Embedding``                 ``weight.T`` (embedding_dim x num_embeddings)
 transposed     leaf with a transposed weight    ``weight.T`` (see :func:`is_transposed_projection`)
 =============  ===============================  ====================================================
+
+A transposed convolution stores its weight as (in, out, *kernel) and scatters ``weight[i] * x[i, p]`` around
+each input position p. Its matrix view is therefore the (out * prod(kernel)) x in matrix applied to the channel
+vector of each input position: a rank-r factorisation of it is a 1x1 convolution from ``in`` to r channels (A)
+followed by a transposed convolution from r channels (B), which reproduces the layer exactly at full rank.
 
 Storing the m x n matrix costs mn numbers; rank-r factors cost r(m + n), so factoring saves only when
 r < mn / (m + n) (common practice). ``break_even`` is floor(mn / (m + n)) -- no rank above it saves.
@@ -27,7 +34,9 @@ from torch import nn
 
 from factorize.errors import FactorizeError
 
-KINDS = ("linear", "conv1d", "conv2d", "embedding", "transposed")
+CONV_KINDS = ("conv1d", "conv2d", "conv3d")
+CONV_TRANSPOSE_KINDS = ("conv_transpose1d", "conv_transpose2d")
+KINDS = ("linear", *CONV_KINDS, *CONV_TRANSPOSE_KINDS, "embedding", "transposed")
 
 
 @dataclass(frozen=True)
@@ -114,7 +123,7 @@ class WalkResult:
         raise FactorizeError(
             "no factorizable layer found" + (" matching the include/exclude patterns" if filtered else ""),
             [f"{s.name}: {s.reason}" for s in self.skipped],
-            fix="factorize handles nn.Linear, nn.Conv1d/2d (groups=1), nn.Embedding and transposed projections; "
+            fix="factorize handles nn.Linear, nn.Conv1d/2d/3d and nn.ConvTranspose1d/2d (groups=1), nn.Embedding and transposed projections; "
             "check the include/exclude globs against model.named_modules()",
         )
 
@@ -170,12 +179,8 @@ def _kind_of(module: nn.Module) -> tuple[str | None, str | None]:
         return None, reason
     if isinstance(module, nn.Linear):
         return "linear", None
-    if isinstance(module, (nn.Conv1d, nn.Conv2d)):
-        if module.groups != 1:
-            return None, f"grouped convolution (groups={module.groups}) has no single matrix view; left dense"
-        return ("conv1d" if isinstance(module, nn.Conv1d) else "conv2d"), None
     if isinstance(module, nn.modules.conv._ConvNd):
-        return None, f"{type(module).__name__} is not supported (only Conv1d and Conv2d); left dense"
+        return _conv_kind(module)
     if isinstance(module, nn.Embedding):
         if module.max_norm is not None:
             return None, "embedding with max_norm renormalises rows at lookup; left dense"
@@ -194,9 +199,24 @@ def _kind_of(module: nn.Module) -> tuple[str | None, str | None]:
     return None, None
 
 
+_CONV_CLASSES = {nn.Conv1d: "conv1d", nn.Conv2d: "conv2d", nn.Conv3d: "conv3d",
+                 nn.ConvTranspose1d: "conv_transpose1d", nn.ConvTranspose2d: "conv_transpose2d"}
+
+
+def _conv_kind(module: nn.Module) -> tuple[str | None, str | None]:
+    kind = next((k for cls, k in _CONV_CLASSES.items() if isinstance(module, cls)), None)
+    if kind is None:
+        return None, (f"{type(module).__name__} is not supported (Conv1d/2d/3d and ConvTranspose1d/2d are); "
+                      "left dense")
+    if module.groups != 1:
+        return None, (f"grouped convolution (groups={module.groups}): its weight is {module.groups} independent "
+                      "per-group blocks, not one matrix, and factorize builds no per-group structure; left dense")
+    return kind, None
+
+
 def _unsafe(module: nn.Module) -> str | None:
     """Why a layer of a kind we handle still cannot be factored safely, or None."""
-    if not isinstance(module, (nn.Linear, nn.Embedding, nn.Conv1d, nn.Conv2d)):
+    if not isinstance(module, (nn.Linear, nn.Embedding, *_CONV_CLASSES)):
         return None
     weight = module._parameters.get("weight")
     if "parametrizations" in module._modules or weight is None:
@@ -211,8 +231,10 @@ def matrix_of(module: nn.Module, kind: str) -> torch.Tensor:
     w = module.weight
     if kind == "linear":
         return w  # (m, n)
-    if kind in ("conv1d", "conv2d"):
+    if kind in CONV_KINDS:
         return w.reshape(w.shape[0], -1)  # (out, in * prod(kernel))
+    if kind in CONV_TRANSPOSE_KINDS:
+        return w.reshape(w.shape[0], -1).t()  # stored (in, out, *kernel) -> (out * prod(kernel), in)
     if kind in ("embedding", "transposed"):
         return w.t()  # embedding: (dim, vocab); transposed: stored (in, out) -> (out, in)
     raise ValueError(f"unknown kind {kind!r}")
@@ -321,7 +343,7 @@ def _uncovered(model: nn.Module, found: WalkResult, include_p, exclude_p) -> lis
 def _make_site(name: str, module: nn.Module, kind: str, owners: dict[int, list[str]]) -> Site:
     w = module.weight
     m, n = matrix_of(module, kind).shape
-    kernel = tuple(module.kernel_size) if kind in ("conv1d", "conv2d") else ()
+    kernel = tuple(module.kernel_size) if kind in CONV_KINDS + CONV_TRANSPOSE_KINDS else ()
     tied = tuple(o for o in owners.get(id(w), []) if o != name)
     bias = getattr(module, "bias", None)
     return Site(

@@ -4,9 +4,14 @@ The weight matrix view W (m x n) of the original (see :mod:`factorize.model.site
 with B (m x r), A (r x n), held by two stock torch layers, ``first`` (A) and ``second`` (B and the original bias):
 
 * linear / transposed projection: ``Linear(n -> r, no bias)`` then ``Linear(r -> m, original bias)``;
-* conv1d / conv2d: a conv with the original kernel, stride, padding and dilation to r channels, then a 1x1 conv
-  to the output channels with the original bias (channel decomposition: Zhang, Zou, He & Sun, "Accelerating very
-  deep convolutional networks for classification and detection", TPAMI 2016);
+* conv1d / conv2d / conv3d: a conv with the original kernel, stride, padding and dilation to r channels, then a
+  1x1(x1) conv to the output channels with the original bias (channel decomposition: Zhang, Zou, He & Sun,
+  "Accelerating very deep convolutional networks for classification and detection", TPAMI 2016);
+* conv_transpose1d / 2d (matrix view: the (out * prod(kernel)) x in matrix applied to each input position's
+  channel vector, see :mod:`factorize.model.sites`): a 1x1 conv from the input channels to r channels (A), then a
+  transposed conv from r channels with the original kernel, stride, padding, output_padding and dilation and the
+  original bias (B, stored (r, out, *kernel)). A pointwise map commutes with the scatter of the transposed conv,
+  so at full rank the pair computes the original layer exactly;
 * embedding: ``Embedding(V, r)`` holding ``A^T`` then ``Linear(r -> d, no bias)`` holding ``B``.
 
 The state-dict keys are always ``<name>.first.weight``, ``<name>.second.weight`` and ``<name>.second.bias``
@@ -26,7 +31,8 @@ MobileNetV2 reads ``conv.stride``, Whisper reads ``embed_positions.weight``. So 
 
 Two forms, chosen by :func:`build_factored`:
 
-* **swapped** (the class is exactly ``nn.Linear``, ``nn.Conv1d``, ``nn.Conv2d``, ``nn.Embedding``, or a transposed
+* **swapped** (the class is exactly ``nn.Linear``, ``nn.Conv1d``/``2d``/``3d``, ``nn.ConvTranspose1d``/``2d``,
+  ``nn.Embedding``, or a transposed
   projection whose forward the walker probed): a :class:`Factored` module replaces it and runs the two thin
   layers, which is where the savings in time come from;
 * **in place** (a subclass, e.g. Whisper's positional embedding called with an extra keyword, or
@@ -46,9 +52,12 @@ import copy
 import torch
 from torch import nn
 
-from factorize.model.sites import matrix_of
+from factorize.model.sites import CONV_KINDS, CONV_TRANSPOSE_KINDS, matrix_of
 
-_STOCK = {"linear": nn.Linear, "conv1d": nn.Conv1d, "conv2d": nn.Conv2d, "embedding": nn.Embedding}
+_STOCK = {"linear": nn.Linear, "conv1d": nn.Conv1d, "conv2d": nn.Conv2d, "conv3d": nn.Conv3d,
+          "conv_transpose1d": nn.ConvTranspose1d, "conv_transpose2d": nn.ConvTranspose2d, "embedding": nn.Embedding}
+_CONV = {"conv1d": nn.Conv1d, "conv2d": nn.Conv2d, "conv3d": nn.Conv3d, "conv_transpose1d": nn.Conv1d,
+         "conv_transpose2d": nn.Conv2d}  # the class of ``first`` for convolutions
 _DENSE_KEYS = ("weight", "bias")
 
 
@@ -75,6 +84,8 @@ class Factored(nn.Module):
 
     def factor_b(self) -> torch.Tensor:
         """B (m x r)."""
+        if self.kind in CONV_TRANSPOSE_KINDS:
+            return self.second.weight.reshape(self.second.weight.shape[0], -1).t()  # (r, out, *k) -> (out * k, r)
         return self.second.weight.reshape(self.second.weight.shape[0], -1)  # 1x1 conv: (m, r, 1[,1]) -> (m, r)
 
     def factor_a(self) -> torch.Tensor:
@@ -94,8 +105,10 @@ class Factored(nn.Module):
         W = self.product()
         if self.kind in ("embedding", "transposed"):
             return W.t()  # embedding (V, d); transposed projection stored (in, out)
-        if self.kind in ("conv1d", "conv2d"):
+        if self.kind in CONV_KINDS:
             return W.reshape(W.shape[0], *self.first.weight.shape[1:])  # (out, in, *kernel)
+        if self.kind in CONV_TRANSPOSE_KINDS:
+            return W.t().reshape(W.shape[1], *self.second.weight.shape[1:])  # (in, out, *kernel)
         return W
 
     @property
@@ -111,8 +124,9 @@ class Factored(nn.Module):
         original = self.__dict__.get("_original")
         return type(original) if original is not None else _STOCK.get(self.kind, nn.Linear)
 
-    def forward(self, input: torch.Tensor) -> torch.Tensor:  # noqa: A002 - the stock layers' argument name
-        return self.second(self.first(input))
+    def forward(self, input: torch.Tensor, *args, **kwargs) -> torch.Tensor:  # noqa: A002 - stock argument name
+        """The two thin layers; extra arguments (a transposed conv's ``output_size``) go to ``second``."""
+        return self.second(self.first(input), *args, **kwargs)
 
     def __getattr__(self, name: str):
         try:
@@ -141,11 +155,16 @@ def _derived_attributes(layer: Factored) -> dict:
         return {"num_embeddings": first.num_embeddings, "embedding_dim": second.out_features,
                 "padding_idx": first.padding_idx, "max_norm": None, "norm_type": 2.0,
                 "scale_grad_by_freq": first.scale_grad_by_freq, "sparse": first.sparse}
-    if layer.kind in ("conv1d", "conv2d"):
+    if layer.kind in CONV_KINDS:
         return {"in_channels": first.in_channels, "out_channels": second.out_channels,
                 "kernel_size": first.kernel_size, "stride": first.stride, "padding": first.padding,
                 "dilation": first.dilation, "groups": 1, "padding_mode": first.padding_mode,
                 "transposed": False, "output_padding": first.output_padding}
+    if layer.kind in CONV_TRANSPOSE_KINDS:
+        return {"in_channels": first.in_channels, "out_channels": second.out_channels,
+                "kernel_size": second.kernel_size, "stride": second.stride, "padding": second.padding,
+                "dilation": second.dilation, "groups": 1, "padding_mode": second.padding_mode,
+                "transposed": True, "output_padding": second.output_padding}
     out = {"in_features": first.in_features, "out_features": second.out_features}
     if layer.kind == "transposed":
         out.update(nx=first.in_features, nf=second.out_features)
@@ -160,7 +179,7 @@ _IN_PLACE_BASE: dict[type, type] = {}
 
 
 def _stock_base(cls: type) -> type | None:
-    for base in (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Embedding):
+    for base in (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d, nn.ConvTranspose1d, nn.ConvTranspose2d, nn.Embedding):
         if issubclass(cls, base):
             return base
     return None
@@ -171,7 +190,7 @@ def _keeps_stock_forward(cls: type) -> bool:
     base = _stock_base(cls)
     if base is None or cls.forward is not base.forward:
         return False
-    return not issubclass(cls, nn.modules.conv._ConvNd) or cls._conv_forward is base._conv_forward
+    return getattr(cls, "_conv_forward", None) is getattr(base, "_conv_forward", None)
 
 
 def _new_in_place(base: type) -> nn.Module:
@@ -241,13 +260,20 @@ def _make_factors(module: nn.Module, kind: str, rank: int) -> tuple[nn.Module, n
     if kind in ("linear", "transposed"):
         _, n = matrix_of(module, kind).shape
         first, second = _empty_like_linear(n, rank, False, w), _empty_like_linear(rank, m, has_bias, w)
-    elif kind in ("conv1d", "conv2d"):
-        conv = nn.Conv1d if kind == "conv1d" else nn.Conv2d
+    elif kind in CONV_KINDS:
+        conv = _CONV[kind]
         first = conv(
             module.in_channels, rank, module.kernel_size, stride=module.stride, padding=module.padding,
             dilation=module.dilation, bias=False, padding_mode=module.padding_mode, device=w.device, dtype=w.dtype,
         )
         second = conv(rank, module.out_channels, 1, bias=has_bias, device=w.device, dtype=w.dtype)
+    elif kind in CONV_TRANSPOSE_KINDS:
+        first = _CONV[kind](module.in_channels, rank, 1, bias=False, device=w.device, dtype=w.dtype)
+        second = _STOCK[kind](
+            rank, module.out_channels, module.kernel_size, stride=module.stride, padding=module.padding,
+            output_padding=module.output_padding, dilation=module.dilation, bias=has_bias, device=w.device,
+            dtype=w.dtype,
+        )
     elif kind == "embedding":
         first = nn.Embedding(
             module.num_embeddings, rank, padding_idx=module.padding_idx, scale_grad_by_freq=module.scale_grad_by_freq,
@@ -296,7 +322,10 @@ def fill_factors(layer: Factored, B: torch.Tensor, A: torch.Tensor, bias: torch.
         first.weight.copy_(A.t())  # (V, r); a zero padding row of W stays (numerically) zero in A^T
     else:
         first.weight.copy_(A.reshape(first.weight.shape))  # (r, n) or (r, in, *k)
-    second.weight.copy_(B.reshape(second.weight.shape))  # (m, r) or (m, r, 1[, 1])
+    if layer.kind in CONV_TRANSPOSE_KINDS:
+        second.weight.copy_(B.t().reshape(second.weight.shape))  # (out * k, r) -> (r, out, *kernel)
+    else:
+        second.weight.copy_(B.reshape(second.weight.shape))  # (m, r) or (m, r, 1[, 1[, 1]])
     if bias is not None:
         second.bias.copy_(bias)
 
@@ -355,10 +384,13 @@ def _stock_dense(layer: Factored, W: torch.Tensor, ref: torch.Tensor) -> nn.Modu
     if layer.kind in ("linear", "transposed"):
         W = W.t() if layer.kind == "transposed" else W
         dense = nn.Linear(W.shape[1], W.shape[0], bias=bias is not None, **kw)
-    elif layer.kind in ("conv1d", "conv2d"):
-        conv = nn.Conv1d if layer.kind == "conv1d" else nn.Conv2d
-        dense = conv(f.in_channels, W.shape[0], f.kernel_size, stride=f.stride, padding=f.padding,
-                     dilation=f.dilation, bias=bias is not None, padding_mode=f.padding_mode, **kw)
+    elif layer.kind in CONV_KINDS:
+        dense = _CONV[layer.kind](f.in_channels, W.shape[0], f.kernel_size, stride=f.stride, padding=f.padding,
+                                  dilation=f.dilation, bias=bias is not None, padding_mode=f.padding_mode, **kw)
+    elif layer.kind in CONV_TRANSPOSE_KINDS:
+        s = layer.second
+        dense = _STOCK[layer.kind](f.in_channels, s.out_channels, s.kernel_size, stride=s.stride, padding=s.padding,
+                                   output_padding=s.output_padding, dilation=s.dilation, bias=bias is not None, **kw)
     else:  # embedding
         dense = nn.Embedding(f.num_embeddings, W.shape[1], padding_idx=f.padding_idx,
                              scale_grad_by_freq=f.scale_grad_by_freq, sparse=f.sparse, **kw)

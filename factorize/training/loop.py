@@ -86,7 +86,7 @@ def factored_spectrum(layer: Factored, *, precision: str | None = None) -> Spect
 
 def _factored_site(name: str, layer: Factored) -> Site:
     m, n = int(layer.factor_b().shape[0]), int(layer.factor_a().shape[1])
-    kernel = tuple(layer.first.kernel_size) if layer.kind in ("conv1d", "conv2d") else ()
+    kernel = tuple(layer.kernel_size) if layer.kind.startswith("conv") else ()
     return Site(name=name, kind=layer.kind, shape=(m, n), params=m * n, has_bias=layer.second.bias is not None,
                 dtype=str(layer.second.weight.dtype).removeprefix("torch."), kernel=kernel)
 
@@ -104,7 +104,12 @@ def _lower_rank(layer: Factored, B: torch.Tensor, A: torch.Tensor) -> Factored:
     elif isinstance(first, nn.Linear):  # linear and transposed
         new_first = nn.Linear(first.in_features, r, bias=False, **like)
         new_second = nn.Linear(r, second.out_features, bias=has_bias, **like)
-    else:  # conv1d / conv2d
+    elif layer.kind.startswith("conv_transpose"):  # 1x1 conv to r channels, then the transposed conv
+        new_first = type(first)(first.in_channels, r, 1, bias=False, **like)
+        new_second = type(second)(r, second.out_channels, second.kernel_size, stride=second.stride,
+                                  padding=second.padding, output_padding=second.output_padding,
+                                  dilation=second.dilation, bias=has_bias, **like)
+    else:  # conv1d / conv2d / conv3d
         new_first = type(first)(first.in_channels, r, first.kernel_size, stride=first.stride, padding=first.padding,
                                 dilation=first.dilation, bias=False, padding_mode=first.padding_mode, **like)
         new_second = type(second)(r, second.out_channels, 1, bias=has_bias, **like)

@@ -208,3 +208,42 @@ def test_statistics_that_would_not_fit_are_refused_before_allocating(monkeypatch
     check_memory({"a": 10, "b": 20}, "input statistics", limit=30)  # exactly at the limit: allowed
     with pytest.raises(FactorizeError, match="a: 21 B"):
         check_memory({"a": 21, "b": 10}, "input statistics", limit=30)
+
+
+def test_conv3d_patches_reproduce_the_convolution():
+    # im2col identity (common practice) in 3-D: trace(W C W^T) equals the squared norm of (conv output - bias).
+    torch.manual_seed(5)
+    model = nn.Sequential(nn.Conv3d(2, 4, (3, 2, 2), stride=(1, 2, 1), padding=(1, 0, 1), dilation=(2, 1, 1)))
+    x = torch.randn(2, 2, 6, 5, 5, dtype=torch.float64)
+    model = model.double()
+    stats = collect_stats(model, None, [x])
+    W = matrix_of(model[0], "conv3d").detach()
+    y = model(x).detach() - model[0].bias.detach().reshape(1, -1, 1, 1, 1)
+    assert stats["0"].count == y.shape[0] * int(np.prod(y.shape[2:]))
+    torch.testing.assert_close(torch.trace(W @ stats["0"].second_moment @ W.T), (y**2).sum(), rtol=1e-9, atol=1e-9)
+    torch.testing.assert_close(W @ stats["0"].mean, y.transpose(0, 1).reshape(4, -1).mean(1), rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize("layer,x", [
+    (nn.ConvTranspose1d(3, 4, 3, stride=2, padding=1, output_padding=1, dilation=2), torch.randn(2, 3, 7)),
+    (nn.ConvTranspose2d(3, 2, (3, 2), stride=(2, 3), padding=(1, 0), output_padding=(1, 2)), torch.randn(2, 3, 4, 5)),
+])
+def test_conv_transpose_rows_and_output_rows(layer, x):
+    # A transposed conv is col2im (F.fold) of the matrix view applied to each input position (torch docs: it is
+    # the gradient of a conv); the output-gradient rows must be the adjoint gather: <g, y> = <rows(g), M X>.
+    from factorize.calibrated.gradients import _output_rows
+    from factorize.calibrated.stats import input_rows
+
+    torch.manual_seed(6)
+    layer, x = layer.double(), x.double()
+    kind = "conv_transpose1d" if isinstance(layer, nn.ConvTranspose1d) else "conv_transpose2d"
+    M = matrix_of(layer, kind).detach()  # (out * k, in)
+    rows = input_rows(layer, kind, x)  # (B * L, in)
+    y = layer(x).detach() - layer.bias.detach().reshape(1, -1, *([1] * (x.dim() - 2)))
+    contributions = rows @ M.T  # (B * L, out * k)
+    g = torch.randn_like(y)
+    g_rows = _output_rows(kind, g, None, layer)
+    assert g_rows.shape == contributions.shape
+    torch.testing.assert_close((g_rows * contributions).sum(), (g * y).sum(), rtol=1e-9, atol=1e-9)
+    stats = collect_stats(nn.Sequential(layer), None, [x])
+    torch.testing.assert_close(stats["0"].second_moment, rows.T @ rows, rtol=1e-9, atol=1e-9)

@@ -71,7 +71,18 @@ def measure(name: str) -> dict:
     row["merge_keys"] = list(merged.state_dict()) == list(model.state_dict())
     row["merge_max_error"] = float((_out(merged, batch) - ref).abs().max())
     row["uncovered"] = uncovered_weights(model)
+    row["save_load_exact"] = _save_load_exact(name, compressed, batch)
     return row
+
+
+def _save_load_exact(name: str, compressed, batch) -> bool:
+    """factorize.save, then factorize.load into a fresh instance of the same architecture: outputs equal."""
+    import tempfile
+
+    with tempfile.TemporaryDirectory() as tmp:
+        path = factorize.save(compressed.model, Path(tmp) / "m.safetensors", plan=compressed.plan)
+        fresh = factorize.load(build(name)[0], path)
+    return bool(torch.equal(_out(fresh, batch), _out(compressed.model, batch)))
 
 
 FAST = [n for n, (_, _, fast) in ZOO.items() if fast]
@@ -87,6 +98,7 @@ def _check(name: str) -> None:
     assert row["merge_class"] and row["merge_keys"], row
     assert row["merge_max_error"] < TOL, row
     assert row["uncovered"] == [], row
+    assert row["save_load_exact"], row
 
 
 @pytest.mark.parametrize("name", FAST)
@@ -102,14 +114,15 @@ def test_model_runs_reproduces_and_merges_slow(name):
 
 def table() -> str:
     lines = ["| model | sites | skipped | runs after compress(budget=0.5) | kept | full-rank max error | "
-             "merge restores classes and keys | every weight matrix covered |",
-             "| --- | ---: | ---: | --- | ---: | ---: | --- | --- |"]
+             "merge restores classes and keys | every weight matrix covered | save/load exact |",
+             "| --- | ---: | ---: | --- | ---: | ---: | --- | --- | --- |"]
     for name in ZOO:
         r = measure(name)
         lines.append(f"| {name} | {r['sites']} | {r['skipped']} | {'yes' if r['runs'] else 'NO: ' + r['run_error']} | "
                      f"{r['kept']} | {r['full_rank_max_error']:.1e} | "
                      f"{'yes' if r['merge_class'] and r['merge_keys'] else 'NO'} | "
-                     f"{'yes' if not r['uncovered'] else 'NO: ' + ', '.join(r['uncovered'])} |")
+                     f"{'yes' if not r['uncovered'] else 'NO: ' + ', '.join(r['uncovered'])} | "
+                     f"{'yes' if r['save_load_exact'] else 'NO'} |")
     return "\n".join(lines)
 
 

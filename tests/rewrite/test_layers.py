@@ -35,6 +35,17 @@ CASES = [
     ("conv1d", lambda: nn.Conv1d(5, 7, 4, stride=2, padding=1), lambda: torch.randn(3, 5, 20)),
     ("embedding", lambda: nn.Embedding(30, 6, padding_idx=0), lambda: torch.randint(0, 30, (4, 5))),
     ("transposed", _transposed, lambda: torch.randn(3, 9)),
+    ("conv3d", lambda: nn.Conv3d(3, 8, 3, stride=2, padding=1), lambda: torch.randn(2, 3, 7, 7, 7)),
+    ("conv3d", lambda: nn.Conv3d(4, 5, (3, 2, 2), padding=(2, 1, 0), dilation=(2, 1, 1), bias=False),
+     lambda: torch.randn(1, 4, 6, 5, 5)),
+    ("conv3d", lambda: nn.Conv3d(2, 3, 2, padding=1, padding_mode="circular"), lambda: torch.randn(2, 5, 4, 4)),
+    ("conv_transpose1d", lambda: nn.ConvTranspose1d(6, 4, 3, stride=2, padding=1, output_padding=1),
+     lambda: torch.randn(3, 6, 11)),
+    ("conv_transpose1d", lambda: nn.ConvTranspose1d(5, 9, 4, dilation=2, bias=False), lambda: torch.randn(2, 5, 7)),
+    ("conv_transpose2d", lambda: nn.ConvTranspose2d(8, 3, 4, stride=2, padding=1), lambda: torch.randn(2, 8, 5, 5)),
+    ("conv_transpose2d", lambda: nn.ConvTranspose2d(3, 7, (3, 2), stride=(3, 2), padding=(1, 0),
+                                                    output_padding=(2, 1), dilation=(1, 2)),
+     lambda: torch.randn(1, 3, 4, 6)),
 ]
 
 
@@ -110,6 +121,12 @@ DROP_IN = [
     ("conv1d", lambda: nn.Conv1d(5, 7, 4, stride=2, padding=1), ("stride", "padding", "kernel_size")),
     ("embedding", lambda: nn.Embedding(30, 6, padding_idx=0), ("num_embeddings", "embedding_dim", "padding_idx")),
     ("transposed", _transposed, ("nf", "nx")),
+    ("conv3d", lambda: nn.Conv3d(3, 8, 3, stride=2, padding=1), ("in_channels", "out_channels", "kernel_size",
+                                                                  "stride", "padding", "dilation", "groups")),
+    ("conv_transpose1d", lambda: nn.ConvTranspose1d(6, 4, 3, stride=2, padding=1, output_padding=1),
+     ("in_channels", "out_channels", "kernel_size", "stride", "padding", "output_padding", "transposed")),
+    ("conv_transpose2d", lambda: nn.ConvTranspose2d(8, 3, 4, stride=2, padding=1, dilation=2),
+     ("in_channels", "out_channels", "kernel_size", "stride", "padding", "dilation", "groups")),
 ]
 
 
@@ -195,3 +212,70 @@ def test_multihead_attention_and_fused_encoder_path_run_with_factored_layers():
     with torch.no_grad():
         torch.testing.assert_close(enc(x), ref, rtol=1e-4, atol=1e-4)
     assert enc.train()(x).shape == ref.shape  # the unfused path too
+
+
+def test_conv_transpose_keeps_output_size_argument():
+    # torch's ConvTranspose forward takes output_size to resolve the ambiguity of a strided transpose (torch docs).
+    torch.manual_seed(0)
+    up = nn.ConvTranspose2d(4, 3, 3, stride=2, padding=1).double()
+    fac = _full_rank(up, "conv_transpose2d")
+    x = torch.randn(1, 4, 5, 5, dtype=torch.float64)
+    ref = up(x, output_size=[10, 10])
+    assert ref.shape[-2:] == (10, 10)
+    torch.testing.assert_close(fac(x, output_size=[10, 10]), ref, rtol=1e-10, atol=1e-10)
+
+
+class Upsample(nn.ConvTranspose1d):
+    """A subclass keeping the stock forward: factored in place, it still runs the two thin layers."""
+
+
+class Volume(nn.Conv3d):
+    """A subclass with its own forward: factored in place, it runs the dense op on the computed weight."""
+
+    def forward(self, x, scale=1.0):
+        return super().forward(x) * scale
+
+
+@pytest.mark.parametrize("make,kind,x", [
+    (lambda: Upsample(4, 6, 3, stride=2), "conv_transpose1d", lambda: torch.randn(2, 4, 9)),
+    (lambda: Volume(3, 4, 2), "conv3d", lambda: torch.randn(1, 3, 4, 4, 4)),
+])
+def test_new_conv_subclasses_are_factored_in_place_and_merge_back(make, kind, x):
+    torch.manual_seed(0)
+    layer, x = make().double(), x().double()
+    fac = _full_rank(layer, kind)
+    assert isinstance(fac, type(layer)) and is_factored(fac)
+    torch.testing.assert_close(fac(x), layer(x), rtol=1e-10, atol=1e-10)
+    dense = to_dense(fac)
+    assert type(dense) is type(layer) and list(dense.state_dict()) == list(layer.state_dict())
+    torch.testing.assert_close(dense(x), layer(x), rtol=1e-10, atol=1e-10)
+
+
+SAVE_LOAD = [
+    (lambda: nn.Sequential(nn.Conv3d(2, 6, 3, padding=1), nn.ReLU(), nn.Conv3d(6, 4, 2)),
+     lambda: torch.randn(2, 2, 5, 5, 5)),
+    (lambda: nn.Sequential(nn.ConvTranspose1d(6, 5, 4, stride=2, padding=1), nn.ReLU(),
+                           nn.ConvTranspose1d(5, 3, 3, output_padding=0)),
+     lambda: torch.randn(2, 6, 8)),
+    (lambda: nn.Sequential(nn.ConvTranspose2d(6, 5, 4, stride=2, padding=1), nn.ReLU(),
+                           nn.ConvTranspose2d(5, 3, 3, stride=2, output_padding=1)),
+     lambda: torch.randn(2, 6, 4, 4)),
+]
+
+
+@pytest.mark.parametrize("make,inputs", SAVE_LOAD)
+def test_new_conv_kinds_save_load_exact(make, inputs, tmp_path):
+    # The file holds the factors; a fresh instance of the architecture must compute exactly what was saved.
+    import factorize
+
+    torch.manual_seed(0)
+    model, x = make(), inputs()
+    result = factorize.compress(model, budget=0.7)
+    assert result.plan["sites"] and any(e.get("action") == "factor" for e in result.plan["sites"].values())
+    path = factorize.save(result.model, tmp_path / "m.safetensors", plan=result.plan)
+    torch.manual_seed(1)
+    fresh = factorize.load(make(), path)
+    with torch.no_grad():
+        assert torch.equal(fresh(x), result.model(x))
+    merged = factorize.merge(fresh)
+    assert [type(m) for m in merged] == [type(m) for m in model]
