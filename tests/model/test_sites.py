@@ -106,16 +106,17 @@ def test_every_weight_matrix_is_a_site_or_skipped_with_a_reason():
             self.rnn = nn.GRU(8, 8)
             self.c3 = nn.Conv3d(2, 3, 3)
             self.up = nn.ConvTranspose2d(3, 2, 2)
+            self.grouped = nn.Conv2d(4, 4, 3, groups=2)
             self.table = nn.Parameter(torch.zeros(1, 4, 8))  # used directly by forward, e.g. a position table
             self.int_lin = nn.Linear(4, 4)
 
     m = Mixed()
     m.int_lin.weight = nn.Parameter(torch.zeros(4, 4, dtype=torch.int8), requires_grad=False)
     found = walk(m)
-    assert [s.name for s in found] == ["attn.out_proj"]
+    assert [s.name for s in found] == ["attn.out_proj", "c3", "up"]  # Conv3d and ConvTranspose2d are sites now
     reasons = {s.name: s.reason for s in found.skipped}
     assert "in_proj_weight" in reasons["attn"] and "weight_ih" in reasons["rnn"]
-    assert "Conv3d" in reasons["c3"] and "ConvTranspose2d" in reasons["up"] and "int8" in reasons["int_lin"]
+    assert "groups=2" in reasons["grouped"] and "int8" in reasons["int_lin"]
     assert "(1, 4, 8)" in reasons["table"]
     covered = {s.name for s in found} | set(reasons)
     for name, p in m.named_parameters():
