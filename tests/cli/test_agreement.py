@@ -8,13 +8,12 @@ import io
 import json
 
 import pytest
-from safetensors.torch import save_file
 
 from factorize.cli import main
 from factorize.cli.common import options
 from factorize.cli.parser import build_parser
 from factorize.cli.render import UI
-from factorize.default import load_digits_split
+from tests.cli.digits import write_digits_splits
 
 DIGITS = "factorize.default:load_default"
 
@@ -29,9 +28,7 @@ def _json(argv: list[str]) -> dict:
 @pytest.fixture(scope="module")
 def work(tmp_path_factory):
     d = tmp_path_factory.mktemp("agree")
-    for split in ("calibration", "test"):
-        x, y = load_digits_split(split)
-        save_file({"inputs": x.contiguous(), "labels": y.contiguous()}, str(d / f"{split}.safetensors"))
+    write_digits_splits(d)
     (d / "macs.toml").write_text('recipe = 1\ncost = "macs"\n[policy]\nbudget = 0.5\n')
     (d / "no_method.toml").write_text('recipe = 1\n[policy]\nbudget = 0.5\n')
     return d

@@ -7,10 +7,9 @@ import io
 import json
 
 import pytest
-from safetensors.torch import save_file
 
 from factorize.cli import main
-from factorize.default import load_digits_split
+from tests.cli.digits import write_digits_splits
 
 MODEL = "factorize.default:load_default"
 
@@ -24,9 +23,7 @@ def _run(argv):
 @pytest.fixture(scope="module")
 def data(tmp_path_factory):
     d = tmp_path_factory.mktemp("quality")
-    for split in ("calibration", "test"):
-        x, y = load_digits_split(split)
-        save_file({"inputs": x.contiguous(), "labels": y.contiguous()}, str(d / f"{split}.safetensors"))
+    write_digits_splits(d)
     return d
 
 
