@@ -45,7 +45,7 @@ def run(args, ui: UI) -> dict:
     report = evaluate(loaded.model, other, inputs.batches, labels=inputs.labels, plan=plan,
                       latency_repeats=repeats(args, 7), title="factorize compare",
                       model_name=f"{loaded.source} vs {args.against}", inputs=inputs.source, notes=inputs.notes,
-                      progress=ui.progress)
+                      progress=ui.progress, pooling=getattr(args, "pooling", None))
     if report_path is not None:
         write_text(report_path, report.to_markdown(), args.force)
     if not ui.json_mode:

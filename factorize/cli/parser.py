@@ -12,7 +12,13 @@ from collections.abc import Callable
 from typing import Any
 
 from factorize._version import __version__
-from factorize.choices import AWARE_METHODS, HEAL_SCHEDULES, METHODS, SENSITIVITY_MODES
+from factorize.choices import (
+    AWARE_METHODS,
+    HEAL_SCHEDULES,
+    METHODS,
+    POOLINGS,
+    SENSITIVITY_MODES,
+)
 
 PROG = "factorize"
 COMMANDS = ("scan", "shrink", "sweep", "compare", "export", "demo")
@@ -179,6 +185,9 @@ def _parents():
     g.add_argument("--repeats", type=int, default=None, metavar="N",
                    help="timed forward passes per model for the median latency (0: do not time)")
     g.add_argument("--seed", type=_seed, default=0, metavar="N", help="seed for random inputs and randomized SVD")
+    g.add_argument("--pooling", choices=POOLINGS,
+                   help="judge per-token outputs by one vector per sample: mean (over the attention mask, as sentence "
+                   "encoders embed), cls (first token) or last (last real token); default: the outputs as they are")
 
     policy = argparse.ArgumentParser(add_help=False)
     g = policy.add_argument_group("rank policy (one of --budget/--rank/--energy/--keep; default --budget 0.5)")

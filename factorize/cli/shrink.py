@@ -106,7 +106,8 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
     if inputs is not None:
         report = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
                           latency_repeats=repeats(args, 7), title="factorize shrink", model_name=loaded.source,
-                          inputs=inputs.source, notes=notes, progress=ui.progress)
+                          inputs=inputs.source, notes=notes, progress=ui.progress,
+                          pooling=getattr(args, "pooling", None))
         max_drift_check(args, report)
     else:
         report = Report(title="factorize shrink", model=loaded.source, params_before=count_parameters(loaded.model),

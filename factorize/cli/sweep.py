@@ -92,7 +92,7 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
         if inputs is not None:
             rep = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
                            latency_repeats=repeats(args, 0), model_name=loaded.source, inputs=inputs.source,
-                           memo=memo)
+                           memo=memo, pooling=getattr(args, "pooling", None))
             row.update({k: rep.drift.get(k) for k in DRIFT_KEYS})
             row.update({k: getattr(rep, k) for k in REPORT_KEYS})
         else:

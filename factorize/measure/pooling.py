@@ -16,9 +16,8 @@ from typing import Any
 
 import torch
 
+from factorize.choices import POOLINGS
 from factorize.errors import FactorizeError
-
-POOLINGS = ("mean", "cls", "last")
 
 
 def pool(states: torch.Tensor, batch: Any, how: str) -> torch.Tensor:

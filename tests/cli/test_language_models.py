@@ -58,3 +58,20 @@ def test_text_inputs_for_a_model_without_tokenizer_is_a_clear_error(tmp_path):
     rc = main(["shrink", "-m", "factorize.default:load_default", "--inputs", str(tmp_path / "t.txt"), "-o", str(tmp_path / "o.safetensors"), "--json"],
               stdout=out, stderr=err)
     assert rc == 2 and "need a tokenizer" in json.loads(out.getvalue())["error"]
+
+
+def test_pooling_option_judges_the_pooled_output(tmp_path):
+    # the same compression judged on token states and on the last real token's state gives two different drifts
+    # (evaluate(pooling=...) itself is checked against hand-computed pooling in tests/measure/test_pooling.py)
+    d = _lm_dir(tmp_path)
+    base = ["shrink", "--model", str(d), "--inputs", str(tmp_path / "heldout.txt"), "--rank", "2", "--include",
+            "transformer.h.*", "--json", "-q", "--repeats", "0", "--force"]
+    reports = {}
+    for pooling in (None, "last"):
+        out, err = io.StringIO(), io.StringIO()
+        extra = ["--pooling", pooling] if pooling else []
+        rc = main([*base, "-o", str(tmp_path / f"{pooling}.safetensors"), *extra], stdout=out, stderr=err)
+        assert rc == 0, err.getvalue()
+        reports[pooling] = json.loads(out.getvalue())["report"]
+    assert reports["last"]["drift"]["relative_l2"] != pytest.approx(reports[None]["drift"]["relative_l2"])
+    assert reports["last"]["samples"] == reports[None]["samples"] == 12
