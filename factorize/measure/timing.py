@@ -27,13 +27,8 @@ def median_latency(
     machine hits both alike. Fewer multiply-accumulates do not always mean lower latency (common practice),
     which is why this is measured rather than derived. ``clock`` returns seconds, as :func:`time.perf_counter`.
     """
-    flags = (a.training, b.training)
-    a.eval(), b.eval()
-    try:
-        return paired_ms(lambda: (feed(a, batch), _sync(a)), lambda: (feed(b, batch), _sync(b)), repeats=repeats,
-                         clock=clock)
-    finally:
-        a.train(flags[0]), b.train(flags[1])
+    before, after = latency_spread(a, b, batch, repeats=repeats, clock=clock)
+    return before.median, after.median
 
 
 def paired_ms(
