@@ -34,7 +34,7 @@ from __future__ import annotations
 
 import copy
 import dataclasses
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
@@ -70,7 +70,7 @@ from factorize.model.count import count_parameters
 from factorize.model.feed import token_mask
 from factorize.model.sites import WalkResult, get_module, set_module, walk
 from factorize.plan.policy import Policy
-from factorize.plan.ranks import choose_ranks
+from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.rewrite.apply import CompressResult, apply_plan
 
 
@@ -421,7 +421,7 @@ def search_drift(
             search.points.append(DriftPoint(b, None, None, note=str(err).splitlines()[0]))
             return None
         d = measure_drift(reference, calib.build(plan), eval_batches, metric=metric, output_fn=output_fn)
-        search.points.append(DriftPoint(b, d, _kept_fraction(plan)))
+        search.points.append(DriftPoint(b, d, plan_summary(plan)["kept_fraction"]))
         plans[b] = plan
         return d
 
@@ -447,7 +447,7 @@ def search_drift(
         seq_plan = copy.deepcopy(plan)
         seq_model = calib.build(seq_plan, sequential=True, refit=options.refit, refit_ridge=options.refit_ridge)
         d_seq = measure_drift(reference, seq_model, eval_batches, metric=metric, output_fn=output_fn)
-        search.points.append(DriftPoint(good, d_seq, _kept_fraction(seq_plan), note="sequential"))
+        search.points.append(DriftPoint(good, d_seq, plan_summary(seq_plan)["kept_fraction"], note="sequential"))
         if d_seq <= search.drift:
             compressed, plan, search.drift = seq_model, seq_plan, d_seq
         else:  # keep the per-layer model, which was measured to meet the limit
@@ -472,12 +472,6 @@ def _check_search(max_drift, budgets, tolerance) -> tuple[float, float]:
     if problems:
         raise FactorizeError("invalid drift search", problems, fix="e.g. max_drift=0.1, budgets=(0.05, 0.95)")
     return lo, hi
-
-
-def _kept_fraction(plan: Mapping) -> float:
-    sites = plan["sites"].values()
-    before = sum(e["params"] for e in sites)
-    return sum(e["params_after"] for e in sites) / before if before else 1.0
 
 
 # ---------------------------------------------------------------------------------------------------------------

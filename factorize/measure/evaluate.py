@@ -40,6 +40,7 @@ from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size, primary_output, run_model, token_mask
 from factorize.model.hooks import forward_hooks
 from factorize.model.sites import Site, get_module, matrix_of
+from factorize.plan.ranks import plan_summary
 from factorize.rewrite.layers import Factored, factored_layers
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -164,10 +165,10 @@ def versions() -> dict:
 
 
 def _describe_plan(report: Report, plan: Mapping) -> None:
-    entries = [e for e in plan.get("sites", {}).values() if isinstance(e, Mapping)]
-    before = sum(int(e.get("params", 0)) for e in entries)
-    if before:
-        report.sites_kept = sum(int(e.get("params_after", e.get("params", 0))) for e in entries) / before
+    entries = plan.get("sites") or {}
+    if entries and all(isinstance(e, Mapping) and {"params", "params_after", "action"} <= set(e)
+                       for e in entries.values()):  # a hand-edited plan may lack the counts: then none is shown
+        report.sites_kept = plan_summary(plan)["kept_fraction"]
     report.method = str(plan.get("method", ""))
     calibration = plan.get("calibration")
     if isinstance(calibration, Mapping):
