@@ -39,8 +39,10 @@ def run(args, ui: UI) -> dict:
     with warnings.catch_warnings():  # said once, plainly, below: the split is smaller than two layers' widths
         warnings.filterwarnings("ignore", message="too few calibration samples")
         calib = Calibration(model, calibration, progress=ui.progress)  # the recommended call's statistics, once
-    ui.note("calibration: 256 digits, fewer than the 512 inputs of fc2 and fc3, so a small ridge stands in for the "
-            "input directions they do not show")
+    short = [n for n, st in calib.stats.items() if st.count < st.width]  # what the filtered warning would list
+    if short:
+        ui.note(f"calibration: {sum(len(b) for b in calibration)} digits, fewer than the inputs of "
+                f"{', '.join(short)}, so a small ridge stands in for the input directions they do not show")
     runs, plain = [], []
     for budget in sorted(set(args.budgets), reverse=True):
         runs.append(_measured(model, compress_from(calib, Policy(budget=budget)), budget, "calibrated", x, y,
