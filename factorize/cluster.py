@@ -26,7 +26,10 @@ from __future__ import annotations
 
 import re
 from collections.abc import Callable, Iterable, Sequence
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from typing_extensions import Self
 
 from factorize.errors import FactorizeError
 
@@ -34,9 +37,6 @@ INSTALL_FIX = "pip install 'factorize[cluster]' (it installs Dask distributed)"
 CONNECT_TIMEOUT = 10.0  # seconds to wait for a scheduler address to answer
 _LOCAL = re.compile(r"local:(\d+)")
 _ADDRESS = re.compile(r"(?:(tcp|tls|ucx|inproc)://)?(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):(\d{1,5})")
-
-
-_E = TypeVar("_E", bound="Engine")
 
 
 class TasksFailed(FactorizeError):
@@ -99,7 +99,7 @@ class Engine:
     def close(self) -> None:
         pass
 
-    def __enter__(self: _E) -> _E:
+    def __enter__(self) -> Self:
         return self
 
     def __exit__(self, *exc) -> None:

@@ -832,10 +832,17 @@ def stream_report(done: Mapping, source: str) -> Report:
                                   params_after=m * n if rank is None else rank * (m + n),
                                   weight_error=row.get("relative_error", 0.0 if rank is None else None),
                                   predicted_error=row.get("predicted_error")))
+    notes = [WEIGHTS_ONLY_NOTE]
+    where = done.get("engine") or {}
+    if where.get("engine", "local") != "local":
+        notes.append(f"ran as tasks on {where['engine']} at {where['address']} with {where['workers']} worker(s), "
+                     f"{where['threads_per_task']} torch thread(s) per task")
+    if done.get("redone"):
+        notes.append("redone after a worker was lost or an earlier run stopped part way: "
+                     + ", ".join(done["redone"]))
     return Report(title="factorize shrink (weights-only)", model=source, params_before=done["params_before"],
                   params_after=done["params_after"], bytes_before=done["bytes_before"],
-                  bytes_after=done["bytes_after"], layers=layers, policy=done["plan"]["policy"],
-                  notes=[WEIGHTS_ONLY_NOTE])
+                  bytes_after=done["bytes_after"], layers=layers, policy=done["plan"]["policy"], notes=notes)
 
 
 WEIGHTS_ONLY_NOTE = ("weights-only mode: there is no architecture to run, so output drift was not measured; load the "
