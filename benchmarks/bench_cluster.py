@@ -149,28 +149,31 @@ def table(runs: dict[str, list[dict]], label: str, args) -> str:
         return f"{kib / 1024:.0f}"
 
     first = cluster[0]
+    peaks = [max(r["worker_peaks_kib"][i] for r in cluster if len(r["worker_peaks_kib"]) > i)
+             for i in range(max(len(r["worker_peaks_kib"]) for r in cluster))]
+    source = f"--checkpoint {args.checkpoint}" if args.checkpoint else f"--scale {args.scale}"
     lines = [
         f"# Weights-only budget shrink: one process vs a Dask local cluster of {args.workers} workers",
         "",
-        f"Date: {dt.date.today()}. Machine: {platform.machine()}, {os.cpu_count()} visible cores, Python "
-        f"{platform.python_version()}; torch set to 1 thread in the single process and in every task.",
-        f"Checkpoint: {label}. Policy: budget {args.budget}, embedding excluded (not a linear layer) "
-        f"({first['factored']} of {first['matrices']} matrices factored). Runs: {args.repeat} of each, interleaved; "
-        "best wall time shown.",
+        (f"Date: {dt.date.today()}. Machine: {platform.machine()}, {os.cpu_count()} visible cores, Python "
+         f"{platform.python_version()}; torch set to 1 thread in the single process and in every task."),
+        (f"Checkpoint: {label}. Policy: budget {args.budget}, embedding excluded (not a linear layer) "
+         f"({first['factored']} of {first['matrices']} matrices factored). Runs: {args.repeat} of each, "
+         "interleaved; best wall time, highest peak memory shown."),
         "",
-        "| run | wall (s) | cluster start-up (s) | peak RSS, client / single process (MiB) | peak RSS per worker (MiB) |",
+        ("| run | wall (s) | cluster start-up (s) | peak RSS, client / single process (MiB) | "
+         "peak RSS per worker (MiB) |"),
         "| --- | ---: | ---: | ---: | --- |",
         f"| one process | {best['local']:.2f} | - | {mib(max(r['client_peak_kib'] for r in local))} | - |",
-        f"| local cluster, {args.workers} workers | {best['cluster']:.2f} | {first['startup_s']:.1f} | "
-        f"{mib(max(r['client_peak_kib'] for r in cluster))} | "
-        f"{', '.join(mib(k) for k in first['worker_peaks_kib'])} |",
+        (f"| local cluster, {args.workers} workers | {best['cluster']:.2f} | {first['startup_s']:.1f} | "
+         f"{mib(max(r['client_peak_kib'] for r in cluster))} | {', '.join(mib(k) for k in peaks)} |"),
         "",
-        f"Speed-up (one process / cluster): {best['local'] / best['cluster']:.2f} x. "
-        f"Outputs byte-identical across all runs: {'yes' if same else 'NO'}. "
-        f"Size: {local[0]['bytes_before'] / MB:.1f} MiB -> {local[0]['bytes_after'] / MB:.1f} MiB.",
+        (f"Speed-up (one process / cluster): {best['local'] / best['cluster']:.2f} x. "
+         f"Outputs byte-identical across all runs: {'yes' if same else 'NO'}. "
+         f"Size: {local[0]['bytes_before'] / MB:.1f} MiB -> {local[0]['bytes_after'] / MB:.1f} MiB."),
         "",
-        f"Reproduce: `python benchmarks/bench_cluster.py --scale {args.scale} --workers {args.workers} "
-        f"--budget {args.budget} --repeat {args.repeat}`",
+        (f"Reproduce: `python benchmarks/bench_cluster.py {source} --workers {args.workers} "
+         f"--budget {args.budget} --repeat {args.repeat}`"),
     ]
     return "\n".join(lines)
 

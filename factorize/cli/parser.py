@@ -12,7 +12,6 @@ from collections.abc import Callable
 from typing import Any
 
 from factorize._version import __version__
-from factorize.cluster import parse_cluster
 from factorize.choices import (
     AWARE_METHODS,
     HEAL_SCHEDULES,
@@ -20,6 +19,7 @@ from factorize.choices import (
     POOLINGS,
     SENSITIVITY_MODES,
 )
+from factorize.cluster import parse_cluster
 
 PROG = "factorize"
 COMMANDS = ("scan", "shrink", "sweep", "compare", "export", "demo")

@@ -16,7 +16,12 @@ from safetensors import safe_open
 
 from benchmarks.llama_checkpoint import write_llama_checkpoint
 from factorize.checkpoints import stream
-from factorize.checkpoints.stream import _ExitOnFirstAttempt, _Task, _values_task, shrink_checkpoint
+from factorize.checkpoints.stream import (
+    _ExitOnFirstAttempt,
+    _Task,
+    _values_task,
+    shrink_checkpoint,
+)
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
 
@@ -50,7 +55,7 @@ def _check_readable(directory: Path) -> None:
     index = json.loads((directory / "model.safetensors.index.json").read_text())
     for name, shard in index["weight_map"].items():
         with safe_open(str(directory / shard), framework="pt") as f:
-            assert name in f.keys()
+            assert name in f.keys()  # noqa: SIM118 - a safe_open handle, not a dict
 
 
 def test_budget_shrink_on_two_workers_equals_one_process_byte_for_byte(llama, reference, dask_engine, tmp_path):

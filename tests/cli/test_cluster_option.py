@@ -40,7 +40,7 @@ def _files(d):
 
 def test_cluster_address_gives_the_same_bytes_and_says_where_it_ran(ckpt, dask_engine, tmp_path):
     args = ["shrink", "-m", str(ckpt), "--budget", "0.5", "--exclude", "*embed_tokens*", "-q", "--json"]
-    rc, out, err = _run([*args, "-o", str(tmp_path / "here")])
+    rc, _, err = _run([*args, "-o", str(tmp_path / "here")])
     assert rc == 0, err
     rc, out, err = _run([*args, "-o", str(tmp_path / "there"), "--cluster", dask_engine.address,
                          "--report", str(tmp_path / "there.md")])
@@ -57,7 +57,7 @@ def test_a_scheduler_that_does_not_answer_exits_2_and_writes_nothing(ckpt, tmp_p
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]  # closed again: nothing listens there
-    rc, out, err = _run(["shrink", "-m", str(ckpt), "--budget", "0.5", "-o", str(tmp_path / "out"),
+    rc, _, err = _run(["shrink", "-m", str(ckpt), "--budget", "0.5", "-o", str(tmp_path / "out"),
                          "--report", str(tmp_path / "r.md"), "--cache", str(tmp_path / "cache"),
                          "--cluster", f"127.0.0.1:{port}"])
     assert rc == 2
