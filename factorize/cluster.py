@@ -25,6 +25,7 @@ This module is torch-free at import and imports ``distributed`` only when a clus
 from __future__ import annotations
 
 import re
+import uuid
 from collections.abc import Callable, Iterable, Sequence
 from typing import TYPE_CHECKING, Any
 
@@ -149,9 +150,9 @@ class DaskEngine(Engine):
         items = list(items)
         if not items:
             return []
-        futures = self.client.map(_Pinned(fn, self.threads), items, pure=False, key=[
-            f"factorize-{label}-{i}-{id(self):x}-{self._calls}" for i in range(len(items))])
-        self._calls += 1
+        token = uuid.uuid4().hex  # keys unique across clients of one scheduler: no two runs share a result
+        futures = self.client.map(_Pinned(fn, self.threads), items, pure=False,
+                                  key=[f"factorize-{label}-{i}-{token}" for i in range(len(items))])
         index = {f.key: i for i, f in enumerate(futures)}
         results: list[Any] = [None] * len(items)
         lost: list[int] = []
@@ -178,8 +179,6 @@ class DaskEngine(Engine):
             raise TasksFailed(f"{len(lost)} of {len(items)} {label} never finished: the cluster gave up on them after "
                               f"their worker died repeatedly ({causes[0]})", sorted(lost))
         return results
-
-    _calls = 0
 
     def close(self) -> None:
         if self.owned:

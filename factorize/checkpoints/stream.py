@@ -19,6 +19,13 @@ the singular values (k floats per layer) and the second decomposes again to get 
 decomposition is the price of bounded memory; with ``cache_dir`` the first pass stores each spectrum on disk
 and the second pass reads it back instead (disk for time: see :mod:`factorize.cache`).
 
+Tasks: the per-matrix work of both passes runs as tasks on an engine (:mod:`factorize.cluster`): this process by
+default, or a Dask cluster (``cluster=``). A task reads its tensor from the shard itself, decomposes it and writes
+the factors to a work directory (``cache_dir`` if given, else a temporary folder beside the output, removed at the
+end), returning small metadata; this process then streams those files into the output, one tensor at a time, in
+the same order whatever ran the tasks, so the output is byte-identical across engines. The work directory holds
+every factor until the output is written: disk use is about the output's size again (checked up front).
+
 Sharded checkpoints (``*.safetensors.index.json`` with a ``weight_map``) give a sharded output in a directory:
 one output shard per input shard (same file names), then the index, written last. Every file is written to a
 temporary name first; only when all are complete are they renamed into place, so a failure leaves nothing.
