@@ -14,6 +14,7 @@ class FactorizeError(ValueError):
     """Bad input: says what was expected, what was found, where, and how to fix it."""
 
     def __init__(self, message: str, problems: Iterable[str] = (), fix: str | None = None) -> None:
+        self.message = message
         self.problems = list(problems)
         self.fix = fix
         text = message
@@ -22,6 +23,9 @@ class FactorizeError(ValueError):
         if fix:
             text += f"\nFix: {fix}"
         super().__init__(text)
+
+    def __reduce__(self):  # pickled whole (message, problems, fix), e.g. when raised on a cluster worker
+        return (type(self), (self.message, self.problems, self.fix))
 
 
 class DriftLimitExceeded(RuntimeError):

@@ -83,3 +83,18 @@ def tiny_gpt2():
     )
     torch.manual_seed(0)
     return transformers.GPT2LMHeadModel(cfg).eval()
+
+
+@pytest.fixture(scope="session")
+def dask_engine():
+    """One Dask local cluster of 2 worker processes (1 thread each) shared by the cluster tests (starting one and
+    importing torch in its workers takes seconds); skipped without the optional ``distributed`` package
+    (``factorize[cluster]``)."""
+    pytest.importorskip("distributed")
+    from factorize.cluster import open_engine
+
+    engine = open_engine(2)
+    try:
+        yield engine
+    finally:
+        engine.close()

@@ -19,6 +19,13 @@ the singular values (k floats per layer) and the second decomposes again to get 
 decomposition is the price of bounded memory; with ``cache_dir`` the first pass stores each spectrum on disk
 and the second pass reads it back instead (disk for time: see :mod:`factorize.cache`).
 
+Tasks: the per-matrix work of both passes runs as tasks on an engine (:mod:`factorize.cluster`): this process by
+default, or a Dask cluster (``cluster=``). A task reads its tensor from the shard itself, decomposes it and writes
+the factors to a work directory (``cache_dir`` if given, else a temporary folder beside the output, removed at the
+end), returning small metadata; this process then streams those files into the output, one tensor at a time, in
+the same order whatever ran the tasks, so the output is byte-identical across engines. The work directory holds
+every factor until the output is written: disk use is about the output's size again (checked up front).
+
 Sharded checkpoints (``*.safetensors.index.json`` with a ``weight_map``) give a sharded output in a directory:
 one output shard per input shard (same file names), then the index, written last. Every file is written to a
 temporary name first; only when all are complete are they renamed into place, so a failure leaves nothing.
@@ -27,11 +34,14 @@ temporary name first; only when all are complete are they renamed into place, so
 from __future__ import annotations
 
 import fnmatch
+import hashlib
 import json
 import math
 import os
+import secrets
 import shutil
-from collections.abc import Iterable, Mapping
+import socket
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -51,6 +61,7 @@ from factorize.checkpoints.files import (
     checkpoint_metadata,
     open_checkpoint,
 )
+from factorize.cluster import Engine, TasksFailed, open_engine, parse_cluster
 from factorize.errors import FactorizeError
 from factorize.measure.report import LayerReport, Report
 from factorize.model.sites import Site
@@ -64,14 +75,18 @@ from factorize.spectra.cache import SpectrumCache, as_cache
 from factorize.spectra.decompose import METHODS, Spectrum, decompose
 from factorize.storage import (
     DTYPE_NAMES,
+    TEMP_SUFFIX,
     Header,
     TensorInfo,
     check_free_space,
     check_output_path,
     create_temp,
     publish,
+    read_header,
     remove_quietly,
     safetensors_header,
+    write_atomic,
+    write_safetensors,
 )
 
 FLOAT_DTYPES = ("F64", "F32", "F16", "BF16")
@@ -146,7 +161,11 @@ def select(ckpt: Checkpoint, include=None, exclude=None) -> tuple[list[_Candidat
 
 def _read(h: Header, name: str) -> torch.Tensor:
     """One tensor from its file; the memory map is released when this returns."""
-    with safe_open(str(h.path), framework="pt", device="cpu") as f:
+    return _read_path(h.path, name)
+
+
+def _read_path(path: str | os.PathLike, name: str) -> torch.Tensor:
+    with safe_open(str(path), framework="pt", device="cpu") as f:
         return f.get_tensor(name)
 
 
@@ -254,6 +273,160 @@ def _relative_error(W: torch.Tensor, B: torch.Tensor, A: torch.Tensor) -> float:
     return math.sqrt(num / den) if den > 0 else 0.0
 
 
+# -- tasks: the per-matrix work of both passes, run by an engine (this process or cluster workers)
+#
+# A task gets the shard path and tensor name, reads the tensor itself (memory-mapped), decomposes it and writes
+# what is large (the factors) to the work directory, returning only small metadata. The single-process run goes
+# through the same functions (LocalEngine), so there is one code path and the client writes the same bytes
+# whichever engine ran the tasks.
+
+RESULT_SUFFIX = ".factors.safetensors"  # a factor task's result in the work directory: <key>.factors.safetensors
+ATTEMPTS_SUFFIX = ".attempts"  # one line per start of a task, removed when its result is stored
+
+
+@dataclass(frozen=True)
+class _Task:
+    """One matrix's work: what to read, how to decompose it, where results go."""
+
+    kind: str  # "values" (budget pass 1: singular values only) or "factors" (the factors at the layer's rank)
+    shard: str  # the safetensors file holding the tensor, on storage every worker can read
+    name: str  # the tensor's name in the shard
+    site: Site
+    method: str
+    k: int | None
+    seed: int
+    precision: str | None
+    work_dir: str  # results and attempt markers (the spectrum cache directory when one is given)
+    cache_dir: str | None  # the spectrum cache, when one is given
+    entry: dict | None = None  # the budget plan's entry for this layer (factors pass); None: decide here
+    policy: Policy | None = None  # per-layer policies decide the rank from the layer's own spectrum
+    fault: Callable | None = None  # tests only: called with (task, attempt) after the attempt is recorded
+
+    def marker(self) -> Path:
+        desc = json.dumps([self.kind, self.shard, self.name, self.method, self.k, self.seed, self.precision,
+                           self.entry, self.policy.to_dict() if self.policy is not None else None],
+                          sort_keys=True, default=str)
+        return Path(self.work_dir) / (hashlib.blake2b(desc.encode(), digest_size=16).hexdigest() + ATTEMPTS_SUFFIX)
+
+
+def _start_attempt(task: _Task) -> int:
+    """Record that ``task`` starts here; returns which attempt this is (1 the first time). A task whose worker
+    died left its line behind, so a rescheduled run of it (or a rerun after a failed run) counts 2 or more."""
+    path = task.marker()
+    try:
+        with open(path, "a", encoding="utf-8") as f:
+            f.write(f"{socket.gethostname()} {os.getpid()}\n")
+            f.flush()
+            os.fsync(f.fileno())
+        with open(path, encoding="utf-8") as f:
+            return sum(1 for _ in f)
+    except OSError as e:
+        raise FactorizeError(f"{task.work_dir}: the work directory is not writable from worker "
+                             f"{socket.gethostname()} ({e.strerror or e})",
+                             fix="put the cache/work directory on storage every worker can write (a shared file "
+                                 "system), at the same path") from None
+
+
+def _read_in_task(task: _Task) -> torch.Tensor:
+    try:
+        return _read_path(task.shard, task.name)
+    except Exception as e:  # noqa: BLE001 - missing, unreadable or damaged: all named the same way
+        raise FactorizeError(f"{task.shard}: worker {socket.gethostname()} (process {os.getpid()}) cannot read this "
+                             f"shard for {task.name} ({type(e).__name__}: {e})",
+                             fix="put the checkpoint on storage every worker can read, at the same path (a shared "
+                                 "file system), then rerun") from None
+
+
+def _task_cache(task: _Task) -> SpectrumCache | None:
+    return SpectrumCache(task.cache_dir) if task.cache_dir is not None else None
+
+
+def _cache_counts(cache: SpectrumCache | None) -> dict:
+    if cache is None:
+        return {}
+    return {"hits": cache.hits, "misses": cache.misses, "stored": cache.stored, "corrupt": cache.corrupt}
+
+
+def _values_task(task: _Task) -> dict:
+    """Budget pass 1: the singular values of one matrix (k floats; the cache, if any, keeps the whole spectrum)."""
+    attempt = _start_attempt(task)
+    if task.fault is not None:
+        task.fault(task, attempt)
+    W = _read_in_task(task)  # (out, in)
+    cache = _task_cache(task)
+    values = _values_only(_spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache))
+    remove_quietly(task.marker())
+    return {"values": values, "attempts": attempt, "cache": _cache_counts(cache)}
+
+
+def _factors_task(task: _Task) -> dict:
+    """Pass 2 (or the only pass of a per-layer policy): the factors of one matrix at its rank, stored in the work
+    directory as ``<key>.factors.safetensors`` (``first`` = A (r, in), ``second`` = B (out, r), in the weight's
+    dtype) with the plan entry and the measured relative error in its metadata. A result already there (same
+    content, same options) is reused."""
+    attempt = _start_attempt(task)
+    if task.fault is not None:
+        task.fault(task, attempt)
+    W = _read_in_task(task)  # (out, in)
+    decide = {"entry": task.entry} if task.entry is not None else \
+        {"policy": task.policy.to_dict(), "module": task.site.name}  # per-layer rules may name the layer
+    key = SpectrumCache.key(W, task.method, extra=json.dumps({"result": "factors", **decide}, sort_keys=True),
+                            rank=task.k, seed=task.seed, precision=task.precision)
+    path = Path(task.work_dir) / f"{key}{RESULT_SUFFIX}"
+    cache = _task_cache(task)
+    found = _stored_result(path, key)
+    if found is None:
+        spec = _spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache)
+        entry = task.entry
+        if entry is None:  # per-layer policy: decided from this layer's own spectrum
+            entry = choose_ranks([task.site], {task.site.name: spec}, task.policy, method=task.method)["sites"][task.site.name]
+        tensors, error = {}, 0.0
+        if entry["action"] == "factor":
+            B, A = spec.factors(entry["rank"])  # (out, r), (r, in)
+            B, A = B.to(W.dtype).contiguous(), A.to(W.dtype).contiguous()
+            tensors, error = {"first": A, "second": B}, _relative_error(W, B, A)
+        meta = {"factorize.key": key, "factorize.entry": json.dumps(entry, sort_keys=True),
+                "factorize.relative_error": float(error).hex()}
+        write_atomic(path, lambda tmp: write_safetensors(tmp, tensors, meta), force=True)
+        found = _stored_result(path, key)
+        if found is None:
+            raise FactorizeError(f"{path}: the result just written cannot be read back",
+                                 fix="check the work directory's storage")
+        cached = False
+    else:
+        cached = True
+    remove_quietly(task.marker())
+    entry, error = found
+    return {"entry": entry, "relative_error": error, "file": str(path) if entry["action"] == "factor" else None,
+            "attempts": attempt, "cached": cached, "cache": _cache_counts(cache)}
+
+
+def _stored_result(path: Path, key: str) -> tuple[dict, float] | None:
+    """(plan entry, relative error) of a stored factor result, or None when there is none (or it is unusable)."""
+    if not path.exists():
+        return None
+    try:
+        meta = read_header(path).metadata
+        if meta.get("factorize.key") != key:
+            return None
+        return json.loads(meta["factorize.entry"]), float.fromhex(meta["factorize.relative_error"])
+    except Exception:  # noqa: BLE001 - a damaged result is recomputed and replaced
+        return None
+
+
+class _ExitOnFirstAttempt:
+    """FAULT INJECTION FOR TESTS ONLY: ends the worker process (``os._exit``) at the first attempt of the given
+    task kind for one tensor, as a crashed or killed worker would. Never use it with the local engine: it would
+    end the calling process."""
+
+    def __init__(self, tensor: str, kind: str = "factors") -> None:
+        self.tensor, self.kind = tensor, kind
+
+    def __call__(self, task: _Task, attempt: int) -> None:
+        if task.name == self.tensor and task.kind == self.kind and attempt == 1:
+            os._exit(71)
+
+
 def shrink_checkpoint(
     src: str | os.PathLike,
     dst: str | os.PathLike,
@@ -264,6 +437,9 @@ def shrink_checkpoint(
     cache_dir: str | os.PathLike | SpectrumCache | None = None,
     metadata: Mapping[str, str] | None = None,
     progress: bool = False,
+    cluster: Any = None,
+    threads: int | None = 1,
+    _fault: Callable | None = None,
     **keywords: Any,
 ) -> dict:
     """Factor the linear-layer weights of a safetensors checkpoint, streaming, without the model's code.
@@ -281,11 +457,20 @@ def shrink_checkpoint(
         cache_dir: a spectrum cache directory (or :class:`SpectrumCache`) to reuse decompositions across runs.
         metadata: extra string entries for the output's metadata.
         progress: progress bar on stderr.
+        cluster: where the per-matrix tasks run (:func:`factorize.cluster.open_engine`): None, this process;
+            ``N`` or ``"local:N"``, a Dask local cluster of N worker processes; ``"tcp://host:port"``, a running
+            Dask scheduler; a ``distributed.Client`` or an :class:`~factorize.cluster.Engine`. The checkpoint and
+            the work directory (``cache_dir`` if given, else a temporary folder beside ``dst``) must be at the
+            same path on every worker. The output is byte-identical whichever engine ran the tasks.
+        threads: torch threads per task (pinned in every engine so the arithmetic is the same everywhere;
+            None leaves torch's setting alone).
 
     Returns:
         ``{"plan", "tensors": {name: {shape, action, rank, predicted_error, relative_error}}, "passed_over",
-        "files", "bytes_before", "bytes_after", "params_before", "params_after", "passes", "cache"}``.
-        ``relative_error`` is measured on the stored factors: ||W - BA||_F / ||W||_F.
+        "files", "bytes_before", "bytes_after", "params_before", "params_after", "passes", "cache", "engine",
+        "redone"}``. ``relative_error`` is measured on the stored factors: ||W - BA||_F / ||W||_F; ``engine``
+        says where the tasks ran (:meth:`~factorize.cluster.Engine.describe`); ``redone`` lists the tensors
+        whose task ran again after a worker died (or after an earlier run stopped part way).
     """
     policy = resolve_policy(policy, keywords)
     if policy.method not in METHODS:
@@ -305,24 +490,24 @@ def shrink_checkpoint(
             [f"{k}: {v}" for k, v in passed.items()],
             fix="check the patterns against the tensor names (safetensors.safe_open(path).keys())",
         )
-    cache = as_cache(cache_dir)
-    job = _Job(ckpt, chosen, policy, method, seed, precision, cache, progress)
-    passes = 1
-    if policy.budget is not None:
-        job.plan_globally()
-        passes = 2
-    bound = sum(h.file_size for h in ckpt.files) + sum(job.reserve_for(h) for h in ckpt.files)
-    check_free_space(out_dir, bound if job.plan is None else job.planned_bytes(), "the shrunk checkpoint")
-    target_dir = finals[0].parent
-    created_dir = not target_dir.exists()
-    if created_dir:
-        target_dir.mkdir(parents=False)
+    if threads is not None and (isinstance(threads, bool) or not isinstance(threads, int) or threads < 1):
+        raise FactorizeError(f"threads={threads!r} is not a positive whole number", fix="pass threads=1 (or None)")
+    parse_cluster(cluster)  # a malformed value is refused before a cluster is started or anything written
+    engine = open_engine(cluster, threads=threads)
     try:
-        written = job.write_all(finals, metadata, force=force)
-    except BaseException:
-        if created_dir:
-            shutil.rmtree(target_dir, ignore_errors=True)
-        raise
+        cache = as_cache(cache_dir)
+        work, temporary = _work_directory(cache, finals[0].parent if ckpt.index is not None else finals[0])
+        try:
+            job = _Job(ckpt, chosen, policy, method, seed, precision, cache, progress, engine=engine, work_dir=work,
+                       fault=_fault)
+            written, passes = _run(job, ckpt, out_dir, work, finals, metadata, force)
+        finally:
+            if temporary:
+                shutil.rmtree(work, ignore_errors=True)
+        where = engine.describe()
+    finally:
+        if not isinstance(cluster, Engine):
+            engine.close()
     return {
         "plan": job.plan,
         "tensors": job.report,
@@ -333,8 +518,64 @@ def shrink_checkpoint(
         "params_before": job.params_before,
         "params_after": job.params_after,
         "passes": passes,
-        "cache": cache.stats() if cache is not None else None,
+        "cache": {**cache.stats(), "results_reused": job.reused} if cache is not None else None,
+        "engine": where,
+        "redone": sorted(job.redone),
     }
+
+
+def _work_directory(cache: SpectrumCache | None, beside: Path) -> tuple[Path, bool]:
+    """Where tasks put their results: the spectrum cache directory (kept, so a rerun resumes), else a new
+    temporary folder beside the output, named like the project's temporary files (removed at the end)."""
+    if cache is not None:
+        return cache.directory, False
+    parent = beside.parent if str(beside.parent) else Path(".")
+    for _ in range(100):
+        work = parent / f".{beside.name}.{os.getpid()}-{secrets.token_hex(6)}.work{TEMP_SUFFIX}"
+        try:
+            work.mkdir()
+        except FileExistsError:
+            continue
+        except OSError as e:
+            raise FactorizeError(f"{parent}: cannot create the work directory there ({e.strerror or e})",
+                                 fix="choose a writable output location") from None
+        return work, True
+    raise FactorizeError(f"{parent}: could not create a work directory")
+
+
+def _same_disk(a: Path, b: Path) -> bool:
+    try:
+        return os.stat(a).st_dev == os.stat(b).st_dev
+    except OSError:
+        return True
+
+
+def _run(job: _Job, ckpt: Checkpoint, out_dir: Path, work: Path, finals: list[Path], metadata, force: bool):
+    """Both passes and the write; returns (files written, passes)."""
+    passes = 1
+    if job.policy.budget is not None:
+        job.plan_globally()
+        passes = 2
+    bound = sum(h.file_size for h in ckpt.files) + sum(job.reserve_for(h) for h in ckpt.files)
+    output = bound if job.plan is None else job.planned_bytes()
+    factors = job.factor_bytes()
+    if _same_disk(out_dir, work):
+        check_free_space(out_dir, output + factors, "the shrunk checkpoint and the factors in the work directory")
+    else:
+        check_free_space(out_dir, output, "the shrunk checkpoint")
+        check_free_space(work, factors, "the factors in the work directory")
+    job.factor_all()
+    target_dir = finals[0].parent
+    created_dir = not target_dir.exists()
+    if created_dir:
+        target_dir.mkdir(parents=False)
+    try:
+        written = job.write_all(finals, metadata, force=force)
+    except BaseException:
+        if created_dir:
+            shutil.rmtree(target_dir, ignore_errors=True)
+        raise
+    return written, passes
 
 
 def _outputs(ckpt: Checkpoint, dst: Path, force: bool) -> tuple[Path, list[Path]]:
@@ -359,9 +600,14 @@ def _outputs(ckpt: Checkpoint, dst: Path, force: bool) -> tuple[Path, list[Path]
 class _Job:
     """One shrink: the plan (built globally or per layer), the streamed writes, and the report."""
 
-    def __init__(self, ckpt, chosen, policy, method, seed, precision, cache, progress) -> None:
+    def __init__(self, ckpt, chosen, policy, method, seed, precision, cache, progress, *, engine: Engine,
+                 work_dir: Path, fault: Callable | None = None) -> None:
         self.ckpt, self.policy, self.method = ckpt, policy, method
         self.seed, self.precision, self.cache, self.progress = seed, precision, cache, progress
+        self.engine, self.work_dir, self.fault = engine, work_dir, fault
+        self.results: dict[str, dict] = {}  # tensor name -> its factor task's metadata
+        self.redone: set[str] = set()
+        self.reused = 0  # factor results found in the work directory (an earlier run's), not recomputed
         self.chosen = {c.weight.name: c for c in chosen}
         self.biases = {c.bias.name: c for c in chosen if c.bias is not None}
         self.sites = [c.site for c in chosen]
@@ -373,19 +619,61 @@ class _Job:
         self.params_before = sum(math.prod(t.shape) for h in ckpt.files for t in h.tensors.values())
         self.params_after = 0
 
-    def _spectrum(self, c: _Candidate, W: torch.Tensor) -> Spectrum:
+    def _task(self, kind: str, c: _Candidate) -> _Task:
         s = c.site
-        return _spectrum_for(W, s, self.method, self.k[s.name], self.seed, self.precision, self.cache)
+        per_layer = kind == "factors" and self.plan is None
+        return _Task(kind=kind, shard=str(c.weight_file.path), name=c.weight.name, site=s, method=self.method,
+                     k=self.k[s.name], seed=self.seed, precision=self.precision, work_dir=str(self.work_dir),
+                     cache_dir=str(self.cache.directory) if self.cache is not None else None,
+                     entry=self.entries.get(c.module) if kind == "factors" and not per_layer else None,
+                     policy=self.policy if per_layer else None, fault=self.fault)
+
+    def _map(self, fn, kind: str, label: str) -> list[dict]:
+        """One task per chosen matrix on the engine; results in the order of the matrices."""
+        chosen = list(self.chosen.values())
+        try:
+            results = self.engine.map(fn, [self._task(kind, c) for c in chosen], label=label, progress=self.progress)
+        except TasksFailed as e:
+            names = [chosen[i].weight.name for i in e.unfinished]
+            resume = ("rerunning with the same cache directory resumes: finished matrices are not redone"
+                      if self.cache is not None else
+                      "rerun with a cache directory (cache_dir= / --cache DIR) so that a later rerun resumes from "
+                      "the matrices already finished")
+            raise FactorizeError(f"{e.message}; matrices not finished:", names,
+                                 fix=f"check the workers' memory and logs; {resume}") from None
+        for c, r in zip(chosen, results):
+            if r["attempts"] > 1:
+                self.redone.add(c.weight.name)
+            if self.cache is not None and r["cache"]:
+                self.cache._count(**r["cache"])
+        return results
 
     def plan_globally(self) -> None:
         """First pass (budget): every spectrum's singular values, then one plan for all layers."""
-        values: dict[str, Spectrum] = {}
-        for c in tqdm(list(self.chosen.values()), desc="spectra", unit="tensor", disable=not self.progress, leave=False):
-            W = _read(c.weight_file, c.weight.name)  # (out, in)
-            values[c.module] = _values_only(self._spectrum(c, W))
-            del W
+        results = self._map(_values_task, "values", "spectra")
+        values = {c.module: r["values"] for c, r in zip(self.chosen.values(), results)}
         self.plan = choose_ranks(self.sites, values, self.policy, method=self.method)
         self.entries = dict(self.plan["sites"])
+
+    def factor_all(self) -> None:
+        """The factors of every chosen matrix into the work directory (the plan's ranks, or per layer)."""
+        results = self._map(_factors_task, "factors", "factors")
+        self.results = {c.weight.name: r for c, r in zip(self.chosen.values(), results)}
+        self.reused = sum(1 for r in results if r["cached"])
+        for c, r in zip(self.chosen.values(), results):
+            self.entries.setdefault(c.module, r["entry"])
+
+    def factor_bytes(self) -> int:
+        """Bound on the factor files the tasks write: exact with a plan, else the weights' own size."""
+        total = 0
+        for c in self.chosen.values():
+            e = self.entries.get(c.module)
+            item = c.weight.nbytes // max(math.prod(c.weight.shape), 1)
+            if e is None:
+                total += c.weight.nbytes
+            elif e["action"] == "factor":
+                total += e["rank"] * sum(c.weight.shape) * item
+        return total + 4096 * len(self.chosen)
 
     def planned_bytes(self) -> int:
         """Exact output size once the plan is known (budget), plus the header reserves."""
@@ -486,27 +774,27 @@ class _Job:
                 self._write_layer(c, w)
 
     def _write_layer(self, c: _Candidate, w: _StreamWriter) -> None:
-        W = _read(c.weight_file, c.weight.name)  # (out, in)
-        spec = self._spectrum(c, W)
-        entry = self.entries.get(c.module)
-        if entry is None:  # per-layer policy: decided from this layer's own spectrum
-            one = choose_ranks([c.site], {c.module: spec}, self.policy, method=self.method)
-            entry = self.entries[c.module] = one["sites"][c.module]
+        """One layer into the output: its factors from the task's result file, or the weight unchanged."""
+        done = self.results[c.weight.name]
+        entry = self.entries[c.module]
         bias = _read(c.bias_file, c.bias.name) if c.bias is not None else None
         row = {"module": c.module, "shape": list(c.weight.shape), "action": entry["action"], "rank": entry["rank"],
-               "predicted_error": float(entry.get("predicted_error", 0.0))}
+               "predicted_error": float(entry.get("predicted_error", 0.0)), "relative_error": done["relative_error"]}
         if entry["action"] == "factor":
-            B, A = spec.factors(entry["rank"])  # (out, r), (r, in)
-            B, A = B.to(W.dtype).contiguous(), A.to(W.dtype).contiguous()
-            w.add(c.module + ".first.weight", A)
-            w.add(c.module + ".second.weight", B)
-            row["relative_error"] = _relative_error(W, B, A)
-            self.params_after += A.numel() + B.numel()
+            with safe_open(done["file"], framework="pt", device="cpu") as f:
+                A = f.get_tensor("first")  # (r, in)
+                w.add(c.module + ".first.weight", A)
+                self.params_after += A.numel()
+                del A
+                B = f.get_tensor("second")  # (out, r)
+                w.add(c.module + ".second.weight", B)
+                self.params_after += B.numel()
+                del B
             if bias is not None:
                 w.add(c.module + ".second.bias", bias)
         else:
+            W = _read(c.weight_file, c.weight.name)
             w.add(c.weight.name, W)
-            row["relative_error"] = 0.0
             self.params_after += W.numel()
             if bias is not None:
                 w.add(c.bias.name, bias)
@@ -551,10 +839,17 @@ def stream_report(done: Mapping, source: str) -> Report:
                                   params_after=m * n if rank is None else rank * (m + n),
                                   weight_error=row.get("relative_error", 0.0 if rank is None else None),
                                   predicted_error=row.get("predicted_error")))
+    notes = [WEIGHTS_ONLY_NOTE]
+    where = done.get("engine") or {}
+    if where.get("engine", "local") != "local":
+        notes.append(f"ran as tasks on {where['engine']} at {where['address']} with {where['workers']} worker(s), "
+                     f"{where['threads_per_task']} torch thread(s) per task")
+    if done.get("redone"):
+        notes.append("redone after a worker was lost or an earlier run stopped part way: "
+                     + ", ".join(done["redone"]))
     return Report(title="factorize shrink (weights-only)", model=source, params_before=done["params_before"],
                   params_after=done["params_after"], bytes_before=done["bytes_before"],
-                  bytes_after=done["bytes_after"], layers=layers, policy=done["plan"]["policy"],
-                  notes=[WEIGHTS_ONLY_NOTE])
+                  bytes_after=done["bytes_after"], layers=layers, policy=done["plan"]["policy"], notes=notes)
 
 
 WEIGHTS_ONLY_NOTE = ("weights-only mode: there is no architecture to run, so output drift was not measured; load the "

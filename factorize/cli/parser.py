@@ -19,6 +19,7 @@ from factorize.choices import (
     POOLINGS,
     SENSITIVITY_MODES,
 )
+from factorize.cluster import parse_cluster
 
 PROG = "factorize"
 COMMANDS = ("scan", "shrink", "sweep", "compare", "export", "demo")
@@ -256,6 +257,11 @@ def _quality_options(*, shrink: bool):
     g.add_argument("--workers", type=_positive_int("--workers"), default=1, metavar="N",
                    help="decompose N layers at a time (threads; results equal a serial run)")
     if shrink:
+        g.add_argument("--cluster", type=_cluster, metavar="ADDRESS|local:N",
+                       help="weights-only mode: run the per-matrix decompositions as tasks on a Dask cluster: "
+                       "local:N starts N worker processes here, tcp://HOST:PORT uses a running scheduler (the "
+                       "checkpoint, and --cache if given, must be at the same path on every worker); needs "
+                       "factorize[cluster]. The output is byte-identical to a run without it")
         g.add_argument("--target-drift", type=_nonnegative("--target-drift"), metavar="X",
                        help="with --calibration: the smallest budget whose relative L2 drift on --inputs stays <= X "
                        "(exit 1 with the closest budget when none does)")
@@ -397,6 +403,13 @@ def _fractions(text: str) -> tuple[float, ...]:
     if not values:
         raise argparse.ArgumentTypeError("give at least one budget, e.g. 0.9,0.5")
     return values
+
+
+def _cluster(text: str):
+    try:
+        return parse_cluster(text)
+    except ValueError as e:  # FactorizeError: the message says what --cluster takes
+        raise argparse.ArgumentTypeError(str(e).replace("\nFix: ", "; ")) from None
 
 
 def _positive_int(flag: str) -> Callable[[str], int]:

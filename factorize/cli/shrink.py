@@ -54,12 +54,18 @@ def run(args, ui: UI) -> dict:
     as_directory = writes_directory(args, loaded, output)
     check_outputs([output, report_path], args.force,
                   directory=output if sharded(loaded.path) or as_directory else None)
+    ran: dict = {}
     if loaded.weights_only:
         if args.max_drift is not None:
             raise FactorizeError("--max-drift needs a model to run, and weights-only mode has none",
                                  fix="pass --model package.module:callable --weights FILE to measure drift")
-        report, plan = _shrink_weights_only(args, loaded, output, opts, ui)
+        report, plan, ran = _shrink_weights_only(args, loaded, output, opts, ui)
     else:
+        if getattr(args, "cluster", None) is not None:
+            raise FactorizeError("--cluster runs the weights-only shrink of a safetensors checkpoint; a model given "
+                                 "with its code is compressed in this process",
+                                 fix="drop --cluster, or pass the bare checkpoint: --model FILE.safetensors (or a "
+                                     "sharded checkpoint's index or directory)")
         report, plan = _shrink_model(args, loaded, output, opts, policy, ui, as_directory)
     if report_path is not None:
         try:
@@ -75,7 +81,8 @@ def run(args, ui: UI) -> dict:
         ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
         ui.out.print(next_steps(output, loaded, report_path), soft_wrap=True, markup=False)
     return {"command": "shrink", "model": loaded.source, "output": str(output),
-            "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan}
+            "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan,
+            **ran}
 
 
 def _outputs(args, output: Path | None = None) -> dict:
@@ -216,5 +223,6 @@ def _shrink_weights_only(args, loaded, output: Path, opts: Options, ui: UI):
         ui.warn("weights-only mode counts parameters only: the recipe's cost is ignored")
         policy = dataclasses.replace(policy, cost="params")
     with weights_file(loaded) as src:
-        done = shrink_checkpoint(src, output, policy, force=args.force, progress=ui.progress, cache_dir=args.cache)
-    return stream_report(done, loaded.source), done["plan"]
+        done = shrink_checkpoint(src, output, policy, force=args.force, progress=ui.progress, cache_dir=args.cache,
+                                 cluster=getattr(args, "cluster", None), threads=getattr(args, "threads", None) or 1)
+    return stream_report(done, loaded.source), done["plan"], {"ran_on": done["engine"], "redone": done["redone"]}

@@ -157,5 +157,7 @@ def test_checkpoint_second_run_skips_decomposition(tmp_path, mlp, counted):
     assert len(counted) == 3  # budget: pass 1 computes and stores, pass 2 reads the cache
     assert first["cache"]["hits"] == 3
     second = checkpoint.shrink_checkpoint(src, tmp_path / "b.safetensors", budget=0.5, cache_dir=tmp_path / "c")
-    assert len(counted) == 3 and second["cache"]["hits"] == 6 and second["cache"]["misses"] == 0
+    # pass 1 reads the three spectra; pass 2 reuses the three factor results stored beside them (resume)
+    assert len(counted) == 3 and second["cache"]["hits"] == 3 and second["cache"]["misses"] == 0
+    assert first["cache"]["results_reused"] == 0 and second["cache"]["results_reused"] == 3
     assert (tmp_path / "a.safetensors").read_bytes() == (tmp_path / "b.safetensors").read_bytes()
