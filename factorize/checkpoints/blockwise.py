@@ -66,7 +66,12 @@ from safetensors.torch import save_file
 from tqdm.auto import tqdm
 
 from factorize.calibrated.aware import AwareSpectrum, decompose_aware
-from factorize.calibrated.stats import InputStats, _accumulate, _check_finite, input_rows
+from factorize.calibrated.stats import (
+    InputStats,
+    _accumulate,
+    _check_finite,
+    input_rows,
+)
 from factorize.checkpoints.files import Checkpoint, open_checkpoint
 from factorize.checkpoints.stream import _Job, _read, select
 from factorize.choices import calibrated_methods
@@ -76,7 +81,12 @@ from factorize.model.hooks import forward_pre_hooks
 from factorize.model.sites import walk
 from factorize.plan.policy import Policy, rank_needed, resolve_policy
 from factorize.plan.ranks import choose_ranks, plan_summary
-from factorize.storage import check_free_space, check_output_path, human_bytes, proc_field
+from factorize.storage import (
+    check_free_space,
+    check_output_path,
+    human_bytes,
+    proc_field,
+)
 
 SUPPORTED_TYPES = ("llama",)  # model_type values whose decoder layers were checked against transformers' model
 DEFAULT_SLICES = 8
@@ -332,23 +342,23 @@ def _block_slice_task(task: _BlockTask) -> dict:
                 groups[name] = seen[1] if seen is not None and seen[0] is x else name
             live[id(x)] = (x, groups[name])
             if groups[name] != name:
-                return None  # the same input was accumulated for its group
+                return  # the same input was accumulated for its group
             rows = input_rows(module, "linear", x.detach(), state["mask"])  # padded positions left out
             _check_finite(rows, rel[name], state["pass"])
             if name not in stats:
                 stats[name] = InputStats(rel[name], "linear", int(x.shape[-1]))
             _accumulate(stats[name], rows)
-            return None
 
         return hook
 
     outputs: dict[str, torch.Tensor] = {}
     with safe_open(task.inputs, framework="pt", device="cpu") as f:
-        keys = sorted({k.split(".", 1)[1] for k in f.keys()}, key=int)
+        stored = set(f.keys())
+        keys = sorted({k.split(".", 1)[1] for k in stored}, key=int)
         with forward_pre_hooks(block, {r: hook_for(r) for r in rel}, with_kwargs=True), torch.no_grad():
             for k in keys:
                 h_all = f.get_tensor(f"h.{k}")  # (b, T, hidden) float32
-                m_all = f.get_tensor(f"m.{k}") if f"m.{k}" in f.keys() else None
+                m_all = f.get_tensor(f"m.{k}") if f"m.{k}" in stored else None
                 b, t = int(h_all.shape[0]), int(h_all.shape[1])
                 step = max(1, task.tokens_per_pass // max(t, 1))
                 parts = []
