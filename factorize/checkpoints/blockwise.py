@@ -62,7 +62,6 @@ from typing import Any
 import numpy as np
 import torch
 from safetensors import safe_open
-from safetensors.torch import save_file
 from tqdm.auto import tqdm
 
 from factorize.calibrated.aware import AwareSpectrum, decompose_aware
@@ -86,11 +85,13 @@ from factorize.storage import (
     check_output_path,
     human_bytes,
     proc_field,
+    write_safetensors,
 )
 
 SUPPORTED_TYPES = ("llama",)  # model_type values whose decoder layers were checked against transformers' model
 DEFAULT_SLICES = 8
 TOKENS_PER_PASS = 2048  # tokens per forward pass inside a task: bounds the block's intermediate activations
+SUM_ROWS = 256  # rows of a partial moment added at a time when summing the slices
 BOUND_SLACK = 2**30  # the "+ 1 GB" of the memory bound
 WEIGHT_SUFFIXES = (".safetensors", ".bin", ".pt", ".pth", ".ckpt", ".msgpack", ".h5")
 
@@ -305,8 +306,9 @@ class _BlockTask:
 
 
 def _save(tensors: dict, path: str, metadata: dict | None = None) -> None:
+    """A work file, written tensor by tensor (no serialised copy of the whole dict in memory), then renamed."""
     tmp = f"{path}.{os.getpid()}.part"
-    save_file(tensors, tmp, metadata=metadata)
+    write_safetensors(tmp, tensors, metadata)
     os.replace(tmp, path)
 
 
@@ -695,12 +697,14 @@ def _summed(leader: str, files: Sequence[str], batches: int) -> InputStats:
         with safe_open(path, framework="pt", device="cpu") as f:
             count += int(json.loads(f.metadata()["counts"])[_relative(leader)])
             for part in ("moment", "total", "abs_total"):
-                t = f.get_tensor(f"{_relative(leader)}.{part}")
-                if part in acc:
-                    acc[part] += t
-                else:
-                    acc[part] = t
-                del t
+                key = f"{_relative(leader)}.{part}"
+                if part not in acc:
+                    acc[part] = f.get_tensor(key)
+                    continue
+                rows = f.get_slice(key)
+                n = int(acc[part].shape[0])
+                for lo in range(0, n, SUM_ROWS):  # row blocks: no second n x n matrix in memory
+                    acc[part][lo:lo + SUM_ROWS] += rows[lo:lo + SUM_ROWS]
     return InputStats(leader, "linear", int(acc["moment"].shape[0]), count=count, second_moment=acc["moment"],
                       total=acc["total"], abs_total=acc["abs_total"], batches=batches)
 
