@@ -93,7 +93,7 @@ def _child(mode: str, src: Path, out: Path, args) -> dict:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--scale", default="tiny", help="llama_checkpoint.py scale: 1b, mid or tiny (default tiny)")
+    ap.add_argument("--scale", default="tiny", help="llama_checkpoint.py scale: 1b, mid, small or tiny (default tiny)")
     ap.add_argument("--checkpoint", help="reuse this checkpoint (directory or index) instead of generating one")
     ap.add_argument("--shard-mb", type=float, default=None, help="shard size when generating (default: 500 for "
                     "1b, else a tenth of the checkpoint)")

@@ -8,10 +8,11 @@ per matrix. Norm weights are ones; the embedding and the output head are Gaussia
 
 Shapes: ``"1b"`` is a Llama-family layout of about 1.1 billion parameters (hidden 2048, MLP 5632, 22 layers,
 32 query heads with 4 key/value heads, vocabulary 32000; the sizes of a published 1.1B Llama-architecture
-configuration, from memory); ``"mid"`` (about 50 M parameters) checks a benchmark in a minute or two;
-``"tiny"`` is the same layout at test size.
+configuration, from memory); ``"mid"`` (about 123 M parameters, hidden 1024, 8 layers) and ``"small"`` (about
+50 M parameters, hidden 768, 6 layers) check a benchmark in a minute or two; ``"tiny"`` is the same layout at test
+size.
 
-    python benchmarks/llama_checkpoint.py OUT_DIR [--scale 1b|mid|tiny] [--shard-mb 500] [--seed 0]
+    python benchmarks/llama_checkpoint.py OUT_DIR [--scale 1b|mid|small|tiny] [--shard-mb 500] [--seed 0]
 
 The output is a directory a transformers ``LlamaForCausalLM.from_pretrained`` reads: ``config.json``,
 ``model-0000i-of-0000n.safetensors`` shards in bfloat16 and ``model.safetensors.index.json``.
@@ -30,8 +31,10 @@ from safetensors.torch import save_file
 SCALES = {
     "1b": {"hidden_size": 2048, "intermediate_size": 5632, "num_hidden_layers": 22, "num_attention_heads": 32,
                "num_key_value_heads": 4, "vocab_size": 32000, "max_position_embeddings": 2048},
-    "mid": {"hidden_size": 768, "intermediate_size": 2048, "num_hidden_layers": 6, "num_attention_heads": 12,
-            "num_key_value_heads": 4, "vocab_size": 8192, "max_position_embeddings": 1024},
+    "small": {"hidden_size": 768, "intermediate_size": 2048, "num_hidden_layers": 6, "num_attention_heads": 12,
+              "num_key_value_heads": 4, "vocab_size": 8192, "max_position_embeddings": 1024},
+    "mid": {"hidden_size": 1024, "intermediate_size": 2816, "num_hidden_layers": 8, "num_attention_heads": 16,
+                "num_key_value_heads": 4, "vocab_size": 16000, "max_position_embeddings": 2048},
     "tiny": {"hidden_size": 64, "intermediate_size": 176, "num_hidden_layers": 2, "num_attention_heads": 4,
                  "num_key_value_heads": 2, "vocab_size": 256, "max_position_embeddings": 256},
 }

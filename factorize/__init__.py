@@ -64,6 +64,7 @@ _EXPORTS = {  # public name -> the module that defines it
     "refactor": "factorize.training.loop",
     "run_model": "factorize.model.feed",
     "search_drift": "factorize.calibrated.search",
+    "shrink_blockwise": "factorize.checkpoints.blockwise",
     "shrink_checkpoint": "factorize.checkpoints.stream",
     "save": "factorize.checkpoints.files",
     "save_directory": "factorize.checkpoints.directories",
@@ -120,6 +121,7 @@ __all__ = [
     "save",
     "save_directory",
     "search_drift",
+    "shrink_blockwise",
     "shrink_checkpoint",
     "to_dense",
     "validate_plan",
@@ -147,7 +149,12 @@ if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eag
         DriftTargetUnreachable,
         search_drift,
     )
-    from factorize.checkpoints.directories import check_directory, load_directory, save_directory
+    from factorize.checkpoints.blockwise import shrink_blockwise
+    from factorize.checkpoints.directories import (
+        check_directory,
+        load_directory,
+        save_directory,
+    )
     from factorize.checkpoints.export import Exported, export_onnx, export_program
     from factorize.checkpoints.files import load, read_plan, save
     from factorize.checkpoints.stream import shrink_checkpoint

@@ -138,12 +138,13 @@ def _ridge_for(stats: InputStats, C_diag: torch.Tensor, ridge: float | None) -> 
 def _sqrt_factor(C: torch.Tensor, lam: float) -> torch.Tensor:
     """L with L L^T = C + lam I: Cholesky, or the symmetric square root when Cholesky fails (Golub & Van Loan
     sec. 4.2 and 8.1)."""
-    n = C.shape[0]
-    eye = torch.eye(n, dtype=C.dtype, device=C.device)
-    L, info = torch.linalg.cholesky_ex(C + lam * eye)
+    shifted = C.clone()
+    shifted.diagonal().add_(lam)  # C + lam I without two more n x n temporaries (an identity and lam * I)
+    L, info = torch.linalg.cholesky_ex(shifted)
     if int(info) == 0:
         return L
-    evals, evecs = torch.linalg.eigh(C + lam * eye)  # symmetric: C = V diag(e) V^T
+    del L
+    evals, evecs = torch.linalg.eigh(shifted)  # symmetric: C = V diag(e) V^T
     return evecs * evals.clamp_min(0).sqrt()  # V diag(sqrt(e)); (V e^1/2)(V e^1/2)^T = C
 
 

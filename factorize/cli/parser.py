@@ -273,6 +273,10 @@ def _quality_options(*, shrink: bool):
         g.add_argument("--heal-schedule", choices=HEAL_SCHEDULES, default="constant",
                        help="learning-rate schedule for --heal: constant (default), or cosine (a 5%% linear warm-up, "
                        "then a half cosine down to zero)")
+        g.add_argument("--blockwise", action="store_true",
+                       help="with --calibration and a transformers directory (Llama-family): load, calibrate and "
+                       "factor one block at a time from the (sharded) checkpoint, for models larger than memory; "
+                       "writes a directory of shards")
         g.add_argument("--speed-check", action="store_true",
                        help="time each factored layer against its dense form here (batch 1 and 32) and keep dense "
                        "the ones that are slower")

@@ -44,6 +44,8 @@ def run(args, ui: UI) -> dict:
     check_no_clobber(args, _outputs(args))  # before anything is loaded
     opts = options(args, ui)
     policy = opts.policy()  # a bad policy is reported before the model is loaded
+    if getattr(args, "blockwise", False):  # the model is never loaded whole
+        return _shrink_blockwise(args, opts, policy, ui)
     loaded = load(args, ui)
     output = output_path(args, loaded)
     report_path = optional_path(args.report)
@@ -226,3 +228,68 @@ def _shrink_weights_only(args, loaded, output: Path, opts: Options, ui: UI):
         done = shrink_checkpoint(src, output, policy, force=args.force, progress=ui.progress, cache_dir=args.cache,
                                  cluster=getattr(args, "cluster", None), threads=getattr(args, "threads", None) or 1)
     return stream_report(done, loaded.source), done["plan"], {"ran_on": done["engine"], "redone": done["redone"]}
+
+
+BLOCKWISE_REFUSED = (("--inputs", "inputs"), ("--random-inputs", "random_inputs"), ("--max-drift", "max_drift"),
+                     ("--target-drift", "target_drift"), ("--heal", "heal"), ("--sequential", "sequential"),
+                     ("--sensitivity", "sensitivity"), ("--cache", "cache"), ("--speed-check", "speed_check"),
+                     ("--weights", "weights"), ("--dtype", "dtype"), ("--device", "device"))
+
+
+def _shrink_blockwise(args, opts: Options, policy, ui: UI) -> dict:
+    """--blockwise: the calibrated shrink of a transformers directory one block at a time (never loaded whole)."""
+    from factorize.checkpoints.blockwise import blockwise_note, shrink_blockwise
+    from factorize.measure.inputs import load_inputs
+
+    model_dir = Path(args.model)
+    if not model_dir.is_dir():
+        raise FactorizeError(f"--blockwise: --model {args.model} is not a directory",
+                             fix="pass a transformers model directory (config.json and safetensors shards)")
+    if not getattr(args, "calibration", None):
+        raise FactorizeError("--blockwise needs --calibration FILE (token ids, or text with the model's tokenizer)",
+                             fix="pass --calibration with sample inputs of your own")
+    given = [flag for flag, attr in BLOCKWISE_REFUSED if getattr(args, attr, None) not in (None, False)]
+    if given:
+        raise FactorizeError(f"--blockwise cannot be combined with {', '.join(given)}: the whole model is never "
+                             "in memory here", fix="drop them; measure the result afterwards with 'factorize "
+                             "compare' on a machine that holds the model")
+    output = Path(args.output) if args.output else model_dir.parent / (model_dir.name + "-factorized")
+    report_path = optional_path(args.report)
+    check_no_clobber(args, _outputs(args, output))
+    check_outputs([output, report_path], args.force, directory=output)
+    tokenizer = None
+    if str(args.calibration).lower().endswith(".txt"):
+        try:
+            from transformers import AutoTokenizer
+
+            tokenizer = AutoTokenizer.from_pretrained(model_dir, local_files_only=True)
+        except (ImportError, OSError, ValueError) as err:
+            raise FactorizeError(f"{args.calibration}: text calibration needs the tokenizer of {model_dir}, which "
+                                 f"could not be loaded ({type(err).__name__})",
+                                 fix="save the tokenizer into the model directory, or pass token ids (.npy/.npz)") \
+                from None
+    calib = load_inputs(args.calibration, batch_size=args.batch_size, labels_key=args.labels_key,
+                        tokenizer=tokenizer, flag="--calibration")
+    ui.note(f"calibration inputs: {calib.source}")
+    done = shrink_blockwise(model_dir, output, policy, calibration=calib.batches, force=args.force,
+                            progress=ui.progress, cluster=getattr(args, "cluster", None),
+                            threads=getattr(args, "threads", None))
+    report = dataclasses.replace(
+        stream_report(done, str(model_dir)), title="factorize shrink (block by block)",
+        notes=[(f"activation-aware factors ({done['plan']['calibration']['method']}) fitted block by block to "
+                f"{calib.source}"), blockwise_note(done),
+               ("output drift was not measured (the whole model is never in memory here): load the output with "
+                f"factorize.load_directory('{output}') and run 'factorize compare' on real inputs")])
+    if report_path is not None:
+        try:
+            write_text(report_path, report.to_markdown(), args.force)
+        except BaseException:
+            shutil.rmtree(output, ignore_errors=True)
+            raise
+    if not ui.json_mode:
+        render_rich(report, ui.out)
+        ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
+    memory = {k: done[k] for k in ("peak_rss_bytes", "block_bytes", "activation_bytes", "bound_bytes", "bound_met")}
+    return {"command": "shrink", "model": str(model_dir), "output": str(output),
+            "report_file": str(report_path) if report_path else None, "report": report.to_json(),
+            "plan": done["plan"], "memory": memory}
