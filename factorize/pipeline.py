@@ -167,8 +167,8 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
     have = dict(run.spectra or {})
     need = [s for s in todo if s.name not in have]
     if values_first(policy):  # ranks unknown until every spectrum is in: values, allocation, then kept vectors
-        have.update(values_sites(model, need, precision=run.precision, progress=progress, workers=run.workers,
-                                 cache=run.cache))
+        have.update(values_sites(model, need, precision=run.precision, keep_gram=True, progress=progress,
+                                 workers=run.workers, cache=run.cache))
         plan = choose_ranks(found.sites, have, policy, method=policy.method)
         have = _with_vectors(model, found, plan, have, policy, run, progress)
     else:
@@ -232,7 +232,8 @@ def sweep_spectra(
         return None
     found = walk(model, include=first.include, exclude=first.exclude).require_sites(first.filtered)
     todo = [s for s in found.sites if not s.tied_with]
-    have = values_sites(model, todo, precision=precision, progress=progress, workers=workers, cache=cache)
+    have = values_sites(model, todo, precision=precision, keep_gram=True, progress=progress, workers=workers,
+                        cache=cache)
     wanted: dict[str, set[int]] = {}
     for p in policies:
         for name, e in choose_ranks(found.sites, have, p, method=p.method)["sites"].items():

@@ -83,13 +83,16 @@ def values_sites(
     sites: Iterable[Site],
     *,
     precision: str | None = None,
+    keep_gram: bool = False,
     progress: bool = False,
     workers: int = 1,
     cache=None,
 ) -> dict[str, Spectrum]:
     """Every site's singular values without vectors (:func:`values_only`): what rank allocation needs.
 
-    ``cache`` keeps them under the ``gram`` key with ``extra="values"`` (k floats per entry).
+    ``cache`` keeps them under the ``gram`` key with ``extra="values"`` (k floats per entry). ``keep_gram`` keeps
+    each computed Gram matrix on its spectrum for :func:`leading_sites` (which drops it); at most the size of the
+    weights in all.
     """
     from factorize.spectra.cache import as_cache
 
@@ -98,9 +101,10 @@ def values_sites(
     def one(site: Site) -> Spectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
         if store is not None:
-            return store.get_or_compute(W, "gram", compute=lambda: values_only(W, precision=precision, name=site.name),
+            return store.get_or_compute(W, "gram", compute=lambda: values_only(W, precision=precision,
+                                                                               keep_gram=keep_gram, name=site.name),
                                         extra="values", precision=precision)
-        return values_only(W, precision=precision, name=site.name)
+        return values_only(W, precision=precision, keep_gram=keep_gram, name=site.name)
 
     return per_site(one, list(sites), workers=workers, progress=progress, desc="singular values")
 
@@ -121,7 +125,8 @@ def leading_sites(
     """``spectra`` with vectors up to ``ranks[name]`` for every named site (:func:`leading`, within 1% of the
     optimal error at that rank and at each of ``guard_ranks[name]``). Sites whose spectrum already holds enough
     vector pairs, or that have no rank, are passed through unchanged; the others must hold every singular value
-    (e.g. from :func:`values_sites`). Returns a new dict; ``spectra`` is not modified.
+    (e.g. from :func:`values_sites`). Returns a new dict; ``spectra`` is not modified, except that the Gram
+    matrices ``values_sites(keep_gram=True)`` left on them are dropped once used.
     """
     from factorize.spectra.cache import as_cache
 
@@ -143,4 +148,6 @@ def leading_sites(
 
     out = dict(spectra)
     out.update(per_site(one, todo, workers=workers, progress=progress, desc="leading vectors"))
+    for spec in spectra.values():
+        spec.gram = None  # a kept Gram matrix served leading() above; the values alone stay
     return out
