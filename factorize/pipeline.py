@@ -82,7 +82,9 @@ def compress(
             :mod:`factorize.plan.ranks`); ``include`` / ``exclude`` (glob patterns on qualified module names);
             ``method``: ``"auto"`` (default: randomized SVD where the rank needed is small and an a-posteriori
             estimate puts it within 1% of optimal, else the Gram eigensolve), ``"exact"`` (LAPACK SVD), ``"gram"``
-            or ``"randomized"`` (Halko, Martinsson & Tropp 2011), see :mod:`factorize.spectra.decompose`;
+            or ``"randomized"`` (Halko, Martinsson & Tropp 2011), see :mod:`factorize.spectra.decompose`; with
+            ``budget`` and ``"auto"`` the singular values come first and only the kept vectors are computed (see
+            :func:`values_first`);
             ``"whiten"`` / ``"scale"`` ask for activation-aware factors (need calibration); ``multiple`` (round
             ranks to this multiple; 8 or 16 suit fast kernels); ``overrides`` (per-pattern exceptions:
             ``Override`` or mappings with pattern and rank/energy/keep/dense); ``cost``: what ``budget`` counts,

@@ -16,7 +16,11 @@ Methods:
   k + p columns, q power iterations re-orthonormalised by QR, then the SVD of the small projected matrix.
   Seeded through an explicit ``torch.Generator``: the same matrix and seed give the same factors.
 
-Both return a :class:`Spectrum`. By the Eckart-Young-Mirsky theorem (Eckart & Young 1936; Mirsky 1960) the
+* values first (the budget route): :func:`values_only` (every singular value from ``eigvalsh`` of the Gram
+  matrix, no vectors) to allocate ranks, then :func:`leading` (only the kept vectors, by subspace iteration with
+  an exact 1% error guard, since the whole spectrum is known).
+
+All return a :class:`Spectrum`. By the Eckart-Young-Mirsky theorem (Eckart & Young 1936; Mirsky 1960) the
 rank-r truncation ``U_r S_r V_r^T`` is the best rank-r approximation in every unitarily invariant norm, with
 Frobenius error ``sqrt(sum_{i>r} s_i^2)`` and spectral error ``s_{r+1}``. For a randomized spectrum, which holds
 only the leading k values, the Frobenius tail is taken from the exactly known total ``||W||_F^2`` minus the
