@@ -38,7 +38,7 @@ from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, apply_plan
 from factorize.rewrite.verify import check_runs, keep_working
 from factorize.spectra.decompose import Spectrum
-from factorize.spectra.sites import decompose_sites
+from factorize.spectra.sites import decompose_sites, leading_sites, values_sites
 
 
 @dataclass(frozen=True)
@@ -82,7 +82,9 @@ def compress(
             :mod:`factorize.plan.ranks`); ``include`` / ``exclude`` (glob patterns on qualified module names);
             ``method``: ``"auto"`` (default: randomized SVD where the rank needed is small and an a-posteriori
             estimate puts it within 1% of optimal, else the Gram eigensolve), ``"exact"`` (LAPACK SVD), ``"gram"``
-            or ``"randomized"`` (Halko, Martinsson & Tropp 2011), see :mod:`factorize.spectra.decompose`;
+            or ``"randomized"`` (Halko, Martinsson & Tropp 2011), see :mod:`factorize.spectra.decompose`; with
+            ``budget`` and ``"auto"`` the singular values come first and only the kept vectors are computed (see
+            :func:`values_first`);
             ``"whiten"`` / ``"scale"`` ask for activation-aware factors (need calibration); ``multiple`` (round
             ranks to this multiple; 8 or 16 suit fast kernels); ``overrides`` (per-pattern exceptions:
             ``Override`` or mappings with pattern and rank/energy/keep/dense); ``cost``: what ``budget`` counts,
@@ -166,14 +168,20 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
     todo = [s for s in found.sites if not s.tied_with]
     have = dict(run.spectra or {})
     need = [s for s in todo if s.name not in have]
-    ranks = {s.name: rank_needed(s, policy) for s in need} if policy.method in ("auto", "randomized") else None
-    have.update(
-        decompose_sites(
-            model, need, method=policy.method, ranks=ranks, seed=policy.seed, precision=run.precision,
-            progress=progress, workers=run.workers, cache=run.cache,
+    if values_first(policy):  # ranks unknown until every spectrum is in: values, allocation, then kept vectors
+        have.update(values_sites(model, need, precision=run.precision, keep_gram=True, progress=progress,
+                                 workers=run.workers, cache=run.cache))
+        plan = choose_ranks(found.sites, have, policy, method=policy.method)
+        have = _with_vectors(model, found, plan, have, policy, run, progress)
+    else:
+        ranks = {s.name: rank_needed(s, policy) for s in need} if policy.method in ("auto", "randomized") else None
+        have.update(
+            decompose_sites(
+                model, need, method=policy.method, ranks=ranks, seed=policy.seed, precision=run.precision,
+                progress=progress, workers=run.workers, cache=run.cache,
+            )
         )
-    )
-    plan = choose_ranks(found.sites, have, policy, method=policy.method)
+        plan = choose_ranks(found.sites, have, policy, method=policy.method)
     params_before = count_parameters(model)
     target = copy.deepcopy(model) if (run.speed_check or not inplace) else model
     apply_plan(target, plan, spectra=have, inplace=True)
@@ -189,6 +197,61 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
         params_after=count_parameters(target),
         timings=[t.to_dict() for t in timings],
     )
+
+
+def values_first(policy: Policy) -> bool:
+    """Whether ``compress`` takes the values-first route: a global budget (each layer's rank depends on every
+    layer's whole spectrum) with ``method="auto"``. The singular values of every layer are found without vectors
+    (:func:`factorize.spectra.decompose.values_only`), the budget is allocated from them, and only the kept
+    vectors are computed (:func:`factorize.spectra.decompose.leading`, within 1% of the optimal error). Per-layer
+    rules (rank, keep, energy) and the explicit methods keep their one-pass decomposition."""
+    return policy.budget is not None and policy.method == "auto"
+
+
+def sweep_spectra(
+    model: nn.Module,
+    policies: Iterable[Policy],
+    *,
+    precision: str | None = None,
+    workers: int = 1,
+    cache: Any = None,
+    progress: bool = False,
+) -> dict[str, Spectrum] | None:
+    """One decomposition for several budgets: pass the result as ``compress(model, policy, spectra=...)``.
+
+    The singular values of every site are found once; each policy's plan is drawn from them; then each site's
+    vectors are computed once, at the largest rank any policy gives it, within 1% of the optimal error at every
+    rank a policy gives it (leading vectors of one converged block serve each smaller rank: the guard of
+    :func:`factorize.spectra.decompose.leading` checks each). Returns None when the policies do not take the
+    values-first route (see :func:`values_first`; also for ``cost="macs"``, which needs a sample batch per run)
+    or differ in the layers they select: then reuse ``result.spectra`` of the first run instead.
+    """
+    policies = list(policies)
+    if not policies or not all(values_first(p) and p.cost == "params" for p in policies):
+        return None
+    first = policies[0]
+    if any((p.include, p.exclude, p.seed) != (first.include, first.exclude, first.seed) for p in policies):
+        return None
+    found = walk(model, include=first.include, exclude=first.exclude).require_sites(first.filtered)
+    todo = [s for s in found.sites if not s.tied_with]
+    have = values_sites(model, todo, precision=precision, keep_gram=True, progress=progress, workers=workers,
+                        cache=cache)
+    wanted: dict[str, set[int]] = {}
+    for p in policies:
+        for name, e in choose_ranks(found.sites, have, p, method=p.method)["sites"].items():
+            if e["action"] == "factor":
+                wanted.setdefault(name, set()).add(int(e["rank"]))
+    ranks = {name: max(rs) for name, rs in wanted.items()}
+    run = RunOptions(precision=precision, workers=workers, cache=cache)
+    return leading_sites(model, found.sites, ranks, have, guard_ranks=wanted, seed=first.seed, precision=run.precision,
+                         progress=progress, workers=run.workers, cache=run.cache)
+
+
+def _with_vectors(model, found, plan, have, policy, run, progress, guard_ranks=None):
+    """``have`` with vector pairs up to each factored site's planned rank (:func:`leading_sites`)."""
+    ranks = {name: e["rank"] for name, e in plan["sites"].items() if e["action"] == "factor"}
+    return leading_sites(model, found.sites, ranks, have, guard_ranks=guard_ranks, seed=policy.seed,
+                         precision=run.precision, progress=progress, workers=run.workers, cache=run.cache)
 
 
 def _keep_fast(model, target, found, have, plan, policy, run, inplace):
@@ -208,6 +271,7 @@ def _keep_fast(model, target, found, have, plan, policy, run, inplace):
         slow = {n: f"{r}; the budget applies to the other layers" for n, r in slow.items()}
     for name, reason in slow.items():
         plan["sites"][name]["reason"] = reason
+    have.update(_with_vectors(model, found, plan, have, policy, run, False))  # freed budget may raise some ranks
     target = model if inplace else copy.deepcopy(model)
     apply_plan(target, plan, spectra=have, inplace=True)
     return plan, target, timings

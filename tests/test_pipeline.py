@@ -11,6 +11,7 @@ import torch
 from conftest import CNN, MLP, tiny_bert, tiny_gpt2
 
 import factorize
+import factorize.spectra.sites
 from factorize import FactorizeError, apply_plan, compress, merge, walk
 
 
@@ -181,6 +182,9 @@ def test_cache_directory_skips_decomposition_on_second_run(mlp, tmp_path, monkey
     first = compress(mlp, budget=0.5, cache=tmp_path / "cache")
     calls = []
     monkeypatch.setattr(factorize.spectra.cache, "decompose", lambda *a, **k: calls.append(1))
+    # the budget route computes values, then the kept vectors (factorize.spectra.sites): neither may run again
+    monkeypatch.setattr(factorize.spectra.sites, "values_only", lambda *a, **k: calls.append(1))
+    monkeypatch.setattr(factorize.spectra.sites, "leading", lambda *a, **k: calls.append(1))
     second = compress(mlp, budget=0.5, cache=tmp_path / "cache")
     assert not calls and second.plan == first.plan
     for name, spec in first.spectra.items():

@@ -14,7 +14,7 @@ from factorize.choices import DEFAULT_METHOD
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate
 from factorize.measure.report import CAUTION
-from factorize.pipeline import compress
+from factorize.pipeline import compress, sweep_spectra
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.storage import write_atomic
 
@@ -77,6 +77,9 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
         calib = Calibration(loaded.model, calibration.batches, opts.policy(budget=budgets[0]),
                             sensitivity=args.sensitivity, progress=ui.progress)
     rows, spectra, memo = [], None, {}  # memo: the original's outputs, computed once for every budget
+    if calib is None:  # singular values once, every budget's plan, then each layer's vectors once at its top rank
+        spectra = sweep_spectra(loaded.model, [opts.policy(budget=b) for b in budgets], cache=quality["cache"],
+                                workers=quality["workers"], progress=ui.progress)
     for budget in budgets:
         policy = opts.policy(budget=budget)
         if calib is not None:

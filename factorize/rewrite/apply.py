@@ -170,7 +170,7 @@ def apply_plan(
             replacements[name] = build_factored(module, kind, r)
             continue
         spec = (spectra or {}).get(name)
-        if spec is None or spec.computed_rank < r:
+        if spec is None or spec.vector_rank < r:
             spec = decompose(matrix_of(module, kind), method=method, rank=r, seed=seed, name=name)
         B, A = spec.factors(r)  # (m, r), (r, n)
         replacements[name] = factor_module(module, kind, B, A)

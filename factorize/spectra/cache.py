@@ -22,6 +22,11 @@ Behaviour on trouble (what a user who asked for a cache expects):
   :class:`CacheWarning` (``warnings.warn``; nothing is printed) and recomputed, and the fresh result replaces it;
 * a failed write of a new entry (disk full) is a :class:`CacheWarning`; the run continues without storing it.
 
+Values first (:func:`factorize.spectra.sites.values_sites` and :func:`~factorize.spectra.sites.leading_sites`, the
+budget route): the singular values alone are stored under the ``gram`` key with ``extra="values"`` (U and Vh of
+width 0: k floats), and the values plus the leading r vector pairs under ``extra`` naming the rank, the guarded
+ranks and the seed. A run at another budget thus reuses the values and recomputes only the vectors.
+
 Disk use: an exact entry holds all of U (m x k) and Vh (k x n), k = min(m, n), i.e. between one and two times the
 matrix; a randomized entry only the leading k triplets. Delete the directory (or call :meth:`SpectrumCache.clear`)
 to reclaim the space.
@@ -160,8 +165,8 @@ class SpectrumCache:
             raise ValueError("the entry belongs to another matrix")
         with safe_open(str(path), framework="pt", device="cpu") as f:
             U, S, Vh = f.get_tensor("U"), f.get_tensor("S"), f.get_tensor("Vh")
-        k = S.shape[0]
-        if S.dim() != 1 or tuple(U.shape) != (shape[0], k) or tuple(Vh.shape) != (k, shape[1]):
+        k, j = S.shape[0], U.shape[1] if U.dim() == 2 else -1  # j < k: values with only the leading vectors
+        if S.dim() != 1 or not 0 <= j <= k or tuple(U.shape) != (shape[0], j) or tuple(Vh.shape) != (j, shape[1]):
             raise ValueError(f"shapes U {list(U.shape)}, S {list(S.shape)}, Vh {list(Vh.shape)} do not fit {list(shape)}")
         if _checksum(U, S, Vh) != meta.get("factorize.checksum"):
             raise ValueError("checksum mismatch")

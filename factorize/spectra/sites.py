@@ -1,4 +1,5 @@
-"""TODO docstring."""
+"""Decompose the sites of a model: whole spectra (`decompose_sites`), or singular values first (`values_sites`)
+and then only the vectors that are kept (`leading_sites`)."""
 
 from __future__ import annotations
 
@@ -14,7 +15,7 @@ from factorize.model.sites import (
     get_module,
     matrix_of,
 )
-from factorize.spectra.decompose import Spectrum, decompose
+from factorize.spectra.decompose import Spectrum, decompose, leading, values_only
 
 T = TypeVar("T")
 
@@ -75,3 +76,78 @@ def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 
     finally:
         bar.close()
     return {site.name: out[site.name] for site in sites}  # module order, whatever the finishing order
+
+
+def values_sites(
+    model: nn.Module,
+    sites: Iterable[Site],
+    *,
+    precision: str | None = None,
+    keep_gram: bool = False,
+    progress: bool = False,
+    workers: int = 1,
+    cache=None,
+) -> dict[str, Spectrum]:
+    """Every site's singular values without vectors (:func:`values_only`): what rank allocation needs.
+
+    ``cache`` keeps them under the ``gram`` key with ``extra="values"`` (k floats per entry). ``keep_gram`` keeps
+    each computed Gram matrix on its spectrum for :func:`leading_sites` (which drops it); at most the size of the
+    weights in all.
+    """
+    from factorize.spectra.cache import as_cache
+
+    store = as_cache(cache)
+
+    def one(site: Site) -> Spectrum:
+        W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
+        if store is not None:
+            return store.get_or_compute(W, "gram", compute=lambda: values_only(W, precision=precision,
+                                                                               keep_gram=keep_gram, name=site.name),
+                                        extra="values", precision=precision)
+        return values_only(W, precision=precision, keep_gram=keep_gram, name=site.name)
+
+    return per_site(one, list(sites), workers=workers, progress=progress, desc="singular values")
+
+
+def leading_sites(
+    model: nn.Module,
+    sites: Iterable[Site],
+    ranks: Mapping[str, int],
+    spectra: Mapping[str, Spectrum],
+    *,
+    guard_ranks: Mapping[str, Iterable[int]] | None = None,
+    seed: int = 0,
+    precision: str | None = None,
+    progress: bool = False,
+    workers: int = 1,
+    cache=None,
+) -> dict[str, Spectrum]:
+    """``spectra`` with vectors up to ``ranks[name]`` for every named site (:func:`leading`, within 1% of the
+    optimal error at that rank and at each of ``guard_ranks[name]``). Sites whose spectrum already holds enough
+    vector pairs, or that have no rank, are passed through unchanged; the others must hold every singular value
+    (e.g. from :func:`values_sites`). Returns a new dict; ``spectra`` is not modified, except that the Gram
+    matrices ``values_sites(keep_gram=True)`` left on them are dropped once used.
+    """
+    from factorize.spectra.cache import as_cache
+
+    store = as_cache(cache)
+    guard = {name: sorted({int(r) for r in rs}) for name, rs in (guard_ranks or {}).items()}
+    todo = [s for s in sites if ranks.get(s.name) is not None and spectra[s.name].vector_rank < ranks[s.name]]
+
+    def one(site: Site) -> Spectrum:
+        W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
+        r, g, values = int(ranks[site.name]), guard.get(site.name, []), spectra[site.name]
+
+        def compute() -> Spectrum:
+            return leading(W, r, values=values, guard_ranks=g, seed=seed, precision=precision, name=site.name)
+
+        if store is not None:
+            return store.get_or_compute(W, "gram", compute=compute, extra=f"leading rank={r} guard={g} seed={seed}",
+                                        precision=precision)
+        return compute()
+
+    out = dict(spectra)
+    out.update(per_site(one, todo, workers=workers, progress=progress, desc="leading vectors"))
+    for spec in spectra.values():
+        spec.gram = None  # a kept Gram matrix served leading() above; the values alone stay
+    return out

@@ -8,6 +8,7 @@ import scipy.linalg
 import torch
 
 from factorize import FactorizeError, decompose
+from factorize.spectra.decompose import leading, values_only
 
 
 def _decaying(m: int, n: int, decay: float = 0.85, seed: int = 0) -> np.ndarray:
@@ -147,3 +148,85 @@ def test_auto_falls_back_to_gram_when_the_estimate_cannot_vouch():
     W = torch.randn(400, 320, generator=torch.Generator().manual_seed(6))
     assert decompose(W, method="auto", rank=30).method == "auto:gram"
     assert decompose(W, method="auto", rank=100).method == "gram"  # rank not well below min(m, n)
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# singular values first (values_only), then only the kept vectors (leading)
+
+
+def _optimum(W: np.ndarray, rank: int) -> float:
+    """Eckart-Young-Mirsky: the best rank-r Frobenius error, from numpy.linalg.svd (outside reference)."""
+    s = np.linalg.svd(W, compute_uv=False)
+    return float(np.sqrt((s[rank:] ** 2).sum()))
+
+
+@pytest.mark.parametrize("shape", [(90, 60), (60, 90), (300, 300), (1, 9)])
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+def test_values_only_match_numpy(shape, dtype):
+    # Reference: numpy.linalg.svd. Gram eigenvalues keep an absolute accuracy of about eps * s_1^2 on s_i^2
+    # (Golub & Van Loan, sec. 8.1 and 8.6), so energies are compared on that scale.
+    W = torch.randn(*shape, generator=torch.Generator().manual_seed(2), dtype=dtype)
+    spec = values_only(W)
+    ref = np.linalg.svd(W.double().numpy(), compute_uv=False)
+    tol = 1e-5 if dtype == torch.float32 else 1e-12
+    np.testing.assert_allclose(spec.energies(), ref**2, rtol=0, atol=tol * ref[0] ** 2)
+    assert spec.total_energy == pytest.approx(float((W.double() ** 2).sum()), rel=1e-12)
+    assert spec.exact and spec.computed_rank == min(shape) and spec.vector_rank == 0
+    assert spec.shape == shape and spec.S.dtype == dtype
+    with pytest.raises(FactorizeError, match="vector pairs"):
+        spec.factors(1)
+
+
+@pytest.mark.parametrize("shape", [(120, 80), (80, 120), (300, 300)])
+@pytest.mark.parametrize("rank", [1, 8, 30])
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+def test_leading_within_one_percent_of_eckart_young(shape, rank, dtype):
+    # Eckart-Young-Mirsky optimum from numpy.linalg.svd; the guard promises <= 1% excess Frobenius error.
+    W = torch.as_tensor(_decaying(*shape, decay=0.97, seed=3)).to(dtype)
+    spec = leading(W, rank)
+    B, A = spec.factors(rank)
+    assert B.shape == (shape[0], rank) and A.shape == (rank, shape[1]) and spec.vector_rank == rank
+    err = float(np.linalg.norm(W.double().numpy() - (B @ A).double().numpy()))
+    assert err <= 1.01 * _optimum(W.double().numpy(), rank) + 1e-6
+    np.testing.assert_allclose(spec.energies(), values_only(W).energies())  # all values stay: allocation reuses them
+
+
+def test_leading_guards_every_rank_it_is_cut_to():
+    # A sweep cuts one block of leading vectors to several ranks: each must be within 1% of its own optimum
+    # (Eckart-Young-Mirsky, numpy.linalg.svd).
+    W = torch.as_tensor(_decaying(200, 150, decay=0.98, seed=4)).float()
+    spec = leading(W, 40, guard_ranks=[5, 12, 25])
+    for r in (5, 12, 25, 40):
+        B, A = spec.factors(r)
+        err = float(np.linalg.norm(W.double().numpy() - (B @ A).double().numpy()))
+        assert err <= 1.01 * _optimum(W.double().numpy(), r)
+
+
+def test_leading_falls_back_when_the_iteration_does_not_converge():
+    # A slowly decaying spectrum (s_i = 0.995^i) and a guard no subspace iteration meets in one step (tolerance 0,
+    # float64): the full Gram eigendecomposition is used instead, which reaches the optimum (numpy.linalg.svd).
+    W = torch.as_tensor(_decaying(150, 150, decay=0.995, seed=5))
+    spec = leading(W, 20, tolerance=0.0, max_iters=1)
+    assert spec.method == "leading:eigh"
+    err = float(np.linalg.norm(W.numpy() - spec.truncated(20).numpy()))
+    assert err == pytest.approx(_optimum(W.numpy(), 20), rel=1e-9)
+    quick = leading(W, 20)  # with the 1% guard the iteration is accepted, and it says how many steps it took
+    assert quick.method.startswith("leading:subspace(")
+
+
+def test_leading_is_deterministic_per_seed():
+    W = torch.as_tensor(_decaying(200, 120, decay=0.9, seed=6)).float()
+    values = values_only(W, keep_gram=True)
+    a = leading(W, 15, values=values, seed=3)
+    b = leading(W, 15, seed=3)  # forms its own Gram matrix: the same bytes
+    assert torch.equal(a.U, b.U) and torch.equal(a.Vh, b.Vh) and torch.equal(a.S, b.S)
+
+
+def test_leading_names_bad_input():
+    W = torch.randn(30, 20)
+    with pytest.raises(FactorizeError, match=r"layer\.x: rank\(s\) \[0\] outside 1\.\.20"):
+        leading(W, 0, name="layer.x")
+    with pytest.raises(FactorizeError, match=r"\[21\]"):
+        leading(W, 5, guard_ranks=[21])
+    with pytest.raises(FactorizeError, match="values="):
+        leading(W, 5, values=values_only(torch.randn(20, 30)))
