@@ -72,7 +72,7 @@ from factorize.plan.ranks import (
     choose_ranks,
 )
 from factorize.spectra.cache import SpectrumCache, as_cache
-from factorize.spectra.decompose import METHODS, Spectrum, decompose
+from factorize.spectra.decompose import METHODS, Spectrum, decompose, leading, values_only
 from factorize.storage import (
     DTYPE_NAMES,
     TEMP_SUFFIX,
@@ -301,6 +301,7 @@ class _Task:
     entry: dict | None = None  # the budget plan's entry for this layer (factors pass); None: decide here
     policy: Policy | None = None  # per-layer policies decide the rank from the layer's own spectrum
     fault: Callable | None = None  # tests only: called with (task, attempt) after the attempt is recorded
+    values: Spectrum | None = None  # values-first budget route: pass 1's singular values, for leading() in pass 2
 
     def marker(self) -> Path:
         desc = json.dumps([self.kind, self.shard, self.name, self.method, self.k, self.seed, self.precision,
@@ -354,7 +355,14 @@ def _values_task(task: _Task) -> dict:
         task.fault(task, attempt)
     W = _read_in_task(task)  # (out, in)
     cache = _task_cache(task)
-    values = _values_only(_spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache))
+    if _values_first(task):  # as compress(): every singular value without vectors, from the Gram matrix
+        def compute() -> Spectrum:
+            return values_only(W, precision=task.precision, name=task.site.name)
+
+        values = compute() if cache is None else cache.get_or_compute(W, "gram", compute=compute, extra="values",
+                                                                       precision=task.precision)
+    else:
+        values = _values_only(_spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache))
     remove_quietly(task.marker())
     return {"values": values, "attempts": attempt, "cache": _cache_counts(cache)}
 
@@ -370,14 +378,21 @@ def _factors_task(task: _Task) -> dict:
     W = _read_in_task(task)  # (out, in)
     decide = {"entry": task.entry} if task.entry is not None else \
         {"policy": task.policy.to_dict(), "module": task.site.name}  # per-layer rules may name the layer
+    if task.values is not None:
+        decide["route"] = "values first"
     key = SpectrumCache.key(W, task.method, extra=json.dumps({"result": "factors", **decide}, sort_keys=True),
                             rank=task.k, seed=task.seed, precision=task.precision)
     path = Path(task.work_dir) / f"{key}{RESULT_SUFFIX}"
     cache = _task_cache(task)
     found = _stored_result(path, key)
     if found is None:
-        spec = _spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache)
         entry = task.entry
+        if entry is not None and entry["action"] != "factor":
+            spec = None  # kept dense by the plan: no decomposition needed
+        elif task.values is not None and entry is not None:
+            spec = _leading_for(W, task, int(entry["rank"]), cache)
+        else:
+            spec = _spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache)
         if entry is None:  # per-layer policy: decided from this layer's own spectrum
             entry = choose_ranks([task.site], {task.site.name: spec}, task.policy, method=task.method)["sites"][task.site.name]
         tensors, error = {}, 0.0
@@ -399,6 +414,24 @@ def _factors_task(task: _Task) -> dict:
     entry, error = found
     return {"entry": entry, "relative_error": error, "file": str(path) if entry["action"] == "factor" else None,
             "attempts": attempt, "cached": cached, "cache": _cache_counts(cache)}
+
+
+def _values_first(task: _Task) -> bool:
+    """The values-first budget route, exactly as :func:`factorize.pipeline.values_first` decides it for compress()."""
+    return task.kind == "values" and task.method == "auto"
+
+
+def _leading_for(W: torch.Tensor, task: _Task, rank: int, cache: SpectrumCache | None) -> Spectrum:
+    """The kept vectors at ``rank`` from pass 1's values (:func:`factorize.spectra.decompose.leading`, within 1% of
+    the optimal error), with the same arguments and cache key as :func:`factorize.spectra.sites.leading_sites`."""
+    def compute() -> Spectrum:
+        return leading(W, rank, values=task.values, guard_ranks=[], seed=task.seed, precision=task.precision,
+                       name=task.site.name)
+
+    if cache is None:
+        return compute()
+    return cache.get_or_compute(W, "gram", compute=compute, extra=f"leading rank={rank} guard={[]} seed={task.seed}",
+                                precision=task.precision)
 
 
 def _stored_result(path: Path, key: str) -> tuple[dict, float] | None:
@@ -606,6 +639,7 @@ class _Job:
         self.seed, self.precision, self.cache, self.progress = seed, precision, cache, progress
         self.engine, self.work_dir, self.fault = engine, work_dir, fault
         self.results: dict[str, dict] = {}  # tensor name -> its factor task's metadata
+        self.values: dict[str, Spectrum] = {}  # values-first budget route: module -> its singular values
         self.redone: set[str] = set()
         self.reused = 0  # factor results found in the work directory (an earlier run's), not recomputed
         self.chosen = {c.weight.name: c for c in chosen}
@@ -626,7 +660,8 @@ class _Job:
                      k=self.k[s.name], seed=self.seed, precision=self.precision, work_dir=str(self.work_dir),
                      cache_dir=str(self.cache.directory) if self.cache is not None else None,
                      entry=self.entries.get(c.module) if kind == "factors" and not per_layer else None,
-                     policy=self.policy if per_layer else None, fault=self.fault)
+                     policy=self.policy if per_layer else None, fault=self.fault,
+                     values=self.values.get(c.module) if kind == "factors" else None)
 
     def _map(self, fn, kind: str, label: str) -> list[dict]:
         """One task per chosen matrix on the engine; results in the order of the matrices."""
@@ -652,6 +687,8 @@ class _Job:
         """First pass (budget): every spectrum's singular values, then one plan for all layers."""
         results = self._map(_values_task, "values", "spectra")
         values = {c.module: r["values"] for c, r in zip(self.chosen.values(), results)}
+        if self.method == "auto":  # values first: pass 2 computes only the kept vectors, guarded by these values
+            self.values = values
         self.plan = choose_ranks(self.sites, values, self.policy, method=self.method)
         self.entries = dict(self.plan["sites"])
 

@@ -150,14 +150,22 @@ def test_cached_decompose_sites_matches_and_feeds_compress(tmp_path, mlp, counte
         assert torch.equal(a.model(x), b.model(x))
 
 
-def test_checkpoint_second_run_skips_decomposition(tmp_path, mlp, counted):
+def test_checkpoint_second_run_skips_decomposition(tmp_path, mlp, monkeypatch):
+    from factorize.checkpoints import stream
+
+    calls = []
+    for fn in ("values_only", "leading"):
+        real = getattr(stream, fn)
+        monkeypatch.setattr(stream, fn, lambda *a, _real=real, _fn=fn, **k: calls.append(_fn) or _real(*a, **k))
     src = tmp_path / "in.safetensors"
     save_file(mlp.state_dict(), str(src))
     first = checkpoint.shrink_checkpoint(src, tmp_path / "a.safetensors", budget=0.5, cache_dir=tmp_path / "c")
-    assert len(counted) == 3  # budget: pass 1 computes and stores, pass 2 reads the cache
-    assert first["cache"]["hits"] == 3
+    # budget, values first: pass 1 the values of all three layers, pass 2 the kept vectors of the factored ones
+    factored = sum(1 for e in first["plan"]["sites"].values() if e["action"] == "factor")
+    assert factored >= 1
+    assert calls == ["values_only"] * 3 + ["leading"] * factored
     second = checkpoint.shrink_checkpoint(src, tmp_path / "b.safetensors", budget=0.5, cache_dir=tmp_path / "c")
-    # pass 1 reads the three spectra; pass 2 reuses the three factor results stored beside them (resume)
-    assert len(counted) == 3 and second["cache"]["hits"] == 3 and second["cache"]["misses"] == 0
+    # pass 1 reads the three value entries; pass 2 reuses the factor results stored beside them (resume)
+    assert len(calls) == 3 + factored and second["cache"]["hits"] == 3 and second["cache"]["misses"] == 0
     assert first["cache"]["results_reused"] == 0 and second["cache"]["results_reused"] == 3
     assert (tmp_path / "a.safetensors").read_bytes() == (tmp_path / "b.safetensors").read_bytes()
