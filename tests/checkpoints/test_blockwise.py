@@ -183,6 +183,19 @@ def test_byte_identical_across_engines_and_task_orders(ckpt, shrunk, tmp_path):
     assert list(work.iterdir()) == []  # the work files are removed
 
 
+def test_byte_identical_on_a_local_cluster_of_two_workers(ckpt, shrunk, tmp_path, dask_engine):
+    """Issue 15's CI check for the calibrated path: slice statistics and factors as tasks on 2 Dask worker
+    processes give the same files, byte for byte, as the single-process run."""
+    out, _ = shrunk
+    other = tmp_path / "cluster"
+    done = shrink_blockwise(ckpt, other, budget=BUDGET, calibration=_calibration(), threads=1, cluster=dask_engine)
+    assert done["engine"]["engine"].startswith("dask") and done["engine"]["workers"] == 2
+    names = sorted(p.name for p in out.iterdir())
+    assert names == sorted(p.name for p in other.iterdir())
+    for n in names:
+        assert (out / n).read_bytes() == (other / n).read_bytes(), n
+
+
 def test_kept_fraction_meets_the_budget(shrunk):
     out, done = shrunk
     plan = done["plan"]
