@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import copy
 import csv
 import io
 from pathlib import Path
@@ -85,7 +86,7 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
         if calib is not None:
             result = compress_from(calib, policy, sequential=args.sequential)
         else:
-            result = compress(loaded.model, policy, spectra=spectra,
+            result = compress(sharing_copy(loaded.model), policy, inplace=True, spectra=spectra,
                               progress=ui.progress and spectra is None, cache=quality["cache"],
                               workers=quality["workers"])
             spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum
@@ -102,6 +103,15 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
             row["worst_weight_error"] = _worst_predicted_error(result.plan)
         rows.append(row)
     return rows, None if inputs is None else inputs.source
+
+
+def sharing_copy(model):
+    """A copy of ``model``'s module tree that shares its parameter and buffer tensors: what a sweep rewrites for one
+    budget, measures and drops. Rewriting swaps modules in the copy and never writes into a shared tensor, so the
+    original is untouched, while copying its weights for every budget (``compress(inplace=False)``) is skipped.
+    Not for results that outlive the sweep: training such a copy would train the original."""
+    memo = {id(t): t for t in (*model.parameters(), *model.buffers())}
+    return copy.deepcopy(model, memo)
 
 
 def _worst_predicted_error(plan: dict) -> float:

@@ -21,7 +21,8 @@ from __future__ import annotations
 
 import dataclasses
 import time
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from typing import Any
 
 import torch
@@ -99,12 +100,15 @@ def evaluate(
         A :class:`factorize.measure.report.Report`.
     """
     batches = list(batches)
+    sites = None if sites is None else list(sites)  # read twice: for the reference pass and the per-layer table
     if not batches:
         raise FactorizeError("no sample inputs to evaluate on", fix="give at least one batch of sample inputs")
     bar = _progress(progress)
     memo = {} if memo is None else memo
-    if "reference" not in memo:
-        memo["reference"] = run_model(original, bar(batches, "original"))
+    if "reference" not in memo:  # the per-layer table's output positions are counted in the same pass
+        counted = [n for n in _report_names(compressed, plan, sites) if n not in memo.get("positions", {})]
+        memo["reference"], positions = _reference_run(original, batches, counted, bar)
+        memo["positions"] = {**memo.get("positions", {}), **positions}
     ref = memo["reference"]
     cand = run_model(compressed, bar(batches, "compressed"))
     masks = [token_mask(b) for b in batches]
@@ -145,6 +149,21 @@ def evaluate(
         report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
         report.latency_threads = torch.get_num_threads()
     return report
+
+
+def _reference_run(original: nn.Module, batches: list, names: list[str], bar) -> tuple[list[torch.Tensor], dict]:
+    """The original's outputs on every batch (as :func:`run_model`) and, from the same pass, the output positions
+    of the named layers on the first batch (as :func:`output_positions`, which would run it a second time)."""
+    outputs: list[torch.Tensor] = []
+    positions: dict[str, int] = {}
+    for i, batch in enumerate(bar(batches, "original")):
+        if i == 0 and names:
+            with _counting_positions(original, names, batch) as counts:
+                outputs += run_model(original, [batch])
+            positions = {name: counts.get(name, 0) for name in names}
+        else:
+            outputs += run_model(original, [batch])
+    return outputs, positions
 
 
 def nonfinite_notes(reference: Sequence[torch.Tensor], candidate: Sequence[torch.Tensor]) -> list[str]:
@@ -205,6 +224,16 @@ def output_positions(model: nn.Module, names: Iterable[str], batch: Any) -> dict
     A linear layer applied to (B, T, n) has T positions per sample; a conv has one per output pixel. A layer the
     forward pass never calls gets 0.
     """
+    names = list(names)
+    with _counting_positions(model, names, batch) as counts:
+        run_model(model, [batch])
+    return {name: counts.get(name, 0) for name in names}
+
+
+@contextmanager
+def _counting_positions(model: nn.Module, names: Iterable[str], batch: Any) -> Iterator[dict[str, int]]:
+    """Hooks that count, while the block runs ``model`` on ``batch``, each named layer's output positions per
+    sample into the dict yielded (a layer not called stays absent)."""
     n_samples = max(batch_size(batch), 1)
     counts: dict[str, int] = {}
 
@@ -217,8 +246,7 @@ def output_positions(model: nn.Module, names: Iterable[str], batch: Any) -> dict
         return hook
 
     with forward_hooks(model, {name: hook_for(name) for name in names}):
-        run_model(model, [batch])
-    return {name: counts.get(name, 0) for name in names}
+        yield counts
 
 
 def with_macs(model: nn.Module, sites: Sequence[Site], example: Any) -> list[Site]:
@@ -266,6 +294,16 @@ def weight_error(original: torch.Tensor, approximation: torch.Tensor) -> float:
     """``||W - W'||_F / ||W||_F`` in float64 (0 for an all-zero W that is matched exactly)."""
     W, V = original.detach().to(torch.float64).cpu(), approximation.detach().to(torch.float64).cpu()
     return _ratio(float(torch.linalg.matrix_norm(W - V)), float(torch.linalg.matrix_norm(W)))
+
+
+def _report_names(compressed: nn.Module, plan: Mapping | None, sites: Iterable[str] | None) -> list[str]:
+    """The names of the layers :func:`layer_reports` describes: the plan's sites, or without a plan the factored
+    layers of ``compressed``; only those in ``sites`` when given."""
+    names = list(plan["sites"]) if plan else list(factored_layers(compressed))
+    if sites is not None:
+        wanted = set(sites)
+        names = [n for n in names if n in wanted]
+    return names
 
 
 def layer_reports(

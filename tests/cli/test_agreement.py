@@ -76,3 +76,64 @@ def test_a_recipe_without_a_method_gets_the_library_default(work) -> None:
     assert recipe["plan"]["method"] == plain["plan"]["method"]  # what compress chooses when told nothing
     assert recipe["plan"]["sites"] == plain["plan"]["sites"]
 
+
+
+def test_each_sweep_row_is_one_budget_compressed_and_evaluated_alone(work) -> None:
+    # The sweep shares work between budgets (one decomposition, the original's outputs and output positions found
+    # once, a copy of the model that shares its weights): none of that may change a row. Each row is checked
+    # against compress + evaluate of that budget alone, on a deep copy with a fresh evaluation (nothing shared but
+    # the spectra, which are the same by construction), on the held-out digits split (Alpaydin & Kaynak, UCI).
+    import torch
+
+    from factorize.default import load_default
+    from factorize.measure.evaluate import evaluate
+    from factorize.measure.inputs import load_inputs, prepare
+    from factorize.pipeline import compress, sweep_spectra
+    from factorize.plan.policy import Policy
+    from factorize.plan.ranks import plan_summary
+
+    budgets = (0.6, 0.4, 0.25)
+    rows = _json(["sweep", "-m", DIGITS, "--budgets", ",".join(map(str, budgets)), "--repeats", "0",
+                  "-i", str(work / "test.safetensors")])["rows"]
+    model = load_default()
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    inputs = prepare(load_inputs(work / "test.safetensors"), model)
+    spectra = sweep_spectra(model, [Policy.from_keywords(budget=b) for b in budgets])
+    assert [r["budget"] for r in rows] == sorted(budgets, reverse=True)
+    for row in rows:
+        result = compress(model, budget=row["budget"], spectra=spectra, example=inputs.batches[0])
+        rep = evaluate(model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
+                       latency_repeats=0)
+        assert row["params_after"] == result.params_after
+        assert row["factored_layers"] == plan_summary(result.plan)["factored"]
+        for key in ("relative_l2", "cosine_mean", "cosine_min", "top1_agreement", "kl"):
+            assert row[key] == pytest.approx(rep.drift[key], rel=1e-9, abs=1e-12), key
+        for key in ("accuracy_before", "accuracy_after", "macs_before", "macs_after"):
+            assert row[key] == getattr(rep, key), key
+        assert row["worst_weight_error"] == pytest.approx(rep.worst_weight_error, rel=1e-9)
+        # and a shrink of that budget alone (its own decomposition) allocates the same parameters
+        alone = _json(["shrink", "-m", DIGITS, "--budget", str(row["budget"]), "-o", str(work / "one.safetensors"),
+                       "--force", "--repeats", "0", "-i", str(work / "test.safetensors")])
+        assert alone["report"]["params_after"] == row["params_after"]
+    assert all(torch.equal(before[k], v) for k, v in model.state_dict().items())  # nothing wrote into the original
+
+
+def test_the_sweeps_copy_shares_weights_and_leaves_the_original_alone(work) -> None:
+    # Each budget is applied to a copy of the module tree that shares the original's tensors (no weight copy per
+    # budget); rewriting it swaps modules in the copy only.
+    import torch
+
+    from factorize.cli.sweep import sharing_copy
+    from factorize.default import load_default
+    from factorize.pipeline import compress
+    from factorize.rewrite.layers import factored_layers
+
+    model = load_default()
+    before = {k: v.clone() for k, v in model.state_dict().items()}
+    modules = dict(model.named_modules())
+    copy = sharing_copy(model)
+    assert all(a is b for a, b in zip(copy.parameters(), model.parameters()))
+    result = compress(copy, budget=0.3, inplace=True, example=torch.zeros(1, 64))
+    assert result.model is copy and factored_layers(copy)
+    assert not factored_layers(model) and dict(model.named_modules()) == modules
+    assert all(torch.equal(before[k], v) for k, v in model.state_dict().items())

@@ -191,6 +191,30 @@ def test_evaluate_counts_tied_weights_once_and_embedding_macs(tied_lm) -> None:
     assert rows["mix"].macs_after == 4 * 32 * 6
 
 
+def test_evaluate_runs_the_original_once_per_batch_and_once_per_memo(tied_lm) -> None:
+    # The output positions of the per-layer table come from the same pass as the original's outputs (hooks on the
+    # first batch), and a memo shared by several evaluations (a sweep) runs the original only for the first one.
+    import factorize
+    from factorize.measure.evaluate import evaluate
+
+    gen = torch.Generator().manual_seed(0)
+    batches = [torch.randint(0, 50, (2, 6), generator=gen), torch.randint(0, 50, (3, 6), generator=gen)]
+    compressed = [factorize.compress(tied_lm, rank=r).model for r in (4, 2)]
+    calls = []
+    handle = tied_lm.register_forward_hook(lambda module, args, output: calls.append(args[0].shape[0]))
+    try:
+        memo: dict = {}
+        reports = [evaluate(tied_lm, c, batches, latency_repeats=0, memo=memo) for c in compressed]
+    finally:
+        handle.remove()
+    assert calls == [2, 3]  # one forward pass of the original per batch, for both evaluations together
+    for report, r in zip(reports, (4, 2)):
+        mix = next(row for row in report.layers if row.name == "mix")
+        assert mix.macs == 16 * 16 * 6 and mix.macs_after == r * 32 * 6  # per sample: 6 tokens (common practice)
+    alone = evaluate(tied_lm, factorize.compress(tied_lm, rank=2).model, batches, latency_repeats=0)
+    assert alone.drift == reports[1].drift and alone.to_json()["layers"] == reports[1].to_json()["layers"]
+
+
 def test_evaluate_rejects_bad_labels_and_empty_inputs(mlp) -> None:
     import factorize
     from factorize.measure.evaluate import evaluate
