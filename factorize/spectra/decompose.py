@@ -17,8 +17,8 @@ Methods:
   Seeded through an explicit ``torch.Generator``: the same matrix and seed give the same factors.
 
 * values first (the budget route): :func:`values_only` (every singular value from ``eigvalsh`` of the Gram
-  matrix, no vectors) to allocate ranks, then :func:`leading` (only the kept vectors, by subspace iteration with
-  an exact 1% error guard, since the whole spectrum is known).
+  matrix, no vectors) to allocate ranks, then :func:`leading` (only the kept vectors, by Chebyshev-filtered
+  subspace iteration with an exact 1% error guard, both possible because the whole spectrum is known).
 
 All return a :class:`Spectrum`. By the Eckart-Young-Mirsky theorem (Eckart & Young 1936; Mirsky 1960) the
 rank-r truncation ``U_r S_r V_r^T`` is the best rank-r approximation in every unitarily invariant norm, with
@@ -360,7 +360,7 @@ def _fix_signs(U: torch.Tensor, Vh: torch.Tensor) -> tuple[torch.Tensor, torch.T
 # ---------------------------------------------------------------------------------------------------------------
 # singular values first, vectors only for what is kept
 
-LEADING_MAX_ITERS = 12  # subspace iterations before leading() falls back to the full Gram eigendecomposition
+LEADING_MAX_ITERS = 12  # filtered subspace rounds before leading() falls back to the full Gram eigendecomposition
 LEADING_DIRECT_FRACTION = 2  # leading(): block of rank + oversampling above order / this -> full eigh directly
 
 
@@ -437,16 +437,18 @@ def leading(
 ) -> Spectrum:
     """The leading ``rank`` singular vector pairs of ``matrix``, within ``tolerance`` (1%) of the optimal error.
 
-    Subspace (block power) iteration on the smaller Gram matrix G (Golub & Van Loan, sec. 8.2.4; the same
-    iteration as the power steps of Halko, Martinsson & Tropp 2011, sec. 4.5): a seeded Gaussian block of
-    ``rank + oversample`` columns, each step one product G Q and a thin QR, with Rayleigh-Ritz (the eigenpairs of
-    Q^T G Q) after each product. Because every singular value is known (``values``, from :func:`values_only`,
+    Chebyshev-filtered subspace iteration on the smaller Gram matrix G (Golub & Van Loan, sec. 8.2.4; Saad,
+    Numerical Methods for Large Eigenvalue Problems, 2nd ed., 2011, sec. 7.4; Zhou & Saad 2007): a seeded
+    Gaussian block of ``rank + oversample`` columns; each round applies a Chebyshev polynomial of G that keeps the
+    eigenvalues the block cannot hold within [-1, 1] and amplifies the wanted ones (degree d: d products G Y; the
+    interval is exact because every eigenvalue is known, see :func:`_chebyshev_plan`), one thin QR, and
+    Rayleigh-Ritz (the eigenpairs of Q^T G Q); the next round starts from the Ritz vectors. Because every singular value is known (``values``, from :func:`values_only`,
     computed here when not given), the error is known exactly rather than estimated: with orthonormal Ritz
     vectors V_r, ``||W - W V_r V_r^T||_F^2 = ||W||_F^2 - sum of the top r Ritz values`` and the optimum is
     ``||W||_F^2 - sum_{i<=r} s_i^2`` (Eckart-Young-Mirsky). The iteration stops once the error at ``rank`` and at
     every rank in ``guard_ranks`` (smaller ranks that will be cut from these vectors, e.g. by a sweep) is within
     ``1 + tolerance`` of its optimum, allowing for the rounding of the Gram route (``2 r eps s_1^2``). After
-    ``max_iters`` steps without that, or when the block would exceed half of min(m, n), it falls back to the full
+    ``max_iters`` rounds without that, or when the block would exceed half of min(m, n), it falls back to the full
     eigendecomposition of G (``method`` says which route was taken).
 
     Returns a :class:`Spectrum` holding all of ``values.S`` (so it still serves rank allocation) and ``rank``
@@ -474,7 +476,7 @@ def leading(
     return _leading(w, int(rank), values, guard, oversample, max_iters, tolerance, seed)
 
 
-LEADING_AMPLIFICATION = 64.0  # leading(): the filter degree is the smallest that amplifies s_r^2 this much ...
+LEADING_AMPLIFICATION = 8.0  # leading(): the filter degree is the smallest that amplifies s_r^2 this much ...
 LEADING_MAX_DEGREE = 6  # ... at most this degree ...
 LEADING_SPREAD = 0.1  # ... and amplifying s_1^2 over s_r^2 by at most this / eps (float32: 8.4e5)
 
@@ -536,7 +538,9 @@ def _leading(w: torch.Tensor, rank: int, values: Spectrum, guard: list[int], ove
     total = values.total_energy
     slack = 2 * np.array(guard) * float(torch.finfo(w.dtype).eps) * (energies[0] if len(energies) else 0.0)
     allowed = (1 + tolerance) ** 2 * np.maximum(total - kept[guard], 0.0) + slack  # err^2 allowed at each guard rank
-    p = max(16, rank // 2) if oversample is None else max(int(oversample), 0)
+    # oversampling: half the rank, but no more than keeps the block within k / LEADING_DIRECT_FRACTION (the
+    # filter makes up for a narrower gap with its degree), and at least 16
+    p = max(16, min(rank // 2, k // LEADING_DIRECT_FRACTION - rank)) if oversample is None else max(int(oversample), 0)
     block = min(rank + p, k)
     vecs = None
     method = "leading:eigh"
