@@ -17,8 +17,8 @@ Methods:
   Seeded through an explicit ``torch.Generator``: the same matrix and seed give the same factors.
 
 * values first (the budget route): :func:`values_only` (every singular value from ``eigvalsh`` of the Gram
-  matrix, no vectors) to allocate ranks, then :func:`leading` (only the kept vectors, by subspace iteration with
-  an exact 1% error guard, since the whole spectrum is known).
+  matrix, no vectors) to allocate ranks, then :func:`leading` (only the kept vectors, by Chebyshev-filtered
+  subspace iteration with an exact 1% error guard, both possible because the whole spectrum is known).
 
 All return a :class:`Spectrum`. By the Eckart-Young-Mirsky theorem (Eckart & Young 1936; Mirsky 1960) the
 rank-r truncation ``U_r S_r V_r^T`` is the best rank-r approximation in every unitarily invariant norm, with
@@ -177,18 +177,42 @@ def decompose(
 
 def _prepared(matrix: torch.Tensor | np.ndarray, precision: str | None, name: str) -> torch.Tensor:
     """The matrix as a 2-D tensor in the compute dtype, checked finite (a FactorizeError naming ``name`` if not)."""
+    w = _as_matrix(matrix, precision, name)
+    if not bool(torch.isfinite(w).all()):
+        _raise_not_finite(w, name)
+    return w
+
+
+def _as_matrix(matrix: torch.Tensor | np.ndarray, precision: str | None, name: str) -> torch.Tensor:
     w = torch.as_tensor(matrix).detach()
     if w.dim() != 2:
         raise FactorizeError(f"{name}: expected a 2-D matrix, got shape {tuple(w.shape)}")
-    dtype = compute_dtype_for(w, precision)
-    w = w.to(dtype)
-    if not bool(torch.isfinite(w).all()):
-        bad = int((~torch.isfinite(w)).sum())
+    return w.to(compute_dtype_for(w, precision))
+
+
+def _raise_not_finite(w: torch.Tensor, name: str) -> None:
+    bad = int((~torch.isfinite(w)).sum())
+    if bad:
         raise FactorizeError(
             f"{name}: the weight holds {bad} NaN or Inf value(s)",
             fix="repair or retrain the layer, or exclude it (exclude=[...] / --exclude)",
         )
-    return w
+
+
+def _prepared_with_energy(matrix: torch.Tensor | np.ndarray, precision: str | None,
+                          name: str) -> tuple[torch.Tensor, float]:
+    """:func:`_prepared` and ``||W||_F^2`` (float64) in one pass over the matrix.
+
+    The float64 sum of squares is finite exactly when every entry is finite, for float32 entries (each square is
+    at most 1.2e77 and a matrix holds far fewer than 1e231 of them): NaN and Inf propagate through the sum. So
+    the element-wise ``isfinite`` scan is run only when the sum is not finite, to count the offenders (or, for
+    float64 entries above about 1e154, to find that they are all finite after all).
+    """
+    w = _as_matrix(matrix, precision, name)
+    total = _frobenius2(w)
+    if not np.isfinite(total):
+        _raise_not_finite(w, name)
+    return w, total
 
 
 def _exact(w: torch.Tensor) -> Spectrum:
@@ -336,7 +360,7 @@ def _fix_signs(U: torch.Tensor, Vh: torch.Tensor) -> tuple[torch.Tensor, torch.T
 # ---------------------------------------------------------------------------------------------------------------
 # singular values first, vectors only for what is kept
 
-LEADING_MAX_ITERS = 12  # subspace iterations before leading() falls back to the full Gram eigendecomposition
+LEADING_MAX_ITERS = 12  # filtered subspace rounds before leading() falls back to the full Gram eigendecomposition
 LEADING_DIRECT_FRACTION = 2  # leading(): block of rank + oversampling above order / this -> full eigh directly
 
 
@@ -383,17 +407,18 @@ def values_only(matrix: torch.Tensor | np.ndarray, *, precision: str | None = No
     ``keep_gram=True`` keeps the Gram matrix on the result (``spectrum.gram``, k x k, at most the weight's size)
     so that :func:`leading` does not form it again; drop it (``spectrum.gram = None``) once the vectors are in.
     """
-    w = _prepared(matrix, precision, name)
-    return _values_only(w, keep_gram)
+    w, total = _prepared_with_energy(matrix, precision, name)
+    return _values_only(w, keep_gram, total)
 
 
-def _values_only(w: torch.Tensor, keep_gram: bool = False) -> Spectrum:
+def _values_only(w: torch.Tensor, keep_gram: bool = False, total: float | None = None) -> Spectrum:
     m, n = w.shape
     gram = _small_gram(w)  # (k, k)
     with _lapack_threads(gram.shape[0]):
         evals = torch.linalg.eigvalsh(gram)  # ascending
     S = evals.flip(0).clamp_min(0).sqrt()  # (k,)
-    return Spectrum(w.new_empty(m, 0), S, w.new_empty(0, n), total_energy=_frobenius2(w), method="values", exact=True,
+    return Spectrum(w.new_empty(m, 0), S, w.new_empty(0, n), method="values", exact=True,
+                    total_energy=_frobenius2(w) if total is None else total,
                     gram=gram if keep_gram else None)
 
 
@@ -412,16 +437,18 @@ def leading(
 ) -> Spectrum:
     """The leading ``rank`` singular vector pairs of ``matrix``, within ``tolerance`` (1%) of the optimal error.
 
-    Subspace (block power) iteration on the smaller Gram matrix G (Golub & Van Loan, sec. 8.2.4; the same
-    iteration as the power steps of Halko, Martinsson & Tropp 2011, sec. 4.5): a seeded Gaussian block of
-    ``rank + oversample`` columns, each step one product G Q and a thin QR, with Rayleigh-Ritz (the eigenpairs of
-    Q^T G Q) after each product. Because every singular value is known (``values``, from :func:`values_only`,
+    Chebyshev-filtered subspace iteration on the smaller Gram matrix G (Golub & Van Loan, sec. 8.2.4; Saad,
+    Numerical Methods for Large Eigenvalue Problems, 2nd ed., 2011, sec. 7.4; Zhou & Saad 2007): a seeded
+    Gaussian block of ``rank + oversample`` columns; each round applies a Chebyshev polynomial of G that keeps the
+    eigenvalues the block cannot hold within [-1, 1] and amplifies the wanted ones (degree d: d products G Y; the
+    interval is exact because every eigenvalue is known, see :func:`_chebyshev_plan`), one thin QR, and
+    Rayleigh-Ritz (the eigenpairs of Q^T G Q); the next round starts from the Ritz vectors. Because every singular value is known (``values``, from :func:`values_only`,
     computed here when not given), the error is known exactly rather than estimated: with orthonormal Ritz
     vectors V_r, ``||W - W V_r V_r^T||_F^2 = ||W||_F^2 - sum of the top r Ritz values`` and the optimum is
     ``||W||_F^2 - sum_{i<=r} s_i^2`` (Eckart-Young-Mirsky). The iteration stops once the error at ``rank`` and at
     every rank in ``guard_ranks`` (smaller ranks that will be cut from these vectors, e.g. by a sweep) is within
     ``1 + tolerance`` of its optimum, allowing for the rounding of the Gram route (``2 r eps s_1^2``). After
-    ``max_iters`` steps without that, or when the block would exceed half of min(m, n), it falls back to the full
+    ``max_iters`` rounds without that, or when the block would exceed half of min(m, n), it falls back to the full
     eigendecomposition of G (``method`` says which route was taken).
 
     Returns a :class:`Spectrum` holding all of ``values.S`` (so it still serves rank allocation) and ``rank``
@@ -429,7 +456,7 @@ def leading(
     ``Vh_r = S_r^-1 U_r^T W``), so ``factors(r)`` multiplies back to exactly the projection ``W V_r V_r^T`` for
     every r <= rank. Seeded through an explicit ``torch.Generator``: same matrix and seed, same bytes.
     """
-    w = _prepared(matrix, precision, name)
+    w, total = _prepared_with_energy(matrix, precision, name)
     k = min(w.shape)
     guard = sorted({int(r) for r in guard_ranks} | {int(rank)}) if k else []
     bad = [r for r in guard if not 1 <= r <= k]
@@ -437,14 +464,66 @@ def leading(
         raise FactorizeError(f"{name}: rank(s) {bad} outside 1..{k} for a {tuple(w.shape)} matrix",
                              fix=f"ask for ranks between 1 and {k}")
     if values is None:
-        values = _values_only(w)
-    elif values.shape != tuple(w.shape) or values.computed_rank != k or not values.exact:
+        values = _values_only(w, total=total)
+    elif (values.shape != tuple(w.shape) or values.computed_rank != k or not values.exact
+          or not np.isclose(values.total_energy, total, rtol=1e-5, atol=0.0)):
         raise FactorizeError(f"{name}: values= holds {values.computed_rank} singular values of a {values.shape} "
-                             f"matrix, not all {k} of this {tuple(w.shape)} one",
+                             f"matrix with ||W||_F^2 = {values.total_energy:.6g}, not all {k} of this "
+                             f"{tuple(w.shape)} one (||W||_F^2 = {total:.6g})",
                              fix="pass values_only(matrix) of this same matrix, or values=None")
     if max_iters < 0 or tolerance < 0:
         raise FactorizeError(f"{name}: max_iters and tolerance must be >= 0, got {max_iters} and {tolerance}")
     return _leading(w, int(rank), values, guard, oversample, max_iters, tolerance, seed)
+
+
+LEADING_AMPLIFICATION = 8.0  # leading(): the filter degree is the smallest that amplifies s_r^2 this much ...
+LEADING_MAX_DEGREE = 6  # ... at most this degree ...
+LEADING_SPREAD = 0.1  # ... and amplifying s_1^2 over s_r^2 by at most this / eps (float32: 8.4e5)
+
+
+def _chebyshev_plan(lam: np.ndarray, rank: int, block: int, dtype: torch.dtype) -> tuple[int, float, float, float]:
+    """Degree and interval of the Chebyshev filter for the top ``rank`` of eigenvalues ``lam`` (descending),
+    iterating a block of ``block`` columns: ``(degree, c, e, x_r)``.
+
+    The filter is T_d((G - c I) / e), with [c - e, c + e] = [lambda_min, lambda_{l+1}] the eigenvalues the block
+    cannot hold, which it keeps within [-1, 1], while it multiplies the wanted lambda_i >= lambda_r by
+    T_d(x_i) >= T_d(x_r), x_i = (lambda_i - c) / e > 1, which grows like (x + sqrt(x^2 - 1))^d (Saad, Numerical
+    Methods for Large Eigenvalue Problems, 2nd ed., 2011, sec. 7.4; Zhou & Saad, "Chebyshev-filtered subspace
+    iteration", 2007). All eigenvalues are known, so the interval is exact. The degree is the smallest reaching
+    ``LEADING_AMPLIFICATION`` at lambda_r, capped by ``LEADING_MAX_DEGREE`` and by the spread
+    T_d(x_1) / T_d(x_r): the rounding of the filtered block is about eps * spread relative to its lambda_r
+    directions, so the spread stays below ``LEADING_SPREAD / eps``.
+    """
+    top, low = float(lam[0]), float(lam[-1])
+    wall = float(lam[block]) if block < len(lam) else low
+    e = max((wall - low) / 2, top * float(torch.finfo(dtype).eps))
+    c = wall - e
+    x_r, x_1 = (float(lam[rank - 1]) - c) / e, (top - c) / e
+    if x_r <= 1.0:  # no gap between lambda_r and the unwanted part: a plain shifted power step
+        return 1, c, e, max(x_r, 1.0)
+    limit = LEADING_SPREAD / float(torch.finfo(dtype).eps)
+    degree = 1
+    while degree < LEADING_MAX_DEGREE and np.cosh(degree * np.arccosh(x_r)) < LEADING_AMPLIFICATION:
+        spread = np.cosh((degree + 1) * np.arccosh(x_1)) / np.cosh((degree + 1) * np.arccosh(x_r))
+        if not spread <= limit:
+            break
+        degree += 1
+    return degree, c, e, x_r
+
+
+def _chebyshev_filter(gram: torch.Tensor, X: torch.Tensor, GX: torch.Tensor | None, degree: int, c: float,
+                      e: float, x_r: float) -> torch.Tensor:
+    """T_d((G - cI)/e) X / T_d(x_r) by the three-term recurrence T_{j+1} = 2 x T_j - T_{j-1}, scaled by
+    T_j(x_r) at every step so that the lambda_r components keep unit scale (Zhou & Saad 2007, Alg. 3.2, scaled at
+    the wanted end). ``GX`` = G X when already known (saves the first product). d products G @ Y."""
+    t_prev, t = 1.0, x_r  # T_0(x_r), T_1(x_r)
+    Y_prev, Y = X, ((gram @ X if GX is None else GX) - c * X) * (1.0 / (e * t))  # T_1 X / T_1(x_r)
+    for _ in range(1, degree):
+        t_next = 2 * x_r * t - t_prev
+        Y_next = torch.addmm(Y, gram, Y, beta=-c, alpha=1.0).mul_(2 * t / (e * t_next))
+        Y_next.sub_(Y_prev, alpha=t_prev / t_next)
+        Y_prev, Y, t_prev, t = Y, Y_next, t, t_next
+    return Y
 
 
 def _leading(w: torch.Tensor, rank: int, values: Spectrum, guard: list[int], oversample: int | None,
@@ -459,26 +538,30 @@ def _leading(w: torch.Tensor, rank: int, values: Spectrum, guard: list[int], ove
     total = values.total_energy
     slack = 2 * np.array(guard) * float(torch.finfo(w.dtype).eps) * (energies[0] if len(energies) else 0.0)
     allowed = (1 + tolerance) ** 2 * np.maximum(total - kept[guard], 0.0) + slack  # err^2 allowed at each guard rank
-    p = max(16, rank // 2) if oversample is None else max(int(oversample), 0)
+    # oversampling: half the rank, but no more than keeps the block within k / LEADING_DIRECT_FRACTION (the
+    # filter makes up for a narrower gap with its degree), and at least 16
+    p = max(16, min(rank // 2, k // LEADING_DIRECT_FRACTION - rank)) if oversample is None else max(int(oversample), 0)
     block = min(rank + p, k)
     vecs = None
     method = "leading:eigh"
     if block * LEADING_DIRECT_FRACTION <= k and max_iters > 0:
+        degree, c, e, x_r = _chebyshev_plan(energies, rank, block, w.dtype)
         gen = torch.Generator(device="cpu").manual_seed(seed)
-        omega = torch.randn(k, block, generator=gen, dtype=w.dtype).to(w.device)  # (k, l) Gaussian start
-        Q, _ = torch.linalg.qr(gram @ omega)  # (k, l): one power step, orthonormalised
+        X = torch.randn(k, block, generator=gen, dtype=w.dtype).to(w.device)  # (k, l) Gaussian start
+        GX = None
         for it in range(1, max_iters + 1):
-            Y = gram @ Q  # (k, l)
-            H = Q.T @ Y  # (l, l) Rayleigh quotient
+            Q, _ = torch.linalg.qr(_chebyshev_filter(gram, X, GX, degree, c, e, x_r))  # (k, l) filtered block
+            GQ = gram @ Q  # (k, l)
+            H = Q.T @ GQ  # (l, l) Rayleigh quotient (Rayleigh-Ritz: Golub & Van Loan, sec. 8.1)
             with _lapack_threads(block):
                 ritz, Z = torch.linalg.eigh((H + H.T) / 2)  # ascending
             ritz, Z = ritz.flip(0), Z.flip(1)
             captured = np.concatenate([[0.0], np.cumsum(ritz.to(torch.float64).cpu().numpy())])
             if bool(np.all(total - captured[guard] <= allowed)):
                 vecs = Q @ Z[:, :rank]  # (k, r) Ritz vectors
-                method = f"leading:subspace({it})"
+                method = f"leading:subspace({it}, degree {degree})"
                 break
-            Q, _ = torch.linalg.qr(Y)  # (k, l) next block
+            X, GX = Q @ Z, GQ @ Z  # next round starts from the Ritz vectors, whose G-image is already known
     if vecs is None:  # fallback (or a block too large to pay off): the full symmetric eigendecomposition
         with _lapack_threads(k):
             _, evecs = torch.linalg.eigh(gram)  # ascending

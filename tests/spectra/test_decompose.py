@@ -230,3 +230,64 @@ def test_leading_names_bad_input():
         leading(W, 5, guard_ranks=[21])
     with pytest.raises(FactorizeError, match="values="):
         leading(W, 5, values=values_only(torch.randn(20, 30)))
+
+
+def test_chebyshev_filter_is_the_scaled_chebyshev_polynomial():
+    # Reference: numpy.polynomial.chebyshev.chebval applied to the eigenvalues from numpy.linalg.eigh, i.e.
+    # T_d((G - cI)/e) X / T_d(x_r) computed through the spectral decomposition G = V diag(lam) V^T.
+    from factorize.spectra.decompose import _chebyshev_filter
+
+    rng = np.random.default_rng(7)
+    A = rng.standard_normal((40, 40))
+    G = A @ A.T
+    X = rng.standard_normal((40, 6))
+    lam, V = np.linalg.eigh(G)
+    c, e, x_r = 20.0, 15.0, 2.5
+    for degree in (1, 2, 3, 5):
+        coef = np.zeros(degree + 1)
+        coef[-1] = 1.0
+        ref = V @ (np.polynomial.chebyshev.chebval((lam - c) / e, coef)[:, None] * (V.T @ X))
+        ref /= np.polynomial.chebyshev.chebval(x_r, coef)
+        got = _chebyshev_filter(torch.from_numpy(G), torch.from_numpy(X), None, degree, c, e, x_r).numpy()
+        np.testing.assert_allclose(got, ref, rtol=1e-9, atol=1e-9 * np.abs(ref).max())
+        GX = torch.from_numpy(G @ X)  # the first product supplied (as after a Rayleigh-Ritz step): same result
+        np.testing.assert_allclose(_chebyshev_filter(torch.from_numpy(G), torch.from_numpy(X), GX, degree, c, e,
+                                                     x_r).numpy(), got, rtol=1e-12, atol=1e-12 * np.abs(got).max())
+
+
+@pytest.mark.parametrize("shape,rank", [((256, 256), 40), ((512, 128), 30), ((128, 512), 12)])
+def test_leading_filtered_iteration_on_a_slow_power_law(shape, rank):
+    # A slowly decaying spectrum s_i = i^-0.5 (float32), where plain power steps converge slowly: the filtered
+    # iteration is taken (degree > 1) and the factors stay within 1% of the Eckart-Young optimum (numpy.linalg.svd).
+    rng = np.random.default_rng(8)
+    k = min(shape)
+    U, _ = np.linalg.qr(rng.standard_normal((shape[0], k)))
+    V, _ = np.linalg.qr(rng.standard_normal((shape[1], k)))
+    W = torch.from_numpy((U * np.arange(1, k + 1) ** -0.5) @ V.T).float()
+    spec = leading(W, rank)
+    assert spec.method.startswith("leading:subspace(") and "degree 1)" not in spec.method
+    err = float(np.linalg.norm(W.double().numpy() - spec.truncated(rank).double().numpy()))
+    assert err <= 1.01 * _optimum(W.double().numpy(), rank)
+    # The Ritz vectors (the smaller side: U when wide, V otherwise) are orthonormal, so B A is the projection of W
+    # onto them and its error is the one the guard computed.
+    ritz = spec.U.T if shape[0] <= shape[1] else spec.Vh
+    np.testing.assert_allclose((ritz @ ritz.T).double().numpy(), np.eye(rank), atol=1e-4)
+
+
+@pytest.mark.parametrize("bad", [float("nan"), float("inf"), -float("inf")])
+def test_values_first_route_refuses_non_finite_weights(bad):
+    # The check is a float64 sum of squares (NaN and Inf propagate through it); the message counts the entries.
+    W = torch.randn(20, 30)
+    W[3, 4] = bad
+    W[7, 1] = bad
+    for call in (lambda: values_only(W, name="enc.fc"), lambda: leading(W, 3, name="enc.fc")):
+        with pytest.raises(FactorizeError, match=r"enc\.fc: the weight holds 2 NaN or Inf"):
+            call()
+
+
+def test_leading_refuses_values_of_another_matrix_of_the_same_shape():
+    W = torch.randn(30, 20, generator=torch.Generator().manual_seed(9))
+    other = 2 * W  # same shape, other ||W||_F^2
+    with pytest.raises(FactorizeError, match="values="):
+        leading(W, 5, values=values_only(other))
+    leading(W, 5, values=values_only(W))  # its own values are accepted
