@@ -57,7 +57,10 @@ def main_bench() -> None:
     common = ["-m", model, "--max-samples", "64", "--repeats", "0", "--quiet", "--json",
               "--include", "encoder.*"]
     budgets = "0.9,0.8,0.7,0.6,0.5,0.4,0.3,0.2"
-    times: dict[str, list[float]] = {"shrink": [], "sweep": [], "cold": [], "warm": []}
+    weights = str(Path(model) / "model.safetensors")  # the same weights as a bare checkpoint: weights-only mode
+    bare = ["-m", weights, "--quiet", "--json", "--include", "encoder.*"]
+    times: dict[str, list[float]] = {"shrink": [], "sweep": [], "cold": [], "warm": [], "wo_shrink": [],
+                                     "wo_sweep": []}
     cpu: dict[str, list[float]] = {k: [] for k in times}
     print(f"torch threads: {torch.get_num_threads()}; load average before: {load_average()}")
     with tempfile.TemporaryDirectory() as d:
@@ -72,6 +75,9 @@ def main_bench() -> None:
                                         "--cache", str(out / "cache")], cpu["cold"]))
             times["warm"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "c.safetensors"),
                                         "--cache", str(out / "cache")], cpu["warm"]))
+            times["wo_shrink"].append(timed(["shrink", *bare, "--budget", "0.5", "-o", str(out / "w.safetensors")],
+                                            cpu["wo_shrink"]))
+            times["wo_sweep"].append(timed(["sweep", *bare, "--budgets", budgets], cpu["wo_sweep"]))
             print(f"round {i + 1}: shrink {times['shrink'][-1]:.2f} s, sweep {times['sweep'][-1]:.2f} s "
                   f"({times['sweep'][-1] / times['shrink'][-1]:.2f}x), cached cold {times['cold'][-1]:.2f} s, "
                   f"warm {times['warm'][-1]:.2f} s; CPU seconds: shrink {cpu['shrink'][-1]:.2f}, sweep "
@@ -91,6 +97,11 @@ def main_bench() -> None:
           f"| {mcpu['cold'] / mcpu['shrink']:.2f} | |")
     print(f"| shrink with --cache, warm re-run | {med['warm']:.2f} | {med['warm'] / med['cold']:.2f} (vs cold) "
           f"| {mcpu['warm']:.2f} | {mcpu['warm'] / mcpu['cold']:.2f} (vs cold) | <= 0.2 |")
+    print(f"| weights-only shrink of model.safetensors, budget 0.5 (no drift: no model to run) | "
+          f"{med['wo_shrink']:.2f} | 1.00 | {mcpu['wo_shrink']:.2f} | 1.00 | |")
+    print(f"| weights-only sweep, 8 budgets (predicted errors, no drift) | {med['wo_sweep']:.2f} | "
+          f"{med['wo_sweep'] / med['wo_shrink']:.2f} | {mcpu['wo_sweep']:.2f} | "
+          f"{mcpu['wo_sweep'] / mcpu['wo_shrink']:.2f} | <= 1.5 |")
 
 
 if __name__ == "__main__":

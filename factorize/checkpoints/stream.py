@@ -72,7 +72,13 @@ from factorize.plan.ranks import (
     choose_ranks,
 )
 from factorize.spectra.cache import SpectrumCache, as_cache
-from factorize.spectra.decompose import METHODS, Spectrum, decompose, leading, values_only
+from factorize.spectra.decompose import (
+    METHODS,
+    Spectrum,
+    decompose,
+    leading,
+    values_only,
+)
 from factorize.storage import (
     DTYPE_NAMES,
     TEMP_SUFFIX,
@@ -853,15 +859,23 @@ def checkpoint_spectra(
     """The spectra of a checkpoint's linear-layer weights (as :func:`select` chooses them), one tensor at a time.
 
     What a weights-only scan or sweep needs: the sites, their spectra (for :func:`factorize.plan.ranks.choose_ranks`
-    at any policy) and the tensors passed over with the reason. Raises when no tensor is selected.
+    at any policy) and the tensors passed over with the reason. Raises when no tensor is selected. With
+    ``method="auto"`` (the sweep's default) the spectra hold every singular value but no vectors
+    (:func:`factorize.spectra.decompose.values_only`): planning needs nothing more.
     """
     chosen, passed = select(open_checkpoint(src), include, exclude)
     if not chosen:
         raise FactorizeError(f"{src}: no 2-D tensor named <module>.weight matches the patterns",
                              [f"{k}: {v}" for k, v in passed.items()],
                              fix="check the include/exclude patterns against the tensor names")
-    spectra = {c.module: decompose(_read(c.weight_file, c.weight.name), name=c.module, method=method, seed=seed)
-               for c in tqdm(chosen, desc="decompose", unit="layer", disable=not progress, leave=False)}
+    def one(c: _Candidate) -> Spectrum:
+        W = _read(c.weight_file, c.weight.name)  # (out, in)
+        if method == "auto":  # as a budget in compress(): every singular value, no vectors (all a plan needs)
+            return values_only(W, name=c.module)
+        return decompose(W, name=c.module, method=method, seed=seed)
+
+    spectra = {c.module: one(c) for c in tqdm(chosen, desc="decompose", unit="layer", disable=not progress,
+                                                leave=False)}
     return [c.site for c in chosen], spectra, passed
 
 
