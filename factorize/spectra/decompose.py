@@ -350,11 +350,19 @@ def _auto(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: i
 
 def _fix_signs(U: torch.Tensor, Vh: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """Make each left singular vector's largest-magnitude entry positive, so results are reproducible across
-    methods and runs (the same convention as scikit-learn's ``svd_flip``)."""
-    idx = U.abs().argmax(dim=0)  # (k,)
-    signs = torch.sign(U[idx, torch.arange(U.shape[1], device=U.device)])
+    methods and runs (the same convention as scikit-learn's ``svd_flip``).
+
+    In place (the callers pass freshly computed factors) and without an ``abs()`` copy of U: the entry of largest
+    magnitude is the column's maximum or its minimum, the first in order when both have the same magnitude --
+    the same entry ``U.abs().argmax(0)`` finds. For a tall factor that saves two copies of U at the peak.
+    """
+    cols = torch.arange(U.shape[1], device=U.device)
+    imax, imin = U.argmax(dim=0), U.argmin(dim=0)  # (k,)
+    vmax, vmin = U[imax, cols], U[imin, cols]
+    idx = torch.where(vmax > -vmin, imax, torch.where(-vmin > vmax, imin, torch.minimum(imax, imin)))
+    signs = torch.sign(U[idx, cols])
     signs[signs == 0] = 1
-    return U * signs, Vh * signs[:, None]
+    return U.mul_(signs), Vh.mul_(signs[:, None])
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -570,8 +578,8 @@ def _leading(w: torch.Tensor, rank: int, values: Spectrum, guard: list[int], ove
     s_r = S[:rank]
     inv = torch.where(s_r > S[0] * 1e-12, 1.0 / s_r, torch.zeros_like(s_r)) if rank else s_r
     if wide:  # vecs are left singular vectors (m, r); Vh_r = S_r^-1 U_r^T W (r, n)
-        U, Vh = vecs, (vecs.T @ w) * inv[:, None]
-    else:  # vecs are right singular vectors (n, r); U_r = W V_r S_r^-1 (m, r)
-        U, Vh = (w @ vecs) * inv, vecs.T
+        U, Vh = vecs, (vecs.T @ w).mul_(inv[:, None])
+    else:  # vecs are right singular vectors (n, r); U_r = W V_r S_r^-1 (m, r), scaled in place
+        U, Vh = (w @ vecs).mul_(inv), vecs.T
     U, Vh = _fix_signs(U.contiguous(), Vh.contiguous())
     return Spectrum(U, S, Vh, total_energy=total, method=method, exact=True)
