@@ -416,7 +416,8 @@ def values_only(matrix: torch.Tensor | np.ndarray, *, precision: str | None = No
     so that :func:`leading` does not form it again; drop it (``spectrum.gram = None``) once the vectors are in.
     """
     w, total = _prepared_with_energy(matrix, precision, name)
-    return _values_only(w, keep_gram, total)
+    with _lapack_threads(min(w.shape)):  # the Gram product too: same bits whatever the caller's threads
+        return _values_only(w, keep_gram, total)
 
 
 def _values_only(w: torch.Tensor, keep_gram: bool = False, total: float | None = None) -> Spectrum:
@@ -481,7 +482,8 @@ def leading(
                              fix="pass values_only(matrix) of this same matrix, or values=None")
     if max_iters < 0 or tolerance < 0:
         raise FactorizeError(f"{name}: max_iters and tolerance must be >= 0, got {max_iters} and {tolerance}")
-    return _leading(w, int(rank), values, guard, oversample, max_iters, tolerance, seed)
+    with _lapack_threads(k):  # products too: up to order 2048 the result never depends on the caller's threads
+        return _leading(w, int(rank), values, guard, oversample, max_iters, tolerance, seed)
 
 
 LEADING_AMPLIFICATION = 8.0  # leading(): the filter degree is the smallest that amplifies s_r^2 this much ...

@@ -7,6 +7,7 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor, as_completed
 from typing import TypeVar
 
+import torch
 from torch import nn
 from tqdm.auto import tqdm
 
@@ -68,11 +69,18 @@ def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 
                 out[site.name] = one(site)
                 bar.update()
         else:
-            with ThreadPoolExecutor(max_workers=workers) as pool:
-                futures = {pool.submit(one, site): site.name for site in sites}
-                for fut in as_completed(futures):
-                    out[futures[fut]] = fut.result()
-                    bar.update()
+            # torch's thread count is process-wide: one thread for the whole pool (the workers are the
+            # parallelism), so no worker's products run at a count another worker set for its own solve
+            before = torch.get_num_threads()
+            torch.set_num_threads(1)
+            try:
+                with ThreadPoolExecutor(max_workers=workers) as pool:
+                    futures = {pool.submit(one, site): site.name for site in sites}
+                    for fut in as_completed(futures):
+                        out[futures[fut]] = fut.result()
+                        bar.update()
+            finally:
+                torch.set_num_threads(before)
     finally:
         bar.close()
     return {site.name: out[site.name] for site in sites}  # module order, whatever the finishing order
