@@ -105,7 +105,10 @@ def test_cluster_giving_up_names_the_matrix_and_a_rerun_resumes_from_the_cache(l
     done = shrink_checkpoint(llama, out, budget=0.5, exclude=["*embed_tokens*"], cluster=dask_engine,
                              cache_dir=cache)
     assert VICTIM in done["redone"] and set(done["redone"]) <= set(unfinished)  # its attempt marker survived
-    assert done["cache"]["results_reused"] == len(done["tensors"]) - len(unfinished)  # the rest were finished
+    # every matrix finished before the failure is reused; one queued with the victim may also have stored its
+    # result before Dask gave up on it (then it is reused too); the victim itself is recomputed
+    total = len(done["tensors"])
+    assert total - len(unfinished) <= done["cache"]["results_reused"] <= total - 1
     assert _files(out) == reference
 
 
