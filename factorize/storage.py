@@ -243,6 +243,23 @@ def human_bytes(n: float) -> str:
 TEMP_SUFFIX = ".factorize-tmp"  # temporary files are named .<final name>.<pid>-<random>.factorize-tmp
 
 
+def create_temp_dir(final: Path, suffix: str) -> Path:
+    """A new empty directory beside ``final``, named ``.<final name>.<pid>-<random><suffix>`` (hidden, unique, so
+    concurrent runs never share one); a FactorizeError naming the folder when it cannot be created."""
+    parent = final.parent if str(final.parent) else Path(".")
+    for _ in range(100):
+        tmp = parent / f".{final.name}.{os.getpid()}-{secrets.token_hex(6)}{suffix}"
+        try:
+            tmp.mkdir()
+        except FileExistsError:
+            continue
+        except OSError as e:
+            raise FactorizeError(f"{final}: cannot create a directory in {parent} ({e.strerror or e})",
+                                 fix="choose a writable directory") from None
+        return tmp
+    raise FactorizeError(f"{final}: could not create a temporary directory in {parent}")
+
+
 def create_temp(final: Path) -> tuple[Path, int]:
     """A new temporary file beside ``final`` (same directory, so the final rename is atomic): (path, fd).
 

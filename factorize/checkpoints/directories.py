@@ -39,7 +39,7 @@ import torch
 from torch import nn
 
 from factorize.errors import FactorizeError
-from factorize.storage import check_output_path, read_header
+from factorize.storage import check_output_path, create_temp_dir, read_header
 
 DIRECTORY_FORMAT = "factorize.directory"
 DIRECTORY_VERSION = 1
@@ -215,19 +215,8 @@ def _dtype_of(model: nn.Module) -> torch.dtype:
 
 
 def _temp_dir(final: Path) -> Path:
-    parent = final.parent if str(final.parent) else Path(".")
-    _remove_stale_dirs(parent, final.name)
-    for _ in range(100):
-        tmp = parent / f".{final.name}.{os.getpid()}-{secrets.token_hex(6)}{TEMP_DIR_SUFFIX}"
-        try:
-            tmp.mkdir()
-        except FileExistsError:
-            continue
-        except OSError as e:
-            raise FactorizeError(f"{final}: cannot create a directory in {parent} ({e.strerror or e})",
-                                 fix="choose a writable directory") from None
-        return tmp
-    raise FactorizeError(f"{final}: could not create a temporary directory in {parent}")
+    _remove_stale_dirs(final.parent if str(final.parent) else Path("."), final.name)
+    return create_temp_dir(final, TEMP_DIR_SUFFIX)
 
 
 def _remove_stale_dirs(parent: Path, name: str) -> None:

@@ -38,7 +38,6 @@ import hashlib
 import json
 import math
 import os
-import secrets
 import shutil
 import socket
 from collections.abc import Callable, Iterable, Mapping
@@ -87,6 +86,7 @@ from factorize.storage import (
     check_free_space,
     check_output_path,
     create_temp,
+    create_temp_dir,
     publish,
     read_header,
     remove_quietly,
@@ -568,18 +568,7 @@ def _work_directory(cache: SpectrumCache | None, beside: Path) -> tuple[Path, bo
     temporary folder beside the output, named like the project's temporary files (removed at the end)."""
     if cache is not None:
         return cache.directory, False
-    parent = beside.parent if str(beside.parent) else Path(".")
-    for _ in range(100):
-        work = parent / f".{beside.name}.{os.getpid()}-{secrets.token_hex(6)}.work{TEMP_SUFFIX}"
-        try:
-            work.mkdir()
-        except FileExistsError:
-            continue
-        except OSError as e:
-            raise FactorizeError(f"{parent}: cannot create the work directory there ({e.strerror or e})",
-                                 fix="choose a writable output location") from None
-        return work, True
-    raise FactorizeError(f"{parent}: could not create a work directory")
+    return create_temp_dir(beside, f".work{TEMP_SUFFIX}"), True
 
 
 def _same_disk(a: Path, b: Path) -> bool:

@@ -228,23 +228,30 @@ SERIAL_LAPACK_UP_TO = 2048  # eigensolves/SVDs of at most this order run on one 
 
 
 @contextlib.contextmanager
-def _lapack_threads(order: int):
-    """Run a LAPACK factorisation of the given order on one thread when it is small.
-
-    Measured on our 2-core machine while other processes ran: a 1024 x 1024 float64 eigh took 0.48 s on one
-    thread and 24.8 s on two (MKL's threads wait on each other when the cores are oversubscribed), and 384 x 384
-    took 0.04 s against 7.5 s. Up to order 2048 the serial solve is fast enough that the risk is not worth it.
-    Matrix products stay multi-threaded. torch's thread count is process-wide, so it is restored on exit.
-    """
+def torch_threads(count: int | None):
+    """Run the block with torch's (process-wide) thread count set to ``count``, restored on exit; ``None`` or the
+    current count changes nothing."""
     before = torch.get_num_threads()
-    if order > SERIAL_LAPACK_UP_TO or before == 1:
+    if count is None or count == before:
         yield
         return
-    torch.set_num_threads(1)
+    torch.set_num_threads(count)
     try:
         yield
     finally:
         torch.set_num_threads(before)
+
+
+def _lapack_threads(order: int):
+    """Run a factorisation (and, in :func:`values_only` / :func:`leading`, its products) of the given order on one
+    thread when it is small.
+
+    Measured on our 2-core machine while other processes ran: a 1024 x 1024 float64 eigh took 0.48 s on one
+    thread and 24.8 s on two (MKL's threads wait on each other when the cores are oversubscribed), and 384 x 384
+    took 0.04 s against 7.5 s. Up to order 2048 the serial solve is fast enough that the risk is not worth it,
+    and a result of that order then never depends on the caller's thread count.
+    """
+    return torch_threads(1 if order <= SERIAL_LAPACK_UP_TO else None)
 
 
 def _gram(w: torch.Tensor) -> Spectrum:

@@ -3,12 +3,10 @@ and then only the vectors that are kept (`leading_sites`)."""
 
 from __future__ import annotations
 
-import contextlib
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor, as_completed
 from typing import TypeVar
 
-import torch
 from torch import nn
 from tqdm.auto import tqdm
 
@@ -17,7 +15,14 @@ from factorize.model.sites import (
     get_module,
     matrix_of,
 )
-from factorize.spectra.decompose import Spectrum, decompose, leading, values_only
+from factorize.spectra.decompose import (
+    Spectrum,
+    _lapack_threads,
+    decompose,
+    leading,
+    torch_threads,
+    values_only,
+)
 
 T = TypeVar("T")
 
@@ -58,29 +63,12 @@ def decompose_sites(
     return per_site(one, sites, workers=workers, progress=progress)
 
 
-SERIAL_UP_TO = 2048  # a serial run decomposes layers up to this order on one thread, as a worker pool does
-
-
-@contextlib.contextmanager
-def _one_thread_up_to(order: int, site: Site):
-    """One torch thread while decomposing ``site`` when its matrix is at most ``order`` on its smaller side."""
-    before = torch.get_num_threads()
-    if min(site.shape) > order or before == 1:
-        yield
-        return
-    torch.set_num_threads(1)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
-
-
 def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 1, progress: bool = False,
              desc: str = "decompose") -> dict[str, T]:
     """``{site.name: one(site)}`` in module order; ``workers > 1`` runs that many sites at once in threads
     (LAPACK and BLAS release the GIL), each on one torch thread.
 
-    A serial run also decomposes every layer up to order ``SERIAL_UP_TO`` on one thread (LAPACK already ran on one
+    A serial run also decomposes every layer up to order 2048 on one thread (LAPACK already ran on one
     thread there, see :func:`factorize.spectra.decompose._lapack_threads`; the products follow), so it gives a
     parallel run's bits. Wider layers keep all threads in a serial run, where the last bits of a product may then
     differ from a parallel run's.
@@ -90,22 +78,17 @@ def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 
     try:
         if workers <= 1 or len(sites) <= 1:
             for site in sites:
-                with _one_thread_up_to(SERIAL_UP_TO, site):
+                with _lapack_threads(min(site.shape)):
                     out[site.name] = one(site)
                 bar.update()
         else:
             # torch's thread count is process-wide: one thread for the whole pool (the workers are the
             # parallelism), so no worker's products run at a count another worker set for its own solve
-            before = torch.get_num_threads()
-            torch.set_num_threads(1)
-            try:
-                with ThreadPoolExecutor(max_workers=workers) as pool:
-                    futures = {pool.submit(one, site): site.name for site in sites}
-                    for fut in as_completed(futures):
-                        out[futures[fut]] = fut.result()
-                        bar.update()
-            finally:
-                torch.set_num_threads(before)
+            with torch_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
+                futures = {pool.submit(one, site): site.name for site in sites}
+                for fut in as_completed(futures):
+                    out[futures[fut]] = fut.result()
+                    bar.update()
     finally:
         bar.close()
     return {site.name: out[site.name] for site in sites}  # module order, whatever the finishing order
