@@ -75,9 +75,9 @@ from factorize.spectra.decompose import (
     METHODS,
     Spectrum,
     decompose,
-    leading,
     values_only,
 )
+from factorize.spectra.sites import cached_leading, cached_values
 from factorize.storage import (
     DTYPE_NAMES,
     TEMP_SUFFIX,
@@ -362,11 +362,7 @@ def _values_task(task: _Task) -> dict:
     W = _read_in_task(task)  # (out, in)
     cache = _task_cache(task)
     if _values_first(task):  # as compress(): every singular value without vectors, from the Gram matrix
-        def compute() -> Spectrum:
-            return values_only(W, precision=task.precision, name=task.site.name)
-
-        values = compute() if cache is None else cache.get_or_compute(W, "gram", compute=compute, extra="values",
-                                                                       precision=task.precision)
+        values = cached_values(W, cache, precision=task.precision, name=task.site.name)
     else:
         values = _values_only(_spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache))
     remove_quietly(task.marker())
@@ -396,7 +392,8 @@ def _factors_task(task: _Task) -> dict:
         if entry is not None and entry["action"] != "factor":
             spec = None  # kept dense by the plan: no decomposition needed
         elif task.values is not None and entry is not None:
-            spec = _leading_for(W, task, int(entry["rank"]), cache)
+            spec = cached_leading(W, int(entry["rank"]), task.values, cache, seed=task.seed,  # as compress() does
+                                  precision=task.precision, name=task.site.name)
         else:
             spec = _spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache)
         if entry is None:  # per-layer policy: decided from this layer's own spectrum
@@ -425,19 +422,6 @@ def _factors_task(task: _Task) -> dict:
 def _values_first(task: _Task) -> bool:
     """The values-first budget route, exactly as :func:`factorize.pipeline.values_first` decides it for compress()."""
     return task.kind == "values" and task.method == "auto"
-
-
-def _leading_for(W: torch.Tensor, task: _Task, rank: int, cache: SpectrumCache | None) -> Spectrum:
-    """The kept vectors at ``rank`` from pass 1's values (:func:`factorize.spectra.decompose.leading`, within 1% of
-    the optimal error), with the same arguments and cache key as :func:`factorize.spectra.sites.leading_sites`."""
-    def compute() -> Spectrum:
-        return leading(W, rank, values=task.values, guard_ranks=[], seed=task.seed, precision=task.precision,
-                       name=task.site.name)
-
-    if cache is None:
-        return compute()
-    return cache.get_or_compute(W, "gram", compute=compute, extra=f"leading rank={rank} guard={[]} seed={task.seed}",
-                                precision=task.precision)
 
 
 def _stored_result(path: Path, key: str) -> tuple[dict, float] | None:

@@ -94,6 +94,33 @@ def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 
     return {site.name: out[site.name] for site in sites}  # module order, whatever the finishing order
 
 
+def cached_values(W, store, *, precision: str | None = None, keep_gram: bool = False,
+                  name: str = "matrix") -> Spectrum:
+    """:func:`values_only` of one matrix through the spectrum cache ``store`` (None: computed), under the one key
+    every caller shares: the ``gram`` entry with ``extra="values"``."""
+    def compute() -> Spectrum:
+        return values_only(W, precision=precision, keep_gram=keep_gram, name=name)
+
+    if store is None:
+        return compute()
+    return store.get_or_compute(W, "gram", compute=compute, extra="values", precision=precision)
+
+
+def cached_leading(W, rank: int, values: Spectrum, store, *, guard: list[int] | None = None, seed: int = 0,
+                   precision: str | None = None, name: str = "matrix") -> Spectrum:
+    """:func:`leading` of one matrix through the spectrum cache ``store`` (None: computed), under the one key
+    every caller shares (rank, guard ranks and seed in ``extra``)."""
+    g = list(guard or [])
+
+    def compute() -> Spectrum:
+        return leading(W, rank, values=values, guard_ranks=g, seed=seed, precision=precision, name=name)
+
+    if store is None:
+        return compute()
+    return store.get_or_compute(W, "gram", compute=compute, extra=f"leading rank={rank} guard={g} seed={seed}",
+                                precision=precision)
+
+
 def values_sites(
     model: nn.Module,
     sites: Iterable[Site],
@@ -116,11 +143,7 @@ def values_sites(
 
     def one(site: Site) -> Spectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
-        if store is not None:
-            return store.get_or_compute(W, "gram", compute=lambda: values_only(W, precision=precision,
-                                                                               keep_gram=keep_gram, name=site.name),
-                                        extra="values", precision=precision)
-        return values_only(W, precision=precision, keep_gram=keep_gram, name=site.name)
+        return cached_values(W, store, precision=precision, keep_gram=keep_gram, name=site.name)
 
     return per_site(one, list(sites), workers=workers, progress=progress, desc="singular values")
 
@@ -152,15 +175,8 @@ def leading_sites(
 
     def one(site: Site) -> Spectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
-        r, g, values = int(ranks[site.name]), guard.get(site.name, []), spectra[site.name]
-
-        def compute() -> Spectrum:
-            return leading(W, r, values=values, guard_ranks=g, seed=seed, precision=precision, name=site.name)
-
-        if store is not None:
-            return store.get_or_compute(W, "gram", compute=compute, extra=f"leading rank={r} guard={g} seed={seed}",
-                                        precision=precision)
-        return compute()
+        return cached_leading(W, int(ranks[site.name]), spectra[site.name], store, guard=guard.get(site.name, []),
+                              seed=seed, precision=precision, name=site.name)
 
     out = dict(spectra)
     out.update(per_site(one, todo, workers=workers, progress=progress, desc="leading vectors"))

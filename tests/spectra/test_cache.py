@@ -151,12 +151,12 @@ def test_cached_decompose_sites_matches_and_feeds_compress(tmp_path, mlp, counte
 
 
 def test_checkpoint_second_run_skips_decomposition(tmp_path, mlp, monkeypatch):
-    from factorize.checkpoints import stream
+    from factorize.spectra import sites
 
     calls = []
-    for fn in ("values_only", "leading"):
-        real = getattr(stream, fn)
-        monkeypatch.setattr(stream, fn, lambda *a, _real=real, _fn=fn, **k: calls.append(_fn) or _real(*a, **k))
+    for fn in ("values_only", "leading"):  # the weights-only tasks reach both through factorize.spectra.sites
+        real = getattr(sites, fn)
+        monkeypatch.setattr(sites, fn, lambda *a, _real=real, _fn=fn, **k: calls.append(_fn) or _real(*a, **k))
     src = tmp_path / "in.safetensors"
     save_file(mlp.state_dict(), str(src))
     first = checkpoint.shrink_checkpoint(src, tmp_path / "a.safetensors", budget=0.5, cache_dir=tmp_path / "c")
