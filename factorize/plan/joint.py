@@ -40,9 +40,10 @@ the dense layer's own measured time, so a form measured slower than the dense la
 above it are removed before solving. Callers may instead filter their candidate lists themselves; both give the
 same result.
 
-Determinism: layers are processed in sorted name order and candidates in their given order; ties (equal error)
-go to the lower total cost, then to the earlier layer name and candidate position. The same input, in any dict
-order, gives the same selection.
+Determinism: layers are processed in sorted name order and candidates in their given order (of duplicates, the
+first is kept). On the Lagrangian path, edges of equal slope go to the earlier layer name first; in the exact pass,
+selections of equal error go to the lower total cost, then to a fixed order derived from the sorted names and
+candidate positions. The same input, in any dict order, gives the same selection.
 """
 
 from __future__ import annotations
@@ -274,6 +275,7 @@ class _Problem:
     def __init__(self, layers: list[tuple[str, list[Candidate]]]) -> None:
         self.layers = [_Layer(name, cands) for name, cands in layers]
         self.min_cost = math.fsum(lay.costs[0] for lay in self.layers)
+        self.max_cost = math.fsum(lay.costs[-1] for lay in self.layers)
         self.base_error = math.fsum(lay.errors[0] for lay in self.layers)
         rows = []  # (sort slope, layer, step k, cost increase, error decrease)
         for li, lay in enumerate(self.layers):
@@ -290,6 +292,7 @@ class _Problem:
         self.edge_gain = np.array([r[4] for r in rows], dtype=np.float64)
 
     def solve(self, budget: float, max_work: int) -> Selection:
+        budget = min(budget, self.max_cost)  # no selection costs more (fsum is monotone); keeps Fraction finite
         pos, bound = self._lagrangian(budget)
         pos = self._repair(pos, budget)
         error = self.error_of(pos)
@@ -303,8 +306,8 @@ class _Problem:
                     pos, error = found, better
                 exact, bound = True, error  # proved by the exact pass (within its pruning tolerance)
         chosen = {lay.name: lay.cands[p] for lay, p in zip(self.layers, pos)}
-        return Selection(chosen=chosen, cost=self.cost_of(pos), error=error, lower_bound=min(bound, error),
-                         exact=exact)
+        return Selection(chosen=chosen, cost=self.cost_of(pos), error=float(error),
+                         lower_bound=float(min(bound, error)), exact=bool(exact))
 
     def cost_of(self, pos: Sequence[int]) -> float:
         return math.fsum(lay.costs[p] for lay, p in zip(self.layers, pos))

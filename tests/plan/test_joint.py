@@ -179,6 +179,8 @@ def test_infeasible_budget_says_the_smallest_reachable_cost():
         choose_candidates(cands, 6.5)
     assert "b: cheapest candidate costs 4" in str(info.value) and "raise the budget" in str(info.value)
     assert solve(cands, 7).cost == 7  # the smallest reachable cost itself is a valid budget
+    unlimited = solve(cands, math.inf)  # no limit: every layer at its least error
+    assert unlimited.error == 1.0 and unlimited.cost == 9 and type(unlimited.lower_bound) is float
     with pytest.raises(FactorizeError, match="smallest reachable cost"):
         frontier(cands, [10, 6])  # checked before any budget is solved
 
