@@ -187,15 +187,18 @@ def test_infeasible_budget_says_the_smallest_reachable_cost():
 
 def test_same_input_same_output_whatever_the_dict_order():
     rng = np.random.default_rng(3)
+    exact_pass = 0
     for _ in range(20):
         cands = _random_instance(rng, 6, (3, 6), integer=True)  # integer costs: many exact ties
         budget = _budget(rng, cands)
         first = choose_candidates(cands, budget)
+        exact_pass += not solve(cands, budget, max_work=0).exact  # the exact pass decided this one
         names = list(cands)
         random.Random(int(rng.integers(1 << 30))).shuffle(names)
         again = choose_candidates({n: cands[n] for n in names}, budget)
         assert list(first) == list(again) == sorted(cands)
         assert all(first[n] is again[n] for n in first)  # the same objects: the same positions were chosen
+    assert exact_pass >= 5, exact_pass  # both the Lagrangian path and the exact pass are covered
 
 
 def test_ties_go_to_the_earlier_layer_and_the_earlier_candidate():
