@@ -19,7 +19,7 @@ clips (the bound |W - dequantize| <= scale / 2 holds elementwise with the stored
 
 :func:`dequantize_tensors` is the one decoder: :meth:`Rounded.dequantize` and the module form
 (:mod:`factorize.rewrite.stored`) both call it, so a stored layer's weight equals ``dequantize()`` bit for bit.
-It uses only casts, bit operations, reshapes and products, so it traces through torch.export and ONNX.
+It uses only casts, reshapes, floor and products, so it traces through torch.export and ONNX.
 """
 
 from __future__ import annotations
@@ -131,11 +131,15 @@ def pack_int4(codes: torch.Tensor) -> torch.Tensor:
     return u[:, 0::2] | (u[:, 1::2] << 4)  # (m, k)
 
 
-def unpack_int4(packed: torch.Tensor) -> torch.Tensor:
-    """uint8 (m, k) -> the nibbles (m, 2k) as uint8 in [0, 15] (code + 8), inverse of :func:`pack_int4`."""
-    lo = packed & 15  # (m, k)
-    hi = packed >> 4  # (m, k)
-    return torch.stack((lo, hi), dim=-1).reshape(packed.shape[0], -1)  # (m, 2k): lo, hi, lo, hi, ...
+def unpack_int4(packed: torch.Tensor, dtype: torch.dtype = torch.uint8) -> torch.Tensor:
+    """uint8 (m, k) -> the nibbles (m, 2k) (code + 8, in [0, 15]) in ``dtype``, inverse of :func:`pack_int4`.
+
+    Split with float arithmetic (hi = floor(p / 16), lo = p - 16 hi; exact for 0..255) rather than bit shifts:
+    ONNX exporters and runtimes disagree on shifts of unsigned bytes, every one handles these."""
+    p = packed.to(torch.float32)  # (m, k)
+    hi = torch.floor(p / 16)
+    lo = p - 16 * hi
+    return torch.stack((lo, hi), dim=-1).reshape(packed.shape[0], -1).to(dtype)  # (m, 2k): lo, hi, lo, hi, ...
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -153,7 +157,7 @@ def dequantize_tensors(precision: str, shape: tuple[int, int], q: torch.Tensor, 
     if precision == "int8":
         return (q.to(torch.float32) * scale.to(torch.float32)[:, None]).to(dtype)  # (m, n)
     g = GROUP_SIZES[precision]
-    codes = unpack_int4(q).to(torch.float32) - INT4_OFFSET  # (m, n_pad)
+    codes = unpack_int4(q, torch.float32) - INT4_OFFSET  # (m, n_pad)
     W = codes.reshape(m, -1, g) * scale.to(torch.float32)[:, :, None]  # (m, G, g)
     return W.reshape(m, -1)[:, :n].to(dtype)  # drop the padding
 
