@@ -46,7 +46,7 @@ def round_with_correction(W: torch.Tensor, precision: str, rank: int, *, hessian
     H = check_hessian(hessian, n)
     Q = round_matrix(W, precision, hessian=H, method=method)
     E = W.detach().to(torch.float64) - Q.dequantize(torch.float64)  # (m, n)
-    B, A = _low_rank(E, rank, H)
+    B, A = _low_rank(E, rank, None if H is None else H.to(E.device))
     return Q, B.to(W.dtype), A.to(W.dtype)
 
 
@@ -67,7 +67,7 @@ def _sqrt_factor(H: torch.Tensor) -> torch.Tensor:
     if H.dim() == 1:
         return torch.diag((H + CORRECTION_RIDGE * _mean_or_one(H)).sqrt())
     n = H.shape[0]
-    Hd = H + CORRECTION_RIDGE * _mean_or_one(H.diagonal()) * torch.eye(n, dtype=H.dtype)
+    Hd = H + CORRECTION_RIDGE * _mean_or_one(H.diagonal()) * torch.eye(n, dtype=H.dtype, device=H.device)
     L, info = torch.linalg.cholesky_ex(Hd)
     if int(info) == 0:
         return L
@@ -99,5 +99,6 @@ def round_factors(B: torch.Tensor, A: torch.Tensor, precision: str | tuple[str, 
     HB = None
     if H is not None:
         A64 = Aq.dequantize(torch.float64)  # (r, n)
+        H = H.to(A64.device)
         HB = (A64 * H) @ A64.T if H.dim() == 1 else A64 @ H @ A64.T  # (r, r)
     return round_matrix(B, pb, hessian=HB, method=method), Aq

@@ -84,6 +84,7 @@ def _round(W: torch.Tensor, precision: str, H: torch.Tensor | None, method: str)
     if precision in FLOAT_DTYPES:
         return Rounded(precision, shape, W.detach().to(FLOAT_DTYPES[precision]).clone(), None)
     W32 = W.detach().to(torch.float32)
+    H = None if H is None else H.to(W32.device)
     diag = None if H is None else (H if H.dim() == 1 else H.diagonal()).to(torch.float32)
     if H is not None and H.dim() == 2 and method in ("auto", "gptq"):
         codes, scale = _gptq(W32, precision, H, diag)
@@ -99,7 +100,7 @@ def _assemble(precision: str, shape: tuple[int, int], codes: torch.Tensor, scale
         return Rounded(precision, shape, codes.to(torch.int8), scale.to(torch.float32))
     m, n = shape
     n_pad = padded_width(precision, n)
-    padded = torch.zeros(m, n_pad, dtype=torch.int16)
+    padded = torch.zeros(m, n_pad, dtype=torch.int16, device=codes.device)
     padded[:, :n] = codes.to(torch.int16)
     return Rounded(precision, shape, pack_int4(padded), scale.to(torch.float16))
 
@@ -185,7 +186,7 @@ def _inverse_cholesky(H: torch.Tensor) -> torch.Tensor:
     mean = float(H.diagonal().mean())
     damp = GPTQ_DAMP * (mean if mean > 0 else 1.0)
     for _ in range(4):
-        Hd = H + damp * torch.eye(n, dtype=H.dtype)
+        Hd = H + damp * torch.eye(n, dtype=H.dtype, device=H.device)
         L, info = torch.linalg.cholesky_ex(Hd)
         if int(info) == 0:
             Hinv = torch.cholesky_inverse(L)  # (n, n)
@@ -202,9 +203,9 @@ def _gptq(W: torch.Tensor, precision: str, H: torch.Tensor, diag: torch.Tensor):
     m, n = W.shape
     U = _inverse_cholesky(H).to(torch.float32)  # (n, n)
     g = GROUP_SIZES.get(precision)
-    scale = _choose_scales(W, precision, diag) if g is None else torch.zeros(m, -(-n // g))  # (m,) or (m, G)
+    scale = _choose_scales(W, precision, diag) if g is None else W.new_zeros(m, -(-n // g))  # (m,) or (m, G)
     W = W.clone()
-    codes = torch.zeros(m, n)
+    codes = W.new_zeros(m, n)
     for i1 in range(0, n, GPTQ_BLOCK):
         i2 = min(i1 + GPTQ_BLOCK, n)
         W1, U1 = W[:, i1:i2].clone(), U[i1:i2, i1:i2]  # (m, b), (b, b)
@@ -241,10 +242,11 @@ def weighted_error(W: torch.Tensor, Wq: torch.Tensor, hessian: torch.Tensor | No
     if W.shape != Wq.shape:
         raise FactorizeError(f"W is {tuple(W.shape)} and Wq is {tuple(Wq.shape)}; expected the same shape")
     H = check_hessian(hessian, W.shape[1])
-    dW = W.detach().to(torch.float64) - Wq.detach().to(torch.float64)  # (m, n)
+    dW = W.detach().to(torch.float64) - Wq.detach().to(device=W.device, dtype=torch.float64)  # (m, n)
+    H = None if H is None else H.to(dW.device)
     right = dW if H is None else (dW * H if H.dim() == 1 else dW @ H)  # (m, n)
     if output_gram is not None:
-        G = torch.as_tensor(output_gram).detach().to(torch.float64)
+        G = torch.as_tensor(output_gram).detach().to(device=dW.device, dtype=torch.float64)
         if tuple(G.shape) != (W.shape[0],) * 2:
             raise FactorizeError(f"output_gram is {tuple(G.shape)}, expected ({W.shape[0]}, {W.shape[0]})")
         dW = G @ dW
