@@ -19,7 +19,7 @@ LAYERS = (
     ("factorize.errors", "factorize._version", "factorize.storage", "factorize.default", "factorize.choices",
      "factorize.cluster"),
     ("factorize.model",),
-    ("factorize.spectra",),
+    ("factorize.spectra", "factorize.rounding"),
     ("factorize.plan",),
     ("factorize.rewrite",),
     ("factorize.measure",),
