@@ -51,13 +51,8 @@ from factorize.pipeline import compress
 from factorize.plan.policy import POLICY_KEYS, Policy, resolve_policy
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, merge
-from factorize.rewrite.layers import (
-    Factored,
-    factor_module,
-    factored_layers,
-    fill_factors,
-    with_factors,
-)
+from factorize.rewrite.kinds import layer_kind
+from factorize.rewrite.layers import Factored, at_rank, factor_module, factored_layers
 from factorize.spectra.decompose import Spectrum, compute_dtype_for
 from factorize.spectra.sites import decompose_sites
 
@@ -86,37 +81,9 @@ def factored_spectrum(layer: Factored, *, precision: str | None = None) -> Spect
 
 def _factored_site(name: str, layer: Factored) -> Site:
     m, n = int(layer.factor_b().shape[0]), int(layer.factor_a().shape[1])
-    kernel = tuple(layer.kernel_size) if layer.kind.startswith("conv") else ()
+    kernel = layer_kind(layer.kind).kernel(layer)
     return Site(name=name, kind=layer.kind, shape=(m, n), params=m * n, has_bias=layer.second.bias is not None,
                 dtype=str(layer.second.weight.dtype).removeprefix("torch."), kernel=kernel)
-
-
-def _lower_rank(layer: Factored, B: torch.Tensor, A: torch.Tensor) -> Factored:
-    """A factored layer with the structure of ``layer`` at rank ``A.shape[0]``, holding B (m x r'), A (r' x n)."""
-    r = int(A.shape[0])
-    first, second = layer.first, layer.second
-    like = {"device": second.weight.device, "dtype": second.weight.dtype}
-    has_bias = second.bias is not None
-    if layer.kind == "embedding":
-        new_first: nn.Module = nn.Embedding(first.num_embeddings, r, padding_idx=first.padding_idx,
-                                            scale_grad_by_freq=first.scale_grad_by_freq, sparse=first.sparse, **like)
-        new_second: nn.Module = nn.Linear(r, second.out_features, bias=False, **like)
-    elif isinstance(first, nn.Linear):  # linear and transposed
-        new_first = nn.Linear(first.in_features, r, bias=False, **like)
-        new_second = nn.Linear(r, second.out_features, bias=has_bias, **like)
-    elif layer.kind.startswith("conv_transpose"):  # 1x1 conv to r channels, then the transposed conv
-        new_first = type(first)(first.in_channels, r, 1, bias=False, **like)
-        new_second = type(second)(r, second.out_channels, second.kernel_size, stride=second.stride,
-                                  padding=second.padding, output_padding=second.output_padding,
-                                  dilation=second.dilation, bias=has_bias, **like)
-    else:  # conv1d / conv2d / conv3d
-        new_first = type(first)(first.in_channels, r, first.kernel_size, stride=first.stride, padding=first.padding,
-                                dilation=first.dilation, bias=False, padding_mode=first.padding_mode, **like)
-        new_second = type(second)(r, second.out_channels, 1, bias=has_bias, **like)
-    new = with_factors(layer, new_first, new_second)  # keeps the form and the original class
-    fill_factors(new, B, A, second.bias if has_bias else None)
-    new.train(layer.training)
-    return new
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -186,7 +153,7 @@ def refactor(
         elif entry["action"] == "factor":
             B, A = spectra[name].factors(entry["rank"])  # (m, r), (r, n)
             module = get_module(model, name)
-            replacements[name] = (_lower_rank(current, B, A) if current is not None
+            replacements[name] = (at_rank(current, B, A) if current is not None
                                   else factor_module(module, by_name[name].kind, B, A))
     for name, layer in replacements.items():
         set_module(model, name, layer)
