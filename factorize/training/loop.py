@@ -48,6 +48,7 @@ from factorize.errors import FactorizeError
 from factorize.model.count import count_parameters
 from factorize.model.sites import Site, WalkResult, get_module, set_module, walk
 from factorize.pipeline import compress
+from factorize.plan.entries import FACTOR, factored_ranks, is_factored_entry
 from factorize.plan.policy import POLICY_KEYS, Policy, resolve_policy
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, merge
@@ -95,7 +96,7 @@ def _module_order(model: nn.Module) -> dict[str, int]:
 
 
 def _keep_current(entry: dict, rank: int, site: Site) -> None:
-    entry.update(rank=rank, action="factor", params_after=site.factored_params(rank),
+    entry.update(rank=rank, action=FACTOR, params_after=site.factored_params(rank),
                  reason=f"already factored at rank {rank}; a factored layer is never grown, kept")
     entry["predicted_error"], entry["energy_kept"] = 0.0, 1.0
 
@@ -148,9 +149,9 @@ def refactor(
     replacements: dict[str, nn.Module] = {}
     for name, entry in plan["sites"].items():
         current = factored.get(name)
-        if current is not None and (entry["action"] != "factor" or entry["rank"] >= current.rank):
+        if current is not None and (not is_factored_entry(entry) or entry["rank"] >= current.rank):
             _keep_current(entry, current.rank, by_name[name])
-        elif entry["action"] == "factor":
+        elif is_factored_entry(entry):
             B, A = spectra[name].factors(entry["rank"])  # (m, r), (r, n)
             module = get_module(model, name)
             replacements[name] = (at_rank(current, B, A) if current is not None
@@ -346,6 +347,6 @@ class ProgressiveSchedule:
         self.history.append({
             "epoch": epoch, "budget": self.budgets[i], "params": result.params_after,
             "site_params_kept": sum(e["params_after"] for e in sites) / max(sum(e["params"] for e in sites), 1),
-            "ranks": {n: e["rank"] for n, e in result.plan["sites"].items() if e["action"] == "factor"},
+            "ranks": factored_ranks(result.plan),
         })
         return optimizer
