@@ -17,6 +17,10 @@ with B (m x r), A (r x n), held by two stock torch layers, ``first`` (A) and ``s
 The state-dict keys are always ``<name>.first.weight``, ``<name>.second.weight`` and ``<name>.second.bias``
 (docs/file-format.md).
 
+Everything that depends on the kind (the thin layers, reading and filling the factors, the weight layout, the
+attributes of a layer built without ``original``, the merge) is one record per kind in
+:mod:`factorize.rewrite.kinds`; this module dispatches through :func:`~factorize.rewrite.kinds.layer_kind`.
+
 **Drop-in.** Parents of a layer read more than its output: T5 reads ``wo.weight.dtype``, ViT and CLIP read
 ``projection.weight.dtype``, ``nn.MultiheadAttention`` passes ``out_proj.weight`` to a functional kernel,
 MobileNetV2 reads ``conv.stride``, Whisper reads ``embed_positions.weight``. So a factored layer answers:
