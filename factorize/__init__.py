@@ -73,58 +73,42 @@ _EXPORTS = {  # public name -> the module that defines it
     "walk": "factorize.model.sites",
 }
 
+# What README.md, docs/*.md and examples/ teach as ``factorize.<name>`` (tests/test_public_api.py checks both directions).
+# Every other name of ``_EXPORTS`` stays importable from here for code written against earlier versions, and lives
+# in its sub-package (``factorize.model.count.count_parameters``, ``factorize.calibrated.options.CalibrationOptions``,
+# ...); ``CalibrationOptions`` is not taught at the top: ``compress(..., calibration=...)`` takes its keywords.
 __all__ = [
-    "CalibratedResult",
     "Calibration",
     "CompressResult",
     "DriftLimitExceeded",
     "DriftTargetUnreachable",
     "Exported",
-    "Factored",
     "FactorizeError",
-    "HealResult",
-    "Override",
     "Policy",
     "ProgressiveSchedule",
-    "Report",
-    "Site",
     "Spectrum",
-    "SpectrumCache",
-    "WalkResult",
     "__version__",
     "apply_plan",
     "check_directory",
     "choose_ranks",
     "compress",
     "compress_in_training",
-    "count_bytes",
-    "count_parameters",
     "decompose",
-    "decompose_sites",
     "evaluate",
     "export_onnx",
     "export_program",
-    "factored_layers",
     "heal",
-    "is_factored",
     "load",
     "load_directory",
-    "load_recipe",
     "merge",
     "merge_in_training",
-    "output_drift",
-    "plan_ranks",
-    "plan_summary",
     "read_plan",
     "refactor",
-    "run_model",
     "save",
     "save_directory",
     "search_drift",
     "shrink_blockwise",
     "shrink_checkpoint",
-    "to_dense",
-    "validate_plan",
     "walk",
 ]
 
@@ -142,9 +126,11 @@ def __dir__() -> list[str]:
     return sorted(set(globals()) | set(__all__))
 
 
-if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eagerly
+if TYPE_CHECKING:  # for type checkers and editors: every name of _EXPORTS, from the module it names there;
+    # "X as X" marks a name kept for compatibility as re-exported (it is not in __all__)
+    from factorize.calibrated.options import CalibrationOptions as CalibrationOptions
+    from factorize.calibrated.search import CalibratedResult as CalibratedResult
     from factorize.calibrated.search import (
-        CalibratedResult,
         Calibration,
         DriftTargetUnreachable,
         search_drift,
@@ -159,32 +145,33 @@ if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eag
     from factorize.checkpoints.files import load, read_plan, save
     from factorize.checkpoints.stream import shrink_checkpoint
     from factorize.errors import DriftLimitExceeded, FactorizeError
-    from factorize.measure.drift import output_drift
+    from factorize.measure.drift import output_drift as output_drift
     from factorize.measure.evaluate import evaluate
-    from factorize.measure.report import Report
-    from factorize.model.count import count_bytes, count_parameters
-    from factorize.model.feed import run_model
-    from factorize.model.sites import Site, WalkResult, walk
+    from factorize.measure.report import Report as Report
+    from factorize.model.count import count_bytes as count_bytes
+    from factorize.model.count import count_parameters as count_parameters
+    from factorize.model.feed import run_model as run_model
+    from factorize.model.sites import Site as Site
+    from factorize.model.sites import WalkResult as WalkResult
+    from factorize.model.sites import walk
     from factorize.pipeline import compress
-    from factorize.plan.ranks import (
-        Override,
-        Policy,
-        choose_ranks,
-        plan_ranks,
-        plan_summary,
-    )
-    from factorize.plan.recipe import load_recipe
-    from factorize.rewrite.apply import CompressResult, apply_plan, merge, validate_plan
-    from factorize.rewrite.layers import (
-        Factored,
-        factored_layers,
-        is_factored,
-        to_dense,
-    )
-    from factorize.spectra.cache import SpectrumCache
+    from factorize.plan.policy import Override as Override
+    from factorize.plan.policy import Policy
+    from factorize.plan.ranks import choose_ranks
+    from factorize.plan.ranks import plan_ranks as plan_ranks
+    from factorize.plan.ranks import plan_summary as plan_summary
+    from factorize.plan.recipe import load_recipe as load_recipe
+    from factorize.rewrite.apply import CompressResult, apply_plan, merge
+    from factorize.rewrite.apply import validate_plan as validate_plan
+    from factorize.rewrite.layers import Factored as Factored
+    from factorize.rewrite.layers import factored_layers as factored_layers
+    from factorize.rewrite.layers import is_factored as is_factored
+    from factorize.rewrite.layers import to_dense as to_dense
+    from factorize.spectra.cache import SpectrumCache as SpectrumCache
     from factorize.spectra.decompose import Spectrum, decompose
-    from factorize.spectra.sites import decompose_sites
-    from factorize.training.heal import HealResult, heal
+    from factorize.spectra.sites import decompose_sites as decompose_sites
+    from factorize.training.heal import HealResult as HealResult
+    from factorize.training.heal import heal
     from factorize.training.loop import (
         ProgressiveSchedule,
         compress_in_training,

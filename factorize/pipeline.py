@@ -26,6 +26,7 @@ from factorize.errors import FactorizeError, UnverifiedModelWarning
 from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
 from factorize.model.sites import WalkResult, walk
+from factorize.plan.entries import factored_ranks
 from factorize.plan.policy import (
     AWARE_METHODS,
     POLICY_KEYWORDS,
@@ -238,9 +239,8 @@ def sweep_spectra(
                         cache=cache)
     wanted: dict[str, set[int]] = {}
     for p in policies:
-        for name, e in choose_ranks(found.sites, have, p, method=p.method)["sites"].items():
-            if e["action"] == "factor":
-                wanted.setdefault(name, set()).add(int(e["rank"]))
+        for name, rank in factored_ranks(choose_ranks(found.sites, have, p, method=p.method)).items():
+            wanted.setdefault(name, set()).add(int(rank))
     ranks = {name: max(rs) for name, rs in wanted.items()}
     run = RunOptions(precision=precision, workers=workers, cache=cache)
     return leading_sites(model, found.sites, ranks, have, guard_ranks=wanted, seed=first.seed, precision=run.precision,
@@ -249,7 +249,7 @@ def sweep_spectra(
 
 def _with_vectors(model, found, plan, have, policy, run, progress, guard_ranks=None):
     """``have`` with vector pairs up to each factored site's planned rank (:func:`leading_sites`)."""
-    ranks = {name: e["rank"] for name, e in plan["sites"].items() if e["action"] == "factor"}
+    ranks = factored_ranks(plan)
     return leading_sites(model, found.sites, ranks, have, guard_ranks=guard_ranks, seed=policy.seed,
                          precision=run.precision, progress=progress, workers=run.workers, cache=run.cache)
 

@@ -75,6 +75,7 @@ from factorize.calibrated.stats import InputStats
 from factorize.choices import AWARE_METHODS
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site, get_module, matrix_of
+from factorize.plan.entries import factored_entries, factored_names
 from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose
 from factorize.spectra.sites import per_site
 
@@ -411,12 +412,12 @@ def apply_bias_shifts(model: nn.Module, plan: Mapping, spectra: Mapping[str, Spe
 
     Call once, right after :func:`factorize.rewrite.apply.apply_plan` built the factored layers from ``spectra``.
     """
-    for name, e in plan["sites"].items():
-        spec = spectra.get(name)
-        if e.get("action") != "factor" or not isinstance(spec, AwareSpectrum):
+    for e in factored_entries(plan):
+        spec = spectra.get(e.name)
+        if not isinstance(spec, AwareSpectrum):
             continue
-        shift = spec.bias_shift(e["rank"])
-        layer = get_module(model, name)
+        shift = spec.bias_shift(e.rank)
+        layer = get_module(model, e.name)
         bias = getattr(getattr(layer, "second", None), "bias", None)
         if shift is None or bias is None:
             continue
@@ -467,7 +468,7 @@ def compress_sequential(
     from factorize.rewrite.layers import factor_module
 
     batch_list = as_batch_list(batches)
-    names = [n for n, e in plan["sites"].items() if e.get("action") == "factor"]
+    names = factored_names(plan)
     sites = {s.name: s for s in resolve_sites(model, names)}
     order, calls = forward_order(model, list(sites.values()), batch_list[0])
     never = [n for n in order if calls[n] == 0]

@@ -69,6 +69,7 @@ from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
 from factorize.model.feed import token_mask
 from factorize.model.sites import WalkResult, get_module, set_module, walk
+from factorize.plan.entries import rewritten_names
 from factorize.plan.policy import Policy
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.rewrite.apply import CompressResult, apply_plan
@@ -351,9 +352,8 @@ def _result(model: nn.Module, compressed: nn.Module, plan: dict, calib: Calibrat
             search: DriftSearch | None = None) -> CalibratedResult:
     params_before = count_parameters(model)
     if inplace:  # swap the factored layers into the caller's model object (all built first, so nothing half-done)
-        for name, e in plan["sites"].items():
-            if e.get("action") == "factor":
-                set_module(model, name, get_module(compressed, name))
+        for name in rewritten_names(plan):
+            set_module(model, name, get_module(compressed, name))
         compressed = model
     return CalibratedResult(
         model=compressed, plan=plan, sites=calib.found, spectra=dict(calib.spectra), params_before=params_before,

@@ -37,6 +37,7 @@ from safetensors import safe_open
 from torch import nn
 
 from factorize.errors import FactorizeError
+from factorize.plan.entries import factored_names, plan_entries
 from factorize.plan.ranks import PLAN_FORMAT
 from factorize.storage import (
     Header,
@@ -265,13 +266,13 @@ def _check_plan_matches(model: nn.Module, plan: Mapping) -> None:
 
     factored = factored_layers(model)
     problems = []
-    for name, e in plan["sites"].items():
-        layer = factored.get(name)
-        if e.get("action") == "factor":
+    for e in plan_entries(plan):
+        name, layer = e.name, factored.get(e.name)
+        if e.factored:
             if not isinstance(layer, Factored):
-                problems.append(f"{name}: the plan factors it at rank {e.get('rank')}, the model holds it dense")
-            elif layer.rank != e.get("rank") or layer.kind != e.get("kind"):
-                problems.append(f"{name}: plan says {e.get('kind')} rank {e.get('rank')}, "
+                problems.append(f"{name}: the plan factors it at rank {e.rank}, the model holds it dense")
+            elif layer.rank != e.rank or layer.kind != e.kind:
+                problems.append(f"{name}: plan says {e.kind} rank {e.rank}, "
                                 f"model has {layer.kind} rank {layer.rank}")
         elif layer is not None:
             problems.append(f"{name}: factored in the model (rank {layer.rank}) but dense in the plan")
@@ -337,7 +338,7 @@ def load(model: nn.Module, path: str | os.PathLike, *, strict: bool = True) -> n
     ckpt = open_checkpoint(path)
     plan, aliases = _plan_and_aliases(ckpt, path)
     validate_plan(model, plan)
-    names = [n for n, e in plan["sites"].items() if e.get("action") == "factor"]
+    names = factored_names(plan)
     originals = {n: get_module(model, n) for n in names}
     apply_plan(model, plan, weights=False, inplace=True)
     try:

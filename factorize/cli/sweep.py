@@ -16,6 +16,7 @@ from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate
 from factorize.measure.report import CAUTION
 from factorize.pipeline import compress, sweep_spectra
+from factorize.plan.entries import factored_entries
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.storage import write_atomic
 
@@ -115,7 +116,7 @@ def sharing_copy(model):
 
 
 def _worst_predicted_error(plan: dict) -> float:
-    errors = [e.get("predicted_error", 0.0) for e in plan["sites"].values() if e["action"] == "factor"]
+    errors = [e.predicted_error or 0.0 for e in factored_entries(plan)]
     return max(errors) if errors else 0.0
 
 

@@ -32,6 +32,7 @@ from collections.abc import Mapping, Sequence
 
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
+from factorize.plan.entries import DENSE, FACTOR, factored_entries, factored_ranks
 from factorize.plan.policy import POLICY_KEYS, Override, Policy, rank_needed  # noqa: F401 - re-exported
 from factorize.spectra.decompose import Spectrum
 
@@ -67,7 +68,7 @@ def _site_entry(site: Site, spectrum: Spectrum | None, rank: int | None, reason:
         "kind": site.kind,
         "shape": list(site.shape),
         "rank": rank,
-        "action": "factor" if rank is not None else "dense",
+        "action": FACTOR if rank is not None else DENSE,
         "reason": reason,
         "params": site.params,
         "params_after": site.factored_params(rank) if rank is not None else site.params,
@@ -251,7 +252,7 @@ def _entry_cost(site: Site, entry: dict) -> int:
 
 def plan_ranks(plan: Mapping) -> dict[str, int]:
     """name -> rank for the sites a plan factors."""
-    return {name: e["rank"] for name, e in plan["sites"].items() if e.get("action") == "factor"}
+    return factored_ranks(plan)
 
 
 def plan_summary(plan: Mapping) -> dict:
@@ -261,7 +262,7 @@ def plan_summary(plan: Mapping) -> dict:
     after = sum(e["params_after"] for e in sites)
     return {
         "sites": len(plan["sites"]),
-        "factored": sum(1 for e in sites if e["action"] == "factor"),
+        "factored": sum(1 for _ in factored_entries(plan)),
         "params_before": before,
         "params_after": after,
         "kept_fraction": after / before if before else 1.0,

@@ -21,6 +21,14 @@ from factorize.model.sites import (
     set_module,
     walk,
 )
+from factorize.plan.entries import (
+    FACTOR,
+    FORMS,
+    PlanEntry,
+    entry_form,
+    factored_entries,
+    plan_entries,
+)
 from factorize.plan.ranks import (
     PLAN_FORMAT,
     PLAN_VERSION,
@@ -87,9 +95,10 @@ def check_plan(plan: Any, where: str = "") -> None:
 def _entry_problems(name: str, e: Any) -> list[str]:
     if not isinstance(e, Mapping):
         return [f"{name}: the entry is a {type(e).__name__}, not an object"]
-    if e.get("action") not in ("factor", "dense"):
-        return [f"{name}: action {_shown(e.get('action'))} is not 'factor' or 'dense'"]
-    if e["action"] != "factor":
+    form = entry_form(e)
+    if not isinstance(form, str) or form not in FORMS:
+        return [f"{name}: action {_shown(form)} is not {' or '.join(repr(f) for f in FORMS)}"]
+    if not FORMS[form].has_rank:
         return []
     found = []
     if e.get("kind") not in KINDS_IN_PLANS:
@@ -120,17 +129,15 @@ def validate_plan(model: nn.Module, plan: Mapping) -> dict[str, Site]:
     check_plan(plan)
     sites = walk(model).by_name()
     problems = []
-    for name, e in plan["sites"].items():
-        if e.get("action") != "factor":
-            continue
-        site = sites.get(name)
-        name = _shown(name)
+    for e in factored_entries(plan):
+        site = sites.get(e.name)
+        name = _shown(e.name)
         if site is None:
             problems.append(f"{name}: the plan factors it but the model has no such factorizable layer")
-        elif site.kind != e.get("kind") or list(site.shape) != list(e.get("shape", [])):
-            problems.append(f"{name}: plan says {e.get('kind')} {e.get('shape')}, model has {site.kind} {list(site.shape)}")
-        elif not isinstance(e.get("rank"), int) or not 1 <= e["rank"] <= site.max_rank:
-            problems.append(f"{name}: rank {e.get('rank')!r} is not in 1..{site.max_rank}")
+        elif site.kind != e.kind or tuple(site.shape) != e.shape:
+            problems.append(f"{name}: plan says {e.kind} {list(e.shape)}, model has {site.kind} {list(site.shape)}")
+        elif not isinstance(e.rank, int) or not 1 <= e.rank <= site.max_rank:
+            problems.append(f"{name}: rank {e.rank!r} is not in 1..{site.max_rank}")
     if problems:
         raise FactorizeError(
             "the plan does not fit this model", problems,
@@ -161,22 +168,42 @@ def apply_plan(
     """
     sites = validate_plan(model, plan)
     target = model if inplace else copy.deepcopy(model)
-    replacements: dict[str, Factored] = {}
-    for name, e in plan["sites"].items():
-        if e.get("action") != "factor":
-            continue
-        module, r, kind = get_module(target, name), e["rank"], sites[name].kind
-        if not weights:
-            replacements[name] = build_factored(module, kind, r)
-            continue
-        spec = (spectra or {}).get(name)
-        if spec is None or spec.vector_rank < r:
-            spec = decompose(matrix_of(module, kind), method=method, rank=r, seed=seed, name=name)
-        B, A = spec.factors(r)  # (m, r), (r, n)
-        replacements[name] = factor_module(module, kind, B, A)
+    replacements: dict[str, nn.Module] = {}
+    for e in plan_entries(plan):
+        if e.rewritten:
+            build = FORM_BUILDERS[e.form]
+            replacements[e.name] = build(get_module(target, e.name), sites[e.name], e,
+                                         _Source(spectra or {}, weights, method, seed))
     for name, layer in replacements.items():
         set_module(target, name, layer)
     return target
+
+
+@dataclass(frozen=True)
+class _Source:
+    """Where :func:`apply_plan`'s builders take weights from."""
+
+    spectra: Mapping[str, Spectrum]  # reusable spectra by site name
+    weights: bool  # False: the structure only (uninitialised, e.g. to load a checkpoint)
+    method: str
+    seed: int
+
+
+def _build_factored(module: nn.Module, site: Site, e: PlanEntry, src: _Source) -> Factored:
+    """The rank-r factored replacement of one "factor" entry."""
+    r, kind = e.rank, site.kind
+    if not src.weights:
+        return build_factored(module, kind, r)
+    spec = src.spectra.get(e.name)
+    if spec is None or spec.vector_rank < r:
+        spec = decompose(matrix_of(module, kind), method=src.method, rank=r, seed=src.seed, name=e.name)
+    B, A = spec.factors(r)  # (m, r), (r, n)
+    return factor_module(module, kind, B, A)
+
+
+# form -> builder of the module that replaces a layer of an entry of that form (forms whose Form.rewrites is set);
+# a new form of plan entry (factorize.plan.entries.FORMS) adds its builder here
+FORM_BUILDERS = {FACTOR: _build_factored}
 
 
 @torch.no_grad()

@@ -17,6 +17,10 @@ with B (m x r), A (r x n), held by two stock torch layers, ``first`` (A) and ``s
 The state-dict keys are always ``<name>.first.weight``, ``<name>.second.weight`` and ``<name>.second.bias``
 (docs/file-format.md).
 
+Everything that depends on the kind (the thin layers, reading and filling the factors, the weight layout, the
+attributes of a layer built without ``original``, the merge) is one record per kind in
+:mod:`factorize.rewrite.kinds`; this module dispatches through :func:`~factorize.rewrite.kinds.layer_kind`.
+
 **Drop-in.** Parents of a layer read more than its output: T5 reads ``wo.weight.dtype``, ViT and CLIP read
 ``projection.weight.dtype``, ``nn.MultiheadAttention`` passes ``out_proj.weight`` to a functional kernel,
 MobileNetV2 reads ``conv.stride``, Whisper reads ``embed_positions.weight``. So a factored layer answers:
@@ -52,12 +56,8 @@ import copy
 import torch
 from torch import nn
 
-from factorize.model.sites import CONV_KINDS, CONV_TRANSPOSE_KINDS, matrix_of
+from factorize.rewrite.kinds import layer_kind, stock_classes
 
-_STOCK = {"linear": nn.Linear, "conv1d": nn.Conv1d, "conv2d": nn.Conv2d, "conv3d": nn.Conv3d,
-          "conv_transpose1d": nn.ConvTranspose1d, "conv_transpose2d": nn.ConvTranspose2d, "embedding": nn.Embedding}
-_CONV = {"conv1d": nn.Conv1d, "conv2d": nn.Conv2d, "conv3d": nn.Conv3d, "conv_transpose1d": nn.Conv1d,
-         "conv_transpose2d": nn.Conv2d}  # the class of ``first`` for convolutions
 _DENSE_KEYS = ("weight", "bias")
 
 
@@ -84,15 +84,11 @@ class Factored(nn.Module):
 
     def factor_b(self) -> torch.Tensor:
         """B (m x r)."""
-        if self.kind in CONV_TRANSPOSE_KINDS:
-            return self.second.weight.reshape(self.second.weight.shape[0], -1).t()  # (r, out, *k) -> (out * k, r)
-        return self.second.weight.reshape(self.second.weight.shape[0], -1)  # 1x1 conv: (m, r, 1[,1]) -> (m, r)
+        return layer_kind(self.kind).factors(self.first, self.second)[0]
 
     def factor_a(self) -> torch.Tensor:
         """A (r x n)."""
-        if self.kind == "embedding":
-            return self.first.weight.t()  # table (V, r) -> (r, V)
-        return self.first.weight.reshape(self.first.weight.shape[0], -1)  # (r, n)
+        return layer_kind(self.kind).factors(self.first, self.second)[1]
 
     def product(self) -> torch.Tensor:
         """``B @ A``: the dense matrix view this layer computes (m x n)."""
@@ -102,14 +98,7 @@ class Factored(nn.Module):
     def weight(self) -> torch.Tensor:
         """The dense weight this layer computes, in the replaced module's layout. Computed on every read (one
         matrix product; gradients flow to the factors); not a Parameter and not stored."""
-        W = self.product()
-        if self.kind in ("embedding", "transposed"):
-            return W.t()  # embedding (V, d); transposed projection stored (in, out)
-        if self.kind in CONV_KINDS:
-            return W.reshape(W.shape[0], *self.first.weight.shape[1:])  # (out, in, *kernel)
-        if self.kind in CONV_TRANSPOSE_KINDS:
-            return W.t().reshape(W.shape[1], *self.second.weight.shape[1:])  # (in, out, *kernel)
-        return W
+        return layer_kind(self.kind).layout(self.product(), self.first, self.second)
 
     @property
     def bias(self) -> torch.Tensor | None:
@@ -122,7 +111,7 @@ class Factored(nn.Module):
         if type(self) is not Factored:
             return _IN_PLACE_BASE[type(self)]
         original = self.__dict__.get("_original")
-        return type(original) if original is not None else _STOCK.get(self.kind, nn.Linear)
+        return type(original) if original is not None else layer_kind(self.kind).dense_class
 
     def forward(self, input: torch.Tensor, *args, **kwargs) -> torch.Tensor:  # noqa: A002 - stock argument name
         """The two thin layers; extra arguments (a transposed conv's ``output_size``) go to ``second``."""
@@ -151,24 +140,7 @@ def _derived_attributes(layer: Factored) -> dict:
     first, second = modules.get("first"), modules.get("second")
     if first is None or second is None:
         return {}
-    if layer.kind == "embedding":
-        return {"num_embeddings": first.num_embeddings, "embedding_dim": second.out_features,
-                "padding_idx": first.padding_idx, "max_norm": None, "norm_type": 2.0,
-                "scale_grad_by_freq": first.scale_grad_by_freq, "sparse": first.sparse}
-    if layer.kind in CONV_KINDS:
-        return {"in_channels": first.in_channels, "out_channels": second.out_channels,
-                "kernel_size": first.kernel_size, "stride": first.stride, "padding": first.padding,
-                "dilation": first.dilation, "groups": 1, "padding_mode": first.padding_mode,
-                "transposed": False, "output_padding": first.output_padding}
-    if layer.kind in CONV_TRANSPOSE_KINDS:
-        return {"in_channels": first.in_channels, "out_channels": second.out_channels,
-                "kernel_size": second.kernel_size, "stride": second.stride, "padding": second.padding,
-                "dilation": second.dilation, "groups": 1, "padding_mode": second.padding_mode,
-                "transposed": True, "output_padding": second.output_padding}
-    out = {"in_features": first.in_features, "out_features": second.out_features}
-    if layer.kind == "transposed":
-        out.update(nx=first.in_features, nf=second.out_features)
-    return out
+    return layer_kind(layer.kind).derived(first, second)
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -179,7 +151,7 @@ _IN_PLACE_BASE: dict[type, type] = {}
 
 
 def _stock_base(cls: type) -> type | None:
-    for base in (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d, nn.ConvTranspose1d, nn.ConvTranspose2d, nn.Embedding):
+    for base in stock_classes():
         if issubclass(cls, base):
             return base
     return None
@@ -242,49 +214,18 @@ def _shell(module: nn.Module) -> nn.Module:
 
 def swaps(module: nn.Module, kind: str) -> bool:
     """Whether a factored ``module`` is swapped for a :class:`Factored` (else it is factored in place)."""
-    return kind == "transposed" or type(module) is _STOCK.get(kind)
+    return layer_kind(kind).swaps(module)
 
 
 # ---------------------------------------------------------------------------------------------------------------
 # building, filling, merging
 
 
-def _empty_like_linear(n_in: int, n_out: int, bias: bool, ref: torch.Tensor) -> nn.Linear:
-    return nn.Linear(n_in, n_out, bias=bias, device=ref.device, dtype=ref.dtype)
-
-
-def _make_factors(module: nn.Module, kind: str, rank: int) -> tuple[nn.Module, nn.Module]:
-    w = module.weight
-    m, _ = matrix_of(module, kind).shape
-    has_bias = isinstance(getattr(module, "bias", None), torch.Tensor)
-    if kind in ("linear", "transposed"):
-        _, n = matrix_of(module, kind).shape
-        first, second = _empty_like_linear(n, rank, False, w), _empty_like_linear(rank, m, has_bias, w)
-    elif kind in CONV_KINDS:
-        conv = _CONV[kind]
-        first = conv(
-            module.in_channels, rank, module.kernel_size, stride=module.stride, padding=module.padding,
-            dilation=module.dilation, bias=False, padding_mode=module.padding_mode, device=w.device, dtype=w.dtype,
-        )
-        second = conv(rank, module.out_channels, 1, bias=has_bias, device=w.device, dtype=w.dtype)
-    elif kind in CONV_TRANSPOSE_KINDS:
-        first = _CONV[kind](module.in_channels, rank, 1, bias=False, device=w.device, dtype=w.dtype)
-        second = _STOCK[kind](
-            rank, module.out_channels, module.kernel_size, stride=module.stride, padding=module.padding,
-            output_padding=module.output_padding, dilation=module.dilation, bias=has_bias, device=w.device,
-            dtype=w.dtype,
-        )
-    elif kind == "embedding":
-        first = nn.Embedding(
-            module.num_embeddings, rank, padding_idx=module.padding_idx, scale_grad_by_freq=module.scale_grad_by_freq,
-            sparse=module.sparse, device=w.device, dtype=w.dtype,
-        )
-        second = _empty_like_linear(rank, m, False, w)
-    else:
-        raise ValueError(f"unknown kind {kind!r}")
-    for p in (*first.parameters(), *second.parameters()):
-        p.requires_grad_(w.requires_grad)  # a frozen weight (Whisper's sinusoidal positions) stays frozen
-    return first, second
+def _thin_layers(module: nn.Module, kind: str, rank: int) -> tuple[nn.Module, nn.Module]:
+    record = layer_kind(kind)
+    m, n = record.matrix(module).shape
+    return record.thin_layers(module, rank, m, n, isinstance(getattr(module, "bias", None), torch.Tensor),
+                              module.weight)
 
 
 def build_factored(module: nn.Module, kind: str, rank: int) -> Factored:
@@ -294,7 +235,7 @@ def build_factored(module: nn.Module, kind: str, rank: int) -> Factored:
     ``module`` of its in-place factored class, sharing its other parameters and children); the caller puts it
     where ``module`` was.
     """
-    first, second = _make_factors(module, kind, rank)
+    first, second = _thin_layers(module, kind, rank)
     if swaps(module, kind):
         return Factored(first, second, kind, original=_shell(module))
     layer = _fresh_copy(module)
@@ -314,20 +255,25 @@ def with_factors(layer: Factored, first: nn.Module, second: nn.Module) -> Factor
     return new
 
 
+def at_rank(layer: Factored, B: torch.Tensor, A: torch.Tensor) -> Factored:
+    """A copy of ``layer`` (same form, class and remembered original) at rank ``A.shape[0]``, holding B (m x r')
+    and A (r' x n) and ``layer``'s bias; its thin layers have ``layer``'s geometry, dtype, device and
+    ``requires_grad``. ``layer`` itself is not modified."""
+    second = layer.second
+    first_new, second_new = layer_kind(layer.kind).thin_layers(
+        layer, int(A.shape[0]), int(B.shape[0]), int(A.shape[1]), second.bias is not None, second.weight)
+    new = with_factors(layer, first_new, second_new)
+    fill_factors(new, B, A, second.bias)
+    new.train(layer.training)
+    return new
+
+
 @torch.no_grad()
 def fill_factors(layer: Factored, B: torch.Tensor, A: torch.Tensor, bias: torch.Tensor | None) -> None:
     """Copy B (m x r), A (r x n) and the bias into ``layer``, casting to its dtype."""
-    first, second = layer.first, layer.second
-    if layer.kind == "embedding":
-        first.weight.copy_(A.t())  # (V, r); a zero padding row of W stays (numerically) zero in A^T
-    else:
-        first.weight.copy_(A.reshape(first.weight.shape))  # (r, n) or (r, in, *k)
-    if layer.kind in CONV_TRANSPOSE_KINDS:
-        second.weight.copy_(B.t().reshape(second.weight.shape))  # (out * k, r) -> (r, out, *kernel)
-    else:
-        second.weight.copy_(B.reshape(second.weight.shape))  # (m, r) or (m, r, 1[, 1[, 1]])
+    layer_kind(layer.kind).fill(layer.first, layer.second, B, A)
     if bias is not None:
-        second.bias.copy_(bias)
+        layer.second.bias.copy_(bias)
 
 
 def factor_module(module: nn.Module, kind: str, B: torch.Tensor, A: torch.Tensor) -> Factored:
@@ -379,22 +325,9 @@ def to_dense(layer: Factored) -> nn.Module:
 
 
 def _stock_dense(layer: Factored, W: torch.Tensor, ref: torch.Tensor) -> nn.Module:
-    bias, f = layer.second.bias, layer.first
-    kw = {"device": ref.device, "dtype": ref.dtype}
-    if layer.kind in ("linear", "transposed"):
-        W = W.t() if layer.kind == "transposed" else W
-        dense = nn.Linear(W.shape[1], W.shape[0], bias=bias is not None, **kw)
-    elif layer.kind in CONV_KINDS:
-        dense = _CONV[layer.kind](f.in_channels, W.shape[0], f.kernel_size, stride=f.stride, padding=f.padding,
-                                  dilation=f.dilation, bias=bias is not None, padding_mode=f.padding_mode, **kw)
-    elif layer.kind in CONV_TRANSPOSE_KINDS:
-        s = layer.second
-        dense = _STOCK[layer.kind](f.in_channels, s.out_channels, s.kernel_size, stride=s.stride, padding=s.padding,
-                                   output_padding=s.output_padding, dilation=s.dilation, bias=bias is not None, **kw)
-    else:  # embedding
-        dense = nn.Embedding(f.num_embeddings, W.shape[1], padding_idx=f.padding_idx,
-                             scale_grad_by_freq=f.scale_grad_by_freq, sparse=f.sparse, **kw)
-    dense.weight.copy_(W)
+    bias = layer.second.bias
+    like = {"device": ref.device, "dtype": ref.dtype}
+    dense = layer_kind(layer.kind).stock_dense(layer.first, layer.second, W, like)
     if bias is not None:
         dense.bias.copy_(bias)
     return dense

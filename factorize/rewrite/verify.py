@@ -31,6 +31,7 @@ from torch import nn
 from factorize.errors import FactorizeError
 from factorize.model.feed import feed
 from factorize.model.sites import get_module, set_module
+from factorize.plan.entries import factored_names
 from factorize.rewrite.layers import factored_layers
 
 
@@ -110,7 +111,7 @@ def find_breaking_layers(
     trial = copy.deepcopy(compressed)
     fact_of = factored_layers(trial)
     if plan is not None:
-        wanted = {n for n, e in plan.get("sites", {}).items() if e.get("action") == "factor"}
+        wanted = set(factored_names(plan))
         fact_of = {n: m for n, m in fact_of.items() if n in wanted}
     names = list(fact_of)
     dense_of = {name: copy.deepcopy(get_module(original, name)) for name in names}

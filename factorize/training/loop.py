@@ -48,16 +48,12 @@ from factorize.errors import FactorizeError
 from factorize.model.count import count_parameters
 from factorize.model.sites import Site, WalkResult, get_module, set_module, walk
 from factorize.pipeline import compress
+from factorize.plan.entries import FACTOR, factored_ranks, is_factored_entry
 from factorize.plan.policy import POLICY_KEYS, Policy, resolve_policy
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, merge
-from factorize.rewrite.layers import (
-    Factored,
-    factor_module,
-    factored_layers,
-    fill_factors,
-    with_factors,
-)
+from factorize.rewrite.kinds import layer_kind
+from factorize.rewrite.layers import Factored, at_rank, factor_module, factored_layers
 from factorize.spectra.decompose import Spectrum, compute_dtype_for
 from factorize.spectra.sites import decompose_sites
 
@@ -86,37 +82,9 @@ def factored_spectrum(layer: Factored, *, precision: str | None = None) -> Spect
 
 def _factored_site(name: str, layer: Factored) -> Site:
     m, n = int(layer.factor_b().shape[0]), int(layer.factor_a().shape[1])
-    kernel = tuple(layer.kernel_size) if layer.kind.startswith("conv") else ()
+    kernel = layer_kind(layer.kind).kernel(layer)
     return Site(name=name, kind=layer.kind, shape=(m, n), params=m * n, has_bias=layer.second.bias is not None,
                 dtype=str(layer.second.weight.dtype).removeprefix("torch."), kernel=kernel)
-
-
-def _lower_rank(layer: Factored, B: torch.Tensor, A: torch.Tensor) -> Factored:
-    """A factored layer with the structure of ``layer`` at rank ``A.shape[0]``, holding B (m x r'), A (r' x n)."""
-    r = int(A.shape[0])
-    first, second = layer.first, layer.second
-    like = {"device": second.weight.device, "dtype": second.weight.dtype}
-    has_bias = second.bias is not None
-    if layer.kind == "embedding":
-        new_first: nn.Module = nn.Embedding(first.num_embeddings, r, padding_idx=first.padding_idx,
-                                            scale_grad_by_freq=first.scale_grad_by_freq, sparse=first.sparse, **like)
-        new_second: nn.Module = nn.Linear(r, second.out_features, bias=False, **like)
-    elif isinstance(first, nn.Linear):  # linear and transposed
-        new_first = nn.Linear(first.in_features, r, bias=False, **like)
-        new_second = nn.Linear(r, second.out_features, bias=has_bias, **like)
-    elif layer.kind.startswith("conv_transpose"):  # 1x1 conv to r channels, then the transposed conv
-        new_first = type(first)(first.in_channels, r, 1, bias=False, **like)
-        new_second = type(second)(r, second.out_channels, second.kernel_size, stride=second.stride,
-                                  padding=second.padding, output_padding=second.output_padding,
-                                  dilation=second.dilation, bias=has_bias, **like)
-    else:  # conv1d / conv2d / conv3d
-        new_first = type(first)(first.in_channels, r, first.kernel_size, stride=first.stride, padding=first.padding,
-                                dilation=first.dilation, bias=False, padding_mode=first.padding_mode, **like)
-        new_second = type(second)(r, second.out_channels, 1, bias=has_bias, **like)
-    new = with_factors(layer, new_first, new_second)  # keeps the form and the original class
-    fill_factors(new, B, A, second.bias if has_bias else None)
-    new.train(layer.training)
-    return new
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -128,7 +96,7 @@ def _module_order(model: nn.Module) -> dict[str, int]:
 
 
 def _keep_current(entry: dict, rank: int, site: Site) -> None:
-    entry.update(rank=rank, action="factor", params_after=site.factored_params(rank),
+    entry.update(rank=rank, action=FACTOR, params_after=site.factored_params(rank),
                  reason=f"already factored at rank {rank}; a factored layer is never grown, kept")
     entry["predicted_error"], entry["energy_kept"] = 0.0, 1.0
 
@@ -181,12 +149,12 @@ def refactor(
     replacements: dict[str, nn.Module] = {}
     for name, entry in plan["sites"].items():
         current = factored.get(name)
-        if current is not None and (entry["action"] != "factor" or entry["rank"] >= current.rank):
+        if current is not None and (not is_factored_entry(entry) or entry["rank"] >= current.rank):
             _keep_current(entry, current.rank, by_name[name])
-        elif entry["action"] == "factor":
+        elif is_factored_entry(entry):
             B, A = spectra[name].factors(entry["rank"])  # (m, r), (r, n)
             module = get_module(model, name)
-            replacements[name] = (_lower_rank(current, B, A) if current is not None
+            replacements[name] = (at_rank(current, B, A) if current is not None
                                   else factor_module(module, by_name[name].kind, B, A))
     for name, layer in replacements.items():
         set_module(model, name, layer)
@@ -379,6 +347,6 @@ class ProgressiveSchedule:
         self.history.append({
             "epoch": epoch, "budget": self.budgets[i], "params": result.params_after,
             "site_params_kept": sum(e["params_after"] for e in sites) / max(sum(e["params"] for e in sites), 1),
-            "ranks": {n: e["rank"] for n, e in result.plan["sites"].items() if e["action"] == "factor"},
+            "ranks": factored_ranks(result.plan),
         })
         return optimizer
