@@ -4,12 +4,16 @@ A plan stays plain JSON-serialisable data (saved plans and checkpoints are uncha
 entry of ``plan["sites"]`` records what becomes of one layer in its ``"action"`` field, called its **form** here:
 
 * ``"factor"``: the layer is replaced by rank-r factors (``"rank"`` holds r);
-* ``"dense"``: the layer is kept as it is.
+* ``"dense"``: the layer is kept as it is;
+* ``"corrected"``: the layer's weight is stored rounded, plus a rank-k correction (``"correction_rank"``).
+
+Any entry may carry ``"precision"``, the stored precision of its weight (dense), of its factors (factor) or of its
+rounded part (corrected); an entry without one keeps the weight's own dtype (plan version 1).
 
 :data:`FORMS` describes each form once (whether an entry of that form carries a rank, whether the layer is
 rewritten in the model); a new form (a weight stored rounded, factors plus a rounding correction) is one more
 :class:`Form` there, and every reader below follows it. :class:`PlanEntry` is a frozen record read from one entry,
-with room for the stored ``precision`` a later plan version may record.
+with the stored ``precision`` plan version 2 records.
 """
 
 from __future__ import annotations
@@ -20,6 +24,7 @@ from typing import Any
 
 FACTOR = "factor"
 DENSE = "dense"
+CORRECTED = "corrected"
 
 
 @dataclass(frozen=True)
@@ -34,6 +39,8 @@ class Form:
 FORMS: dict[str, Form] = {
     FACTOR: Form(FACTOR, has_rank=True, rewrites=True),
     DENSE: Form(DENSE, has_rank=False, rewrites=False),
+    # rounded dense weight plus a low-rank correction ("correction_rank"); see factorize.rewrite.forms
+    CORRECTED: Form(CORRECTED, has_rank=False, rewrites=True),
 }
 
 
@@ -53,7 +60,8 @@ class PlanEntry:
     params: int | None = None
     params_after: int | None = None
     predicted_error: float | None = None
-    precision: str | None = None  # stored precision of the layer's weights; not recorded by plan version 1
+    precision: str | None = None  # stored precision of the layer's weights (plan version 2; None: as it is)
+    correction_rank: int | None = None  # the corrected form's rank
 
     @property
     def factored(self) -> bool:
@@ -87,6 +95,7 @@ def plan_entry(name: str, entry: Mapping) -> PlanEntry:
         shape=tuple(shape) if isinstance(shape, (list, tuple)) else None, rank=entry.get("rank"),
         reason=str(entry.get("reason", "")), params=entry.get("params"), params_after=entry.get("params_after"),
         predicted_error=entry.get("predicted_error"), precision=entry.get("precision"),
+        correction_rank=entry.get("correction_rank"),
     )
 
 

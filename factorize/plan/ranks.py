@@ -37,7 +37,8 @@ from factorize.plan.policy import POLICY_KEYS, Override, Policy, rank_needed  # 
 from factorize.spectra.decompose import Spectrum
 
 PLAN_FORMAT = "factorize.plan"
-PLAN_VERSION = 1
+PLAN_VERSION = 1  # rank-only plans
+PRECISION_PLAN_VERSION = 2  # plans whose entries record a stored precision (factorize.plan.forms)
 
 
 # ---------------------------------------------------------------------------------------------------------------

@@ -22,6 +22,7 @@ from factorize.model.sites import (
     walk,
 )
 from factorize.plan.entries import (
+    CORRECTED,
     FACTOR,
     FORMS,
     PlanEntry,
@@ -31,9 +32,10 @@ from factorize.plan.entries import (
 )
 from factorize.plan.ranks import (
     PLAN_FORMAT,
-    PLAN_VERSION,
+    PRECISION_PLAN_VERSION,
     plan_summary,
 )
+from factorize.rewrite.forms import corrected_layer, store_precisions
 from factorize.rewrite.layers import (
     Factored,
     build_factored,
@@ -41,6 +43,7 @@ from factorize.rewrite.layers import (
     factored_layers,
     to_dense,
 )
+from factorize.rounding import PRECISIONS
 from factorize.spectra.decompose import Spectrum, decompose
 
 
@@ -82,9 +85,9 @@ def check_plan(plan: Any, where: str = "") -> None:
         raise FactorizeError(f"{prefix}not a factorize plan",
                              fix=f"pass the .plan of a compress() result (format {PLAN_FORMAT!r})")
     problems = []
-    version = plan.get("version", PLAN_VERSION)
-    if isinstance(version, bool) or not isinstance(version, int) or not 1 <= version <= PLAN_VERSION:
-        problems.append(f"version {_shown(version)}: this factorize reads plan versions 1..{PLAN_VERSION}")
+    version = plan.get("version", 1)
+    if isinstance(version, bool) or not isinstance(version, int) or not 1 <= version <= PRECISION_PLAN_VERSION:
+        problems.append(f"version {_shown(version)}: this factorize reads plan versions 1..{PRECISION_PLAN_VERSION}")
     for name, e in plan["sites"].items():
         problems += _entry_problems(_shown(name), e)
     if problems:
@@ -98,9 +101,16 @@ def _entry_problems(name: str, e: Any) -> list[str]:
     form = entry_form(e)
     if not isinstance(form, str) or form not in FORMS:
         return [f"{name}: action {_shown(form)} is not {' or '.join(repr(f) for f in FORMS)}"]
-    if not FORMS[form].has_rank:
-        return []
     found = []
+    if "precision" in e and e["precision"] not in PRECISIONS:
+        found.append(f"{name}: precision {_shown(e['precision'])} is not one of {', '.join(PRECISIONS)}")
+    if form == CORRECTED:
+        if e.get("kind") != "linear":
+            found.append(f"{name}: the corrected form is built for linear layers, not {_shown(e.get('kind'))}")
+        if not _positive_int(e.get("correction_rank")):
+            found.append(f"{name}: correction_rank {_shown(e.get('correction_rank'))} is not a positive integer")
+    if not FORMS[form].has_rank:
+        return found
     if e.get("kind") not in KINDS_IN_PLANS:
         found.append(f"{name}: kind {_shown(e.get('kind'))} is not one of {', '.join(KINDS_IN_PLANS)}")
     shape = e.get("shape")
@@ -155,8 +165,9 @@ def apply_plan(
     weights: bool = True,
     method: str = "exact",
     seed: int = 0,
+    hessians: Mapping[str, torch.Tensor] | None = None,
 ) -> nn.Module:
-    """Rewrite the layers a plan factors. All replacements are built first and swapped in last, so a failure
+    """Rewrite the layers a plan factors (and store each at the precision its entry records). All replacements are built first and swapped in last, so a failure
     leaves the model as it was.
 
     Args:
@@ -165,6 +176,8 @@ def apply_plan(
         spectra: spectra to take the factors from; missing ones are computed from the model's own weights.
         inplace: rewrite ``model`` itself instead of a deep copy.
         weights: False builds the factored structure only (uninitialised factors), e.g. to load a checkpoint.
+        hessians: name -> input second moment (n x n) of layers whose stored precision is rounded with error
+            feedback (GPTQ); layers without one are rounded to nearest.
     """
     sites = validate_plan(model, plan)
     target = model if inplace else copy.deepcopy(model)
@@ -173,9 +186,10 @@ def apply_plan(
         if e.rewritten:
             build = FORM_BUILDERS[e.form]
             replacements[e.name] = build(get_module(target, e.name), sites[e.name], e,
-                                         _Source(spectra or {}, weights, method, seed))
+                                         _Source(spectra or {}, weights, method, seed, hessians or {}))
     for name, layer in replacements.items():
         set_module(target, name, layer)
+    store_precisions(target, plan, hessians=hessians or {}, weights=weights)
     return target
 
 
@@ -187,6 +201,7 @@ class _Source:
     weights: bool  # False: the structure only (uninitialised, e.g. to load a checkpoint)
     method: str
     seed: int
+    hessians: Mapping[str, torch.Tensor]  # input second moments for error-feedback rounding
 
 
 def _build_factored(module: nn.Module, site: Site, e: PlanEntry, src: _Source) -> Factored:
@@ -201,9 +216,14 @@ def _build_factored(module: nn.Module, site: Site, e: PlanEntry, src: _Source) -
     return factor_module(module, kind, B, A)
 
 
+def _build_corrected(module: nn.Module, site: Site, e: PlanEntry, src: _Source) -> nn.Module:
+    """The rounded-plus-correction replacement of one "corrected" entry."""
+    return corrected_layer(module, e.precision, e.correction_rank, src.hessians.get(e.name), src.weights)
+
+
 # form -> builder of the module that replaces a layer of an entry of that form (forms whose Form.rewrites is set);
 # a new form of plan entry (factorize.plan.entries.FORMS) adds its builder here
-FORM_BUILDERS = {FACTOR: _build_factored}
+FORM_BUILDERS = {FACTOR: _build_factored, CORRECTED: _build_corrected}
 
 
 @torch.no_grad()

@@ -1,0 +1,279 @@
+"""Rank and stored precision chosen together: every form a layer can take, priced and with its predicted error.
+
+A layer's weight matrix view W (m x n) can be kept
+
+* **dense** at a precision p (:data:`factorize.rounding.PRECISIONS`): cost ``stored_bytes(p, (m, n))``;
+* **factored** at rank r with both factors at p: cost ``stored_bytes(p, (m, r)) + stored_bytes(p, (r, n))``;
+* **corrected**: rounded to a 4-bit precision p plus a rank-k correction in bfloat16 fitted to what rounding lost
+  (LQER, Zhang, Cheng, Constantinides & Zhao, ICML 2024): cost ``stored_bytes(p, (m, n)) + 2 k (m + n)``.
+
+**Predicted error.** Every candidate's error is in the units of the layer's spectrum, so truncation and rounding
+add up and the joint planner (:mod:`factorize.plan.joint`) can trade one against the other across layers:
+
+* plain spectra (no calibration): ||dW||_F^2, scaled by 1 / ||W||_F^2 (each layer's error relative to its own
+  energy, as the rank-only allocator does);
+* calibrated spectra: trace(G' dW C' dW^T) with C' = C + lambda I the input second moment and G' = G + mu I the
+  output Gram matrix (identity without output weighting), exactly the measure of
+  :mod:`factorize.calibrated.aware` (the Gauss-Newton / K-FAC approximation of the final-output error), scaled as
+  the calibrated allocator scales it.
+
+Truncation error at rank r is the spectrum's own predicted error (Eckart-Young-Mirsky, or the whitened
+reduced-rank regression's discarded energy). Rounding a dense matrix is priced exactly: the matrix is rounded
+(error-feedback rounding, GPTQ, Frantar et al. 2023, when C is known) and :func:`factorize.rounding.weighted_error`
+is taken. Rounding the factors is priced per rank-one term from one rounding at the largest candidate rank: with
+B = [b_i], A = [a_i^T], and dB, dA what rounding changed, the error of the first r terms is approximately
+
+    sum_{i <= r}  (db_i^T G' db_i)(a_i^T C' a_i) + (b_i^T G' b_i)(da_i^T C' da_i),
+
+exact when the terms are orthogonal in the two metrics (the whitened directions are: that is what the whitened SVD
+gives) and the rounding errors of different terms are uncorrelated; the cross term dB dA is of second order.
+The correction's error at rank k is the energy the whitened rounding error keeps beyond its first k singular
+values (Eckart-Young-Mirsky applied to G'^{1/2} E L).
+
+Predicted errors are no guarantee: the report measures drift on the user's inputs, and beside it the plain
+alternatives (rounding alone, rank alone) at the same stored size.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+import torch
+
+from factorize.errors import FactorizeError
+from factorize.model.sites import Site
+from factorize.plan.joint import Candidate
+from factorize.rounding import (
+    PRECISIONS,
+    check_precision,
+    fits,
+    is_float,
+    round_factors,
+    round_matrix,
+    stored_bytes,
+    weighted_error,
+)
+from factorize.spectra.decompose import Spectrum
+
+# int8 and 4-bit in groups of 64 are what practitioners try first (common practice); bfloat16 keeps the float
+# range at half the bytes. int4 in groups of 32 costs 0.25 bit a weight more for little (measured on MiniLM:
+# held-out cosine 0.9901 against 0.9884, both with error-feedback rounding), so it is allowed but not a default.
+DEFAULT_PRECISIONS = ("float32", "bfloat16", "int8", "int4g64")
+CORRECTION_RANKS = (8, 16, 32, 64)  # ranks of the rounded-plus-correction form (capped at min(m, n) / 4)
+CORRECTION_PRECISION = "bfloat16"  # the correction's factors (LQER keeps them in high precision)
+RANK_POINTS = 24  # candidate ranks per precision and layer (plus the multiples the policy asks for)
+KINDS_WITH_CORRECTION = ("linear",)  # the corrected form is built for stock nn.Linear layers
+NATIVE = {torch.float32: "float32", torch.bfloat16: "bfloat16", torch.float16: "float16"}
+_WIDTH = {"float32": 32, "bfloat16": 16, "float16": 16, "int8": 8, "int4g32": 4, "int4g64": 4, "int4g128": 4}
+
+
+def check_precisions(precisions: Sequence[str] | None) -> tuple[str, ...]:
+    """The allowed precisions, validated (every bad name listed once); None gives :data:`DEFAULT_PRECISIONS`."""
+    if precisions is None:
+        return DEFAULT_PRECISIONS
+    if isinstance(precisions, str):
+        precisions = tuple(p.strip() for p in precisions.split(","))
+    bad = [p for p in precisions if p not in PRECISIONS]
+    if bad or not precisions:
+        raise FactorizeError(f"unknown stored precision(s): {', '.join(map(repr, bad)) or 'none given'}",
+                             fix=f"use some of {', '.join(PRECISIONS)}")
+    return tuple(dict.fromkeys(check_precision(p) for p in precisions))
+
+
+def native_precision(dtype: torch.dtype) -> str:
+    """The precision a weight of ``dtype`` is stored in now (float64 and others count as float32)."""
+    return NATIVE.get(dtype, "float32")
+
+
+def usable(precisions: Sequence[str], native: str) -> tuple[str, ...]:
+    """The native precision first, then every allowed one that stores fewer bits than it."""
+    return (native, *[p for p in precisions if _WIDTH[p] < _WIDTH[native]])
+
+
+def factor_bytes(precision: str, shape: tuple[int, int], rank: int) -> int:
+    m, n = shape
+    return stored_bytes(precision, (m, rank)) + stored_bytes(precision, (rank, n))
+
+
+def corrected_bytes(precision: str, shape: tuple[int, int], rank: int) -> int:
+    m, n = shape
+    return stored_bytes(precision, shape) + rank * (m + n) * 2  # bfloat16 correction factors
+
+
+class LayerMetric:
+    """The error measure of one layer: trace(G dW C dW^T) * scale (G, C optional), and its square-root factors."""
+
+    def __init__(self, hessian: torch.Tensor | None, output_gram: torch.Tensor | None, scale: float) -> None:
+        self.C = None if hessian is None else hessian.detach().to(torch.float64)
+        self.G = None if output_gram is None else output_gram.detach().to(torch.float64)
+        self.scale = float(scale)
+
+    def error(self, W: torch.Tensor, Wq: torch.Tensor) -> float:
+        return self.scale * weighted_error(W, Wq, self.C, output_gram=self.G)
+
+    def left(self, X: torch.Tensor) -> torch.Tensor:  # (m, k) -> G X
+        return X if self.G is None else self.G @ X
+
+    def right(self, Y: torch.Tensor) -> torch.Tensor:  # (k, n) -> Y C
+        return Y if self.C is None else (Y * self.C if self.C.dim() == 1 else Y @ self.C)
+
+    def whitened(self, E: torch.Tensor) -> torch.Tensor:
+        """G^{1/2} E L with C = L L^T (both optional): ||G^{1/2} E L||_F^2 = trace(G E C E^T)."""
+        Z = E
+        if self.C is not None:
+            C = torch.diag(self.C) if self.C.dim() == 1 else self.C
+            lam = 1e-9 * float(C.diagonal().mean().clamp_min(1e-300))
+            evals, evecs = torch.linalg.eigh(C + lam * torch.eye(C.shape[0], dtype=C.dtype))
+            Z = Z @ (evecs * evals.clamp_min(0).sqrt())  # (m, n): E L with L = V diag(sqrt(evals))
+        if self.G is not None:
+            evals, evecs = torch.linalg.eigh(self.G)
+            Z = ((evecs * evals.clamp_min(0).sqrt()) @ evecs.T) @ Z
+        return Z
+
+
+def candidates_for(
+    site: Site,
+    W: torch.Tensor,
+    spectrum: Spectrum,
+    precisions: Sequence[str],
+    metric: LayerMetric,
+    *,
+    multiple: int = 1,
+    weight_layout_is_view: bool = True,
+) -> list[Candidate]:
+    """Every candidate form of one layer, with bytes and predicted error (see the module docstring).
+
+    ``W`` is the layer's matrix view (m x n). ``weight_layout_is_view`` False (a transposed projection, an
+    embedding, a transposed convolution) rounds without the input statistics, since the stored weight's rows are
+    not the view's output rows.
+    """
+    shape = (int(W.shape[0]), int(W.shape[1]))
+    native = native_precision(W.dtype)
+    W64 = W.detach().to(torch.float64)
+    hessian = metric.C if weight_layout_is_view else None
+    out: list[Candidate] = [Candidate("dense", native, None, float(stored_bytes(native, shape)), 0.0)]
+    reasons = {}
+    for p in usable(precisions, native)[1:]:
+        why = fits(W, p)
+        if why is not None:
+            reasons[p] = why
+            continue
+        Wq = round_matrix(W64, p, hessian=hessian).dequantize(torch.float64)
+        out.append(Candidate("dense", p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
+        if site.kind in KINDS_WITH_CORRECTION and not is_float(p) and weight_layout_is_view:
+            out += _corrected(W64, Wq, p, shape, metric)
+    out += _factored(site, W64, spectrum, usable(precisions, native), metric, multiple, hessian, reasons)
+    return out
+
+
+def _corrected(W64, Wq, p, shape, metric: LayerMetric) -> list[Candidate]:
+    s = torch.linalg.svdvals(metric.whitened(W64 - Wq))  # Eckart-Young on the whitened rounding error
+    tail = np.maximum(float((s * s).sum()) - np.concatenate([[0.0], np.cumsum((s * s).numpy())]), 0.0)
+    ranks = [k for k in CORRECTION_RANKS if k <= min(shape) // 4]
+    return [Candidate("corrected", p, k, float(corrected_bytes(p, shape, k)), metric.scale * float(tail[k]))
+            for k in ranks]
+
+
+def candidate_ranks(site: Site, spectrum: Spectrum, multiple: int) -> list[int]:
+    """Ranks worth pricing: up to the break-even rank (and what the spectrum holds vectors for), on a geometric
+    grid of :data:`RANK_POINTS` points, rounded to ``multiple``."""
+    top = min(site.break_even - 1, spectrum.vector_rank)
+    if top < 1:
+        return []
+    grid = np.unique(np.round(np.geomspace(1, top, RANK_POINTS)).astype(int))
+    if multiple > 1:
+        grid = np.unique([max(multiple, (int(r) // multiple) * multiple) for r in grid])
+    return [int(r) for r in grid if 1 <= r <= top]
+
+
+def _factored(site, W64, spectrum, precisions, metric: LayerMetric, multiple, hessian, reasons) -> list[Candidate]:
+    ranks = candidate_ranks(site, spectrum, multiple)
+    if not ranks:
+        return []
+    top = ranks[-1]
+    B, A = (t.detach().to(torch.float64) for t in spectrum.factors(top))  # (m, top), (top, n)
+    errors = spectrum.errors() ** 2  # truncation error at every rank (absolute units of the spectrum)
+    out = []
+    for p in precisions:
+        terms = np.zeros(top) if p == precisions[0] else _rounding_terms(B, A, p, metric, hessian)
+        if terms is None:
+            reasons[p] = f"{p} cannot hold the factors"
+            continue
+        cum = np.concatenate([[0.0], np.cumsum(terms)])
+        for r in ranks:
+            err = metric.scale * (float(errors[min(r, len(errors) - 1)]) + float(cum[r]))
+            out.append(Candidate("factor", p, r, float(factor_bytes(p, tuple(site.shape), r)), err))
+    return out
+
+
+def _rounding_terms(B, A, p, metric: LayerMetric, hessian) -> np.ndarray | None:
+    """Per rank-one term, the error its rounding adds (see the module docstring), or None when p overflows."""
+    if fits(B, p) is not None or fits(A, p) is not None:
+        return None
+    Bq, Aq = round_factors(B, A, p, hessian=hessian)
+    dB, dA = B - Bq.dequantize(torch.float64), A - Aq.dequantize(torch.float64)  # (m, k), (k, n)
+    b_norm, db_norm = (B * metric.left(B)).sum(0), (dB * metric.left(dB)).sum(0)  # (k,) in G
+    a_norm, da_norm = (A * metric.right(A)).sum(1), (dA * metric.right(dA)).sum(1)  # (k,) in C
+    return (db_norm * a_norm + b_norm * da_norm).clamp_min(0).numpy()
+
+
+def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | None, native: str) -> dict:
+    """One plan row for a chosen candidate: the rank-only row's keys, plus ``precision``, ``bytes``, ``bytes_after``
+    (and ``correction_rank`` / ``correction_precision`` for the corrected form)."""
+    shape = tuple(site.shape)
+    factor = chosen.form == "factor"
+    entry = {
+        "kind": site.kind,
+        "shape": list(shape),
+        "rank": chosen.rank if factor else None,
+        "action": chosen.form,
+        "reason": reason,
+        "params": site.params,
+        "params_after": site.factored_params(chosen.rank) if factor else site.params,
+        "precision": chosen.precision,
+        "bytes": stored_bytes(native, shape),
+        "bytes_after": int(chosen.cost),
+        "predicted_error": float(chosen.error),
+    }
+    if chosen.form == "corrected":
+        entry.update(correction_rank=chosen.rank, correction_precision=CORRECTION_PRECISION,
+                     params_after=site.params + chosen.rank * sum(shape))
+    if site.kernel:
+        entry["kernel"] = list(site.kernel)
+    if spectrum is not None and factor:
+        entry["energy_kept"] = spectrum.energy_fraction(chosen.rank)
+    return entry
+
+
+def byte_budget(sites: Sequence[Site], dtypes: Mapping[str, torch.dtype], budget: float) -> float:
+    """``budget`` as bytes: that fraction of the sites' weights as they are stored now."""
+    if not 0 < budget <= 1 or not math.isfinite(budget):
+        raise FactorizeError(f"budget={budget!r} is not a fraction in (0, 1]", fix="e.g. budget=0.25 for 1/4 of the bytes")
+    return budget * sum(stored_bytes(native_precision(dtypes[s.name]), tuple(s.shape)) for s in sites)
+
+
+def joint_plan(
+    sites: Sequence[Site],
+    candidates: Mapping[str, Sequence[Candidate]],
+    spectra: Mapping[str, Spectrum],
+    natives: Mapping[str, str],
+    budget_bytes: float,
+    *,
+    policy: Mapping,
+    method: str,
+) -> dict:
+    """The plan (same schema as :func:`factorize.plan.ranks.choose_ranks`'s, every row with its precision and
+    bytes) that keeps the summed predicted error least with the sites' stored bytes within ``budget_bytes``."""
+    from factorize.plan.joint import solve
+    from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
+
+    selection = solve(candidates, budget_bytes)
+    why = (f"bytes budget: least predicted error over {sum(len(c) for c in candidates.values())} candidate forms"
+           f"{'' if selection.exact else ' (within the certified gap)'}")
+    entries = {s.name: entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name])
+               for s in sites}
+    return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method, "policy": dict(policy),
+            "sites": entries, "selection": {"exact": selection.exact, "bytes": selection.cost,
+                                            "budget_bytes": budget_bytes, "predicted_error": selection.error}}

@@ -1,0 +1,149 @@
+"""Candidate forms of a layer (bytes, predicted error) and the joint plan, against numpy and brute force."""
+
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+from factorize.errors import FactorizeError
+from factorize.model.sites import walk
+from factorize.plan.forms import (
+    DEFAULT_PRECISIONS,
+    LayerMetric,
+    byte_budget,
+    candidates_for,
+    check_precisions,
+    corrected_bytes,
+    factor_bytes,
+    joint_plan,
+)
+from factorize.rounding import round_factors, round_matrix, stored_bytes
+from factorize.spectra.decompose import decompose
+
+
+def _low_rank_plus_noise(m, n, r, seed, noise=0.05):
+    g = torch.Generator().manual_seed(seed)
+    return (torch.randn(m, r, generator=g) @ torch.randn(r, n, generator=g) / math.sqrt(r)
+            + noise * torch.randn(m, n, generator=g))
+
+
+def _site(m, n, name="fc"):
+    model = nn.Sequential()
+    model.add_module(name, nn.Linear(n, m))
+    return model, walk(model).sites[0]
+
+
+def _candidates(W, site, metric=None, precisions=DEFAULT_PRECISIONS):
+    spec = decompose(W, method="exact")
+    metric = metric or LayerMetric(None, None, 1.0 / spec.total_energy)
+    return spec, candidates_for(site, W, spec, precisions, metric)
+
+
+def test_unrounded_factor_error_is_the_eckart_young_tail():
+    # Eckart-Young-Mirsky: the best rank-r error is the sum of the discarded squared singular values (numpy SVD)
+    W = _low_rank_plus_noise(48, 64, 8, seed=0)
+    model, site = _site(48, 64)
+    _, cands = _candidates(W, site)
+    s = np.linalg.svd(W.double().numpy(), compute_uv=False)
+    total = float((s ** 2).sum())
+    found = [c for c in cands if c.form == "factor" and c.precision == "float32"]
+    assert found
+    for c in found:
+        assert c.error == pytest.approx(float((s[c.rank:] ** 2).sum()) / total, rel=1e-6, abs=1e-12)
+        assert c.cost == 4 * c.rank * (48 + 64)
+
+
+def test_rounded_dense_error_and_bytes():
+    # the dense candidate's error is ||W - round(W)||_F^2 / ||W||_F^2 (numpy), its cost the stored bytes
+    W = _low_rank_plus_noise(40, 64, 6, seed=1)
+    _, site = _site(40, 64)
+    _, cands = _candidates(W, site)
+    for c in (c for c in cands if c.form == "dense" and c.precision != "float32"):
+        Wq = round_matrix(W, c.precision).dequantize(torch.float64).numpy()
+        ref = ((W.double().numpy() - Wq) ** 2).sum() / (W.double().numpy() ** 2).sum()
+        assert c.error == pytest.approx(ref, rel=1e-6)  # ||W||^2 from the float32 spectrum
+        assert c.cost == stored_bytes(c.precision, (40, 64))
+    assert {c.precision for c in cands if c.form == "dense"} == set(DEFAULT_PRECISIONS)
+
+
+def test_corrected_error_is_the_svd_tail_of_the_rounding_error():
+    # Eckart-Young on E = W - round(W): the best rank-k correction leaves the discarded part of E's spectrum (numpy)
+    W = _low_rank_plus_noise(64, 96, 4, seed=2)
+    _, site = _site(64, 96)
+    _, cands = _candidates(W, site)
+    corrected = [c for c in cands if c.form == "corrected"]
+    assert corrected
+    for c in corrected:
+        E = W.double().numpy() - round_matrix(W, c.precision).dequantize(torch.float64).numpy()
+        s = np.linalg.svd(E, compute_uv=False)
+        assert c.error == pytest.approx(float((s[c.rank:] ** 2).sum()) / float((W.double() ** 2).sum()), rel=1e-6)
+        assert c.cost == corrected_bytes(c.precision, (64, 96), c.rank)
+        assert c.cost == stored_bytes(c.precision, (64, 96)) + 2 * c.rank * (64 + 96)
+
+
+@pytest.mark.parametrize("precision", ["int8", "int4g64", "bfloat16"])
+def test_predicted_factor_rounding_error_tracks_the_measured_one(precision):
+    # the per-term prediction (module docstring of factorize.plan.forms) against the error of the actual product
+    W = _low_rank_plus_noise(96, 128, 12, seed=3)
+    _, site = _site(96, 128)
+    spec, cands = _candidates(W, site, precisions=("float32", precision))
+    scale = 1.0 / spec.total_energy
+    for c in (c for c in cands if c.form == "factor" and c.precision == precision and c.rank >= 4):
+        B, A = (t.double() for t in spec.factors(c.rank))
+        Bq, Aq = round_factors(B, A, precision)
+        measured = float(((W.double() - Bq.dequantize(torch.float64) @ Aq.dequantize(torch.float64)) ** 2).sum())
+        assert c.error == pytest.approx(measured * scale, rel=0.25)
+        assert c.cost == factor_bytes(precision, (96, 128), c.rank)
+
+
+def test_weighted_metric_matches_the_output_error_on_inputs():
+    # trace(dW C dW^T) with C = X^T X equals ||dW X^T||_F^2 (numpy), for the dense rounding candidate
+    W = _low_rank_plus_noise(32, 48, 5, seed=4)
+    X = torch.randn(500, 48, dtype=torch.float64, generator=torch.Generator().manual_seed(5))
+    _, site = _site(32, 48)
+    spec = decompose(W, method="exact")
+    cands = candidates_for(site, W, spec, ("float32", "int8"), LayerMetric(X.T @ X, None, 1.0))
+    c = next(c for c in cands if c.form == "dense" and c.precision == "int8")
+    Wq = round_matrix(W, "int8", hessian=X.T @ X).dequantize(torch.float64)
+    assert c.error == pytest.approx(float(((W.double() - Wq) @ X.T).pow(2).sum()), rel=1e-9)
+
+
+def test_bad_precisions_are_named():
+    with pytest.raises(FactorizeError, match="int3"):
+        check_precisions(["int8", "int3"])
+    assert check_precisions("int8, int4g64") == ("int8", "int4g64")
+    assert check_precisions(None) == DEFAULT_PRECISIONS
+
+
+def test_joint_plan_equals_brute_force_on_a_small_model():
+    # every combination of the three layers' candidates enumerated (itertools.product), least predicted error
+    # within the byte budget; the plan must pick a combination with that error
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(24, 20), nn.ReLU(), nn.Linear(20, 16), nn.ReLU(), nn.Linear(16, 12))
+    sites = walk(model).sites
+    cands, spectra = {}, {}
+    for s in sites:
+        W = dict(model.named_modules())[s.name].weight.detach()
+        spectra[s.name], found = _candidates(W, s)
+        cands[s.name] = found[::3] if len(found) > 12 else found  # keep the enumeration small
+    full = byte_budget(sites, {s.name: torch.float32 for s in sites}, 1.0)
+    for fraction in (0.5, 0.3, 0.2, 0.12):
+        budget = fraction * full
+        best = min((sum(c.error for c in combo) for combo in itertools.product(*cands.values())
+                    if math.fsum(c.cost for c in combo) <= budget), default=None)
+        plan = joint_plan(sites, cands, spectra, {s.name: "float32" for s in sites}, budget,
+                          policy={"budget": fraction}, method="exact")
+        assert plan["selection"]["predicted_error"] == pytest.approx(best, rel=1e-9, abs=1e-15)
+        assert plan["selection"]["bytes"] <= budget
+        assert sum(e["bytes_after"] for e in plan["sites"].values()) <= budget
+
+
+def test_byte_budget_refuses_bad_fractions():
+    model, site = _site(8, 8)
+    with pytest.raises(FactorizeError, match="fraction"):
+        byte_budget([site], {"fc": torch.float32}, 1.5)
