@@ -9,6 +9,7 @@ from torch import nn
 
 from factorize.model.sites import walk
 from factorize.plan.entries import (
+    CORRECTED,
     DENSE,
     FACTOR,
     FORMS,
@@ -62,4 +63,4 @@ def test_unknown_or_missing_forms_are_neither_factored_nor_rewritten():
     assert [r.name for r in records] == ["a", "b"]
     assert not any(r.factored or r.rewritten for r in records)
     assert factored_ranks(odd) == {}
-    assert set(FORMS) == {FACTOR, DENSE}
+    assert set(FORMS) == {FACTOR, DENSE, CORRECTED}
