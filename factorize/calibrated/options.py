@@ -14,9 +14,10 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from factorize.calibrated.aware import DEFAULT_ALPHA, REFIT_RIDGE
+from factorize.calibrated.aware import DEFAULT_ALPHA, REFIT_RIDGE, AwareFit
 from factorize.choices import AWARE_METHODS, DEFAULT_SENSITIVITY, SENSITIVITY_MODES, calibrated_methods
 from factorize.errors import FactorizeError
+from factorize.execution import Execution
 from factorize.plan.policy import POLICY_KEYWORDS, Policy, resolve_policy
 
 DRIFT_METRICS = ("relative_l2", "cosine")
@@ -69,6 +70,18 @@ class CalibrationOptions:
             raise FactorizeError(f"unknown drift metric {self.drift_metric!r}",
                                  fix=f"use one of {', '.join(DRIFT_METRICS)}")
         sensitivity_mode(self.sensitivity)
+        self.execution()  # precision, workers: checked here, as an Execution checks them
+
+    def execution(self, seed: int = 0) -> Execution:
+        """How the calibrated run is carried out (precision, workers, progress), with the Policy's ``seed``: the
+        one object handed to the solvers."""
+        return Execution(precision=self.precision, workers=self.workers, seed=seed, progress=self.progress)
+
+    def fit(self, method: str, solver: str) -> AwareFit:
+        """How each layer is fitted (:class:`~factorize.calibrated.aware.AwareFit`), for the activation-aware
+        ``method`` and ``solver`` of :meth:`methods`."""
+        return AwareFit(method=method, alpha=self.alpha, center=self.center, ridge=self.ridge,
+                        refit_ridge=self.refit_ridge, solver=solver)
 
     @classmethod
     def from_keywords(cls, **keywords: Any) -> CalibrationOptions:
