@@ -20,9 +20,10 @@ from typing import Any
 
 from torch import nn
 
-from factorize.calibrated.options import CalibrationOptions, calibrated_setup
+from factorize.calibrated.options import CalibrationOptions, calibrated_setup, refuse_with_calibration
 from factorize.calibrated.search import CalibratedResult, compress_calibrated  # noqa: F401 - re-exported
 from factorize.errors import FactorizeError, UnverifiedModelWarning
+from factorize.execution import Execution, resolve_execution
 from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
 from factorize.model.sites import WalkResult, walk
@@ -44,11 +45,11 @@ from factorize.spectra.sites import decompose_sites, leading_sites, values_sites
 
 @dataclass(frozen=True)
 class RunOptions:
-    """How :func:`compress` runs, beyond the Policy (see its Args)."""
+    """What :func:`compress` does besides the Policy (see its Args); ``execution`` is how it runs (precision,
+    workers, the Policy's seed, progress), passed whole to the spectra and the calibrated path."""
 
-    precision: str | None = None
+    execution: Execution = Execution()
     spectra: Mapping[str, Spectrum] | None = None
-    workers: int = 1
     cache: Any = None
     speed_check: bool = False
     speed_example: Any = None
@@ -56,7 +57,9 @@ class RunOptions:
     on_break: str = "dense"  # a factored layer that breaks the forward pass: "dense" (keep it dense) or "raise"
 
 
-RUN_KEYWORDS = tuple(f.name for f in dataclasses.fields(RunOptions))
+# compress's own run keywords: the RunOptions fields, and the Execution fields it takes loose (the seed comes from
+# the Policy, progress is compress's own argument)
+RUN_KEYWORDS = ("precision", "workers", *(f.name for f in dataclasses.fields(RunOptions) if f.name != "execution"))
 # the calibrated-path keywords compress accepts (precision, workers and progress come from the run options, the
 # solver from the Policy's method)
 CALIBRATION_KEYWORDS = tuple(f.name for f in dataclasses.fields(CalibrationOptions)
@@ -137,7 +140,7 @@ def compress(
     if calibrated is not None:
         result = compress_calibrated(model, batches, policy, calibrated, heldout=heldout, inplace=inplace)
     else:
-        result = _compress_plain(model, policy, run, inplace, progress)
+        result = _compress_plain(model, policy, run, inplace)
     return _checked(model, result, sample, run.on_break, inplace)
 
 
@@ -160,7 +163,7 @@ def _checked(model: nn.Module, result: CompressResult, sample: Any, on_break: st
     return result
 
 
-def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: bool, progress: bool):
+def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: bool):
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
     found = walk(model, include=policy.include, exclude=policy.exclude).require_sites(policy.filtered)
@@ -170,18 +173,13 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
     have = dict(run.spectra or {})
     need = [s for s in todo if s.name not in have]
     if values_first(policy):  # ranks unknown until every spectrum is in: values, allocation, then kept vectors
-        have.update(values_sites(model, need, precision=run.precision, keep_gram=True, progress=progress,
-                                 workers=run.workers, cache=run.cache))
+        have.update(values_sites(model, need, keep_gram=True, execution=run.execution, cache=run.cache))
         plan = choose_ranks(found.sites, have, policy, method=policy.method)
-        have = _with_vectors(model, found, plan, have, policy, run, progress)
+        have = _with_vectors(model, found, plan, have, run)
     else:
         ranks = {s.name: rank_needed(s, policy) for s in need} if policy.method in ("auto", "randomized") else None
-        have.update(
-            decompose_sites(
-                model, need, method=policy.method, ranks=ranks, seed=policy.seed, precision=run.precision,
-                progress=progress, workers=run.workers, cache=run.cache,
-            )
-        )
+        have.update(decompose_sites(model, need, method=policy.method, ranks=ranks, execution=run.execution,
+                                    cache=run.cache))
         plan = choose_ranks(found.sites, have, policy, method=policy.method)
     params_before = count_parameters(model)
     target = copy.deepcopy(model) if (run.speed_check or not inplace) else model
@@ -213,10 +211,9 @@ def sweep_spectra(
     model: nn.Module,
     policies: Iterable[Policy],
     *,
-    precision: str | None = None,
-    workers: int = 1,
+    execution: Execution | None = None,
     cache: Any = None,
-    progress: bool = False,
+    **keywords: Any,
 ) -> dict[str, Spectrum] | None:
     """One decomposition for several budgets: pass the result as ``compress(model, policy, spectra=...)``.
 
@@ -226,7 +223,14 @@ def sweep_spectra(
     :func:`factorize.spectra.decompose.leading` checks each). Returns None when the policies do not take the
     values-first route (see :func:`values_first`; also for ``cost="macs"``, which needs a sample batch per run)
     or differ in the layers they select: then reuse ``result.spectra`` of the first run instead.
+
+    ``execution`` (:class:`~factorize.execution.Execution`, or its ``precision`` / ``workers`` / ``progress``
+    keywords) says how the spectra are computed; its seed is the policies' own (they must agree).
     """
+    execution, rest = resolve_execution(execution, keywords)
+    if rest:
+        raise FactorizeError(f"sweep_spectra() got unknown keyword{'s' if len(rest) > 1 else ''}: {', '.join(rest)}",
+                             fix="accepted: execution, cache, precision, workers, progress")
     policies = list(policies)
     if not policies or not all(values_first(p) and p.cost == "params" for p in policies):
         return None
@@ -235,23 +239,20 @@ def sweep_spectra(
         return None
     found = walk(model, include=first.include, exclude=first.exclude).require_sites(first.filtered)
     todo = [s for s in found.sites if not s.tied_with]
-    have = values_sites(model, todo, precision=precision, keep_gram=True, progress=progress, workers=workers,
-                        cache=cache)
+    execution = execution.replace(seed=first.seed)
+    have = values_sites(model, todo, keep_gram=True, execution=execution, cache=cache)
     wanted: dict[str, set[int]] = {}
     for p in policies:
         for name, rank in factored_ranks(choose_ranks(found.sites, have, p, method=p.method)).items():
             wanted.setdefault(name, set()).add(int(rank))
     ranks = {name: max(rs) for name, rs in wanted.items()}
-    run = RunOptions(precision=precision, workers=workers, cache=cache)
-    return leading_sites(model, found.sites, ranks, have, guard_ranks=wanted, seed=first.seed, precision=run.precision,
-                         progress=progress, workers=run.workers, cache=run.cache)
+    return leading_sites(model, found.sites, ranks, have, guard_ranks=wanted, execution=execution, cache=cache)
 
 
-def _with_vectors(model, found, plan, have, policy, run, progress, guard_ranks=None):
+def _with_vectors(model, found, plan, have, run, execution=None):
     """``have`` with vector pairs up to each factored site's planned rank (:func:`leading_sites`)."""
     ranks = factored_ranks(plan)
-    return leading_sites(model, found.sites, ranks, have, guard_ranks=guard_ranks, seed=policy.seed,
-                         precision=run.precision, progress=progress, workers=run.workers, cache=run.cache)
+    return leading_sites(model, found.sites, ranks, have, execution=execution or run.execution, cache=run.cache)
 
 
 def _keep_fast(model, target, found, have, plan, policy, run, inplace):
@@ -271,7 +272,8 @@ def _keep_fast(model, target, found, have, plan, policy, run, inplace):
         slow = {n: f"{r}; the budget applies to the other layers" for n, r in slow.items()}
     for name, reason in slow.items():
         plan["sites"][name]["reason"] = reason
-    have.update(_with_vectors(model, found, plan, have, policy, run, False))  # freed budget may raise some ranks
+    quiet = run.execution.replace(progress=False)
+    have.update(_with_vectors(model, found, plan, have, run, quiet))  # freed budget may raise some ranks
     target = model if inplace else copy.deepcopy(model)
     apply_plan(target, plan, spectra=have, inplace=True)
     return plan, target, timings
@@ -316,7 +318,9 @@ def parse_options(
             f"compress() got unknown keyword{'s' if len(unknown) > 1 else ''}: {', '.join(unknown)}",
             fix="accepted: policy, calibration, calibrate, heldout, inplace, progress, " + ", ".join(accepted))
     policy_kw = {k: v for k, v in options.items() if k in POLICY_KEYWORDS}
-    run = RunOptions(**{k: v for k, v in options.items() if k in RUN_KEYWORDS})
+    run_kw = {k: v for k, v in options.items() if k in RUN_KEYWORDS}
+    loose = {k: run_kw.pop(k) for k in ("precision", "workers") if k in run_kw}
+    run = RunOptions(execution=Execution(**loose, progress=progress), **run_kw)
     calib_kw = {k: v for k, v in options.items() if k in CALIBRATION_KEYWORDS}
     method = policy.method if policy is not None else policy_kw.get("method")
     asked = ([f"method={method!r}"] if method in AWARE_METHODS else []) + [
@@ -326,26 +330,19 @@ def parse_options(
             raise FactorizeError(f"{', '.join(asked)} needs calibration sample inputs",
                                  fix="pass calibration=batches (tensors, tuples or dicts the model accepts)")
         policy = resolve_policy(policy, policy_kw)
-        return policy, run, None, None
-    _refuse_with_calibration(run)
+        return policy, _seeded(run, policy), None, None
+    refuse_with_calibration(spectra=run.spectra is not None, speed_check=run.speed_check,
+                            cache=run.cache is not None)
+    ex = run.execution
     policy, calibrated = calibrated_setup(policy, None, {
-        **policy_kw, **calib_kw, "precision": run.precision, "workers": run.workers, "progress": progress,
+        **policy_kw, **calib_kw, "precision": ex.precision, "workers": ex.workers, "progress": ex.progress,
         "example": run.example})
-    return policy, run, calibrated, calibration
+    return policy, _seeded(run, policy), calibrated, calibration
 
 
-def _refuse_with_calibration(run: RunOptions) -> None:
-    """Run options the calibrated path cannot honour: refused, never silently dropped."""
-    unsupported = [f"{k}=" for k in ("spectra", "speed_check") if getattr(run, k)]
-    if unsupported:
-        raise FactorizeError(f"{', '.join(unsupported)} cannot be combined with calibration yet",
-                             fix="compress without calibration to use them, or drop them")
-    if run.cache is not None:
-        raise FactorizeError(
-            "cache= cannot be combined with calibration: the cache keys spectra by weight content only, while "
-            "calibrated spectra also depend on the calibration inputs, so a cached one could belong to other inputs",
-            fix="drop cache= (the calibrated spectra are kept on the result: use Calibration to try many budgets), "
-                "or compress without calibration to use the cache")
+def _seeded(run: RunOptions, policy: Policy) -> RunOptions:
+    """``run`` whose execution carries the Policy's seed (the one seed of randomized decompositions)."""
+    return dataclasses.replace(run, execution=run.execution.replace(seed=policy.seed))
 
 
 def _differs(value: Any, default: Any) -> bool:

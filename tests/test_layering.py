@@ -17,7 +17,7 @@ PACKAGE = Path(__file__).resolve().parents[1] / "factorize"
 # lowest first; a module's layer is the first entry its dotted name starts with
 LAYERS = (
     ("factorize.errors", "factorize._version", "factorize.storage", "factorize.default", "factorize.choices",
-     "factorize.cluster"),
+     "factorize.cluster", "factorize.execution"),
     ("factorize.model",),
     ("factorize.spectra", "factorize.rounding"),
     ("factorize.plan",),

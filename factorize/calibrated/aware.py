@@ -63,8 +63,10 @@ so B @ A = U_r U_r^T W exactly and each rank-one term is split evenly between th
 from __future__ import annotations
 
 import copy
+import dataclasses
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import torch
@@ -74,6 +76,7 @@ from tqdm.auto import tqdm
 from factorize.calibrated.stats import InputStats
 from factorize.choices import AWARE_METHODS
 from factorize.errors import FactorizeError
+from factorize.execution import EXECUTION_KEYWORDS, Execution, resolve_execution
 from factorize.model.sites import Site, get_module, matrix_of
 from factorize.plan.entries import factored_entries, factored_names
 from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose
@@ -84,6 +87,59 @@ FEW_SAMPLES_RIDGE = 1e-2  # relative ridge when a layer saw fewer samples than i
 REFIT_RIDGE = 0.1  # relative ridge of the sequential least-squares step (chosen by measurement, see docs/quality.md)
 DEFAULT_ALPHA = 0.5  # ASVD's scaling exponent (Yuan et al. 2023)
 OUTPUT_RIDGE = 0.1  # relative ridge on the output Gram matrix (a judgement call; keeps R^{-1} well conditioned)
+SOLVER_NAMES = ("auto", "exact", "gram", "randomized")  # the decompositions a whitened matrix may be given to
+
+
+@dataclass(frozen=True)
+class AwareFit:
+    """How activation-aware factors are fitted to a layer, the same for every layer of a run: passed whole to
+    :func:`decompose_aware`, :func:`aware_spectra` and :func:`compress_sequential` (each also takes these
+    fields as keywords, turned into one by :meth:`from_keywords`).
+
+    Attributes:
+        method: ``"whiten"`` (reduced-rank regression / SVD-LLM) or ``"scale"`` (ASVD diagonal scaling).
+        alpha: ASVD's exponent for ``"scale"``.
+        center: optimise the error of centred inputs, paired with the bias correction
+            (:meth:`AwareSpectrum.bias_shift`); ``"auto"`` centres the layers that have a bias and are not
+            embeddings (for a bare matrix, in :func:`decompose_aware`, ``"auto"`` does not centre).
+        ridge: relative ridge on C (None: 1e-6, or 1e-2 when the layer saw fewer samples than its width).
+        refit_ridge: relative ridge of the sequential least-squares step.
+        output_ridge: relative ridge on the output Gram matrix G (G + mu I, mu = output_ridge * mean(diag G)).
+        solver: SVD algorithm of :func:`factorize.spectra.decompose.decompose` on the whitened matrix
+            (``"gram"``, ``"exact"``, ``"randomized"`` or ``"auto"``; the last two compute only ``rank``
+            triplets).
+    """
+
+    method: str = "whiten"
+    alpha: float = DEFAULT_ALPHA
+    center: bool | str = "auto"
+    ridge: float | None = None
+    refit_ridge: float = REFIT_RIDGE
+    output_ridge: float = OUTPUT_RIDGE
+    solver: str = "gram"
+
+    def __post_init__(self) -> None:
+        if self.method not in AWARE_METHODS:
+            raise FactorizeError(f"unknown activation-aware method {self.method!r}",
+                                 fix=f"use one of {', '.join(AWARE_METHODS)}")
+        if self.solver not in SOLVER_NAMES:
+            raise FactorizeError(f"unknown solver {self.solver!r}", fix=f"use one of {', '.join(SOLVER_NAMES)}")
+
+    @classmethod
+    def from_keywords(cls, fit: AwareFit | None, execution: Execution | None,
+                      keywords: Mapping[str, Any]) -> tuple[AwareFit, Execution]:
+        """(fit, execution) from the objects or from keywords named like their fields (not both for one object);
+        an unknown keyword is an error listing the accepted ones."""
+        names = [f.name for f in dataclasses.fields(cls)]
+        execution, rest = resolve_execution(execution, keywords)
+        unknown = [k for k in rest if k not in names]
+        if unknown:
+            raise FactorizeError(f"unknown keyword{'s' if len(unknown) > 1 else ''}: {', '.join(unknown)}",
+                                 fix="accepted: fit, execution, " + ", ".join((*names, *EXECUTION_KEYWORDS)))
+        if fit is not None and rest:
+            raise FactorizeError("an AwareFit and its keywords were both given", [f"{k}=" for k in rest],
+                                 fix="put them into the AwareFit (dataclasses.replace(fit, ...)) or pass keywords only")
+        return (fit if fit is not None else cls(**rest)), execution
 
 
 @dataclass
@@ -186,19 +242,13 @@ def _check_stats(W: torch.Tensor, stats: InputStats, name: str) -> None:
 def decompose_aware(
     W: torch.Tensor,
     stats: InputStats,
+    fit: AwareFit | None = None,
     *,
-    method: str = "whiten",
-    alpha: float = DEFAULT_ALPHA,
-    center: bool = False,
-    ridge: float | None = None,
-    refit_ridge: float = REFIT_RIDGE,
     output_gram: torch.Tensor | None = None,
-    output_ridge: float = OUTPUT_RIDGE,
-    solver: str = "gram",
     rank: int | None = None,
-    seed: int = 0,
-    precision: str | None = None,
+    execution: Execution | None = None,
     name: str = "matrix",
+    **keywords: Any,
 ) -> AwareSpectrum:
     """Activation-aware spectrum of a weight's matrix view W (m x n) given its input statistics.
 
@@ -206,28 +256,28 @@ def decompose_aware(
         W: the weight's matrix view (out x in); not modified.
         stats: :class:`~factorize.calibrated.stats.InputStats` of the layer's inputs (with ``cross`` set, the
             sequential refit is used).
-        method: ``"whiten"`` (reduced-rank regression / SVD-LLM) or ``"scale"`` (ASVD diagonal scaling).
-        alpha: ASVD's exponent for ``"scale"``.
-        center: optimise the error of centred inputs, to be paired with the bias correction
-            (:meth:`AwareSpectrum.bias_shift`); only for layers with a bias.
-        ridge: relative ridge on C (default: 1e-6, or 1e-2 when the layer saw fewer samples than its width).
-        refit_ridge: relative ridge of the sequential least-squares step.
+        fit: :class:`AwareFit` (method, alpha, center, ridge, refit_ridge, output_ridge, solver), or its fields
+            as keywords. ``center`` counts only for layers with a bias; ``"auto"`` does not centre here.
         output_gram: G (m x m), how much each output direction moves the final output
             (:func:`factorize.calibrated.gradients.collect_output_grams`); when given, the error is weighted on both sides,
             ||G^{1/2} (W - W') L||_F, and errors are in final-output units (see the module docstring).
-        output_ridge: relative ridge on G (G + mu I, mu = output_ridge * mean(diag G)).
-        solver: SVD algorithm of :func:`factorize.spectra.decompose.decompose` on the whitened matrix (``"gram"``,
-            ``"exact"``, ``"randomized"`` or ``"auto"``; the last two compute only ``rank`` triplets).
         rank: how many triplets a partial solver must compute.
-        seed / precision: as for :func:`factorize.spectra.decompose.decompose`.
+        execution: :class:`~factorize.execution.Execution` (its seed and precision count here, as for
+            :func:`factorize.spectra.decompose.decompose`), or ``seed`` / ``precision`` as keywords.
         name: the layer's name, for messages.
 
     Returns:
         An :class:`AwareSpectrum`; ``errors()`` are output errors ||(W - W'_r) X^T||_F on the calibration inputs.
     """
-    if method not in AWARE_METHODS:
-        raise FactorizeError(f"unknown activation-aware method {method!r} for {name}",
-                             fix=f"use one of {', '.join(AWARE_METHODS)}")
+    fit, execution = AwareFit.from_keywords(fit, execution, keywords)
+    return _decompose_aware(W, stats, fit, output_gram, rank, execution.seed, execution.precision, name)
+
+
+def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision, name) -> AwareSpectrum:
+    """:func:`decompose_aware` with its options checked."""
+    center = fit.center != "auto" and bool(fit.center)  # "auto" needs the layer (see aware_spectra): off here
+    method, alpha, ridge = fit.method, fit.alpha, fit.ridge
+    refit_ridge, output_ridge, solver = fit.refit_ridge, fit.output_ridge, fit.solver
     W = torch.as_tensor(W).detach()
     if W.dim() != 2:
         raise FactorizeError(f"{name}: expected a 2-D matrix, got shape {tuple(W.shape)}")
@@ -355,27 +405,24 @@ def aware_spectra(
     model: nn.Module,
     sites: Iterable[Site],
     stats: Mapping[str, InputStats],
+    fit: AwareFit | None = None,
     *,
-    method: str = "whiten",
-    alpha: float = DEFAULT_ALPHA,
-    center: bool | str = "auto",
-    ridge: float | None = None,
-    solver: str = "gram",
     ranks: Mapping[str, int] | None = None,
     output_grams: Mapping[str, torch.Tensor] | None = None,
-    output_ridge: float = OUTPUT_RIDGE,
-    seed: int = 0,
-    precision: str | None = None,
-    progress: bool = False,
-    workers: int = 1,
+    execution: Execution | None = None,
+    **keywords: Any,
 ) -> dict[str, AwareSpectrum]:
     """Activation-aware spectrum of every site from its statistics.
 
-    ``center="auto"`` centres (with bias correction) the layers that have a bias and are not embeddings.
-    ``output_grams`` (from :func:`factorize.calibrated.gradients.collect_output_grams`) weight each site's output directions.
-    A site with no statistics, or whose statistics hold no sample, is an error listing every such site.
+    ``fit`` (:class:`AwareFit`, or its fields as keywords) says how each layer is fitted; its ``center="auto"``
+    centres (with bias correction) the layers that have a bias and are not embeddings. ``ranks`` bounds the
+    triplets a partial solver computes. ``output_grams`` (from
+    :func:`factorize.calibrated.gradients.collect_output_grams`) weight each site's output directions.
+    ``execution`` (:class:`~factorize.execution.Execution`, or its fields as keywords) says how it runs:
     ``workers > 1`` decomposes that many layers at once in threads; results equal a serial run's.
+    A site with no statistics, or whose statistics hold no sample, is an error listing every such site.
     """
+    fit, execution = AwareFit.from_keywords(fit, execution, keywords)
     sites = list(sites)
     missing = [s.name for s in sites if s.name not in stats or stats[s.name].count <= 0]
     if missing:
@@ -386,14 +433,12 @@ def aware_spectra(
 
     def one(site: Site) -> AwareSpectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
-        c = _center_for(site, center)
+        one_fit = dataclasses.replace(fit, center=_center_for(site, fit.center))
         k = (ranks or {}).get(site.name)
         G = (output_grams or {}).get(site.name)
-        return decompose_aware(W, stats[site.name], method=method, alpha=alpha, center=c, ridge=ridge,
-                               output_gram=G, output_ridge=output_ridge, solver=solver, rank=k, seed=seed,
-                               precision=precision, name=site.name)
+        return _decompose_aware(W, stats[site.name], one_fit, G, k, execution.seed, execution.precision, site.name)
 
-    return per_site(one, sites, workers=workers, progress=progress)
+    return per_site(one, sites, workers=execution.workers, progress=execution.progress)
 
 
 def _center_for(site: Site, center: bool | str) -> bool:
@@ -428,16 +473,12 @@ def compress_sequential(
     model: nn.Module,
     plan: Mapping,
     batches: Iterable,
+    fit: AwareFit | None = None,
     *,
-    method: str = "whiten",
-    center: bool | str = "auto",
-    ridge: float | None = None,
     refit: bool = True,
-    refit_ridge: float = REFIT_RIDGE,
     output_grams: Mapping[str, torch.Tensor] | None = None,
-    output_ridge: float = OUTPUT_RIDGE,
-    precision: str | None = None,
-    progress: bool = False,
+    execution: Execution | None = None,
+    **keywords: Any,
 ) -> tuple[nn.Module, dict[str, AwareSpectrum]]:
     """Factor the plan's sites one at a time in forward order, each from the inputs it sees in the partly
     compressed model, so later layers absorb the error of earlier ones.
@@ -447,13 +488,14 @@ def compress_sequential(
         plan: ranks per site (e.g. from :func:`factorize.plan.ranks.choose_ranks`); dense sites stay as they are.
         batches: calibration batches (batch contract); every site costs one pass of each model over them (the
             passes stop after the site when each site runs once per forward).
-        method: ``"whiten"`` (with ``refit``) or ``"scale"`` (``refit`` is then off).
-        center: as for :func:`aware_spectra`.
+        fit: :class:`AwareFit`, or its fields as keywords: ``method`` ``"whiten"`` (with ``refit``) or
+            ``"scale"`` (``refit`` is then off); ``center`` as for :func:`aware_spectra`; ``refit_ridge``,
+            ``ridge``, ``output_ridge`` as for :func:`decompose_aware`. The solver is always the Gram one.
         refit: fit the original layer's outputs from the compressed model's inputs (reduced-rank regression
             with a least-squares step, Izenman 1975); False only re-whitens with the new inputs.
-        refit_ridge / ridge / output_grams / output_ridge / precision: see :func:`decompose_aware`
-            (output weights are those of the original model).
-        progress: progress bars on stderr.
+        output_grams: see :func:`decompose_aware` (output weights are those of the original model).
+        execution: :class:`~factorize.execution.Execution` (precision, progress bars on stderr), or its fields
+            as keywords.
 
     Returns:
         (compressed copy, name -> spectrum used for each factored site).
@@ -467,6 +509,8 @@ def compress_sequential(
     from factorize.model.sites import set_module
     from factorize.rewrite.layers import factor_module
 
+    fit, execution = AwareFit.from_keywords(fit, execution, keywords)
+    fit = dataclasses.replace(fit, solver="gram")  # as before solvers were named: the refit's own eigensolve
     batch_list = as_batch_list(batches)
     names = factored_names(plan)
     sites = {s.name: s for s in resolve_sites(model, names)}
@@ -477,15 +521,15 @@ def compress_sequential(
                              fix="give sample inputs that run through these layers, or keep them dense")
     target = copy.deepcopy(model)
     spectra: dict[str, AwareSpectrum] = {}
-    for name in tqdm(order, desc="sequential", unit="layer", disable=not progress, leave=False):
+    for name in tqdm(order, desc="sequential", unit="layer", disable=not execution.progress, leave=False):
         site = sites[name]
         pair = collect_pair_stats(model, target, site, batch_list, stop_early=calls[name] == 1)
-        if not refit or method != "whiten":
+        if not refit or fit.method != "whiten":
             pair.cross = None
         W = matrix_of(get_module(model, name), site.kind)
-        spec = decompose_aware(W, pair, method=method, center=_center_for(site, center), ridge=ridge,
-                               refit_ridge=refit_ridge, output_gram=(output_grams or {}).get(name),
-                               output_ridge=output_ridge, precision=precision, name=name)
+        one_fit = dataclasses.replace(fit, center=_center_for(site, fit.center))
+        spec = _decompose_aware(W, pair, one_fit, (output_grams or {}).get(name), None, execution.seed,
+                                execution.precision, name)
         r = min(int(plan["sites"][name]["rank"]), spec.computed_rank)
         B, A = spec.factors(r)
         layer = factor_module(get_module(target, name), site.kind, B, A)

@@ -14,9 +14,10 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from factorize.calibrated.aware import DEFAULT_ALPHA, REFIT_RIDGE
+from factorize.calibrated.aware import DEFAULT_ALPHA, REFIT_RIDGE, AwareFit
 from factorize.choices import AWARE_METHODS, DEFAULT_SENSITIVITY, SENSITIVITY_MODES, calibrated_methods
 from factorize.errors import FactorizeError
+from factorize.execution import Execution
 from factorize.plan.policy import POLICY_KEYWORDS, Policy, resolve_policy
 
 DRIFT_METRICS = ("relative_l2", "cosine")
@@ -69,6 +70,18 @@ class CalibrationOptions:
             raise FactorizeError(f"unknown drift metric {self.drift_metric!r}",
                                  fix=f"use one of {', '.join(DRIFT_METRICS)}")
         sensitivity_mode(self.sensitivity)
+        self.execution()  # precision, workers: checked here, as an Execution checks them
+
+    def execution(self, seed: int = 0) -> Execution:
+        """How the calibrated run is carried out (precision, workers, progress), with the Policy's ``seed``: the
+        one object handed to the solvers."""
+        return Execution(precision=self.precision, workers=self.workers, seed=seed, progress=self.progress)
+
+    def fit(self, method: str, solver: str) -> AwareFit:
+        """How each layer is fitted (:class:`~factorize.calibrated.aware.AwareFit`), for the activation-aware
+        ``method`` and ``solver`` of :meth:`methods`."""
+        return AwareFit(method=method, alpha=self.alpha, center=self.center, ridge=self.ridge,
+                        refit_ridge=self.refit_ridge, solver=solver)
 
     @classmethod
     def from_keywords(cls, **keywords: Any) -> CalibrationOptions:
@@ -132,3 +145,25 @@ def calibrated_setup(policy: Policy | None, options: CalibrationOptions | None, 
         raise FactorizeError("max_drift= chooses the budget itself; the Policy given sets another rank rule",
                              fix="give a Policy with budget= (the search replaces its value), or drop max_drift=")
     return resolve_policy(policy, policy_kw, budget=1.0), options  # the search replaces the budget
+
+
+def refuse_with_calibration(*, spectra: bool = False, speed_check: bool = False, cache: bool = False,
+                            flags: bool = False) -> None:
+    """Refuse the run options the calibrated path cannot honour, never dropping them silently: given spectra,
+    the speed check and the spectrum cache. The one check behind ``compress`` and the command line (``flags``:
+    name them as command-line flags, ``--speed-check``, rather than keywords, ``speed_check=``)."""
+    def name(key: str) -> str:
+        return "--" + key.replace("_", "-") if flags else f"{key}="
+
+    calibration = "--calibration" if flags else "calibration"
+    given = [name(k) for k, on in (("spectra", spectra), ("speed_check", speed_check), ("cache", cache)) if on]
+    if spectra or speed_check:
+        raise FactorizeError(f"{', '.join(given)} cannot be combined with {calibration} yet",
+                             fix=f"compress without {calibration} to use them, or drop them")
+    if cache:
+        raise FactorizeError(
+            f"{name('cache')} cannot be combined with {calibration}: the cache keys spectra by weight content only, "
+            "while calibrated spectra also depend on the calibration inputs, so a cached one could belong to other "
+            "inputs",
+            fix=f"drop {name('cache')} (the calibrated spectra are kept on the result: use Calibration to try many "
+                f"budgets), or compress without {calibration} to use the cache")

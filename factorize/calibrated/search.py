@@ -205,9 +205,10 @@ class Calibration:
                          "seed": policy.seed}
         include, exclude = selection.get("include"), selection.get("exclude")
         multiple = selection.get("multiple") or 1
-        self.model, self.method, self.center, self.ridge = model, method, options.center, options.ridge
-        self.precision, self.output_fn, self.progress, self.mode = options.precision, options.output_fn, \
-            options.progress, mode
+        self.model, self.method, self.output_fn, self.mode = model, method, options.output_fn, mode
+        self.fit = options.fit(method, solver)  # how each layer is fitted, and how the work runs: passed whole
+        self.execution = options.execution(selection.get("seed") or 0)
+        self.progress = self.execution.progress
         self.options = options
         self.found = walk(model, include=include, exclude=exclude).require_sites(bool(include or exclude))
         self.batches = as_batch_list(calibration)
@@ -220,10 +221,8 @@ class Calibration:
         ranks = None
         if solver in ("auto", "randomized"):  # past break-even a layer stays dense: no more triplets needed
             ranks = {s.name: max(1, min(s.max_rank, s.break_even + multiple)) for s in self.todo}
-        self.spectra = aware_spectra(model, self.todo, self.stats, method=method, alpha=options.alpha,
-                                     center=self.center, ridge=self.ridge, solver=solver, ranks=ranks,
-                                     output_grams=self.output_grams, seed=selection.get("seed") or 0,
-                                     precision=self.precision, progress=self.progress, workers=options.workers)
+        self.spectra = aware_spectra(model, self.todo, self.stats, self.fit, ranks=ranks,
+                                     output_grams=self.output_grams, execution=self.execution)
         self.sensitivity: Sensitivity | None = None
         probes = options.sensitivity_batches
         self.probe_batches = as_batch_list(probes) if probes is not None else self.batches
@@ -263,9 +262,8 @@ class Calibration:
         """A compressed copy of the model for ``plan``: per-layer factors with bias correction, or sequential."""
         if sequential:
             model, seq_spectra = compress_sequential(
-                self.model, plan, self.batches, method=self.method, center=self.center, ridge=self.ridge,
-                refit=refit, refit_ridge=refit_ridge, output_grams=self.output_grams, precision=self.precision,
-                progress=self.progress)
+                self.model, plan, self.batches, dataclasses.replace(self.fit, refit_ridge=refit_ridge), refit=refit,
+                output_grams=self.output_grams, execution=self.execution)
             for name, spec in seq_spectra.items():  # predicted errors of the factors actually built
                 e = plan["sites"][name]
                 e["predicted_error"] = spec.relative_error(e["rank"])

@@ -15,10 +15,12 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from factorize.calibrated.options import refuse_with_calibration
 from factorize.checkpoints.models import LoadedModel, load_model
 from factorize.choices import AWARE_METHODS
 from factorize.default import HELDOUT_SENTENCES, load_digits_split
 from factorize.errors import DriftLimitExceeded, FactorizeError
+from factorize.execution import Execution
 from factorize.measure.inputs import (
     SampleInputs,
     check_inputs,
@@ -83,6 +85,13 @@ def compute_device(args):
             raise FactorizeError(f"--device {name}: this machine has {count} CUDA device(s), numbered from 0",
                                  fix=f"pass --device cuda:0 ... cuda:{count - 1}")
     return device
+
+
+def execution(args, ui: UI) -> Execution:
+    """How the command's work runs, built once from its flags and passed whole to the library: --workers, --seed
+    (of randomized decompositions), --threads, and progress bars (on unless --quiet or --json)."""
+    return Execution(workers=getattr(args, "workers", 1), seed=getattr(args, "seed", 0), progress=ui.progress,
+                     threads=getattr(args, "threads", None))
 
 
 def output_dtype(args, model):
@@ -267,11 +276,8 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
     if calibration is None:
         return {"cache": getattr(args, "cache", None), "workers": getattr(args, "workers", 1),
                 "speed_check": getattr(args, "speed_check", False)}
-    problems = [f for f, on in (("--cache", getattr(args, "cache", None)),
-                                ("--speed-check", getattr(args, "speed_check", False))) if on]
-    if problems:  # cached spectra are keyed by the weights alone; calibrated ones depend on the inputs too
-        raise FactorizeError(f"{', '.join(problems)} cannot be combined with --calibration yet",
-                             fix="drop them, or compress without --calibration")
+    refuse_with_calibration(speed_check=bool(getattr(args, "speed_check", False)),
+                            cache=bool(getattr(args, "cache", None)), flags=True)
     extra = {"calibration": calibration.batches, "sequential": args.sequential, "sensitivity": args.sensitivity,
              "workers": getattr(args, "workers", 1)}
     if target is not None:

@@ -12,7 +12,7 @@ from factorize.model.sites import Site, walk
 from factorize.spectra.decompose import Spectrum
 from factorize.spectra.sites import decompose_sites
 
-from .common import load, weights_file
+from .common import execution, load, weights_file
 from .render import UI, opt, spectrum_profile, spectrum_sketch
 
 
@@ -31,7 +31,7 @@ def run(args, ui: UI) -> dict:
                                  args.exclude else ""), [f"{s.name}: {s.reason}" for s in found.skipped],
                                  fix="check the patterns against the model's module names")
         sites = found.sites
-        spectra = decompose_sites(loaded.model, [s for s in sites if not s.tied_with], progress=ui.progress)
+        spectra = decompose_sites(loaded.model, [s for s in sites if not s.tied_with], execution=execution(args, ui))
         skipped = [{"name": s.name, "reason": s.reason} for s in found.skipped]
     rows = [scan_row(s, spectra.get(s.name), args.target_energy, args.multiple) for s in sites]
     result = {"command": "scan", "model": loaded.source, "target_energy": args.target_energy, "layers": rows,

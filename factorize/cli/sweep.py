@@ -25,6 +25,7 @@ from .common import (
     calibration_inputs,
     check_no_clobber,
     check_outputs,
+    execution,
     load,
     optional_path,
     options,
@@ -81,7 +82,7 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
     rows, spectra, memo = [], None, {}  # memo: the original's outputs, computed once for every budget
     if calib is None:  # singular values once, every budget's plan, then each layer's vectors once at its top rank
         spectra = sweep_spectra(loaded.model, [opts.policy(budget=b) for b in budgets], cache=quality["cache"],
-                                workers=quality["workers"], progress=ui.progress)
+                                execution=execution(args, ui))
     for budget in budgets:
         policy = opts.policy(budget=budget)
         if calib is not None:

@@ -56,40 +56,66 @@ from factorize.rewrite.layers import Factored, factored_layers
 # the full evaluation
 
 
+@dataclasses.dataclass(frozen=True)
+class EvaluateOptions:
+    """What :func:`evaluate` measures and how it labels the report, apart from the models and the data (each
+    field is one of its keywords, see its Args); :meth:`from_keywords` builds one from those keywords."""
+
+    latency_repeats: int = 7
+    sites: Iterable[str] | None = None
+    kind: str | None = None
+    title: str = "factorize report"
+    model_name: str = ""
+    inputs: str = ""
+    notes: Iterable[str] = ()
+    progress: bool = False
+    perplexity: bool | None = None
+    pooling: str | None = None
+    clock: Callable[[], float] = time.perf_counter
+
+    @classmethod
+    def from_keywords(cls, options: EvaluateOptions | None = None, **keywords: Any) -> EvaluateOptions:
+        """``options`` as given, or the options its keywords name; an unknown keyword, or options together with
+        keywords, is an error saying which."""
+        names = [f.name for f in dataclasses.fields(cls)]
+        unknown = [k for k in keywords if k not in names]
+        if unknown:
+            raise FactorizeError(
+                f"evaluate() got unknown keyword{'s' if len(unknown) > 1 else ''}: {', '.join(unknown)}",
+                fix="accepted: options, labels, plan, memo, " + ", ".join(names))
+        if options is not None and keywords:
+            raise FactorizeError("EvaluateOptions and evaluation keywords were both given", [f"{k}=" for k in keywords],
+                                 fix="put them into the options (dataclasses.replace(options, ...)) or pass keywords only")
+        return options if options is not None else cls(**keywords)
+
+
 def evaluate(
     original: nn.Module,
     compressed: nn.Module,
     batches: Iterable[Any],
+    options: EvaluateOptions | None = None,
     *,
     labels: torch.Tensor | Sequence[torch.Tensor] | None = None,
     plan: Mapping | None = None,
-    latency_repeats: int = 7,
-    sites: Iterable[str] | None = None,
-    kind: str | None = None,
-    title: str = "factorize report",
-    model_name: str = "",
-    inputs: str = "",
-    notes: Iterable[str] = (),
-    progress: bool = False,
     memo: dict | None = None,
-    perplexity: bool | None = None,
-    pooling: str | None = None,
-    clock: Callable[[], float] = time.perf_counter,
+    **keywords: Any,
 ) -> Report:
     """Measure what compression saved and what it cost, on sample inputs.
 
     Args:
         original / compressed: the two models (neither is modified; their training flags are restored).
         batches: sample-input batches under the batch contract; iterated several times, so a list is best.
+        options: an :class:`EvaluateOptions` holding the keywords from ``latency_repeats`` on below; or, instead,
+            those keywords.
         labels: class labels for accuracy, one per sample in batch order (a tensor, or one tensor per batch).
         plan: the compression plan; when given, dense sites appear in the per-layer table with their reason.
+        memo: a dict shared by calls that evaluate several compressed versions of the same original on the same
+            batches (a sweep): the original's outputs and the layers' output positions are computed once.
         latency_repeats: timed forward passes per model on the first batch (0 skips timing).
         sites: restrict the per-layer table to these qualified names.
         kind: what the outputs hold, see :func:`output_drift`.
         title / model_name / inputs / notes: labels carried into the report.
         progress: progress bars on stderr.
-        memo: a dict shared by calls that evaluate several compressed versions of the same original on the same
-            batches (a sweep): the original's outputs and the layers' output positions are computed once.
         pooling: judge per-token outputs by one pooled vector per sample, ``"mean"`` (over the attention mask),
             ``"cls"`` or ``"last"`` (see :mod:`factorize.measure.pooling`); None compares the outputs as they are.
         perplexity: measure next-token perplexity (:mod:`factorize.measure.perplexity`); None (default) does so
@@ -99,11 +125,12 @@ def evaluate(
     Returns:
         A :class:`factorize.measure.report.Report`.
     """
+    o = EvaluateOptions.from_keywords(options, **keywords)
     batches = list(batches)
-    sites = None if sites is None else list(sites)  # read twice: for the reference pass and the per-layer table
+    sites = None if o.sites is None else list(o.sites)  # read twice: for the reference pass and the per-layer table
     if not batches:
         raise FactorizeError("no sample inputs to evaluate on", fix="give at least one batch of sample inputs")
-    bar = _progress(progress)
+    bar = _progress(o.progress)
     memo = {} if memo is None else memo
     if "reference" not in memo:  # the per-layer table's output positions are counted in the same pass
         counted = [n for n in _report_names(compressed, plan, sites) if n not in memo.get("positions", {})]
@@ -112,41 +139,41 @@ def evaluate(
     ref = memo["reference"]
     cand = run_model(compressed, bar(batches, "compressed"))
     masks = [token_mask(b) for b in batches]
-    if pooling is not None:  # one vector per sample on both sides; the mask has been used by the pooling
-        ref = [pool(o, b, pooling) for o, b in zip(ref, batches)]
-        cand = [pool(o, b, pooling) for o, b in zip(cand, batches)]
+    if o.pooling is not None:  # one vector per sample on both sides; the mask has been used by the pooling
+        ref = [pool(out, b, o.pooling) for out, b in zip(ref, batches)]
+        cand = [pool(out, b, o.pooling) for out, b in zip(cand, batches)]
         masks = [None] * len(batches)
     report = Report(
-        title=title,
-        model=model_name,
+        title=o.title,
+        model=o.model_name,
         params_before=count_parameters(original),
         params_after=count_parameters(compressed),
         bytes_before=count_bytes(original),
         bytes_after=count_bytes(compressed),
         layers=layer_reports(original, compressed, plan=plan, batch=batches[0], sites=sites, memo=memo),
-        drift=output_drift(ref, cand, kind=kind, masks=masks),
-        samples=sum(int(o.shape[0]) for o in ref),
-        inputs=inputs,
+        drift=output_drift(ref, cand, kind=o.kind, masks=masks),
+        samples=sum(int(out.shape[0]) for out in ref),
+        inputs=o.inputs,
         policy=dict(plan["policy"]) if plan and "policy" in plan else None,
         calibrated=None if plan is None else "calibration" in plan,
-        notes=list(notes) + nonfinite_notes(ref, cand),
+        notes=list(o.notes) + nonfinite_notes(ref, cand),
         versions=versions(),
     )
     if plan:
         _describe_plan(report, plan)
-    if perplexity or (perplexity is None and is_causal_lm(original) and token_ids(batches[0]) is not None):
+    if o.perplexity or (o.perplexity is None and is_causal_lm(original) and token_ids(batches[0]) is not None):
         if "perplexity" not in memo:
             memo["perplexity"] = perplexity_of(original, batches)
         report.perplexity_before, report.perplexity_after = memo["perplexity"], perplexity_of(compressed, batches)
     if labels is not None:
         report.accuracy_before = accuracy(ref, labels)
         report.accuracy_after = accuracy(cand, labels)
-    if latency_repeats > 0:
-        before, after = latency_spread(original, compressed, batches[0], repeats=latency_repeats, clock=clock)
+    if o.latency_repeats > 0:
+        before, after = latency_spread(original, compressed, batches[0], repeats=o.latency_repeats, clock=o.clock)
         report.latency_ms_before, report.latency_ms_after = before.median, after.median
         report.latency_iqr_before, report.latency_iqr_after = [before.q1, before.q3], [after.q1, after.q3]
         report.latency_range_before, report.latency_range_after = [before.low, before.high], [after.low, after.high]
-        report.latency_repeats, report.latency_batch = latency_repeats, batch_size(batches[0])
+        report.latency_repeats, report.latency_batch = o.latency_repeats, batch_size(batches[0])
         report.latency_threads = torch.get_num_threads()
     return report
 

@@ -37,6 +37,7 @@ import torch
 
 from factorize.choices import METHODS
 from factorize.errors import FactorizeError
+from factorize.execution import resolve_execution
 
 RANDOMIZED_FRACTION = 6  # auto: randomized only when the sketch (rank + oversampling) is at most min(m, n) / this
 AUTO_TOLERANCE = 0.01  # auto: accept randomized factors only if provably within 1% of the optimal error
@@ -447,9 +448,8 @@ def leading(
     oversample: int | None = None,
     max_iters: int = LEADING_MAX_ITERS,
     tolerance: float = AUTO_TOLERANCE,
-    seed: int = 0,
-    precision: str | None = None,
     name: str = "matrix",
+    **execution,
 ) -> Spectrum:
     """The leading ``rank`` singular vector pairs of ``matrix``, within ``tolerance`` (1%) of the optimal error.
 
@@ -470,8 +470,13 @@ def leading(
     Returns a :class:`Spectrum` holding all of ``values.S`` (so it still serves rank allocation) and ``rank``
     vector pairs. The pairs are scaled with those singular values, ``U_r = W V_r / S_r`` (tall matrices; wide:
     ``Vh_r = S_r^-1 U_r^T W``), so ``factors(r)`` multiplies back to exactly the projection ``W V_r V_r^T`` for
-    every r <= rank. Seeded through an explicit ``torch.Generator``: same matrix and seed, same bytes.
+    every r <= rank. Seeded through an explicit ``torch.Generator``: same matrix and seed, same bytes. ``seed`` and
+    ``precision`` (keywords, as for :func:`decompose`) are the :class:`~factorize.execution.Execution` fields read.
     """
+    run, rest = resolve_execution(execution.pop("execution", None), execution)  # Execution, or seed=/precision=
+    if rest:
+        raise FactorizeError(f"leading() got unknown keywords: {', '.join(rest)}", fix="accepted: seed, precision")
+    seed, precision = run.seed, run.precision
     w, total = _prepared_with_energy(matrix, precision, name)
     k = min(w.shape)
     guard = sorted({int(r) for r in guard_ranks} | {int(rank)}) if k else []

@@ -10,6 +10,8 @@ from typing import TypeVar
 from torch import nn
 from tqdm.auto import tqdm
 
+from factorize.errors import FactorizeError
+from factorize.execution import EXECUTION_KEYWORDS, Execution, resolve_execution
 from factorize.model.sites import (
     Site,
     get_module,
@@ -33,23 +35,21 @@ def decompose_sites(
     *,
     method: str = "auto",
     ranks: Mapping[str, int] | None = None,
-    seed: int = 0,
-    precision: str | None = None,
-    progress: bool = False,
-    workers: int = 1,
+    execution: Execution | None = None,
     cache=None,
     **options,
 ) -> dict[str, Spectrum]:
     """Spectrum of every site's matrix view. ``ranks`` bounds the triplets a partial method computes.
 
-    ``workers > 1`` decomposes independent layers concurrently in threads (LAPACK and BLAS release the GIL);
-    every layer gets the same seed and the same arithmetic, so results equal a serial run's. ``cache`` (a
-    directory or :class:`factorize.spectra.cache.SpectrumCache`) reads and fills an on-disk cache of spectra.
+    ``execution`` (:class:`~factorize.execution.Execution`; or its fields as keywords: ``precision``, ``workers``,
+    ``seed``, ``progress``) says how it runs: ``workers > 1`` decomposes independent layers concurrently in
+    threads (LAPACK and BLAS release the GIL); every layer gets the same seed and the same arithmetic, so results
+    equal a serial run's. ``cache`` (a directory or :class:`factorize.spectra.cache.SpectrumCache`) reads and
+    fills an on-disk cache of spectra. Other ``options`` go to :func:`decompose` (``oversample``, ...).
     """
-    from factorize.spectra.cache import (
-        as_cache,  # cache imports io, which imports this module
-    )
+    from factorize.spectra.cache import as_cache
 
+    run, options = resolve_execution(execution, options)
     sites = list(sites)
     store = as_cache(cache)
 
@@ -57,10 +57,11 @@ def decompose_sites(
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
         k = (ranks or {}).get(site.name)
         if store is not None:
-            return store.get_or_compute(W, method, rank=k, seed=seed, precision=precision, name=site.name, **options)
-        return decompose(W, method=method, rank=k, seed=seed, precision=precision, name=site.name, **options)
+            return store.get_or_compute(W, method, rank=k, seed=run.seed, precision=run.precision, name=site.name,
+                                        **options)
+        return decompose(W, method=method, rank=k, seed=run.seed, precision=run.precision, name=site.name, **options)
 
-    return per_site(one, sites, workers=workers, progress=progress)
+    return per_site(one, sites, workers=run.workers, progress=run.progress)
 
 
 def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 1, progress: bool = False,
@@ -125,27 +126,27 @@ def values_sites(
     model: nn.Module,
     sites: Iterable[Site],
     *,
-    precision: str | None = None,
     keep_gram: bool = False,
-    progress: bool = False,
-    workers: int = 1,
+    execution: Execution | None = None,
     cache=None,
+    **keywords,
 ) -> dict[str, Spectrum]:
     """Every site's singular values without vectors (:func:`values_only`): what rank allocation needs.
 
     ``cache`` keeps them under the ``gram`` key with ``extra="values"`` (k floats per entry). ``keep_gram`` keeps
     each computed Gram matrix on its spectrum for :func:`leading_sites` (which drops it); at most the size of the
-    weights in all.
+    weights in all. ``execution`` (or its fields as keywords): precision, workers, progress.
     """
     from factorize.spectra.cache import as_cache
 
+    run = _execution(execution, keywords)
     store = as_cache(cache)
 
     def one(site: Site) -> Spectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
-        return cached_values(W, store, precision=precision, keep_gram=keep_gram, name=site.name)
+        return cached_values(W, store, precision=run.precision, keep_gram=keep_gram, name=site.name)
 
-    return per_site(one, list(sites), workers=workers, progress=progress, desc="singular values")
+    return per_site(one, list(sites), workers=run.workers, progress=run.progress, desc="singular values")
 
 
 def leading_sites(
@@ -155,20 +156,20 @@ def leading_sites(
     spectra: Mapping[str, Spectrum],
     *,
     guard_ranks: Mapping[str, Iterable[int]] | None = None,
-    seed: int = 0,
-    precision: str | None = None,
-    progress: bool = False,
-    workers: int = 1,
+    execution: Execution | None = None,
     cache=None,
+    **keywords,
 ) -> dict[str, Spectrum]:
     """``spectra`` with vectors up to ``ranks[name]`` for every named site (:func:`leading`, within 1% of the
     optimal error at that rank and at each of ``guard_ranks[name]``). Sites whose spectrum already holds enough
     vector pairs, or that have no rank, are passed through unchanged; the others must hold every singular value
     (e.g. from :func:`values_sites`). Returns a new dict; ``spectra`` is not modified, except that the Gram
-    matrices ``values_sites(keep_gram=True)`` left on them are dropped once used.
+    matrices ``values_sites(keep_gram=True)`` left on them are dropped once used. ``execution`` (or its fields as
+    keywords): seed, precision, workers, progress.
     """
     from factorize.spectra.cache import as_cache
 
+    run = _execution(execution, keywords)
     store = as_cache(cache)
     guard = {name: sorted({int(r) for r in rs}) for name, rs in (guard_ranks or {}).items()}
     todo = [s for s in sites if ranks.get(s.name) is not None and spectra[s.name].vector_rank < ranks[s.name]]
@@ -176,10 +177,19 @@ def leading_sites(
     def one(site: Site) -> Spectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
         return cached_leading(W, int(ranks[site.name]), spectra[site.name], store, guard=guard.get(site.name, []),
-                              seed=seed, precision=precision, name=site.name)
+                              seed=run.seed, precision=run.precision, name=site.name)
 
     out = dict(spectra)
-    out.update(per_site(one, todo, workers=workers, progress=progress, desc="leading vectors"))
+    out.update(per_site(one, todo, workers=run.workers, progress=run.progress, desc="leading vectors"))
     for spec in spectra.values():
         spec.gram = None  # a kept Gram matrix served leading() above; the values alone stay
     return out
+
+
+def _execution(execution: Execution | None, keywords: Mapping) -> Execution:
+    """The Execution of a call that takes no other loose keywords (an unknown one is an error naming it)."""
+    run, rest = resolve_execution(execution, keywords)
+    if rest:
+        raise FactorizeError(f"unknown keyword{'s' if len(rest) > 1 else ''}: {', '.join(rest)}",
+                             fix="accepted: execution, " + ", ".join(EXECUTION_KEYWORDS))
+    return run

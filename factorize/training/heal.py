@@ -115,23 +115,10 @@ def heal(
     compressed: nn.Module,
     teacher: nn.Module,
     data: Iterable[Any],
+    options: HealOptions | None = None,
     *,
-    steps: int,
     heldout: Iterable[Any] | None = None,
-    loss: str = "auto",
-    temperature: float = 2.0,
-    lr: float = 1e-4,
-    schedule: str = "constant",
-    eval_every: int | None = None,
-    patience: int | None = 5,
-    train: str = "factored",
-    match_layers: bool | float = False,
-    metric: str = "relative_l2",
-    seed: int = 0,
-    device: str | torch.device | None = None,
-    max_grad_norm: float | None = 1.0,
-    shuffle: bool = True,
-    progress: bool = True,
+    **keywords: Any,
 ) -> HealResult:
     """Fine-tune ``compressed`` so that its outputs match ``teacher``'s (distillation), in place.
 
@@ -143,9 +130,11 @@ def heal(
             ``model(*x)``, a dict as ``model(**x)``); cycled through until ``steps`` optimizer steps were taken.
             A list or tuple of batches is visited in a seeded random order each pass (``shuffle``); any other
             iterable in its own order (a one-shot generator cannot be cycled: pass a list).
-        steps: number of optimizer steps (>= 1).
+        options: a :class:`~factorize.training.setup.HealOptions` holding every keyword below but ``heldout``;
+            or, instead, those keywords (``steps`` is then required).
         heldout: batches for the held-out drift check; never trained on. Strongly recommended: without it there is
             no early stopping and no best-state guarantee (the final state is returned).
+        steps: number of optimizer steps (>= 1).
         loss: ``"auto"``, ``"kl"``, ``"mse"`` or ``"cosine"`` (see :mod:`factorize.training.losses` for the
             ``auto`` rule).
         temperature: T for ``"kl"`` (Hinton et al. 2015).
@@ -178,10 +167,7 @@ def heal(
         FactorizeError: bad arguments, outputs of different shapes, a batch that does not run through a model,
             outputs that are not finite before training.
     """
-    options = HealOptions(steps=steps, loss=loss, temperature=temperature, lr=lr, schedule=schedule,
-                          eval_every=eval_every, patience=patience, train=train, match_layers=match_layers,
-                          metric=metric, seed=seed, device=device, max_grad_norm=max_grad_norm, shuffle=shuffle,
-                          progress=progress)
+    options = HealOptions.from_keywords(options, **keywords)
     opts = validate(compressed, teacher, data, heldout, options)
     with session(compressed, teacher, opts) as trainable:
         return _Healer(compressed, teacher, data, heldout, trainable, opts).run()

@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Iterator, Mapping
 from contextlib import contextmanager
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
 from typing import Any
 
 import torch
@@ -28,27 +28,48 @@ METRICS = {"relative_l2": False, "cosine_mean": True, "kl": False, "top1_agreeme
 
 @dataclass(frozen=True)
 class HealOptions:
-    """``heal``'s keywords as given (see its docstring), or resolved by :func:`validate`.
+    """How :func:`~factorize.training.heal.heal` trains (each field is one of its keywords, see its docstring):
+    built by :meth:`from_keywords` from ``heal``'s keywords, or given whole as ``heal(..., options)``; resolved
+    by :func:`validate`.
 
     Resolved, ``eval_every`` is an int, ``match_layers`` the float weight of the layer term, ``device`` a
-    ``torch.device``, ``temperature`` and ``lr`` floats.
+    ``torch.device``, ``temperature`` and ``lr`` floats. ``steps`` has no default: it must be given.
     """
 
-    steps: int
-    loss: str
-    temperature: float
-    lr: float
-    schedule: str
-    eval_every: int | None
-    patience: int | None
-    train: str
-    match_layers: bool | float
-    metric: str
-    seed: int
-    device: str | torch.device | None
-    max_grad_norm: float | None
-    shuffle: bool
-    progress: bool
+    steps: int | None = None
+    loss: str = "auto"
+    temperature: float = 2.0
+    lr: float = 1e-4
+    schedule: str = "constant"
+    eval_every: int | None = None
+    patience: int | None = 5
+    train: str = "factored"
+    match_layers: bool | float = False
+    metric: str = "relative_l2"
+    seed: int = 0
+    device: str | torch.device | None = None
+    max_grad_norm: float | None = 1.0
+    shuffle: bool = True
+    progress: bool = True
+
+    @classmethod
+    def from_keywords(cls, options: HealOptions | None = None, **keywords: Any) -> HealOptions:
+        """``options`` as given, or the options named by ``heal``'s keywords (``steps`` required); an unknown
+        keyword, a missing ``steps`` or options together with keywords is an error saying which."""
+        names = [f.name for f in fields(cls)]
+        unknown = [k for k in keywords if k not in names]
+        if unknown:
+            raise FactorizeError(f"heal() got unknown keyword{'s' if len(unknown) > 1 else ''}: {', '.join(unknown)}",
+                                 fix="accepted: options, heldout, " + ", ".join(names))
+        if options is not None:
+            if keywords:
+                raise FactorizeError("HealOptions and healing keywords were both given", [f"{k}=" for k in keywords],
+                                     fix="put them into the options (dataclasses.replace(options, ...)) or pass "
+                                         "keywords only")
+            return options
+        if "steps" not in keywords:
+            raise FactorizeError("heal() needs steps=, the number of optimizer steps", fix="e.g. steps=200")
+        return cls(**keywords)
 
     def problems(self) -> list[str]:
         """What is wrong with these options, one line each (empty when nothing is)."""

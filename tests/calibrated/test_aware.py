@@ -292,3 +292,29 @@ def test_output_weighted_whitening_is_two_sided_eckart_young():
         torch.testing.assert_close(B.norm(dim=0), A.norm(dim=1), rtol=1e-8, atol=1e-10)  # balanced factors
     with pytest.raises(FactorizeError, match="output weights are"):
         decompose_aware(W, _stats_from(X), output_gram=torch.eye(5, dtype=torch.float64))
+
+
+def test_fit_object_and_keywords_give_the_same_bytes():
+    # AwareFit passed whole is the keyword form's object: same bytes; "auto" centring cannot be decided for a bare
+    # matrix, so there it does not centre. Reference for the energies: the squared singular values of W L, L L^T = C
+    # (whitening, Izenman 1975), from numpy.linalg.cholesky and numpy.linalg.svd.
+    from factorize.calibrated.aware import AwareFit
+    from factorize.execution import Execution
+
+    W, X = _case(10, 14, 120, seed=31)
+    stats = _stats_from(X)
+    by_keywords = decompose_aware(W, stats, method="scale", alpha=0.25, center=True, ridge=1e-4, seed=2)
+    whole = decompose_aware(W, stats, AwareFit(method="scale", alpha=0.25, center=True, ridge=1e-4),
+                            execution=Execution(seed=2))
+    assert torch.equal(by_keywords.S, whole.S) and torch.equal(by_keywords.U, whole.U)
+    auto = decompose_aware(W, stats, AwareFit(ridge=0.0))
+    plain = decompose_aware(W, stats, ridge=0.0, center=False)
+    assert torch.equal(auto.S, plain.S)
+    L = np.linalg.cholesky((X.T @ X).numpy())
+    np.testing.assert_allclose(plain.energies(), np.linalg.svd(W.numpy() @ L, compute_uv=False) ** 2, rtol=1e-8)
+    with pytest.raises(FactorizeError, match="both given"):
+        decompose_aware(W, stats, AwareFit(), ridge=0.0)
+    with pytest.raises(FactorizeError, match="unknown keyword: workerz"):
+        decompose_aware(W, stats, workerz=2)
+    with pytest.raises(FactorizeError, match="unknown solver"):
+        AwareFit(solver="lanczos")

@@ -186,7 +186,7 @@ def test_workers_reach_the_calibrated_decompositions(monkeypatch):
     real = search_module.aware_spectra
 
     def spy(*args, **kwargs):
-        seen.append(kwargs.get("workers"))
+        seen.append(kwargs["execution"].workers)  # the Execution passed whole carries the worker count
         return real(*args, **kwargs)
 
     monkeypatch.setattr(search_module, "aware_spectra", spy)

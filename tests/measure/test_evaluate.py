@@ -253,3 +253,21 @@ def test_evaluate_latency_is_the_median_of_interleaved_passes_on_the_clock_given
     assert report.latency_ms_after == pytest.approx(1.0, abs=1e-9)  # a 2.0x ratio, exactly
     assert report.latency_repeats == 5 and report.latency_batch == 6  # timed on the first batch
     assert clock.log[-30:] == ["read", "slow", "read", "read", "fast", "read"] * 5
+
+
+def test_evaluate_options_whole_or_as_keywords(mlp) -> None:
+    # The options object and the keyword form measure the same; the drift is checked against numpy's norm.
+    import factorize
+    from factorize.measure.evaluate import EvaluateOptions, evaluate
+
+    result = factorize.compress(mlp, rank=4, method="exact")
+    batches = [torch.randn(8, 24, generator=torch.Generator().manual_seed(5))]
+    a = evaluate(mlp, result.model, batches, latency_repeats=0, title="t", notes=["n"])
+    b = evaluate(mlp, result.model, batches, EvaluateOptions(latency_repeats=0, title="t", notes=("n",)))
+    assert a.drift == b.drift and a.title == b.title == "t" and a.notes == b.notes
+    ref, out = mlp(batches[0]).detach().numpy(), result.model(batches[0]).detach().numpy()
+    assert a.drift["relative_l2"] == pytest.approx(np.linalg.norm(out - ref) / np.linalg.norm(ref), rel=1e-5)
+    with pytest.raises(FactorizeError, match="both given"):
+        evaluate(mlp, result.model, batches, EvaluateOptions(), latency_repeats=0)
+    with pytest.raises(FactorizeError, match="unknown keyword: repeats"):
+        evaluate(mlp, result.model, batches, repeats=0)

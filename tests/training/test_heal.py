@@ -299,3 +299,19 @@ def test_result_serialises() -> None:
     result = heal(student, teacher, data, steps=4, heldout=heldout, eval_every=2, progress=False)
     d = json.loads(json.dumps(result.to_dict()))
     assert d["steps_run"] == 4 and d["checks"][0]["step"] == 0 and d["loss"] == "kl"
+
+
+def test_options_whole_or_as_keywords_heal_to_the_same_bytes() -> None:
+    from factorize.training.setup import HealOptions
+
+    teacher, student, data, heldout = _compressed_mlp()
+    twin = copy.deepcopy(student)
+    a = heal(student, teacher, data, heldout=heldout, steps=6, lr=1e-3, eval_every=3, progress=False)
+    b = heal(twin, teacher, data, HealOptions(steps=6, lr=1e-3, eval_every=3, progress=False), heldout=heldout)
+    assert a.losses == b.losses and a.best_step == b.best_step
+    assert all(torch.equal(x, y) for x, y in zip(_state(student).values(), _state(twin).values()))
+    assert b.best_drift <= b.initial_drift  # the best-state guarantee holds for the object form too
+    with pytest.raises(FactorizeError, match="needs steps="):
+        heal(student, teacher, data, progress=False)
+    with pytest.raises(FactorizeError, match="both given"):
+        heal(student, teacher, data, HealOptions(steps=2), lr=1e-3)
