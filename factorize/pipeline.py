@@ -36,6 +36,7 @@ from factorize.plan.policy import (
     rank_needed,
     resolve_policy,
 )
+from factorize.plan.forms import bytes_plan
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, apply_plan
 from factorize.rewrite.verify import check_runs, keep_working
@@ -172,7 +173,14 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
     todo = [s for s in found.sites if not s.tied_with]
     have = dict(run.spectra or {})
     need = [s for s in todo if s.name not in have]
-    if values_first(policy):  # ranks unknown until every spectrum is in: values, allocation, then kept vectors
+    if policy.cost == "bytes":  # rank and stored precision chosen together: candidates need every vector pair
+        if run.speed_check:
+            raise FactorizeError("speed_check times factored layers against dense ones at one precision; a budget in "
+                                 "bytes also chooses stored precisions", fix="drop speed_check, or use cost='params'")
+        have.update(decompose_sites(model, need, method="gram" if policy.method == "auto" else policy.method,
+                                    execution=run.execution, cache=run.cache))
+        plan = bytes_plan(model, found.sites, have, policy, method=policy.method)
+    elif values_first(policy):  # ranks unknown until every spectrum is in: values, allocation, then kept vectors
         have.update(values_sites(model, need, keep_gram=True, execution=run.execution, cache=run.cache))
         plan = choose_ranks(found.sites, have, policy, method=policy.method)
         have = _with_vectors(model, found, plan, have, run)

@@ -48,6 +48,7 @@ from factorize.calibrated.aware import (
     compress_sequential,
 )
 from factorize.calibrated.gradients import collect_output_grams
+from factorize.calibrated.precision import calibrated_bytes_plan, hessians
 from factorize.calibrated.options import (  # noqa: F401 - DRIFT_METRICS and the defaults are re-exported
     DEFAULT_BUDGETS,
     DEFAULT_TOLERANCE,
@@ -69,7 +70,7 @@ from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
 from factorize.model.feed import token_mask
 from factorize.model.sites import WalkResult, get_module, set_module, walk
-from factorize.plan.entries import rewritten_names
+from factorize.plan.entries import plan_entries, rewritten_names
 from factorize.plan.policy import Policy
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.rewrite.apply import CompressResult, apply_plan
@@ -228,6 +229,7 @@ class Calibration:
         self.probe_batches = as_batch_list(probes) if probes is not None else self.batches
         self.fractions = (0.5, 0.25) if options.fractions == "auto" else tuple(options.fractions)
         self.wants_probes = mode in ("probes", "both")  # measured at the first budget plan (only budgets use them)
+        self._priced: dict = {}  # candidate forms of cost="bytes" plans, priced once (calibrated.precision)
 
     def measure(self, fractions: tuple[float, ...]) -> Sensitivity:
         """(Re)measure the probes at these rank fractions; later plans use the new weights."""
@@ -255,11 +257,17 @@ class Calibration:
         if policy.cost == "macs" and not all(s.macs_per_sample for s in self.found.sites):
             example = self.options.example if self.options.example is not None else self.batches[0]
             self.found = WalkResult(with_macs(self.model, self.found.sites, example), self.found.skipped)
+        if policy.cost == "bytes":
+            return calibrated_bytes_plan(self, policy, self._priced)
         return choose_ranks(self.found.sites, self.spectra, policy, method=self.method, error_scale=self.error_scale)
 
     def build(self, plan: dict, *, sequential: bool = False, refit: bool = True,
               refit_ridge: float = REFIT_RIDGE) -> nn.Module:
         """A compressed copy of the model for ``plan``: per-layer factors with bias correction, or sequential."""
+        stored = any(e.precision is not None for e in plan_entries(plan))
+        if sequential and stored:
+            raise FactorizeError("sequential refits rank-only factors layer by layer; this plan also stores "
+                                 "precisions (a budget in bytes)", fix="drop sequential=True, or use cost='params'")
         if sequential:
             model, seq_spectra = compress_sequential(
                 self.model, plan, self.batches, dataclasses.replace(self.fit, refit_ridge=refit_ridge), refit=refit,
@@ -269,7 +277,7 @@ class Calibration:
                 e["predicted_error"] = spec.relative_error(e["rank"])
                 e["energy_kept"] = spec.energy_fraction(e["rank"])
             return model
-        model = apply_plan(self.model, plan, spectra=self.spectra)
+        model = apply_plan(self.model, plan, spectra=self.spectra, hessians=hessians(self) if stored else None)
         apply_bias_shifts(model, plan, self.spectra)
         return model
 

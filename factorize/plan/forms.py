@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 
 import numpy as np
 import torch
@@ -65,6 +66,8 @@ CORRECTION_RANKS = (8, 16, 32, 64)  # ranks of the rounded-plus-correction form 
 CORRECTION_PRECISION = "bfloat16"  # the correction's factors (LQER keeps them in high precision)
 RANK_POINTS = 24  # candidate ranks per precision and layer (plus the multiples the policy asks for)
 KINDS_WITH_CORRECTION = ("linear",)  # the corrected form is built for stock nn.Linear layers
+VIEW_KINDS = ("linear", "transposed", "conv1d", "conv2d", "conv3d")  # thin layers hold the matrix view's rows
+DENSE_VIEW_KINDS = ("linear", "conv1d", "conv2d", "conv3d")  # the weight's own rows are the matrix view's rows
 NATIVE = {torch.float32: "float32", torch.bfloat16: "bfloat16", torch.float16: "float16"}
 _WIDTH = {"float32": 32, "bfloat16": 16, "float16": 16, "int8": 8, "int4g32": 4, "int4g64": 4, "int4g128": 4}
 
@@ -141,18 +144,17 @@ def candidates_for(
     metric: LayerMetric,
     *,
     multiple: int = 1,
-    weight_layout_is_view: bool = True,
 ) -> list[Candidate]:
     """Every candidate form of one layer, with bytes and predicted error (see the module docstring).
 
-    ``W`` is the layer's matrix view (m x n). ``weight_layout_is_view`` False (a transposed projection, an
-    embedding, a transposed convolution) rounds without the input statistics, since the stored weight's rows are
-    not the view's output rows.
+    ``W`` is the layer's matrix view (m x n). Where the stored weight's rows are not the view's rows (a transposed
+    projection's dense weight, an embedding, a transposed convolution) rounding does not use the input statistics,
+    as :mod:`factorize.rewrite.forms` does when it builds the layer.
     """
     shape = (int(W.shape[0]), int(W.shape[1]))
     native = native_precision(W.dtype)
     W64 = W.detach().to(torch.float64)
-    hessian = metric.C if weight_layout_is_view else None
+    hessian = metric.C if site.kind in DENSE_VIEW_KINDS else None
     out: list[Candidate] = [Candidate("dense", native, None, float(stored_bytes(native, shape)), 0.0)]
     reasons = {}
     for p in usable(precisions, native)[1:]:
@@ -162,9 +164,10 @@ def candidates_for(
             continue
         Wq = round_matrix(W64, p, hessian=hessian).dequantize(torch.float64)
         out.append(Candidate("dense", p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
-        if site.kind in KINDS_WITH_CORRECTION and not is_float(p) and weight_layout_is_view:
+        if site.kind in KINDS_WITH_CORRECTION and not is_float(p):
             out += _corrected(W64, Wq, p, shape, metric)
-    out += _factored(site, W64, spectrum, usable(precisions, native), metric, multiple, hessian, reasons)
+    factor_hessian = metric.C if site.kind in VIEW_KINDS else None
+    out += _factored(site, W64, spectrum, usable(precisions, native), metric, multiple, factor_hessian, reasons)
     return out
 
 
@@ -219,7 +222,8 @@ def _rounding_terms(B, A, p, metric: LayerMetric, hessian) -> np.ndarray | None:
     return (db_norm * a_norm + b_norm * da_norm).clamp_min(0).numpy()
 
 
-def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | None, native: str) -> dict:
+def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | None, native: str,
+              scale: float = 1.0) -> dict:
     """One plan row for a chosen candidate: the rank-only row's keys, plus ``precision``, ``bytes``, ``bytes_after``
     (and ``correction_rank`` / ``correction_precision`` for the corrected form)."""
     shape = tuple(site.shape)
@@ -235,7 +239,7 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
         "precision": chosen.precision,
         "bytes": stored_bytes(native, shape),
         "bytes_after": int(chosen.cost),
-        "predicted_error": float(chosen.error),
+        "predicted_error": _relative(chosen.error, scale, spectrum),
     }
     if chosen.form == "corrected":
         entry.update(correction_rank=chosen.rank, correction_precision=CORRECTION_PRECISION,
@@ -245,6 +249,13 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
     if spectrum is not None and factor:
         entry["energy_kept"] = spectrum.energy_fraction(chosen.rank)
     return entry
+
+
+def _relative(error: float, scale: float, spectrum: Spectrum | None) -> float:
+    """A candidate's error as a relative error, sqrt(error / ||W||^2) in the spectrum's metric (as rank-only plans
+    record ``predicted_error``)."""
+    total = getattr(spectrum, "total_energy", 0.0) + getattr(spectrum, "residual", 0.0)
+    return math.sqrt(max(error / scale, 0.0) / total) if spectrum is not None and total > 0 and scale > 0 else 0.0
 
 
 def byte_budget(sites: Sequence[Site], dtypes: Mapping[str, torch.dtype], budget: float) -> float:
@@ -263,17 +274,98 @@ def joint_plan(
     *,
     policy: Mapping,
     method: str,
+    scales: Mapping[str, float] | None = None,
 ) -> dict:
     """The plan (same schema as :func:`factorize.plan.ranks.choose_ranks`'s, every row with its precision and
-    bytes) that keeps the summed predicted error least with the sites' stored bytes within ``budget_bytes``."""
+    bytes) that keeps the summed predicted error least with the sites' stored bytes within ``budget_bytes``.
+    Sites without candidates (a weight shared by several modules) stay dense as they are."""
     from factorize.plan.joint import solve
     from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
 
     selection = solve(candidates, budget_bytes)
     why = (f"bytes budget: least predicted error over {sum(len(c) for c in candidates.values())} candidate forms"
            f"{'' if selection.exact else ' (within the certified gap)'}")
-    entries = {s.name: entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name])
-               for s in sites}
+    entries = {}
+    for s in sites:
+        if s.name in selection.chosen:
+            entries[s.name] = entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name],
+                                        (scales or {}).get(s.name, 1.0))
+        else:
+            kept = Candidate("dense", natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
+            entries[s.name] = entry_for(s, kept, f"weight shared with {', '.join(s.tied_with)}; kept as it is",
+                                        None, natives[s.name])
     return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method, "policy": dict(policy),
             "sites": entries, "selection": {"exact": selection.exact, "bytes": selection.cost,
                                             "budget_bytes": budget_bytes, "predicted_error": selection.error}}
+
+
+def bytes_plan(
+    model: torch.nn.Module,
+    sites: Sequence[Site],
+    spectra: Mapping[str, Spectrum],
+    policy,
+    *,
+    method: str,
+    metrics: Mapping[str, LayerMetric] | None = None,
+    priced: Priced | None = None,
+) -> dict:
+    """The joint plan of rank and stored precision for ``policy`` (``cost="bytes"``): the candidates of every site
+    (:func:`price_sites`, or ``priced`` from an earlier call), then :func:`joint_plan` under ``policy.budget`` of
+    the sites' stored bytes."""
+    priced = priced or price_sites(model, sites, spectra, policy, metrics=metrics)
+    total = sum(stored_bytes(priced.natives[s.name], tuple(s.shape)) for s in sites)
+    fixed = sum(stored_bytes(priced.natives[s.name], tuple(s.shape)) for s in sites if s.name not in priced.candidates)
+    return joint_plan(sites, priced.candidates, spectra, priced.natives, policy.budget * total - fixed,
+                      policy=policy.to_dict(), method=method, scales=priced.scales)
+
+
+@dataclass(frozen=True)
+class Priced:
+    """Every site's candidates (name -> list), its own precision and its error scale: what one budget's plan
+    needs, computed once for many budgets."""
+
+    candidates: Mapping[str, Sequence[Candidate]]
+    natives: Mapping[str, str]
+    scales: Mapping[str, float]
+
+
+def price_sites(model: torch.nn.Module, sites: Sequence[Site], spectra: Mapping[str, Spectrum], policy, *,
+                metrics: Mapping[str, LayerMetric] | None = None) -> Priced:
+    """The candidates of every site not tied to another (:func:`candidates_for`; ``metrics`` name ->
+    :class:`LayerMetric`, default each layer's own relative weight error). Overrides: ``dense=True`` keeps a layer
+    as it is, ``rank=N`` factors it at rank N in its own precision."""
+    from factorize.model.sites import get_module, matrix_of
+
+    natives, cands, scales = {}, {}, {}
+    for s in sites:
+        W = matrix_of(get_module(model, s.name), s.kind)
+        natives[s.name] = native_precision(W.dtype)
+        if s.tied_with:
+            continue
+        spec = spectra[s.name]
+        metric = (metrics or {}).get(s.name) or LayerMetric(None, None, _own_scale(spec))
+        scales[s.name] = metric.scale
+        found = candidates_for(s, W, spec, policy.allowed_precisions, metric, multiple=policy.multiple)
+        cands[s.name] = _overridden(s, policy, found, natives[s.name], spec, metric)
+    return Priced(cands, natives, scales)
+
+
+def _own_scale(spec: Spectrum) -> float:
+    return 1.0 / spec.total_energy if spec.total_energy > 0 else 0.0
+
+
+def _overridden(site: Site, policy, cands: list[Candidate], native: str, spec: Spectrum,
+                metric: LayerMetric) -> list[Candidate]:
+    import fnmatch
+
+    o = next((o for o in policy.overrides if fnmatch.fnmatchcase(site.name, o.pattern)), None)
+    if o is None:
+        return cands
+    if o.dense:
+        return [c for c in cands if c.form == "dense" and c.precision == native]
+    if o.rank is None:
+        raise FactorizeError(f"override {o.pattern!r}: with cost='bytes' an override keeps a layer dense or sets its "
+                             "rank", fix="use dense=True or rank=N in the override, or cost='params'")
+    r = min(o.rank, spec.computed_rank)
+    err = float(spec.errors()[r]) ** 2 * metric.scale
+    return [Candidate("factor", native, r, float(factor_bytes(native, tuple(site.shape), r)), err)]

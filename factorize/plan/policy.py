@@ -23,7 +23,8 @@ from factorize.errors import FactorizeError
 from factorize.model.sites import Site
 
 POLICY_KEYS = ("rank", "energy", "keep", "budget")
-POLICY_KEYWORDS = (*POLICY_KEYS, "include", "exclude", "overrides", "multiple", "cost", "method", "seed")
+POLICY_KEYWORDS = (*POLICY_KEYS, "include", "exclude", "overrides", "multiple", "cost", "precisions", "method", "seed")
+COSTS = ("params", "macs", "bytes")  # what budget= counts
 OVERRIDE_KEYS = ("pattern", "rank", "energy", "keep", "dense")
 
 
@@ -52,7 +53,8 @@ class Policy:
     keep: float | None = None  # fraction of each layer's parameters kept, in (0, 1]
     budget: float | None = None  # fraction of all sites' parameters (or MACs) kept, in (0, 1]
     multiple: int = 1  # round ranks to a multiple of this (8 or 16 suit fast kernels)
-    cost: str = "params"  # what budget= counts: "params" or "macs"
+    cost: str = "params"  # what budget= counts: "params", "macs" or "bytes" (stored bytes: rank and precision)
+    precisions: tuple[str, ...] | None = None  # stored precisions allowed with cost="bytes" (None: the default set)
     overrides: tuple[Override, ...] = field(default_factory=tuple)
     include: tuple[str, ...] | None = None  # only layers matching one of these globs
     exclude: tuple[str, ...] | None = None  # never layers matching one of these globs
@@ -68,6 +70,10 @@ class Policy:
                 object.__setattr__(self, name, tuple(value))
         if not isinstance(self.overrides, tuple):
             object.__setattr__(self, "overrides", tuple(self.overrides))
+        if isinstance(self.precisions, str):
+            object.__setattr__(self, "precisions", tuple(p.strip() for p in self.precisions.split(",")))
+        elif self.precisions is not None and not isinstance(self.precisions, tuple):
+            object.__setattr__(self, "precisions", tuple(self.precisions))
         _validate_policy(self)
 
     def to_dict(self) -> dict:
@@ -78,7 +84,16 @@ class Policy:
         d = {k: getattr(self, k) for k in (*POLICY_KEYS, "multiple", "cost") if getattr(self, k) is not None}
         if self.overrides:
             d["overrides"] = [{k: v for k, v in asdict(o).items() if v not in (None, False)} for o in self.overrides]
+        if self.cost == "bytes":
+            d["precisions"] = list(self.allowed_precisions)
         return d
+
+    @property
+    def allowed_precisions(self) -> tuple[str, ...]:
+        """The stored precisions a ``cost="bytes"`` plan may choose from (see :mod:`factorize.plan.forms`)."""
+        from factorize.plan.forms import check_precisions
+
+        return check_precisions(self.precisions)
 
     @classmethod
     def from_keywords(cls, **keywords: Any) -> Policy:
@@ -92,7 +107,7 @@ class Policy:
             raise FactorizeError(f"unknown policy keyword{'s' if len(unknown) > 1 else ''}: {', '.join(unknown)}",
                                  fix=f"use {', '.join(POLICY_KEYWORDS)}")
         kw = {k: v for k, v in keywords.items() if not (v is None and k in ("overrides", "multiple", "cost",
-                                                                             "method", "seed"))}
+                                                                             "precisions", "method", "seed"))}
         if "overrides" in kw:
             kw["overrides"] = _as_overrides(kw["overrides"])
         return cls(**kw)
@@ -162,8 +177,18 @@ def _validate_policy(p: Policy) -> None:
     problems = _check_values("", rank=p.rank, energy=p.energy, keep=p.keep, budget=p.budget)
     if not isinstance(p.multiple, int) or p.multiple < 1:
         problems.append(f"multiple must be a positive integer, got {p.multiple!r}")
-    if p.cost not in ("params", "macs"):
-        problems.append(f"cost must be 'params' or 'macs', got {p.cost!r}")
+    if p.cost not in COSTS:
+        problems.append(f"cost must be one of {', '.join(map(repr, COSTS))}, got {p.cost!r}")
+    if p.precisions is not None:
+        from factorize.rounding import PRECISIONS
+
+        bad = [repr(x) for x in p.precisions if x not in PRECISIONS]
+        if bad or not p.precisions:
+            problems.append(f"precisions must be some of {', '.join(PRECISIONS)}, got {', '.join(bad) or 'none'}")
+        elif p.cost != "bytes":
+            problems.append("precisions= chooses stored precisions, which only a budget in bytes weighs (cost='bytes')")
+    if p.cost == "bytes" and p.budget is None:
+        problems.append("cost='bytes' counts what budget= keeps; rank=/energy=/keep= choose ranks alone")
     if isinstance(p.seed, bool) or not isinstance(p.seed, (int, np.integer)):
         problems.append(f"seed must be an integer, got {p.seed!r}")
     elif not 0 <= int(p.seed) < 2**63:  # torch.Generator.manual_seed takes 64-bit seeds; numpy's none below 0
@@ -181,7 +206,8 @@ def _validate_policy(p: Policy) -> None:
             problems.append(f"override {o.pattern!r} must set exactly one of rank, energy, keep, dense")
         problems += _check_values(f"override {o.pattern!r}: ", rank=o.rank, energy=o.energy, keep=o.keep)
     if problems:
-        raise FactorizeError("invalid rank policy", problems, fix="ranks are integers >= 1; fractions lie in (0, 1]")
+        raise FactorizeError("invalid rank policy", problems, fix="ranks are integers >= 1; fractions lie in (0, 1]; "
+                             "precisions are names from factorize.rounding.PRECISIONS")
 
 
 def _check_values(prefix: str, **values) -> list[str]:

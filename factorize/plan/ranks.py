@@ -267,4 +267,13 @@ def plan_summary(plan: Mapping) -> dict:
         "params_before": before,
         "params_after": after,
         "kept_fraction": after / before if before else 1.0,
+        **_bytes_summary(list(sites)),
     }
+
+
+def _bytes_summary(sites: list) -> dict:
+    """Stored bytes before/after, for plans whose rows record them (budgets in bytes); empty otherwise."""
+    if not sites or not all("bytes_after" in e for e in sites):
+        return {}
+    before, after = sum(e["bytes"] for e in sites), sum(e["bytes_after"] for e in sites)
+    return {"bytes_before": before, "bytes_after": after, "kept_bytes_fraction": after / before if before else 1.0}

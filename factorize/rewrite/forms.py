@@ -28,12 +28,10 @@ from torch import nn
 from factorize.errors import FactorizeError
 from factorize.model.sites import get_module, set_module
 from factorize.plan.entries import DENSE, FACTOR, plan_entries
-from factorize.plan.forms import native_precision
+from factorize.plan.forms import DENSE_VIEW_KINDS, VIEW_KINDS, native_precision
 from factorize.rewrite.stored import attach_stored, detach_stored, is_stored
 from factorize.rounding import Rounded, layout, round_factors, round_matrix, round_with_correction
 
-VIEW_KINDS = ("linear", "transposed", "conv1d", "conv2d", "conv3d")  # thin layers hold the matrix view's rows
-DENSE_VIEW_KINDS = ("linear", "conv1d", "conv2d", "conv3d")  # the weight's own rows are the matrix view's rows
 CORRECTION_PRECISION = "bfloat16"
 
 

@@ -52,7 +52,7 @@ def test_policy_and_keywords_together_is_an_error():
 
 def test_keyword_block_declared_once():
     assert set(POLICY_KEYWORDS) == {"rank", "energy", "keep", "budget", "include", "exclude", "overrides", "multiple",
-                                    "cost", "method", "seed"}
+                                    "cost", "precisions", "method", "seed"}
 
 
 def test_rank_needed_bounds_partial_decompositions():

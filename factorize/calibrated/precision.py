@@ -1,0 +1,62 @@
+"""Rank and stored precision chosen together on calibration inputs (``cost="bytes"`` with calibration).
+
+The error of every candidate form of a layer (:mod:`factorize.plan.forms`) is measured in the metric its
+activation-aware spectrum uses (:mod:`factorize.calibrated.aware`): trace(G' dW C' dW^T), with C' = C + lambda I
+the input second moment plus the spectrum's ridge, and G' = G + mu I the output Gram matrix plus its ridge when
+output weights were collected (else the identity). Truncation, rounding and the correction's residual then add
+up across layers on the same scale the rank-only allocator uses (:attr:`Calibration.error_scale`), and rounding
+uses error feedback on the same C (GPTQ, Frantar et al. 2023).
+
+Centring (bias correction) is left out of the rounding metric: the candidates are priced on the uncentred C,
+which overstates a centred layer's error slightly and never understates it.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+import torch
+
+from factorize.plan.forms import LayerMetric, bytes_plan, price_sites
+from factorize.plan.policy import Policy
+
+if TYPE_CHECKING:
+    from factorize.calibrated.search import Calibration
+
+
+def layer_metric(calib: Calibration, name: str) -> LayerMetric:
+    """The output-weighted error measure of layer ``name``, on the scale the allocator uses."""
+    spec, stats = calib.spectra[name], calib.stats[name]
+    if stats.is_diagonal:
+        C = stats.diagonal.to(torch.float64) + spec.ridge  # (n,) an embedding's token counts
+    else:
+        C = stats.moment().to(torch.float64)
+        C = C + spec.ridge * torch.eye(C.shape[0], dtype=C.dtype, device=C.device)  # (n, n)
+    G = None
+    if calib.output_grams is not None:
+        G = calib.output_grams[name].to(torch.float64)
+        mu = calib.fit.output_ridge * float(G.diagonal().mean())
+        G = G + (mu if mu > 0 else 1.0) * torch.eye(G.shape[0], dtype=G.dtype, device=G.device)  # (m, m)
+    scale = (calib.error_scale or {}).get(name)
+    if scale is None:
+        total = spec.total_energy + spec.residual
+        scale = 1.0 / total if total > 0 else 0.0
+    return LayerMetric(C, G, scale)
+
+
+def calibrated_bytes_plan(calib: Calibration, policy: Policy, priced: dict) -> dict:
+    """The joint plan of ``policy`` (``cost="bytes"``) with every layer priced on the calibration inputs; ``priced``
+    memoises the candidates by what they depend on (allowed precisions, rank multiple, overrides), so a sweep of
+    budgets prices each layer once."""
+    key = (policy.allowed_precisions, policy.multiple, policy.overrides, id(calib.sensitivity))
+    if key not in priced:
+        metrics = {s.name: layer_metric(calib, s.name) for s in calib.todo}
+        priced[key] = price_sites(calib.model, calib.found.sites, calib.spectra, policy, metrics=metrics)
+    return bytes_plan(calib.model, calib.found.sites, calib.spectra, policy, method=calib.method,
+                      priced=priced[key])
+
+
+def hessians(calib: Calibration) -> dict[str, torch.Tensor]:
+    """name -> input second moment C (n x n), for error-feedback rounding when the plan is applied (layers whose
+    second moment is a diagonal, embeddings, are rounded without it)."""
+    return {name: st.moment() for name, st in calib.stats.items() if not st.is_diagonal}
