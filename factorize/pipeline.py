@@ -280,7 +280,7 @@ def _keep_fast(model, target, found, have, plan, policy, run, inplace):
 def _plan_without(found, have, policy, slow: Mapping[str, str]) -> dict:
     """The plan with the ``slow`` layers left out of the allocation (kept dense) and the budget spread over the
     rest; when the rest cannot meet it either, one error naming every slow layer."""
-    from factorize.plan.ranks import _site_entry  # one plan row, as choose_ranks writes it
+    from factorize.plan.ranks import site_entry  # one plan row, as choose_ranks writes it
 
     rest = [s for s in found.sites if s.name not in slow]
     try:
@@ -292,7 +292,7 @@ def _plan_without(found, have, policy, slow: Mapping[str, str]) -> dict:
             fix="raise the budget, or compress without --speed-check and accept the measured slow-down",
         ) from None
     by_name = found.by_name()
-    plan["sites"] = {s.name: plan["sites"].get(s.name) or _site_entry(by_name[s.name], None, None, slow[s.name])
+    plan["sites"] = {s.name: plan["sites"].get(s.name) or site_entry(by_name[s.name], None, None, slow[s.name])
                      for s in found.sites if s.name in plan["sites"] or s.name in slow}
     return plan
 

@@ -67,8 +67,8 @@ from tqdm.auto import tqdm
 from factorize.calibrated.aware import AwareSpectrum, decompose_aware
 from factorize.calibrated.stats import (
     InputStats,
-    _accumulate,
-    _check_finite,
+    accumulate,
+    check_finite,
     input_rows,
 )
 from factorize.checkpoints.files import Checkpoint, open_checkpoint
@@ -346,10 +346,10 @@ def _block_slice_task(task: _BlockTask) -> dict:
             if groups[name] != name:
                 return  # the same input was accumulated for its group
             rows = input_rows(module, "linear", x.detach(), state["mask"])  # padded positions left out
-            _check_finite(rows, rel[name], state["pass"])
+            check_finite(rows, rel[name], state["pass"])
             if name not in stats:
                 stats[name] = InputStats(rel[name], "linear", int(x.shape[-1]))
-            _accumulate(stats[name], rows)
+            accumulate(stats[name], rows)
 
         return hook
 

@@ -15,14 +15,15 @@ from factorize.model.sites import (
     get_module,
     matrix_of,
 )
+from factorize.spectra.cache import as_cache
 from factorize.spectra.decompose import (
     Spectrum,
-    _lapack_threads,
     decompose,
+    lapack_threads,
     leading,
-    torch_threads,
     values_only,
 )
+from factorize.threads import torch_threads
 
 T = TypeVar("T")
 
@@ -46,10 +47,6 @@ def decompose_sites(
     every layer gets the same seed and the same arithmetic, so results equal a serial run's. ``cache`` (a
     directory or :class:`factorize.spectra.cache.SpectrumCache`) reads and fills an on-disk cache of spectra.
     """
-    from factorize.spectra.cache import (
-        as_cache,  # cache imports io, which imports this module
-    )
-
     sites = list(sites)
     store = as_cache(cache)
 
@@ -69,7 +66,7 @@ def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 
     (LAPACK and BLAS release the GIL), each on one torch thread.
 
     A serial run also decomposes every layer up to order 2048 on one thread (LAPACK already ran on one
-    thread there, see :func:`factorize.spectra.decompose._lapack_threads`; the products follow), so it gives a
+    thread there, see :func:`factorize.spectra.decompose.lapack_threads`; the products follow), so it gives a
     parallel run's bits. Wider layers keep all threads in a serial run, where the last bits of a product may then
     differ from a parallel run's.
     """
@@ -78,7 +75,7 @@ def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 
     try:
         if workers <= 1 or len(sites) <= 1:
             for site in sites:
-                with _lapack_threads(min(site.shape)):
+                with lapack_threads(min(site.shape)):
                     out[site.name] = one(site)
                 bar.update()
         else:
@@ -137,8 +134,6 @@ def values_sites(
     each computed Gram matrix on its spectrum for :func:`leading_sites` (which drops it); at most the size of the
     weights in all.
     """
-    from factorize.spectra.cache import as_cache
-
     store = as_cache(cache)
 
     def one(site: Site) -> Spectrum:
@@ -167,8 +162,6 @@ def leading_sites(
     (e.g. from :func:`values_sites`). Returns a new dict; ``spectra`` is not modified, except that the Gram
     matrices ``values_sites(keep_gram=True)`` left on them are dropped once used.
     """
-    from factorize.spectra.cache import as_cache
-
     store = as_cache(cache)
     guard = {name: sorted({int(r) for r in rs}) for name, rs in (guard_ranks or {}).items()}
     todo = [s for s in sites if ranks.get(s.name) is not None and spectra[s.name].vector_rank < ranks[s.name]]
