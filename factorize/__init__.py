@@ -64,8 +64,8 @@ _EXPORTS = {  # public name -> the module that defines it
     "refactor": "factorize.training.loop",
     "run_model": "factorize.model.feed",
     "search_drift": "factorize.calibrated.search",
-    "shrink_blockwise": "factorize.checkpoints.blockwise",
-    "shrink_checkpoint": "factorize.checkpoints.stream",
+    "shrink_blockwise": "factorize.outofcore.blockwise",
+    "shrink_checkpoint": "factorize.outofcore.weights_only",
     "save": "factorize.checkpoints.files",
     "save_directory": "factorize.checkpoints.directories",
     "to_dense": "factorize.rewrite.layers",
@@ -149,7 +149,6 @@ if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eag
         DriftTargetUnreachable,
         search_drift,
     )
-    from factorize.checkpoints.blockwise import shrink_blockwise
     from factorize.checkpoints.directories import (
         check_directory,
         load_directory,
@@ -157,7 +156,6 @@ if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eag
     )
     from factorize.checkpoints.export import Exported, export_onnx, export_program
     from factorize.checkpoints.files import load, read_plan, save
-    from factorize.checkpoints.stream import shrink_checkpoint
     from factorize.errors import DriftLimitExceeded, FactorizeError
     from factorize.measure.drift import output_drift
     from factorize.measure.evaluate import evaluate
@@ -165,6 +163,8 @@ if TYPE_CHECKING:  # for type checkers and editors: the same names, imported eag
     from factorize.model.count import count_bytes, count_parameters
     from factorize.model.feed import run_model
     from factorize.model.sites import Site, WalkResult, walk
+    from factorize.outofcore.blockwise import shrink_blockwise
+    from factorize.outofcore.weights_only import shrink_checkpoint
     from factorize.pipeline import compress
     from factorize.plan.ranks import (
         Override,

@@ -33,6 +33,7 @@ from factorize.plan.policy import (
     Policy,
     rank_needed,
     resolve_policy,
+    values_first,  # the rule lives in the plan layer (the weights-only shrink calls it too)
 )
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, apply_plan
@@ -197,15 +198,6 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
         params_after=count_parameters(target),
         timings=[t.to_dict() for t in timings],
     )
-
-
-def values_first(policy: Policy) -> bool:
-    """Whether ``compress`` takes the values-first route: a global budget (each layer's rank depends on every
-    layer's whole spectrum) with ``method="auto"``. The singular values of every layer are found without vectors
-    (:func:`factorize.spectra.decompose.values_only`), the budget is allocated from them, and only the kept
-    vectors are computed (:func:`factorize.spectra.decompose.leading`, within 1% of the optimal error). Per-layer
-    rules (rank, keep, energy) and the explicit methods keep their one-pass decomposition."""
-    return policy.budget is not None and policy.method == "auto"
 
 
 def sweep_spectra(

@@ -206,3 +206,13 @@ def rank_needed(site: Site, policy: Policy) -> int:
             return max(1, min(site.max_rank, int(policy.keep * site.params / sum(site.shape))))
     # energy / budget / overrides: anything past break-even keeps the layer dense, so no more is needed
     return max(1, min(site.max_rank, site.break_even + policy.multiple))
+
+
+def values_first(policy: Policy) -> bool:
+    """Whether the values-first route is taken (by ``compress`` and by the weights-only shrink alike): a global
+    budget (each layer's rank depends on every layer's whole spectrum) with ``method="auto"``. The singular values
+    of every layer are found without vectors (:func:`factorize.spectra.decompose.values_only`), the budget is
+    allocated from them, and only the kept vectors are computed (:func:`factorize.spectra.decompose.leading`,
+    within 1% of the optimal error). Per-layer rules (rank, keep, energy) and the explicit methods keep their
+    one-pass decomposition."""
+    return policy.budget is not None and policy.method == "auto"
