@@ -7,13 +7,13 @@ import shutil
 from pathlib import Path
 
 from factorize.checkpoints import files
-from factorize.outofcore.weights_only import shrink_checkpoint
 from factorize.checkpoints.directories import save_directory
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate, layer_reports
 from factorize.measure.report import Report, render_rich
 from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size
+from factorize.outofcore.weights_only import shrink_checkpoint
 from factorize.pipeline import compress
 from factorize.training.heal import heal
 
@@ -238,8 +238,8 @@ BLOCKWISE_REFUSED = (("--inputs", "inputs"), ("--random-inputs", "random_inputs"
 
 def _shrink_blockwise(args, opts: Options, policy, ui: UI) -> dict:
     """--blockwise: the calibrated shrink of a transformers directory one block at a time (never loaded whole)."""
-    from factorize.outofcore.blockwise import shrink_blockwise
     from factorize.measure.inputs import load_inputs
+    from factorize.outofcore.blockwise import shrink_blockwise
 
     model_dir = Path(args.model)
     if not model_dir.is_dir():

@@ -89,7 +89,8 @@ def select(ckpt: Checkpoint, include=None, exclude=None) -> tuple[list[Candidate
         bias_name = module + ".bias"
         bias = where[bias_name].tensors[bias_name] if bias_name in where else None
         if bias is not None and bias.shape != (info.shape[0],):
-            passed[name] = f"{bias_name} has shape {list(bias.shape)}, not ({info.shape[0]},): not a linear layer; copied"
+            passed[name] = (f"{bias_name} has shape {list(bias.shape)}, not ({info.shape[0]},): not a linear layer; "
+                            "copied")
             continue
         if any(f"{module}.{part}.weight" in where for part in ("first", "second")):
             passed[name] = "the checkpoint already holds factored keys for this module; copied"

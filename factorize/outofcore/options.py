@@ -61,10 +61,11 @@ class BlockwiseOptions:
     progress: bool = False
 
 
-O = TypeVar("O", StreamOptions, BlockwiseOptions)
+OptionsT = TypeVar("OptionsT", StreamOptions, BlockwiseOptions)
 
 
-def split_keywords(kind: type[O], options: O | None, keywords: Mapping[str, Any]) -> tuple[O, dict[str, Any]]:
+def split_keywords(kind: type[OptionsT], options: OptionsT | None,
+                   keywords: Mapping[str, Any]) -> tuple[OptionsT, dict[str, Any]]:
     """(the options with the run keywords among ``keywords`` applied, the remaining (policy) keywords)."""
     if options is not None and not isinstance(options, kind):
         raise FactorizeError(f"options={type(options).__name__}: expected a {kind.__name__}",

@@ -155,7 +155,8 @@ def factors_task(task: MatrixTask) -> dict:
         else:
             spec = spectrum_for(W, task.site, task.method, task.k, task.seed, task.precision, cache)
         if entry is None:  # per-layer policy: decided from this layer's own spectrum
-            entry = choose_ranks([task.site], {task.site.name: spec}, task.policy, method=task.method)["sites"][task.site.name]
+            plan = choose_ranks([task.site], {task.site.name: spec}, task.policy, method=task.method)
+            entry = plan["sites"][task.site.name]
         tensors, error = {}, 0.0
         if entry["action"] == "factor":
             B, A = spec.factors(entry["rank"])  # (out, r), (r, in)

@@ -3,10 +3,10 @@
 Every selected 2-D floating tensor ``<module>.weight`` of shape (out, in) is treated as the weight of a linear
 layer. Where the plan factors it, the output holds ``<module>.first.weight`` (r, in) = A and
 ``<module>.second.weight`` (out, r) = B, and ``<module>.bias`` becomes ``<module>.second.bias`` -- exactly the
-state-dict keys of :class:`factorize.rewrite.layers.Factored` -- so ``factorize.checkpoints.files.load(model, output)`` loads the result
-into the user's architecture (the plan in the metadata says kind ``"linear"`` and the shape). Every other tensor
-is copied unchanged. Layers that are not ``nn.Linear`` in the user's model (embeddings, GPT-2's transposed
-``Conv1D``) must be excluded, or the load reports the mismatch.
+state-dict keys of :class:`factorize.rewrite.layers.Factored` -- so ``factorize.checkpoints.files.load(model, output)``
+loads the result into the user's architecture (the plan in the metadata says kind ``"linear"`` and the shape).
+Every other tensor is copied unchanged. Layers that are not ``nn.Linear`` in the user's model (embeddings, GPT-2's
+transposed ``Conv1D``) must be excluded, or the load reports the mismatch.
 
 Memory: tensors are streamed one at a time from the memory-mapped input (``safetensors.safe_open``, opened per
 tensor so no mapping outlives its tensor) and written straight to the output file, whose header is filled in
@@ -186,7 +186,8 @@ def _outputs(ckpt: Checkpoint, dst: Path, force: bool) -> tuple[Path, list[Path]
     inputs = {h.path.resolve() for h in ckpt.files} | ({ckpt.index.resolve()} if ckpt.index else set())
     if ckpt.index is None:
         if dst.resolve() in inputs:
-            raise FactorizeError(f"{dst}: is the input checkpoint; it is never overwritten", fix="choose another output path")
+            raise FactorizeError(f"{dst}: is the input checkpoint; it is never overwritten",
+                                 fix="choose another output path")
         check_output_path(dst, force=force)
         return dst.parent if str(dst.parent) else Path("."), [dst]
     if dst.resolve() == ckpt.index.parent.resolve():
@@ -255,7 +256,7 @@ class _Job:
             if r["attempts"] > 1:
                 self.redone.add(c.weight.name)
             if self.cache is not None and r["cache"]:
-                self.cache._count(**r["cache"])
+                self.cache.add_counts(**r["cache"])
         return results
 
     def plan_globally(self) -> None:

@@ -10,6 +10,21 @@
 The names below are re-exported so callers write ``from factorize.storage import publish``.
 """
 
+from factorize.storage.atomic import (
+    TEMP_DIR_SUFFIX,
+    TEMP_SUFFIX,
+    check_output_path,
+    create_temp,
+    create_temp_dir,
+    new_temp_dir,
+    process_alive,
+    publish,
+    publish_dir,
+    remove_quietly,
+    remove_stale_dirs,
+    remove_stale_temps,
+    write_atomic,
+)
 from factorize.storage.disk import DISK_MARGIN_BYTES, check_free_space, human_bytes
 from factorize.storage.headers import (
     DTYPE_NAMES,
@@ -27,21 +42,6 @@ from factorize.storage.headers import (
     write_safetensors,
 )
 from factorize.storage.proc import peak_rss, proc_field, reset_peak_rss
-from factorize.storage.atomic import (
-    TEMP_DIR_SUFFIX,
-    TEMP_SUFFIX,
-    check_output_path,
-    create_temp,
-    create_temp_dir,
-    new_temp_dir,
-    process_alive,
-    publish,
-    publish_dir,
-    remove_quietly,
-    remove_stale_dirs,
-    remove_stale_temps,
-    write_atomic,
-)
 
 __all__ = [
     "DISK_MARGIN_BYTES", "DTYPES", "DTYPE_NAMES", "MAX_HEADER_BYTES", "TEMP_DIR_SUFFIX", "TEMP_SUFFIX", "Header",

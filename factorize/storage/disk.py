@@ -15,7 +15,8 @@ def check_free_space(directory: str | os.PathLike, nbytes: int, what: str) -> No
     free = shutil.disk_usage(directory).free
     if free < nbytes + DISK_MARGIN_BYTES:
         raise FactorizeError(
-            f"not enough free disk space in {directory} for {what}: needs {human_bytes(nbytes)}, {human_bytes(free)} free",
+            f"not enough free disk space in {directory} for {what}: needs {human_bytes(nbytes)}, "
+            f"{human_bytes(free)} free",
             fix="free some space or write the output to another disk",
         )
 

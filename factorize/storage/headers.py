@@ -160,7 +160,8 @@ def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
             for d in shape:
                 numel *= d
             if end - start != numel * torch.empty((), dtype=td).element_size() or start < 0:
-                problems.append(f"{name}: {dtype} {list(shape)} needs {numel} elements, offsets say {end - start} bytes")
+                problems.append(f"{name}: {dtype} {list(shape)} needs {numel} elements, offsets say "
+                                f"{end - start} bytes")
         if end > data_len:
             raise FactorizeError(
                 f"{p}: the header claims tensor data up to byte {data_start + end} but the file has {size} bytes: "

@@ -15,6 +15,8 @@ import torch
 from safetensors import safe_open
 
 from factorize.calibrated.stats import collect_stats
+from factorize.cluster import Engine, LocalEngine
+from factorize.errors import FactorizeError
 from factorize.outofcore import blockwise
 from factorize.outofcore.architecture import check_source
 from factorize.outofcore.block_tasks import read_stats
@@ -23,8 +25,6 @@ from factorize.outofcore.candidates import select
 from factorize.outofcore.options import BlockwiseOptions
 from factorize.outofcore.tokens import token_batches
 from factorize.plan.policy import resolve_policy
-from factorize.cluster import Engine, LocalEngine
-from factorize.errors import FactorizeError
 
 transformers = pytest.importorskip("transformers")
 

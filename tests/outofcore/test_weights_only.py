@@ -21,9 +21,9 @@ from torch import nn
 
 import factorize
 from factorize.checkpoints import files as io
+from factorize.errors import FactorizeError
 from factorize.outofcore import weights_only as checkpoint
 from factorize.outofcore import writer
-from factorize.errors import FactorizeError
 from tests.conftest import MLP
 
 

@@ -15,10 +15,10 @@ import pytest
 from safetensors import safe_open
 
 from benchmarks.llama_checkpoint import write_llama_checkpoint
-from factorize.outofcore.tasks import ExitOnFirstAttempt, MatrixTask, values_task
-from factorize.outofcore.weights_only import shrink_checkpoint
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
+from factorize.outofcore.tasks import ExitOnFirstAttempt, MatrixTask, values_task
+from factorize.outofcore.weights_only import shrink_checkpoint
 
 pytest.importorskip("distributed")
 
