@@ -22,9 +22,9 @@ LAYERS = (
     ("factorize.spectra",),
     ("factorize.plan",),
     ("factorize.rewrite",),
+    ("factorize.checkpoints",),  # file formats only: the out-of-core shrinks live in factorize.outofcore
     ("factorize.measure",),
     ("factorize.calibrated",),
-    ("factorize.checkpoints",),
     ("factorize.pipeline", "factorize.outofcore"),
     ("factorize.training",),
     ("factorize.cli", "factorize.__main__"),
