@@ -411,7 +411,7 @@ def collect_stats(
 
     Warns:
         When a site saw fewer rows than its input width: its second moment is then singular and the
-        activation-aware decomposition adds a ridge (see :mod:`factorize.aware`).
+        activation-aware decomposition adds a ridge (see :mod:`factorize.calibrated.aware`).
     """
     site_list = resolve_sites(model, sites)
     check_memory({s.name: stats_bytes(s) for s in site_list}, "input statistics", limit=memory_limit)
