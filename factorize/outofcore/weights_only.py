@@ -120,8 +120,7 @@ def shrink_checkpoint(
         cache = as_cache(options.cache_dir)
         work, temporary = _work_directory(cache, finals[0].parent if ckpt.index is not None else finals[0])
         try:
-            job = _Job(ckpt, chosen, policy, options.precision, cache, options.progress, engine=engine,
-                       work_dir=work, fault=_fault)
+            job = _Job(ckpt, chosen, policy, options, cache, engine=engine, work_dir=work, fault=_fault)
             written, passes = _run(job, ckpt, out_dir, work, finals, options.metadata, options.force)
         finally:
             if temporary:
@@ -204,11 +203,10 @@ def _outputs(ckpt: Checkpoint, dst: Path, force: bool) -> tuple[Path, list[Path]
 class _Job:
     """One shrink: the plan (built globally or per layer), the tasks on the engine, and the writer."""
 
-    def __init__(self, ckpt: Checkpoint, chosen: list[Candidate], policy: Policy, precision: str | None,
-                 cache: SpectrumCache | None, progress: bool, *, engine: Engine, work_dir: Path,
-                 fault: Callable | None = None) -> None:
+    def __init__(self, ckpt: Checkpoint, chosen: list[Candidate], policy: Policy, options: StreamOptions,
+                 cache: SpectrumCache | None, *, engine: Engine, work_dir: Path, fault: Callable | None = None) -> None:
         self.ckpt, self.policy, self.method = ckpt, policy, policy.method
-        self.precision, self.cache, self.progress = precision, cache, progress
+        self.precision, self.cache, self.progress = options.precision, cache, options.progress
         self.engine, self.work_dir, self.fault = engine, work_dir, fault
         self.results: dict[str, dict] = {}  # tensor name -> its factor task's metadata
         self.values: dict[str, Spectrum] = {}  # values-first budget route: module -> its singular values
@@ -221,7 +219,7 @@ class _Job:
         self.plan: dict | None = None
         self.entries: dict[str, dict] = {}
         self.writer = CheckpointWriter(ckpt, chosen, self._factors_of, plan_reserve=plan_bound(self.sites, policy),
-                                       progress=progress)
+                                       progress=options.progress)
 
     def _factors_of(self, c: Candidate, entry: dict) -> tuple[str | None, float]:
         done = self.results[c.weight.name]
