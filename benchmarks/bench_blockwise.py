@@ -51,14 +51,14 @@ batches = list(ids.split(4))
 out = {}
 if mode == "baseline":
     import transformers, factorize
-    from factorize.checkpoints.blockwise import _architecture
-    _architecture(src)
+    from factorize.outofcore.architecture import architecture
+    architecture(src)
 elif mode == "blockwise":
     import factorize
     done = factorize.shrink_blockwise(src, dst, budget=float(budget), calibration=batches, threads=int(threads))
-    out = {k: done[k] for k in ("peak_rss_bytes", "peak_reset", "block_bytes", "activation_bytes", "bound_bytes",
+    out = {k: getattr(done, k) for k in ("peak_rss_bytes", "peak_reset", "block_bytes", "activation_bytes", "bound_bytes",
                                 "bound_met", "kept_fraction", "bytes_after", "tokens")}
-    out["seconds_call"] = done["seconds"]
+    out["seconds_call"] = done.seconds
     out["peak_before_drift"] = next(int(l.split()[1]) for l in open("/proc/self/status")
                                     if l.startswith("VmHWM:")) * 1024
     if int(sys.argv[8]):  # logits drift on held-out random tokens (needs the whole model: small scales only)

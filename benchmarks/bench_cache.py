@@ -1,7 +1,7 @@
 """A weights-only shrink with a warm spectrum cache vs without one.
 
 Generates a float32 checkpoint of transformer-shaped matrices in a temporary directory under /tmp and times
-``factorize.checkpoints.stream.shrink_checkpoint`` side by side in one run:
+``factorize.outofcore.weights_only.shrink_checkpoint`` side by side in one run:
 
 * ``no cache``: the ordinary shrink (a budget policy decomposes every matrix twice: values first, factors next);
 * ``cold cache``: an empty cache directory (the first pass stores, the second pass reads);
@@ -28,7 +28,7 @@ from pathlib import Path
 import torch
 from safetensors.torch import save_file
 
-from factorize.checkpoints.stream import shrink_checkpoint
+from factorize.outofcore.weights_only import shrink_checkpoint
 
 ROOT = Path(__file__).resolve().parents[1]
 MB = 2**20
@@ -74,7 +74,7 @@ def bench(work: Path, src: Path, method: str, policy: dict, repeat: int) -> dict
     t_warm, rep = timed(run("warm", cache), repeat)
     same = outs["plain"].read_bytes() == outs["cold"].read_bytes() == outs["warm"].read_bytes()
     return {"method": method, "policy": policy, "plain": t_plain, "cold": t_cold, "warm": t_warm,
-            "cache": rep["cache"], "same": same, "cache_mb": sum(p.stat().st_size for p in cache.iterdir()) / MB}
+            "cache": rep.cache, "same": same, "cache_mb": sum(p.stat().st_size for p in cache.iterdir()) / MB}
 
 
 def main() -> None:

@@ -56,7 +56,7 @@ def run_one(mode: str, src: str, out: str, budget: float, workers: int) -> dict:
     """One shrink in this (fresh) process; returns times, peak memories and the output's hashes."""
     import torch
 
-    from factorize.checkpoints.stream import shrink_checkpoint
+    from factorize.outofcore.weights_only import shrink_checkpoint
     from factorize.cluster import open_engine
 
     torch.set_num_threads(1)
@@ -65,7 +65,7 @@ def run_one(mode: str, src: str, out: str, budget: float, workers: int) -> dict:
     startup = time.perf_counter() - started
     try:
         if mode == "cluster":  # import torch and factorize in the workers before the clock starts, as a warm cluster
-            engine.client.run(lambda: __import__("factorize.checkpoints.stream") and None)
+            engine.client.run(lambda: __import__("factorize.outofcore.weights_only") and None)
         t0 = time.perf_counter()
         done = shrink_checkpoint(src, out, budget=budget, exclude=["*embed_tokens*"], cluster=engine,
                                  threads=1)
@@ -76,8 +76,8 @@ def run_one(mode: str, src: str, out: str, budget: float, workers: int) -> dict:
         engine.close()
     return {"mode": mode, "wall_s": wall, "startup_s": startup, "client_peak_kib": _worker_peak(),
             "worker_peaks_kib": peaks, "hashes": _hashes(Path(out)), "engine": where,
-            "factored": sum(1 for r in done["tensors"].values() if r["action"] == "factor"),
-            "matrices": len(done["tensors"]), "bytes_before": done["bytes_before"], "bytes_after": done["bytes_after"]}
+            "factored": sum(1 for r in done.tensors.values() if r["action"] == "factor"),
+            "matrices": len(done.tensors), "bytes_before": done.bytes_before, "bytes_after": done.bytes_after}
 
 
 def _child(mode: str, src: Path, out: Path, args) -> dict:

@@ -7,7 +7,7 @@ its own subprocess so that the peak resident set size belongs to that job alone 
 across fork + exec):
 
 * ``baseline``: importing torch and factorize and opening the checkpoint (what any run costs);
-* ``stream``:   ``factorize.checkpoints.stream.shrink_checkpoint`` (weights-only mode, streaming);
+* ``stream``:   ``factorize.outofcore.weights_only.shrink_checkpoint`` (weights-only mode, streaming);
 * ``load-all``: ``safetensors.torch.load_file`` of every shard at once, the naive approach, for comparison.
 
 Target (issue 6): peak of ``stream`` <= 0.5 x checkpoint size + 300 MB. The temporary directory is deleted at the
@@ -44,11 +44,11 @@ torch.set_num_threads(2)
 mode, src, dst, method, rank = sys.argv[1:6]
 t0 = time.perf_counter()
 if mode == "baseline":
-    import factorize, factorize.checkpoints.stream
+    import factorize, factorize.outofcore.weights_only
     from factorize.checkpoints.files import open_checkpoint
     open_checkpoint(src)
 elif mode == "stream":
-    from factorize.checkpoints.stream import shrink_checkpoint
+    from factorize.outofcore.weights_only import shrink_checkpoint
     rep = shrink_checkpoint(src, dst, rank=int(rank), method=method)
 elif mode == "load-all":
     from safetensors.torch import load_file

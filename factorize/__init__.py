@@ -64,8 +64,8 @@ _EXPORTS = {  # public name -> the module that defines it
     "refactor": "factorize.training.loop",
     "run_model": "factorize.model.feed",
     "search_drift": "factorize.calibrated.search",
-    "shrink_blockwise": "factorize.checkpoints.blockwise",
-    "shrink_checkpoint": "factorize.checkpoints.stream",
+    "shrink_blockwise": "factorize.outofcore.blockwise",
+    "shrink_checkpoint": "factorize.outofcore.weights_only",
     "save": "factorize.checkpoints.files",
     "save_directory": "factorize.checkpoints.directories",
     "to_dense": "factorize.rewrite.layers",
@@ -135,7 +135,6 @@ if TYPE_CHECKING:  # for type checkers and editors: every name of _EXPORTS, from
         DriftTargetUnreachable,
         search_drift,
     )
-    from factorize.checkpoints.blockwise import shrink_blockwise
     from factorize.checkpoints.directories import (
         check_directory,
         load_directory,
@@ -143,7 +142,6 @@ if TYPE_CHECKING:  # for type checkers and editors: every name of _EXPORTS, from
     )
     from factorize.checkpoints.export import Exported, export_onnx, export_program
     from factorize.checkpoints.files import load, read_plan, save
-    from factorize.checkpoints.stream import shrink_checkpoint
     from factorize.errors import DriftLimitExceeded, FactorizeError
     from factorize.measure.drift import output_drift as output_drift
     from factorize.measure.evaluate import evaluate
@@ -154,6 +152,8 @@ if TYPE_CHECKING:  # for type checkers and editors: every name of _EXPORTS, from
     from factorize.model.sites import Site as Site
     from factorize.model.sites import WalkResult as WalkResult
     from factorize.model.sites import walk
+    from factorize.outofcore.blockwise import shrink_blockwise
+    from factorize.outofcore.weights_only import shrink_checkpoint
     from factorize.pipeline import compress
     from factorize.plan.policy import Override as Override
     from factorize.plan.policy import Policy

@@ -33,6 +33,7 @@ if TYPE_CHECKING:
     from typing_extensions import Self
 
 from factorize.errors import FactorizeError
+from factorize.threads import torch_threads
 
 INSTALL_FIX = "pip install 'factorize[cluster]' (it installs Dask distributed)"
 CONNECT_TIMEOUT = 10.0  # seconds to wait for a scheduler address to answer
@@ -55,16 +56,8 @@ class TasksFailed(FactorizeError):
 
 def _pinned(fn: Callable[[Any], Any], threads: int | None, item: Any) -> Any:
     """``fn(item)`` with torch's intra-op thread count set to ``threads`` (restored afterwards)."""
-    if threads is None:
+    with torch_threads(threads):  # torch is imported only when a count is set: this module stays torch-free
         return fn(item)
-    import torch  # only tasks need torch; the module stays importable without it
-
-    before = torch.get_num_threads()
-    torch.set_num_threads(threads)
-    try:
-        return fn(item)
-    finally:
-        torch.set_num_threads(before)
 
 
 class _Pinned:

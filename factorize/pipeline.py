@@ -35,6 +35,7 @@ from factorize.plan.policy import (
     Policy,
     rank_needed,
     resolve_policy,
+    values_first,  # the rule lives in the plan layer (the weights-only shrink calls it too)
 )
 from factorize.plan.forms import bytes_plan
 from factorize.plan.ranks import choose_ranks
@@ -206,15 +207,6 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
     )
 
 
-def values_first(policy: Policy) -> bool:
-    """Whether ``compress`` takes the values-first route: a global budget (each layer's rank depends on every
-    layer's whole spectrum) with ``method="auto"``. The singular values of every layer are found without vectors
-    (:func:`factorize.spectra.decompose.values_only`), the budget is allocated from them, and only the kept
-    vectors are computed (:func:`factorize.spectra.decompose.leading`, within 1% of the optimal error). Per-layer
-    rules (rank, keep, energy) and the explicit methods keep their one-pass decomposition."""
-    return policy.budget is not None and policy.method == "auto"
-
-
 def sweep_spectra(
     model: nn.Module,
     policies: Iterable[Policy],
@@ -290,7 +282,7 @@ def _keep_fast(model, target, found, have, plan, policy, run, inplace):
 def _plan_without(found, have, policy, slow: Mapping[str, str]) -> dict:
     """The plan with the ``slow`` layers left out of the allocation (kept dense) and the budget spread over the
     rest; when the rest cannot meet it either, one error naming every slow layer."""
-    from factorize.plan.ranks import _site_entry  # one plan row, as choose_ranks writes it
+    from factorize.plan.ranks import site_entry  # one plan row, as choose_ranks writes it
 
     rest = [s for s in found.sites if s.name not in slow]
     try:
@@ -302,7 +294,7 @@ def _plan_without(found, have, policy, slow: Mapping[str, str]) -> dict:
             fix="raise the budget, or compress without --speed-check and accept the measured slow-down",
         ) from None
     by_name = found.by_name()
-    plan["sites"] = {s.name: plan["sites"].get(s.name) or _site_entry(by_name[s.name], None, None, slow[s.name])
+    plan["sites"] = {s.name: plan["sites"].get(s.name) or site_entry(by_name[s.name], None, None, slow[s.name])
                      for s in found.sites if s.name in plan["sites"] or s.name in slow}
     return plan
 

@@ -16,16 +16,16 @@ PACKAGE = Path(__file__).resolve().parents[1] / "factorize"
 
 # lowest first; a module's layer is the first entry its dotted name starts with
 LAYERS = (
-    ("factorize.errors", "factorize._version", "factorize.storage", "factorize.default", "factorize.choices",
-     "factorize.cluster", "factorize.execution"),
+    ("factorize.errors", "factorize._version", "factorize.storage", "factorize.threads", "factorize.default",
+     "factorize.choices", "factorize.cluster", "factorize.execution"),
     ("factorize.model",),
     ("factorize.spectra", "factorize.rounding"),
     ("factorize.plan",),
     ("factorize.rewrite",),
+    ("factorize.checkpoints",),  # file formats only: the out-of-core shrinks live in factorize.outofcore
     ("factorize.measure",),
     ("factorize.calibrated",),
-    ("factorize.checkpoints",),
-    ("factorize.pipeline",),
+    ("factorize.pipeline", "factorize.outofcore"),
     ("factorize.training",),
     ("factorize.cli", "factorize.__main__"),
 )
@@ -134,3 +134,32 @@ def test_the_checker_sees_imports_inside_functions(tmp_path):
     inner = [n for n in ast.walk(tree) if isinstance(n, ast.ImportFrom)]
     assert [n.module for n in inner] == ["factorize.cli"]
     assert _layer(_resolve("factorize.cli.main") or "") > _layer("factorize.model.sites")
+
+
+def _private_imports(module: str) -> list[str]:
+    """``from factorize.x import _name`` lines of ``module`` naming another module's private (underscore) name.
+
+    A module (``factorize._version``) may be imported by its own underscore name; a name inside it may not."""
+    found = []
+    for node in ast.walk(ast.parse(MODULES[module].read_text())):
+        if not isinstance(node, ast.ImportFrom) or node.level or not (node.module or "").startswith("factorize"):
+            continue
+        for alias in node.names:
+            target = f"{node.module}.{alias.name}"
+            if alias.name.startswith("_") and not alias.name.startswith("__") and _resolve(target) != target:
+                found.append(f"line {node.lineno}: from {node.module} import {alias.name}")
+    return found
+
+
+@pytest.mark.parametrize("module", sorted(MODULES))
+def test_no_import_of_another_modules_private_name(module):
+    # a private name is its module's own business: a name two modules share gets a public name where it belongs
+    found = _private_imports(module)
+    assert not found, f"{module} imports private names of other modules: {found}"
+
+
+def test_the_private_import_check_can_fail(tmp_path, monkeypatch):
+    path = tmp_path / "probe.py"
+    path.write_text("from factorize.storage import _hidden\nfrom factorize import _version\n")
+    monkeypatch.setitem(MODULES, "factorize.probe", path)
+    assert _private_imports("factorize.probe") == ["line 1: from factorize.storage import _hidden"]

@@ -123,3 +123,17 @@ def test_leftovers_of_a_killed_writer_are_removed_by_the_next_run(tmp_path):
     os.close(fd)
     assert not stale.exists() and live.exists() and tmp.name.endswith(TEMP_SUFFIX)
     assert remove_stale_temps(tmp_path) == []  # nothing else is stale
+
+
+def test_read_tensor_matches_the_reference_reader(tmp_path):
+    # safetensors' own load_file is the reference
+    from safetensors.torch import load_file
+
+    from factorize.storage import read_tensor
+
+    path = tmp_path / "t.safetensors"
+    write_safetensors(path, {"a": torch.arange(6.0).reshape(2, 3), "b": torch.ones(4, dtype=torch.bfloat16)})
+    ref = load_file(str(path))
+    for name in ("a", "b"):
+        got = read_tensor(path, name)
+        assert got.dtype == ref[name].dtype and torch.equal(got, ref[name])

@@ -1,7 +1,7 @@
 """Activation-aware decomposition: factors that keep what a layer outputs on real inputs, not its weights.
 
 Plain truncated SVD minimises ||W - W'||_F, the error of the weights. What matters is the error of the layer's
-outputs on the inputs it sees: for inputs X (rows x_i, second moment C = X^T X, see :mod:`factorize.calibrate`)
+outputs on the inputs it sees: for inputs X (rows x_i, second moment C = X^T X, see :mod:`factorize.calibrated.stats`)
 
     ||(W - W') X^T||_F^2 = trace((W - W') C (W - W')^T).
 

@@ -12,7 +12,7 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.calibrated.stats import (
-    _check_finite,
+    check_finite,
     as_batch_list,
     check_memory,
     resolve_sites,
@@ -158,7 +158,7 @@ def collect_output_grams(
                             if g is None:
                                 continue
                             r = _output_rows(kinds[n], g.detach(), mask, modules[n]).to(torch.float64).cpu()  # (rows, m)
-                            _check_finite(r, n, i)
+                            check_finite(r, n, i)
                             grams[n].addmm_(r.T, r)
                             if k == 0:
                                 rows[n] += r.shape[0]

@@ -180,7 +180,7 @@ class _State:
     seen: set = field(default_factory=set)  # sites already counted for the current batch
 
 
-def _check_finite(rows: torch.Tensor, name: str, batch: int) -> None:
+def check_finite(rows: torch.Tensor, name: str, batch: int) -> None:
     if rows.is_floating_point() and not bool(torch.isfinite(rows).all()):
         bad = int((~torch.isfinite(rows)).sum())
         raise FactorizeError(
@@ -190,7 +190,7 @@ def _check_finite(rows: torch.Tensor, name: str, batch: int) -> None:
         )
 
 
-def _accumulate(stats: InputStats, rows: torch.Tensor) -> None:
+def accumulate(stats: InputStats, rows: torch.Tensor) -> None:
     """Add rows (N, n) -- or token ids (N,) for an embedding -- to ``stats``, in float64."""
     if stats.kind == "embedding":
         ids = rows.reshape(-1).to(torch.int64)
@@ -232,11 +232,11 @@ def _make_hook(site: Site, stats: InputStats, state: _State, sink=None):
             return None
         with torch.no_grad():
             rows = input_rows(module, site.kind, x.detach(), state.mask)
-            _check_finite(rows, site.name, state.batch)
+            check_finite(rows, site.name, state.batch)
             if sink is not None:
                 sink(rows)
             else:
-                _accumulate(stats, rows)
+                accumulate(stats, rows)
         if site.name not in state.seen:
             state.seen.add(site.name)
             stats.batches += 1
@@ -411,7 +411,7 @@ def collect_stats(
 
     Warns:
         When a site saw fewer rows than its input width: its second moment is then singular and the
-        activation-aware decomposition adds a ridge (see :mod:`factorize.aware`).
+        activation-aware decomposition adds a ridge (see :mod:`factorize.calibrated.aware`).
     """
     site_list = resolve_sites(model, sites)
     check_memory({s.name: stats_bytes(s) for s in site_list}, "input statistics", limit=memory_limit)
@@ -512,8 +512,8 @@ def _accumulate_pair(stats: InputStats, ref_stats: InputStats, xr: torch.Tensor 
             fix="sequential mode needs a model whose layers see the same positions whatever the weights; "
             "compress without sequential=",
         )
-    _accumulate(stats, x)
-    _accumulate(ref_stats, xr)
+    accumulate(stats, x)
+    accumulate(ref_stats, xr)
     if stats.cross is None:
         stats.cross = torch.zeros(stats.width, stats.width, dtype=torch.float64, device=stats.second_moment.device)
     for start in range(0, x.shape[0], ROW_CHUNK):

@@ -29,7 +29,6 @@ from __future__ import annotations
 import copy
 import json
 import os
-import secrets
 import shutil
 from collections.abc import Mapping
 from pathlib import Path
@@ -39,7 +38,7 @@ import torch
 from torch import nn
 
 from factorize.errors import FactorizeError
-from factorize.storage import check_output_path, create_temp_dir, read_header
+from factorize.storage import check_output_path, new_temp_dir, publish_dir, read_header
 
 DIRECTORY_FORMAT = "factorize.directory"
 DIRECTORY_VERSION = 1
@@ -47,7 +46,6 @@ MANIFEST = "factorize.json"
 WEIGHTS = "factorized.safetensors"  # not a name transformers' from_pretrained looks for
 TRANSFORMERS_WEIGHTS = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
                         "pytorch_model.bin.index.json")
-TEMP_DIR_SUFFIX = ".factorize-tmpdir"  # temp directories: .<final name>.<pid>-<random>.factorize-tmpdir
 HF_EXTRA = 'pip install "factorize[hf]"'
 
 
@@ -153,7 +151,7 @@ def save_directory(
     The directory is written under a temporary name beside the target and renamed into place when complete, so a
     failure leaves nothing behind. Returns the directory written.
     """
-    from factorize.checkpoints.files import _check_plan_matches, _plan_json
+    from factorize.checkpoints.files import check_plan_matches, plan_json
 
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
@@ -164,12 +162,12 @@ def save_directory(
             fix="save other models with factorize.save(model, 'file.safetensors', plan=plan)",
         )
     final = check_output_path(directory, force=force, directory=True)
-    _plan_json(plan)
-    _check_plan_matches(model, plan)  # before anything is written
-    tmp = _temp_dir(final)
+    plan_json(plan)
+    check_plan_matches(model, plan)  # before anything is written
+    tmp = new_temp_dir(final)
     try:
         _write_into(tmp, model, config, plan, tokenizer)
-        _publish_dir(tmp, final, force=force)
+        publish_dir(tmp, final, force=force)
     except OSError as e:
         shutil.rmtree(tmp, ignore_errors=True)
         raise FactorizeError(f"{final}: writing failed ({e.strerror or e}); nothing was written",
@@ -212,50 +210,6 @@ def _dtype_of(model: nn.Module) -> torch.dtype:
         if p.is_floating_point():
             return p.dtype
     return torch.get_default_dtype()
-
-
-def _temp_dir(final: Path) -> Path:
-    _remove_stale_dirs(final.parent if str(final.parent) else Path("."), final.name)
-    return create_temp_dir(final, TEMP_DIR_SUFFIX)
-
-
-def _remove_stale_dirs(parent: Path, name: str) -> None:
-    """Remove temp directories that a killed writer of the same output left behind (its process is gone)."""
-    from factorize.storage import _alive
-
-    for p in parent.glob(f".{name}.*{TEMP_DIR_SUFFIX}"):
-        pid = p.name[: -len(TEMP_DIR_SUFFIX)].rpartition(".")[2].partition("-")[0]
-        if pid.isdigit() and not _alive(int(pid)) and p.is_dir():
-            shutil.rmtree(p, ignore_errors=True)
-
-
-def _publish_dir(tmp: Path, final: Path, *, force: bool) -> None:
-    """Move the finished temp directory to ``final``. Without ``force`` the name is claimed with an exclusive
-    mkdir (of two writers racing, one wins), then the empty claim is replaced by rename (POSIX rename(2) replaces
-    an empty directory). With ``force`` an existing directory is moved aside first and removed afterwards."""
-    if final.exists():
-        if not force:
-            raise FactorizeError(f"{final}: the output appeared while writing (another writer got there first)",
-                                 fix="choose another path, or pass force=True (--force) to replace it")
-        aside = final.with_name(f".{final.name}.{os.getpid()}-{secrets.token_hex(6)}.old{TEMP_DIR_SUFFIX}")
-        os.rename(final, aside)
-        try:
-            os.rename(tmp, final)
-        except BaseException:
-            os.rename(aside, final)
-            raise
-        shutil.rmtree(aside, ignore_errors=True)
-        return
-    try:
-        final.mkdir()
-    except FileExistsError:
-        raise FactorizeError(f"{final}: the output appeared while writing (another writer got there first)",
-                             fix="choose another path, or pass force=True (--force) to replace it") from None
-    try:
-        os.rename(tmp, final)
-    except BaseException:
-        final.rmdir()
-        raise
 
 
 # ---------------------------------------------------------------------------------------------------------------

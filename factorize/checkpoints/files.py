@@ -41,10 +41,10 @@ from factorize.plan.entries import factored_names, plan_entries
 from factorize.plan.ranks import PLAN_FORMAT
 from factorize.storage import (
     Header,
-    _check_readable_file,
-    _printable,
     check_free_space,
     check_output_path,
+    check_readable_file,
+    printable,
     read_header,
     write_atomic,
     write_safetensors,
@@ -120,7 +120,7 @@ def _pick_in_directory(d: Path) -> Path:
 
 
 def _open_index(p: Path) -> Checkpoint:
-    _check_readable_file(p)
+    check_readable_file(p)
     try:
         index = json.loads(p.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as e:
@@ -165,7 +165,7 @@ def _plan_and_aliases(ckpt: Checkpoint, path) -> tuple[dict, dict[str, str]]:
     version = meta.get(KEY_VERSION, "")
     if version != str(FORMAT_VERSION):  # ASCII digits only: int() would also take '１' or a 5000-digit number
         raise FactorizeError(
-            f"{path}: factorize checkpoint format version {_printable(version[:20])!r}; this factorize reads version "
+            f"{path}: factorize checkpoint format version {printable(version[:20])!r}; this factorize reads version "
             f"{FORMAT_VERSION}",
             fix="upgrade factorize to the version that wrote the file (see its 'factorize.library_version' "
             "metadata), or re-create the checkpoint with this version",
@@ -195,7 +195,7 @@ def checkpoint_metadata(plan: Mapping, aliases: Mapping[str, str] | None = None,
     meta.update({
         KEY_FORMAT: FORMAT_NAME,
         KEY_VERSION: str(FORMAT_VERSION),
-        KEY_PLAN: _plan_json(plan),
+        KEY_PLAN: plan_json(plan),
         KEY_LIBRARY: __version__,
     })
     if aliases:
@@ -203,7 +203,7 @@ def checkpoint_metadata(plan: Mapping, aliases: Mapping[str, str] | None = None,
     return meta
 
 
-def _plan_json(plan: Mapping) -> str:
+def plan_json(plan: Mapping) -> str:
     if not isinstance(plan, Mapping) or plan.get("format") != PLAN_FORMAT or not isinstance(plan.get("sites"), Mapping):
         raise FactorizeError("not a factorize plan", fix=f"pass the .plan of a compress() result ({PLAN_FORMAT!r})")
     try:
@@ -261,7 +261,7 @@ def _dedupe(state: Mapping[str, torch.Tensor]) -> tuple[dict[str, torch.Tensor],
     return tensors, aliases
 
 
-def _check_plan_matches(model: nn.Module, plan: Mapping) -> None:
+def check_plan_matches(model: nn.Module, plan: Mapping) -> None:
     from factorize.rewrite.layers import Factored, factored_layers
 
     factored = factored_layers(model)
@@ -309,8 +309,8 @@ def save(
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
     final = check_output_path(path, force=force)
-    _plan_json(plan)
-    _check_plan_matches(model, plan)
+    plan_json(plan)
+    check_plan_matches(model, plan)
     state = {k: v.detach() for k, v in model.state_dict().items()}
     tensors, aliases = _dedupe(state)
     meta = checkpoint_metadata(plan, aliases, metadata)

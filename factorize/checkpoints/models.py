@@ -11,8 +11,8 @@
   ``model.safetensors`` has a plan in its metadata) is rebuilt through :func:`factorize.load_directory`; one whose
   ``model.safetensors`` holds factored layers without a plan (``save_pretrained`` on a compressed model) is refused.
 * a bare ``.safetensors`` file, or the ``*.safetensors.index.json`` of a sharded checkpoint -- weights-only mode
-  (:mod:`factorize.checkpoint`): no architecture, so its 2-D tensors are factored and reported by weight error
-  only.
+  (:mod:`factorize.outofcore.weights_only`): no architecture, so its 2-D tensors are factored and reported by
+  weight error only.
 * pickled checkpoints (``.pt``, ``.pth``, ``.bin``, ``.ckpt``, ``.pkl``) are refused: unpickling can run arbitrary
   code. ``allow_pickle=True`` (``--allow-pickle``) loads them with ``torch.load(weights_only=True)``, which
   restricts unpickling to tensors and plain containers.

@@ -24,6 +24,7 @@ from typing import IO
 from safetensors import SafetensorError
 
 from factorize.errors import DriftLimitExceeded, FactorizeError
+from factorize.threads import torch_threads
 
 from .parser import build_parser
 from .render import UI
@@ -78,7 +79,8 @@ def _dispatch(args, ui: UI) -> int:
         with ui.capture_stdout(), warnings.catch_warnings():
             warnings.showwarning = lambda message, *_a, **_k: ui.warn(str(message))  # one line, no source echo
             command = importlib.import_module(f"{__name__}.{args.command}")  # the one lazy import: torch etc.
-            result = command.run(args, ui)
+            with torch_threads(getattr(args, "threads", None)):  # --threads, restored when the command ends
+                result = command.run(args, ui)
     except DriftLimitExceeded as err:
         return ui.fail(str(err), 1)
     except FactorizeError as err:

@@ -65,13 +65,11 @@ def load(args, ui: UI) -> LoadedModel:
 
 
 def compute_device(args):
-    """The torch.device of --device (None when not given), after --threads is applied; a CUDA device that torch
+    """The torch.device of --device (None when not given; --threads is applied around the whole command, see
+    :func:`factorize.cli._dispatch`); a CUDA device that torch
     does not see is refused (exit 2) before anything is loaded."""
     import torch
 
-    threads = getattr(args, "threads", None)
-    if threads is not None:
-        torch.set_num_threads(threads)
     name = getattr(args, "device", None)
     if name is None:
         return None

@@ -6,7 +6,7 @@ import math
 
 from rich.table import Table
 
-from factorize.checkpoints.stream import checkpoint_spectra
+from factorize.outofcore.candidates import checkpoint_spectra
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site, walk
 from factorize.spectra.decompose import Spectrum

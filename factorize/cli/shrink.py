@@ -8,12 +8,12 @@ from pathlib import Path
 
 from factorize.checkpoints import files
 from factorize.checkpoints.directories import save_directory
-from factorize.checkpoints.stream import shrink_checkpoint, stream_report
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate, layer_reports
 from factorize.measure.report import Report, render_rich
 from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size
+from factorize.outofcore.weights_only import shrink_checkpoint
 from factorize.pipeline import compress
 from factorize.training.heal import heal
 
@@ -227,7 +227,7 @@ def _shrink_weights_only(args, loaded, output: Path, opts: Options, ui: UI):
     with weights_file(loaded) as src:
         done = shrink_checkpoint(src, output, policy, force=args.force, progress=ui.progress, cache_dir=args.cache,
                                  cluster=getattr(args, "cluster", None), threads=getattr(args, "threads", None) or 1)
-    return stream_report(done, loaded.source), done["plan"], {"ran_on": done["engine"], "redone": done["redone"]}
+    return done.report(loaded.source), done.plan, {"ran_on": done.engine, "redone": done.redone}
 
 
 BLOCKWISE_REFUSED = (("--inputs", "inputs"), ("--random-inputs", "random_inputs"), ("--max-drift", "max_drift"),
@@ -238,8 +238,8 @@ BLOCKWISE_REFUSED = (("--inputs", "inputs"), ("--random-inputs", "random_inputs"
 
 def _shrink_blockwise(args, opts: Options, policy, ui: UI) -> dict:
     """--blockwise: the calibrated shrink of a transformers directory one block at a time (never loaded whole)."""
-    from factorize.checkpoints.blockwise import blockwise_note, shrink_blockwise
     from factorize.measure.inputs import load_inputs
+    from factorize.outofcore.blockwise import shrink_blockwise
 
     model_dir = Path(args.model)
     if not model_dir.is_dir():
@@ -274,12 +274,7 @@ def _shrink_blockwise(args, opts: Options, policy, ui: UI) -> dict:
     done = shrink_blockwise(model_dir, output, policy, calibration=calib.batches, force=args.force,
                             progress=ui.progress, cluster=getattr(args, "cluster", None),
                             threads=getattr(args, "threads", None))
-    report = dataclasses.replace(
-        stream_report(done, str(model_dir)), title="factorize shrink (block by block)",
-        notes=[(f"activation-aware factors ({done['plan']['calibration']['method']}) fitted block by block to "
-                f"{calib.source}"), blockwise_note(done),
-               ("output drift was not measured (the whole model is never in memory here): load the output with "
-                f"factorize.load_directory('{output}') and run 'factorize compare' on real inputs")])
+    report = done.report(str(model_dir), calib.source)
     if report_path is not None:
         try:
             write_text(report_path, report.to_markdown(), args.force)
@@ -289,7 +284,6 @@ def _shrink_blockwise(args, opts: Options, policy, ui: UI) -> dict:
     if not ui.json_mode:
         render_rich(report, ui.out)
         ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
-    memory = {k: done[k] for k in ("peak_rss_bytes", "block_bytes", "activation_bytes", "bound_bytes", "bound_met")}
     return {"command": "shrink", "model": str(model_dir), "output": str(output),
             "report_file": str(report_path) if report_path else None, "report": report.to_json(),
-            "plan": done["plan"], "memory": memory}
+            "plan": done.plan, "memory": done.memory()}

@@ -10,7 +10,7 @@ from pathlib import Path
 from rich.table import Table
 
 from factorize.calibrated.search import Calibration, compress_from
-from factorize.checkpoints.stream import checkpoint_spectra
+from factorize.outofcore.candidates import checkpoint_spectra
 from factorize.choices import DEFAULT_METHOD
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate

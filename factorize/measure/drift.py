@@ -14,7 +14,7 @@ from factorize.model.feed import primary_output
 DRIFT_KINDS = ("logits", "scores", "features")  # what an output holds; None: decide from its shape
 
 
-def _as_batches(outputs: Any) -> list[torch.Tensor]:
+def as_batches(outputs: Any) -> list[torch.Tensor]:
     """A list of batch output tensors from a tensor, a list of them (as :func:`run_model` returns), or a nested
     model output."""
     if isinstance(outputs, list) and outputs and all(isinstance(o, torch.Tensor) for o in outputs):
@@ -55,7 +55,7 @@ def output_drift(
         ``kl``: mean KL(softmax(a) || softmax(b)) per row, in nats (Kullback & Leibler 1951);
         ``samples``: how many samples were compared.
     """
-    refs, cands = _as_batches(reference), _as_batches(candidate)
+    refs, cands = as_batches(reference), as_batches(candidate)
     if len(refs) != len(cands):
         raise FactorizeError(f"{len(refs)} reference batches but {len(cands)} candidate batches",
                              fix="run both models on the same batches")
@@ -93,7 +93,7 @@ def output_drift(
             kl_sum += float((lp.exp() * (lp - lq)).sum())
     cos = torch.cat(cosines)
     result = {
-        "relative_l2": _ratio(math.sqrt(diff_sq), math.sqrt(ref_sq)),
+        "relative_l2": safe_ratio(math.sqrt(diff_sq), math.sqrt(ref_sq)),
         "cosine_mean": float(cos.mean()),
         "cosine_min": float(cos.min()),
         "samples": int(cos.numel()),
@@ -120,7 +120,7 @@ def _cosine_rows(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
     return torch.where(both_zero, torch.ones_like(cos), cos).clamp(-1.0, 1.0)
 
 
-def _ratio(num: float, den: float) -> float:
+def safe_ratio(num: float, den: float) -> float:
     if den > 0:
         return num / den
     return 0.0 if num == 0 else math.inf

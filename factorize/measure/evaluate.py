@@ -31,7 +31,7 @@ from tqdm.auto import tqdm
 
 from factorize._version import __version__
 from factorize.errors import FactorizeError
-from factorize.measure.drift import _as_batches, _ratio, output_drift
+from factorize.measure.drift import as_batches, output_drift, safe_ratio
 from factorize.measure.perplexity import is_causal_lm, token_ids
 from factorize.measure.perplexity import perplexity as perplexity_of
 from factorize.measure.pooling import pool
@@ -230,7 +230,7 @@ def _progress(enabled: bool):
 
 def accuracy(outputs: Sequence[torch.Tensor] | torch.Tensor, labels: torch.Tensor | Sequence[torch.Tensor]) -> float:
     """Fraction of samples whose argmax over the last dimension equals the label."""
-    preds = torch.cat([o.argmax(-1).reshape(-1) for o in _as_batches(outputs)])  # (N,)
+    preds = torch.cat([o.argmax(-1).reshape(-1) for o in as_batches(outputs)])  # (N,)
     truth = labels if isinstance(labels, torch.Tensor) else torch.cat([torch.as_tensor(t).reshape(-1) for t in labels])
     truth = truth.reshape(-1).to(torch.int64)
     if preds.numel() != truth.numel():
@@ -320,7 +320,7 @@ def _macs(kind: str, shape: Sequence[int], rank: int | None, positions: int) -> 
 def weight_error(original: torch.Tensor, approximation: torch.Tensor) -> float:
     """``||W - W'||_F / ||W||_F`` in float64 (0 for an all-zero W that is matched exactly)."""
     W, V = original.detach().to(torch.float64).cpu(), approximation.detach().to(torch.float64).cpu()
-    return _ratio(float(torch.linalg.matrix_norm(W - V)), float(torch.linalg.matrix_norm(W)))
+    return safe_ratio(float(torch.linalg.matrix_norm(W - V)), float(torch.linalg.matrix_norm(W)))
 
 
 def _report_names(compressed: nn.Module, plan: Mapping | None, sites: Iterable[str] | None) -> list[str]:

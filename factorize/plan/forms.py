@@ -46,9 +46,8 @@ import torch
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
 from factorize.plan.joint import Candidate
+from factorize.plan.policy import DEFAULT_PRECISIONS, check_precisions  # noqa: F401 - re-exported
 from factorize.rounding import (
-    PRECISIONS,
-    check_precision,
     fits,
     is_float,
     round_factors,
@@ -58,10 +57,6 @@ from factorize.rounding import (
 )
 from factorize.spectra.decompose import Spectrum
 
-# int8 and 4-bit in groups of 64 are what practitioners try first (common practice); bfloat16 keeps the float
-# range at half the bytes. int4 in groups of 32 costs 0.25 bit a weight more for little (measured on MiniLM:
-# held-out cosine 0.9901 against 0.9884, both with error-feedback rounding), so it is allowed but not a default.
-DEFAULT_PRECISIONS = ("float32", "bfloat16", "int8", "int4g64")
 CORRECTION_RANKS = (8, 16, 32, 64)  # ranks of the rounded-plus-correction form (capped at min(m, n) / 4)
 CORRECTION_PRECISION = "bfloat16"  # the correction's factors (LQER keeps them in high precision)
 RANK_POINTS = 24  # candidate ranks per precision and layer (plus the multiples the policy asks for)
@@ -70,19 +65,6 @@ VIEW_KINDS = ("linear", "transposed", "conv1d", "conv2d", "conv3d")  # thin laye
 DENSE_VIEW_KINDS = ("linear", "conv1d", "conv2d", "conv3d")  # the weight's own rows are the matrix view's rows
 NATIVE = {torch.float32: "float32", torch.bfloat16: "bfloat16", torch.float16: "float16"}
 _WIDTH = {"float32": 32, "bfloat16": 16, "float16": 16, "int8": 8, "int4g32": 4, "int4g64": 4, "int4g128": 4}
-
-
-def check_precisions(precisions: Sequence[str] | None) -> tuple[str, ...]:
-    """The allowed precisions, validated (every bad name listed once); None gives :data:`DEFAULT_PRECISIONS`."""
-    if precisions is None:
-        return DEFAULT_PRECISIONS
-    if isinstance(precisions, str):
-        precisions = tuple(p.strip() for p in precisions.split(","))
-    bad = [p for p in precisions if p not in PRECISIONS]
-    if bad or not precisions:
-        raise FactorizeError(f"unknown stored precision(s): {', '.join(map(repr, bad)) or 'none given'}",
-                             fix=f"use some of {', '.join(PRECISIONS)}")
-    return tuple(dict.fromkeys(check_precision(p) for p in precisions))
 
 
 def native_precision(dtype: torch.dtype) -> str:

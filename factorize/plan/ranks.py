@@ -53,7 +53,7 @@ def _round_down(r: int, multiple: int) -> int:
     return max(multiple, (r // multiple) * multiple) if r >= 1 else r
 
 
-def _site_entry(site: Site, spectrum: Spectrum | None, rank: int | None, reason: str) -> dict:
+def site_entry(site: Site, spectrum: Spectrum | None, rank: int | None, reason: str) -> dict:
     """One plan row. ``rank=None`` means keep dense."""
     if rank is not None and spectrum is not None and rank > spectrum.computed_rank:
         # exact spectra: cap at min(m, n). Partial (randomized) spectra stop at the break-even rank, so a rank
@@ -205,21 +205,21 @@ def choose_ranks(
     for site in sites:
         spec = spectra.get(site.name)
         if site.tied_with and not factor_tied:
-            entries[site.name] = _site_entry(
+            entries[site.name] = site_entry(
                 site, spec, None, f"weight shared with {', '.join(site.tied_with)}; factoring one owner would untie them"
             )
             continue
         o = _override_for(site.name, policy.overrides)
         if o is not None and o.dense:
-            entries[site.name] = _site_entry(site, spec, None, f"override {o.pattern!r}: keep dense")
+            entries[site.name] = site_entry(site, spec, None, f"override {o.pattern!r}: keep dense")
         elif o is not None:
             r, why = _fixed_rank(site, spec, rank=o.rank, energy=o.energy, keep=o.keep, multiple=policy.multiple)
-            entries[site.name] = _site_entry(site, spec, r, f"override {o.pattern!r}: {why}")
+            entries[site.name] = site_entry(site, spec, r, f"override {o.pattern!r}: {why}")
         elif policy.budget is None:
             r, why = _fixed_rank(
                 site, spec, rank=policy.rank, energy=policy.energy, keep=policy.keep, multiple=policy.multiple
             )
-            entries[site.name] = _site_entry(site, spec, r, why)
+            entries[site.name] = site_entry(site, spec, r, why)
         else:
             pool.append(site)
             continue
@@ -235,7 +235,7 @@ def choose_ranks(
         for site in pool:
             r = ranks[site.name]
             why = f"budget={policy.budget}: greedy allocation by error reduction per {policy.cost[:-1]}"
-            entries[site.name] = _site_entry(site, spectra[site.name], r, why if r is not None else why + "; dense")
+            entries[site.name] = site_entry(site, spectra[site.name], r, why if r is not None else why + "; dense")
     order = [s.name for s in sites]
     return {
         "format": PLAN_FORMAT,

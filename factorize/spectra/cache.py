@@ -114,7 +114,8 @@ class SpectrumCache:
         self.hits = self.misses = self.stored = self.corrupt = 0
         self._lock = threading.Lock()  # counters may be bumped from worker threads
 
-    def _count(self, **steps: int) -> None:
+    def add_counts(self, **steps: int) -> None:
+        """Add to the hit/miss/stored/corrupt counters (a task's counts, run elsewhere, join this cache's)."""
         with self._lock:
             for name, n in steps.items():
                 setattr(self, name, getattr(self, name) + n)
@@ -145,16 +146,16 @@ class SpectrumCache:
         key = key or self.key(matrix, method, **options)
         path = self.path_for(key)
         if not path.exists():
-            self._count(misses=1)
+            self.add_counts(misses=1)
             return None
         try:
             spec = self._read(path, key, tuple(matrix.shape))
         except Exception as e:  # noqa: BLE001 - any unreadable entry is ignored, said, and recomputed
-            self._count(corrupt=1, misses=1)
+            self.add_counts(corrupt=1, misses=1)
             warnings.warn(f"cache entry {path} is unusable ({e}); ignoring it and recomputing", CacheWarning,
                           stacklevel=2)
             return None
-        self._count(hits=1)
+        self.add_counts(hits=1)
         return spec
 
     def _read(self, path: Path, key: str, shape: tuple[int, int]) -> Spectrum:
@@ -189,7 +190,7 @@ class SpectrumCache:
         except FactorizeError as e:
             warnings.warn(f"could not store a cache entry in {self.directory}: {e}", CacheWarning, stacklevel=2)
             return False
-        self._count(stored=1)
+        self.add_counts(stored=1)
         return True
 
     def get_or_compute(

@@ -29,8 +29,7 @@ kept energy, which is the error of the factors actually produced (their columns 
 
 from __future__ import annotations
 
-import contextlib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import torch
@@ -38,6 +37,7 @@ import torch
 from factorize.choices import METHODS
 from factorize.errors import FactorizeError
 from factorize.execution import resolve_execution
+from factorize.threads import torch_threads
 
 RANDOMIZED_FRACTION = 6  # auto: randomized only when the sketch (rank + oversampling) is at most min(m, n) / this
 AUTO_TOLERANCE = 0.01  # auto: accept randomized factors only if provably within 1% of the optimal error
@@ -107,6 +107,12 @@ class Spectrum:
         kept = self.kept_energy() / self.total_energy
         r = int(np.searchsorted(kept, fraction - 1e-12, side="left"))
         return max(1, min(r, self.computed_rank))
+
+    def without_vectors(self) -> Spectrum:
+        """This spectrum without its singular vectors (nor a kept Gram matrix): enough to choose ranks, k floats
+        instead of k(m + n). A subclass keeps its per-direction values (e.g. the output energies)."""
+        m, n = self.shape
+        return replace(self, U=self.U.new_empty(m, 0), S=self.S.clone(), Vh=self.Vh.new_empty(0, n), gram=None)
 
     def factors(self, rank: int) -> tuple[torch.Tensor, torch.Tensor]:
         """Balanced factors ``B = U_r sqrt(S_r)`` (m x r) and ``A = sqrt(S_r) Vh_r`` (r x n), so ``B @ A = W_r``.
@@ -217,7 +223,7 @@ def _prepared_with_energy(matrix: torch.Tensor | np.ndarray, precision: str | No
 
 
 def _exact(w: torch.Tensor) -> Spectrum:
-    with _lapack_threads(min(w.shape)):
+    with lapack_threads(min(w.shape)):
         U, S, Vh = torch.linalg.svd(w, full_matrices=False)  # (m, k), (k,), (k, n); k = min(m, n)
     U, Vh = _fix_signs(U, Vh)
     total = float((S.to(torch.float64) ** 2).sum())
@@ -225,25 +231,10 @@ def _exact(w: torch.Tensor) -> Spectrum:
 
 
 GRAM_BLOCK = 1024  # rows/columns converted to float64 at a time: memory stays near the matrix itself
-SERIAL_LAPACK_UP_TO = 2048  # eigensolves/SVDs of at most this order run on one thread (see _lapack_threads)
+SERIAL_LAPACK_UP_TO = 2048  # eigensolves/SVDs of at most this order run on one thread (see lapack_threads)
 
 
-@contextlib.contextmanager
-def torch_threads(count: int | None):
-    """Run the block with torch's (process-wide) thread count set to ``count``, restored on exit; ``None`` or the
-    current count changes nothing."""
-    before = torch.get_num_threads()
-    if count is None or count == before:
-        yield
-        return
-    torch.set_num_threads(count)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
-
-
-def _lapack_threads(order: int):
+def lapack_threads(order: int):
     """Run a factorisation (and, in :func:`values_only` / :func:`leading`, its products) of the given order on one
     thread when it is small.
 
@@ -269,7 +260,7 @@ def _gram(w: torch.Tensor) -> Spectrum:
         b64 = blk.to(torch.float64)
         gram += b64 @ b64.T if wide else b64.T @ b64
     total = float(gram.diagonal().sum())
-    with _lapack_threads(k):
+    with lapack_threads(k):
         evals, evecs = torch.linalg.eigh(gram)  # ascending
     evals, evecs = evals.flip(0).clamp_min(0), evecs.flip(1)
     S = evals.sqrt()  # (k,)
@@ -310,13 +301,13 @@ def _randomized(w: torch.Tensor, rank: int, oversample: int, power_iters: int, s
     kept: list[float] = []
     for it in range(power_iters + 1):
         small = Q.T @ w  # (k+p, n)
-        with _lapack_threads(sketch):
+        with lapack_threads(sketch):
             kept.append(float((torch.linalg.svdvals(small)[:k].to(torch.float64) ** 2).sum()))
         if it == power_iters:
             break
         Z, _ = torch.linalg.qr(small.T)  # (n, k+p): subspace iteration, re-orthonormalised each half step
         Q, _ = torch.linalg.qr(w @ Z)  # (m, k+p)
-    with _lapack_threads(sketch):
+    with lapack_threads(sketch):
         Ub, S, Vh = torch.linalg.svd(small, full_matrices=False)
     U = Q @ Ub  # (m, k+p)
     U, Vh = _fix_signs(U[:, :k], Vh[:k])
@@ -424,14 +415,14 @@ def values_only(matrix: torch.Tensor | np.ndarray, *, precision: str | None = No
     so that :func:`leading` does not form it again; drop it (``spectrum.gram = None``) once the vectors are in.
     """
     w, total = _prepared_with_energy(matrix, precision, name)
-    with _lapack_threads(min(w.shape)):  # the Gram product too: same bits whatever the caller's threads
-        return _values_only(w, keep_gram, total)
+    with lapack_threads(min(w.shape)):  # the Gram product too: same bits whatever the caller's threads
+        return _gram_values(w, keep_gram, total)
 
 
-def _values_only(w: torch.Tensor, keep_gram: bool = False, total: float | None = None) -> Spectrum:
+def _gram_values(w: torch.Tensor, keep_gram: bool = False, total: float | None = None) -> Spectrum:
     m, n = w.shape
     gram = _small_gram(w)  # (k, k)
-    with _lapack_threads(gram.shape[0]):
+    with lapack_threads(gram.shape[0]):
         evals = torch.linalg.eigvalsh(gram)  # ascending
     S = evals.flip(0).clamp_min(0).sqrt()  # (k,)
     return Spectrum(w.new_empty(m, 0), S, w.new_empty(0, n), method="values", exact=True,
@@ -485,7 +476,7 @@ def leading(
         raise FactorizeError(f"{name}: rank(s) {bad} outside 1..{k} for a {tuple(w.shape)} matrix",
                              fix=f"ask for ranks between 1 and {k}")
     if values is None:
-        values = _values_only(w, total=total)
+        values = _gram_values(w, total=total)
     elif (values.shape != tuple(w.shape) or values.computed_rank != k or not values.exact
           or not np.isclose(values.total_energy, total, rtol=1e-5, atol=0.0)):
         raise FactorizeError(f"{name}: values= holds {values.computed_rank} singular values of a {values.shape} "
@@ -494,7 +485,7 @@ def leading(
                              fix="pass values_only(matrix) of this same matrix, or values=None")
     if max_iters < 0 or tolerance < 0:
         raise FactorizeError(f"{name}: max_iters and tolerance must be >= 0, got {max_iters} and {tolerance}")
-    with _lapack_threads(k):  # products too: up to order 2048 the result never depends on the caller's threads
+    with lapack_threads(k):  # products too: up to order 2048 the result never depends on the caller's threads
         return _leading(w, int(rank), values, guard, oversample, max_iters, tolerance, seed)
 
 
@@ -575,7 +566,7 @@ def _leading(w: torch.Tensor, rank: int, values: Spectrum, guard: list[int], ove
             Q, _ = torch.linalg.qr(_chebyshev_filter(gram, X, GX, degree, c, e, x_r))  # (k, l) filtered block
             GQ = gram @ Q  # (k, l)
             H = Q.T @ GQ  # (l, l) Rayleigh quotient (Rayleigh-Ritz: Golub & Van Loan, sec. 8.1)
-            with _lapack_threads(block):
+            with lapack_threads(block):
                 ritz, Z = torch.linalg.eigh((H + H.T) / 2)  # ascending
             ritz, Z = ritz.flip(0), Z.flip(1)
             captured = np.concatenate([[0.0], np.cumsum(ritz.to(torch.float64).cpu().numpy())])
@@ -585,7 +576,7 @@ def _leading(w: torch.Tensor, rank: int, values: Spectrum, guard: list[int], ove
                 break
             X, GX = Q @ Z, GQ @ Z  # next round starts from the Ritz vectors, whose G-image is already known
     if vecs is None:  # fallback (or a block too large to pay off): the full symmetric eigendecomposition
-        with _lapack_threads(k):
+        with lapack_threads(k):
             _, evecs = torch.linalg.eigh(gram)  # ascending
         vecs = evecs.flip(1)[:, :rank]  # (k, r)
     S = values.S.to(w.dtype)

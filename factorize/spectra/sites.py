@@ -17,14 +17,15 @@ from factorize.model.sites import (
     get_module,
     matrix_of,
 )
+from factorize.spectra.cache import as_cache
 from factorize.spectra.decompose import (
     Spectrum,
-    _lapack_threads,
     decompose,
+    lapack_threads,
     leading,
-    torch_threads,
     values_only,
 )
+from factorize.threads import torch_threads
 
 T = TypeVar("T")
 
@@ -47,8 +48,6 @@ def decompose_sites(
     equal a serial run's. ``cache`` (a directory or :class:`factorize.spectra.cache.SpectrumCache`) reads and
     fills an on-disk cache of spectra. Other ``options`` go to :func:`decompose` (``oversample``, ...).
     """
-    from factorize.spectra.cache import as_cache
-
     run, options = resolve_execution(execution, options)
     sites = list(sites)
     store = as_cache(cache)
@@ -70,7 +69,7 @@ def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 
     (LAPACK and BLAS release the GIL), each on one torch thread.
 
     A serial run also decomposes every layer up to order 2048 on one thread (LAPACK already ran on one
-    thread there, see :func:`factorize.spectra.decompose._lapack_threads`; the products follow), so it gives a
+    thread there, see :func:`factorize.spectra.decompose.lapack_threads`; the products follow), so it gives a
     parallel run's bits. Wider layers keep all threads in a serial run, where the last bits of a product may then
     differ from a parallel run's.
     """
@@ -79,7 +78,7 @@ def per_site(one: Callable[[Site], T], sites: Sequence[Site], *, workers: int = 
     try:
         if workers <= 1 or len(sites) <= 1:
             for site in sites:
-                with _lapack_threads(min(site.shape)):
+                with lapack_threads(min(site.shape)):
                     out[site.name] = one(site)
                 bar.update()
         else:
@@ -137,8 +136,6 @@ def values_sites(
     each computed Gram matrix on its spectrum for :func:`leading_sites` (which drops it); at most the size of the
     weights in all. ``execution`` (or its fields as keywords): precision, workers, progress.
     """
-    from factorize.spectra.cache import as_cache
-
     run = _execution(execution, keywords)
     store = as_cache(cache)
 
@@ -167,8 +164,6 @@ def leading_sites(
     matrices ``values_sites(keep_gram=True)`` left on them are dropped once used. ``execution`` (or its fields as
     keywords): seed, precision, workers, progress.
     """
-    from factorize.spectra.cache import as_cache
-
     run = _execution(execution, keywords)
     store = as_cache(cache)
     guard = {name: sorted({int(r) for r in rs}) for name, rs in (guard_ranks or {}).items()}

@@ -1,4 +1,4 @@
-"""Tests for factorize/io.py: save -> load round trips, atomic writes, and every bad input.
+"""Tests for factorize/checkpoints/files.py: save -> load round trips, atomic writes, and every bad input.
 
 Outside references: the safetensors format spec (8-byte little-endian header length, then a JSON header, then
 the data; github.com/huggingface/safetensors, "Format") and the reference reader ``safetensors.safe_open`` /

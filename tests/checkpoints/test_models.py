@@ -125,7 +125,7 @@ def test_bare_safetensors_is_weights_only_mode(tmp_path) -> None:
     _write_checkpoint(tmp_path / "w.safetensors", {"a.weight": torch.randn(4, 5), "a.bias": torch.randn(4)})
     loaded = load_model(str(tmp_path / "w.safetensors"))
     assert loaded.weights_only and loaded.kind == "weights" and loaded.path == tmp_path / "w.safetensors"
-    assert loaded.tensors is None  # streamed by factorize.checkpoints.stream, never loaded whole
+    assert loaded.tensors is None  # streamed by factorize.outofcore.weights_only, never loaded whole
 
 
 def test_pickle_is_refused_by_default_and_loads_tensors_only_when_allowed(tmp_path, user_module) -> None:

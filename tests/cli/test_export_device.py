@@ -130,12 +130,11 @@ def test_dtype_stores_the_checkpoint_in_that_dtype_and_it_reloads(work, dtype):
 
 def test_device_cpu_and_threads_give_the_same_checkpoint(work):
     before = torch.get_num_threads()
-    try:
-        a = _shrink()["plan"]
-        b = _shrink("--device", "cpu", "--threads", "1", "--force")["plan"]
-        assert torch.get_num_threads() == 1
-    finally:
-        torch.set_num_threads(before)
+    a = _shrink()["plan"]
+    done = _shrink("--device", "cpu", "--threads", "1", "--force")
+    b = done["plan"]
+    assert done["report"]["versions"]["threads"] == 1  # the run used --threads ...
+    assert torch.get_num_threads() == before  # ... and the caller's count is restored afterwards
     assert {k: v.get("rank") for k, v in a["sites"].items()} == {k: v.get("rank") for k, v in b["sites"].items()}
 
 

@@ -15,7 +15,7 @@ from safetensors import safe_open
 from safetensors.torch import save_file
 
 import factorize
-from factorize.checkpoints import stream as checkpoint
+from factorize.outofcore import weights_only as checkpoint
 from factorize.errors import FactorizeError
 from factorize.model.sites import walk
 from factorize.spectra import cache as cache_mod
@@ -161,11 +161,11 @@ def test_checkpoint_second_run_skips_decomposition(tmp_path, mlp, monkeypatch):
     save_file(mlp.state_dict(), str(src))
     first = checkpoint.shrink_checkpoint(src, tmp_path / "a.safetensors", budget=0.5, cache_dir=tmp_path / "c")
     # budget, values first: pass 1 the values of all three layers, pass 2 the kept vectors of the factored ones
-    factored = sum(1 for e in first["plan"]["sites"].values() if e["action"] == "factor")
+    factored = sum(1 for e in first.plan["sites"].values() if e["action"] == "factor")
     assert factored >= 1
     assert calls == ["values_only"] * 3 + ["leading"] * factored
     second = checkpoint.shrink_checkpoint(src, tmp_path / "b.safetensors", budget=0.5, cache_dir=tmp_path / "c")
     # pass 1 reads the three value entries; pass 2 reuses the factor results stored beside them (resume)
-    assert len(calls) == 3 + factored and second["cache"]["hits"] == 3 and second["cache"]["misses"] == 0
-    assert first["cache"]["results_reused"] == 0 and second["cache"]["results_reused"] == 3
+    assert len(calls) == 3 + factored and second.cache["hits"] == 3 and second.cache["misses"] == 0
+    assert first.cache["results_reused"] == 0 and second.cache["results_reused"] == 3
     assert (tmp_path / "a.safetensors").read_bytes() == (tmp_path / "b.safetensors").read_bytes()

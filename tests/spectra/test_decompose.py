@@ -309,3 +309,15 @@ def test_sign_convention_matches_scikit_learns_svd_flip_even_with_ties():
         zero = (U == 0).all(dim=0).numpy()  # an all-zero column has no sign to fix; conventions may differ
         np.testing.assert_array_equal(got_u.numpy()[:, ~zero], ref_u[:, ~zero])
         np.testing.assert_array_equal(got_v.numpy()[~zero], ref_v[~zero])
+
+
+def test_without_vectors_keeps_every_singular_value_and_drops_the_rest():
+    # numpy's SVD as the reference for the values kept
+    g = torch.Generator().manual_seed(3)
+    W = torch.randn(9, 6, generator=g, dtype=torch.float64)
+    spec = decompose(W, method="exact")
+    bare = spec.without_vectors()
+    assert bare.U.shape == (9, 0) and bare.Vh.shape == (0, 6) and bare.gram is None
+    np.testing.assert_allclose(bare.S.numpy(), np.linalg.svd(W.numpy(), compute_uv=False), rtol=1e-12)
+    assert bare.total_energy == spec.total_energy and bare.shape == spec.shape
+    assert bare.S.data_ptr() != spec.S.data_ptr()  # a copy: the full spectrum can be freed

@@ -15,15 +15,10 @@ import pytest
 from safetensors import safe_open
 
 from benchmarks.llama_checkpoint import write_llama_checkpoint
-from factorize.checkpoints import stream
-from factorize.checkpoints.stream import (
-    _ExitOnFirstAttempt,
-    _Task,
-    _values_task,
-    shrink_checkpoint,
-)
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
+from factorize.outofcore.tasks import ExitOnFirstAttempt, MatrixTask, values_task
+from factorize.outofcore.weights_only import shrink_checkpoint
 
 pytest.importorskip("distributed")
 
@@ -63,9 +58,9 @@ def test_budget_shrink_on_two_workers_equals_one_process_byte_for_byte(llama, re
     done = shrink_checkpoint(llama, out, budget=0.5, exclude=["*embed_tokens*"], cluster=dask_engine)
     assert _files(out) == reference  # every shard and the index, byte for byte
     _check_readable(out)
-    assert done["engine"]["engine"] == "dask (local cluster)" and done["engine"]["workers"] == 2
-    assert done["redone"] == [] and done["passes"] == 2
-    assert any(row["action"] == "factor" for row in done["tensors"].values())
+    assert done.engine["engine"] == "dask (local cluster)" and done.engine["workers"] == 2
+    assert done.redone == [] and done.passes == 2
+    assert any(row["action"] == "factor" for row in done.tensors.values())
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]  # the work directory is gone
 
 
@@ -80,10 +75,10 @@ def test_a_worker_dying_mid_run_is_redone_and_named(llama, reference, dask_engin
     # reschedules the task, whose attempt marker then says it is the second attempt
     out = tmp_path / "out"
     done = shrink_checkpoint(llama, out, budget=0.5, exclude=["*embed_tokens*"], cluster=dask_engine,
-                             _fault=_ExitOnFirstAttempt(VICTIM))
-    assert done["redone"] == [VICTIM]
+                             _fault=ExitOnFirstAttempt(VICTIM))
+    assert done.redone == [VICTIM]
     assert _files(out) == reference
-    assert any(VICTIM in note for note in stream.stream_report(done, "ckpt").notes)
+    assert any(VICTIM in note for note in done.report("ckpt").notes)
 
 
 def test_cluster_giving_up_names_the_matrix_and_a_rerun_resumes_from_the_cache(llama, reference, dask_engine,
@@ -95,7 +90,7 @@ def test_cluster_giving_up_names_the_matrix_and_a_rerun_resumes_from_the_cache(l
     try:
         with pytest.raises(FactorizeError, match="never finished") as e:
             shrink_checkpoint(llama, out, budget=0.5, exclude=["*embed_tokens*"], cluster=dask_engine,
-                              cache_dir=cache, _fault=_ExitOnFirstAttempt(VICTIM))
+                              cache_dir=cache, _fault=ExitOnFirstAttempt(VICTIM))
     finally:
         scheduler.allowed_failures = allowed
     # the victim, and any task queued on the same worker when it died (Dask gives up on those too)
@@ -104,21 +99,21 @@ def test_cluster_giving_up_names_the_matrix_and_a_rerun_resumes_from_the_cache(l
     assert not out.exists()  # nothing written
     done = shrink_checkpoint(llama, out, budget=0.5, exclude=["*embed_tokens*"], cluster=dask_engine,
                              cache_dir=cache)
-    assert VICTIM in done["redone"] and set(done["redone"]) <= set(unfinished)  # its attempt marker survived
+    assert VICTIM in done.redone and set(done.redone) <= set(unfinished)  # its attempt marker survived
     # every matrix finished before the failure is reused; one queued with the victim may also have stored its
     # result before Dask gave up on it (then it is reused too); the victim itself is recomputed
-    total = len(done["tensors"])
-    assert total - len(unfinished) <= done["cache"]["results_reused"] <= total - 1
+    total = len(done.tensors)
+    assert total - len(unfinished) <= done.cache["results_reused"] <= total - 1
     assert _files(out) == reference
 
 
 def test_a_shard_the_worker_cannot_read_is_named(dask_engine, tmp_path):
     missing = tmp_path / "elsewhere" / "model-00001-of-00002.safetensors"
-    task = _Task(kind="values", shard=str(missing), name="w.weight",
-                 site=Site(name="w", kind="linear", shape=(4, 4), params=16, has_bias=False, dtype="float32"),
-                 method="exact", k=None, seed=0, precision=None, work_dir=str(tmp_path), cache_dir=None)
+    task = MatrixTask(kind="values", shard=str(missing), name="w.weight",
+                      site=Site(name="w", kind="linear", shape=(4, 4), params=16, has_bias=False, dtype="float32"),
+                      method="exact", k=None, seed=0, precision=None, work_dir=str(tmp_path), cache_dir=None)
     with pytest.raises(FactorizeError, match="cannot read this shard") as e:
-        dask_engine.map(_values_task, [task])
+        dask_engine.map(values_task, [task])
     assert str(missing) in str(e.value) and "every worker can read" in e.value.fix
 
 

@@ -21,8 +21,9 @@ from torch import nn
 
 import factorize
 from factorize.checkpoints import files as io
-from factorize.checkpoints import stream as checkpoint
 from factorize.errors import FactorizeError
+from factorize.outofcore import weights_only as checkpoint
+from factorize.outofcore import writer
 from tests.conftest import MLP
 
 
@@ -76,12 +77,12 @@ def test_same_policy_same_plan_same_outputs_as_compress(tmp_path, policy):
     out = tmp_path / "out.safetensors"
     rep = checkpoint.shrink_checkpoint(_write(tmp_path, model), out, **policy)
     ref = factorize.compress(model, **policy)
-    assert {k: v["rank"] for k, v in rep["plan"]["sites"].items()} == {k: v["rank"] for k, v in ref.plan["sites"].items()}
+    assert {k: v["rank"] for k, v in rep.plan["sites"].items()} == {k: v["rank"] for k, v in ref.plan["sites"].items()}
     loaded = io.load(MLP(), out)
     x = torch.randn(6, 24)
     with torch.no_grad():
         torch.testing.assert_close(loaded(x), ref.model(x), rtol=1e-6, atol=1e-6)
-    assert rep["passes"] == (2 if "budget" in policy else 1)
+    assert rep.passes == (2 if "budget" in policy else 1)
 
 
 def test_randomized_method_matches_compress(tmp_path):
@@ -110,12 +111,12 @@ def test_keys_and_errors_against_numpy_svd(tmp_path):
         W = state[f"{name}.weight"].double().numpy()
         s = np.linalg.svd(W, compute_uv=False)
         expected = np.sqrt((s[6:] ** 2).sum() / (s**2).sum())  # Eckart-Young tail, relative
-        row = rep["tensors"][f"{name}.weight"]
+        row = rep.tensors[f"{name}.weight"]
         assert row["relative_error"] == pytest.approx(expected, rel=1e-4)
         assert row["predicted_error"] == pytest.approx(expected, rel=1e-4)
     fresh = io.load(Block(), out)
     assert torch.equal(fresh.steps, state["steps"])
-    assert rep["params_after"] == sum(t.numel() for t in tensors.values())
+    assert rep.params_after == sum(t.numel() for t in tensors.values())
 
 
 def test_include_exclude_and_passed_over(tmp_path):
@@ -126,12 +127,12 @@ def test_include_exclude_and_passed_over(tmp_path):
     save_file(state, str(src))
     out = tmp_path / "out.safetensors"
     rep = checkpoint.shrink_checkpoint(src, out, rank=3, exclude=["head"])
-    assert rep["passed_over"]["head.weight"] == "excluded by pattern"
-    assert "no layer to rewrite" in rep["passed_over"]["extra_matrix"]
+    assert rep.passed_over["head.weight"] == "excluded by pattern"
+    assert "no layer to rewrite" in rep.passed_over["extra_matrix"]
     keys = set(load_file(str(out)))
     assert {"head.weight", "head.bias", "extra_matrix", "fc1.first.weight"} <= keys
     rep2 = checkpoint.shrink_checkpoint(src, tmp_path / "o2.safetensors", rank=3, include="fc2.weight")
-    assert list(rep2["plan"]["sites"]) == ["fc2"]
+    assert list(rep2.plan["sites"]) == ["fc2"]
     with pytest.raises(FactorizeError, match="no 2-D floating tensor"):
         checkpoint.shrink_checkpoint(src, tmp_path / "o3.safetensors", rank=3, include="nothing.*")
 
@@ -189,7 +190,7 @@ def test_sharded_round_trip_with_bias_in_another_shard(tmp_path):
     x = torch.randn(4, 24)
     with torch.no_grad():
         torch.testing.assert_close(io.load(MLP(), out)(x), ref.model(x), rtol=1e-6, atol=1e-6)
-    assert io.read_plan(out)["sites"] == json.loads(json.dumps(rep["plan"]["sites"]))
+    assert io.read_plan(out)["sites"] == json.loads(json.dumps(rep.plan["sites"]))
 
 
 def test_missing_shard_is_named(tmp_path):
@@ -239,7 +240,7 @@ def test_failure_mid_way_leaves_nothing(tmp_path, monkeypatch, sharded):
     else:
         src, out = _write(tmp_path, model), tmp_path / "out.safetensors"
     calls = []
-    real = checkpoint._Job._write_layer
+    real = writer.CheckpointWriter._write_layer
 
     def dies_on_third(self, c, w):
         calls.append(c.module)
@@ -247,7 +248,7 @@ def test_failure_mid_way_leaves_nothing(tmp_path, monkeypatch, sharded):
             raise RuntimeError("simulated crash")
         return real(self, c, w)
 
-    monkeypatch.setattr(checkpoint._Job, "_write_layer", dies_on_third)
+    monkeypatch.setattr(writer.CheckpointWriter, "_write_layer", dies_on_third)
     before = sorted(p.name for p in tmp_path.rglob("*"))
     with pytest.raises(RuntimeError, match="simulated"):
         checkpoint.shrink_checkpoint(src, out, rank=3)
@@ -264,8 +265,8 @@ def test_free_disk_checked_before_writing(tmp_path, monkeypatch):
 
 def test_header_larger_than_reserve_falls_back_to_a_copy(tmp_path, monkeypatch):
     model = _model()
-    monkeypatch.setattr(checkpoint, "_plan_bound", lambda sites, policy: 0)
-    monkeypatch.setattr(checkpoint, "_entry_bound", lambda name, ndim: 1)
+    monkeypatch.setattr(checkpoint, "plan_bound", lambda sites, policy: 0)
+    monkeypatch.setattr(writer, "entry_bound", lambda name, ndim: 1)
     out = tmp_path / "out.safetensors"
     checkpoint.shrink_checkpoint(_write(tmp_path, model), out, rank=4, metadata={"note": "x" * 5000})
     with safe_open(str(out), framework="pt") as f:
@@ -289,6 +290,6 @@ def test_shards_of_one_name_in_two_folders_keep_apart(tmp_path):
     out = tmp_path / "out"
     result = checkpoint.shrink_checkpoint(index, out, rank=4)
     names = sorted(p.name for p in out.iterdir())
-    assert len(result["files"]) == 3 and len(set(names)) == 3
+    assert len(result.files) == 3 and len(set(names)) == 3
     written = json.loads((out / "model.safetensors.index.json").read_text())["weight_map"]
     assert {written["x.first.weight"], written["y.first.weight"]} == {n for n in names if n.endswith(".safetensors")}

@@ -1,13 +1,19 @@
-"""TODO docstring."""
+"""safetensors files: the header, parsed and checked, and a deterministic writer.
+
+The layout (the open safetensors format): an 8-byte little-endian header length, a UTF-8 JSON header mapping each
+tensor name to its dtype, shape and byte offsets (plus optional string ``__metadata__``), then the data.
+:func:`read_header` checks every entry before any tensor is read, so a truncated or corrupt file is named with
+what is wrong instead of failing deep inside a reader; :func:`write_safetensors` and :func:`safetensors_header`
+write the same bytes for the same tensors; :func:`read_tensor` reads one tensor through a memory map that is
+released when it returns.
+"""
 
 from __future__ import annotations
 
 import json
 import os
-import secrets
-import shutil
 import struct
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -31,9 +37,6 @@ DTYPE_NAMES: dict[torch.dtype, str] = {v: k for k, v in DTYPES.items()}
 
 
 MAX_HEADER_BYTES = 100_000_000  # the reference reader's own limit on the JSON header
-
-
-DISK_MARGIN_BYTES = 16 * 2**20  # keep this much free beyond the bytes we write
 
 
 @dataclass(frozen=True)
@@ -75,7 +78,7 @@ def read_header(path: str | os.PathLike) -> Header:
     naming the file and what is wrong (missing, not safetensors, truncated, header past the end of the file).
     """
     p = Path(path)
-    _check_readable_file(p)
+    check_readable_file(p)
     size = p.stat().st_size
     with open(p, "rb") as f:
         head = f.read(8)
@@ -121,7 +124,7 @@ def _format_hint(head: bytes) -> str:
     return ""
 
 
-def _check_readable_file(p: Path) -> None:
+def check_readable_file(p: Path) -> None:
     if not p.exists():
         raise FactorizeError(f"{p}: no such file", fix="check the path")
     if p.is_dir():
@@ -144,11 +147,11 @@ def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
         try:
             dtype, shape, (start, end) = e["dtype"], e["shape"], e["data_offsets"]
         except (KeyError, TypeError, ValueError):
-            problems.append(f"{_printable(name)}: entry is not {{dtype, shape, data_offsets}}")
+            problems.append(f"{printable(name)}: entry is not {{dtype, shape, data_offsets}}")
             continue
         bad = _entry_problem(dtype, shape, start, end)
         if bad:
-            problems.append(f"{_printable(name)}: {bad}")
+            problems.append(f"{printable(name)}: {bad}")
             continue
         info = TensorInfo(name, dtype, tuple(shape), start, end)
         td = info.torch_dtype
@@ -157,7 +160,8 @@ def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
             for d in shape:
                 numel *= d
             if end - start != numel * torch.empty((), dtype=td).element_size() or start < 0:
-                problems.append(f"{name}: {dtype} {list(shape)} needs {numel} elements, offsets say {end - start} bytes")
+                problems.append(f"{name}: {dtype} {list(shape)} needs {numel} elements, offsets say "
+                                f"{end - start} bytes")
         if end > data_len:
             raise FactorizeError(
                 f"{p}: the header claims tensor data up to byte {data_start + end} but the file has {size} bytes: "
@@ -185,11 +189,11 @@ def _is_int(v) -> bool:
 def _entry_problem(dtype, shape, start, end) -> str:
     """What is wrong with one header entry's fields, or '' (types, ranges, and a known dtype)."""
     if not isinstance(dtype, str) or dtype not in DTYPES:
-        return (f"dtype {_printable(str(dtype))} is not supported (supported: {', '.join(sorted(DTYPES))})")
+        return (f"dtype {printable(str(dtype))} is not supported (supported: {', '.join(sorted(DTYPES))})")
     if not isinstance(shape, list) or not all(_is_int(d) and 0 <= d <= MAX_DIM for d in shape):
-        return f"shape {_printable(str(shape))[:80]} is not a list of integers in 0..2^40"
+        return f"shape {printable(str(shape))[:80]} is not a list of integers in 0..2^40"
     if not (_is_int(start) and _is_int(end) and 0 <= start <= end):
-        offsets = f"[{_printable(str(start))[:40]}, {_printable(str(end))[:40]}]"
+        offsets = f"[{printable(str(start))[:40]}, {printable(str(end))[:40]}]"
         return f"data_offsets {offsets} are not integers with 0 <= start <= end"
     numel = 1
     for d in shape:
@@ -199,196 +203,15 @@ def _entry_problem(dtype, shape, start, end) -> str:
     return ""
 
 
-def _printable(text: str) -> str:
+def printable(text: str) -> str:
     """``text`` with control characters (terminal escape sequences among them) replaced by '?'."""
     return "".join(c if c.isprintable() else "?" for c in text)
 
 
-def check_output_path(path: str | os.PathLike, *, force: bool, directory: bool = False) -> Path:
-    """Refuse an existing output unless ``force``; check that its parent directory exists and is writable.
-    ``directory=True``: the output is a directory of shards (an existing one must be a directory)."""
-    p = Path(path)
-    if p.exists() and not force:
-        raise FactorizeError(f"{p}: the output already exists", fix="choose another path, or pass force=True (--force)")
-    if p.exists() and p.is_dir() != directory:
-        raise FactorizeError(f"{p}: exists and is {'not ' if directory else ''}a directory",
-                             fix="choose another output path")
-    d = p.parent if str(p.parent) else Path(".")
-    if not d.is_dir():
-        raise FactorizeError(f"{p}: the directory {d} does not exist", fix=f"create it first (mkdir -p {d})")
-    if not os.access(d, os.W_OK | os.X_OK):
-        raise FactorizeError(f"{p}: cannot write in {d} (permission denied)", fix="choose a writable directory")
-    return p
-
-
-def check_free_space(directory: str | os.PathLike, nbytes: int, what: str) -> None:
-    """Fail before writing when ``directory``'s filesystem has less than ``nbytes`` (+ a margin) free."""
-    free = shutil.disk_usage(directory).free
-    if free < nbytes + DISK_MARGIN_BYTES:
-        raise FactorizeError(
-            f"not enough free disk space in {directory} for {what}: needs {human_bytes(nbytes)}, {human_bytes(free)} free",
-            fix="free some space or write the output to another disk",
-        )
-
-
-def human_bytes(n: float) -> str:
-    """A byte count for people: 1.5 GB."""
-    for unit in ("B", "KB", "MB", "GB", "TB"):
-        if abs(n) < 1024 or unit == "TB":
-            return f"{n:.1f} {unit}" if unit != "B" else f"{int(n)} B"
-        n /= 1024
-    return f"{n} B"
-
-
-TEMP_SUFFIX = ".factorize-tmp"  # temporary files are named .<final name>.<pid>-<random>.factorize-tmp
-
-
-def create_temp_dir(final: Path, suffix: str) -> Path:
-    """A new empty directory beside ``final``, named ``.<final name>.<pid>-<random><suffix>`` (hidden, unique, so
-    concurrent runs never share one); a FactorizeError naming the folder when it cannot be created."""
-    parent = final.parent if str(final.parent) else Path(".")
-    for _ in range(100):
-        tmp = parent / f".{final.name}.{os.getpid()}-{secrets.token_hex(6)}{suffix}"
-        try:
-            tmp.mkdir()
-        except FileExistsError:
-            continue
-        except OSError as e:
-            raise FactorizeError(f"{final}: cannot create a directory in {parent} ({e.strerror or e})",
-                                 fix="choose a writable directory") from None
-        return tmp
-    raise FactorizeError(f"{final}: could not create a temporary directory in {parent}")
-
-
-def create_temp(final: Path) -> tuple[Path, int]:
-    """A new temporary file beside ``final`` (same directory, so the final rename is atomic): (path, fd).
-
-    The name carries this process's id, so a later run can tell a leftover of a killed writer (whose process is
-    gone) from a live one, and removes such leftovers first (:func:`remove_stale_temps`). Created with mode
-    0o666 so the umask applies as for any new file."""
-    remove_stale_temps(final.parent if str(final.parent) else Path("."), final.name)
-    for _ in range(100):
-        tmp = final.with_name(f".{final.name}.{os.getpid()}-{secrets.token_hex(6)}{TEMP_SUFFIX}")
-        try:
-            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
-        except FileExistsError:
-            continue
-        except OSError as e:
-            raise FactorizeError(f"{final}: cannot create files in {final.parent} ({e.strerror or e})",
-                                 fix="choose a writable directory") from None
-        return tmp, fd
-    raise FactorizeError(f"{final}: could not create a temporary file in {final.parent}")
-
-
-def remove_stale_temps(directory: str | os.PathLike, name: str | None = None) -> list[Path]:
-    """Remove temporary files that a killed factorize writer left in ``directory`` (for outputs called ``name``,
-    or all); files of writers still running are kept. Returns the files removed."""
-    removed = []
-    pattern = f".{name}.*{TEMP_SUFFIX}" if name else f".*{TEMP_SUFFIX}"
-    for p in Path(directory).glob(pattern):
-        pid = p.name[: -len(TEMP_SUFFIX)].rpartition(".")[2].partition("-")[0]
-        if pid.isdigit() and p.is_file() and not _alive(int(pid)):
-            remove_quietly(p)
-            removed.append(p)
-    return removed
-
-
-def _alive(pid: int) -> bool:
-    if pid == os.getpid():
-        return True
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except (PermissionError, OverflowError, OSError):
-        return True  # exists but not ours, or cannot tell: keep its files
-    return True
-
-
-def publish(tmp: Path, final: Path, *, force: bool) -> None:
-    """Move a finished temporary file to ``final``. Without ``force`` the name is claimed exclusively (a hard
-    link fails if ``final`` exists), so of two writers racing for one path exactly one succeeds."""
-    if force:
-        os.replace(tmp, final)
-        return
-    try:
-        os.link(tmp, final)
-    except FileExistsError:
-        raise FactorizeError(f"{final}: the output appeared while writing (another writer got there first)",
-                             fix="choose another path, or pass force=True (--force) to replace it") from None
-    except OSError:  # a filesystem without hard links: claim the name with an exclusive create, then replace it
-        try:
-            os.close(os.open(final, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666))
-        except FileExistsError:
-            raise FactorizeError(f"{final}: the output appeared while writing (another writer got there first)",
-                                 fix="choose another path, or pass force=True (--force) to replace it") from None
-        os.replace(tmp, final)
-        return
-    remove_quietly(tmp)
-
-
-def remove_quietly(p: Path) -> None:
-    try:
-        p.unlink()
-    except FileNotFoundError:
-        pass
-
-
-def write_atomic(final: Path, write: Callable[[Path], None], *, force: bool) -> None:
-    """Run ``write(tmp)`` on a temporary file beside ``final``, fsync it, then move it into place
-    (:func:`publish`). On any failure the temporary file is removed and ``final`` is untouched."""
-    tmp, fd = create_temp(final)
-    os.close(fd)
-    try:
-        write(tmp)
-        os.chmod(tmp, 0o666 & ~_umask())  # a writer may create its file private (0600); use the usual mode
-        _fsync(tmp)
-        publish(tmp, final, force=force)
-    except OSError as e:
-        remove_quietly(tmp)
-        raise FactorizeError(f"{final}: writing failed ({e.strerror or e}); nothing was written",
-                             fix="check free space and permissions, then retry") from e
-    except BaseException:
-        remove_quietly(tmp)
-        raise
-
-
-def proc_field(path: str, key: str) -> str | None:
-    """The first value of ``key:`` in a Linux /proc file (e.g. ``/proc/meminfo``), or None where there is none."""
-    try:
-        with open(path, encoding="ascii") as f:
-            for line in f:
-                if line.startswith(key + ":"):
-                    return line.split()[1]
-    except OSError:
-        pass
-    return None
-
-
-def _umask() -> int:
-    """The process umask, read without changing it where /proc allows (os.umask can only set it)."""
-    value = proc_field("/proc/self/status", "Umask")
-    if value is not None:
-        return int(value, 8)
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
-def _fsync(p: Path) -> None:
-    fd = os.open(p, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
-
 def check_safetensors(path: str | os.PathLike) -> dict:
-    """Validate a safetensors file's layout before loading it (:func:`factorize.storage.read_header`: a file cut
+    """Validate a safetensors file's layout before loading it (:func:`read_header`: a file cut
     short, a header claiming more data than the file holds, a corrupt header) and return its metadata."""
     return read_header(path).metadata
-
 
 
 def read_safetensors(path: str | os.PathLike) -> dict[str, torch.Tensor]:
@@ -436,3 +259,10 @@ def write_safetensors(path: str | os.PathLike, tensors: Mapping[str, torch.Tenso
             if t.numel():
                 f.write(memoryview(t.reshape(-1).view(torch.uint8).numpy()))
 
+
+def read_tensor(path: str | os.PathLike, name: str) -> torch.Tensor:
+    """One tensor of a safetensors file, on the CPU; the memory map is released when this returns."""
+    from safetensors import safe_open
+
+    with safe_open(str(path), framework="pt", device="cpu") as f:
+        return f.get_tensor(name)

@@ -15,10 +15,16 @@ import torch
 from safetensors import safe_open
 
 from factorize.calibrated.stats import collect_stats
-from factorize.checkpoints import blockwise
-from factorize.checkpoints.blockwise import shrink_blockwise
 from factorize.cluster import Engine, LocalEngine
 from factorize.errors import FactorizeError
+from factorize.outofcore import blockwise
+from factorize.outofcore.architecture import check_source
+from factorize.outofcore.block_tasks import read_stats
+from factorize.outofcore.blockwise import shrink_blockwise
+from factorize.outofcore.candidates import select
+from factorize.outofcore.options import BlockwiseOptions
+from factorize.outofcore.tokens import token_batches
+from factorize.plan.policy import resolve_policy
 
 transformers = pytest.importorskip("transformers")
 
@@ -92,16 +98,17 @@ def test_statistics_equal_hooks_on_the_whole_transformers_model(ckpt, tmp_path):
     batches = _calibration()
     names = [n for n, m in model.named_modules() if isinstance(m, torch.nn.Linear) and ".layers." in n]
     ref = collect_stats(model, names, batches)
-    arch = blockwise._check_source(Path(ckpt))
-    policy = blockwise.resolve_policy(None, {"budget": BUDGET})
-    chosen = [c for c in blockwise.select(arch.ckpt, include=names)[0] if c.module in names]
+    arch = check_source(Path(ckpt))
+    policy = resolve_policy(None, {"budget": BUDGET})
+    chosen = [c for c in select(arch.ckpt, include=names)[0] if c.module in names]
     work = tmp_path / "work"
     work.mkdir()
-    _, samples, groups = blockwise._statistics(
-        arch, blockwise._token_batches(batches, 256), names, [c.site for c in chosen], LocalEngine(), work, 3,
-        torch.get_num_threads(), 40, "whiten", "gram", None, policy, None, False)
+    options = BlockwiseOptions(slices=3, threads=torch.get_num_threads(), tokens_per_pass=40)
+    run = blockwise._Run(arch, token_batches(batches, 256), names, chosen, LocalEngine(), work, policy, "whiten",
+                         "gram", options)
+    _, samples, groups = blockwise._statistics(run)
     for name in names:
-        st = blockwise._read_stats(groups[name], name)
+        st = read_stats(groups[name], name)
         C_ref = ref[name].second_moment
         assert st.count == ref[name].count == 7 * 24 + 16 * 5 - 4 - 7  # padded positions left out
         assert samples[name] == st.count
@@ -133,12 +140,12 @@ def test_output_loads_into_transformers_llama_and_factors_are_the_whitened_trunc
     # each factored layer: B A = U_r U_r^T W with U_r the top left singular vectors of W L, L L^T = C + lam I
     # (reduced-rank regression, Izenman 1975; Eckart-Young), computed here with numpy's SVD from hook statistics
     model = _reference(ckpt)
-    factored = [n for n, e in done["plan"]["sites"].items() if e["action"] == "factor"]
+    factored = [n for n, e in done.plan["sites"].items() if e["action"] == "factor"]
     assert factored
     stats = collect_stats(model, factored, _calibration())
     shards = _Shards(out)
     for name in factored:
-        r = done["plan"]["sites"][name]["rank"]
+        r = done.plan["sites"][name]["rank"]
         W = model.get_submodule(name).weight.detach().double().numpy()
         C = stats[name].second_moment.numpy()
         lam = 1e-6 * np.mean(np.diag(C))  # the default relative ridge of factorize.calibrated.aware
@@ -189,7 +196,7 @@ def test_byte_identical_on_a_local_cluster_of_two_workers(ckpt, shrunk, tmp_path
     out, _ = shrunk
     other = tmp_path / "cluster"
     done = shrink_blockwise(ckpt, other, budget=BUDGET, calibration=_calibration(), threads=1, cluster=dask_engine)
-    assert done["engine"]["engine"].startswith("dask") and done["engine"]["workers"] == 2
+    assert done.engine["engine"].startswith("dask") and done.engine["workers"] == 2
     names = sorted(p.name for p in out.iterdir())
     assert names == sorted(p.name for p in other.iterdir())
     for n in names:
@@ -198,7 +205,7 @@ def test_byte_identical_on_a_local_cluster_of_two_workers(ckpt, shrunk, tmp_path
 
 def test_kept_fraction_meets_the_budget(shrunk):
     out, done = shrunk
-    plan = done["plan"]
+    plan = done.plan
     dense = sum(e["params"] for e in plan["sites"].values())
     # count what the written shards really hold for the block linears
     shards = _Shards(out)
@@ -207,14 +214,14 @@ def test_kept_fraction_meets_the_budget(shrunk):
         keys = [k for k in shards.map if k.startswith(name + ".")]
         stored += sum(shards.get(k).numel() for k in keys)
     assert stored <= BUDGET * dense
-    assert stored == pytest.approx(done["kept_fraction"] * dense)
-    assert done["kept_fraction"] > 0.4  # the allocation uses the budget rather than leaving most of it
+    assert stored == pytest.approx(done.kept_fraction * dense)
+    assert done.kept_fraction > 0.4  # the allocation uses the budget rather than leaving most of it
     assert set(plan["sites"]) == {f"model.layers.{i}.{m}" for i in range(2) for m in (
         "self_attn.q_proj", "self_attn.k_proj", "self_attn.v_proj", "self_attn.o_proj", "mlp.gate_proj",
         "mlp.up_proj", "mlp.down_proj")}
-    assert done["peak_rss_bytes"] > 0 and done["bound_bytes"] == 2 * done["block_bytes"] + \
-        done["activation_bytes"] + 2**30
-    assert done["activation_bytes"] == (7 * 24 + 5 * 16) * 64 * 4
+    assert done.peak_rss_bytes > 0 and done.bound_bytes == 2 * done.block_bytes + \
+        done.activation_bytes + 2**30
+    assert done.activation_bytes == (7 * 24 + 5 * 16) * 64 * 4
 
 
 def _left_behind(parent: Path) -> list[str]:

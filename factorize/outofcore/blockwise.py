@@ -1,0 +1,399 @@
+"""Block by block: the calibrated (activation-aware) shrink of a decoder-only transformers checkpoint that does not
+fit in memory.
+
+The in-memory calibrated path (:func:`factorize.compress` with ``calibration=``) holds the whole model and every
+layer's input second moment at once. Here only one block (one entry of the model's ``layers`` ModuleList) is
+materialised at a time, from the memory-mapped safetensors shards, one tensor at a time:
+
+1. **Embed.** The calibration token ids go through ``embed_tokens`` (the only tensor read for this step); the
+   hidden states are written to a work directory, cut into a FIXED number of slices (``slices``, independent of
+   how many workers run them).
+2. **Statistics, block by block.** For block i, one task per slice loads the block's weights, runs its slice's
+   hidden states through it (rotary position embeddings and the causal mask built by the model's own helpers,
+   exactly as the model's forward builds them), accumulates every selected linear's input second moment
+   C = X^T X in float64 (q/k/v share one input and gate/up another: each distinct input is accumulated once),
+   writes the block's outputs for block i + 1 and its partial moments to the work directory. The client sums the
+   partial moments in slice order, computes each linear's whitened spectrum (singular values of W L with
+   L L^T = C + lambda I, :func:`factorize.calibrated.aware.decompose_aware`), keeps the values only, stores C
+   for the factor step and frees the block.
+
+   The hidden states passed on are the ORIGINAL block's outputs, not those of a compressed block: the ranks are
+   only known once every block's spectrum is (the budget is allocated globally), so the statistics must not
+   depend on them. (The sequential refit of the in-memory path, which feeds compressed outputs on, is not
+   available here.)
+3. **Plan and factors.** The budget is allocated across all blocks' whitened spectra at once
+   (:func:`factorize.plan.ranks.choose_ranks`), then each factored linear is one task: its weight from the shard
+   and its group's C from the work directory give the factors at the planned rank.
+4. **Write.** A sharded checkpoint in a new directory (same shard names, ``<module>.first.weight`` (r, in) and
+   ``<module>.second.weight`` (out, r) for factored linears, everything else copied; the plan in the index's
+   metadata) plus the source's config and tokenizer files. :func:`factorize.load_directory` (or
+   ``factorize.load(fresh_model, directory)``) reads it back. The directory is written under a temporary name
+   and renamed into place when complete: a failure leaves nothing.
+
+The tasks live in :mod:`factorize.outofcore.block_tasks`, the architecture on the meta device in
+:mod:`factorize.outofcore.architecture`, the calibration slices in :mod:`factorize.outofcore.tokens`.
+
+Byte-identical results on any engine (:mod:`factorize.cluster`): the slices are fixed, each task computes in
+float64 under the same pinned torch thread count (``threads``; the client's count by default), and the client sums
+the partial moments in slice order. Results are identical across engines and task orders for the same thread
+count on the same kind of machine (float rounding of the float32 block forward depends on the CPU's kernels).
+
+Memory: the client holds at most one group's moment (n x n float64) and the whitening work for one linear
+(about three n x n float64 matrices, see :mod:`factorize.calibrated.aware`); a task holds one block in float32,
+its slice's hidden states in and out, and the block's intermediate activations for ``tokens_per_pass`` tokens.
+The report states the measured peak resident memory of this process (``peak_rss_bytes``), the block's and the
+activations' sizes, and the bound 2 blocks + activations + 1 GB as a number, met or not.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import os
+import shutil
+import tempfile
+import time
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import torch
+from safetensors import safe_open
+from tqdm.auto import tqdm
+
+from factorize.calibrated.aware import AwareSpectrum, decompose_aware
+from factorize.calibrated.stats import InputStats
+from factorize.checkpoints.files import Checkpoint
+from factorize.choices import calibrated_methods
+from factorize.cluster import Engine, open_engine
+from factorize.errors import FactorizeError
+from factorize.measure.factors import relative_error
+from factorize.model.sites import Site
+from factorize.outofcore.architecture import Architecture, block_linears, check_source
+from factorize.outofcore.block_tasks import BlockTask, FactorTask, block_slice_task, factor_task, save_work_file
+from factorize.outofcore.candidates import Candidate, select
+from factorize.outofcore.options import BlockwiseOptions, split_keywords
+from factorize.outofcore.results import BlockwiseShrink
+from factorize.outofcore.tokens import slice_plan, token_batches
+from factorize.outofcore.writer import CheckpointWriter, plan_bound
+from factorize.plan.policy import Policy, rank_needed, resolve_policy
+from factorize.plan.ranks import choose_ranks, plan_summary
+from factorize.storage import (
+    check_free_space,
+    check_output_path,
+    new_temp_dir,
+    peak_rss,
+    publish_dir,
+    read_tensor,
+    reset_peak_rss,
+)
+from factorize.threads import torch_threads
+
+SUM_ROWS = 256  # rows of a partial moment added at a time when summing the slices
+BOUND_SLACK = 2**30  # the "+ 1 GB" of the memory bound
+WEIGHT_SUFFIXES = (".safetensors", ".bin", ".pt", ".pth", ".ckpt", ".msgpack", ".h5")
+
+
+@dataclass(frozen=True)
+class _Run:
+    """What every step of one shrink needs: the source, the chosen linears, the engine and work directory, the
+    solver, and the options (``threads`` resolved)."""
+
+    arch: Architecture
+    batches: list  # (ids, mask) token batches
+    names: list[str]  # qualified linear names, block by block
+    chosen: list[Candidate]
+    engine: Engine
+    work: Path
+    policy: Policy
+    aware: str  # "whiten" or "scale"
+    solver: str
+    options: BlockwiseOptions
+
+    @property
+    def sites(self) -> list[Site]:
+        return [c.site for c in self.chosen]
+
+    @property
+    def source(self) -> str:
+        return str(self.arch.directory.resolve())
+
+
+def shrink_blockwise(
+    src: str | os.PathLike,
+    dst: str | os.PathLike,
+    policy: Policy | None = None,
+    options: BlockwiseOptions | None = None,
+    *,
+    calibration: Any,
+    **keywords: Any,
+) -> BlockwiseShrink:
+    """Calibrated shrink of a decoder-only transformers checkpoint, one block in memory at a time.
+
+    Args:
+        src: a transformers model directory (config.json and safetensors shards, or one model.safetensors) of a
+            supported type (Llama); only read.
+        dst: the output directory (created; refused if it exists unless ``force``).
+        policy: a :class:`~factorize.plan.policy.Policy` or its keywords (``budget=0.5``, ``rank=``, ``energy=``,
+            ``keep=``, ``multiple``, ``include`` / ``exclude`` on qualified linear names such as
+            ``model.layers.*.mlp.*``); ``method`` ``"whiten"`` (default) or ``"scale"``, or a solver for the
+            whitened matrix (``"gram"`` default). Only the linears inside the blocks are factored; the embedding,
+            the final norm and the output head are copied.
+        options: a :class:`~factorize.outofcore.options.BlockwiseOptions`, or its fields as keywords:
+            ``cluster`` (where the tasks run, :func:`factorize.cluster.open_engine`: None for this process, or an
+            :class:`~factorize.cluster.Engine`; with a cluster, ``work_dir`` must be on storage every worker
+            reads), ``work_dir`` (needs about 2 x the activations plus every block's n x n float64 moments),
+            ``slices``, ``threads``, ``tokens_per_pass``, ``ridge``, ``precision``, ``force`` (replace an
+            existing ``dst``), ``metadata`` (extra string entries for the output's metadata), ``progress``.
+        calibration: token ids: a (sequences, length) integer tensor, a list of them, or dicts with
+            ``input_ids`` (and an ``attention_mask`` whose padded positions are left out of the statistics).
+
+    Returns:
+        a :class:`~factorize.outofcore.results.BlockwiseShrink`: the plan, one row per linear, the files, sizes,
+        the calibration's size, where the tasks ran, and the measured peak resident memory of this process
+        against the bound 2 blocks + activations + 1 GB.
+    """
+    started = time.perf_counter()
+    peak_reset = reset_peak_rss()
+    options, keywords = split_keywords(BlockwiseOptions, options, keywords)
+    policy = resolve_policy(policy, keywords)
+    aware, solver = calibrated_methods(policy.method)
+    _check_options(policy, options)
+    src_path, dst_path = Path(src), Path(dst)
+    arch = check_source(src_path)
+    vocab = int(arch.model.get_submodule(arch.embed.rsplit(".", 1)[0]).weight.shape[0])
+    batches = token_batches(calibration, vocab)
+    if dst_path.resolve() == src_path.resolve() or src_path.resolve() in dst_path.resolve().parents:
+        raise FactorizeError(f"{dst_path}: is (inside) the input directory; the input is never modified",
+                             fix="choose another output directory")
+    check_output_path(dst_path, force=options.force, directory=True)
+    names = block_linears(arch, policy)
+    if not names:
+        raise FactorizeError(f"{src_path}: no linear layer inside the blocks matches the include/exclude patterns",
+                             fix="check the patterns against names such as model.layers.0.self_attn.q_proj")
+    chosen, _ = select(arch.ckpt, include=names)
+    chosen = [c for c in chosen if c.module in set(names)]
+    threads = torch.get_num_threads() if options.threads is None else int(options.threads)
+    options = dataclasses.replace(options, threads=threads)
+    sizes = _sizes(arch, batches, chosen)
+    parent = Path(options.work_dir) if options.work_dir is not None else \
+        (dst_path.parent if str(dst_path.parent) else Path("."))
+    if not parent.is_dir():
+        raise FactorizeError(f"{parent}: the work directory does not exist", fix="create it or pass another")
+    need = 2 * sizes["activation_bytes"] + (arch.blocks + options.slices) * sizes["moments"] + arch.ckpt.nbytes
+    check_free_space(parent, int(need), "the block-by-block work files (activations, moments, factors)")
+    engine = open_engine(options.cluster, threads=threads)
+    where = engine.describe()
+    work = Path(tempfile.mkdtemp(prefix=".factorize-blocks-", dir=parent))
+    run = _Run(arch, batches, names, chosen, engine, work, policy, aware, solver, options)
+    try:
+        with torch_threads(threads):
+            plan, written = _shrink(run, src_path, dst_path)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+        if not isinstance(options.cluster, Engine):  # ours to close (an Engine passed in stays open; so does a Client)
+            engine.close()
+    peak = peak_rss()
+    bound = 2 * sizes["block_bytes"] + sizes["activation_bytes"] + BOUND_SLACK
+    return BlockwiseShrink(
+        plan=plan, tensors=written["tensors"], files=written["files"], output=str(dst_path),
+        params_before=written["params_before"], params_after=written["params_after"],
+        kept_fraction=plan_summary(plan)["kept_fraction"], bytes_before=arch.ckpt.nbytes,
+        bytes_after=written["bytes_after"], blocks=arch.blocks, sequences=plan["calibration"]["sequences"],
+        tokens=sizes["tokens"], slices=plan["calibration"]["slices"], threads=threads, engine=where,
+        seconds=time.perf_counter() - started, peak_rss_bytes=peak, peak_reset=peak_reset,
+        block_bytes=sizes["block_bytes"], activation_bytes=sizes["activation_bytes"], bound_bytes=bound,
+        bound_met=peak <= bound)
+
+
+def _check_options(policy: Policy, options: BlockwiseOptions) -> None:
+    if policy.cost != "params":
+        raise FactorizeError("cost='macs' is not available block by block", fix="use cost='params' (the default)")
+    slices, tokens_per_pass = options.slices, options.tokens_per_pass
+    if not isinstance(slices, int) or isinstance(slices, bool) or slices < 1:
+        raise FactorizeError(f"slices={slices!r}: expected a positive integer", fix="use e.g. slices=8")
+    if not isinstance(tokens_per_pass, int) or tokens_per_pass < 1:
+        raise FactorizeError(f"tokens_per_pass={tokens_per_pass!r}: expected a positive integer")
+
+
+def _sizes(arch: Architecture, batches, chosen: list[Candidate]) -> dict[str, int | float]:
+    """Tokens, activation and block bytes (float32), and the moments one block adds (n x n float64 each)."""
+    tokens = sum(int(ids.numel()) for ids, _ in batches)
+    block_bytes = max(sum(math.prod(arch.where[n].tensors[n].shape) * 4 for n in arch.where
+                          if n.startswith(f"{arch.prefix}.{i}.")) for i in range(arch.blocks))
+    return {"tokens": tokens, "activation_bytes": tokens * int(arch.config.hidden_size) * 4,
+            "block_bytes": block_bytes, "moments": sum(8 * c.site.shape[1] ** 2 for c in chosen) / arch.blocks}
+
+
+def _shrink(run: _Run, src: Path, dst: Path) -> tuple[dict, dict]:
+    """Statistics, plan, factors and the write; returns (plan, what was written)."""
+    spectra, samples, groups = _statistics(run)
+    plan = choose_ranks(run.sites, spectra, run.policy, method=run.aware)
+    batches = run.batches
+    plan["calibration"] = {"method": run.aware, "solver": run.solver, "blockwise": True, "sequential": False,
+                           "sequences": sum(int(ids.shape[0]) for ids, _ in batches),
+                           "tokens": sum(int(ids.numel()) for ids, _ in batches),
+                           "samples": {n: samples[n] for n in run.names},
+                           "slices": len(slice_plan(batches, run.options.slices)), "threads": run.options.threads}
+    factors = _factors(run, plan, groups)
+    return plan, _write(run, src, dst, plan, factors)
+
+
+def _statistics(run: _Run) -> tuple[dict[str, AwareSpectrum], dict[str, int], dict[str, str]]:
+    """Steps 1 and 2: embed, then per block the slice tasks, the summed moments and the whitened spectra."""
+    arch, work = run.arch, run.work
+    pieces = slice_plan(run.batches, run.options.slices)
+    acts = work / "acts"
+    acts.mkdir()
+    _embed(arch, run.batches, pieces, acts / "0")
+    spectra: dict[str, AwareSpectrum] = {}
+    samples: dict[str, int] = {}
+    groups: dict[str, str] = {}
+    (work / "moments").mkdir()
+    bar = tqdm(range(arch.blocks), desc="blocks", unit="block", disable=not run.options.progress, leave=False)
+    for i in bar:
+        mine = tuple(n for n in run.names if n.startswith(f"{arch.prefix}.{i}."))
+        (acts / str(i + 1)).mkdir()
+        (work / f"stats{i}").mkdir()
+        tasks = [BlockTask(run.source, i, j, str(acts / str(i) / f"{j}.safetensors"),
+                           str(acts / str(i + 1) / f"{j}.safetensors"), str(work / f"stats{i}" / f"{j}.safetensors"),
+                           mine, run.options.threads, run.options.tokens_per_pass) for j in range(len(pieces))]
+        results = run.engine.map(block_slice_task, tasks, label=f"block {i}")
+        shutil.rmtree(acts / str(i), ignore_errors=True)  # this block's inputs are no longer needed
+        if mine:
+            _block_spectra(run, mine, results[0]["groups"], [t.stats for t in tasks], (spectra, samples, groups))
+        shutil.rmtree(work / f"stats{i}", ignore_errors=True)
+        missing = [n for n in mine if n not in spectra]
+        if missing:
+            raise FactorizeError("the calibration inputs never reached some linear layers", missing,
+                                 fix="these layers are not called by the block's forward pass; exclude them")
+    return spectra, samples, groups
+
+
+def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str], files: list[str],
+                   into: tuple[dict, dict, dict]) -> None:
+    """One block's summed moments (stored for the factor step) and its linears' whitened spectra, values only."""
+    spectra, samples, groups = into
+    k_of = {s.name: (rank_needed(s, run.policy) if run.solver in ("auto", "randomized") else None)
+            for s in run.sites if s.name in mine}
+    for leader in sorted(set(block_groups.values()), key=mine.index):
+        st = _summed(leader, files, len(run.batches))
+        path = run.work / "moments" / f"{leader}.safetensors"
+        save_work_file({"moment": st.second_moment, "total": st.total, "abs_total": st.abs_total}, str(path),
+                       {"count": str(st.count), "batches": str(st.batches)})
+        for name in [n for n in mine if block_groups.get(n) == leader]:
+            groups[name] = str(path)
+            samples[name] = st.count
+            W = read_tensor(run.arch.where[name + ".weight"].path, name + ".weight")
+            spec = decompose_aware(W, st, method=run.aware, solver=run.solver, ridge=run.options.ridge,
+                                   rank=k_of[name], seed=run.policy.seed, precision=run.options.precision, name=name)
+            spectra[name] = spec.without_vectors()
+            del W, spec
+        del st
+
+
+def _summed(leader: str, files: Sequence[str], batches: int) -> InputStats:
+    """One group's statistics summed over the slices, in slice order (the order fixes the bytes)."""
+    acc: dict[str, torch.Tensor] = {}
+    count = 0
+    for path in files:
+        with safe_open(path, framework="pt", device="cpu") as f:
+            count += int(json.loads(f.metadata()["counts"])[_relative(leader)])
+            for part in ("moment", "total", "abs_total"):
+                key = f"{_relative(leader)}.{part}"
+                if part not in acc:
+                    acc[part] = f.get_tensor(key)
+                    continue
+                rows = f.get_slice(key)
+                n = int(acc[part].shape[0])
+                for lo in range(0, n, SUM_ROWS):  # row blocks: no second n x n matrix in memory
+                    acc[part][lo:lo + SUM_ROWS] += rows[lo:lo + SUM_ROWS]
+    return InputStats(leader, "linear", int(acc["moment"].shape[0]), count=count, second_moment=acc["moment"],
+                      total=acc["total"], abs_total=acc["abs_total"], batches=batches)
+
+
+def _relative(name: str) -> str:
+    """``model.layers.3.self_attn.q_proj`` -> ``self_attn.q_proj`` (the name inside the block)."""
+    parts = name.split(".")
+    for k, p in enumerate(parts):
+        if p.isdigit():
+            return ".".join(parts[k + 1:])
+    return name
+
+
+@torch.no_grad()
+def _embed(arch: Architecture, batches, pieces, out: Path) -> None:
+    """Step 1: the token embeddings of every slice, in float32, to ``out/<slice>.safetensors``."""
+    out.mkdir()
+    table = read_tensor(arch.where[arch.embed].path, arch.embed)  # (vocab, hidden), stored dtype
+    for j, piece in enumerate(pieces):
+        tensors = {}
+        for k, (b, lo, hi) in enumerate(piece):
+            ids, mask = batches[b]
+            tensors[f"h.{k}"] = torch.nn.functional.embedding(ids[lo:hi], table).float().contiguous()
+            if mask is not None:
+                tensors[f"m.{k}"] = mask[lo:hi].contiguous()
+        save_work_file(tensors, str(out / f"{j}.safetensors"))
+        del tensors
+    del table
+
+
+def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
+    """Step 3: one task per factored linear; name -> file of its factors."""
+    (run.work / "factors").mkdir()
+    o = run.options
+    tasks = [FactorTask(run.source, name, groups[name], int(e["rank"]), run.aware, run.solver, o.ridge,
+                        run.policy.seed, o.precision, str(run.work / "factors" / f"{name}.safetensors"), o.threads)
+             for name, e in plan["sites"].items() if e.get("action") == "factor"]
+    files = run.engine.map(factor_task, tasks, label="factors")
+    return {t.module: f for t, f in zip(tasks, files)}
+
+
+def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, str]) -> dict:
+    """Step 4: the output directory, written under a temporary name and renamed into place."""
+    ckpt = run.arch.ckpt
+
+    def factors_of(c: Candidate, entry: dict) -> tuple[str | None, float]:
+        path = factors.get(c.module)
+        if entry["action"] != "factor":
+            return path, 0.0
+        with safe_open(path, framework="pt", device="cpu") as f:
+            A, B = f.get_tensor("first"), f.get_tensor("second")
+        if A.shape[0] != entry["rank"]:
+            raise FactorizeError(f"{path}: factors of rank {A.shape[0]}, the plan says {entry['rank']}")
+        return path, relative_error(c.read_weight(), B, A)
+
+    writer = CheckpointWriter(ckpt, run.chosen, factors_of, plan_reserve=plan_bound(run.sites, run.policy),
+                              progress=run.options.progress)
+    check_free_space(dst.parent if str(dst.parent) else Path("."), writer.planned_bytes(plan["sites"]),
+                     "the shrunk checkpoint")
+    tmp = new_temp_dir(dst)
+    try:
+        names = [h.path.name for h in ckpt.files]
+        if len(set(names)) < len(names):
+            raise FactorizeError(f"{src}: several shards share a file name", fix="re-create the checkpoint")
+        finals = [tmp / n for n in names] + ([tmp / ckpt.index.name] if ckpt.index else [])
+        writer.write_all(finals, plan, run.options.metadata, force=False)
+        _copy_side_files(src, tmp, ckpt)
+        publish_dir(tmp, dst, force=run.options.force)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    files = [str(dst / p.name) for p in finals]
+    return {"tensors": writer.report, "files": files, "params_before": writer.params_before,
+            "params_after": writer.params_after, "bytes_after": sum(Path(f).stat().st_size for f in files)}
+
+
+def _copy_side_files(src: Path, dst: Path, ckpt: Checkpoint) -> list[str]:
+    """Config, generation config and tokenizer files: every small regular file that is not a weights file."""
+    skip = {h.path.name for h in ckpt.files} | ({ckpt.index.name} if ckpt.index else set())
+    copied = []
+    for p in sorted(src.iterdir()):
+        if p.name in skip or p.name.startswith(".") or not p.is_file() or p.name.endswith(WEIGHT_SUFFIXES) \
+                or p.name.endswith(".index.json"):
+            continue
+        shutil.copyfile(p, dst / p.name)
+        copied.append(p.name)
+    return copied
