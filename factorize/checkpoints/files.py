@@ -36,7 +36,7 @@ import torch
 from safetensors import safe_open
 from torch import nn
 
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, caller_stacklevel
 from factorize.plan.ranks import PLAN_FORMAT
 from factorize.storage import (
     Header,
@@ -364,7 +364,7 @@ def _load_weights(model: nn.Module, ckpt: Checkpoint, aliases: Mapping[str, str]
             "strict=False tolerates missing/unexpected keys and casts dtypes",
         )
     if notes:
-        warnings.warn(f"{path}: loaded with strict=False; " + "; ".join(notes), stacklevel=3)
+        warnings.warn(f"{path}: loaded with strict=False; " + "; ".join(notes), stacklevel=caller_stacklevel())
     for h in ckpt.files:
         with safe_open(str(h.path), framework="pt", device="cpu") as f:
             chunk = {k: f.get_tensor(k) for k in h.tensors if k in expected}

@@ -196,10 +196,10 @@ def render(result: dict, ui: UI) -> None:
         table.add_column(title, justify="left" if title == "budget" else "right")
     for r in rows:
         table.add_row(*["-" if r.get(key) is None else fmt(r[key]) for _, key, fmt in columns])
-    ui.out.print(table)
+    ui.table(table)
     if rows and rows[0].get("accuracy_before") is not None:
-        ui.out.print(f"accuracy of the original: {pct(rows[0]['accuracy_before'])}")
+        ui.line(f"accuracy of the original: {pct(rows[0]['accuracy_before'])}")
     for kind in ("csv", "plot"):
         if result.get(kind):
-            ui.out.print(f"wrote {result[kind]}")
+            ui.line(f"wrote {result[kind]}")
     ui.caution(result["caution"])
