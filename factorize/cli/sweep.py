@@ -188,7 +188,8 @@ def render(result: dict, ui: UI) -> None:
                   title_justify="left")
     columns = [("budget", "budget", lambda v: f"{v:g}"), ("params kept", "kept_fraction", pct),
                ("params", "params_after", lambda v: f"{v:,}"), ("layers factored", "factored_layers", str),
-               ("relative L2", "relative_l2", g4), ("cosine worst", "cosine_min", lambda v: f"{v:.6f}"),
+               ("relative L2", "relative_l2", g4), ("cosine mean", "cosine_mean", lambda v: f"{v:.6f}"),
+               ("cosine worst", "cosine_min", lambda v: f"{v:.6f}"),
                ("top-1 agree", "top1_agreement", pct), ("accuracy", "accuracy_after", pct),
                ("worst weight err", "worst_weight_error", lambda v: f"{v:.4f}")]
     columns = [c for c in columns if any(r.get(c[1]) is not None for r in rows)]
