@@ -48,7 +48,7 @@ WEIGHTS = "factorized.safetensors"  # not a name transformers' from_pretrained l
 TRANSFORMERS_WEIGHTS = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
                         "pytorch_model.bin.index.json")
 TEMP_DIR_SUFFIX = ".factorize-tmpdir"  # temp directories: .<final name>.<pid>-<random>.factorize-tmpdir
-HF_EXTRA = 'pip install "factorize[hf]"'
+HF_EXTRA = 'pip install ".[hf]" (in a checkout of factorize)'
 
 
 def _load_fix(directory: Path) -> str:

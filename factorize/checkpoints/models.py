@@ -38,7 +38,7 @@ from factorize.storage import check_safetensors, read_safetensors
 
 PICKLE_SUFFIXES = (".pt", ".pth", ".bin", ".ckpt", ".pkl")
 DEFAULT_SPEC = "factorize.default:load_default"  # the embedded digits classifier
-HF_EXTRA = 'pip install "factorize[hf]"'
+HF_EXTRA = 'pip install ".[hf]" (in a checkout of factorize)'
 TOKENIZER_FILES = ("tokenizer.json", "tokenizer_config.json", "vocab.txt", "vocab.json", "tokenizer.model")
 
 

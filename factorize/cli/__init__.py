@@ -3,7 +3,7 @@
 Output rules: tables (rich) and the report go to stdout; progress bars (tqdm) and warnings go to stderr, and
 progress vanishes with ``--quiet``. With ``--json`` stdout holds exactly one JSON object and nothing else (on
 failure too: ``{"error": ...}``). Exit codes: 0 done, 1 a requested check failed (``--max-drift``), 2 bad usage
-or bad input -- one clear message on stderr, no traceback.
+or bad input -- one clear message on stderr, no traceback -- and 130 interrupted (nothing written).
 
 Layout: :mod:`.parser` (options; torch-free, so ``--help`` is quick), one module per command (``run(args, ui)``,
 importing the library at its top), :mod:`.common` (model, policy, inputs, output files) and :mod:`.render`
@@ -54,9 +54,8 @@ def _parse(parser, argv: list[str]):
         text = caught.getvalue()
         sys.stderr.write(text)
         if done.code not in (0, None):
-            lines = [line for line in text.splitlines() if line.strip()]
-            message = lines[-1] if lines else "usage error"
-            message = message.split(": error: ", 1)[-1]
+            lines = [line for line in text.splitlines() if ": error: " in line]
+            message = lines[-1].split(": error: ", 1)[-1] if lines else "usage error"
             payload = {"error": message, "problems": [], "fix": "see 'factorize COMMAND --help'", "exit_code": 2}
             sys.stdout.write(json.dumps(payload) + "\n")
         raise

@@ -36,7 +36,7 @@ from .common import (
 )
 from .render import UI, g4, pct
 
-PLOT_EXTRA = 'pip install "factorize[plot]"'
+PLOT_EXTRA = 'pip install ".[plot]" (in a checkout of factorize)'
 DRIFT_KEYS = ("relative_l2", "cosine_mean", "cosine_min", "top1_agreement", "kl")
 REPORT_KEYS = ("accuracy_before", "accuracy_after", "worst_weight_error", "macs_before", "macs_after",
                "latency_ms_before", "latency_ms_after")
