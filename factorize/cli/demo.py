@@ -100,4 +100,4 @@ def render(result: dict, runs: list[dict], ui: UI, plain: list[dict] = ()) -> No
     ui.line(f"\n3. the full report at the strongest budget ({runs[-1]['budget']:g}), calibrated:")
     render_rich(runs[-1]["_report"], ui.out, caution=False)  # the caution closes the demo, once
     ui.caution(result["caution"])
-    ui.line(NEXT_STEPS)
+    ui.steps(NEXT_STEPS)

@@ -62,6 +62,13 @@ class UI:
         """One paragraph on stdout, wrapped between words only (control characters escaped)."""
         print_words(self.out, text)
 
+    def steps(self, text: str) -> None:
+        """'next steps: a; b; c' as one heading and one wrapped line per step, so a command stays together."""
+        head, _, rest = text.partition(": ")
+        print_words(self.out, head + ":")
+        for step in rest.split("; "):
+            print_words(self.out, f"  - {step}")
+
     def table(self, table) -> None:
         """A rich Table on stdout: whole when it fits, one record per row when not (see measure/layout.py)."""
         print_table(self.out, table)

@@ -77,7 +77,7 @@ def render(result: dict, ui: UI) -> None:
     ui.table(table)  # whole when it fits, else one record per layer; names never cut
     before, after = result["params"], result["params_at_suggested"]
     ui.line(f"suggested ranks keep {result['target_energy']:g} of each layer's spectral energy: "
-                 f"{before:,} -> {after:,} weight parameters ({after / before:.1%} kept). "
+                 f"{before:,} -> {after:,} weight parameters ({after / max(before, 1):.1%} kept). "
                  "Spectrum: slices of the singular values, largest first, bar height s / s_max.")
     for s in result["skipped"]:
         ui.line(f"skipped {s['name']}: {s['reason']}")

@@ -81,7 +81,7 @@ def run(args, ui: UI) -> dict:
     if not ui.json_mode:
         render_rich(report, ui.out)
         ui.line(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
-        ui.line(next_steps(output, loaded, report_path))
+        ui.steps(next_steps(output, loaded, report_path))
     return {"command": "shrink", "model": loaded.source, "output": str(output),
             "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan,
             **ran}
