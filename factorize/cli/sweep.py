@@ -159,6 +159,13 @@ def _matplotlib():
     return plt
 
 
+def plot_title(source: str, limit: int = 40) -> str:
+    """The model for a plot title: a path's last part (a folder or file name, not the absolute path, which the
+    title's width cuts at both edges), at most ``limit`` characters, shortened in the middle."""
+    name = Path(source).name or source if ("/" in source or "\\" in source) else source
+    return name if len(name) <= limit else name[: limit // 2 - 1] + "..." + name[-(limit - limit // 2 - 2):]
+
+
 def _plot(rows: list[dict], path: Path, title: str, force: bool) -> None:
     plt = _matplotlib()
     fig, ax = plt.subplots(figsize=(6.4, 4.2), dpi=120)
@@ -169,7 +176,7 @@ def _plot(rows: list[dict], path: Path, title: str, force: bool) -> None:
         ax.annotate(f"{r['budget']:g}", (xi, r[key]), textcoords="offset points", xytext=(4, 4), fontsize=8)
     ax.set_xlabel("parameters kept (% of the original model)")
     ax.set_ylabel("relative L2 output drift" if key == "relative_l2" else "worst relative weight error")
-    ax.set_title(f"factorize sweep: {title}", fontsize=10)
+    ax.set_title(f"factorize sweep: {plot_title(title)}", fontsize=10)
     ax.grid(alpha=0.3)
     if rows and rows[0].get("accuracy_after") is not None:
         ax2 = ax.twinx()
