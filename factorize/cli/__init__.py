@@ -85,12 +85,21 @@ def _dispatch(args, ui: UI) -> int:
     except (FileNotFoundError, PermissionError, IsADirectoryError, NotADirectoryError) as err:
         where = f"{err.filename}: " if err.filename else ""
         return ui.fail(f"{where}{err.strerror or err}", 2, fix="check the path and its permissions")
-    except SafetensorError as err:
-        return ui.fail(f"not a valid safetensors file: {err}", 2, fix="copy or save the file again")
+    except SafetensorError as err:  # the safetensors library's own check (e.g. overlapping tensors)
+        return ui.fail(f"{_safetensors_inputs(args)}not a valid safetensors file: {err}", 2,
+                       fix="the file is damaged or was not written by a safetensors writer; copy or save it again")
     except KeyboardInterrupt:
         ui.err.print("interrupted; nothing was written")
         return 130
     return ui.finish(result)
+
+
+def _safetensors_inputs(args) -> str:
+    """'a.safetensors, b.safetensors: ' -- the safetensors files this command reads, for a message about one."""
+    from .common import input_paths
+
+    names = [str(p) for paths in input_paths(args).values() for p in paths if p.suffix == ".safetensors"]
+    return ", ".join(dict.fromkeys(names)) + ": " if names else ""
 
 
 if __name__ == "__main__":

@@ -78,6 +78,8 @@ class UI:
         fix = None if fix is None else printable(fix)
         prefix = "error: " if code == 2 else "check failed: "
         print_words(self.err, message, prefix=prefix, prefix_style="bold red")
+        if fix and f"Fix: {fix}" not in message:  # a FactorizeError's text carries its fix already
+            print_words(self.err, f"Fix: {fix}")
         if self.json_mode:
             payload = {"error": message.splitlines()[0], "problems": list(problems), "fix": fix, "exit_code": code}
             self.stdout.write(json.dumps(payload) + "\n")

@@ -109,6 +109,8 @@ CASES: dict[str, tuple[list[str], list[str]]] = {
                             ["badplan.safetensors", "rank True is not a positive integer"]),
     "deep_plan_in_against": (["compare", *M, "--against", "deepplan.safetensors", "--random-inputs", "4x20"],
                              ["deepplan.safetensors", "nested more than 64 levels"]),
+    "overlapping_tensors": (["scan", "-m", "overlap.safetensors"],
+                            ["overlap.safetensors: not a valid safetensors file", "invalid offset", "Fix: "]),
     "zero_size_layer": (["scan", "-m", "bad_models:zero_dim"], ["0: weight of shape (5, 0) has a zero-size"]),
     "meta_device_model": (["shrink", "-m", "bad_models:on_meta", "--rank", "2", "-o", "n16.safetensors"],
                           ["bad_models:on_meta", "meta device", "fc1.weight"]),
@@ -129,6 +131,22 @@ def _plan_file(src: Path, dst: Path, mutate) -> None:
     mutate(plan)
     meta["factorize.plan"] = json.dumps(plan)
     write_safetensors(dst, load_file(str(src)), meta)
+
+
+def _overlapping_file(dst: Path) -> None:
+    """A safetensors file whose second tensor's bytes overlap the first's (the header rewritten, same length)."""
+    import struct
+
+    from safetensors.torch import save_file
+
+    save_file({"a.weight": torch.randn(4, 4), "b.weight": torch.randn(4, 4)}, str(dst))
+    blob = dst.read_bytes()
+    (n,) = struct.unpack("<Q", blob[:8])
+    header = json.loads(blob[8:8 + n])
+    header["b.weight"]["data_offsets"] = [32, 96]  # a.weight holds [0, 64)
+    text = json.dumps(header, separators=(",", ":")).encode()
+    assert len(text) <= n
+    dst.write_bytes(struct.pack("<Q", n) + text.ljust(n) + blob[8 + n:])
 
 
 def _deep_plan_file(src: Path, dst: Path, depth: int) -> None:
@@ -167,6 +185,7 @@ def battery(tmp_path_factory):
         _plan_file(d / "good.safetensors", d / "escplan.safetensors", lambda p: p["sites"].update(
             {"\x1b[31mevil": {"action": "factor", "kind": "linear", "shape": [2, 2], "rank": 1}}))
         _deep_plan_file(d / "good.safetensors", d / "deepplan.safetensors", 3000)
+        _overlapping_file(d / "overlap.safetensors")
         before = _digests(d)
         runs = {name: _in_process(argv) for name, (argv, _) in CASES.items()}
         after = _digests(d)
