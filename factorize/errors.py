@@ -34,3 +34,34 @@ class DriftLimitExceeded(RuntimeError):
 
 class UnverifiedModelWarning(UserWarning):
     """A compressed model was returned without running it once (no sample input was at hand to run it on)."""
+
+
+def printable(text: object) -> str:
+    """``text`` with control characters (terminal escape sequences among them) escaped as ``\\x1b``, ``\\u200b``;
+    line breaks stay. Names in messages and tables come from files and user code, and must not drive the
+    terminal: every name the command line prints passes through here."""
+    return "".join(c if c.isprintable() or c == "\n" else _escape(c) for c in str(text))
+
+
+def _escape(c: str) -> str:
+    code = ord(c)
+    return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}" if code < 0x10000 else f"\\U{code:08x}"
+
+
+def caller_stacklevel() -> int:
+    """The ``stacklevel`` for :func:`warnings.warn` that names the first frame outside the factorize package:
+    the user's line that called the library, however deep inside factorize the warning is raised.
+
+    Call it in the function that calls ``warnings.warn`` (its frame counts as level 1)."""
+    import sys
+
+    frame = sys._getframe(1)  # the caller of this helper: level 1 for warnings.warn
+    level = 1
+    while frame is not None and _inside_package(frame.f_globals.get("__name__", "")):
+        frame = frame.f_back
+        level += 1
+    return level
+
+
+def _inside_package(module: str) -> bool:
+    return module == "factorize" or module.startswith("factorize.")

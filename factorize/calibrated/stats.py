@@ -45,7 +45,7 @@ import torch.nn.functional as F
 from torch import nn
 from tqdm.auto import tqdm
 
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, caller_stacklevel, printable
 from factorize.model.feed import feed, token_mask
 from factorize.model.hooks import forward_pre_hooks
 from factorize.model.sites import Site, walk
@@ -452,7 +452,7 @@ def _warn_few_samples(stats: Iterable[InputStats]) -> None:
             "too few calibration samples for some layers; their input second moment is singular, so the "
             "activation-aware decomposition adds a ridge there (more sample inputs fix this):\n  "
             + "\n  ".join(few),
-            stacklevel=3,
+            stacklevel=caller_stacklevel(),  # the user's line, however deep the call inside factorize
         )
 
 
@@ -483,7 +483,7 @@ def collect_pair_stats(
     cur_rows: list[torch.Tensor] = []
     ref_hook = {site.name: _make_hook(site, ref_stats, state, sink=ref_rows.append)}
     cur_hook = {site.name: _make_hook(site, stats, state, sink=cur_rows.append)}
-    bar = tqdm(total=len(batches), desc=f"calibrate {site.name}", unit="batch", disable=not progress, leave=False)
+    bar = tqdm(total=len(batches), desc=f"calibrate {printable(site.name)}", unit="batch", disable=not progress, leave=False)
     try:
         with (forward_pre_hooks(reference, ref_hook, with_kwargs=True),
               forward_pre_hooks(current, cur_hook, with_kwargs=True),

@@ -43,10 +43,10 @@ from factorize.storage import check_output_path, new_temp_dir, publish_dir, read
 DIRECTORY_FORMAT = "factorize.directory"
 DIRECTORY_VERSION = 1
 MANIFEST = "factorize.json"
+HF_EXTRA = 'pip install ".[hf]" (in a checkout of factorize)'
 WEIGHTS = "factorized.safetensors"  # not a name transformers' from_pretrained looks for
 TRANSFORMERS_WEIGHTS = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
                         "pytorch_model.bin.index.json")
-HF_EXTRA = 'pip install "factorize[hf]"'
 
 
 def _load_fix(directory: Path) -> str:

@@ -34,7 +34,7 @@ from factorize.errors import FactorizeError
 from factorize.model.feed import batch_size, feed, primary_output
 from factorize.storage import check_output_path, write_atomic
 
-EXPORT_EXTRA = 'pip install "factorize[export]"'
+EXPORT_EXTRA = 'pip install ".[export]" (in a checkout of factorize)'
 ONNX_PROTOBUF_LIMIT = 2**31  # a single ONNX protobuf file holds at most 2 GiB
 
 
@@ -66,7 +66,7 @@ def export_onnx(model: nn.Module, example: Any, path: str | os.PathLike, *, opse
         dynamic_batch: make the first dimension of every tensor input symbolic (needs >= 2 samples).
         check: run the file with onnxruntime on ``example`` (when installed) and measure the largest difference.
 
-    Needs the ``export`` extra (onnx, onnxscript; onnxruntime for the check): ``pip install "factorize[export]"``.
+    Needs the ``export`` extra (onnx, onnxscript; onnxruntime for the check): ``pip install ".[export]"`` in a checkout.
     Raises :class:`FactorizeError` for a bad model, example or path, a missing extra, or a failed export.
     """
     final, args, kwargs = _validated(model, example, path, force, dynamic_batch)

@@ -36,7 +36,7 @@ import torch
 from safetensors import safe_open
 from torch import nn
 
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, caller_stacklevel
 from factorize.plan.entries import factored_names, plan_entries
 from factorize.plan.ranks import PLAN_FORMAT
 from factorize.storage import (
@@ -122,9 +122,10 @@ def _pick_in_directory(d: Path) -> Path:
 def _open_index(p: Path) -> Checkpoint:
     check_readable_file(p)
     try:
-        index = json.loads(p.read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as e:
+        text = p.read_text(encoding="utf-8")
+    except UnicodeDecodeError as e:
         raise FactorizeError(f"{p}: not a valid index file ({e})", fix="pass the *.safetensors.index.json") from None
+    index = load_json(text, f"{p}: index file", fix="pass the *.safetensors.index.json")
     wm = index.get("weight_map") if isinstance(index, dict) else None
     if not isinstance(wm, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in wm.items()):
         raise FactorizeError(
@@ -146,6 +147,43 @@ def _open_index(p: Path) -> Checkpoint:
         raise FactorizeError(f"{p}: the index does not match its shards", wrong, fix="re-create the index")
     meta = index.get("metadata") if isinstance(index.get("metadata"), dict) else {}
     return Checkpoint(files=headers, index=p, index_metadata=meta)
+
+
+MAX_JSON_DEPTH = 64  # plans, indexes and manifests nest a few levels; deeper is corrupt or crafted
+
+
+def json_depth(text: str) -> int:
+    """The deepest nesting of arrays and objects in ``text`` (JSON), found without recursion."""
+    depth = deepest = 0
+    in_string = escaped = False
+    for c in text:
+        if in_string:
+            if escaped:
+                escaped = False
+            elif c == "\\":
+                escaped = True
+            elif c == '"':
+                in_string = False
+        elif c == '"':
+            in_string = True
+        elif c in "[{":
+            depth += 1
+            deepest = max(deepest, depth)
+        elif c in "]}":
+            depth -= 1
+    return deepest
+
+
+def load_json(text: str, where: str, fix: str):
+    """``json.loads(text)``, refusing (FactorizeError naming ``where``) text that is not JSON or nests deeper
+    than :data:`MAX_JSON_DEPTH` levels, which would otherwise exhaust the parser's recursion."""
+    if json_depth(text) > MAX_JSON_DEPTH:
+        raise FactorizeError(f"{where}: JSON nested more than {MAX_JSON_DEPTH} levels deep: corrupt or crafted",
+                             fix=fix)
+    try:
+        return json.loads(text)
+    except (json.JSONDecodeError, RecursionError) as e:
+        raise FactorizeError(f"{where}: not valid JSON ({e})", fix=fix) from None
 
 
 def read_plan(path: str | os.PathLike) -> dict:
@@ -170,12 +208,11 @@ def _plan_and_aliases(ckpt: Checkpoint, path) -> tuple[dict, dict[str, str]]:
             fix="upgrade factorize to the version that wrote the file (see its 'factorize.library_version' "
             "metadata), or re-create the checkpoint with this version",
         )
-    try:
-        plan = json.loads(meta[KEY_PLAN])
-        aliases = json.loads(meta.get(KEY_ALIASES, "{}"))
-    except (KeyError, json.JSONDecodeError) as e:
-        raise FactorizeError(f"{path}: the plan in the metadata is missing or not JSON ({e})",
-                             fix="re-create the checkpoint") from None
+    if KEY_PLAN not in meta:
+        raise FactorizeError(f"{path}: the plan in the metadata is missing", fix="re-create the checkpoint")
+    plan = load_json(meta[KEY_PLAN], f"{path}: the plan in the metadata", fix="re-create the checkpoint")
+    aliases = load_json(meta.get(KEY_ALIASES, "{}"), f"{path}: {KEY_ALIASES!r} metadata",
+                        fix="re-create the checkpoint")
     if not isinstance(plan, dict) or plan.get("format") != PLAN_FORMAT or not isinstance(plan.get("sites"), dict):
         raise FactorizeError(f"{path}: the metadata holds no valid factorize plan", fix="re-create the checkpoint")
     from factorize.rewrite.apply import check_plan
@@ -365,7 +402,7 @@ def _load_weights(model: nn.Module, ckpt: Checkpoint, aliases: Mapping[str, str]
             "strict=False tolerates missing/unexpected keys and casts dtypes",
         )
     if notes:
-        warnings.warn(f"{path}: loaded with strict=False; " + "; ".join(notes), stacklevel=3)
+        warnings.warn(f"{path}: loaded with strict=False; " + "; ".join(notes), stacklevel=caller_stacklevel())
     for h in ckpt.files:
         with safe_open(str(h.path), framework="pt", device="cpu") as f:
             chunk = {k: f.get_tensor(k) for k in h.tensors if k in expected}

@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import importlib
 import os
+import pickle
 import sys
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
@@ -38,7 +39,7 @@ from factorize.storage import check_safetensors, read_safetensors
 
 PICKLE_SUFFIXES = (".pt", ".pth", ".bin", ".ckpt", ".pkl")
 DEFAULT_SPEC = "factorize.default:load_default"  # the embedded digits classifier
-HF_EXTRA = 'pip install "factorize[hf]"'
+HF_EXTRA = 'pip install ".[hf]" (in a checkout of factorize)'
 TOKENIZER_FILES = ("tokenizer.json", "tokenizer_config.json", "vocab.txt", "vocab.json", "tokenizer.model")
 
 
@@ -326,12 +327,25 @@ def _from_directory(path: Path, *, allow_pickle: bool) -> LoadedModel:
 
     try:
         model = cls.from_pretrained(path, local_files_only=True, use_safetensors=bool(weight_files))
+    except pickle.UnpicklingError as err:  # --allow-pickle: torch.load(weights_only=True) refused the file
+        raise _pickle_refused(pickled, err) from None
     except (OSError, ValueError, RuntimeError) as err:
         raise FactorizeError(f"{path}: transformers could not load the model: {str(err).splitlines()[0]}",
                              fix="check that the weights belong to config.json; save again with save_pretrained()") from None
     tokenizer = _tokenizer(transformers, path)
     return LoadedModel(source=str(path), kind="transformers", model=model.eval(), path=path, tokenizer=tokenizer,
                        build=build)
+
+
+def _pickle_refused(pickled: list[Path], err: Exception) -> FactorizeError:
+    """One message for a pickled weights file that ``torch.load(weights_only=True)`` refused, naming the file."""
+    lines = [line.strip() for line in str(err).splitlines() if line.strip()]
+    reason = next((line for line in lines if "GLOBAL" in line), lines[0] if lines else type(err).__name__)
+    names = ", ".join(str(p) for p in pickled)
+    return FactorizeError(
+        f"{names}: torch.load(weights_only=True) refused the pickled weights: {reason}",
+        fix="the file holds more than tensors (unpickling it fully could run code from it); get a safetensors copy "
+        "of the weights, or convert the file where it was made, from a source you trust")
 
 
 def _from_factorize_directory(path: Path) -> LoadedModel:

@@ -3,7 +3,7 @@
 Output rules: tables (rich) and the report go to stdout; progress bars (tqdm) and warnings go to stderr, and
 progress vanishes with ``--quiet``. With ``--json`` stdout holds exactly one JSON object and nothing else (on
 failure too: ``{"error": ...}``). Exit codes: 0 done, 1 a requested check failed (``--max-drift``), 2 bad usage
-or bad input -- one clear message on stderr, no traceback.
+or bad input -- one clear message on stderr, no traceback -- and 130 interrupted (nothing written).
 
 Layout: :mod:`.parser` (options; torch-free, so ``--help`` is quick), one module per command (``run(args, ui)``,
 importing the library at its top), :mod:`.common` (model, policy, inputs, output files) and :mod:`.render`
@@ -55,9 +55,8 @@ def _parse(parser, argv: list[str]):
         text = caught.getvalue()
         sys.stderr.write(text)
         if done.code not in (0, None):
-            lines = [line for line in text.splitlines() if line.strip()]
-            message = lines[-1] if lines else "usage error"
-            message = message.split(": error: ", 1)[-1]
+            lines = [line for line in text.splitlines() if ": error: " in line]
+            message = lines[-1].split(": error: ", 1)[-1] if lines else "usage error"
             payload = {"error": message, "problems": [], "fix": "see 'factorize COMMAND --help'", "exit_code": 2}
             sys.stdout.write(json.dumps(payload) + "\n")
         raise
@@ -88,12 +87,21 @@ def _dispatch(args, ui: UI) -> int:
     except (FileNotFoundError, PermissionError, IsADirectoryError, NotADirectoryError) as err:
         where = f"{err.filename}: " if err.filename else ""
         return ui.fail(f"{where}{err.strerror or err}", 2, fix="check the path and its permissions")
-    except SafetensorError as err:
-        return ui.fail(f"not a valid safetensors file: {err}", 2, fix="copy or save the file again")
+    except SafetensorError as err:  # the safetensors library's own check (e.g. overlapping tensors)
+        return ui.fail(f"{_safetensors_inputs(args)}not a valid safetensors file: {err}", 2,
+                       fix="the file is damaged or was not written by a safetensors writer; copy or save it again")
     except KeyboardInterrupt:
         ui.err.print("interrupted; nothing was written")
         return 130
     return ui.finish(result)
+
+
+def _safetensors_inputs(args) -> str:
+    """'a.safetensors, b.safetensors: ' -- the safetensors files this command reads, for a message about one."""
+    from .common import input_paths
+
+    names = [str(p) for paths in input_paths(args).values() for p in paths if p.suffix == ".safetensors"]
+    return ", ".join(dict.fromkeys(names)) + ": " if names else ""
 
 
 if __name__ == "__main__":

@@ -107,6 +107,11 @@ def warn_nonfinite_weights(loaded: LoadedModel, ui: UI) -> None:
         return
     import torch
 
+    meta = [name for name, t in loaded.model.state_dict().items() if t.is_meta]
+    if meta:  # shapes without values: refused up front, before any work
+        raise FactorizeError(f"--model {loaded.source}: {len(meta)} tensor(s) are on the meta device (shapes only, "
+                             "no values)", meta[:20], fix="build the model with real weights (load its state dict, "
+                             "or call model.to_empty(device='cpu') and load the weights, before returning it)")
     bad = [f"{name} ({int((~torch.isfinite(t)).sum())})" for name, t in loaded.model.state_dict().items()
            if t.is_floating_point() and not bool(torch.isfinite(t).all())]
     if bad:
@@ -418,7 +423,7 @@ def _shards_of(p: Path) -> list[Path]:
     try:
         index = json.loads(p.read_text(encoding="utf-8"))
         return [p.parent / s for s in set(index.get("weight_map", {}).values()) if isinstance(s, str)]
-    except (OSError, ValueError, AttributeError):
+    except (OSError, ValueError, AttributeError, RecursionError):
         return []  # a broken index is reported by the loader, with its own message
 
 

@@ -24,7 +24,7 @@ from .common import (
     sample_inputs,
     write_text,
 )
-from .render import UI
+from .render import UI, print_words
 
 
 def run(args, ui: UI) -> dict:
@@ -53,8 +53,8 @@ def run(args, ui: UI) -> dict:
     result = {"command": "compare", "model": loaded.source, "against": args.against, "report": report.to_json(),
               "report_file": str(report_path) if report_path else None}
     if args.max_drift is not None and report.drift["relative_l2"] > args.max_drift:
-        ui.err.print(f"check failed: relative L2 output drift {report.drift['relative_l2']:.4g} is above "
-                     f"--max-drift {args.max_drift:g}", markup=False)
+        print_words(ui.err, f"check failed: relative L2 output drift {report.drift['relative_l2']:.4g} is above "
+                    f"--max-drift {args.max_drift:g}")
         ui.exit_code = 1
     return result
 

@@ -75,16 +75,15 @@ def _measured(model, result, budget: float, method: str, x, y, batches, repeats:
 
 
 def render(result: dict, runs: list[dict], ui: UI, plain: list[dict] = ()) -> None:
-    ui.out.print(f"[bold]factorize demo[/]: {result['model']}\ndata: {result['data']}", highlight=False)
+    ui.line(f"factorize demo: {result['model']}\ndata: {result['data']}")
     table = Table(title="1. scan: what the spectra allow", title_justify="left")
     for name in ("layer", "shape", "params", "r@90%", "r@99%", "break-even", "spectrum"):
-        table.add_column(name, justify="left" if name in ("layer", "shape", "spectrum") else "right",
-                         no_wrap=name != "layer", overflow="fold" if name == "layer" else "ellipsis")
+        table.add_column(name, justify="left" if name in ("layer", "shape", "spectrum") else "right")
     for r in result["scan"]:
         m, n = r["shape"]
         table.add_row(r["name"], f"{m}x{n}", f"{r['params']:,}", opt(r["rank_90"]), opt(r["rank_99"]),
                       str(r["break_even"]), spectrum_sketch(r["spectrum"]))
-    ui.out.print(table)
+    ui.table(table)
     summary = Table(title="2. shrink: mild and strong budgets, calibrated (the recommended call) and plain SVD for "
                     "comparison, measured on the held-out digits; each saved to a temporary file and reloaded",
                     title_justify="left")
@@ -97,8 +96,8 @@ def render(result: dict, runs: list[dict], ui: UI, plain: list[dict] = ()) -> No
                         pct(rep.accuracy_before), pct(rep.accuracy_after), pct(rep.drift["top1_agreement"]),
                         g4(rep.drift["relative_l2"]), f"{r['file_bytes'] / 1e3:.1f} kB",
                         "exact" if r["reloaded_outputs_identical"] else "DIFFERS")
-    ui.out.print(summary)
-    ui.out.print(f"\n3. the full report at the strongest budget ({runs[-1]['budget']:g}), calibrated:")
+    ui.table(summary)
+    ui.line(f"\n3. the full report at the strongest budget ({runs[-1]['budget']:g}), calibrated:")
     render_rich(runs[-1]["_report"], ui.out, caution=False)  # the caution closes the demo, once
     ui.caution(result["caution"])
-    ui.out.print(NEXT_STEPS, soft_wrap=True, markup=False)
+    ui.steps(NEXT_STEPS)

@@ -37,13 +37,12 @@ def run(args, ui: UI) -> dict:
     extra = {"opset": args.opset} if fmt == "onnx" else {}
     done = write(loaded.model, example, output, dynamic_batch=not args.fixed_batch, force=args.force, **extra)
     if not ui.json_mode:
-        ui.out.print(f"wrote {done.path} ({fmt}, {'any batch size' if done.dynamic_batch else 'fixed batch size'})",
-                     markup=False)
+        ui.line(f"wrote {done.path} ({fmt}, {'any batch size' if done.dynamic_batch else 'fixed batch size'})")
         if done.max_abs_diff is None:
-            ui.out.print("not run here (onnxruntime is not installed): parity not measured", markup=False)
+            ui.line("not run here (onnxruntime is not installed): parity not measured")
         else:
-            ui.out.print(f"run with {done.checked_with} on the traced batch: largest absolute output difference "
-                         f"to torch {done.max_abs_diff:.3g}", markup=False)
+            ui.line(f"run with {done.checked_with} on the traced batch: largest absolute output difference "
+                    f"to torch {done.max_abs_diff:.3g}")
     return {"command": "export", "model": loaded.source, "inputs": inputs.source, **done.to_json()}
 
 

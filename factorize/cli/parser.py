@@ -31,13 +31,24 @@ SCAN_ENERGY = 0.9  # scan suggests the smallest rank keeping this fraction of su
 OUTPUT_SUFFIX = ".factorized.safetensors"
 
 
+EXIT_CODES = ("Exit codes: 0 done, 1 a requested check failed (--max-drift, an unreachable --target-drift), 2 bad\n"
+              "usage or bad input, 130 interrupted (Ctrl-C; nothing was written).")
+
+
+class Parser(argparse.ArgumentParser):
+    """argparse, except that a usage error is one line and a pointer to ``--help`` (exit 2), not the usage block."""
+
+    def error(self, message: str):  # type: ignore[override]
+        self.exit(2, f"{self.prog}: error: {message}\nRun '{self.prog} --help' for the options.\n")
+
+
 class _Formatter(argparse.RawDescriptionHelpFormatter):
     def __init__(self, prog: str) -> None:
         super().__init__(prog, max_help_position=32, width=100)
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = Parser(
         prog=PROG,
         formatter_class=_Formatter,
         description="Shrink trained PyTorch models by low-rank factorization of their dense layers, and measure\n"
@@ -52,8 +63,7 @@ def build_parser() -> argparse.ArgumentParser:
             "factorize compare --model mypkg.models:build --weights model.safetensors \\\n"
             "    --against model.factorized.safetensors --inputs samples.npz",
         )
-        + "\nRun 'factorize COMMAND --help' for each command's options. Exit codes: 0 done, 1 a requested check\n"
-        "failed (--max-drift), 2 bad usage or bad input.\n"
+        + "\nRun 'factorize COMMAND --help' for each command's options.\n" + EXIT_CODES + "\n"
         "Security: --model package.module:callable imports and runs Python code, searching the working directory\n"
         "first; run factorize only where every module it could import is code you trust (pickles are refused).",
     )
@@ -287,7 +297,7 @@ def _check_options():
     p = argparse.ArgumentParser(add_help=False)
     g = p.add_argument_group("checks")
     g.add_argument("--max-drift", type=_nonnegative("--max-drift"), metavar="X",
-                   help="exit 1 (and write no checkpoint) when the relative L2 output drift is above X")
+                   help="exit 1 when the relative L2 output drift is above X (shrink then writes no checkpoint)")
     return p
 
 

@@ -13,7 +13,11 @@ from typing import IO, Any
 
 from rich.console import Console
 from rich.panel import Panel
-from rich.text import Text
+
+from factorize.errors import printable
+from factorize.measure.layout import print_table, print_words
+
+__all__ = ["UI", "g4", "opt", "pct", "print_table", "print_words", "printable", "spectrum_profile", "spectrum_sketch"]
 
 SKETCH_LEVELS = " ▁▂▃▄▅▆▇█"  # spectrum sketch: one character per slice of the singular values, height = s / s_max
 SKETCH_WIDTH = 12
@@ -48,17 +52,34 @@ class UI:
             yield
 
     def warn(self, text: str) -> None:
-        self.err.print(Text("warning: ", style="yellow") + Text(printable(text)))
+        print_words(self.err, text, prefix="warning: ", prefix_style="yellow")
 
     def note(self, text: str) -> None:
         if not self.quiet:
-            self.err.print(text, markup=False)
+            print_words(self.err, text)
+
+    def line(self, text: str) -> None:
+        """One paragraph on stdout, wrapped between words only (control characters escaped)."""
+        print_words(self.out, text)
+
+    def steps(self, text: str) -> None:
+        """'next steps: a; b; c' as one heading and one wrapped line per step, so a command stays together."""
+        head, _, rest = text.partition(": ")
+        print_words(self.out, head + ":")
+        for step in rest.split("; "):
+            print_words(self.out, f"  - {step}")
+
+    def table(self, table) -> None:
+        """A rich Table on stdout: whole when it fits, one record per row when not (see measure/layout.py)."""
+        print_table(self.out, table)
 
     def fail(self, message: str, code: int, *, problems: Sequence[str] = (), fix: str | None = None) -> int:
         message, problems = printable(message), [printable(p) for p in problems]
         fix = None if fix is None else printable(fix)
         prefix = "error: " if code == 2 else "check failed: "
-        self.err.print(Text(prefix, style="bold red") + Text(message), soft_wrap=True)
+        print_words(self.err, message, prefix=prefix, prefix_style="bold red")
+        if fix and f"Fix: {fix}" not in message:  # a FactorizeError's text carries its fix already
+            print_words(self.err, f"Fix: {fix}")
         if self.json_mode:
             payload = {"error": message.splitlines()[0], "problems": list(problems), "fix": fix, "exit_code": code}
             self.stdout.write(json.dumps(payload) + "\n")
@@ -71,12 +92,6 @@ class UI:
 
     def caution(self, text: str) -> None:
         self.out.print(Panel(text, title="caution", title_align="left", border_style="yellow"))
-
-
-def printable(text: str) -> str:
-    """``text`` with control characters (terminal escape sequences among them) shown as '?'; line breaks stay.
-    Names in messages come from files and user code, and must not drive the terminal."""
-    return "".join(c if c.isprintable() or c == "\n" else "?" for c in str(text))
 
 
 def _width(stream) -> int | None:

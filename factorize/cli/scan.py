@@ -67,18 +67,17 @@ def render(result: dict, ui: UI) -> None:
     for name, justify in (("layer", "left"), ("kind", "left"), ("shape", "left"), ("params", "right"),
                           ("r@90%", "right"), ("r@99%", "right"), ("r@99.9%", "right"), ("break-even", "right"),
                           ("suggested", "right"), ("spectrum", "left")):
-        table.add_column(name, justify=justify, no_wrap=name in ("spectrum", "shape"),  # type: ignore[arg-type]
-                         overflow="fold" if name == "layer" else "ellipsis")  # full layer names, wrapped
+        table.add_column(name, justify=justify)  # type: ignore[arg-type]
     for r in result["layers"]:
         m, n = r["shape"]
         table.add_row(r["name"], r["kind"], f"{m}x{n}", f"{r['params']:,}", opt(r["rank_90"]), opt(r["rank_99"]),
                       opt(r["rank_999"]), str(r["break_even"]),
                       "dense" if r["suggested_rank"] is None else str(r["suggested_rank"]),
                       spectrum_sketch(r["spectrum"]))
-    ui.out.print(table)
+    ui.table(table)  # whole when it fits, else one record per layer; names never cut
     before, after = result["params"], result["params_at_suggested"]
-    ui.out.print(f"suggested ranks keep {result['target_energy']:g} of each layer's spectral energy: "
-                 f"{before:,} -> {after:,} weight parameters ({after / before:.1%} kept). "
+    ui.line(f"suggested ranks keep {result['target_energy']:g} of each layer's spectral energy: "
+                 f"{before:,} -> {after:,} weight parameters ({after / max(before, 1):.1%} kept). "
                  "Spectrum: slices of the singular values, largest first, bar height s / s_max.")
     for s in result["skipped"]:
-        ui.out.print(f"skipped {s['name']}: {s['reason']}")
+        ui.line(f"skipped {s['name']}: {s['reason']}")

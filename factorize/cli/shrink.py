@@ -80,8 +80,8 @@ def run(args, ui: UI) -> dict:
             raise
     if not ui.json_mode:
         render_rich(report, ui.out)
-        ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
-        ui.out.print(next_steps(output, loaded, report_path), soft_wrap=True, markup=False)
+        ui.line(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
+        ui.steps(next_steps(output, loaded, report_path))
     return {"command": "shrink", "model": loaded.source, "output": str(output),
             "report_file": str(report_path) if report_path else None, "report": report.to_json(), "plan": plan,
             **ran}
@@ -283,7 +283,7 @@ def _shrink_blockwise(args, opts: Options, policy, ui: UI) -> dict:
             raise
     if not ui.json_mode:
         render_rich(report, ui.out)
-        ui.out.print(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
+        ui.line(f"wrote {output}" + (f" and {report_path}" if report_path else ""))
     return {"command": "shrink", "model": str(model_dir), "output": str(output),
             "report_file": str(report_path) if report_path else None, "report": report.to_json(),
             "plan": done.plan, "memory": done.memory()}

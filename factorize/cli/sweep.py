@@ -38,7 +38,7 @@ from .common import (
 )
 from .render import UI, g4, pct
 
-PLOT_EXTRA = 'pip install "factorize[plot]"'
+PLOT_EXTRA = 'pip install ".[plot]" (in a checkout of factorize)'
 DRIFT_KEYS = ("relative_l2", "cosine_mean", "cosine_min", "top1_agreement", "kl")
 REPORT_KEYS = ("accuracy_before", "accuracy_after", "worst_weight_error", "macs_before", "macs_after",
                "latency_ms_before", "latency_ms_after")
@@ -161,6 +161,13 @@ def _matplotlib():
     return plt
 
 
+def plot_title(source: str, limit: int = 40) -> str:
+    """The model for a plot title: a path's last part (a folder or file name, not the absolute path, which the
+    title's width cuts at both edges), at most ``limit`` characters, shortened in the middle."""
+    name = Path(source).name or source if ("/" in source or "\\" in source) else source
+    return name if len(name) <= limit else name[: limit // 2 - 1] + "..." + name[-(limit - limit // 2 - 2):]
+
+
 def _plot(rows: list[dict], path: Path, title: str, force: bool) -> None:
     plt = _matplotlib()
     fig, ax = plt.subplots(figsize=(6.4, 4.2), dpi=120)
@@ -171,7 +178,7 @@ def _plot(rows: list[dict], path: Path, title: str, force: bool) -> None:
         ax.annotate(f"{r['budget']:g}", (xi, r[key]), textcoords="offset points", xytext=(4, 4), fontsize=8)
     ax.set_xlabel("parameters kept (% of the original model)")
     ax.set_ylabel("relative L2 output drift" if key == "relative_l2" else "worst relative weight error")
-    ax.set_title(f"factorize sweep: {title}", fontsize=10)
+    ax.set_title(f"factorize sweep: {plot_title(title)}", fontsize=10)
     ax.grid(alpha=0.3)
     if rows and rows[0].get("accuracy_after") is not None:
         ax2 = ax.twinx()
@@ -190,7 +197,8 @@ def render(result: dict, ui: UI) -> None:
                   title_justify="left")
     columns = [("budget", "budget", lambda v: f"{v:g}"), ("params kept", "kept_fraction", pct),
                ("params", "params_after", lambda v: f"{v:,}"), ("layers factored", "factored_layers", str),
-               ("relative L2", "relative_l2", g4), ("cosine worst", "cosine_min", lambda v: f"{v:.6f}"),
+               ("relative L2", "relative_l2", g4), ("cosine mean", "cosine_mean", lambda v: f"{v:.6f}"),
+               ("cosine worst", "cosine_min", lambda v: f"{v:.6f}"),
                ("top-1 agree", "top1_agreement", pct), ("accuracy", "accuracy_after", pct),
                ("worst weight err", "worst_weight_error", lambda v: f"{v:.4f}")]
     columns = [c for c in columns if any(r.get(c[1]) is not None for r in rows)]
@@ -198,10 +206,10 @@ def render(result: dict, ui: UI) -> None:
         table.add_column(title, justify="left" if title == "budget" else "right")
     for r in rows:
         table.add_row(*["-" if r.get(key) is None else fmt(r[key]) for _, key, fmt in columns])
-    ui.out.print(table)
+    ui.table(table)
     if rows and rows[0].get("accuracy_before") is not None:
-        ui.out.print(f"accuracy of the original: {pct(rows[0]['accuracy_before'])}")
+        ui.line(f"accuracy of the original: {pct(rows[0]['accuracy_before'])}")
     for kind in ("csv", "plot"):
         if result.get(kind):
-            ui.out.print(f"wrote {result[kind]}")
+            ui.line(f"wrote {result[kind]}")
     ui.caution(result["caution"])

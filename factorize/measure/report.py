@@ -16,7 +16,8 @@ from typing import Any
 from rich.console import Console
 from rich.panel import Panel
 from rich.table import Table
-from rich.text import Text
+
+from .layout import print_table, print_words
 
 REPORT_FORMAT = "factorize.report"
 REPORT_VERSION = 1
@@ -180,7 +181,7 @@ class Report:
         """A sentence when the latency change is inside the noise (see :attr:`latency_conclusive`)."""
         if self.latency_conclusive is not False:
             return None
-        threads = f" with {self.latency_threads} threads" if self.latency_threads else ""
+        threads = f" with {_threads(self.latency_threads)}" if self.latency_threads else ""
         return (f"Latency is inconclusive: the interquartile ranges of the {self.latency_repeats} timed passes "
                 f"overlap{threads}, so the change is within this machine's run-to-run noise. Time again with more "
                 "repeats (--repeats), on an idle machine, or with a fixed thread count.")
@@ -254,7 +255,7 @@ class Report:
             rows.append(("perplexity (next token)", f"{self.perplexity_before:.4g}", f"{self.perplexity_after:.4g}",
                          _change(self.perplexity_before, self.perplexity_after)))
         if self.latency_ms_before is not None:
-            threads = f", {self.latency_threads} threads" if self.latency_threads else ""
+            threads = f", {_threads(self.latency_threads)}" if self.latency_threads else ""
             rows.append((f"latency, median of {self.latency_repeats} (batch {self.latency_batch}{threads})",
                          f"{self.latency_ms_before:.3f} ms", f"{self.latency_ms_after:.3f} ms",
                          _change(self.latency_ms_before, self.latency_ms_after)))
@@ -293,9 +294,9 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
         summary.add_column(name, justify="right")
     for row in report.summary_rows():
         summary.add_row(*row)
-    console.print(summary)
+    print_table(console, summary)  # whole when it fits, else one record per row (measure/layout.py)
     if report.setup():
-        console.print(f"setup: {report.setup()}", highlight=False, soft_wrap=True)
+        print_words(console, f"setup: {report.setup()}")
     if report.drift is not None:
         drift = Table(title=f"output drift on {report.samples} sample inputs ({report.inputs or 'given inputs'})",
                       title_justify="left")
@@ -303,21 +304,20 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
         drift.add_column("value", justify="right")
         for row in report.drift_rows():
             drift.add_row(*row)
-        console.print(drift)
+        print_table(console, drift)
     if report.layers:
         layers = Table(title="layers", title_justify="left")
         for name, justify in (("layer", "left"), ("kind", "left"), ("shape", "left"), ("rank", "right"),
                               ("params", "right"), ("params after", "right"), ("weight error", "right"),
                               ("MACs after", "right")):
-            layers.add_column(name, justify=justify,  # type: ignore[arg-type]
-                              overflow="fold" if name == "layer" else "ellipsis")  # full names, wrapped, never cut
+            layers.add_column(name, justify=justify)  # type: ignore[arg-type]
         for layer in report.layers:
             layers.add_row(*_layer_cells(layer))
-        console.print(layers)
+        print_table(console, layers)  # full names: never wrapped inside, never cut
     for note in report.notes + ([report.latency_note()] if report.latency_note() else []):
-        console.print(Text("Note: ", style="yellow") + Text(note))
+        print_words(console, note, prefix="Note: ", prefix_style="yellow")
     for line in report.advice():
-        console.print(f"[bold red]{line}[/]", highlight=False)
+        print_words(console, line, style="bold red")
     if caution:
         console.print(Panel(report.caution, title="caution", title_align="left", border_style="yellow"))
 
@@ -350,6 +350,10 @@ def _drift_value(key: str, v: float) -> str:
 
 def _ms_range(v: list[float]) -> str:
     return f"{v[0]:.3f}-{v[1]:.3f} ms"
+
+
+def _threads(n: int) -> str:
+    return f"{n} thread" if n == 1 else f"{n} threads"
 
 
 def _int(v: int | None) -> str:

@@ -177,6 +177,9 @@ def _kind_of(module: nn.Module) -> tuple[str | None, str | None]:
     reason = _unsafe(module)
     if reason is not None:
         return None, reason
+    weight = getattr(module, "weight", None)
+    if isinstance(weight, torch.Tensor) and weight.dim() >= 2 and weight.numel() == 0:
+        return None, f"weight of shape {tuple(weight.shape)} has a zero-size dimension: nothing to factor; left dense"
     if isinstance(module, nn.Linear):
         return "linear", None
     if isinstance(module, nn.modules.conv._ConvNd):
@@ -292,6 +295,7 @@ def walk(
             f"expected a torch.nn.Module, got {type(model).__name__}",
             fix="pass the model object itself (for a checkpoint file, build the architecture and load it first)",
         )
+    _refuse_meta(model)
     include_p = _as_patterns(include, "include")
     exclude_p = _as_patterns(exclude, "exclude")
     owners = _shared_weights(model)
@@ -311,6 +315,16 @@ def walk(
         result.sites.append(_make_site(name, module, kind, owners))
     result.skipped.extend(_uncovered(model, result, include_p, exclude_p))
     return result
+
+
+def _refuse_meta(model: nn.Module) -> None:
+    """Parameters on the meta device have shapes but no values: nothing can be measured or factored."""
+    meta = [n for n, p in model.named_parameters() if p.is_meta]
+    if meta:
+        raise FactorizeError(
+            f"{len(meta)} parameter(s) of the model are on the meta device (shapes only, no values)", meta[:20],
+            fix="load real weights first: model.to_empty(device='cpu') then model.load_state_dict(...), or build "
+            "the model without device='meta' (or an empty-weights context)")
 
 
 def _uncovered(model: nn.Module, found: WalkResult, include_p, exclude_p) -> list[Skipped]:

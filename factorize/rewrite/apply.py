@@ -91,7 +91,9 @@ def check_plan(plan: Any, where: str = "") -> None:
     for name, e in plan["sites"].items():
         problems += _entry_problems(_shown(name), e)
     if problems:
-        raise FactorizeError(f"{prefix}the plan is malformed ({len(problems)} problem(s))", problems[:50],
+        named = list(dict.fromkeys(p.split(": ", 1)[0] for p in problems))  # the layers (or 'version') at fault
+        shown = ", ".join(named[:3]) + (f" and {len(named) - 3} more" if len(named) > 3 else "")
+        raise FactorizeError(f"{prefix}the plan is malformed ({len(problems)} problem(s), in {shown})", problems[:50],
                              fix="re-create the plan with compress(), or correct the listed entries")
 
 

@@ -45,7 +45,7 @@ from pathlib import Path
 import torch
 from safetensors import safe_open
 
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, caller_stacklevel
 from factorize.spectra.decompose import METHODS, Spectrum, compute_dtype_for, decompose
 from factorize.storage import (
     create_temp,
@@ -153,7 +153,7 @@ class SpectrumCache:
         except Exception as e:  # noqa: BLE001 - any unreadable entry is ignored, said, and recomputed
             self.add_counts(corrupt=1, misses=1)
             warnings.warn(f"cache entry {path} is unusable ({e}); ignoring it and recomputing", CacheWarning,
-                          stacklevel=2)
+                          stacklevel=caller_stacklevel())
             return None
         self.add_counts(hits=1)
         return spec
@@ -188,7 +188,8 @@ class SpectrumCache:
             write_atomic(self.path_for(key), lambda tmp: write_safetensors(tmp, {"U": U, "S": S, "Vh": Vh}, meta),
                          force=True)
         except FactorizeError as e:
-            warnings.warn(f"could not store a cache entry in {self.directory}: {e}", CacheWarning, stacklevel=2)
+            warnings.warn(f"could not store a cache entry in {self.directory}: {e}", CacheWarning,
+                          stacklevel=caller_stacklevel())
             return False
         self.add_counts(stored=1)
         return True

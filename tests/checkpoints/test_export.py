@@ -158,7 +158,7 @@ def test_onnx_missing_names_the_extra(tmp_path, monkeypatch):
     model, x = _mlp()
     with pytest.raises(FactorizeError) as err:
         export_onnx(model, x, tmp_path / "m.onnx")
-    assert 'pip install "factorize[export]"' in str(err.value)
+    assert 'pip install ".[export]"' in str(err.value)  # the extra, installed from a checkout
     assert not list(tmp_path.iterdir())
 
 
