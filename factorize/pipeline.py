@@ -20,14 +20,20 @@ from typing import Any
 
 from torch import nn
 
-from factorize.calibrated.options import CalibrationOptions, calibrated_setup, refuse_with_calibration
+from factorize.calibrated.options import (
+    CalibrationOptions,
+    calibrated_setup,
+    refuse_with_calibration,
+)
 from factorize.calibrated.search import CalibratedResult, compress_calibrated  # noqa: F401 - re-exported
 from factorize.errors import FactorizeError, UnverifiedModelWarning
 from factorize.execution import Execution, resolve_execution
 from factorize.measure.evaluate import with_macs
+from factorize.measure.latency import latency_plan
 from factorize.model.count import count_parameters
 from factorize.model.sites import WalkResult, walk
 from factorize.plan.entries import factored_ranks
+from factorize.plan.forms import bytes_plan
 from factorize.plan.policy import (
     AWARE_METHODS,
     POLICY_KEYWORDS,
@@ -37,7 +43,6 @@ from factorize.plan.policy import (
     resolve_policy,
     values_first,  # the rule lives in the plan layer (the weights-only shrink calls it too)
 )
-from factorize.plan.forms import bytes_plan
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, apply_plan
 from factorize.rewrite.verify import check_runs, keep_working
@@ -174,13 +179,16 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
     todo = [s for s in found.sites if not s.tied_with]
     have = dict(run.spectra or {})
     need = [s for s in todo if s.name not in have]
-    if policy.cost == "bytes":  # rank and stored precision chosen together: candidates need every vector pair
+    if policy.cost in ("bytes", "latency"):  # candidate forms priced per layer: they need every vector pair
         if run.speed_check:
-            raise FactorizeError("speed_check times factored layers against dense ones at one precision; a budget in "
-                                 "bytes also chooses stored precisions", fix="drop speed_check, or use cost='params'")
+            raise FactorizeError(f"speed_check times factored layers against dense ones; a budget in {policy.cost} "
+                                 "already prices every form", fix="drop speed_check, or use cost='params'")
         have.update(decompose_sites(model, need, method="gram" if policy.method == "auto" else policy.method,
                                     execution=run.execution, cache=run.cache))
-        plan = bytes_plan(model, found.sites, have, policy, method=policy.method)
+        if policy.cost == "latency":
+            plan = latency_plan(model, found.sites, have, policy, run.example, method=policy.method)
+        else:
+            plan = bytes_plan(model, found.sites, have, policy, method=policy.method)
     elif values_first(policy):  # ranks unknown until every spectrum is in: values, allocation, then kept vectors
         have.update(values_sites(model, need, keep_gram=True, execution=run.execution, cache=run.cache))
         plan = choose_ranks(found.sites, have, policy, method=policy.method)
@@ -282,7 +290,9 @@ def _keep_fast(model, target, found, have, plan, policy, run, inplace):
 def _plan_without(found, have, policy, slow: Mapping[str, str]) -> dict:
     """The plan with the ``slow`` layers left out of the allocation (kept dense) and the budget spread over the
     rest; when the rest cannot meet it either, one error naming every slow layer."""
-    from factorize.plan.ranks import site_entry  # one plan row, as choose_ranks writes it
+    from factorize.plan.ranks import (
+        site_entry,  # one plan row, as choose_ranks writes it
+    )
 
     rest = [s for s in found.sites if s.name not in slow]
     try:

@@ -17,6 +17,7 @@ from typing import Any
 
 import torch
 
+from factorize.measure.latency import latency_plan
 from factorize.plan.forms import LayerMetric, bytes_plan, price_sites
 from factorize.plan.policy import Policy
 
@@ -53,6 +54,14 @@ def calibrated_bytes_plan(calib: Calibration, policy: Policy, priced: dict) -> d
         priced[key] = price_sites(calib.model, calib.found.sites, calib.spectra, policy, metrics=metrics)
     return bytes_plan(calib.model, calib.found.sites, calib.spectra, policy, method=calib.method,
                       priced=priced[key])
+
+
+def calibrated_latency_plan(calib: Calibration, policy: Policy, example) -> dict:
+    """The plan of ``policy`` (``cost="latency"``) with errors priced on the calibration inputs and time measured
+    on ``example`` (:func:`factorize.measure.latency.latency_plan`)."""
+    metrics = {s.name: layer_metric(calib, s.name) for s in calib.todo}
+    return latency_plan(calib.model, calib.found.sites, calib.spectra, policy, example, method=calib.method,
+                        metrics=metrics)
 
 
 def hessians(calib: Calibration) -> dict[str, torch.Tensor]:

@@ -48,7 +48,7 @@ from factorize.calibrated.aware import (
     compress_sequential,
 )
 from factorize.calibrated.gradients import collect_output_grams
-from factorize.calibrated.precision import calibrated_bytes_plan, hessians
+from factorize.calibrated.precision import calibrated_bytes_plan, calibrated_latency_plan, hessians
 from factorize.calibrated.options import (  # noqa: F401 - DRIFT_METRICS and the defaults are re-exported
     DEFAULT_BUDGETS,
     DEFAULT_TOLERANCE,
@@ -259,6 +259,9 @@ class Calibration:
             self.found = WalkResult(with_macs(self.model, self.found.sites, example), self.found.skipped)
         if policy.cost == "bytes":
             return calibrated_bytes_plan(self, policy, self._priced)
+        if policy.cost == "latency":
+            example = self.options.example if self.options.example is not None else self.batches[0]
+            return calibrated_latency_plan(self, policy, example)
         return choose_ranks(self.found.sites, self.spectra, policy, method=self.method, error_scale=self.error_scale)
 
     def build(self, plan: dict, *, sequential: bool = False, refit: bool = True,

@@ -204,10 +204,20 @@ def _rounding_terms(B, A, p, metric: LayerMetric, hessian) -> np.ndarray | None:
     return (db_norm * a_norm + b_norm * da_norm).clamp_min(0).numpy()
 
 
+def candidate_bytes(chosen: Candidate, shape: tuple[int, int]) -> int:
+    """Stored bytes of a candidate form of an (m, n) matrix view, whatever its ``cost`` counts."""
+    if chosen.form == "factor":
+        return factor_bytes(chosen.precision, shape, chosen.rank)
+    if chosen.form == "corrected":
+        return corrected_bytes(chosen.precision, shape, chosen.rank)
+    return stored_bytes(chosen.precision, shape)
+
+
 def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | None, native: str,
-              scale: float = 1.0) -> dict:
+              scale: float = 1.0, cost: str = "bytes") -> dict:
     """One plan row for a chosen candidate: the rank-only row's keys, plus ``precision``, ``bytes``, ``bytes_after``
-    (and ``correction_rank`` / ``correction_precision`` for the corrected form)."""
+    (and ``correction_rank`` / ``correction_precision`` for the corrected form; ``latency_ms`` when the budget
+    counted measured time)."""
     shape = tuple(site.shape)
     factor = chosen.form == "factor"
     entry = {
@@ -220,9 +230,11 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
         "params_after": site.factored_params(chosen.rank) if factor else site.params,
         "precision": chosen.precision,
         "bytes": stored_bytes(native, shape),
-        "bytes_after": int(chosen.cost),
+        "bytes_after": candidate_bytes(chosen, shape),
         "predicted_error": _relative(chosen.error, scale, spectrum),
     }
+    if cost == "latency":
+        entry["latency_ms"] = float(chosen.cost)
     if chosen.form == "corrected":
         entry.update(correction_rank=chosen.rank, correction_precision=CORRECTION_PRECISION,
                      params_after=site.params + chosen.rank * sum(shape))
@@ -230,6 +242,8 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
         entry["kernel"] = list(site.kernel)
     if spectrum is not None and factor:
         entry["energy_kept"] = spectrum.energy_fraction(chosen.rank)
+    if chosen.reason:
+        entry["notes"] = chosen.reason
     return entry
 
 
@@ -252,33 +266,34 @@ def joint_plan(
     candidates: Mapping[str, Sequence[Candidate]],
     spectra: Mapping[str, Spectrum],
     natives: Mapping[str, str],
-    budget_bytes: float,
+    budget_cost: float,
     *,
     policy: Mapping,
     method: str,
     scales: Mapping[str, float] | None = None,
+    cost: str = "bytes",
 ) -> dict:
     """The plan (same schema as :func:`factorize.plan.ranks.choose_ranks`'s, every row with its precision and
-    bytes) that keeps the summed predicted error least with the sites' stored bytes within ``budget_bytes``.
+    bytes) that keeps the summed predicted error least with the sites' cost (stored bytes, or measured time) within ``budget_cost``.
     Sites without candidates (a weight shared by several modules) stay dense as they are."""
     from factorize.plan.joint import solve
     from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
 
-    selection = solve(candidates, budget_bytes)
-    why = (f"bytes budget: least predicted error over {sum(len(c) for c in candidates.values())} candidate forms"
+    selection = solve(candidates, budget_cost)
+    why = (f"{cost} budget: least predicted error over {sum(len(c) for c in candidates.values())} candidate forms"
            f"{'' if selection.exact else ' (within the certified gap)'}")
     entries = {}
     for s in sites:
         if s.name in selection.chosen:
             entries[s.name] = entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name],
-                                        (scales or {}).get(s.name, 1.0))
+                                        (scales or {}).get(s.name, 1.0), cost)
         else:
             kept = Candidate("dense", natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
             entries[s.name] = entry_for(s, kept, f"weight shared with {', '.join(s.tied_with)}; kept as it is",
                                         None, natives[s.name])
     return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method, "policy": dict(policy),
-            "sites": entries, "selection": {"exact": selection.exact, "bytes": selection.cost,
-                                            "budget_bytes": budget_bytes, "predicted_error": selection.error}}
+            "sites": entries, "selection": {"exact": selection.exact, "cost": cost, cost: selection.cost,
+                                            f"budget_{cost}": budget_cost, "predicted_error": selection.error}}
 
 
 def bytes_plan(

@@ -25,7 +25,7 @@ from factorize.rounding import PRECISIONS, check_precision
 
 POLICY_KEYS = ("rank", "energy", "keep", "budget")
 POLICY_KEYWORDS = (*POLICY_KEYS, "include", "exclude", "overrides", "multiple", "cost", "precisions", "method", "seed")
-COSTS = ("params", "macs", "bytes")  # what budget= counts
+COSTS = ("params", "macs", "bytes", "latency")  # what budget= counts
 # int8 and 4-bit in groups of 64 are what practitioners try first (common practice); bfloat16 keeps the float
 # range at half the bytes. int4 in groups of 32 costs 0.25 bit a weight more for little (measured on MiniLM:
 # held-out cosine 0.9901 against 0.9884, both with error-feedback rounding), so it is allowed but not a default.
@@ -58,7 +58,7 @@ class Policy:
     keep: float | None = None  # fraction of each layer's parameters kept, in (0, 1]
     budget: float | None = None  # fraction of all sites' parameters (or MACs) kept, in (0, 1]
     multiple: int = 1  # round ranks to a multiple of this (8 or 16 suit fast kernels)
-    cost: str = "params"  # what budget= counts: "params", "macs" or "bytes" (stored bytes: rank and precision)
+    cost: str = "params"  # what budget= counts: "params", "macs", "bytes" (stored: rank and precision) or "latency"
     precisions: tuple[str, ...] | None = None  # stored precisions allowed with cost="bytes" (None: the default set)
     overrides: tuple[Override, ...] = field(default_factory=tuple)
     include: tuple[str, ...] | None = None  # only layers matching one of these globs
@@ -188,8 +188,8 @@ def _validate_policy(p: Policy) -> None:
             problems.append(f"precisions must be some of {', '.join(PRECISIONS)}, got {', '.join(bad) or 'none'}")
         elif p.cost != "bytes":
             problems.append("precisions= chooses stored precisions, which only a budget in bytes weighs (cost='bytes')")
-    if p.cost == "bytes" and p.budget is None:
-        problems.append("cost='bytes' counts what budget= keeps; rank=/energy=/keep= choose ranks alone")
+    if p.cost in ("bytes", "latency") and p.budget is None:
+        problems.append(f"cost={p.cost!r} counts what budget= keeps; rank=/energy=/keep= choose ranks alone")
     if isinstance(p.seed, bool) or not isinstance(p.seed, (int, np.integer)):
         problems.append(f"seed must be an integer, got {p.seed!r}")
     elif not 0 <= int(p.seed) < 2**63:  # torch.Generator.manual_seed takes 64-bit seeds; numpy's none below 0

@@ -35,7 +35,7 @@ from factorize.plan.ranks import (
     PRECISION_PLAN_VERSION,
     plan_summary,
 )
-from factorize.rewrite.forms import corrected_layer, store_precisions
+from factorize.rewrite.forms import corrected_layer, release_precisions, store_precisions
 from factorize.rewrite.layers import (
     Factored,
     build_factored,
@@ -232,9 +232,10 @@ FORM_BUILDERS = {FACTOR: _build_factored, CORRECTED: _build_corrected}
 def merge(model: nn.Module, *, inplace: bool = False) -> nn.Module:
     """Merge every factored layer back into a dense layer computing the same function, of the class and weight
     layout of the layer it replaced (GPT-2's ``Conv1D`` stays ``Conv1D``; subclasses stay themselves), so the
-    merged model's state-dict keys are the original model's."""
+    merged model's state-dict keys are the original model's. Stored (rounded) weights come back as float
+    Parameters holding the decoded values, and a rounded-plus-correction layer as one ``nn.Linear``."""
     target = model if inplace else copy.deepcopy(model)
     for name, layer in factored_layers(target).items():
         set_module(target, name, to_dense(layer))
-    return target
+    return release_precisions(target)
 

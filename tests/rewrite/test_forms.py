@@ -114,3 +114,17 @@ def test_export_parity_for_rounded_forms(tmp_path):
     assert program.max_abs_diff is None or program.max_abs_diff <= 1e-4
     onnx = export_onnx(compressed, x, tmp_path / "m.onnx")
     assert onnx.max_abs_diff is not None and onnx.max_abs_diff <= 1e-4
+
+
+def test_merge_gives_back_the_original_classes_and_keys():
+    # merge: factored, rounded and corrected layers back to plain nn.Linear with the original state-dict keys
+    from factorize.rewrite.apply import merge
+
+    model = _model()
+    plan = _plan(model, {"0": ("factor", "int8", 8), "2": ("dense", "int4g64", None), "4": ("corrected", "int4g64", 4)})
+    compressed = apply_plan(model, plan)
+    merged = merge(compressed)
+    assert [type(m) for m in merged] == [type(m) for m in model]
+    assert merged.state_dict().keys() == model.state_dict().keys()
+    x = torch.randn(6, 64)
+    torch.testing.assert_close(merged(x), compressed(x), rtol=0, atol=1e-5)
