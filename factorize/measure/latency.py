@@ -176,6 +176,11 @@ def latency_plan(
     share, ratio, plan = best if best is not None else min(tried, key=lambda t: (t[1] or 0.0))
     plan["selection"]["measured_ratio"] = ratio
     plan["selection"]["measured_rounds"] = len(tried)
+    if ratio is not None and ratio > policy.budget:
+        plan["selection"]["missed"] = (
+            f"measured {ratio:.3g}x the original's time, above the budget {policy.budget:g}: "
+            + ("no factored form of these layers is faster than the dense one at this batch shape"
+               if all(len(cs) == 1 for cs in cands.values()) else "even the fastest forms offered do not reach it"))
     plan["selection"]["layers_dense_ms"] = dense_total
     return plan
 
