@@ -276,6 +276,7 @@ def walk(
     *,
     include: str | Iterable[str] | None = None,
     exclude: str | Iterable[str] | None = None,
+    shapes_only: bool = False,
 ) -> WalkResult:
     """Find every factorizable layer of ``model``.
 
@@ -284,6 +285,8 @@ def walk(
         include: glob pattern(s) on qualified module names (``fnmatch`` rules, e.g. ``"encoder.*.attention.*"``);
             when given, only matching layers become sites.
         exclude: glob pattern(s); matching layers are never sites.
+        shapes_only: the caller needs the layers' structure alone (e.g. an architecture built on the meta
+            device to plan an out-of-core run); otherwise a model with meta parameters is refused.
 
     Returns:
         A :class:`WalkResult`. A weight shared by several modules (tied embedding and output head) gives one
@@ -295,7 +298,8 @@ def walk(
             f"expected a torch.nn.Module, got {type(model).__name__}",
             fix="pass the model object itself (for a checkpoint file, build the architecture and load it first)",
         )
-    _refuse_meta(model)
+    if not shapes_only:
+        _refuse_meta(model)
     include_p = _as_patterns(include, "include")
     exclude_p = _as_patterns(exclude, "exclude")
     owners = _shared_weights(model)

@@ -119,7 +119,7 @@ def check_source(src: Path) -> Architecture:
 def block_linears(arch: Architecture, policy: Policy) -> list[str]:
     """Qualified names of the linear layers inside the blocks that the policy's include/exclude select."""
     block = arch.model.get_submodule(f"{arch.prefix}.0")
-    rel = [s.name for s in walk(block).sites if s.kind == "linear"]
+    rel = [s.name for s in walk(block, shapes_only=True).sites if s.kind == "linear"]
     out = []
     for i in range(arch.blocks):
         for r in rel:
