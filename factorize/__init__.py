@@ -51,6 +51,7 @@ _EXPORTS = {  # public name -> the module that defines it
     "export_program": "factorize.checkpoints.export",
     "factored_layers": "factorize.rewrite.layers",
     "heal": "factorize.training.heal",
+    "integer_kernels": "factorize.rewrite.forms",
     "is_factored": "factorize.rewrite.layers",
     "load": "factorize.checkpoints.files",
     "load_directory": "factorize.checkpoints.directories",
@@ -98,10 +99,12 @@ __all__ = [
     "export_onnx",
     "export_program",
     "heal",
+    "integer_kernels",
     "load",
     "load_directory",
     "merge",
     "merge_in_training",
+    "plan_summary",
     "read_plan",
     "refactor",
     "save",
@@ -159,9 +162,10 @@ if TYPE_CHECKING:  # for type checkers and editors: every name of _EXPORTS, from
     from factorize.plan.policy import Policy
     from factorize.plan.ranks import choose_ranks
     from factorize.plan.ranks import plan_ranks as plan_ranks
-    from factorize.plan.ranks import plan_summary as plan_summary
+    from factorize.plan.ranks import plan_summary
     from factorize.plan.recipe import load_recipe as load_recipe
     from factorize.rewrite.apply import CompressResult, apply_plan, merge
+    from factorize.rewrite.forms import integer_kernels
     from factorize.rewrite.apply import validate_plan as validate_plan
     from factorize.rewrite.layers import Factored as Factored
     from factorize.rewrite.layers import factored_layers as factored_layers

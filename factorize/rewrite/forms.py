@@ -175,3 +175,41 @@ def release_precisions(model: nn.Module) -> nn.Module:
         if is_stored(m):
             detach_stored(m)
     return model
+
+
+def integer_kernels(model: nn.Module) -> nn.Module:
+    """A copy of ``model`` whose int8-stored linear layers (dense, and the thin layers of factored ones) run on
+    torch's integer kernels: ``torch.ao.nn.quantized.dynamic.Linear`` holding exactly the stored codes and
+    per-row scales (symmetric, zero point 0). The activations are then rounded to 8 bits on the fly as well
+    (dynamic quantization, per tensor), which adds drift of its own: measure the result on your inputs, apart
+    from the stored model's drift. A runtime form: save and load the stored model, then convert.
+
+    Layers stored in other precisions, convolutions and embeddings are left as they are. Returns ``model``
+    unchanged (a copy) when torch has no integer linear kernel on this build.
+    """
+    import copy as _copy
+    import warnings
+
+    target = _copy.deepcopy(model)
+    try:
+        from torch.ao.nn.quantized.dynamic import Linear as IntegerLinear
+    except ImportError:  # pragma: no cover - builds without the quantized engine
+        return target
+    swaps = {}
+    for name, module in target.named_modules():
+        if not (is_stored(module) and isinstance(module, nn.Linear) and module.stored_weight.precision == "int8"):
+            continue
+        child = module.stored_weight
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # torch marks its quantized tensor constructors deprecated
+            codes = child.q.to("cpu")
+            scale = child.scale.to("cpu", torch.float64)
+            weight = torch._make_per_channel_quantized_tensor(codes, scale, torch.zeros_like(scale, dtype=torch.long),
+                                                              0)
+            layer = IntegerLinear(module.in_features, module.out_features, bias_=module.bias is not None,
+                                  dtype=torch.qint8)
+            layer.set_weight_bias(weight, None if module.bias is None else module.bias.detach().float())
+        swaps[name] = layer
+    for name, layer in swaps.items():
+        set_module(target, name, layer)
+    return target

@@ -128,3 +128,21 @@ def test_merge_gives_back_the_original_classes_and_keys():
     assert merged.state_dict().keys() == model.state_dict().keys()
     x = torch.randn(6, 64)
     torch.testing.assert_close(merged(x), compressed(x), rtol=0, atol=1e-5)
+
+
+def test_integer_kernels_hold_the_stored_codes_and_stay_close():
+    # torch's dynamic int8 linear (torch.ao) on the stored codes: its weight dequantizes to exactly the stored
+    # values; activations rounded to 8 bits per tensor add a drift of their own (common practice: ~1% relative)
+    from factorize.rewrite.forms import integer_kernels
+
+    model = _model()
+    plan = _plan(model, {"0": ("factor", "int8", 8), "2": ("dense", "int8", None), "4": ("dense", "int4g64", None)})
+    compressed = apply_plan(model, plan)
+    fast = integer_kernels(compressed)
+    assert type(fast[2]).__name__ == "Linear" and type(fast[2]).__module__.startswith("torch.ao")
+    assert type(fast[0].first).__module__.startswith("torch.ao") and is_stored(fast[4])  # int4 stays stored
+    assert torch.equal(fast[2].weight().dequantize(), compressed[2].weight)
+    x = torch.randn(16, 64)
+    y, ref = fast(x), compressed(x)
+    assert float((y - ref).norm() / ref.norm()) < 0.05
+    assert is_stored(compressed[2])  # the stored model itself is unchanged
