@@ -238,10 +238,45 @@ def open_engine(cluster: Any = None, *, threads: int | None = 1, timeout: float 
                                      "without a cluster") from None
         return DaskEngine(distributed.Client(local), cluster=local, owned=True, threads=threads)
     wait = CONNECT_TIMEOUT if timeout is None else timeout
+    probe_scheduler(spec, wait)
     try:
         client = distributed.Client(spec, timeout=wait)
-    except (OSError, TimeoutError) as e:
-        raise FactorizeError(f"the cluster scheduler at {spec} did not answer within {wait:g} s ({e})",
-                             fix="start the scheduler and its workers (dask scheduler; dask worker ADDRESS), check "
-                                 "the address and port, or use local:N for worker processes on this machine") from None
+    except Exception as e:  # noqa: BLE001 - whatever the address did, the user gets one message naming it
+        raise FactorizeError(f"the cluster scheduler at {spec} did not answer within {wait:g} s "
+                             f"({type(e).__name__}: {e})", fix=SCHEDULER_FIX) from None
     return DaskEngine(client, owned=True, threads=threads)
+
+
+SCHEDULER_FIX = ("start the scheduler and its workers (dask scheduler; dask worker ADDRESS), check the address and "
+                 "port, or use local:N for worker processes on this machine")
+GREETING_LIMIT = 1 << 26  # a Dask handshake is a few hundred bytes; a larger announced length is not Dask
+
+
+def probe_scheduler(address: str, wait: float) -> None:
+    """Check that ``address`` (tcp://host:port) greets like a Dask scheduler within ``wait`` seconds, before a
+    client is made: a Dask scheduler sends its handshake as soon as a connection is accepted, framed by a
+    little-endian 8-byte length (distributed's TCP comm). An address that refuses, accepts but stays silent (a
+    stalled process, an HTTP server waiting for a request), or sends something else is a
+    :class:`FactorizeError` naming the address and what was found there -- instead of a hang, or of a client
+    that reads an HTTP reply as a frame length and tries to allocate exabytes."""
+    import socket
+
+    m = _ADDRESS.fullmatch(address)
+    if m is None or (m.group(1) or "tcp") != "tcp":
+        return  # other transports greet differently; the client's own timeout applies
+    host, port = m.group(2).strip("[]"), int(m.group(3))
+    try:
+        with socket.create_connection((host, port), timeout=wait) as sock:
+            sock.settimeout(wait)
+            greeting = sock.recv(16)
+    except TimeoutError:
+        raise FactorizeError(f"the address {address} accepted a connection but sent nothing within {wait:g} s: "
+                             "no Dask scheduler answers there (a stalled process, or another kind of server)",
+                             fix=SCHEDULER_FIX) from None
+    except OSError as e:
+        raise FactorizeError(f"the cluster scheduler at {address} did not answer ({e})", fix=SCHEDULER_FIX) from None
+    announced = int.from_bytes(greeting[:8].ljust(8, b"\0"), "little")
+    if len(greeting) < 8 or announced == 0 or announced > GREETING_LIMIT:
+        shown = "".join(c if c.isprintable() else "." for c in greeting.decode("latin-1"))
+        raise FactorizeError(f"the address {address} answered, but not as a Dask scheduler (it sent {shown!r})",
+                             fix=SCHEDULER_FIX)

@@ -108,3 +108,57 @@ def test_an_existing_client_is_used_and_left_open(dask_engine):
     engine.close()
     assert dask_engine.client.status == "running"
 
+
+def _listener(reply: bytes | None):
+    """A TCP listener on 127.0.0.1 (never another host) that accepts connections and either stays silent or sends
+    ``reply`` at once; returns (address, stop)."""
+    import threading
+
+    server = socket.socket()
+    server.bind(("127.0.0.1", 0))
+    server.listen(4)
+    server.settimeout(0.2)
+    done = threading.Event()
+    held = []
+
+    def serve():
+        while not done.is_set():
+            try:
+                conn, _ = server.accept()
+            except OSError:
+                continue
+            held.append(conn)
+            if reply is not None:
+                conn.sendall(reply)
+
+    thread = threading.Thread(target=serve, daemon=True)
+    thread.start()
+
+    def stop():
+        done.set()
+        thread.join(2)
+        for c in held:
+            c.close()
+        server.close()
+
+    return f"tcp://127.0.0.1:{server.getsockname()[1]}", stop
+
+
+@pytest.mark.parametrize("reply, said", [(None, "sent nothing within 1 s"),
+                                         (b"HTTP/1.0 400 Bad Request\r\nServer: x\r\n\r\n", "not as a Dask scheduler")])
+def test_an_address_that_answers_wrongly_or_not_at_all_ends_within_the_timeout(reply, said):
+    # a port that accepts and never answers used to hang; one that talks HTTP made the client read its reply as a
+    # frame length (an allocation of exabytes); both now end within the connect timeout with one message
+    import time
+
+    address, stop = _listener(reply)
+    try:
+        start = time.monotonic()
+        with pytest.raises(FactorizeError) as err:
+            open_engine(address, timeout=1.0)
+        assert time.monotonic() - start < 5
+    finally:
+        stop()
+    assert address in str(err.value) and said in str(err.value)
+    if reply:
+        assert "HTTP/1.0 400" in str(err.value)
