@@ -137,3 +137,16 @@ def test_read_tensor_matches_the_reference_reader(tmp_path):
     for name in ("a", "b"):
         got = read_tensor(path, name)
         assert got.dtype == ref[name].dtype and torch.equal(got, ref[name])
+
+
+def test_return_freed_memory_sets_glibc_thresholds():
+    # glibc's mallopt(3) returns 1 on success; elsewhere the call reports False and changes nothing
+    import platform
+
+    from factorize.storage.proc import return_freed_memory
+
+    result = return_freed_memory()
+    if platform.system() == "Linux" and platform.libc_ver()[0] == "glibc":
+        assert result is True
+    else:
+        assert result is False

@@ -88,6 +88,7 @@ from factorize.storage import (
     publish_dir,
     read_tensor,
     reset_peak_rss,
+    return_freed_memory,
 )
 from factorize.threads import torch_threads
 
@@ -156,6 +157,7 @@ def shrink_blockwise(
         against the bound 2 blocks + activations + 1 GB.
     """
     started = time.perf_counter()
+    return_freed_memory()  # the memory bound holds without an environment variable (storage.proc)
     peak_reset = reset_peak_rss()
     options, keywords = split_keywords(BlockwiseOptions, options, keywords)
     policy = resolve_policy(policy, keywords)

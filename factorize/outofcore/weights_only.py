@@ -54,6 +54,7 @@ from factorize.plan.ranks import PLAN_FORMAT, PLAN_VERSION, choose_ranks
 from factorize.spectra.cache import SpectrumCache, as_cache
 from factorize.spectra.decompose import METHODS, Spectrum
 from factorize.storage import TEMP_SUFFIX, check_free_space, check_output_path, create_temp_dir
+from factorize.storage.proc import return_freed_memory
 
 
 def shrink_checkpoint(
@@ -98,10 +99,15 @@ def shrink_checkpoint(
     if policy.method not in METHODS:
         raise FactorizeError(f"unknown method {policy.method!r} for a checkpoint without its model (activation-aware "
                              "methods need the model and calibration inputs)", fix=f"use one of {', '.join(METHODS)}")
-    if policy.cost != "params":
+    if policy.cost == "macs":
         raise FactorizeError("cost='macs' needs the model to count multiply-accumulates; a checkpoint alone has none",
                              fix="use cost='params', or load the model and call factorize.compress(cost='macs', "
                                  "example=batch)")
+    if policy.cost != "params":
+        raise FactorizeError(f"cost={policy.cost!r} is not available for a checkpoint shrunk without its model yet",
+                             fix=f"use cost='params', or load the model and call factorize.compress(cost="
+                                 f"{policy.cost!r})")
+    return_freed_memory()  # freed blocks go back to the system: peaks stay flat run after run (storage.proc)
     ckpt = open_checkpoint(src)
     out_dir, finals = _outputs(ckpt, Path(dst), options.force)
     chosen, passed = select(ckpt, policy.include, policy.exclude)
