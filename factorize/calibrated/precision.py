@@ -18,7 +18,7 @@ from typing import Any
 import torch
 
 from factorize.measure.latency import latency_plan
-from factorize.plan.forms import LayerMetric, bytes_plan, price_sites
+from factorize.plan.forms import LayerMetric, bytes_plan, layer_budget, price_sites, uniform_rounding_plan
 from factorize.plan.policy import Policy
 
 Calibration = Any  # factorize.calibrated.search.Calibration (which imports this module)
@@ -47,13 +47,26 @@ def layer_metric(calib: Calibration, name: str) -> LayerMetric:
 def calibrated_bytes_plan(calib: Calibration, policy: Policy, priced: dict) -> dict:
     """The joint plan of ``policy`` (``cost="bytes"``) with every layer priced on the calibration inputs; ``priced``
     memoises the candidates by what they depend on (allowed precisions, rank multiple, overrides), so a sweep of
-    budgets prices each layer once."""
+    budgets prices each layer once.
+
+    Predicted errors add truncation and rounding approximately; so where the plain alternative "every layer
+    rounded, none factored" also fits the budget, both are built and their drift measured on the calibration
+    batches, and the one that drifts less is returned (``plan["selection"]["checked"]`` records both). A joint
+    plan is then never worse than rounding alone on the inputs it was fitted to."""
     key = (policy.allowed_precisions, policy.multiple, policy.overrides, id(calib.sensitivity))
     if key not in priced:
         metrics = {s.name: layer_metric(calib, s.name) for s in calib.todo}
         priced[key] = price_sites(calib.model, calib.found.sites, calib.spectra, policy, metrics=metrics)
-    return bytes_plan(calib.model, calib.found.sites, calib.spectra, policy, method=calib.method,
-                      priced=priced[key])
+    sites, found = calib.found.sites, priced[key]
+    joint = bytes_plan(calib.model, sites, calib.spectra, policy, method=calib.method, priced=found)
+    plain = uniform_rounding_plan(sites, calib.spectra, found, layer_budget(sites, found, policy),
+                                  policy=policy.to_dict(), method=calib.method)
+    if plain is None or all(plain["sites"][n] == joint["sites"][n] for n in joint["sites"]):
+        return joint
+    drift = {which: calib.drift_of(p) for which, p in (("joint", joint), ("rounding", plain))}
+    best = plain if drift["rounding"] < drift["joint"] else joint
+    best["selection"]["checked"] = {"on": "calibration batches", "metric": "relative_l2", **drift}
+    return best
 
 
 def calibrated_latency_plan(calib: Calibration, policy: Policy, example) -> dict:

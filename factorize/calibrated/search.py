@@ -284,6 +284,13 @@ class Calibration:
         apply_bias_shifts(model, plan, self.spectra)
         return model
 
+    def drift_of(self, plan: dict) -> float:
+        """Relative L2 drift on the calibration batches of the model ``plan`` builds (its factors as :meth:`build`
+        makes them); the original's outputs are computed once."""
+        if getattr(self, "_reference", None) is None:
+            self._reference = run_outputs(self.model, self.batches, self.output_fn)
+        return measure_drift(self._reference, self.build(plan), self.batches, output_fn=self.output_fn)
+
     def annotate(self, plan: dict, *, sequential: bool) -> None:
         """Record how the plan was calibrated (JSON-serialisable, carried into saved files)."""
         plan["calibration"] = {

@@ -310,10 +310,16 @@ def bytes_plan(
     (:func:`price_sites`, or ``priced`` from an earlier call), then :func:`joint_plan` under ``policy.budget`` of
     the sites' stored bytes."""
     priced = priced or price_sites(model, sites, spectra, policy, metrics=metrics)
+    return joint_plan(sites, priced.candidates, spectra, priced.natives, layer_budget(sites, priced, policy),
+                      policy=policy.to_dict(), method=method, scales=priced.scales)
+
+
+def layer_budget(sites: Sequence[Site], priced: Priced, policy) -> float:
+    """The bytes the priced sites may take: ``policy.budget`` of every site's bytes, less the sites kept as they
+    are (tied weights)."""
     total = sum(stored_bytes(priced.natives[s.name], tuple(s.shape)) for s in sites)
     fixed = sum(stored_bytes(priced.natives[s.name], tuple(s.shape)) for s in sites if s.name not in priced.candidates)
-    return joint_plan(sites, priced.candidates, spectra, priced.natives, policy.budget * total - fixed,
-                      policy=policy.to_dict(), method=method, scales=priced.scales)
+    return policy.budget * total - fixed
 
 
 @dataclass(frozen=True)
@@ -366,3 +372,38 @@ def _overridden(site: Site, policy, cands: list[Candidate], native: str, spec: S
     r = min(o.rank, spec.computed_rank)
     err = float(spec.errors()[r]) ** 2 * metric.scale
     return [Candidate("factor", native, r, float(factor_bytes(native, tuple(site.shape), r)), err)]
+
+
+def uniform_rounding_plan(sites: Sequence[Site], spectra: Mapping[str, Spectrum], priced: Priced, budget_cost: float,
+                          *, policy: Mapping, method: str) -> dict | None:
+    """The plain alternative "every layer rounded, none factored": all priced sites dense at the most precise
+    allowed integer precision whose bytes fit ``budget_cost`` (None when none fits). Built from the same priced
+    candidates, so it is a plan of the same schema the joint planner could have chosen."""
+    from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
+
+    by_bits = sorted({c.precision for cs in priced.candidates.values() for c in cs
+                      if c.form == "dense" and not is_float(c.precision)},
+                     key=lambda p: (-_WIDTH[p], p))
+    for p in by_bits:
+        chosen = {}
+        for name, cs in priced.candidates.items():
+            match = [c for c in cs if c.form == "dense" and c.precision == p]
+            if not match:
+                break
+            chosen[name] = match[0]
+        else:
+            if math.fsum(c.cost for c in chosen.values()) <= budget_cost:
+                why = f"every layer rounded to {p}, none factored (the plain alternative)"
+                entries = {}
+                for s in sites:
+                    c = chosen.get(s.name) or Candidate("dense", priced.natives[s.name], None,
+                                                        float(stored_bytes(priced.natives[s.name], tuple(s.shape))),
+                                                        0.0)
+                    entries[s.name] = entry_for(s, c, why, spectra.get(s.name), priced.natives[s.name],
+                                                priced.scales.get(s.name, 1.0))
+                return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method,
+                        "policy": dict(policy), "sites": entries,
+                        "selection": {"exact": True, "cost": "bytes", "bytes": math.fsum(c.cost for c in chosen.values()),
+                                      "budget_bytes": budget_cost,
+                                      "predicted_error": math.fsum(c.error for c in chosen.values())}}
+    return None

@@ -147,3 +147,40 @@ def test_byte_budget_refuses_bad_fractions():
     model, site = _site(8, 8)
     with pytest.raises(FactorizeError, match="fraction"):
         byte_budget([site], {"fc": torch.float32}, 1.5)
+
+
+def test_uniform_rounding_plan_takes_the_most_precise_format_that_fits():
+    # the plain alternative "every layer rounded, none factored", from the same priced candidates
+    from factorize.plan.forms import price_sites, uniform_rounding_plan
+    from factorize.plan.policy import Policy
+
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(64, 48), nn.ReLU(), nn.Linear(48, 32))
+    sites = walk(model).sites
+    spectra = {s.name: decompose(dict(model.named_modules())[s.name].weight.detach(), method="exact") for s in sites}
+    policy = Policy(budget=0.3, cost="bytes")
+    priced = price_sites(model, sites, spectra, policy)
+    int8 = sum(stored_bytes("int8", tuple(s.shape)) for s in sites)
+    int4 = sum(stored_bytes("int4g64", tuple(s.shape)) for s in sites)
+    plan = uniform_rounding_plan(sites, spectra, priced, int8, policy={}, method="exact")
+    assert {e["precision"] for e in plan["sites"].values()} == {"int8"}
+    plan = uniform_rounding_plan(sites, spectra, priced, int8 - 1, policy={}, method="exact")
+    assert {e["precision"] for e in plan["sites"].values()} == {"int4g64"}
+    assert plan["selection"]["bytes"] == int4
+    assert uniform_rounding_plan(sites, spectra, priced, int4 - 1, policy={}, method="exact") is None
+
+
+def test_calibrated_bytes_plan_is_checked_against_rounding_alone_on_the_calibration_inputs():
+    # where rounding alone fits the budget too, both are built and measured; the plan records both drifts and
+    # the returned plan is the one that drifted less
+    from factorize.calibrated.search import Calibration
+    from factorize.plan.policy import Policy
+
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(32, 64), nn.ReLU(), nn.Linear(64, 64), nn.ReLU(), nn.Linear(64, 8)).eval()
+    batches = [torch.randn(64, 32) for _ in range(4)]
+    calib = Calibration(model, batches)
+    plan = calib.plan(Policy(budget=0.27, cost="bytes"))
+    checked = plan["selection"].get("checked")
+    assert checked is not None and set(checked) >= {"joint", "rounding"}
+    assert calib.drift_of(plan) == pytest.approx(min(checked["joint"], checked["rounding"]))
