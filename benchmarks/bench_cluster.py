@@ -56,8 +56,8 @@ def run_one(mode: str, src: str, out: str, budget: float, workers: int) -> dict:
     """One shrink in this (fresh) process; returns times, peak memories and the output's hashes."""
     import torch
 
-    from factorize.outofcore.weights_only import shrink_checkpoint
     from factorize.cluster import open_engine
+    from factorize.outofcore.weights_only import shrink_checkpoint
 
     torch.set_num_threads(1)
     started = time.perf_counter()
@@ -125,7 +125,8 @@ def main() -> None:
             src = write_llama_checkpoint(work / "ckpt", scale=args.scale, shard_mb=shard_mb)
             print(f"generated {args.scale} checkpoint ({n / 1e6:.1f} M parameters) in {time.perf_counter() - t0:.1f} s",
                   file=sys.stderr)
-            label = f"llama_checkpoint.py --scale {args.scale} ({n / 1e6:.1f} M parameters, bfloat16, {shard_mb:.1f} MB shards)"
+            label = (f"llama_checkpoint.py --scale {args.scale} ({n / 1e6:.1f} M parameters, bfloat16, "
+                     f"{shard_mb:.1f} MB shards)")
         runs: dict[str, list[dict]] = {"local": [], "cluster": []}
         for i in range(args.repeat):
             for mode in ("local", "cluster"):

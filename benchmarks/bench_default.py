@@ -339,7 +339,10 @@ def text_parts():
     sents = stdlib_sentences()
     n = len(sents)
     a, b = int(0.8 * n), int(0.9 * n)
-    enc = lambda xs: torch.tensor(list("\n".join(xs).encode("utf-8")), dtype=torch.long)
+
+    def enc(xs):
+        return torch.tensor(list("\n".join(xs).encode("utf-8")), dtype=torch.long)
+
     return enc(sents[:a]), enc(sents[a:b]), enc(sents[b:]), n
 
 

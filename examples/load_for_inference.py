@@ -1,11 +1,11 @@
 """Load a compressed checkpoint for inference in a fresh process.
 
 What it shows:
-  * ``factorize.checkpoints.files.save(model, path, plan=result.plan)`` writes one safetensors file holding the compressed
-    weights and, in its metadata, the plan (which layers are factored, at which rank);
+  * ``factorize.checkpoints.files.save(model, path, plan=result.plan)`` writes one safetensors file holding the
+    compressed weights and, in its metadata, the plan (which layers are factored, at which rank);
   * a new Python process that never saw the compressed model builds a plain, fresh ``DigitsMLP`` and calls
-    ``factorize.checkpoints.files.load(model, path)``: the factored structure is rebuilt from the plan and the weights are
-    loaded; no pickle, no original model needed;
+    ``factorize.checkpoints.files.load(model, path)``: the factored structure is rebuilt from the plan and the weights
+    are loaded; no pickle, no original model needed;
   * the outputs of the reloaded model match the in-memory compressed model exactly, and its test accuracy is
     printed.
 
@@ -24,7 +24,6 @@ from pathlib import Path
 import torch
 
 import factorize
-
 from factorize.default import load_default, load_digits_split
 
 REPO = Path(__file__).resolve().parents[1]

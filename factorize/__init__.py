@@ -73,7 +73,8 @@ _EXPORTS = {  # public name -> the module that defines it
     "walk": "factorize.model.sites",
 }
 
-# What README.md, docs/*.md and examples/ teach as ``factorize.<name>`` (tests/test_public_api.py checks both directions).
+# What README.md, docs/*.md and examples/ teach as ``factorize.<name>`` (tests/test_public_api.py checks both
+# directions).
 # Every other name of ``_EXPORTS`` stays importable from here for code written against earlier versions, and lives
 # in its sub-package (``factorize.model.count.count_parameters``, ``factorize.calibrated.options.CalibrationOptions``,
 # ...); ``CalibrationOptions`` is not taught at the top: ``compress(..., calibration=...)`` takes its keywords.

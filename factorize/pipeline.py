@@ -28,6 +28,7 @@ from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
 from factorize.model.sites import WalkResult, walk
 from factorize.plan.entries import factored_ranks
+from factorize.plan.forms import bytes_plan
 from factorize.plan.policy import (
     AWARE_METHODS,
     POLICY_KEYWORDS,
@@ -37,7 +38,6 @@ from factorize.plan.policy import (
     resolve_policy,
     values_first,  # the rule lives in the plan layer (the weights-only shrink calls it too)
 )
-from factorize.plan.forms import bytes_plan
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import CompressResult, apply_plan
 from factorize.rewrite.verify import check_runs, keep_working

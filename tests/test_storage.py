@@ -7,6 +7,7 @@ entries {dtype, shape, data_offsets}, optional string-to-string __metadata__); t
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import struct
@@ -76,19 +77,15 @@ def test_fuzz_random_and_mutated_files_never_escape_as_other_errors(tmp_path, da
     # random bytes, and a valid file with random bytes spliced in: either parsed or a FactorizeError, nothing else
     p = tmp_path / "fuzz.safetensors"
     p.write_bytes(data)
-    try:
+    with contextlib.suppress(FactorizeError):
         read_header(p)
-    except FactorizeError:
-        pass
     good = tmp_path / "good.safetensors"
     write_safetensors(good, {"w": torch.zeros(3, 2)}, {"factorize.plan": json.dumps({"sites": {}})})
     raw = good.read_bytes()
     cut = min(cut, len(raw))
     p.write_bytes(raw[:cut] + data[:16] + raw[cut + len(data[:16]):])
-    try:
+    with contextlib.suppress(FactorizeError):
         read_header(p)
-    except FactorizeError:
-        pass
 
 
 def test_two_writers_racing_for_one_path_exactly_one_wins(tmp_path):

@@ -329,7 +329,8 @@ def _compare_options():
     g.add_argument("--report", metavar="FILE.md", help="also write the report as Markdown")
     g.add_argument("--force", "-f", action="store_true", help="replace an existing report file")
     g.add_argument("--non-strict", action="store_true",
-                   help="load a factorize checkpoint given as --against tolerating missing and unexpected keys (listed in a warning) and casting "
+                   help="load a factorize checkpoint given as --against tolerating missing and unexpected keys "
+                   "(listed in a warning) and casting "
                    "dtypes, e.g. a transformers directory's extra buffers; shapes must still match")
     return p
 
@@ -352,7 +353,7 @@ def _device_options(*, dtype: bool):
 def _device(text: str) -> str:
     """cpu, cuda or cuda:N (syntax only; whether a GPU is there is checked when the command runs)."""
     name, _, index = text.strip().lower().partition(":")
-    if name == "cpu" and not index or name == "cuda" and (not index or index.isdigit()):
+    if (name == "cpu" and not index) or (name == "cuda" and (not index or index.isdigit())):
         return text.strip().lower()
     raise argparse.ArgumentTypeError(f"{text!r} is not a device; --device takes cpu, cuda or cuda:N")
 

@@ -123,7 +123,8 @@ class WalkResult:
         raise FactorizeError(
             "no factorizable layer found" + (" matching the include/exclude patterns" if filtered else ""),
             [f"{s.name}: {s.reason}" for s in self.skipped],
-            fix="factorize handles nn.Linear, nn.Conv1d/2d/3d and nn.ConvTranspose1d/2d (groups=1), nn.Embedding and transposed projections; "
+            fix="factorize handles nn.Linear, nn.Conv1d/2d/3d and nn.ConvTranspose1d/2d (groups=1), nn.Embedding "
+            "and transposed projections; "
             "check the include/exclude globs against model.named_modules()",
         )
 
@@ -148,7 +149,7 @@ def is_transposed_projection(module: nn.Module) -> bool:
     if weight is None or weight.dim() != 2 or set(params) - {"weight", "bias"}:
         return False
     bias = params.get("bias")
-    n_in, n_out = weight.shape
+    _, n_out = weight.shape
     if bias is not None and tuple(bias.shape) != (n_out,):
         return False
     return _probe_transposed(module, weight, bias)
@@ -267,7 +268,8 @@ def _as_patterns(value: str | Iterable[str] | None, what: str) -> list[str] | No
     patterns = list(value)
     bad = [repr(p) for p in patterns if not isinstance(p, str)]
     if bad:
-        raise FactorizeError(f"{what} patterns must be strings", bad, fix=f"pass {what} as a glob string or a list of them")
+        raise FactorizeError(f"{what} patterns must be strings", bad,
+                             fix=f"pass {what} as a glob string or a list of them")
     return patterns
 
 

@@ -12,6 +12,7 @@ only when all are complete are they renamed into place, so a failure leaves noth
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import os
@@ -101,10 +102,8 @@ class ShardWriter:
 
     def abort(self) -> None:
         if not self.f.closed:
-            try:
+            with contextlib.suppress(OSError):
                 self.f.close()  # flushing what is buffered can fail again (a full disk, a size limit)
-            except OSError:
-                pass
         remove_quietly(self.tmp)
 
 
@@ -206,7 +205,7 @@ class CheckpointWriter:
             w = ShardWriter(final, self.reserve_for(h))
             writers.append(w)
             self._write_file(h, w)
-            weight_map.update({name: final.name for name in w.entries})
+            weight_map.update(dict.fromkeys(w.entries, final.name))
             if not sharded:
                 meta = checkpoint_metadata(plan, None, metadata)
             else:

@@ -243,7 +243,8 @@ def _relative(error: float, scale: float, spectrum: Spectrum | None) -> float:
 def byte_budget(sites: Sequence[Site], dtypes: Mapping[str, torch.dtype], budget: float) -> float:
     """``budget`` as bytes: that fraction of the sites' weights as they are stored now."""
     if not 0 < budget <= 1 or not math.isfinite(budget):
-        raise FactorizeError(f"budget={budget!r} is not a fraction in (0, 1]", fix="e.g. budget=0.25 for 1/4 of the bytes")
+        raise FactorizeError(f"budget={budget!r} is not a fraction in (0, 1]",
+                             fix="e.g. budget=0.25 for 1/4 of the bytes")
     return budget * sum(stored_bytes(native_precision(dtypes[s.name]), tuple(s.shape)) for s in sites)
 
 

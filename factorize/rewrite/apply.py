@@ -169,8 +169,9 @@ def apply_plan(
     seed: int = 0,
     hessians: Mapping[str, torch.Tensor] | None = None,
 ) -> nn.Module:
-    """Rewrite the layers a plan factors (and store each at the precision its entry records). All replacements are built first and swapped in last, so a failure
-    leaves the model as it was.
+    """Rewrite the layers a plan factors (and store each at the precision its entry records).
+
+    All replacements are built first and swapped in last, so a failure leaves the model as it was.
 
     Args:
         model: the architecture the plan was made for (a fresh instance works).

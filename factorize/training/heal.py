@@ -331,7 +331,7 @@ class _Healer:
                                  fix="each batch must be a tensor, a tuple/list of model arguments, or a dict")
         try:
             return feed(model, batch)
-        except Exception as e:  # noqa: BLE001 - the user's model can raise anything; say which batch and why
+        except Exception as e:  # the user's model can raise anything; say which batch and why
             raise FactorizeError(
                 f"{where} batch {index} does not run through {who}: {type(e).__name__}: {e}",
                 fix="each batch must be what the model takes: a tensor for model(x), a tuple/list for model(*x), "
