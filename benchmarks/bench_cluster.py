@@ -58,6 +58,7 @@ def run_one(mode: str, src: str, out: str, budget: float, workers: int) -> dict:
 
     from factorize.cluster import open_engine
     from factorize.outofcore.weights_only import shrink_checkpoint
+    from factorize.plan.entries import is_factored_entry
 
     torch.set_num_threads(1)
     started = time.perf_counter()
@@ -76,7 +77,7 @@ def run_one(mode: str, src: str, out: str, budget: float, workers: int) -> dict:
         engine.close()
     return {"mode": mode, "wall_s": wall, "startup_s": startup, "client_peak_kib": _worker_peak(),
             "worker_peaks_kib": peaks, "hashes": _hashes(Path(out)), "engine": where,
-            "factored": sum(1 for r in done.tensors.values() if r["action"] == "factor"),
+            "factored": sum(1 for r in done.tensors.values() if is_factored_entry(r)),
             "matrices": len(done.tensors), "bytes_before": done.bytes_before, "bytes_after": done.bytes_after}
 
 

@@ -42,6 +42,7 @@ import factorize
 from factorize.calibrated.search import Calibration, auto_fractions
 from factorize.measure.drift import output_drift
 from factorize.model.feed import token_mask
+from factorize.plan.entries import is_factored_entry
 from factorize.plan.ranks import Policy
 
 RESULTS = Path(__file__).with_name("results") / "quality.md"
@@ -151,7 +152,7 @@ def prediction_check(model, cal, include, budget):
     state = {}
     hooks = {}
     for name, e in plan["sites"].items():
-        if e["action"] != "factor":
+        if not is_factored_entry(e):
             continue
         layer = get_module(compressed, name)
 

@@ -25,6 +25,7 @@ import torch
 
 import factorize
 from factorize.default import load_default, load_digits_split
+from factorize.plan.entries import factored_ranks
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -39,7 +40,7 @@ def child(checkpoint: str, outputs: str) -> None:
         logits = model(x_test)  # (540, 10)
     torch.save(logits, outputs)
     plan = factorize.read_plan(checkpoint)
-    ranks = {name: e["rank"] for name, e in plan["sites"].items() if e["action"] == "factor"}
+    ranks = factored_ranks(plan)
     accuracy = (logits.argmax(dim=1) == y_test).float().mean().item()
     print(f"[fresh process] loaded {Path(checkpoint).name}: factored ranks {ranks}; test accuracy {accuracy:.2%}")
 

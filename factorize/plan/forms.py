@@ -45,6 +45,7 @@ import torch
 
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
+from factorize.plan.entries import CORRECTED, DENSE, FACTOR
 from factorize.plan.joint import Candidate
 from factorize.plan.policy import DEFAULT_PRECISIONS, check_precisions  # noqa: F401 - re-exported
 from factorize.rounding import (
@@ -137,7 +138,7 @@ def candidates_for(
     native = native_precision(W.dtype)
     W64 = W.detach().to(torch.float64)
     hessian = metric.C if site.kind in DENSE_VIEW_KINDS else None
-    out: list[Candidate] = [Candidate("dense", native, None, float(stored_bytes(native, shape)), 0.0)]
+    out: list[Candidate] = [Candidate(DENSE, native, None, float(stored_bytes(native, shape)), 0.0)]
     reasons = {}
     for p in usable(precisions, native)[1:]:
         why = fits(W, p)
@@ -145,7 +146,7 @@ def candidates_for(
             reasons[p] = why
             continue
         Wq = round_matrix(W64, p, hessian=hessian).dequantize(torch.float64)
-        out.append(Candidate("dense", p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
+        out.append(Candidate(DENSE, p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
         if site.kind in KINDS_WITH_CORRECTION and not is_float(p):
             out += _corrected(W64, Wq, p, shape, metric)
     factor_hessian = metric.C if site.kind in VIEW_KINDS else None
@@ -157,7 +158,7 @@ def _corrected(W64, Wq, p, shape, metric: LayerMetric) -> list[Candidate]:
     s = torch.linalg.svdvals(metric.whitened(W64 - Wq))  # Eckart-Young on the whitened rounding error
     tail = np.maximum(float((s * s).sum()) - np.concatenate([[0.0], np.cumsum((s * s).numpy())]), 0.0)
     ranks = [k for k in CORRECTION_RANKS if k <= min(shape) // 4]
-    return [Candidate("corrected", p, k, float(corrected_bytes(p, shape, k)), metric.scale * float(tail[k]))
+    return [Candidate(CORRECTED, p, k, float(corrected_bytes(p, shape, k)), metric.scale * float(tail[k]))
             for k in ranks]
 
 
@@ -189,7 +190,7 @@ def _factored(site, W64, spectrum, precisions, metric: LayerMetric, multiple, he
         cum = np.concatenate([[0.0], np.cumsum(terms)])
         for r in ranks:
             err = metric.scale * (float(errors[min(r, len(errors) - 1)]) + float(cum[r]))
-            out.append(Candidate("factor", p, r, float(factor_bytes(p, tuple(site.shape), r)), err))
+            out.append(Candidate(FACTOR, p, r, float(factor_bytes(p, tuple(site.shape), r)), err))
     return out
 
 
@@ -209,7 +210,7 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
     """One plan row for a chosen candidate: the rank-only row's keys, plus ``precision``, ``bytes``, ``bytes_after``
     (and ``correction_rank`` / ``correction_precision`` for the corrected form)."""
     shape = tuple(site.shape)
-    factor = chosen.form == "factor"
+    factor = chosen.form == FACTOR
     entry = {
         "kind": site.kind,
         "shape": list(shape),
@@ -223,7 +224,7 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
         "bytes_after": int(chosen.cost),
         "predicted_error": _relative(chosen.error, scale, spectrum),
     }
-    if chosen.form == "corrected":
+    if chosen.form == CORRECTED:
         entry.update(correction_rank=chosen.rank, correction_precision=CORRECTION_PRECISION,
                      params_after=site.params + chosen.rank * sum(shape))
     if site.kernel:
@@ -274,7 +275,7 @@ def joint_plan(
             entries[s.name] = entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name],
                                         (scales or {}).get(s.name, 1.0))
         else:
-            kept = Candidate("dense", natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
+            kept = Candidate(DENSE, natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
             entries[s.name] = entry_for(s, kept, f"weight shared with {', '.join(s.tied_with)}; kept as it is",
                                         None, natives[s.name])
     return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method, "policy": dict(policy),
@@ -345,10 +346,10 @@ def _overridden(site: Site, policy, cands: list[Candidate], native: str, spec: S
     if o is None:
         return cands
     if o.dense:
-        return [c for c in cands if c.form == "dense" and c.precision == native]
+        return [c for c in cands if c.form == DENSE and c.precision == native]
     if o.rank is None:
         raise FactorizeError(f"override {o.pattern!r}: with cost='bytes' an override keeps a layer dense or sets its "
                              "rank", fix="use dense=True or rank=N in the override, or cost='params'")
     r = min(o.rank, spec.computed_rank)
     err = float(spec.errors()[r]) ** 2 * metric.scale
-    return [Candidate("factor", native, r, float(factor_bytes(native, tuple(site.shape), r)), err)]
+    return [Candidate(FACTOR, native, r, float(factor_bytes(native, tuple(site.shape), r)), err)]
