@@ -278,6 +278,7 @@ def walk(
     *,
     include: str | Iterable[str] | None = None,
     exclude: str | Iterable[str] | None = None,
+    allow_meta: bool = False,
 ) -> WalkResult:
     """Find every factorizable layer of ``model``.
 
@@ -286,6 +287,8 @@ def walk(
         include: glob pattern(s) on qualified module names (``fnmatch`` rules, e.g. ``"encoder.*.attention.*"``);
             when given, only matching layers become sites.
         exclude: glob pattern(s); matching layers are never sites.
+        allow_meta: walk a skeleton whose parameters are on the meta device (names, kinds and shapes only; the
+            out-of-core shrinks read the values from the checkpoint themselves). Otherwise such a model is an error.
 
     Returns:
         A :class:`WalkResult`. A weight shared by several modules (tied embedding and output head) gives one
@@ -297,7 +300,8 @@ def walk(
             f"expected a torch.nn.Module, got {type(model).__name__}",
             fix="pass the model object itself (for a checkpoint file, build the architecture and load it first)",
         )
-    _refuse_meta(model)
+    if not allow_meta:
+        _refuse_meta(model)
     include_p = _as_patterns(include, "include")
     exclude_p = _as_patterns(exclude, "exclude")
     owners = _shared_weights(model)
