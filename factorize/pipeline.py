@@ -22,7 +22,7 @@ from torch import nn
 
 from factorize.calibrated.options import CalibrationOptions, calibrated_setup, refuse_with_calibration
 from factorize.calibrated.search import CalibratedResult, compress_calibrated  # noqa: F401 - re-exported
-from factorize.errors import FactorizeError, UnverifiedModelWarning
+from factorize.errors import FactorizeError, UnverifiedModelWarning, caller_stacklevel
 from factorize.execution import Execution, resolve_execution
 from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
@@ -150,7 +150,8 @@ def _checked(model: nn.Module, result: CompressResult, sample: Any, on_break: st
     """Run the result once on ``sample``; keep dense (or raise for) the factored layers that break it."""
     if sample is None:
         warnings.warn("compress() had no sample input, so the compressed model was not run; pass example=batch "
-                      "(or calibration=) to check that it still runs", UnverifiedModelWarning, stacklevel=3)
+                      "(or calibration=) to check that it still runs", UnverifiedModelWarning,
+                      stacklevel=caller_stacklevel())
         return result
     if inplace:  # the original layers are gone: the run can only be checked, not repaired layer by layer
         error = check_runs(result.model, sample)

@@ -36,7 +36,7 @@ import torch
 from safetensors import safe_open
 from torch import nn
 
-from factorize.errors import FactorizeError, caller_stacklevel
+from factorize.errors import FactorizeError, caller_stacklevel, printable
 from factorize.plan.entries import factored_names, plan_entries
 from factorize.plan.ranks import PLAN_FORMAT
 from factorize.storage import (
@@ -44,7 +44,6 @@ from factorize.storage import (
     check_free_space,
     check_output_path,
     check_readable_file,
-    printable,
     read_header,
     write_atomic,
     write_safetensors,

@@ -271,7 +271,8 @@ def _quality_options(*, shrink: bool):
                        help="weights-only mode: run the per-matrix decompositions as tasks on a Dask cluster: "
                        "local:N starts N worker processes here, tcp://HOST:PORT uses a running scheduler (the "
                        "checkpoint, and --cache if given, must be at the same path on every worker); needs "
-                       "factorize[cluster]. The output is byte-identical to a run without it")
+                       "the cluster extra (pip install \".[cluster]\" in a checkout). The output is byte-identical to "
+                       "a run without it")
         g.add_argument("--target-drift", type=_nonnegative("--target-drift"), metavar="X",
                        help="with --calibration: the smallest budget whose relative L2 drift on --inputs stays <= X "
                        "(exit 1 with the closest budget when none does)")
