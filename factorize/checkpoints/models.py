@@ -39,7 +39,6 @@ from factorize.storage import check_safetensors, read_safetensors
 
 PICKLE_SUFFIXES = (".pt", ".pth", ".bin", ".ckpt", ".pkl")
 DEFAULT_SPEC = "factorize.default:load_default"  # the embedded digits classifier
-HF_EXTRA = 'pip install ".[hf]" (in a checkout of factorize)'
 TOKENIZER_FILES = ("tokenizer.json", "tokenizer_config.json", "vocab.txt", "vocab.json", "tokenizer.model")
 
 
@@ -285,14 +284,9 @@ def _check_readable(path: Path) -> None:
 
 
 def _transformers():
-    try:
-        import transformers
-    except ImportError:
-        raise FactorizeError(
-            "reading a transformers model directory needs the transformers library, which is not installed",
-            fix=f"install the hf extra: {HF_EXTRA}",
-        ) from None
-    return transformers
+    from factorize.checkpoints.directories import import_transformers
+
+    return import_transformers("reading a transformers model directory")
 
 
 def _from_directory(path: Path, *, allow_pickle: bool) -> LoadedModel:

@@ -17,7 +17,7 @@ from typing import Any
 
 import torch
 
-from factorize.checkpoints.directories import HF_EXTRA
+from factorize.checkpoints.directories import import_transformers
 from factorize.checkpoints.files import Checkpoint, open_checkpoint
 from factorize.errors import FactorizeError
 from factorize.model.sites import walk
@@ -44,12 +44,7 @@ class Architecture:
 
 def _transformers():
     """The transformers module, or a clear error naming the extra to install."""
-    try:
-        import transformers
-    except ImportError:
-        raise FactorizeError("the block-by-block shrink needs the transformers library, which is not installed",
-                             fix=f"install the hf extra: {HF_EXTRA}") from None
-    return transformers
+    return import_transformers("the block-by-block shrink")
 
 
 @functools.lru_cache(maxsize=2)
