@@ -56,8 +56,8 @@ if mode == "baseline":
 elif mode == "blockwise":
     import factorize
     done = factorize.shrink_blockwise(src, dst, budget=float(budget), calibration=batches, threads=int(threads))
-    out = {k: getattr(done, k) for k in ("peak_rss_bytes", "peak_reset", "block_bytes", "activation_bytes", "bound_bytes",
-                                "bound_met", "kept_fraction", "bytes_after", "tokens")}
+    out = {k: getattr(done, k) for k in ("peak_rss_bytes", "peak_reset", "block_bytes", "activation_bytes",
+                                "bound_bytes", "bound_met", "kept_fraction", "bytes_after", "tokens")}
     out["seconds_call"] = done.seconds
     out["peak_before_drift"] = next(int(l.split()[1]) for l in open("/proc/self/status")
                                     if l.startswith("VmHWM:")) * 1024
@@ -134,7 +134,8 @@ def main() -> None:
         (f"Date: {dt.date.today()}. Machine: {platform.machine()}, {os.cpu_count()} visible cores, torch threads "
         f"{a.threads}; shared with other jobs."),
         "",
-        (f"Checkpoint: scale {a.scale}, {size / MB:.0f} MB bfloat16 on disk in {shards} shard(s) (generated in {gen_s:.0f} s). Calibration: {a.sequences} random sequences x {a.length} tokens; "
+        (f"Checkpoint: scale {a.scale}, {size / MB:.0f} MB bfloat16 on disk in {shards} shard(s) "
+         f"(generated in {gen_s:.0f} s). Calibration: {a.sequences} random sequences x {a.length} tokens; "
         f"budget {a.budget}."),
         "",
         "| job | peak RSS (MB) | wall time incl. imports (s) | kept fraction | logits drift |",

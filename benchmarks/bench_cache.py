@@ -41,7 +41,8 @@ def generate(path: Path, d: int, layers: int) -> int:
     ffn = int(d * 11008 / 4096)
     tensors = {}
     for b in range(layers):
-        for name, (m, n) in {"q": (d, d), "k": (d, d), "v": (d, d), "o": (d, d), "up": (ffn, d), "down": (d, ffn)}.items():
+        shapes = {"q": (d, d), "k": (d, d), "v": (d, d), "o": (d, d), "up": (ffn, d), "down": (d, ffn)}
+        for name, (m, n) in shapes.items():
             k = min(m, n)
             U, _ = torch.linalg.qr(torch.randn(m, k, generator=gen))
             V, _ = torch.linalg.qr(torch.randn(n, k, generator=gen))

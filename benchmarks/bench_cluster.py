@@ -56,8 +56,9 @@ def run_one(mode: str, src: str, out: str, budget: float, workers: int) -> dict:
     """One shrink in this (fresh) process; returns times, peak memories and the output's hashes."""
     import torch
 
-    from factorize.outofcore.weights_only import shrink_checkpoint
     from factorize.cluster import open_engine
+    from factorize.outofcore.weights_only import shrink_checkpoint
+    from factorize.plan.entries import is_factored_entry
 
     torch.set_num_threads(1)
     started = time.perf_counter()
@@ -76,7 +77,7 @@ def run_one(mode: str, src: str, out: str, budget: float, workers: int) -> dict:
         engine.close()
     return {"mode": mode, "wall_s": wall, "startup_s": startup, "client_peak_kib": _worker_peak(),
             "worker_peaks_kib": peaks, "hashes": _hashes(Path(out)), "engine": where,
-            "factored": sum(1 for r in done.tensors.values() if r["action"] == "factor"),
+            "factored": sum(1 for r in done.tensors.values() if is_factored_entry(r)),
             "matrices": len(done.tensors), "bytes_before": done.bytes_before, "bytes_after": done.bytes_after}
 
 
@@ -125,7 +126,8 @@ def main() -> None:
             src = write_llama_checkpoint(work / "ckpt", scale=args.scale, shard_mb=shard_mb)
             print(f"generated {args.scale} checkpoint ({n / 1e6:.1f} M parameters) in {time.perf_counter() - t0:.1f} s",
                   file=sys.stderr)
-            label = f"llama_checkpoint.py --scale {args.scale} ({n / 1e6:.1f} M parameters, bfloat16, {shard_mb:.1f} MB shards)"
+            label = (f"llama_checkpoint.py --scale {args.scale} ({n / 1e6:.1f} M parameters, bfloat16, "
+                     f"{shard_mb:.1f} MB shards)")
         runs: dict[str, list[dict]] = {"local": [], "cluster": []}
         for i in range(args.repeat):
             for mode in ("local", "cluster"):

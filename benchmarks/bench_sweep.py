@@ -81,7 +81,8 @@ def main_bench() -> None:
             print(f"round {i + 1}: shrink {times['shrink'][-1]:.2f} s, sweep {times['sweep'][-1]:.2f} s "
                   f"({times['sweep'][-1] / times['shrink'][-1]:.2f}x), cached cold {times['cold'][-1]:.2f} s, "
                   f"warm {times['warm'][-1]:.2f} s; CPU seconds: shrink {cpu['shrink'][-1]:.2f}, sweep "
-                  f"{cpu['sweep'][-1]:.2f} ({cpu['sweep'][-1] / cpu['shrink'][-1]:.2f}x); load average {load_average()}")
+                  f"{cpu['sweep'][-1]:.2f} ({cpu['sweep'][-1] / cpu['shrink'][-1]:.2f}x); "
+                  f"load average {load_average()}")
     med = {k: statistics.median(v) for k, v in times.items()}
     mcpu = {k: statistics.median(v) for k, v in cpu.items()}
     ratios = [s / h for s, h in zip(times["sweep"], times["shrink"])]

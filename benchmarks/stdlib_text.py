@@ -3,9 +3,9 @@
 Healing is distillation: the original model labels every input, so any text of the right kind serves as training
 input and no labels are needed (common practice: Hinton et al. 2015 distil on a "transfer set" that need not be
 the original training data; cited from memory). When the user's own calibration text is a few hundred
-sentences, a larger transfer set helps the factors generalise. The standard library's docstrings are on every machine with Python, need no
-download, and are plain English prose -- a different register from the benchmark's held-out sentences, which
-they never contain.
+sentences, a larger transfer set helps the factors generalise. The standard library's docstrings are on every machine
+with Python, need no download, and are plain English prose -- a different register from the benchmark's held-out
+sentences, which they never contain.
 """
 
 from __future__ import annotations

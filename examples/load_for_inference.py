@@ -1,11 +1,11 @@
 """Load a compressed checkpoint for inference in a fresh process.
 
 What it shows:
-  * ``factorize.checkpoints.files.save(model, path, plan=result.plan)`` writes one safetensors file holding the compressed
-    weights and, in its metadata, the plan (which layers are factored, at which rank);
+  * ``factorize.checkpoints.files.save(model, path, plan=result.plan)`` writes one safetensors file holding the
+    compressed weights and, in its metadata, the plan (which layers are factored, at which rank);
   * a new Python process that never saw the compressed model builds a plain, fresh ``DigitsMLP`` and calls
-    ``factorize.checkpoints.files.load(model, path)``: the factored structure is rebuilt from the plan and the weights are
-    loaded; no pickle, no original model needed;
+    ``factorize.checkpoints.files.load(model, path)``: the factored structure is rebuilt from the plan and the weights
+    are loaded; no pickle, no original model needed;
   * the outputs of the reloaded model match the in-memory compressed model exactly, and its test accuracy is
     printed.
 
@@ -24,8 +24,8 @@ from pathlib import Path
 import torch
 
 import factorize
-
 from factorize.default import load_default, load_digits_split
+from factorize.plan.entries import factored_ranks
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -40,7 +40,7 @@ def child(checkpoint: str, outputs: str) -> None:
         logits = model(x_test)  # (540, 10)
     torch.save(logits, outputs)
     plan = factorize.read_plan(checkpoint)
-    ranks = {name: e["rank"] for name, e in plan["sites"].items() if e["action"] == "factor"}
+    ranks = factored_ranks(plan)
     accuracy = (logits.argmax(dim=1) == y_test).float().mean().item()
     print(f"[fresh process] loaded {Path(checkpoint).name}: factored ranks {ranks}; test accuracy {accuracy:.2%}")
 

@@ -6,7 +6,8 @@ What it shows:
     optimizer of the same type and settings comes back; the epochs in between are the recovery, which is just
     the ordinary loop going on;
   * the loss and the test accuracy per epoch, so you can see each step's cost and the recovery after it;
-  * ``factorize.checkpoints.files.save(model, path, plan=schedule.plan)`` at the end (see load_for_inference.py for loading).
+  * ``factorize.checkpoints.files.save(model, path, plan=schedule.plan)`` at the end (see load_for_inference.py for
+    loading).
 
 The model is a fresh DigitsMLP trained from scratch on the 256-sample calibration split of the embedded digits
 data (Alpaydin & Kaynak, UCI 1998); the 540-sample test split is only used to report accuracy. A small training
@@ -26,9 +27,8 @@ import torch
 import torch.nn.functional as F
 
 import factorize
-
-from factorize.model.count import count_parameters
 from factorize.default import DigitsMLP, load_digits_split
+from factorize.model.count import count_parameters
 
 SMOKE = os.environ.get("FACTORIZE_SMOKE") == "1"
 EPOCHS = 4 if SMOKE else 10

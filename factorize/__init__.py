@@ -74,7 +74,8 @@ _EXPORTS = {  # public name -> the module that defines it
     "walk": "factorize.model.sites",
 }
 
-# What README.md, docs/*.md and examples/ teach as ``factorize.<name>`` (tests/test_public_api.py checks both directions).
+# What README.md, docs/*.md and examples/ teach as ``factorize.<name>`` (tests/test_public_api.py checks both
+# directions).
 # Every other name of ``_EXPORTS`` stays importable from here for code written against earlier versions, and lives
 # in its sub-package (``factorize.model.count.count_parameters``, ``factorize.calibrated.options.CalibrationOptions``,
 # ...); ``CalibrationOptions`` is not taught at the top: ``compress(..., calibration=...)`` takes its keywords.
@@ -160,13 +161,12 @@ if TYPE_CHECKING:  # for type checkers and editors: every name of _EXPORTS, from
     from factorize.pipeline import compress
     from factorize.plan.policy import Override as Override
     from factorize.plan.policy import Policy
-    from factorize.plan.ranks import choose_ranks
+    from factorize.plan.ranks import choose_ranks, plan_summary
     from factorize.plan.ranks import plan_ranks as plan_ranks
-    from factorize.plan.ranks import plan_summary
     from factorize.plan.recipe import load_recipe as load_recipe
     from factorize.rewrite.apply import CompressResult, apply_plan, merge
-    from factorize.rewrite.forms import integer_kernels
     from factorize.rewrite.apply import validate_plan as validate_plan
+    from factorize.rewrite.forms import integer_kernels
     from factorize.rewrite.layers import Factored as Factored
     from factorize.rewrite.layers import factored_layers as factored_layers
     from factorize.rewrite.layers import is_factored as is_factored

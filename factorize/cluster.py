@@ -32,10 +32,10 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from typing_extensions import Self
 
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, printable
 from factorize.threads import torch_threads
 
-INSTALL_FIX = "pip install 'factorize[cluster]' (it installs Dask distributed)"
+INSTALL_FIX = 'pip install ".[cluster]" (in a checkout of factorize; it installs Dask distributed)'
 CONNECT_TIMEOUT = 10.0  # seconds to wait for a scheduler address to answer
 _LOCAL = re.compile(r"local:(\d+)")
 _ADDRESS = re.compile(r"(?:(tcp|tls|ucx|inproc)://)?(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):(\d{1,5})")
@@ -113,7 +113,7 @@ class LocalEngine(Engine):
         from tqdm.auto import tqdm
 
         return [_pinned(fn, self.threads, item)
-                for item in tqdm(list(items), desc=label, unit="task", disable=not progress, leave=False)]
+                for item in tqdm(list(items), desc=printable(label), unit="task", disable=not progress, leave=False)]
 
 
 class DaskEngine(Engine):
@@ -150,7 +150,7 @@ class DaskEngine(Engine):
         results: list[Any] = [None] * len(items)
         lost: list[int] = []
         causes: list[str] = []
-        bar = tqdm(total=len(items), desc=label, unit="task", disable=not progress, leave=False)
+        bar = tqdm(total=len(items), desc=printable(label), unit="task", disable=not progress, leave=False)
         try:
             for future in as_completed(futures):
                 bar.update()

@@ -36,11 +36,13 @@ class UnverifiedModelWarning(UserWarning):
     """A compressed model was returned without running it once (no sample input was at hand to run it on)."""
 
 
-def printable(text: object) -> str:
+def printable(text: object, limit: int | None = None) -> str:
     """``text`` with control characters (terminal escape sequences among them) escaped as ``\\x1b``, ``\\u200b``;
     line breaks stay. Names in messages and tables come from files and user code, and must not drive the
-    terminal: every name the command line prints passes through here."""
-    return "".join(c if c.isprintable() or c == "\n" else _escape(c) for c in str(text))
+    terminal: every name factorize prints or puts in an error passes through here (the one escaping helper).
+    With ``limit``, a longer result is cut to ``limit`` characters ending in ``...``."""
+    shown = "".join(c if c.isprintable() or c == "\n" else _escape(c) for c in str(text))
+    return shown if limit is None or len(shown) <= limit else shown[:max(limit - 3, 0)] + "..."
 
 
 def _escape(c: str) -> str:

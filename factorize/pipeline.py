@@ -26,7 +26,7 @@ from factorize.calibrated.options import (
     refuse_with_calibration,
 )
 from factorize.calibrated.search import CalibratedResult, compress_calibrated  # noqa: F401 - re-exported
-from factorize.errors import FactorizeError, UnverifiedModelWarning
+from factorize.errors import FactorizeError, UnverifiedModelWarning, caller_stacklevel
 from factorize.execution import Execution, resolve_execution
 from factorize.measure.evaluate import with_macs
 from factorize.measure.latency import latency_plan
@@ -155,7 +155,8 @@ def _checked(model: nn.Module, result: CompressResult, sample: Any, on_break: st
     """Run the result once on ``sample``; keep dense (or raise for) the factored layers that break it."""
     if sample is None:
         warnings.warn("compress() had no sample input, so the compressed model was not run; pass example=batch "
-                      "(or calibration=) to check that it still runs", UnverifiedModelWarning, stacklevel=3)
+                      "(or calibration=) to check that it still runs", UnverifiedModelWarning,
+                      stacklevel=caller_stacklevel())
         return result
     if inplace:  # the original layers are gone: the run can only be checked, not repaired layer by layer
         error = check_runs(result.model, sample)

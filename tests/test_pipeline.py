@@ -121,7 +121,7 @@ def test_spectra_reuse_skips_decomposition(mlp, monkeypatch):
 
 
 def test_bad_input_errors(mlp):
-    with pytest.raises(FactorizeError, match="expected a torch.nn.Module"):
+    with pytest.raises(FactorizeError, match=r"expected a torch\.nn\.Module"):
         compress("model.pt", budget=0.5)
     with pytest.raises(FactorizeError, match="no factorizable layer"):
         compress(torch.nn.Sequential(torch.nn.ReLU()), budget=0.5)
@@ -294,7 +294,7 @@ def test_compress_runs_the_result_and_keeps_breaking_layers_dense():
     assert factorize.is_factored(result.model[0]) and result.params_after == factorize.count_parameters(result.model)
     calibrated = factorize.compress(model, rank=4, calibration=[batch, torch.randn(4, 32)])
     assert calibrated.model(batch).shape == (4, 8)  # the first calibration batch serves as the check run
-    with pytest.raises(FactorizeError, match="1.fc"):
+    with pytest.raises(FactorizeError, match=r"1\.fc"):
         factorize.compress(model, rank=4, example=batch, on_break="raise")
 
 

@@ -1,4 +1,5 @@
-"""The top level: ``__all__`` is what the guides (README, docs, examples) teach, and the lazy table and the type-checking imports agree.
+"""The top level: ``__all__`` is what the guides (README, docs, examples) teach, and the lazy table and the
+type-checking imports agree.
 
 ``factorize/__init__.py`` loads its names on first use (PEP 562) from ``_EXPORTS`` (name -> module) and, for type
 checkers, imports the same names eagerly under ``if TYPE_CHECKING:``. Nothing checks the second against the first

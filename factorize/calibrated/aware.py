@@ -47,8 +47,8 @@ samples barely explore keep the original weights (generalised ridge regression t
 Kennard, Technometrics 1970, from memory) -- then W' = U_r U_r^T W_ls with U from W_ls L. The least-squares
 residual (no rank can remove it) is added to the predicted error.
 
-**Output weighting** (``output_gram=G``, see :func:`factorize.calibrated.gradients.collect_output_grams`): not every output
-direction of a layer matters equally downstream. With G the mean Gauss-Newton matrix of the final output with
+**Output weighting** (``output_gram=G``, see :func:`factorize.calibrated.gradients.collect_output_grams`): not every
+output direction of a layer matters equally downstream. With G the mean Gauss-Newton matrix of the final output with
 respect to the layer's output, trace(G dW C dW^T) approximates the final-output error of a weight error dW
 (first order, Kronecker-factored as in K-FAC, Martens & Grosse 2015). Write G + mu I = R^2 (R symmetric, mu =
 0.1 * mean(diag G), a judgement call that keeps R^{-1} well conditioned); the rank-r minimiser of
@@ -259,8 +259,8 @@ def decompose_aware(
         fit: :class:`AwareFit` (method, alpha, center, ridge, refit_ridge, output_ridge, solver), or its fields
             as keywords. ``center`` counts only for layers with a bias; ``"auto"`` does not centre here.
         output_gram: G (m x m), how much each output direction moves the final output
-            (:func:`factorize.calibrated.gradients.collect_output_grams`); when given, the error is weighted on both sides,
-            ||G^{1/2} (W - W') L||_F, and errors are in final-output units (see the module docstring).
+            (:func:`factorize.calibrated.gradients.collect_output_grams`); when given, the error is weighted on both
+            sides, ||G^{1/2} (W - W') L||_F, and errors are in final-output units (see the module docstring).
         rank: how many triplets a partial solver must compute.
         execution: :class:`~factorize.execution.Execution` (its seed and precision count here, as for
             :func:`factorize.spectra.decompose.decompose`), or ``seed`` / ``precision`` as keywords.

@@ -12,8 +12,8 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.calibrated.stats import (
-    check_finite,
     as_batch_list,
+    check_finite,
     check_memory,
     resolve_sites,
 )
@@ -42,7 +42,7 @@ def _output_rows(kind: str, g: torch.Tensor, mask: torch.Tensor | None, module: 
     if kind.startswith("conv_transpose"):
         return _transpose_output_rows(module, g)
     if kind in ("conv1d", "conv2d", "conv3d"):
-        if g.dim() == {"conv1d": 3, "conv2d": 4, "conv3d": 5}[kind]:
+        if g.dim() == {"conv1d": 3, "conv2d": 4, "conv3d": 5}[kind]:  # noqa: SIM108 - one comment per branch
             g = g.movedim(1, -1)  # channels last
         else:
             g = g.movedim(0, -1)  # unbatched
@@ -131,7 +131,7 @@ def collect_output_grams(
                 mask = token_mask(batch)
                 try:
                     out = feed(model, batch)
-                except Exception as err:  # noqa: BLE001
+                except Exception as err:
                     raise FactorizeError(f"calibration batch {i} did not run through the model: "
                                          f"{type(err).__name__}: {err}") from err
                 f = output_fn(out, batch) if output_fn is not None else primary_output(out)
@@ -157,7 +157,8 @@ def collect_output_grams(
                             j += 1
                             if g is None:
                                 continue
-                            r = _output_rows(kinds[n], g.detach(), mask, modules[n]).to(torch.float64).cpu()  # (rows, m)
+                            # (rows, m)
+                            r = _output_rows(kinds[n], g.detach(), mask, modules[n]).to(torch.float64).cpu()
                             check_finite(r, n, i)
                             grams[n].addmm_(r.T, r)
                             if k == 0:

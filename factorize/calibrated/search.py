@@ -48,7 +48,6 @@ from factorize.calibrated.aware import (
     compress_sequential,
 )
 from factorize.calibrated.gradients import collect_output_grams
-from factorize.calibrated.precision import calibrated_bytes_plan, calibrated_latency_plan, hessians
 from factorize.calibrated.options import (  # noqa: F401 - DRIFT_METRICS and the defaults are re-exported
     DEFAULT_BUDGETS,
     DEFAULT_TOLERANCE,
@@ -58,6 +57,7 @@ from factorize.calibrated.options import (  # noqa: F401 - DRIFT_METRICS and the
     calibrated_setup,
     sensitivity_mode,
 )
+from factorize.calibrated.precision import calibrated_bytes_plan, calibrated_latency_plan, hessians
 from factorize.calibrated.sensitivity import (
     Sensitivity,
     measure_sensitivity,

@@ -142,7 +142,7 @@ def _patches_3d(module: nn.Module, x: torch.Tensor) -> torch.Tensor:
         x = F.pad(x, pad, mode="constant" if module.padding_mode == "zeros" else module.padding_mode)
     for axis, (k, s, d) in enumerate(zip(module.kernel_size, module.stride, module.dilation)):
         x = x.unfold(2 + axis, (k - 1) * d + 1, s)[..., ::d]  # (B, C, ..., windows, k) appended per axis
-    b, c, od, oh, ow = x.shape[:5]
+    b, _, od, oh, ow = x.shape[:5]
     return x.permute(0, 2, 3, 4, 1, 5, 6, 7).reshape(b * od * oh * ow, -1)  # (B*L, C*kd*kh*kw)
 
 
@@ -184,7 +184,8 @@ def check_finite(rows: torch.Tensor, name: str, batch: int) -> None:
     if rows.is_floating_point() and not bool(torch.isfinite(rows).all()):
         bad = int((~torch.isfinite(rows)).sum())
         raise FactorizeError(
-            f"layer {name}: {bad} non-finite activation value(s) (NaN or Inf) in its input on calibration batch {batch}",
+            f"layer {name}: {bad} non-finite activation value(s) (NaN or Inf) in its input on calibration batch "
+            f"{batch}",
             fix="check that batch's inputs and the layers before this one (a NaN upstream spreads), or exclude the "
             "layer with exclude=[...]",
         )
@@ -269,7 +270,7 @@ def _run(model: nn.Module, batches: Sequence[Any], state: _State, bar, start: in
             pass
         except FactorizeError:
             raise
-        except Exception as err:  # noqa: BLE001 - any failure of the user's model on a batch is reported as such
+        except Exception as err:  # any failure of the user's model on a batch is reported as such
             raise FactorizeError(
                 f"calibration batch {i} did not run through the model: {type(err).__name__}: {err}",
                 fix="give batches the model accepts: a tensor is fed as model(x), a tuple or list as model(*x), a "
@@ -365,8 +366,8 @@ def check_memory(needs: dict[str, int], what: str, *, limit: int | None = None) 
     big = sorted(((b, n) for n, b in needs.items() if b > limit / 4), reverse=True) or \
         sorted(((b, n) for n, b in needs.items()), reverse=True)[:5]
     raise FactorizeError(
-        f"the {what} of {len(needs)} layers would need {human_bytes(total)}, more than the {human_bytes(limit)} allowed "
-        f"({source})",
+        f"the {what} of {len(needs)} layers would need {human_bytes(total)}, more than the {human_bytes(limit)} "
+        f"allowed ({source})",
         [f"{name}: {human_bytes(b)}" for b, name in big],
         fix="leave the widest layers out of calibration (exclude=[...] / --exclude, or compress them without "
         "calibration in a second call), compress fewer layers per call (include=...), or free memory",
@@ -483,7 +484,8 @@ def collect_pair_stats(
     cur_rows: list[torch.Tensor] = []
     ref_hook = {site.name: _make_hook(site, ref_stats, state, sink=ref_rows.append)}
     cur_hook = {site.name: _make_hook(site, stats, state, sink=cur_rows.append)}
-    bar = tqdm(total=len(batches), desc=f"calibrate {printable(site.name)}", unit="batch", disable=not progress, leave=False)
+    bar = tqdm(total=len(batches), desc=f"calibrate {printable(site.name)}", unit="batch", disable=not progress,
+               leave=False)
     try:
         with (forward_pre_hooks(reference, ref_hook, with_kwargs=True),
               forward_pre_hooks(current, cur_hook, with_kwargs=True),

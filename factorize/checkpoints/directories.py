@@ -216,11 +216,12 @@ def _dtype_of(model: nn.Module) -> torch.dtype:
 # reading
 
 
-def _transformers():
+def import_transformers(needed_for: str):
+    """The transformers module, or a FactorizeError saying that ``needed_for`` needs it and how to install it."""
     try:
         import transformers
     except ImportError:
-        raise FactorizeError("reading a transformers directory needs the transformers library, which is not installed",
+        raise FactorizeError(f"{needed_for} needs the transformers library, which is not installed",
                              fix=f"install the hf extra: {HF_EXTRA}") from None
     return transformers
 
@@ -303,7 +304,7 @@ def _stored_dtype(weights: Path) -> torch.dtype | None:
 
 def build_architecture(directory: str | os.PathLike) -> nn.Module:
     """A fresh (randomly initialised) instance of the model class named in ``directory``'s config.json."""
-    transformers = _transformers()
+    transformers = import_transformers("reading a transformers directory")
     d = Path(directory)
     if not (d / "config.json").is_file():
         raise FactorizeError(f"{d}: no config.json in it", fix="pass a directory written by save_directory")

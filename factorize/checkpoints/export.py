@@ -82,7 +82,7 @@ def export_onnx(model: nn.Module, example: Any, path: str | os.PathLike, *, opse
             program = torch.onnx.export(model, args, kwargs=kwargs, dynamo=True, opset_version=opset,
                                         dynamic_shapes=_dynamic_shapes(args, kwargs) if dynamic_batch else None,
                                         verbose=False, report=False)
-        except Exception as err:  # noqa: BLE001 - the exporter raises many types; name the model and the cause
+        except Exception as err:  # the exporter raises many types; name the model and the cause
             raise _failed("ONNX", model, err) from err
     write_atomic(final, lambda tmp: program.save(str(tmp), external_data=False), force=force)
     diff, how = (None, None)
@@ -103,7 +103,7 @@ def export_program(model: nn.Module, example: Any, path: str | os.PathLike, *, d
         try:
             program = torch.export.export(model, args, kwargs=kwargs,
                                           dynamic_shapes=_dynamic_shapes(args, kwargs) if dynamic_batch else None)
-        except Exception as err:  # noqa: BLE001
+        except Exception as err:
             raise _failed("torch.export", model, err) from err
     write_atomic(final, lambda tmp: torch.export.save(program, str(tmp)), force=force)
     diff, how = (None, None)

@@ -36,7 +36,7 @@ import torch
 from safetensors import safe_open
 from torch import nn
 
-from factorize.errors import FactorizeError, caller_stacklevel
+from factorize.errors import FactorizeError, caller_stacklevel, printable
 from factorize.plan.entries import factored_names, plan_entries
 from factorize.plan.ranks import PLAN_FORMAT
 from factorize.storage import (
@@ -44,7 +44,6 @@ from factorize.storage import (
     check_free_space,
     check_output_path,
     check_readable_file,
-    printable,
     read_header,
     write_atomic,
     write_safetensors,
@@ -140,7 +139,7 @@ def _open_index(p: Path) -> Checkpoint:
             fix="download or copy the missing shard files next to the index",
         )
     headers = [read_header(p.parent / s) for s in shards]
-    by_file = {s: h for s, h in zip(shards, headers)}
+    by_file = dict(zip(shards, headers))
     wrong = [f"{name}: the index places it in {s}, which does not hold it" for name, s in wm.items()
              if name not in by_file[s].tensors]
     if wrong:
@@ -201,7 +200,8 @@ def _plan_and_aliases(ckpt: Checkpoint, path) -> tuple[dict, dict[str, str]]:
             "(or safetensors.torch.load_model); to compress them, use factorize.compress or shrink_checkpoint",
         )
     version = meta.get(KEY_VERSION, "")
-    if version != str(FORMAT_VERSION):  # ASCII digits only: int() would also take '１' or a 5000-digit number
+    # ASCII digits only: int() would also take a full-width digit or a 5000-digit number
+    if version != str(FORMAT_VERSION):
         raise FactorizeError(
             f"{path}: factorize checkpoint format version {printable(version[:20])!r}; this factorize reads version "
             f"{FORMAT_VERSION}",
@@ -246,7 +246,8 @@ def plan_json(plan: Mapping) -> str:
     try:
         return json.dumps(plan, sort_keys=False, allow_nan=True)
     except (TypeError, ValueError) as e:
-        raise FactorizeError(f"the plan is not JSON-serialisable ({e})", fix="pass the plan as compress() made it") from None
+        raise FactorizeError(f"the plan is not JSON-serialisable ({e})",
+                             fix="pass the plan as compress() made it") from None
 
 
 def _user_metadata(extra: Mapping[str, str] | None) -> dict[str, str]:

@@ -39,7 +39,6 @@ from factorize.storage import check_safetensors, read_safetensors
 
 PICKLE_SUFFIXES = (".pt", ".pth", ".bin", ".ckpt", ".pkl")
 DEFAULT_SPEC = "factorize.default:load_default"  # the embedded digits classifier
-HF_EXTRA = 'pip install ".[hf]" (in a checkout of factorize)'
 TOKENIZER_FILES = ("tokenizer.json", "tokenizer_config.json", "vocab.txt", "vocab.json", "tokenizer.model")
 
 
@@ -184,8 +183,8 @@ def _fresh_copy(model: nn.Module) -> nn.Module:
 def load_weights(model: nn.Module, path: str | os.PathLike, *, allow_pickle: bool = False) -> nn.Module:
     """Load a weights file into ``model`` strictly.
 
-    A factorize checkpoint (a plan in its metadata) is loaded with :func:`factorize.checkpoints.files.load`, which first rebuilds
-    the factored structure. Otherwise the file's tensors must match the model's state dict exactly: every
+    A factorize checkpoint (a plan in its metadata) is loaded with :func:`factorize.checkpoints.files.load`, which first
+    rebuilds the factored structure. Otherwise the file's tensors must match the model's state dict exactly: every
     missing, unexpected and mis-shaped key is listed in one error.
     """
     path = Path(path)
@@ -285,14 +284,9 @@ def _check_readable(path: Path) -> None:
 
 
 def _transformers():
-    try:
-        import transformers
-    except ImportError:
-        raise FactorizeError(
-            "reading a transformers model directory needs the transformers library, which is not installed",
-            fix=f"install the hf extra: {HF_EXTRA}",
-        ) from None
-    return transformers
+    from factorize.checkpoints.directories import import_transformers
+
+    return import_transformers("reading a transformers model directory")
 
 
 def _from_directory(path: Path, *, allow_pickle: bool) -> LoadedModel:
@@ -330,8 +324,10 @@ def _from_directory(path: Path, *, allow_pickle: bool) -> LoadedModel:
     except pickle.UnpicklingError as err:  # --allow-pickle: torch.load(weights_only=True) refused the file
         raise _pickle_refused(pickled, err) from None
     except (OSError, ValueError, RuntimeError) as err:
-        raise FactorizeError(f"{path}: transformers could not load the model: {str(err).splitlines()[0]}",
-                             fix="check that the weights belong to config.json; save again with save_pretrained()") from None
+        raise FactorizeError(
+            f"{path}: transformers could not load the model: {str(err).splitlines()[0]}",
+            fix="check that the weights belong to config.json; save again with save_pretrained()",
+        ) from None
     tokenizer = _tokenizer(transformers, path)
     return LoadedModel(source=str(path), kind="transformers", model=model.eval(), path=path, tokenizer=tokenizer,
                        build=build)

@@ -190,7 +190,7 @@ def sample_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None:
     elif args.random_inputs:
         shape = parse_shape(args.random_inputs)
         if args.max_samples:
-            shape = (min(shape[0], args.max_samples),) + shape[1:]
+            shape = (min(shape[0], args.max_samples), *shape[1:])
         inputs = random_inputs(loaded.model, shape, batch_size=args.batch_size, seed=args.seed)
         source = f"--random-inputs {args.random_inputs}"
     else:

@@ -62,7 +62,7 @@ def run(args, ui: UI) -> dict:
 def _load_against(args, loaded, ui: UI):
     """The second model: a factorize checkpoint or weights for --model's architecture, or another model spec."""
     spec = Path(args.against)
-    is_file = spec.is_file() or spec.suffix.lower() in (".safetensors",) + PICKLE_SUFFIXES
+    is_file = spec.is_file() or spec.suffix.lower() in (".safetensors", *PICKLE_SUFFIXES)
     if is_file and loaded.build is not None:
         fresh = loaded.build()
         if spec.suffix.lower() == ".safetensors" and spec.exists() and has_plan(spec):

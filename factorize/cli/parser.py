@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import argparse
 from collections.abc import Callable
-from typing import Any
+from typing import Any, NamedTuple
 
 from factorize._version import __version__
 from factorize.choices import (
@@ -69,10 +69,19 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
-    common, model, inputs, policy, out = _parents()
+    parents = _parents()
+    _add_scan(sub, parents)
+    _add_shrink(sub, parents)
+    _add_sweep(sub, parents)
+    _add_compare(sub, parents)
+    _add_export(sub, parents)
+    _add_demo(sub, parents)
+    return parser
 
+
+def _add_scan(sub, p: _Parents) -> None:
     sub.add_parser(
-        "scan", parents=[common, model, _scan_options()], formatter_class=_Formatter,
+        "scan", parents=[p.common, p.model, _scan_options()], formatter_class=_Formatter,
         help="per-layer spectrum report: effective ranks, break-even, a suggested rank",
         description="List every factorizable layer with its shape, parameters, the rank needed to keep 90%, 99%\n"
         "and 99.9% of its spectral energy (sum of squared singular values), the break-even rank\n"
@@ -85,9 +94,11 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
 
+
+def _add_shrink(sub, p: _Parents) -> None:
     sub.add_parser(
-        "shrink", parents=[common, model, inputs, policy, out, _check_options(), _quality_options(shrink=True),
-                 _device_options(dtype=True)],
+        "shrink", parents=[p.common, p.model, p.inputs, p.policy, p.out, _check_options(),
+                           _quality_options(shrink=True), _device_options(dtype=True)],
         formatter_class=_Formatter,
         help="write a compressed checkpoint and its report",
         description="Factor the model's dense layers under a rank policy, measure the result on sample inputs,\n"
@@ -104,9 +115,11 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
 
+
+def _add_sweep(sub, p: _Parents) -> None:
     sub.add_parser(
-        "sweep", parents=[common, model, inputs, _sweep_policy(), _sweep_options(), _quality_options(shrink=False),
-                 _device_options(dtype=False)],
+        "sweep", parents=[p.common, p.model, p.inputs, _sweep_policy(), _sweep_options(),
+                          _quality_options(shrink=False), _device_options(dtype=False)],
         formatter_class=_Formatter,
         help="evaluate a grid of budgets from one decomposition pass",
         description="Compress at each budget of a grid, reusing one decomposition of every layer, and tabulate\n"
@@ -119,8 +132,11 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
 
+
+def _add_compare(sub, p: _Parents) -> None:
     sub.add_parser(
-        "compare", parents=[common, model, inputs, _compare_options(), _check_options(), _device_options(dtype=False)],
+        "compare", parents=[p.common, p.model, p.inputs, _compare_options(), _check_options(),
+                            _device_options(dtype=False)],
         formatter_class=_Formatter,
         help="output drift between two models on sample inputs",
         description="Run two models on the same sample inputs and report the drift between their outputs.\n"
@@ -134,8 +150,10 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
 
+
+def _add_export(sub, p: _Parents) -> None:
     sub.add_parser(
-        "export", parents=[common, model, _export_options()], formatter_class=_Formatter,
+        "export", parents=[p.common, p.model, _export_options()], formatter_class=_Formatter,
         help="write a (compressed) model as ONNX or a torch.export program (.pt2)",
         description="Trace the model on one sample batch and write it as ONNX (run anywhere onnxruntime runs) or as\n"
         "a torch.export program (.pt2, reload with torch.export.load). --weights may be a checkpoint from\n"
@@ -148,22 +166,33 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
 
+
+def _add_demo(sub, p: _Parents) -> None:
     sub.add_parser(
-        "demo", parents=[common, _demo_options()], formatter_class=_Formatter,
+        "demo", parents=[p.common, _demo_options()], formatter_class=_Formatter,
         help="the whole job on the embedded digits classifier",
         description="Scan, shrink at a mild and a strong budget, measure accuracy on the held-out part of the\n"
         "handwritten-digits data (Alpaydin & Kaynak, UCI; as bundled with scikit-learn) before and after,\n"
         "measure drift, save and reload the compressed model. Writes nothing to disk.",
         epilog=_examples("factorize demo", "factorize demo --json", "factorize demo --budgets 0.6,0.2"),
     )
-    return parser
 
 
 def _examples(*lines: str) -> str:
     return "examples:\n" + "\n".join(f"  {line}" for line in lines)
 
 
-def _parents():
+class _Parents(NamedTuple):
+    """The option groups several commands share (argparse parents)."""
+
+    common: argparse.ArgumentParser
+    model: argparse.ArgumentParser
+    inputs: argparse.ArgumentParser
+    policy: argparse.ArgumentParser
+    out: argparse.ArgumentParser
+
+
+def _parents() -> _Parents:
     common = argparse.ArgumentParser(add_help=False)
     g = common.add_argument_group("output")
     g.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
@@ -218,7 +247,7 @@ def _parents():
                    help=f"compressed checkpoint to write (default: next to the input, suffix {OUTPUT_SUFFIX})")
     g.add_argument("--report", metavar="FILE.md", help="also write the report as Markdown")
     g.add_argument("--force", "-f", action="store_true", help="replace existing output files")
-    return common, model, inputs, policy, out
+    return _Parents(common, model, inputs, policy, out)
 
 
 def _selection(g) -> None:
@@ -271,7 +300,8 @@ def _quality_options(*, shrink: bool):
                        help="weights-only mode: run the per-matrix decompositions as tasks on a Dask cluster: "
                        "local:N starts N worker processes here, tcp://HOST:PORT uses a running scheduler (the "
                        "checkpoint, and --cache if given, must be at the same path on every worker); needs "
-                       "factorize[cluster]. The output is byte-identical to a run without it")
+                       "the cluster extra (pip install \".[cluster]\" in a checkout). The output is byte-identical to "
+                       "a run without it")
         g.add_argument("--target-drift", type=_nonnegative("--target-drift"), metavar="X",
                        help="with --calibration: the smallest budget whose relative L2 drift on --inputs stays <= X "
                        "(exit 1 with the closest budget when none does)")
@@ -329,7 +359,8 @@ def _compare_options():
     g.add_argument("--report", metavar="FILE.md", help="also write the report as Markdown")
     g.add_argument("--force", "-f", action="store_true", help="replace an existing report file")
     g.add_argument("--non-strict", action="store_true",
-                   help="load a factorize checkpoint given as --against tolerating missing and unexpected keys (listed in a warning) and casting "
+                   help="load a factorize checkpoint given as --against tolerating missing and unexpected keys "
+                   "(listed in a warning) and casting "
                    "dtypes, e.g. a transformers directory's extra buffers; shapes must still match")
     return p
 
@@ -352,7 +383,7 @@ def _device_options(*, dtype: bool):
 def _device(text: str) -> str:
     """cpu, cuda or cuda:N (syntax only; whether a GPU is there is checked when the command runs)."""
     name, _, index = text.strip().lower().partition(":")
-    if name == "cpu" and not index or name == "cuda" and (not index or index.isdigit()):
+    if (name == "cpu" and not index) or (name == "cuda" and (not index or index.isdigit())):
         return text.strip().lower()
     raise argparse.ArgumentTypeError(f"{text!r} is not a device; --device takes cpu, cuda or cuda:N")
 

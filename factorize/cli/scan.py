@@ -6,9 +6,9 @@ import math
 
 from rich.table import Table
 
-from factorize.outofcore.candidates import checkpoint_spectra
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site, walk
+from factorize.outofcore.candidates import checkpoint_spectra
 from factorize.spectra.decompose import Spectrum
 from factorize.spectra.sites import decompose_sites
 

@@ -10,11 +10,11 @@ from pathlib import Path
 from rich.table import Table
 
 from factorize.calibrated.search import Calibration, compress_from
-from factorize.outofcore.candidates import checkpoint_spectra
 from factorize.choices import DEFAULT_METHOD
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate
 from factorize.measure.report import CAUTION
+from factorize.outofcore.candidates import checkpoint_spectra
 from factorize.pipeline import compress, sweep_spectra
 from factorize.plan.entries import factored_entries
 from factorize.plan.ranks import choose_ranks, plan_summary

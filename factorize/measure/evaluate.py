@@ -84,8 +84,10 @@ class EvaluateOptions:
                 f"evaluate() got unknown keyword{'s' if len(unknown) > 1 else ''}: {', '.join(unknown)}",
                 fix="accepted: options, labels, plan, memo, " + ", ".join(names))
         if options is not None and keywords:
-            raise FactorizeError("EvaluateOptions and evaluation keywords were both given", [f"{k}=" for k in keywords],
-                                 fix="put them into the options (dataclasses.replace(options, ...)) or pass keywords only")
+            raise FactorizeError(
+                "EvaluateOptions and evaluation keywords were both given", [f"{k}=" for k in keywords],
+                fix="put them into the options (dataclasses.replace(options, ...)) or pass keywords only",
+            )
         return options if options is not None else cls(**keywords)
 
 
@@ -347,7 +349,8 @@ def layer_reports(
     once per ``memo``)."""
     factored = factored_layers(compressed)
     entries: dict[str, dict] = dict(plan["sites"]) if plan else {
-        name: {"kind": layer.kind, "shape": list(layer.product().shape), "rank": layer.rank} for name, layer in factored.items()
+        name: {"kind": layer.kind, "shape": list(layer.product().shape), "rank": layer.rank}
+        for name, layer in factored.items()
     }
     if sites is not None:
         wanted = set(sites)

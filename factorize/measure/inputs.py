@@ -324,7 +324,9 @@ def check_inputs(model: nn.Module, inputs: SampleInputs, source: str) -> None:
 
 def describe_batch(batch: Any) -> str:
     def one(t):
-        return f"{list(t.shape)} {str(t.dtype).removeprefix('torch.')}" if isinstance(t, torch.Tensor) else type(t).__name__
+        if isinstance(t, torch.Tensor):
+            return f"{list(t.shape)} {str(t.dtype).removeprefix('torch.')}"
+        return type(t).__name__
 
     if isinstance(batch, dict):
         return ", ".join(f"{k}: {one(v)}" for k, v in batch.items())

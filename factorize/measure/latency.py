@@ -70,7 +70,8 @@ def _factored_at(module: nn.Module, kind: str, rank: int) -> nn.Module:
 
 
 def time_forms(module: nn.Module, kind: str, shape: tuple[int, ...], ranks: Sequence[int], *,
-               repeats: int = REPEATS, clock: Callable[[], float] = time.perf_counter) -> tuple[float, dict[int, float]]:
+               repeats: int = REPEATS,
+               clock: Callable[[], float] = time.perf_counter) -> tuple[float, dict[int, float]]:
     """(dense ms, rank -> factored ms) of one layer on an input of ``shape``, each pair interleaved; the fastest
     call of each, the least disturbed estimate on a shared machine (common practice in benchmarking)."""
     x = _probe(module, shape, module.weight)
@@ -124,7 +125,7 @@ def latency_plan(
     method: str,
     metrics: Mapping[str, LayerMetric] | None = None,
     timer: Callable[..., tuple[float, dict[int, float]]] = time_forms,
-    measure: Callable[[dict], float] | None | str = "whole model",
+    measure: Callable[[dict], float] | str | None = "whole model",
 ) -> dict:
     """The plan of ``policy`` (``cost="latency"``, ``budget`` a fraction of the model's measured time on
     ``example``).
@@ -134,9 +135,9 @@ def latency_plan(
     A layer timed alone runs faster or slower than inside the model (caches, the work around it), so the layers'
     share is then corrected by measurement: the plan for ``budget`` of the layers' summed dense time is built and
     the whole model measured (``measure``: plan -> measured ratio, default :func:`measured_ratio`; None skips
-    it); while the ratio misses the budget, or undershoots it by more than 10%, the layers' share is scaled by budget / ratio (at most
-    :data:`ROUNDS` plans); the plan with the largest share measured within budget is kept (else the fastest
-    measured). ``plan["selection"]["measured_ratio"]`` records what was measured.
+    it); while the ratio misses the budget, or undershoots it by more than 10%, the layers' share is scaled by
+    budget / ratio (at most :data:`ROUNDS` plans); the plan with the largest share measured within budget is kept
+    (else the fastest measured). ``plan["selection"]["measured_ratio"]`` records what was measured.
     """
     if example is None:
         raise FactorizeError("cost='latency' times the layers at your batch shape and needs a sample input",
@@ -170,7 +171,8 @@ def latency_plan(
             break
         if ratio <= policy.budget and (best is None or share > best[0]):
             best = tried[-1]
-        if TOLERANCE * policy.budget <= ratio <= policy.budget or (ratio > policy.budget and share * dense_total <= floor):
+        at_floor = share * dense_total <= floor
+        if TOLERANCE * policy.budget <= ratio <= policy.budget or (ratio > policy.budget and at_floor):
             break
         share = min(share * policy.budget / max(ratio, 1e-9), 1.0)  # the layers' share, corrected by measurement
     share, ratio, plan = best if best is not None else min(tried, key=lambda t: (t[1] or 0.0))

@@ -242,8 +242,10 @@ class Report:
     def summary_rows(self) -> list[tuple[str, str, str, str]]:
         """(quantity, before, after, change) rows shared by the rich and Markdown renderings."""
         rows = [
-            ("parameters", _int(self.params_before), _int(self.params_after), _change(self.params_before, self.params_after)),
-            ("bytes", _bytes(self.bytes_before), _bytes(self.bytes_after), _change(self.bytes_before, self.bytes_after)),
+            ("parameters", _int(self.params_before), _int(self.params_after),
+             _change(self.params_before, self.params_after)),
+            ("bytes", _bytes(self.bytes_before), _bytes(self.bytes_after),
+             _change(self.bytes_before, self.bytes_after)),
         ]
         if self.macs_before is not None:
             rows.append(("MACs/sample, layers in the table", _int(self.macs_before), _int(self.macs_after),

@@ -123,7 +123,8 @@ class WalkResult:
         raise FactorizeError(
             "no factorizable layer found" + (" matching the include/exclude patterns" if filtered else ""),
             [f"{s.name}: {s.reason}" for s in self.skipped],
-            fix="factorize handles nn.Linear, nn.Conv1d/2d/3d and nn.ConvTranspose1d/2d (groups=1), nn.Embedding and transposed projections; "
+            fix="factorize handles nn.Linear, nn.Conv1d/2d/3d and nn.ConvTranspose1d/2d (groups=1), nn.Embedding "
+            "and transposed projections; "
             "check the include/exclude globs against model.named_modules()",
         )
 
@@ -148,7 +149,7 @@ def is_transposed_projection(module: nn.Module) -> bool:
     if weight is None or weight.dim() != 2 or set(params) - {"weight", "bias"}:
         return False
     bias = params.get("bias")
-    n_in, n_out = weight.shape
+    _, n_out = weight.shape
     if bias is not None and tuple(bias.shape) != (n_out,):
         return False
     return _probe_transposed(module, weight, bias)
@@ -267,7 +268,8 @@ def _as_patterns(value: str | Iterable[str] | None, what: str) -> list[str] | No
     patterns = list(value)
     bad = [repr(p) for p in patterns if not isinstance(p, str)]
     if bad:
-        raise FactorizeError(f"{what} patterns must be strings", bad, fix=f"pass {what} as a glob string or a list of them")
+        raise FactorizeError(f"{what} patterns must be strings", bad,
+                             fix=f"pass {what} as a glob string or a list of them")
     return patterns
 
 
@@ -276,7 +278,7 @@ def walk(
     *,
     include: str | Iterable[str] | None = None,
     exclude: str | Iterable[str] | None = None,
-    shapes_only: bool = False,
+    allow_meta: bool = False,
 ) -> WalkResult:
     """Find every factorizable layer of ``model``.
 
@@ -285,8 +287,8 @@ def walk(
         include: glob pattern(s) on qualified module names (``fnmatch`` rules, e.g. ``"encoder.*.attention.*"``);
             when given, only matching layers become sites.
         exclude: glob pattern(s); matching layers are never sites.
-        shapes_only: the caller needs the layers' structure alone (e.g. an architecture built on the meta
-            device to plan an out-of-core run); otherwise a model with meta parameters is refused.
+        allow_meta: walk a skeleton whose parameters are on the meta device (names, kinds and shapes only; the
+            out-of-core shrinks read the values from the checkpoint themselves). Otherwise such a model is an error.
 
     Returns:
         A :class:`WalkResult`. A weight shared by several modules (tied embedding and output head) gives one
@@ -298,7 +300,7 @@ def walk(
             f"expected a torch.nn.Module, got {type(model).__name__}",
             fix="pass the model object itself (for a checkpoint file, build the architecture and load it first)",
         )
-    if not shapes_only:
+    if not allow_meta:
         _refuse_meta(model)
     include_p = _as_patterns(include, "include")
     exclude_p = _as_patterns(exclude, "exclude")

@@ -17,6 +17,7 @@ from typing import Any
 
 import torch
 
+from factorize.checkpoints.directories import import_transformers
 from factorize.checkpoints.files import Checkpoint, open_checkpoint
 from factorize.errors import FactorizeError
 from factorize.model.sites import walk
@@ -43,12 +44,7 @@ class Architecture:
 
 def _transformers():
     """The transformers module, or a clear error naming the extra to install."""
-    try:
-        import transformers
-    except ImportError:
-        raise FactorizeError("the block-by-block shrink needs the transformers library, which is not installed",
-                             fix='install the hf extra: pip install "factorize[hf]"') from None
-    return transformers
+    return import_transformers("the block-by-block shrink")
 
 
 @functools.lru_cache(maxsize=2)
@@ -119,7 +115,7 @@ def check_source(src: Path) -> Architecture:
 def block_linears(arch: Architecture, policy: Policy) -> list[str]:
     """Qualified names of the linear layers inside the blocks that the policy's include/exclude select."""
     block = arch.model.get_submodule(f"{arch.prefix}.0")
-    rel = [s.name for s in walk(block, shapes_only=True).sites if s.kind == "linear"]
+    rel = [s.name for s in walk(block, allow_meta=True).sites if s.kind == "linear"]  # a meta-device skeleton
     out = []
     for i in range(arch.blocks):
         for r in rel:

@@ -78,6 +78,7 @@ from factorize.outofcore.options import BlockwiseOptions, split_keywords
 from factorize.outofcore.results import BlockwiseShrink
 from factorize.outofcore.tokens import slice_plan, token_batches
 from factorize.outofcore.writer import CheckpointWriter, plan_bound
+from factorize.plan.entries import factored_entries, is_factored_entry
 from factorize.plan.policy import Policy, rank_needed, resolve_policy
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.storage import (
@@ -346,9 +347,9 @@ def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
     """Step 3: one task per factored linear; name -> file of its factors."""
     (run.work / "factors").mkdir()
     o = run.options
-    tasks = [FactorTask(run.source, name, groups[name], int(e["rank"]), run.aware, run.solver, o.ridge,
-                        run.policy.seed, o.precision, str(run.work / "factors" / f"{name}.safetensors"), o.threads)
-             for name, e in plan["sites"].items() if e.get("action") == "factor"]
+    tasks = [FactorTask(run.source, e.name, groups[e.name], int(e.rank), run.aware, run.solver, o.ridge,
+                        run.policy.seed, o.precision, str(run.work / "factors" / f"{e.name}.safetensors"), o.threads)
+             for e in factored_entries(plan)]
     files = run.engine.map(factor_task, tasks, label="factors")
     return {t.module: f for t, f in zip(tasks, files)}
 
@@ -359,7 +360,7 @@ def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, st
 
     def factors_of(c: Candidate, entry: dict) -> tuple[str | None, float]:
         path = factors.get(c.module)
-        if entry["action"] != "factor":
+        if not is_factored_entry(entry):
             return path, 0.0
         with safe_open(path, framework="pt", device="cpu") as f:
             A, B = f.get_tensor("first"), f.get_tensor("second")

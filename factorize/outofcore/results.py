@@ -14,6 +14,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from factorize.measure.report import LayerReport, Report
+from factorize.plan.entries import is_factored_entry
 from factorize.storage import human_bytes
 
 WEIGHTS_ONLY_NOTE = ("weights-only mode: there is no architecture to run, so output drift was not measured; load the "
@@ -28,7 +29,7 @@ def layer_reports(tensors: Mapping[str, Mapping]) -> list[LayerReport]:
     layers = []
     for row in tensors.values():
         m, n = row["shape"]
-        rank = row["rank"] if row["action"] == "factor" else None
+        rank = row["rank"] if is_factored_entry(row) else None
         layers.append(LayerReport(name=row["module"], kind="linear", shape=(m, n), rank=rank, params=m * n,
                                   params_after=m * n if rank is None else rank * (m + n),
                                   weight_error=row.get("relative_error", 0.0 if rank is None else None),

@@ -27,6 +27,7 @@ import torch
 from factorize.errors import FactorizeError
 from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
+from factorize.plan.entries import is_factored_entry
 from factorize.plan.policy import Policy
 from factorize.plan.ranks import choose_ranks
 from factorize.spectra.cache import SpectrumCache
@@ -147,7 +148,7 @@ def factors_task(task: MatrixTask) -> dict:
     found = stored_result(path, key)
     if found is None:
         entry = task.entry
-        if entry is not None and entry["action"] != "factor":
+        if entry is not None and not is_factored_entry(entry):
             spec = None  # kept dense by the plan: no decomposition needed
         elif task.values is not None and entry is not None:
             spec = cached_leading(W, int(entry["rank"]), task.values, cache, seed=task.seed,  # as compress() does
@@ -158,7 +159,7 @@ def factors_task(task: MatrixTask) -> dict:
             plan = choose_ranks([task.site], {task.site.name: spec}, task.policy, method=task.method)
             entry = plan["sites"][task.site.name]
         tensors, error = {}, 0.0
-        if entry["action"] == "factor":
+        if is_factored_entry(entry):
             B, A = spec.factors(entry["rank"])  # (out, r), (r, in)
             B, A = B.to(W.dtype).contiguous(), A.to(W.dtype).contiguous()
             tensors, error = {"first": A, "second": B}, relative_error(W, B, A)
@@ -174,7 +175,7 @@ def factors_task(task: MatrixTask) -> dict:
         cached = True
     remove_quietly(task.marker())
     entry, error = found
-    return {"entry": entry, "relative_error": error, "file": str(path) if entry["action"] == "factor" else None,
+    return {"entry": entry, "relative_error": error, "file": str(path) if is_factored_entry(entry) else None,
             "attempts": attempt, "cached": cached, "cache": _cache_counts(cache)}
 
 

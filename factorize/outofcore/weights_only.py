@@ -49,6 +49,7 @@ from factorize.outofcore.options import StreamOptions, split_keywords
 from factorize.outofcore.results import CheckpointShrink
 from factorize.outofcore.tasks import MatrixTask, factors_task, values_task
 from factorize.outofcore.writer import CheckpointWriter, plan_bound
+from factorize.plan.entries import is_factored_entry
 from factorize.plan.policy import Policy, rank_needed, resolve_policy, values_first
 from factorize.plan.ranks import PLAN_FORMAT, PLAN_VERSION, choose_ranks
 from factorize.spectra.cache import SpectrumCache, as_cache
@@ -288,7 +289,7 @@ class _Job:
             item = c.weight.nbytes // max(math.prod(c.weight.shape), 1)
             if e is None:
                 total += c.weight.nbytes
-            elif e["action"] == "factor":
+            elif is_factored_entry(e):
                 total += e["rank"] * sum(c.weight.shape) * item
         return total + 4096 * len(self.chosen)
 

@@ -12,6 +12,7 @@ only when all are complete are they renamed into place, so a failure leaves noth
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import os
@@ -33,9 +34,10 @@ from factorize.checkpoints.files import (
     Checkpoint,
     checkpoint_metadata,
 )
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, printable
 from factorize.model.sites import Site
 from factorize.outofcore.candidates import Candidate
+from factorize.plan.entries import entry_form, is_factored_entry
 from factorize.plan.policy import Policy
 from factorize.storage import (
     DTYPE_NAMES,
@@ -101,10 +103,8 @@ class ShardWriter:
 
     def abort(self) -> None:
         if not self.f.closed:
-            try:
+            with contextlib.suppress(OSError):
                 self.f.close()  # flushing what is buffered can fail again (a full disk, a size limit)
-            except OSError:
-                pass
         remove_quietly(self.tmp)
 
 
@@ -156,7 +156,7 @@ class CheckpointWriter:
             for name, info in h.tensors.items():
                 c = self.chosen.get(name)
                 e = entries.get(c.module) if c else None
-                if e is not None and e["action"] == "factor":
+                if is_factored_entry(e):
                     item = info.nbytes // max(math.prod(info.shape), 1)
                     total += e["rank"] * sum(info.shape) * item
                 else:
@@ -206,7 +206,7 @@ class CheckpointWriter:
             w = ShardWriter(final, self.reserve_for(h))
             writers.append(w)
             self._write_file(h, w)
-            weight_map.update({name: final.name for name in w.entries})
+            weight_map.update(dict.fromkeys(w.entries, final.name))
             if not sharded:
                 meta = checkpoint_metadata(plan, None, metadata)
             else:
@@ -227,7 +227,7 @@ class CheckpointWriter:
 
     def _write_file(self, h: Header, w: ShardWriter) -> None:
         names = [n for n in h.tensors if n not in self.biases]  # a layer's bias travels with its weight
-        for name in tqdm(names, desc=h.path.name, unit="tensor", disable=not self.progress, leave=False):
+        for name in tqdm(names, desc=printable(h.path.name), unit="tensor", disable=not self.progress, leave=False):
             c = self.chosen.get(name)
             if c is None:
                 t = read_tensor(h.path, name)
@@ -241,9 +241,9 @@ class CheckpointWriter:
         entry = self.entries[c.module]
         file, error = self.factors_of(c, entry)
         bias = c.read_bias()
-        row = {"module": c.module, "shape": list(c.weight.shape), "action": entry["action"], "rank": entry["rank"],
+        row = {"module": c.module, "shape": list(c.weight.shape), "action": entry_form(entry), "rank": entry["rank"],
                "predicted_error": float(entry.get("predicted_error", 0.0)), "relative_error": error}
-        if entry["action"] == "factor":
+        if is_factored_entry(entry):
             with safe_open(file, framework="pt", device="cpu") as f:
                 A = f.get_tensor("first")  # (r, in)
                 w.add(c.module + ".first.weight", A)

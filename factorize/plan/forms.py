@@ -45,6 +45,7 @@ import torch
 
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
+from factorize.plan.entries import CORRECTED, DENSE, FACTOR
 from factorize.plan.joint import Candidate
 from factorize.plan.policy import DEFAULT_PRECISIONS, check_precisions  # noqa: F401 - re-exported
 from factorize.rounding import (
@@ -137,7 +138,7 @@ def candidates_for(
     native = native_precision(W.dtype)
     W64 = W.detach().to(torch.float64)
     hessian = metric.C if site.kind in DENSE_VIEW_KINDS else None
-    out: list[Candidate] = [Candidate("dense", native, None, float(stored_bytes(native, shape)), 0.0)]
+    out: list[Candidate] = [Candidate(DENSE, native, None, float(stored_bytes(native, shape)), 0.0)]
     reasons = {}
     for p in usable(precisions, native)[1:]:
         why = fits(W, p)
@@ -145,7 +146,7 @@ def candidates_for(
             reasons[p] = why
             continue
         Wq = round_matrix(W64, p, hessian=hessian).dequantize(torch.float64)
-        out.append(Candidate("dense", p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
+        out.append(Candidate(DENSE, p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
         if site.kind in KINDS_WITH_CORRECTION and not is_float(p):
             out += _corrected(W64, Wq, p, shape, metric)
     factor_hessian = metric.C if site.kind in VIEW_KINDS else None
@@ -157,7 +158,7 @@ def _corrected(W64, Wq, p, shape, metric: LayerMetric) -> list[Candidate]:
     s = torch.linalg.svdvals(metric.whitened(W64 - Wq))  # Eckart-Young on the whitened rounding error
     tail = np.maximum(float((s * s).sum()) - np.concatenate([[0.0], np.cumsum((s * s).numpy())]), 0.0)
     ranks = [k for k in CORRECTION_RANKS if k <= min(shape) // 4]
-    return [Candidate("corrected", p, k, float(corrected_bytes(p, shape, k)), metric.scale * float(tail[k]))
+    return [Candidate(CORRECTED, p, k, float(corrected_bytes(p, shape, k)), metric.scale * float(tail[k]))
             for k in ranks]
 
 
@@ -189,7 +190,7 @@ def _factored(site, W64, spectrum, precisions, metric: LayerMetric, multiple, he
         cum = np.concatenate([[0.0], np.cumsum(terms)])
         for r in ranks:
             err = metric.scale * (float(errors[min(r, len(errors) - 1)]) + float(cum[r]))
-            out.append(Candidate("factor", p, r, float(factor_bytes(p, tuple(site.shape), r)), err))
+            out.append(Candidate(FACTOR, p, r, float(factor_bytes(p, tuple(site.shape), r)), err))
     return out
 
 
@@ -206,9 +207,9 @@ def _rounding_terms(B, A, p, metric: LayerMetric, hessian) -> np.ndarray | None:
 
 def candidate_bytes(chosen: Candidate, shape: tuple[int, int]) -> int:
     """Stored bytes of a candidate form of an (m, n) matrix view, whatever its ``cost`` counts."""
-    if chosen.form == "factor":
+    if chosen.form == FACTOR:
         return factor_bytes(chosen.precision, shape, chosen.rank)
-    if chosen.form == "corrected":
+    if chosen.form == CORRECTED:
         return corrected_bytes(chosen.precision, shape, chosen.rank)
     return stored_bytes(chosen.precision, shape)
 
@@ -219,7 +220,7 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
     (and ``correction_rank`` / ``correction_precision`` for the corrected form; ``latency_ms`` when the budget
     counted measured time)."""
     shape = tuple(site.shape)
-    factor = chosen.form == "factor"
+    factor = chosen.form == FACTOR
     entry = {
         "kind": site.kind,
         "shape": list(shape),
@@ -235,7 +236,7 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
     }
     if cost == "latency":
         entry["latency_ms"] = float(chosen.cost)
-    if chosen.form == "corrected":
+    if chosen.form == CORRECTED:
         entry.update(correction_rank=chosen.rank, correction_precision=CORRECTION_PRECISION,
                      params_after=site.params + chosen.rank * sum(shape))
     if site.kernel:
@@ -257,7 +258,8 @@ def _relative(error: float, scale: float, spectrum: Spectrum | None) -> float:
 def byte_budget(sites: Sequence[Site], dtypes: Mapping[str, torch.dtype], budget: float) -> float:
     """``budget`` as bytes: that fraction of the sites' weights as they are stored now."""
     if not 0 < budget <= 1 or not math.isfinite(budget):
-        raise FactorizeError(f"budget={budget!r} is not a fraction in (0, 1]", fix="e.g. budget=0.25 for 1/4 of the bytes")
+        raise FactorizeError(f"budget={budget!r} is not a fraction in (0, 1]",
+                             fix="e.g. budget=0.25 for 1/4 of the bytes")
     return budget * sum(stored_bytes(native_precision(dtypes[s.name]), tuple(s.shape)) for s in sites)
 
 
@@ -274,7 +276,8 @@ def joint_plan(
     cost: str = "bytes",
 ) -> dict:
     """The plan (same schema as :func:`factorize.plan.ranks.choose_ranks`'s, every row with its precision and
-    bytes) that keeps the summed predicted error least with the sites' cost (stored bytes, or measured time) within ``budget_cost``.
+    bytes) that keeps the summed predicted error least with the sites' cost (stored bytes, or measured time)
+    within ``budget_cost``.
     Sites without candidates (a weight shared by several modules) stay dense as they are."""
     from factorize.plan.joint import solve
     from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
@@ -288,7 +291,7 @@ def joint_plan(
             entries[s.name] = entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name],
                                         (scales or {}).get(s.name, 1.0), cost)
         else:
-            kept = Candidate("dense", natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
+            kept = Candidate(DENSE, natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
             entries[s.name] = entry_for(s, kept, f"weight shared with {', '.join(s.tied_with)}; kept as it is",
                                         None, natives[s.name])
     return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method, "policy": dict(policy),
@@ -365,13 +368,13 @@ def _overridden(site: Site, policy, cands: list[Candidate], native: str, spec: S
     if o is None:
         return cands
     if o.dense:
-        return [c for c in cands if c.form == "dense" and c.precision == native]
+        return [c for c in cands if c.form == DENSE and c.precision == native]
     if o.rank is None:
         raise FactorizeError(f"override {o.pattern!r}: with cost='bytes' an override keeps a layer dense or sets its "
                              "rank", fix="use dense=True or rank=N in the override, or cost='params'")
     r = min(o.rank, spec.computed_rank)
     err = float(spec.errors()[r]) ** 2 * metric.scale
-    return [Candidate("factor", native, r, float(factor_bytes(native, tuple(site.shape), r)), err)]
+    return [Candidate(FACTOR, native, r, float(factor_bytes(native, tuple(site.shape), r)), err)]
 
 
 def uniform_rounding_plan(sites: Sequence[Site], spectra: Mapping[str, Spectrum], priced: Priced, budget_cost: float,
@@ -382,12 +385,12 @@ def uniform_rounding_plan(sites: Sequence[Site], spectra: Mapping[str, Spectrum]
     from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
 
     by_bits = sorted({c.precision for cs in priced.candidates.values() for c in cs
-                      if c.form == "dense" and not is_float(c.precision)},
+                      if c.form == DENSE and not is_float(c.precision)},
                      key=lambda p: (-_WIDTH[p], p))
     for p in by_bits:
         chosen = {}
         for name, cs in priced.candidates.items():
-            match = [c for c in cs if c.form == "dense" and c.precision == p]
+            match = [c for c in cs if c.form == DENSE and c.precision == p]
             if not match:
                 break
             chosen[name] = match[0]
@@ -396,14 +399,15 @@ def uniform_rounding_plan(sites: Sequence[Site], spectra: Mapping[str, Spectrum]
                 why = f"every layer rounded to {p}, none factored (the plain alternative)"
                 entries = {}
                 for s in sites:
-                    c = chosen.get(s.name) or Candidate("dense", priced.natives[s.name], None,
+                    c = chosen.get(s.name) or Candidate(DENSE, priced.natives[s.name], None,
                                                         float(stored_bytes(priced.natives[s.name], tuple(s.shape))),
                                                         0.0)
                     entries[s.name] = entry_for(s, c, why, spectra.get(s.name), priced.natives[s.name],
                                                 priced.scales.get(s.name, 1.0))
                 return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method,
                         "policy": dict(policy), "sites": entries,
-                        "selection": {"exact": True, "cost": "bytes", "bytes": math.fsum(c.cost for c in chosen.values()),
+                        "selection": {"exact": True, "cost": "bytes",
+                                      "bytes": math.fsum(c.cost for c in chosen.values()),
                                       "budget_bytes": budget_cost,
                                       "predicted_error": math.fsum(c.error for c in chosen.values())}}
     return None

@@ -56,8 +56,9 @@ from fractions import Fraction
 import numpy as np
 
 from factorize.errors import FactorizeError
+from factorize.plan.entries import CORRECTED, DENSE, FACTOR
 
-FORMS = ("dense", "factor", "corrected")
+FORMS = (DENSE, FACTOR, CORRECTED)  # the plan forms a candidate can take (factorize.plan.entries)
 DEFAULT_MAX_WORK = 50_000_000  # combinations the exact pass may examine in all (about 1-2 s of numpy work)
 _STEP_WORK = 2_000_000  # and per layer (bounds its memory: a few arrays of this many float64)
 _REL_TOL = 1e-9  # relative tolerance on errors for the exact pass's pruning (float rounding only)
@@ -80,9 +81,9 @@ class Candidate:
             problems.append(f"form={self.form!r}: expected one of {', '.join(FORMS)}")
         if not isinstance(self.precision, str) or not self.precision:
             problems.append(f"precision={self.precision!r}: expected a precision name such as 'int8'")
-        if self.form == "dense" and self.rank is not None:
+        if self.form == DENSE and self.rank is not None:
             problems.append(f"rank={self.rank!r}: a dense candidate has no rank (use None)")
-        if self.form in ("factor", "corrected") and not (
+        if self.form in (FACTOR, CORRECTED) and not (
                 isinstance(self.rank, int) and not isinstance(self.rank, bool) and self.rank >= 1):
             problems.append(f"rank={self.rank!r}: a {self.form} candidate needs an integer rank >= 1")
         for field in ("cost", "error"):

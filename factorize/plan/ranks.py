@@ -91,7 +91,7 @@ def _fixed_rank(site: Site, spectrum: Spectrum, *, rank=None, energy=None, keep=
         if not spectrum.exact and spectrum.energy_fraction(r) < energy:
             r = site.max_rank  # the computed part of the spectrum does not reach t: only dense or full rank does
         return _round_up(r, multiple), f"energy={energy}: smallest rank keeping {energy:.4g} of sum(s^2)"
-    r = int(math.floor(keep * site.params / (site.shape[0] + site.shape[1])))
+    r = math.floor(keep * site.params / (site.shape[0] + site.shape[1]))
     if r < 1:
         return 1, f"keep={keep}: below rank 1, raised to 1"
     return _round_down(r, multiple), f"keep={keep}: floor(f*mn/(m+n))"
@@ -206,7 +206,8 @@ def choose_ranks(
         spec = spectra.get(site.name)
         if site.tied_with and not factor_tied:
             entries[site.name] = site_entry(
-                site, spec, None, f"weight shared with {', '.join(site.tied_with)}; factoring one owner would untie them"
+                site, spec, None,
+                f"weight shared with {', '.join(site.tied_with)}; factoring one owner would untie them",
             )
             continue
         o = _override_for(site.name, policy.overrides)

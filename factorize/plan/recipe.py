@@ -47,7 +47,8 @@ RECIPE_VERSION = 1
 TOP_KEYS = ("recipe", "description", "calibration", "include", "exclude", "method", "multiple", "cost", "policy",
             "layer")
 LAYER_KEYS = ("match", "rank", "energy", "keep", "dense")
-RECIPES_DIR = Path(__file__).resolve().parents[1] / "recipes"  # shipped as package data (recipes/ at the top of a checkout links here)
+# shipped as package data (recipes/ at the top of a checkout links here)
+RECIPES_DIR = Path(__file__).resolve().parents[1] / "recipes"
 
 
 @dataclass

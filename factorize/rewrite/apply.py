@@ -11,7 +11,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, printable
 from factorize.model.sites import (
     KINDS,
     Site,
@@ -128,9 +128,8 @@ def _positive_int(v: Any) -> bool:
 
 
 def _shown(v: Any) -> str:
-    """A value for a message: repr, control characters replaced, long ones cut."""
-    text = "".join(c if c.isprintable() else "?" for c in (v if isinstance(v, str) else repr(v)))
-    return text if len(text) <= 80 else text[:77] + "..."
+    """A value for a message: a string as it is, anything else as its repr; escaped, long ones cut."""
+    return printable(v if isinstance(v, str) else repr(v), limit=80)
 
 
 def validate_plan(model: nn.Module, plan: Mapping) -> dict[str, Site]:
@@ -169,8 +168,9 @@ def apply_plan(
     seed: int = 0,
     hessians: Mapping[str, torch.Tensor] | None = None,
 ) -> nn.Module:
-    """Rewrite the layers a plan factors (and store each at the precision its entry records). All replacements are built first and swapped in last, so a failure
-    leaves the model as it was.
+    """Rewrite the layers a plan factors (and store each at the precision its entry records).
+
+    All replacements are built first and swapped in last, so a failure leaves the model as it was.
 
     Args:
         model: the architecture the plan was made for (a fresh instance works).

@@ -173,7 +173,8 @@ def keep_working(
         return Verified(compressed, dict(plan), [])
     if on_break == "raise":
         raise FactorizeError(
-            "the compressed model fails its forward pass on the sample batch", [f"{b.name}: {b.reason}" for b in broken],
+            "the compressed model fails its forward pass on the sample batch",
+            [f"{b.name}: {b.reason}" for b in broken],
             fix="keep these layers dense (exclude=[...] or on_break='dense'), or report the model's class",
         )
     model = restore_dense(original, compressed, [b.name for b in broken])

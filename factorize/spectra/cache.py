@@ -4,9 +4,9 @@ An entry is keyed by the content of the matrix and by everything that changes th
 
     key = blake2b-256( JSON{cache format, shape, dtype, method, options} || raw little-endian matrix bytes )
 
-where ``options`` are the decomposition options that matter for the method (``exact`` and ``gram``: the compute precision;
-``randomized`` and ``auto``: rank, oversampling, power iterations, seed and precision). The layer's name is not part of the
-key: two layers with identical weights share an entry. blake2b is RFC 7693.
+where ``options`` are the decomposition options that matter for the method (``exact`` and ``gram``: the compute
+precision; ``randomized`` and ``auto``: rank, oversampling, power iterations, seed and precision). The layer's name is
+not part of the key: two layers with identical weights share an entry. blake2b is RFC 7693.
 
 Each entry is one safetensors file ``<key>.safetensors`` holding ``U``, ``S``, ``Vh`` exactly as
 :func:`factorize.spectra.decompose.decompose` returned them (so a cache hit gives bit-identical factors), with metadata:
@@ -87,7 +87,8 @@ def normalise_options(matrix: torch.Tensor, method: str, options: Mapping) -> di
     if options.get("rank") is None:
         return {"method": "gram", "precision": precision}  # auto / randomized without a rank fall back to gram
     opts = {k: options.get(k, v) for k, v in _RANDOMIZED_DEFAULTS.items()}
-    return {"method": method, "precision": precision, "rank": int(options["rank"]), **{k: int(v) for k, v in opts.items()}}
+    return {"method": method, "precision": precision, "rank": int(options["rank"]),
+            **{k: int(v) for k, v in opts.items()}}
 
 
 class SpectrumCache:
@@ -160,7 +161,8 @@ class SpectrumCache:
 
     def _read(self, path: Path, key: str, shape: tuple[int, int]) -> Spectrum:
         meta = read_header(path).metadata  # checks layout and size before any data is touched
-        if meta.get("factorize.cache_format") != CACHE_FORMAT or meta.get("factorize.cache_version") != str(CACHE_VERSION):
+        if (meta.get("factorize.cache_format") != CACHE_FORMAT
+                or meta.get("factorize.cache_version") != str(CACHE_VERSION)):
             raise ValueError("not a spectrum entry of this cache version")
         if meta.get("factorize.key") != key:
             raise ValueError("the entry belongs to another matrix")
@@ -168,7 +170,8 @@ class SpectrumCache:
             U, S, Vh = f.get_tensor("U"), f.get_tensor("S"), f.get_tensor("Vh")
         k, j = S.shape[0], U.shape[1] if U.dim() == 2 else -1  # j < k: values with only the leading vectors
         if S.dim() != 1 or not 0 <= j <= k or tuple(U.shape) != (shape[0], j) or tuple(Vh.shape) != (j, shape[1]):
-            raise ValueError(f"shapes U {list(U.shape)}, S {list(S.shape)}, Vh {list(Vh.shape)} do not fit {list(shape)}")
+            raise ValueError(
+                f"shapes U {list(U.shape)}, S {list(S.shape)}, Vh {list(Vh.shape)} do not fit {list(shape)}")
         if _checksum(U, S, Vh) != meta.get("factorize.checksum"):
             raise ValueError("checksum mismatch")
         return Spectrum(U, S, Vh, total_energy=float.fromhex(meta["factorize.total_energy"]),
@@ -181,7 +184,8 @@ class SpectrumCache:
         U, S, Vh = (t.detach().contiguous().cpu() for t in (spectrum.U, spectrum.S, spectrum.Vh))
         meta = {
             "factorize.cache_format": CACHE_FORMAT, "factorize.cache_version": str(CACHE_VERSION),
-            "factorize.key": key, "factorize.method": spectrum.method, "factorize.exact": "1" if spectrum.exact else "0",
+            "factorize.key": key, "factorize.method": spectrum.method,
+            "factorize.exact": "1" if spectrum.exact else "0",
             "factorize.total_energy": float(spectrum.total_energy).hex(), "factorize.checksum": _checksum(U, S, Vh),
         }
         try:

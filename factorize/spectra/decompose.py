@@ -98,7 +98,9 @@ class Spectrum:
 
     def energy_fraction(self, rank: int) -> float:
         """Fraction of ``||W||_F^2`` kept at ``rank``."""
-        return float(self.kept_energy()[min(rank, self.computed_rank)] / self.total_energy) if self.total_energy > 0 else 1.0
+        if self.total_energy <= 0:
+            return 1.0
+        return float(self.kept_energy()[min(rank, self.computed_rank)] / self.total_energy)
 
     def rank_for_energy(self, fraction: float) -> int:
         """Smallest r keeping at least ``fraction`` of the squared singular values (at most the computed rank)."""
@@ -264,7 +266,7 @@ def _gram(w: torch.Tensor) -> Spectrum:
         evals, evecs = torch.linalg.eigh(gram)  # ascending
     evals, evecs = evals.flip(0).clamp_min(0), evecs.flip(1)
     S = evals.sqrt()  # (k,)
-    inv = torch.where(S > S[0] * 1e-12, 1.0 / S, torch.zeros_like(S)) if S.numel() else S
+    inv = torch.where(S > S[0] * 1e-12, 1.0 / S, torch.zeros_like(S)) if S.numel() else S  # noqa: SIM300 - tensor, not Yoda
     if wide:  # U = eigenvectors (m, k); Vh = S^-1 U^T W (k, n), column block by column block
         U = evecs
         Vh = torch.cat([((evecs.T @ blk.to(torch.float64)) * inv[:, None]).to(w.dtype) for blk in _blocks(w, True)], 1)
@@ -449,9 +451,10 @@ def leading(
     Gaussian block of ``rank + oversample`` columns; each round applies a Chebyshev polynomial of G that keeps the
     eigenvalues the block cannot hold within [-1, 1] and amplifies the wanted ones (degree d: d products G Y; the
     interval is exact because every eigenvalue is known, see :func:`_chebyshev_plan`), one thin QR, and
-    Rayleigh-Ritz (the eigenpairs of Q^T G Q); the next round starts from the Ritz vectors. Because every singular value is known (``values``, from :func:`values_only`,
-    computed here when not given), the error is known exactly rather than estimated: with orthonormal Ritz
-    vectors V_r, ``||W - W V_r V_r^T||_F^2 = ||W||_F^2 - sum of the top r Ritz values`` and the optimum is
+    Rayleigh-Ritz (the eigenpairs of Q^T G Q); the next round starts from the Ritz vectors. Because every singular
+    value is known (``values``, from :func:`values_only`, computed here when not given), the error is known exactly
+    rather than estimated: with orthonormal Ritz vectors V_r,
+    ``||W - W V_r V_r^T||_F^2 = ||W||_F^2 - sum of the top r Ritz values`` and the optimum is
     ``||W||_F^2 - sum_{i<=r} s_i^2`` (Eckart-Young-Mirsky). The iteration stops once the error at ``rank`` and at
     every rank in ``guard_ranks`` (smaller ranks that will be cut from these vectors, e.g. by a sweep) is within
     ``1 + tolerance`` of its optimum, allowing for the rounding of the Gram route (``2 r eps s_1^2``). After

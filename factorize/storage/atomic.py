@@ -9,6 +9,7 @@ leftovers of a killed writer while keeping those of a live one.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import secrets
 import shutil
@@ -124,10 +125,8 @@ def publish(tmp: Path, final: Path, *, force: bool) -> None:
 
 
 def remove_quietly(p: Path) -> None:
-    try:
+    with contextlib.suppress(FileNotFoundError):
         p.unlink()
-    except FileNotFoundError:
-        pass
 
 
 def write_atomic(final: Path, write: Callable[[Path], None], *, force: bool) -> None:

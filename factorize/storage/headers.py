@@ -19,7 +19,7 @@ from pathlib import Path
 
 import torch
 
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, printable
 
 # safetensors dtype names (the open format's spec) -> torch dtype
 DTYPES: dict[str, torch.dtype] = {
@@ -160,7 +160,7 @@ def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
             for d in shape:
                 numel *= d
             if end - start != numel * torch.empty((), dtype=td).element_size() or start < 0:
-                problems.append(f"{name}: {dtype} {list(shape)} needs {numel} elements, offsets say "
+                problems.append(f"{printable(name)}: {dtype} {list(shape)} needs {numel} elements, offsets say "
                                 f"{end - start} bytes")
         if end > data_len:
             raise FactorizeError(
@@ -171,7 +171,28 @@ def _parse_entries(p: Path, header: dict, data_start: int, size: int) -> Header:
         out.tensors[name] = info
     if problems:
         raise FactorizeError(f"{p}: corrupt safetensors header", problems, fix="re-create the file")
+    shared = _overlaps(out.tensors.values())
+    if shared:
+        raise FactorizeError(
+            f"{p}: corrupt safetensors header: tensors share bytes in the file", shared,
+            fix="the file is damaged or was not written by a safetensors writer; save it again from the model "
+            "(safetensors.torch.save_file) or copy it again",
+        )
     return out
+
+
+def _overlaps(tensors) -> list[str]:
+    """Pairs of tensors whose byte ranges in the data section overlap (safetensors refuses such files)."""
+    found, last = [], None
+    for info in sorted(tensors, key=lambda i: (i.start, i.end)):
+        if info.start == info.end:  # an empty tensor holds no bytes
+            continue
+        if last is not None and info.start < last.end:
+            found.append(f"{printable(last.name)} [{last.start}, {last.end}) and {printable(info.name)} "
+                         f"[{info.start}, {info.end}) overlap")
+        if last is None or info.end > last.end:
+            last = info
+    return found
 
 
 MAX_DIM = 2**40  # no real tensor has a dimension this long; larger values are corrupt headers
@@ -201,11 +222,6 @@ def _entry_problem(dtype, shape, start, end) -> str:
     if numel > MAX_ELEMENTS:
         return f"shape {shape} holds {numel} elements, more than any checkpoint could"
     return ""
-
-
-def printable(text: str) -> str:
-    """``text`` with control characters (terminal escape sequences among them) replaced by '?'."""
-    return "".join(c if c.isprintable() else "?" for c in text)
 
 
 def check_safetensors(path: str | os.PathLike) -> dict:

@@ -37,7 +37,7 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, caller_stacklevel
 from factorize.measure.drift import output_drift
 from factorize.model.feed import feed, primary_output
 from factorize.model.hooks import Hook, forward_hooks
@@ -288,7 +288,7 @@ class _Healer:
         back = self.best_step
         msg = (f"healing stopped at step {step}: the {where} became {value} (lr={self.opts.lr:g}); restored the "
                f"state of step {back}. Lower lr or set max_grad_norm.")
-        warnings.warn(msg, RuntimeWarning, stacklevel=5)
+        warnings.warn(msg, RuntimeWarning, stacklevel=caller_stacklevel())
         return msg
 
     # ---- data -----------------------------------------------------------------------------------------------
@@ -331,7 +331,7 @@ class _Healer:
                                  fix="each batch must be a tensor, a tuple/list of model arguments, or a dict")
         try:
             return feed(model, batch)
-        except Exception as e:  # noqa: BLE001 - the user's model can raise anything; say which batch and why
+        except Exception as e:  # the user's model can raise anything; say which batch and why
             raise FactorizeError(
                 f"{where} batch {index} does not run through {who}: {type(e).__name__}: {e}",
                 fix="each batch must be what the model takes: a tensor for model(x), a tuple/list for model(*x), "

@@ -138,7 +138,8 @@ def refactor(
     sites = sorted([_factored_site(n, layer) for n, layer in factored.items()] + found.sites,
                    key=lambda s: order[s.name])
     if not sites:
-        raise FactorizeError("no factorizable or factored layer found", [f"{s.name}: {s.reason}" for s in found.skipped],
+        raise FactorizeError("no factorizable or factored layer found",
+                             [f"{s.name}: {s.reason}" for s in found.skipped],
                              fix="check the include/exclude globs against model.named_modules()")
     spectra = {n: factored_spectrum(layer, precision=precision) for n, layer in factored.items()}
     spectra.update(decompose_sites(model, [s for s in found.sites if not s.tied_with], method=method,
@@ -291,8 +292,8 @@ class ProgressiveSchedule:
     matching budget (a fraction of the original dense parameters of the factorizable layers) and returns the
     rebuilt optimizer, otherwise the optimizer it was given. The epochs in between are the recovery: the user's
     loop simply keeps training. ``plan`` always describes the model as it stands, ready for
-    :func:`factorize.checkpoints.files.save`. ``calibration=`` (where supported) applies to the first step only; later steps
-    re-truncate the factored layers from their own product.
+    :func:`factorize.checkpoints.files.save`. ``calibration=`` (where supported) applies to the first step only; later
+    steps re-truncate the factored layers from their own product.
     """
 
     def __init__(self, budgets: Sequence[float], epochs: Sequence[int], **compress_kwargs: Any) -> None:

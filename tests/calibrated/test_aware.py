@@ -10,12 +10,12 @@ import scipy.linalg
 import torch
 from torch import nn
 
-from factorize.rewrite.apply import apply_plan
 from factorize.calibrated.aware import AwareSpectrum, apply_bias_shifts, aware_spectra, decompose_aware
 from factorize.calibrated.stats import InputStats, collect_pair_stats, collect_stats
 from factorize.errors import FactorizeError
-from factorize.plan.ranks import Policy, choose_ranks
 from factorize.model.sites import matrix_of, walk
+from factorize.plan.ranks import Policy, choose_ranks
+from factorize.rewrite.apply import apply_plan
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
 
@@ -59,7 +59,7 @@ def test_whitening_on_rank_deficient_covariance():
     # needs no inverse; computed here with scipy.linalg.eigh.
     W, X = _case(15, 20, 300, seed=7, rank_x=9)
     C = (X.T @ X).numpy()
-    evals, V = scipy.linalg.eigh(W.numpy() @ C @ W.numpy().T)
+    _, V = scipy.linalg.eigh(W.numpy() @ C @ W.numpy().T)
     V = V[:, ::-1]
     spec = decompose_aware(W, _stats_from(X), ridge=0.0)  # Cholesky fails: symmetric square root path
     for r in (1, 4, 8):
@@ -233,7 +233,7 @@ def test_bad_input():
     W, X = _case(5, 6, 20, seed=19)
     with pytest.raises(FactorizeError, match="unknown activation-aware method"):
         decompose_aware(W, _stats_from(X), method="fisher")
-    with pytest.raises(FactorizeError, match="width 6.*7 input columns"):
+    with pytest.raises(FactorizeError, match=r"width 6.*7 input columns"):
         decompose_aware(torch.randn(5, 7), _stats_from(X))
     empty = InputStats("layer", "linear", 6)
     with pytest.raises(FactorizeError, match="never reached"):

@@ -5,10 +5,10 @@ from __future__ import annotations
 import pytest
 import torch
 
+from factorize.calibrated.search import DriftTargetUnreachable, compress_calibrated, search_drift
 from factorize.default import load_default, load_digits_split
 from factorize.errors import DriftLimitExceeded, FactorizeError
 from factorize.measure.drift import output_drift
-from factorize.calibrated.search import DriftTargetUnreachable, compress_calibrated, search_drift
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
 
@@ -61,7 +61,7 @@ def test_cosine_metric_and_sequential_final_model(digits):
 
 
 def test_compress_calibrated_budget_and_sensitivity(digits):
-    model, cal, held, y = digits
+    model, cal, _, _ = digits
     plain = compress_calibrated(model, cal, budget=0.4)
     sens = compress_calibrated(model, cal, budget=0.4, sensitivity=True)
     for r in (plain, sens):

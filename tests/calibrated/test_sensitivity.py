@@ -10,15 +10,15 @@ import torch
 from scipy.spatial.distance import cosine as scipy_cosine_distance
 from torch import nn
 
-from factorize.rewrite.apply import apply_plan
-from factorize.spectra.sites import decompose_sites
 from factorize.calibrated.aware import apply_bias_shifts, aware_spectra
+from factorize.calibrated.sensitivity import measure_sensitivity
 from factorize.calibrated.stats import collect_stats
 from factorize.errors import FactorizeError
 from factorize.measure.drift import output_drift
-from factorize.plan.ranks import Policy, choose_ranks, plan_ranks
-from factorize.calibrated.sensitivity import measure_sensitivity
 from factorize.model.sites import walk
+from factorize.plan.ranks import Policy, choose_ranks, plan_ranks
+from factorize.rewrite.apply import apply_plan
+from factorize.spectra.sites import decompose_sites
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
 

@@ -7,13 +7,12 @@ import copy
 import numpy as np
 import pytest
 import torch
+from conftest import tiny_bert, tiny_gpt2
 from torch import nn
 
 from factorize.calibrated.stats import collect_pair_stats, collect_stats, forward_order
 from factorize.errors import FactorizeError
 from factorize.model.sites import matrix_of, walk
-
-from conftest import tiny_bert, tiny_gpt2
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")  # tiny inputs on purpose
 
@@ -124,7 +123,7 @@ def test_non_finite_activation_names_the_layer(mlp):
     with torch.no_grad():
         model.fc2.weight[0, 0] = float("inf")
     x = torch.ones(3, 24)
-    with pytest.raises(FactorizeError, match="layer head: .*non-finite.*batch 0"):
+    with pytest.raises(FactorizeError, match=r"layer head: .*non-finite.*batch 0"):
         collect_stats(model, None, [x])
 
 

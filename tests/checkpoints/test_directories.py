@@ -32,7 +32,7 @@ from factorize.errors import FactorizeError
 
 transformers = pytest.importorskip("transformers")
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "rewrite"))
-from zoo import TRANSFORMERS
+from zoo import TRANSFORMERS  # noqa: E402 - after the optional-import skip, so a missing transformers skips
 
 pytestmark = pytest.mark.filterwarnings("ignore::UserWarning")
 CAUSAL = ["GPT-2", "Llama", "Mistral", "Qwen2", "Gemma", "Phi"]
@@ -52,7 +52,7 @@ def _out(model, batch) -> torch.Tensor:
     return out.logits if getattr(out, "logits", None) is not None else out.last_hidden_state
 
 
-@pytest.mark.parametrize("name", ["BERT"] + CAUSAL)
+@pytest.mark.parametrize("name", ["BERT", *CAUSAL])
 def test_round_trip_is_exact(name, tmp_path) -> None:
     result, batch = _compressed(name)
     assert factorize.factored_layers(result.model), "the budget must factor some layers for the test to mean much"
@@ -93,7 +93,7 @@ def test_generate_gives_the_same_tokens(name, tmp_path) -> None:
 def test_plain_from_pretrained_fails_loudly_and_is_detected(tmp_path) -> None:
     result, _ = _compressed("Llama")
     d = save_directory(result.model, result.plan, tmp_path / "llama")
-    with pytest.raises(OSError, match="model.safetensors"):  # transformers' own error: no weights file it knows
+    with pytest.raises(OSError, match=r"model\.safetensors"):  # transformers' own error: no weights file it knows
         transformers.AutoModelForCausalLM.from_pretrained(d, local_files_only=True)
     assert directory_kind(d) == "factorize"
     with pytest.raises(FactorizeError, match="factorize checkpoint") as err:

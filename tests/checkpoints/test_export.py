@@ -25,7 +25,8 @@ from tests.rewrite.zoo import TRANSFORMERS
 
 TOL = 1e-4  # the parity target (absolute, on outputs of order 1)
 HAS_ORT = all(importlib.util.find_spec(m) for m in ("onnx", "onnxscript", "onnxruntime"))
-needs_ort = pytest.mark.skipif(not HAS_ORT, reason='onnx/onnxscript/onnxruntime missing: pip install "factorize[export]"')
+needs_ort = pytest.mark.skipif(not HAS_ORT,
+                               reason='onnx/onnxscript/onnxruntime missing: pip install "factorize[export]"')
 
 
 class Scaled(nn.Linear):

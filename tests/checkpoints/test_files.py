@@ -85,7 +85,8 @@ def test_round_trip_is_bit_exact(tmp_path, case):
     x = c.inputs()
     with torch.no_grad():
         assert torch.equal(_out(loaded(x)), _out(result.model(x)))
-    assert {k: v.shape for k, v in loaded.state_dict().items()} == {k: v.shape for k, v in result.model.state_dict().items()}
+    shapes = {k: v.shape for k, v in result.model.state_dict().items()}
+    assert {k: v.shape for k, v in loaded.state_dict().items()} == shapes
     assert io.read_plan(path) == json.loads(json.dumps(result.plan))
 
 
@@ -179,7 +180,10 @@ def test_failed_overwrite_keeps_the_old_file(tmp_path, mlp, monkeypatch):
     result = factorize.compress(mlp, rank=4)
     path = io.save(result.model, tmp_path / "m.safetensors", plan=result.plan)
     old = path.read_bytes()
-    monkeypatch.setattr(io, "write_safetensors", lambda *a, **k: (_ for _ in ()).throw(OSError(28, "No space left on device")))
+    def full_disk(*a, **k):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(io, "write_safetensors", full_disk)
     with pytest.raises(FactorizeError, match="No space left"):
         io.save(result.model, path, plan=result.plan, force=True)
     assert path.read_bytes() == old and list(tmp_path.iterdir()) == [path]
@@ -300,7 +304,7 @@ def test_plain_safetensors_is_not_a_factorize_checkpoint(tmp_path, mlp):
 def test_unknown_format_version(tmp_path, saved):
     path, _ = saved
     with safe_open(str(path), framework="pt") as f:
-        tensors = {k: f.get_tensor(k) for k in f.keys()}
+        tensors = {k: f.get_tensor(k) for k in f.keys()}  # noqa: SIM118 - a safe_open handle, not a dict
         meta = f.metadata()
     meta["factorize.format_version"] = "99"
     newer = tmp_path / "newer.safetensors"

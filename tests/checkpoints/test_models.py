@@ -64,7 +64,7 @@ def test_callable_builds_the_module_and_a_fresh_instance(user_module) -> None:
 
 
 def test_callable_errors_are_clear(user_module) -> None:
-    with pytest.raises(FactorizeError, match="returned dict, not a torch.nn.Module"):
+    with pytest.raises(FactorizeError, match=r"returned dict, not a torch\.nn\.Module"):
         load_model(f"{user_module}:not_a_model")
     with pytest.raises(FactorizeError, match="no arguments failed"):
         load_model(f"{user_module}:needs_args")
@@ -164,7 +164,7 @@ def test_transformers_directory_loads_with_its_head(tmp_path) -> None:
     assert type(loaded.build()).__name__ == "BertForSequenceClassification"
     # a directory without config.json, or with only pickled weights
     (tmp_path / "empty").mkdir()
-    with pytest.raises(FactorizeError, match="without config.json"):
+    with pytest.raises(FactorizeError, match=r"without config\.json"):
         load_model(str(tmp_path / "empty"))
     (tmp_path / "bert" / "model.safetensors").rename(tmp_path / "bert" / "pytorch_model.bin")
     with pytest.raises(FactorizeError, match="arbitrary code"):

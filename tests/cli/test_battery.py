@@ -7,6 +7,7 @@ hypothesis fuzz of the plan parser lets only FactorizeError out.
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import hashlib
 import json
@@ -110,12 +111,12 @@ CASES: dict[str, tuple[list[str], list[str]]] = {
     "deep_plan_in_against": (["compare", *M, "--against", "deepplan.safetensors", "--random-inputs", "4x20"],
                              ["deepplan.safetensors", "nested more than 64 levels"]),
     "overlapping_tensors": (["scan", "-m", "overlap.safetensors"],
-                            ["overlap.safetensors: not a valid safetensors file", "invalid offset", "Fix: "]),
+                            ["overlap.safetensors: corrupt safetensors header", "overlap", "Fix: "]),
     "zero_size_layer": (["scan", "-m", "bad_models:zero_dim"], ["0: weight of shape (5, 0) has a zero-size"]),
     "meta_device_model": (["shrink", "-m", "bad_models:on_meta", "--rank", "2", "-o", "n16.safetensors"],
                           ["bad_models:on_meta", "meta device", "fc1.weight"]),
     "escape_in_plan_name": (["compare", *M, "--against", "escplan.safetensors", "--random-inputs", "4x20"],
-                            ["escplan.safetensors", "?[31mevil"]),
+                            ["escplan.safetensors", "\\x1b[31mevil"]),
 }
 WRITTEN_BY_NONE = [f"n{i}.safetensors" for i in range(1, 17)] + ["n3.out"]
 
@@ -284,16 +285,14 @@ def mutated_plans(draw):
 
 
 def _only_factorize_errors(fn) -> None:
-    try:
+    with contextlib.suppress(FactorizeError):
         fn()
-    except FactorizeError:
-        pass
 
 
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(plan=st.one_of(JSON, mutated_plans()))
 def test_plan_parser_lets_only_factorize_errors_out(plan) -> None:
-    from tests.conftest import MLP  # noqa: PLC0415 - the shared small model (d_in 24, hidden 48)
+    from tests.conftest import MLP  # the shared small model (d_in 24, hidden 48)
 
     _only_factorize_errors(lambda: check_plan(plan))
     _only_factorize_errors(lambda: validate_plan(MLP(), plan))
@@ -450,7 +449,7 @@ def test_compare_non_strict_loads_a_checkpoint_with_an_extra_key(battery, monkey
     base = ["compare", *M, "--against", "extra.safetensors", "--random-inputs", "4x20", "--repeats", "0", "-q"]
     strict = _in_process(base)
     assert strict.rc == 2 and "position_ids" in strict.err and "Traceback" not in strict.err, strict
-    loose = _in_process(base + ["--non-strict", "--json"])
+    loose = _in_process([*base, "--non-strict", "--json"])
     assert loose.rc == 0, loose
     assert "position_ids" in loose.err  # the warning lists what was ignored
 

@@ -63,7 +63,8 @@ class Run:
         return json.loads(self.out)
 
     def __repr__(self) -> str:  # shown when an assertion fails
-        return f"Run({' '.join(self.argv)!r}, rc={self.rc})\n--- stdout\n{self.out[-3000:]}\n--- stderr\n{self.err[-3000:]}"
+        return (f"Run({' '.join(self.argv)!r}, rc={self.rc})\n--- stdout\n{self.out[-3000:]}\n"
+                f"--- stderr\n{self.err[-3000:]}")
 
 
 def _build_work(d: Path) -> None:
@@ -151,7 +152,8 @@ IN_PROCESS: dict[str, list[list[str]]] = {
     "human": [["shrink", "-m", "cli_models:build", "-w", "mlp.safetensors", "-i", "x.npz", "--rank", "6",
                "--recipe", "mlp-classifier.toml", "-o", "human.safetensors", "--repeats", "0", "-q"],
               ["shrink", "-m", "cli_models:build", "-w", "mlp.safetensors", "-o", "human.safetensors", "-q"]],
-    "sharded": [["shrink", "-m", "shards/m.safetensors.index.json", "--rank", "4", "--exclude", "head", "-q", "--json"]],
+    "sharded": [["shrink", "-m", "shards/m.safetensors.index.json", "--rank", "4", "--exclude", "head", "-q",
+                 "--json"]],
     "bert": [["shrink", "-m", "bert", "-i", "sentences.txt", "--recipe", "bert-encoder.toml", "-o", "bert.safetensors",
               "--repeats", "0", "-q", "--json"]],
     # bad input: exit 2, one message, no traceback, nothing written
@@ -250,7 +252,8 @@ def test_shrink_writes_checkpoint_and_report_and_compare_reproduces_its_drift(wo
     assert rep["caution"] == CAUTION
     md = (world["dir"] / "review.md").read_text()
     assert "| parameters |" in md and "no guarantee" in md and "safety-relevant" in md
-    # compare loads the checkpoint into a fresh instance (factorize.checkpoints.files.load); the outputs are identical to the
+    # compare loads the checkpoint into a fresh instance (factorize.checkpoints.files.load); the outputs are identical
+    # to the
     # compressed model in memory, so the drift is the same
     assert compare.rc == 0, compare
     c = compare.json()["report"]
@@ -297,7 +300,8 @@ def test_sharded_checkpoint_gives_a_directory_of_shards(world) -> None:
 def test_human_output_has_tables_and_the_caution(world) -> None:
     r, again = world["runs"]["human"]
     assert r.rc == 0, r
-    for text in ("parameters", "relative L2 error", "top-1 agreement", "fc1", "no guarantee", "wrote human.safetensors"):
+    for text in ("parameters", "relative L2 error", "top-1 agreement", "fc1", "no guarantee",
+                 "wrote human.safetensors"):
         assert text in r.out, text
     assert r.err == ""  # --quiet: no progress bars and no notes; with --inputs given there is nothing to warn about
     # running it again without --force refuses to overwrite

@@ -28,7 +28,7 @@ def test_a_killed_shrink_leaves_no_broken_checkpoint(tmp_path, delay):
     proc.wait()
     if out.exists():  # finished before the kill: then it must be whole
         read_header(out)
-    again = subprocess.run(argv + ["--force"], cwd=tmp_path, env=env, capture_output=True, text=True)
+    again = subprocess.run([*argv, "--force"], cwd=tmp_path, env=env, capture_output=True, text=True)
     assert again.returncode == 0, again.stderr
     read_header(out)
     assert not list(tmp_path.glob(f".*{TEMP_SUFFIX}"))  # the dead writer's temp file was removed

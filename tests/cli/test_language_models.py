@@ -55,8 +55,8 @@ def test_text_files_calibrate_and_evaluate_a_causal_lm_with_perplexity(tmp_path)
 def test_text_inputs_for_a_model_without_tokenizer_is_a_clear_error(tmp_path):
     (tmp_path / "t.txt").write_text("some words\n")
     out, err = io.StringIO(), io.StringIO()
-    rc = main(["shrink", "-m", "factorize.default:load_default", "--inputs", str(tmp_path / "t.txt"), "-o", str(tmp_path / "o.safetensors"), "--json"],
-              stdout=out, stderr=err)
+    rc = main(["shrink", "-m", "factorize.default:load_default", "--inputs", str(tmp_path / "t.txt"),
+               "-o", str(tmp_path / "o.safetensors"), "--json"], stdout=out, stderr=err)
     assert rc == 2 and "need a tokenizer" in json.loads(out.getvalue())["error"]
 
 

@@ -20,8 +20,8 @@ def _action(command: str, dest: str) -> argparse.Action:
 
 @pytest.mark.parametrize("command", ["shrink", "sweep"])
 def test_value_lists_are_the_ones_the_library_checks(command) -> None:
-    from factorize.plan.policy import AWARE_METHODS
     from factorize.calibrated.options import SENSITIVITY_MODES
+    from factorize.plan.policy import AWARE_METHODS
     from factorize.spectra.decompose import METHODS
     from factorize.training.schedule import SCHEDULES
 

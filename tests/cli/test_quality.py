@@ -62,7 +62,7 @@ def test_target_drift_meets_the_limit_or_exits_1(data):
     rc, done, _ = _shrink(data, "-c", calib, "--target-drift", "0.05")
     assert rc == 0 and done["report"]["drift"]["relative_l2"] <= 0.05
     assert any("budgets tried" in n for n in done["report"]["notes"])
-    rc, failed, err = _shrink(data, "-c", calib, "--target-drift", "1e-9")
+    rc, failed, _ = _shrink(data, "-c", calib, "--target-drift", "1e-9")
     assert rc == 1 and failed["exit_code"] == 1 and "closest" in failed["error"]
 
 
@@ -90,7 +90,7 @@ def test_heal_schedule_is_passed_through_and_recorded(data):
     (["--method", "whiten"], "needs --calibration"),
 ])
 def test_calibration_only_options_say_so(data, flags, match):
-    rc, out, err = _shrink(data, *flags)
+    rc, out, _ = _shrink(data, *flags)
     assert rc == 2 and match in out["error"] and "--calibration" in out["fix"]
 
 
@@ -99,7 +99,8 @@ def test_sweep_with_calibration_and_with_cache(data):
                        "--json", "-q"])
     assert rc == 0 and [r["budget"] for r in json.loads(out)["rows"]] == [0.3, 0.1]
     cache = data / "cache"
-    first = _run(["sweep", "-m", MODEL, "--budgets", "0.3,0.1", "--cache", str(cache), "--workers", "2", "--json", "-q"])
+    first = _run(["sweep", "-m", MODEL, "--budgets", "0.3,0.1", "--cache", str(cache), "--workers", "2", "--json",
+                  "-q"])
     again = _run(["sweep", "-m", MODEL, "--budgets", "0.3,0.1", "--cache", str(cache), "--json", "-q"])
     assert first[0] == again[0] == 0 and any(cache.iterdir())
     rows = lambda r: [(x["budget"], x["params_after"], x["relative_l2"]) for x in json.loads(r[1])["rows"]]  # noqa: E731

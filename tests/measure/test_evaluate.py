@@ -144,9 +144,9 @@ def test_evaluate_counts_macs_with_hooks_on_a_cnn(cnn) -> None:
 
 
 def test_evaluate_weight_error_and_accuracy_against_references(mlp) -> None:
-    import factorize
     from sklearn.metrics import accuracy_score
 
+    import factorize
     from factorize.measure.evaluate import evaluate
 
     result = factorize.compress(mlp, rank=5, method="exact")  # exact SVD: Eckart-Young applies exactly

@@ -45,10 +45,10 @@ def test_bad_input_files_are_explained(tmp_path) -> None:
     with pytest.raises(FactorizeError, match="one integer class label per sample"):
         load_inputs(tmp_path / "flabels.npz")
     np.save(tmp_path / "obj.npy", np.array([{"a": 1}], dtype=object), allow_pickle=True)
-    with pytest.raises(FactorizeError, match="obj.npy"):
+    with pytest.raises(FactorizeError, match=r"obj\.npy"):
         load_inputs(tmp_path / "obj.npy")
     (tmp_path / "bad.npy").write_bytes(b"not numpy")
-    with pytest.raises(FactorizeError, match="bad.npy"):
+    with pytest.raises(FactorizeError, match=r"bad\.npy"):
         load_inputs(tmp_path / "bad.npy")
     with pytest.raises(FactorizeError, match="no such file"):
         load_inputs(tmp_path / "absent.npy")

@@ -86,7 +86,8 @@ def test_rich_rendering_goes_to_the_injected_console() -> None:
 
 def test_report_describes_how_it_was_made() -> None:
     r = _report(policy={"budget": 0.5}, recipe="bert-encoder.toml", method="auto", calibrated=True,
-                calibration_batches=4, sites_kept=0.4987, versions={"factorize": "0.1.0", "torch": "2.13.0", "threads": 1})
+                calibration_batches=4, sites_kept=0.4987,
+                versions={"factorize": "0.1.0", "torch": "2.13.0", "threads": 1})
     line = r.setup()
     for part in ("budget=0.5", "recipe bert-encoder.toml", "kept 0.499", "method auto", "calibrated on 4 batches",
                  "measured on 40 samples", "torch 2.13.0", "threads 1"):

@@ -94,7 +94,7 @@ def test_tiny_gpt2_transposed_projections_and_tied_head():
 
 
 def test_not_a_module():
-    with pytest.raises(FactorizeError, match="expected a torch.nn.Module"):
+    with pytest.raises(FactorizeError, match=r"expected a torch\.nn\.Module"):
         walk({"weight": torch.zeros(2, 2)})
 
 

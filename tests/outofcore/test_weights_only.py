@@ -176,7 +176,7 @@ def test_sharded_round_trip_with_bias_in_another_shard(tmp_path):
     src, names = _shard(tmp_path, model, lambda k: 0 if k in ("fc1.weight", "fc2.weight", "fc2.bias") else 1)
     out = tmp_path / "out"
     rep = checkpoint.shrink_checkpoint(src / "model.safetensors.index.json", out, budget=0.5)
-    assert sorted(p.name for p in out.iterdir()) == sorted(names + ["model.safetensors.index.json"])
+    assert sorted(p.name for p in out.iterdir()) == sorted([*names, "model.safetensors.index.json"])
     index = json.loads((out / "model.safetensors.index.json").read_text())
     assert index["weight_map"]["fc1.second.bias"] == names[0]  # moved to the weight's shard
     for shard in names:

@@ -47,7 +47,7 @@ def _candidates(W, site, metric=None, precisions=DEFAULT_PRECISIONS):
 def test_unrounded_factor_error_is_the_eckart_young_tail():
     # Eckart-Young-Mirsky: the best rank-r error is the sum of the discarded squared singular values (numpy SVD)
     W = _low_rank_plus_noise(48, 64, 8, seed=0)
-    model, site = _site(48, 64)
+    _, site = _site(48, 64)
     _, cands = _candidates(W, site)
     s = np.linalg.svd(W.double().numpy(), compute_uv=False)
     total = float((s ** 2).sum())
@@ -144,7 +144,7 @@ def test_joint_plan_equals_brute_force_on_a_small_model():
 
 
 def test_byte_budget_refuses_bad_fractions():
-    model, site = _site(8, 8)
+    _, site = _site(8, 8)
     with pytest.raises(FactorizeError, match="fraction"):
         byte_budget([site], {"fc": torch.float32}, 1.5)
 

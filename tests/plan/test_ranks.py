@@ -9,8 +9,8 @@ import pytest
 import torch
 
 from factorize import FactorizeError, Override, Policy, choose_ranks, decompose, plan_summary, walk
-from factorize.spectra.sites import decompose_sites
 from factorize.model.sites import Site
+from factorize.spectra.sites import decompose_sites
 
 
 def _site(name, m, n):
@@ -80,7 +80,8 @@ def test_budget_prefers_the_layer_with_the_slowest_decay():
     # Two layers of equal size: one nearly rank-2, one with a flat spectrum. The greedy allocation spends the
     # budget where each parameter removes the most relative error.
     gen = torch.Generator().manual_seed(0)
-    low = torch.randn(64, 2, generator=gen) @ torch.randn(2, 64, generator=gen) + 1e-3 * torch.randn(64, 64, generator=gen)
+    low = (torch.randn(64, 2, generator=gen) @ torch.randn(2, 64, generator=gen)
+           + 1e-3 * torch.randn(64, 64, generator=gen))
     flat = torch.randn(64, 64, generator=gen)
     sites = [_site("low", 64, 64), _site("flat", 64, 64)]
     spectra = {"low": decompose(low), "flat": decompose(flat)}

@@ -11,9 +11,9 @@ from torch import nn
 import factorize
 from factorize.errors import FactorizeError
 from factorize.measure.drift import output_drift
-from factorize.rewrite.layers import factored_layers
 from factorize.plan.ranks import Override
 from factorize.plan.recipe import RECIPES_DIR, load_recipe, parse_recipe, shipped_recipes
+from factorize.rewrite.layers import factored_layers
 
 
 def _factored(model) -> set[str]:

@@ -43,7 +43,8 @@ LOW = [p for p in PRECISIONS if p != "float32"]
 def test_every_precision_saves_and_loads_bit_for_bit(tmp_path, precision):
     model = _model()
     plan = _plan(model, {"0": ("factor", precision, 8), "2": ("dense", precision, None),
-                         "4": ("corrected", "int4g32", 4) if precision.startswith("int4") else ("dense", "float32", None)})
+                         "4": ("corrected", "int4g32", 4) if precision.startswith("int4")
+                         else ("dense", "float32", None)})
     compressed = apply_plan(model, plan)
     assert is_stored(compressed[0].first) and is_stored(compressed[0].second) and is_stored(compressed[2])
     path = save(compressed, tmp_path / "m.safetensors", plan=plan)

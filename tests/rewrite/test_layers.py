@@ -7,8 +7,8 @@ import torch
 from torch import nn
 
 from factorize import decompose
-from factorize.rewrite.layers import factor_module, is_factored, to_dense
 from factorize.model.sites import matrix_of
+from factorize.rewrite.layers import factor_module, is_factored, to_dense
 
 
 def _full_rank(module: nn.Module, kind: str):

@@ -15,9 +15,9 @@ from safetensors import safe_open
 from safetensors.torch import save_file
 
 import factorize
-from factorize.outofcore import weights_only as checkpoint
 from factorize.errors import FactorizeError
 from factorize.model.sites import walk
+from factorize.outofcore import weights_only as checkpoint
 from factorize.spectra import cache as cache_mod
 from factorize.spectra.cache import CacheWarning, SpectrumCache
 from factorize.spectra.decompose import decompose
@@ -64,7 +64,8 @@ def test_key_depends_on_content_and_options_that_matter():
                                                                           oversample=10, power_iters=2)
     # decompose falls back to gram for auto / randomized without a rank, and gram ignores rank and seed
     assert SpectrumCache.key(W, "auto") == SpectrumCache.key(W, "gram") == SpectrumCache.key(W, "gram", rank=4)
-    assert SpectrumCache.key(W, "gram") != k and SpectrumCache.key(W, "auto", rank=5) != SpectrumCache.key(W, "randomized", rank=5)
+    assert SpectrumCache.key(W, "gram") != k
+    assert SpectrumCache.key(W, "auto", rank=5) != SpectrumCache.key(W, "randomized", rank=5)
 
 
 def test_hit_skips_decomposition_and_is_bit_identical(tmp_path, counted):
@@ -135,7 +136,7 @@ def test_failed_store_warns_and_continues(tmp_path, monkeypatch):
 
 
 def test_cached_decompose_sites_matches_and_feeds_compress(tmp_path, mlp, counted):
-    sites = [s for s in walk(mlp).sites]
+    sites = list(walk(mlp).sites)
     plain = decompose_sites(mlp, sites)
     cached = decompose_sites(mlp, sites, cache=tmp_path)
     again = decompose_sites(mlp, sites, cache=tmp_path, workers=2)

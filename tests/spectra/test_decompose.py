@@ -110,7 +110,7 @@ def test_energy_rank_matches_cumulative_sum():
 def test_bad_input_is_named():
     W = torch.randn(4, 4)
     W[1, 2] = float("nan")
-    with pytest.raises(FactorizeError, match="encoder.fc1.*NaN"):
+    with pytest.raises(FactorizeError, match=r"encoder\.fc1.*NaN"):
         decompose(W, name="encoder.fc1")
     with pytest.raises(FactorizeError, match="unknown method"):
         decompose(torch.randn(3, 3), method="qr")

@@ -197,7 +197,7 @@ def _drift_dict(teacher, student, batches) -> float:
 
 
 def test_match_layers_needs_the_teacher_layers() -> None:
-    teacher, student, data, _ = _compressed_mlp()
+    _, student, data, _ = _compressed_mlp()
     other = nn.Sequential(nn.Linear(24, 10))
     with pytest.raises(FactorizeError, match="no layer with the name"):
         heal(student, other, data, steps=2, match_layers=True, progress=False)
@@ -217,7 +217,7 @@ def test_different_output_shapes_name_both() -> None:
 
 def test_data_that_does_not_run_names_the_batch() -> None:
     teacher, student, data, _ = _compressed_mlp()
-    bad = data[:2] + [torch.randn(16, 5)]
+    bad = [*data[:2], torch.randn(16, 5)]
     with pytest.raises(FactorizeError, match="data batch 2 does not run through the teacher"):
         heal(student, teacher, bad, steps=6, shuffle=False, progress=False)
     with pytest.raises(FactorizeError, match="batch 0 is a str"):
@@ -258,7 +258,7 @@ def test_bad_data_containers_and_models() -> None:
 @pytest.mark.skipif(torch.cuda.is_available(), reason="checks the error raised when CUDA is absent")
 def test_cuda_asked_without_cuda_is_a_clear_error() -> None:
     teacher, student, data, _ = _compressed_mlp()
-    with pytest.raises(FactorizeError, match="torch.cuda.is_available"):
+    with pytest.raises(FactorizeError, match=r"torch\.cuda\.is_available"):
         heal(student, teacher, data, steps=2, device="cuda", progress=False)
 
 

@@ -225,7 +225,7 @@ def test_bad_schedules(budgets, epochs, kwargs, text) -> None:
 def test_bad_calls() -> None:
     torch.manual_seed(0)
     model = MLP()
-    with pytest.raises(FactorizeError, match="torch.optim.Optimizer"):
+    with pytest.raises(FactorizeError, match=r"torch\.optim\.Optimizer"):
         compress_in_training(model, "adam", rank=4)
     optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
     with pytest.raises(FactorizeError, match="in place"):

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import itertools
+
 import pytest
 
 from factorize.training.schedule import lr_factor
@@ -18,5 +20,5 @@ def test_cosine_schedule_warms_up_then_follows_a_half_cosine_to_zero() -> None:
     assert f(warm + (steps - warm) // 2) == pytest.approx(0.5, abs=1e-9)
     assert 0.0 < f(steps - 1) < 1e-3
     decay = [f(i) for i in range(warm, steps)]
-    assert all(a >= b for a, b in zip(decay, decay[1:]))
+    assert all(a >= b for a, b in itertools.pairwise(decay))
     assert lr_factor("constant", steps)(123) == 1.0
