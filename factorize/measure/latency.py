@@ -28,6 +28,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -40,6 +41,7 @@ from factorize.measure.timing import latency_spread, paired_samples
 from factorize.model.sites import Site, get_module, matrix_of
 from factorize.plan.forms import (
     LayerMetric,
+    Priced,
     candidate_ranks,
     joint_plan,
     native_precision,
@@ -100,6 +102,16 @@ def affine_times(probes: Mapping[int, float], ranks: Sequence[int]) -> dict[int,
     return {int(k): max(a + b * k, 1e-6) for k in ranks}
 
 
+@dataclass(frozen=True)
+class Probes:
+    """How :func:`latency_plan` measures: ``timer(module, kind, shape, ranks) -> (dense ms, rank -> ms)`` for one
+    layer, and ``measure`` (plan -> the rewritten model's time over the original's; ``"whole model"`` builds
+    :func:`measured_ratio`, None skips the whole-model check). Tests inject both."""
+
+    timer: Callable[..., tuple[float, dict[int, float]]] = time_forms
+    measure: Callable[[dict], float] | str | None = "whole model"
+
+
 def measured_ratio(model: nn.Module, spectra: Mapping[str, Spectrum], example: Any, *,
                    repeats: int = REPEATS) -> Callable[[dict], float]:
     """A function plan -> measured time of the model rewritten by ``plan`` over the original's: the fastest of
@@ -124,21 +136,22 @@ def latency_plan(
     *,
     method: str,
     metrics: Mapping[str, LayerMetric] | None = None,
-    timer: Callable[..., tuple[float, dict[int, float]]] = time_forms,
-    measure: Callable[[dict], float] | str | None = "whole model",
+    probes: Probes | None = None,
 ) -> dict:
     """The plan of ``policy`` (``cost="latency"``, ``budget`` a fraction of the model's measured time on
     ``example``).
 
-    Candidates are priced by :func:`time_forms` (``timer``, injectable for tests), errors as in
+    Candidates are priced by ``probes.timer`` (default :func:`time_forms`; injectable for tests), errors as in
     :func:`factorize.plan.forms.candidates_for` at the weight's own precision; sites tied to others stay dense.
     A layer timed alone runs faster or slower than inside the model (caches, the work around it), so the layers'
     share is then corrected by measurement: the plan for ``budget`` of the layers' summed dense time is built and
-    the whole model measured (``measure``: plan -> measured ratio, default :func:`measured_ratio`; None skips
-    it); while the ratio misses the budget, or undershoots it by more than 10%, the layers' share is scaled by
+    the whole model measured (``probes.measure``: plan -> measured ratio, default :func:`measured_ratio`; None
+    skips it); while the ratio misses the budget, or undershoots it by more than 10%, the layers' share is scaled by
     budget / ratio (at most :data:`ROUNDS` plans); the plan with the largest share measured within budget is kept
     (else the fastest measured). ``plan["selection"]["measured_ratio"]`` records what was measured.
     """
+    probes = probes or Probes()
+    timer, measure = probes.timer, probes.measure
     if example is None:
         raise FactorizeError("cost='latency' times the layers at your batch shape and needs a sample input",
                              fix="pass example=batch (or calibration=batches), or use cost='params' / 'bytes'")
@@ -163,8 +176,8 @@ def latency_plan(
     floor = sum(min(c.cost for c in cs) for cs in cands.values())
     share, best, tried = policy.budget, None, []
     for _ in range(ROUNDS if measure is not None else 1):
-        plan = joint_plan(sites, cands, spectra, natives, max(share * dense_total, floor), policy=policy.to_dict(),
-                          method=method, scales=scales, cost="latency")
+        plan = joint_plan(sites, Priced(cands, natives, scales), spectra, max(share * dense_total, floor),
+                          policy=policy.to_dict(), method=method, cost="latency")
         ratio = measure(plan) if measure is not None else None
         tried.append((share, ratio, plan))
         if ratio is None:

@@ -263,16 +263,24 @@ def byte_budget(sites: Sequence[Site], dtypes: Mapping[str, torch.dtype], budget
     return budget * sum(stored_bytes(native_precision(dtypes[s.name]), tuple(s.shape)) for s in sites)
 
 
+@dataclass(frozen=True)
+class Priced:
+    """Every site's candidates (name -> list), its own precision and its error scale: what one budget's plan
+    needs, computed once for many budgets."""
+
+    candidates: Mapping[str, Sequence[Candidate]]
+    natives: Mapping[str, str]
+    scales: Mapping[str, float]
+
+
 def joint_plan(
     sites: Sequence[Site],
-    candidates: Mapping[str, Sequence[Candidate]],
+    priced: Priced,
     spectra: Mapping[str, Spectrum],
-    natives: Mapping[str, str],
     budget_cost: float,
     *,
     policy: Mapping,
     method: str,
-    scales: Mapping[str, float] | None = None,
     cost: str = "bytes",
 ) -> dict:
     """The plan (same schema as :func:`factorize.plan.ranks.choose_ranks`'s, every row with its precision and
@@ -282,6 +290,7 @@ def joint_plan(
     from factorize.plan.joint import solve
     from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
 
+    candidates, natives, scales = priced.candidates, priced.natives, priced.scales
     selection = solve(candidates, budget_cost)
     why = (f"{cost} budget: least predicted error over {sum(len(c) for c in candidates.values())} candidate forms"
            f"{'' if selection.exact else ' (within the certified gap)'}")
@@ -289,7 +298,7 @@ def joint_plan(
     for s in sites:
         if s.name in selection.chosen:
             entries[s.name] = entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name],
-                                        (scales or {}).get(s.name, 1.0), cost)
+                                        scales.get(s.name, 1.0), cost)
         else:
             kept = Candidate(DENSE, natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
             entries[s.name] = entry_for(s, kept, f"weight shared with {', '.join(s.tied_with)}; kept as it is",
@@ -313,8 +322,8 @@ def bytes_plan(
     (:func:`price_sites`, or ``priced`` from an earlier call), then :func:`joint_plan` under ``policy.budget`` of
     the sites' stored bytes."""
     priced = priced or price_sites(model, sites, spectra, policy, metrics=metrics)
-    return joint_plan(sites, priced.candidates, spectra, priced.natives, layer_budget(sites, priced, policy),
-                      policy=policy.to_dict(), method=method, scales=priced.scales)
+    return joint_plan(sites, priced, spectra, layer_budget(sites, priced, policy), policy=policy.to_dict(),
+                      method=method)
 
 
 def layer_budget(sites: Sequence[Site], priced: Priced, policy) -> float:
@@ -323,16 +332,6 @@ def layer_budget(sites: Sequence[Site], priced: Priced, policy) -> float:
     total = sum(stored_bytes(priced.natives[s.name], tuple(s.shape)) for s in sites)
     fixed = sum(stored_bytes(priced.natives[s.name], tuple(s.shape)) for s in sites if s.name not in priced.candidates)
     return policy.budget * total - fixed
-
-
-@dataclass(frozen=True)
-class Priced:
-    """Every site's candidates (name -> list), its own precision and its error scale: what one budget's plan
-    needs, computed once for many budgets."""
-
-    candidates: Mapping[str, Sequence[Candidate]]
-    natives: Mapping[str, str]
-    scales: Mapping[str, float]
 
 
 def price_sites(model: torch.nn.Module, sites: Sequence[Site], spectra: Mapping[str, Spectrum], policy, *,

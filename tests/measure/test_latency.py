@@ -8,7 +8,7 @@ import torch
 from torch import nn
 
 from factorize.errors import FactorizeError
-from factorize.measure.latency import affine_times, latency_plan
+from factorize.measure.latency import Probes, affine_times, latency_plan
 from factorize.model.sites import walk
 from factorize.plan.policy import Policy
 from factorize.spectra.sites import decompose_sites
@@ -56,7 +56,7 @@ def test_plan_fits_the_budget_and_never_picks_a_slower_form():
     model, sites, spectra, x = _setup()
     timer = _fake_timer(slow=model[2])
     plan = latency_plan(model, sites, spectra, Policy(budget=0.6, cost="latency"), x, method="gram",
-                        timer=timer, measure=None)
+                        probes=Probes(timer, None))
     dense_total = sum(e["shape"][0] * e["shape"][1] / 1000 for e in plan["sites"].values())
     assert sum(e["latency_ms"] for e in plan["sites"].values()) <= 0.6 * dense_total + 1e-9
     assert plan["sites"]["2"]["action"] == "dense"  # its factored form is never faster
@@ -76,7 +76,7 @@ def test_measured_ratio_corrects_the_layers_share():
         return ratio
 
     plan = latency_plan(model, sites, spectra, Policy(budget=0.7, cost="latency"), x, method="gram",
-                        timer=_fake_timer(), measure=measure)
+                        probes=Probes(_fake_timer(), measure))
     assert seen[0] > 0.7 and len(seen) >= 2
     assert plan["selection"]["measured_ratio"] <= 0.7
 

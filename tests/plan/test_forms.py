@@ -15,6 +15,7 @@ from factorize.model.sites import walk
 from factorize.plan.forms import (
     DEFAULT_PRECISIONS,
     LayerMetric,
+    Priced,
     byte_budget,
     candidates_for,
     check_precisions,
@@ -136,8 +137,8 @@ def test_joint_plan_equals_brute_force_on_a_small_model():
         budget = fraction * full
         best = min((sum(c.error for c in combo) for combo in itertools.product(*cands.values())
                     if math.fsum(c.cost for c in combo) <= budget), default=None)
-        plan = joint_plan(sites, cands, spectra, {s.name: "float32" for s in sites}, budget,
-                          policy={"budget": fraction}, method="exact")
+        priced = Priced(cands, {s.name: "float32" for s in sites}, {})
+        plan = joint_plan(sites, priced, spectra, budget, policy={"budget": fraction}, method="exact")
         assert plan["selection"]["predicted_error"] == pytest.approx(best, rel=1e-9, abs=1e-15)
         assert plan["selection"]["bytes"] <= budget
         assert sum(e["bytes_after"] for e in plan["sites"].values()) <= budget
