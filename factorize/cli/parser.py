@@ -14,9 +14,11 @@ from typing import Any
 from factorize._version import __version__
 from factorize.choices import (
     AWARE_METHODS,
+    COSTS,
     HEAL_SCHEDULES,
     METHODS,
     POOLINGS,
+    PRECISIONS,
     SENSITIVITY_MODES,
 )
 from factorize.cluster import parse_cluster
@@ -231,6 +233,12 @@ def _selection(g) -> None:
                    "whiten (reduced-rank regression on the layer inputs; the default there) or scale (per-channel "
                    "activation scaling)")
     g.add_argument("--multiple", type=_positive_int("--multiple"), metavar="N", help="round ranks to a multiple of N")
+    g.add_argument("--cost", choices=COSTS,
+                   help="what the budget counts: params (default), macs (needs sample inputs) or bytes (stored bytes: "
+                   "rank and stored precision chosen together per layer)")
+    g.add_argument("--precisions", type=_precisions, metavar="P,P,...",
+                   help="with --cost bytes: the stored precisions a layer may take, some of " + ",".join(PRECISIONS)
+                   + " (default: float32,bfloat16,int8,int4g64)")
 
 
 def _scan_options():
@@ -417,6 +425,15 @@ def _fractions(text: str) -> tuple[float, ...]:
     if not values:
         raise argparse.ArgumentTypeError("give at least one budget, e.g. 0.9,0.5")
     return values
+
+
+def _precisions(text: str) -> tuple[str, ...]:
+    names = tuple(t.strip() for t in text.split(",") if t.strip())
+    bad = [n for n in names if n not in PRECISIONS]
+    if bad or not names:
+        raise argparse.ArgumentTypeError(f"unknown precision {', '.join(map(repr, bad)) or 'none given'}; "
+                                         f"--precisions takes some of {','.join(PRECISIONS)}")
+    return names
 
 
 def _cluster(text: str):
