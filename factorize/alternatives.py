@@ -77,30 +77,36 @@ def compare_alternatives(
     batches = list(batches)
     if not batches:
         raise FactorizeError("no sample inputs to compare the alternatives on", fix="give at least one batch")
-    sites = validate_plan(model, plan)
-    memo = {} if memo is None else memo
-
-    def measured(candidate: nn.Module, its_plan: Mapping) -> dict:
-        return dict(evaluate(model, candidate, batches, plan=its_plan, latency_repeats=0, memo=memo,
-                             pooling=pooling, kind=kind).drift)
-
-    before, after = plan_bytes(model, plan)
-    by_bytes = (plan.get("policy") or {}).get("cost") == "bytes"
-    own = Alternative("joint" if by_bytes else "rank", before, after, drift=dict(drift) if drift is not None
-                      else measured(compressed, plan), this_plan=True, budget=(plan.get("policy") or {}).get("budget"),
-                      details={"cost": "bytes" if by_bytes else "params"})
-    note = "" if calibration is not None else ("without calibration inputs" if "calibration" in plan else "")
-    out = [_int8(model, plan, sites, calibration, measured, before, note)]
-    other = "rank" if by_bytes else "joint"
-    fraction = own.fraction
-    try:
-        built, its_plan = _rank_or_joint(model, plan, sites, other, fraction, calibration, spectra, batches[0])
-        b, a = plan_bytes(model, its_plan)
-        out.append(Alternative(other, b, a, drift=measured(built, its_plan), budget=round(fraction, 6), note=note))
-    except FactorizeError as err:  # e.g. a size too small for rank 1 everywhere
-        out.append(Alternative(other, before, after, note="not built: " + str(err).splitlines()[0]))
-    out.append(own)
+    memo = {} if memo is None else memo  # the original's outputs, computed once for all
+    own = this_plan(model, compressed, plan, batches, drift=drift, memo=memo, pooling=pooling, kind=kind)
+    measure = {"memo": memo, "pooling": pooling, "kind": kind, "calibration": calibration}
+    other = "rank" if own.name == "joint" else "joint"
+    out = [int8_alternative(model, plan, batches, **measure),
+           same_size_alternative(model, plan, batches, other, own.fraction, spectra=spectra, **measure), own]
     return sorted(out, key=lambda a: ("int8", "rank", "joint").index(a.name))
+
+
+def _measured(model, candidate, its_plan, batches, memo, pooling, kind) -> dict:
+    return dict(evaluate(model, candidate, batches, plan=its_plan, latency_repeats=0, memo=memo, pooling=pooling,
+                         kind=kind).drift)
+
+
+def _note(plan: Mapping, calibration) -> str:
+    return "without calibration inputs" if calibration is None and "calibration" in plan else ""
+
+
+def this_plan(model: nn.Module, compressed: nn.Module, plan: Mapping, batches: list, *, drift: Mapping | None = None,
+              memo: dict | None = None, pooling: str | None = None, kind: str | None = None) -> Alternative:
+    """The plan itself as an :class:`Alternative` (``"joint"`` for a ``cost="bytes"`` plan, else ``"rank"``), with
+    ``drift`` or its drift measured on ``batches``."""
+    validate_plan(model, plan)
+    by_bytes = (plan.get("policy") or {}).get("cost") == "bytes"
+    before, after = plan_bytes(model, plan)
+    measured = dict(drift) if drift is not None else _measured(model, compressed, plan, batches,
+                                                                 {} if memo is None else memo, pooling, kind)
+    return Alternative("joint" if by_bytes else "rank", before, after, drift=measured, this_plan=True,
+                       budget=(plan.get("policy") or {}).get("budget"),
+                       details={"cost": "bytes" if by_bytes else "params"})
 
 
 def plan_bytes(model: nn.Module, plan: Mapping) -> tuple[int, int]:
@@ -124,8 +130,11 @@ def _native(model: nn.Module, name: str, kind: str) -> str:
     return native_precision(matrix_of(get_module(model, name), kind).dtype)
 
 
-def _int8(model, plan, sites, calibration, measured, before: int, note: str) -> Alternative:
-    """Every selected layer rounded to int8, kept dense (a weight shared with another layer stays as it is)."""
+def int8_alternative(model: nn.Module, plan: Mapping, batches: list, *, calibration: Any = None,
+                     memo: dict | None = None, pooling: str | None = None, kind: str | None = None) -> Alternative:
+    """Every layer ``plan`` selected rounded to int8, kept dense (a weight shared with another layer stays as it
+    is), with error-feedback rounding on ``calibration``'s input moments when given; measured on ``batches``."""
+    sites = validate_plan(model, plan)
     rows = {}
     for name, row in plan["sites"].items():
         W = matrix_of(get_module(model, name), row["kind"])
@@ -141,8 +150,29 @@ def _int8(model, plan, sites, calibration, measured, before: int, note: str) -> 
     H = hessians(calibration) if calibration is not None else None
     built = apply_plan(model, int8_plan, hessians=H)
     how = "error-feedback rounding on the calibration inputs" if H else "rounded to nearest"
-    return Alternative("int8", before, sum(r["bytes_after"] for r in rows.values()),
-                       drift=measured(built, int8_plan), note=", ".join(x for x in (how, note) if x))
+    before, after = plan_bytes(model, int8_plan)
+    drift = _measured(model, built, int8_plan, batches, {} if memo is None else memo, pooling, kind)
+    return Alternative("int8", before, after, drift=drift,
+                       note=", ".join(x for x in (how, _note(plan, calibration)) if x))
+
+
+def same_size_alternative(model: nn.Module, plan: Mapping, batches: list, which: str, fraction: float, *,
+                          calibration: Any = None, spectra: Mapping | None = None, memo: dict | None = None,
+                          pooling: str | None = None, kind: str | None = None) -> Alternative:
+    """Rank alone (``which="rank"``: ``cost="params"``) or rank and precision together (``"joint"``:
+    ``cost="bytes"``) over ``plan``'s layers at ``fraction`` of their stored bytes, built (on ``calibration`` when
+    given; ``spectra`` reused for rank alone) and measured on ``batches``. One that cannot be built (a size too
+    small for rank 1 everywhere) comes back with ``drift=None`` and the reason in its note."""
+    sites = validate_plan(model, plan)
+    try:
+        built, its_plan = _rank_or_joint(model, plan, sites, which, fraction, calibration, spectra or {}, batches[0])
+    except FactorizeError as err:
+        before, after = plan_bytes(model, plan)
+        return Alternative(which, before, after, budget=round(fraction, 6),
+                           note="not built: " + str(err).splitlines()[0])
+    before, after = plan_bytes(model, its_plan)
+    drift = _measured(model, built, its_plan, batches, {} if memo is None else memo, pooling, kind)
+    return Alternative(which, before, after, drift=drift, budget=round(fraction, 6), note=_note(plan, calibration))
 
 
 def _policy(plan: Mapping, sites, cost: str, fraction: float) -> Policy:

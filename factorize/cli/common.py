@@ -298,6 +298,22 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
     return extra
 
 
+def alternatives(model, result, inputs, report, memo: dict, args, ui: UI, *, plan=None) -> list:
+    """The plain alternatives at the plan's size on the report's inputs (:func:`factorize.alternatives.
+    compare_alternatives`); a healed plan is compared as healed, the alternatives are not healed."""
+    from factorize.alternatives import compare_alternatives
+
+    ui.note("measuring the plain alternatives at the same size (int8 alone, rank alone, rank and precision "
+            "together); --no-alternatives skips this")
+    found = compare_alternatives(model, result, inputs.batches, plan=plan, drift=report.drift, memo=memo,
+                                 pooling=getattr(args, "pooling", None))
+    if getattr(args, "heal", None):
+        for a in found:
+            if a.this_plan:
+                a.note = "healed after compression; the others are not"
+    return found
+
+
 def repeats(args, default: int) -> int:
     value = default if getattr(args, "repeats", None) is None else args.repeats
     if value < 0:

@@ -89,7 +89,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     sub.add_parser(
         "shrink", parents=[common, model, inputs, policy, out, _check_options(), _quality_options(shrink=True),
-                 _device_options(dtype=True)],
+                 _device_options(dtype=True), _alternatives_option()],
         formatter_class=_Formatter,
         help="write a compressed checkpoint and its report",
         description="Factor the model's dense layers under a rank policy, measure the result on sample inputs,\n"
@@ -122,7 +122,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
 
     sub.add_parser(
-        "compare", parents=[common, model, inputs, _compare_options(), _check_options(), _device_options(dtype=False)],
+        "compare", parents=[common, model, inputs, _compare_options(), _check_options(), _device_options(dtype=False),
+                            _alternatives_option()],
         formatter_class=_Formatter,
         help="output drift between two models on sample inputs",
         description="Run two models on the same sample inputs and report the drift between their outputs.\n"
@@ -306,6 +307,15 @@ def _check_options():
     g = p.add_argument_group("checks")
     g.add_argument("--max-drift", type=_nonnegative("--max-drift"), metavar="X",
                    help="exit 1 when the relative L2 output drift is above X (shrink then writes no checkpoint)")
+    return p
+
+
+def _alternatives_option():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("alternatives")
+    g.add_argument("--no-alternatives", action="store_true",
+                   help="do not build and measure the plain alternatives at the same stored size (every layer "
+                   "rounded to int8; rank alone; rank and precision together) that the report shows by default")
     return p
 
 

@@ -92,6 +92,12 @@ def verdict(alternatives: Sequence[Alternative]) -> str | None:
     best = min(fit, key=lambda a: (a.value, not a.this_plan, a.fraction))
     rounding = plan.details.get("cost") == "bytes" or plan.name == "joint"
     size = f"{smaller(plan.fraction)} smaller"
+    same = next((a for a in measured if a.name == "int8" and a.bytes_after == plan.bytes_after
+                 and a.value == plan.value), None)
+    if best is plan and same is not None:
+        return (f"This plan is int8 rounding alone (relative L2 drift {_d(plan.value)} at {size}), which beats rank "
+                "alone here. Next: a lower budget lets the planner factor or round to 4 bits; a higher one keeps "
+                "more layers wider.")
     if best is plan:
         others = "; ".join(f"{a.label} {_d(a.value)} at {smaller(a.fraction)}" for a in measured if a is not plan)
         larger = [a.label for a in measured if a.fraction > plan.fraction * SLACK]
