@@ -216,6 +216,9 @@ def _describe_plan(report: Report, plan: Mapping) -> None:
                        for e in entries.values()):  # a hand-edited plan may lack the counts: then none is shown
         report.sites_kept = plan_summary(plan)["kept_fraction"]
     report.method = str(plan.get("method", ""))
+    for name, e in entries.items():  # precisions refused for a layer (float16 overflow ...), with the reason
+        if isinstance(e, Mapping) and isinstance(e.get("notes"), list):
+            report.notes += [f"{name}: {note}" for note in e["notes"] if isinstance(note, str)]
     rows = [e for e in entries.values() if isinstance(e, Mapping)]
     if rows and all(isinstance(e.get("bytes"), int) and isinstance(e.get("bytes_after"), int) for e in rows):
         report.stored_bytes_before = sum(e["bytes"] for e in rows)
