@@ -111,8 +111,12 @@ def verdict(alternatives: Sequence[Alternative]) -> str | None:
         return (f"{best.label} is {smaller(best.fraction)} smaller at drift {_d(best.value)} than this plan's "
                 f"{smaller(plan.fraction)} at {_d(plan.value)}: {step}.")
     if best.name == "joint":
+        int8 = next((a for a in measured if a.name == "int8" and a.fraction < best.fraction and a.value < plan.value),
+                    None)
+        also = "" if int8 is None else (f"; {int8.label} is smaller still ({smaller(int8.fraction)}) at drift "
+                                        f"{_d(int8.value)}, also better than this plan")
         return (f"{best.label} (cost='bytes') drifts {_d(best.value)} at {smaller(best.fraction)} smaller, "
-                f"{_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}: try cost='bytes' "
+                f"{_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}{also}: try cost='bytes' "
                 "(terminal: --cost bytes).")
     return (f"{best.label} drifts {_d(best.value)} at {smaller(best.fraction)} smaller, "
             f"{_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}: rounding cost more than "
