@@ -149,7 +149,7 @@ def int8_alternative(model: nn.Module, plan: Mapping, batches: list, *, calibrat
                  "policy": {"precisions": ["int8"]}, "sites": rows}
     H = hessians(calibration) if calibration is not None else None
     built = apply_plan(model, int8_plan, hessians=H)
-    how = "error-feedback rounding on the calibration inputs" if H else "rounded to nearest"
+    how = "error-feedback rounding" if H else "rounded to nearest"
     before, after = plan_bytes(model, int8_plan)
     drift = _measured(model, built, int8_plan, batches, {} if memo is None else memo, pooling, kind)
     return Alternative("int8", before, after, drift=drift,

@@ -229,7 +229,7 @@ def _reference_curves(ax, rows: list[dict], references: dict) -> None:
     rank = [(100 * r["rank_only_bytes_fraction"], r["rank_only_relative_l2"]) for r in rows
             if r.get("rank_only_relative_l2") is not None]
     if rank:
-        ax.plot(*zip(*rank), marker="^", linestyle="--", color="tab:gray", label="rank alone (float32 factors)")
+        ax.plot(*zip(*rank), marker="^", linestyle="--", color="tab:gray", label="rank alone")
     int8 = references.get("int8")
     if int8 and (int8.get("drift") or {}).get("relative_l2") is not None:
         ax.plot([100 * int8["bytes_fraction"]], [int8["drift"]["relative_l2"]], marker="s", linestyle="none",

@@ -21,8 +21,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-NAMES = {"int8": "int8 rounding alone", "rank": "rank alone (float32 factors)",
-         "joint": "rank and precision together"}
+NAMES = {"int8": "int8 rounding alone", "rank": "rank alone", "joint": "rank and precision"}
 METRIC = "relative_l2"  # the drift the sentence compares (what --max-drift and --target-drift limit)
 SLACK = 1.01  # an alternative within 1% of the plan's bytes counts as the same size
 
@@ -106,7 +105,7 @@ def verdict(alternatives: Sequence[Alternative]) -> str | None:
                 f"{tail}. Next: a lower budget for a smaller model, a higher one for less drift.")
     if best.name == "int8":
         step = ("the predicted errors misjudged these layers: try calibration inputs (calibration=...; terminal: "
-                "--calibration FILE), or int8 alone" if rounding else
+                "--calibration FILE), or int8 alone (precisions=('int8',); terminal: --precisions int8)" if rounding else
                 "try cost='bytes' (terminal: --cost bytes), which weighs rounding and rank together")
         return (f"{best.label} is {smaller(best.fraction)} smaller at drift {_d(best.value)} than this plan's "
                 f"{smaller(plan.fraction)} at {_d(plan.value)}: {step}.")
@@ -115,8 +114,8 @@ def verdict(alternatives: Sequence[Alternative]) -> str | None:
                     None)
         also = "" if int8 is None else (f"; {int8.label} is smaller still ({smaller(int8.fraction)}) at drift "
                                         f"{_d(int8.value)}, also better than this plan")
-        return (f"{best.label} (cost='bytes') drifts {_d(best.value)} at {smaller(best.fraction)} smaller, "
-                f"{_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}{also}: try cost='bytes' "
+        return (f"rank and precision together (cost='bytes') drifts {_d(best.value)} at {smaller(best.fraction)} "
+                f"smaller, {_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}{also}: try cost='bytes' "
                 "(terminal: --cost bytes).")
     return (f"{best.label} drifts {_d(best.value)} at {smaller(best.fraction)} smaller, "
             f"{_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}: rounding cost more than "
@@ -124,13 +123,16 @@ def verdict(alternatives: Sequence[Alternative]) -> str | None:
             "(precisions=('float32', 'bfloat16', 'int8'); terminal: --precisions float32,bfloat16,int8).")
 
 
-def rows(alternatives: Sequence[Alternative]) -> list[tuple[str, str, str, str, str]]:
-    """(alternative, stored bytes, of the original, relative L2, note) rows for the screen and Markdown tables."""
+COLUMNS = ("alternative", "bytes (kept)", "smaller", "relative L2", "note")
+
+
+def rows(alternatives: Sequence[Alternative]) -> list[tuple[str, ...]]:
+    """One row of :data:`COLUMNS` per alternative, for the screen and Markdown tables."""
     out = []
     for a in alternatives:
         value = "-" if a.value is None else f"{a.value:.4g}"
         label = a.label + (" (this plan)" if a.this_plan else "")
-        out.append((label, f"{a.bytes_after:,}", f"{100 * a.fraction:.1f}% ({smaller(a.fraction)} smaller)", value,
-                    a.note or "-"))
+        note = a.note or "-"
+        out.append((label, f"{a.bytes_after:,} ({100 * a.fraction:.1f}%)", smaller(a.fraction), value, note))
     return out
 

@@ -17,6 +17,7 @@ from rich.console import Console
 from rich.panel import Panel
 from rich.table import Table
 
+from .alternatives import COLUMNS as ALTERNATIVE_COLUMNS
 from .alternatives import Alternative, verdict
 from .alternatives import rows as alternative_rows
 from .layout import print_table, print_words
@@ -259,8 +260,7 @@ class Report:
             lines += ["| " + " | ".join(_stored_cells(layer)) + " |" for layer in self.stored]
         if self.alternatives:
             lines += ["", f"Plain alternatives at the chosen size, on the same {self.samples} sample inputs:", "",
-                      "| alternative | stored bytes | of the original | relative L2 | note |",
-                      "| --- | ---: | ---: | ---: | --- |"]
+                      "| " + " | ".join(ALTERNATIVE_COLUMNS) + " |", "| --- | ---: | ---: | ---: | --- |"]
             lines += ["| " + " | ".join(row) + " |" for row in alternative_rows(self.alternatives)]
             if self.alternatives_verdict():
                 lines += ["", f"**{self.alternatives_verdict()}**"]
@@ -360,9 +360,8 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
     if report.alternatives:
         alt = Table(title=f"plain alternatives at the chosen size, on the same {report.samples} sample inputs",
                     title_justify="left")
-        for name, justify in (("alternative", "left"), ("stored bytes", "right"), ("of the original", "right"),
-                              ("relative L2", "right"), ("note", "left")):
-            alt.add_column(name, justify=justify)  # type: ignore[arg-type]
+        for name in ALTERNATIVE_COLUMNS:
+            alt.add_column(name, justify="left" if name in ("alternative", "note") else "right")
         for row in alternative_rows(report.alternatives):
             alt.add_row(*row)
         print_table(console, alt)

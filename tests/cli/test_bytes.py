@@ -102,7 +102,7 @@ def test_shrink_on_screen_shows_the_tables_and_the_sentence(work, monkeypatch):
     assert rc == 0, err
     text = " ".join(out.split())
     assert "stored forms" in text and "stored bytes, layers in the plan" in text
-    assert "plain alternatives at the chosen size" in text and "rank and precision together (this plan)" in text
+    assert "plain alternatives at the chosen size" in text and "rank and precision (this plan)" in text
     assert "int8 rounding alone" in text and ("This plan is" in text or "drifts" in text or "smaller at drift" in text)
 
 
@@ -132,7 +132,7 @@ def test_compare_shows_the_alternatives_of_a_checkpoint(work, monkeypatch):
     (("--cost", "kilobytes"), ("--cost", "kilobytes")),
 ])
 def test_bad_precision_or_cost_names_exit_2_with_one_line(work, monkeypatch, argv, words):
-    rc, out, err = _run(work, monkeypatch, "shrink", *MODEL, *argv, "-o", "never.safetensors")
+    rc, _, err = _run(work, monkeypatch, "shrink", *MODEL, *argv, "-o", "never.safetensors")
     assert rc == 2 and "Traceback" not in err and not (work / "never.safetensors").exists()
     first, *rest = err.strip().splitlines()
     assert all(w in first for w in words), err
@@ -140,7 +140,7 @@ def test_bad_precision_or_cost_names_exit_2_with_one_line(work, monkeypatch, arg
 
 
 def test_precisions_without_a_bytes_budget_is_refused(work, monkeypatch):
-    rc, out, err = _run(work, monkeypatch, "shrink", *MODEL, "--precisions", "int8", "-o", "never.safetensors")
+    rc, _, err = _run(work, monkeypatch, "shrink", *MODEL, "--precisions", "int8", "-o", "never.safetensors")
     assert rc == 2 and "Traceback" not in err and "cost='bytes'" in err
     assert not (work / "never.safetensors").exists()
 

@@ -45,7 +45,7 @@ def test_joint_wins_at_the_same_size():
 
 def test_rank_alone_wins_over_a_bytes_plan_and_the_plan_can_win():
     alts = [_alt("int8", 270, 0.3), _alt("rank", 500, 0.01), _alt("joint", 500, 0.02, True, "bytes")]
-    assert verdict(alts).startswith("rank alone (float32 factors) drifts 0.01 at 2x smaller, 2 times less than "
+    assert verdict(alts).startswith("rank alone drifts 0.01 at 2x smaller, 2 times less than "
                                     "this plan's 0.02")
     alts = [_alt("int8", 270, 0.3), _alt("rank", 500, 0.04), _alt("joint", 500, 0.02, True, "bytes")]
     assert verdict(alts).startswith("This plan is the best of these: relative L2 drift 0.02 at 2x smaller")
@@ -134,7 +134,7 @@ def test_report_shows_the_alternatives_and_the_sentence_on_screen_json_and_markd
     render_rich(report, console)
     screen = " ".join(console.export_text().split())
     assert "plain alternatives at the chosen size" in screen and "int8 rounding alone" in screen
-    assert "rank alone (float32 factors)" in screen and "rank and precision together (this plan)" in screen
+    assert "rank alone" in screen and "rank and precision (this plan)" in screen
     assert "stored forms" in screen and " ".join(sentence.split()) in screen
     md = report.to_markdown()
     assert "| int8 rounding alone |" in md and f"**{sentence}**" in md and "| layer | form | rank | precision |" in md
