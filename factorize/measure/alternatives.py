@@ -105,8 +105,8 @@ def verdict(alternatives: Sequence[Alternative]) -> str | None:
                 f"{tail}. Next: a lower budget for a smaller model, a higher one for less drift.")
     if best.name == "int8":
         step = ("the predicted errors misjudged these layers: try calibration inputs (calibration=...; terminal: "
-                "--calibration FILE), or int8 alone (precisions=('int8',); terminal: --precisions int8)" if rounding else
-                "try cost='bytes' (terminal: --cost bytes), which weighs rounding and rank together")
+                "--calibration FILE), or int8 alone (precisions=('int8',); terminal: --precisions int8)") if rounding \
+            else "try cost='bytes' (terminal: --cost bytes), which weighs rounding and rank together"
         return (f"{best.label} is {smaller(best.fraction)} smaller at drift {_d(best.value)} than this plan's "
                 f"{smaller(plan.fraction)} at {_d(plan.value)}: {step}.")
     if best.name == "joint":
@@ -115,8 +115,8 @@ def verdict(alternatives: Sequence[Alternative]) -> str | None:
         also = "" if int8 is None else (f"; {int8.label} is smaller still ({smaller(int8.fraction)}) at drift "
                                         f"{_d(int8.value)}, also better than this plan")
         return (f"rank and precision together (cost='bytes') drifts {_d(best.value)} at {smaller(best.fraction)} "
-                f"smaller, {_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}{also}: try cost='bytes' "
-                "(terminal: --cost bytes).")
+                f"smaller, {_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}{also}: "
+                "try cost='bytes' (terminal: --cost bytes).")
     return (f"{best.label} drifts {_d(best.value)} at {smaller(best.fraction)} smaller, "
             f"{_times(plan.value, best.value)} this plan's {_d(plan.value)} at {size}: rounding cost more than "
             "predicted; try calibration inputs (terminal: --calibration FILE), or leave out the 4-bit precisions "
