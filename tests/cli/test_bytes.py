@@ -147,7 +147,7 @@ def test_precisions_without_a_bytes_budget_is_refused(work, monkeypatch):
 
 def test_sweep_cost_bytes_table_with_reference_curves(work, monkeypatch):
     rc, out, err = _run(work, monkeypatch, "sweep", *MODEL, "--cost", "bytes", "--budgets", "0.5,0.15",
-                        "--csv", "sweep.csv", "--json", "--force")
+                        "--csv", "sweep.csv", "--plot", "sweep.png", "--json", "--force")
     assert rc == 0, err
     data = json.loads(out)
     rows = data["rows"]
@@ -162,6 +162,7 @@ def test_sweep_cost_bytes_table_with_reference_curves(work, monkeypatch):
         table = list(csv.DictReader(f))
     assert float(table[1]["bytes_fraction"]) == pytest.approx(rows[1]["bytes_fraction"])
     assert float(table[1]["rank_only_relative_l2"]) == pytest.approx(rows[1]["rank_only_relative_l2"])
+    assert (work / "sweep.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     monkeypatch.setenv("COLUMNS", "200")
     rc, out, err = _run(work, monkeypatch, "sweep", *MODEL, "--cost", "bytes", "--budgets", "0.5")
     assert rc == 0, err
