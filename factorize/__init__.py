@@ -40,6 +40,7 @@ _EXPORTS = {  # public name -> the module that defines it
     "apply_plan": "factorize.rewrite.apply",
     "check_directory": "factorize.checkpoints.directories",
     "choose_ranks": "factorize.plan.ranks",
+    "compare_alternatives": "factorize.alternatives",
     "compress": "factorize.pipeline",
     "compress_in_training": "factorize.training.loop",
     "count_bytes": "factorize.model.count",
@@ -93,6 +94,7 @@ __all__ = [
     "apply_plan",
     "check_directory",
     "choose_ranks",
+    "compare_alternatives",
     "compress",
     "compress_in_training",
     "decompose",
@@ -132,6 +134,7 @@ def __dir__() -> list[str]:
 
 if TYPE_CHECKING:  # for type checkers and editors: every name of _EXPORTS, from the module it names there;
     # "X as X" marks a name kept for compatibility as re-exported (it is not in __all__)
+    from factorize.alternatives import compare_alternatives
     from factorize.calibrated.options import CalibrationOptions as CalibrationOptions
     from factorize.calibrated.search import CalibratedResult as CalibratedResult
     from factorize.calibrated.search import (

@@ -16,6 +16,10 @@ POOLINGS = ("mean", "cls", "last")  # one vector per sample from token states (m
 HEAL_SCHEDULES = ("constant", "cosine")  # learning-rate schedule of healing (training.heal)
 SOLVERS = ("exact", "gram", "randomized")  # the eigensolvers a calibrated decomposition can be asked for by name
 DEFAULT_SOLVER = "gram"  # with calibration, what method "auto" (or an activation-aware method) decomposes with
+COSTS = ("params", "macs", "bytes", "latency")  # what a budget counts (plan.policy)
+# stored precisions of a weight or of factors (rounding.formats): floats, int8 with one scale per output row,
+# 4-bit integers with one scale per group of 32, 64 or 128 inputs
+PRECISIONS = ("float32", "bfloat16", "float16", "int8", "int4g32", "int4g64", "int4g128")
 
 
 def calibrated_methods(method: str | None, aware_method: str | None = None) -> tuple[str, str]:

@@ -25,7 +25,7 @@ LAYERS = (
     ("factorize.checkpoints",),  # file formats only: the out-of-core shrinks live in factorize.outofcore
     ("factorize.measure",),
     ("factorize.calibrated",),
-    ("factorize.pipeline", "factorize.outofcore"),
+    ("factorize.pipeline", "factorize.outofcore", "factorize.alternatives"),
     ("factorize.training",),
     ("factorize.cli", "factorize.__main__"),
 )

@@ -130,6 +130,7 @@ class CalibratedResult(CompressResult):
     stats: dict = field(default_factory=dict, repr=False)  # name -> InputStats summary (samples, width)
     sensitivity: Sensitivity | None = None
     search: DriftSearch | None = None
+    calibration: Calibration | None = field(default=None, repr=False)  # statistics and spectra, for more budgets
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -374,7 +375,7 @@ def _result(model: nn.Module, compressed: nn.Module, plan: dict, calib: Calibrat
     return CalibratedResult(
         model=compressed, plan=plan, sites=calib.found, spectra=dict(calib.spectra), params_before=params_before,
         params_after=count_parameters(compressed), stats={k: v.to_dict() for k, v in calib.stats.items()},
-        sensitivity=calib.sensitivity, search=search,
+        sensitivity=calib.sensitivity, search=search, calibration=calib,
     )
 
 

@@ -131,6 +131,7 @@ class Options:
     exclude: list[str] | None = None
     method: str | None = None  # None: the library's default
     seed: int = 0
+    precisions: tuple[str, ...] | None = None  # stored precisions allowed with cost="bytes" (None: the default)
 
     def policy(self, **rule: Any) -> Policy:
         """The :class:`factorize.Policy` for this rule (default: the one asked for): rank rule, selection, method,
@@ -140,7 +141,8 @@ class Options:
     def selection(self) -> dict[str, Any]:
         """Every policy keyword but the rank rule (for --target-drift, where the search chooses the budget)."""
         return {"include": self.include, "exclude": self.exclude, "method": self.method, "seed": self.seed,
-                "multiple": self.multiple, "cost": self.cost, "overrides": self.overrides}
+                "multiple": self.multiple, "cost": self.cost, "overrides": self.overrides,
+                "precisions": self.precisions}
 
 
 def options(args, ui: UI, *, default_budget: float | None = 0.5) -> Options:
@@ -162,13 +164,14 @@ def options(args, ui: UI, *, default_budget: float | None = 0.5) -> Options:
     rule = chosen or {k: found[k] for k in POLICY_KEYS if k in found}
     if not rule and default_budget is not None:
         rule = {"budget": default_budget}
-    for key in ("include", "exclude", "method", "multiple"):
+    for key in ("include", "exclude", "method", "multiple", "cost", "precisions"):
         value = getattr(args, key, None)
         if value is not None:
             found[key] = value
     return Options(rule=rule, multiple=found.get("multiple", 1), cost=found.get("cost", "params"),
                    overrides=tuple(found.get("overrides") or ()), include=found.get("include"),
-                   exclude=found.get("exclude"), method=found.get("method"), seed=getattr(args, "seed", 0))
+                   exclude=found.get("exclude"), method=found.get("method"), seed=getattr(args, "seed", 0),
+                   precisions=found.get("precisions"))
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -293,6 +296,22 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
                                  fix="pass --inputs FILE with held-out samples (not the calibration file)")
         extra.update(max_drift=target, heldout=inputs.batches)
     return extra
+
+
+def alternatives(model, result, inputs, report, memo: dict, args, ui: UI, *, plan=None) -> list:
+    """The plain alternatives at the plan's size on the report's inputs (:func:`factorize.alternatives.
+    compare_alternatives`); a healed plan is compared as healed, the alternatives are not healed."""
+    from factorize.alternatives import compare_alternatives
+
+    ui.note("measuring the plain alternatives at the same size (int8 alone, rank alone, rank and precision "
+            "together); --no-alternatives skips this")
+    found = compare_alternatives(model, result, inputs.batches, plan=plan, drift=report.drift, memo=memo,
+                                 pooling=getattr(args, "pooling", None))
+    if getattr(args, "heal", None):
+        for a in found:
+            if a.this_plan:
+                a.note = "healed after compression; the others are not"
+    return found
 
 
 def repeats(args, default: int) -> int:

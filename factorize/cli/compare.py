@@ -16,6 +16,7 @@ from factorize.measure.evaluate import evaluate
 from factorize.measure.report import render_rich
 
 from .common import (
+    alternatives,
     check_no_clobber,
     check_outputs,
     load,
@@ -42,10 +43,13 @@ def run(args, ui: UI) -> dict:
     inputs = sample_inputs(args, loaded, ui)
     if inputs is None:
         raise FactorizeError("compare needs sample inputs", fix="pass --inputs FILE (or --random-inputs SHAPE)")
+    memo: dict = {}  # the original's outputs, shared with the alternatives
     report = evaluate(loaded.model, other, inputs.batches, labels=inputs.labels, plan=plan,
                       latency_repeats=repeats(args, 7), title="factorize compare",
                       model_name=f"{loaded.source} vs {args.against}", inputs=inputs.source, notes=inputs.notes,
-                      progress=ui.progress, pooling=getattr(args, "pooling", None))
+                      progress=ui.progress, pooling=getattr(args, "pooling", None), memo=memo)
+    if plan is not None and not getattr(args, "no_alternatives", False):  # a factorize checkpoint: its plan is known
+        report.alternatives = alternatives(loaded.model, other, inputs, report, memo, args, ui, plan=plan)
     if report_path is not None:
         write_text(report_path, report.to_markdown(), args.force)
     if not ui.json_mode:

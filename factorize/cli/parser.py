@@ -14,9 +14,11 @@ from typing import Any, NamedTuple
 from factorize._version import __version__
 from factorize.choices import (
     AWARE_METHODS,
+    COSTS,
     HEAL_SCHEDULES,
     METHODS,
     POOLINGS,
+    PRECISIONS,
     SENSITIVITY_MODES,
 )
 from factorize.cluster import parse_cluster
@@ -98,7 +100,7 @@ def _add_scan(sub, p: _Parents) -> None:
 def _add_shrink(sub, p: _Parents) -> None:
     sub.add_parser(
         "shrink", parents=[p.common, p.model, p.inputs, p.policy, p.out, _check_options(),
-                           _quality_options(shrink=True), _device_options(dtype=True)],
+                           _quality_options(shrink=True), _device_options(dtype=True), _alternatives_option()],
         formatter_class=_Formatter,
         help="write a compressed checkpoint and its report",
         description="Factor the model's dense layers under a rank policy, measure the result on sample inputs,\n"
@@ -136,7 +138,7 @@ def _add_sweep(sub, p: _Parents) -> None:
 def _add_compare(sub, p: _Parents) -> None:
     sub.add_parser(
         "compare", parents=[p.common, p.model, p.inputs, _compare_options(), _check_options(),
-                            _device_options(dtype=False)],
+                            _device_options(dtype=False), _alternatives_option()],
         formatter_class=_Formatter,
         help="output drift between two models on sample inputs",
         description="Run two models on the same sample inputs and report the drift between their outputs.\n"
@@ -260,6 +262,12 @@ def _selection(g) -> None:
                    "whiten (reduced-rank regression on the layer inputs; the default there) or scale (per-channel "
                    "activation scaling)")
     g.add_argument("--multiple", type=_positive_int("--multiple"), metavar="N", help="round ranks to a multiple of N")
+    g.add_argument("--cost", choices=COSTS,
+                   help="what the budget counts: params (default), macs (needs sample inputs) or bytes (stored bytes: "
+                   "rank and stored precision chosen together per layer)")
+    g.add_argument("--precisions", type=_precisions, metavar="P,P,...",
+                   help="with --cost bytes: the stored precisions a layer may take, some of " + ",".join(PRECISIONS)
+                   + " (default: float32,bfloat16,int8,int4g64)")
 
 
 def _scan_options():
@@ -328,6 +336,15 @@ def _check_options():
     g = p.add_argument_group("checks")
     g.add_argument("--max-drift", type=_nonnegative("--max-drift"), metavar="X",
                    help="exit 1 when the relative L2 output drift is above X (shrink then writes no checkpoint)")
+    return p
+
+
+def _alternatives_option():
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("alternatives")
+    g.add_argument("--no-alternatives", action="store_true",
+                   help="do not build and measure the plain alternatives at the same stored size (every layer "
+                   "rounded to int8; rank alone; rank and precision together) that the report shows by default")
     return p
 
 
@@ -448,6 +465,15 @@ def _fractions(text: str) -> tuple[float, ...]:
     if not values:
         raise argparse.ArgumentTypeError("give at least one budget, e.g. 0.9,0.5")
     return values
+
+
+def _precisions(text: str) -> tuple[str, ...]:
+    names = tuple(t.strip() for t in text.split(",") if t.strip())
+    bad = [n for n in names if n not in PRECISIONS]
+    if bad or not names:
+        raise argparse.ArgumentTypeError(f"unknown precision {', '.join(map(repr, bad)) or 'none given'}; "
+                                         f"--precisions takes some of {','.join(PRECISIONS)}")
+    return names
 
 
 def _cluster(text: str):

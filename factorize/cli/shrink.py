@@ -19,6 +19,7 @@ from factorize.training.heal import heal
 
 from .common import (
     Options,
+    alternatives,
     calibration_inputs,
     check_no_clobber,
     check_outputs,
@@ -113,11 +114,14 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
     if args.heal:
         notes += _heal(args, loaded, result, calibration, inputs, ui)
     if inputs is not None:
+        memo: dict = {}  # the original's outputs, shared with the alternatives
         report = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
                           latency_repeats=repeats(args, 7), title="factorize shrink", model_name=loaded.source,
                           inputs=inputs.source, notes=notes, progress=ui.progress,
-                          pooling=getattr(args, "pooling", None))
+                          pooling=getattr(args, "pooling", None), memo=memo)
         max_drift_check(args, report)
+        if not getattr(args, "no_alternatives", False):
+            report.alternatives = alternatives(loaded.model, result, inputs, report, memo, args, ui)
     else:
         report = Report(title="factorize shrink", model=loaded.source, params_before=count_parameters(loaded.model),
                         params_after=count_parameters(result.model), bytes_before=count_bytes(loaded.model),

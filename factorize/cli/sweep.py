@@ -9,6 +9,7 @@ from pathlib import Path
 
 from rich.table import Table
 
+from factorize.alternatives import int8_alternative, plan_bytes, same_size_alternative
 from factorize.calibrated.search import Calibration, compress_from
 from factorize.choices import DEFAULT_METHOD
 from factorize.errors import FactorizeError
@@ -42,7 +43,9 @@ PLOT_EXTRA = 'pip install ".[plot]" (in a checkout of factorize)'
 DRIFT_KEYS = ("relative_l2", "cosine_mean", "cosine_min", "top1_agreement", "kl")
 REPORT_KEYS = ("accuracy_before", "accuracy_after", "worst_weight_error", "macs_before", "macs_after",
                "latency_ms_before", "latency_ms_after")
-CSV_COLUMNS = ("budget", "params_before", "params_after", "kept_fraction", "factored_layers", *DRIFT_KEYS, *REPORT_KEYS)
+BYTES_KEYS = ("bytes_before", "bytes_after", "bytes_fraction", "rank_only_bytes_fraction", "rank_only_relative_l2")
+CSV_COLUMNS = ("budget", "params_before", "params_after", "kept_fraction", "factored_layers", *DRIFT_KEYS, *REPORT_KEYS,
+               *BYTES_KEYS)
 
 
 def run(args, ui: UI) -> dict:
@@ -54,22 +57,28 @@ def run(args, ui: UI) -> dict:
     opts = options(args, ui, default_budget=None)  # the grid gives the budgets; a recipe's rule is not used
     loaded = load(args, ui)
     budgets = sorted(set(args.budgets), reverse=True)
+    references: dict = {}
     if loaded.weights_only:
+        if opts.cost == "bytes":
+            raise FactorizeError("--cost bytes needs a model to run, and weights-only mode (a bare safetensors file) "
+                                 "has none", fix="pass --model package.module:callable --weights FILE")
         rows, inputs_source = _sweep_weights_only(args, loaded, budgets, opts, ui), None
     else:
-        rows, inputs_source = _sweep_model(args, loaded, budgets, opts, ui)
+        rows, inputs_source = _sweep_model(args, loaded, budgets, opts, ui, references)
     result = {"command": "sweep", "model": loaded.source, "inputs": inputs_source, "rows": rows, "caution": CAUTION}
+    if references:
+        result["references"] = references
     if csv_path is not None:
         write_text(csv_path, _csv_text(rows), args.force)
     if plot_path is not None:
-        _plot(rows, plot_path, loaded.source, args.force)
+        _plot(rows, plot_path, loaded.source, args.force, references)
     result.update(csv=str(csv_path) if csv_path else None, plot=str(plot_path) if plot_path else None)
     if not ui.json_mode:
         render(result, ui)
     return result
 
 
-def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
+def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict):
     inputs = sample_inputs(args, loaded, ui)
     if inputs is None:
         ui.warn("no sample inputs given: only parameters and weight errors are shown; pass --inputs FILE for drift")
@@ -90,7 +99,7 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
         else:
             result = compress(sharing_copy(loaded.model), policy, inplace=True, spectra=spectra,
                               progress=ui.progress and spectra is None, cache=quality["cache"],
-                              workers=quality["workers"])
+                              workers=quality["workers"], example=None if inputs is None else inputs.batches[0])
             spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum
         summary = plan_summary(result.plan)
         row = {"budget": budget, "params_before": result.params_before, "params_after": result.params_after,
@@ -103,8 +112,27 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI):
             row.update({k: getattr(rep, k) for k in REPORT_KEYS})
         else:
             row["worst_weight_error"] = _worst_predicted_error(result.plan)
+        if opts.cost == "bytes":
+            row.update(_bytes_row(args, loaded.model, result.plan, inputs, calib, spectra, memo))
         rows.append(row)
+    if opts.cost == "bytes" and inputs is not None:  # the int8 point: the same layers for every budget
+        int8 = int8_alternative(loaded.model, result.plan, inputs.batches, calibration=calib, memo=memo,
+                                pooling=getattr(args, "pooling", None))
+        references["int8"] = int8.to_json()
     return rows, None if inputs is None else inputs.source
+
+
+def _bytes_row(args, model, plan, inputs, calib, spectra, memo) -> dict:
+    """Stored bytes of the plan's layers, and rank alone at the same bytes (a reference curve) when there are
+    inputs to measure it on."""
+    before, after = plan_bytes(model, plan)
+    row = {"bytes_before": before, "bytes_after": after, "bytes_fraction": after / before if before else 1.0}
+    if inputs is not None:
+        rank = same_size_alternative(model, plan, inputs.batches, "rank", row["bytes_fraction"], calibration=calib,
+                                     spectra=spectra, memo=memo, pooling=getattr(args, "pooling", None))
+        row["rank_only_bytes_fraction"] = rank.fraction if rank.value is not None else None
+        row["rank_only_relative_l2"] = rank.value
+    return row
 
 
 def sharing_copy(model):
@@ -168,15 +196,20 @@ def plot_title(source: str, limit: int = 40) -> str:
     return name if len(name) <= limit else name[: limit // 2 - 1] + "..." + name[-(limit - limit // 2 - 2):]
 
 
-def _plot(rows: list[dict], path: Path, title: str, force: bool) -> None:
+def _plot(rows: list[dict], path: Path, title: str, force: bool, references: dict | None = None) -> None:
     plt = _matplotlib()
     fig, ax = plt.subplots(figsize=(6.4, 4.2), dpi=120)
-    x = [100 * r["kept_fraction"] for r in rows]
+    by_bytes = bool(rows) and rows[0].get("bytes_fraction") is not None
+    x = [100 * r["bytes_fraction" if by_bytes else "kept_fraction"] for r in rows]
     key = "relative_l2" if rows and rows[0].get("relative_l2") is not None else "worst_weight_error"
-    ax.plot(x, [r[key] for r in rows], marker="o", color="tab:blue")
+    ax.plot(x, [r[key] for r in rows], marker="o", color="tab:blue",
+            label="rank and precision together" if by_bytes else None)
     for r, xi in zip(rows, x):
         ax.annotate(f"{r['budget']:g}", (xi, r[key]), textcoords="offset points", xytext=(4, 4), fontsize=8)
-    ax.set_xlabel("parameters kept (% of the original model)")
+    if by_bytes and key == "relative_l2":
+        _reference_curves(ax, rows, references or {})
+    ax.set_xlabel("stored bytes kept (% of the plan's layers as stored)" if by_bytes
+                  else "parameters kept (% of the original model)")
     ax.set_ylabel("relative L2 output drift" if key == "relative_l2" else "worst relative weight error")
     ax.set_title(f"factorize sweep: {plot_title(title)}", fontsize=10)
     ax.grid(alpha=0.3)
@@ -191,6 +224,19 @@ def _plot(rows: list[dict], path: Path, title: str, force: bool) -> None:
     plt.close(fig)
 
 
+def _reference_curves(ax, rows: list[dict], references: dict) -> None:
+    """Rank alone at the same bytes (a curve) and every layer rounded to int8 (a point), for a --cost bytes sweep."""
+    rank = [(100 * r["rank_only_bytes_fraction"], r["rank_only_relative_l2"]) for r in rows
+            if r.get("rank_only_relative_l2") is not None]
+    if rank:
+        ax.plot(*zip(*rank), marker="^", linestyle="--", color="tab:gray", label="rank alone")
+    int8 = references.get("int8")
+    if int8 and (int8.get("drift") or {}).get("relative_l2") is not None:
+        ax.plot([100 * int8["bytes_fraction"]], [int8["drift"]["relative_l2"]], marker="s", linestyle="none",
+                color="tab:red", label="int8 rounding alone")
+    ax.legend(fontsize=8)
+
+
 def render(result: dict, ui: UI) -> None:
     rows = result["rows"]
     table = Table(title=f"sweep: {result['model']}" + (f" on {result['inputs']}" if result["inputs"] else ""),
@@ -200,8 +246,11 @@ def render(result: dict, ui: UI) -> None:
                ("relative L2", "relative_l2", g4), ("cosine mean", "cosine_mean", lambda v: f"{v:.6f}"),
                ("cosine worst", "cosine_min", lambda v: f"{v:.6f}"),
                ("top-1 agree", "top1_agreement", pct), ("accuracy", "accuracy_after", pct),
-               ("worst weight err", "worst_weight_error", lambda v: f"{v:.4f}")]
+               ("worst weight err", "worst_weight_error", lambda v: f"{v:.4f}"),
+               ("bytes kept", "bytes_fraction", pct), ("rank alone, same bytes: rel. L2", "rank_only_relative_l2", g4)]
     columns = [c for c in columns if any(r.get(c[1]) is not None for r in rows)]
+    if any(r.get("bytes_fraction") is not None for r in rows):  # stored weights are not parameters: bytes say it
+        columns = [c for c in columns if c[1] not in ("kept_fraction", "params_after")]
     for title, _, _ in columns:
         table.add_column(title, justify="left" if title == "budget" else "right")
     for r in rows:
@@ -209,6 +258,10 @@ def render(result: dict, ui: UI) -> None:
     ui.table(table)
     if rows and rows[0].get("accuracy_before") is not None:
         ui.line(f"accuracy of the original: {pct(rows[0]['accuracy_before'])}")
+    int8 = (result.get("references") or {}).get("int8")
+    if int8 and (int8.get("drift") or {}).get("relative_l2") is not None:
+        ui.line(f"reference: every layer rounded to int8 and not factored keeps {pct(int8['bytes_fraction'])} of the "
+                f"bytes at relative L2 {g4(int8['drift']['relative_l2'])} ({int8['note']})")
     for kind in ("csv", "plot"):
         if result.get(kind):
             ui.line(f"wrote {result[kind]}")

@@ -218,6 +218,13 @@ def _describe_plan(report: Report, plan: Mapping) -> None:
                        for e in entries.values()):  # a hand-edited plan may lack the counts: then none is shown
         report.sites_kept = plan_summary(plan)["kept_fraction"]
     report.method = str(plan.get("method", ""))
+    for name, e in entries.items():  # precisions refused for a layer (float16 overflow ...), with the reason
+        if isinstance(e, Mapping) and isinstance(e.get("notes"), list):
+            report.notes += [f"{name}: {note}" for note in e["notes"] if isinstance(note, str)]
+    rows = [e for e in entries.values() if isinstance(e, Mapping)]
+    if rows and all(isinstance(e.get("bytes"), int) and isinstance(e.get("bytes_after"), int) for e in rows):
+        report.stored_bytes_before = sum(e["bytes"] for e in rows)
+        report.stored_bytes_after = sum(e["bytes_after"] for e in rows)
     calibration = plan.get("calibration")
     if isinstance(calibration, Mapping):
         report.calibration_batches = calibration.get("batches")
@@ -380,5 +387,10 @@ def layer_reports(
             weight_error=weight_error(W, after),
             predicted_error=e.get("predicted_error"),
             reason=e.get("reason", ""),
+            form=str(e.get("action", "")) if plan else "",
+            precision=e.get("precision"),
+            bytes=e.get("bytes"),
+            bytes_after=e.get("bytes_after"),
+            correction_rank=e.get("correction_rank"),
         ))
     return rows

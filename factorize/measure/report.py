@@ -17,6 +17,9 @@ from rich.console import Console
 from rich.panel import Panel
 from rich.table import Table
 
+from .alternatives import COLUMNS as ALTERNATIVE_COLUMNS
+from .alternatives import Alternative, verdict
+from .alternatives import rows as alternative_rows
 from .layout import print_table, print_words
 
 REPORT_FORMAT = "factorize.report"
@@ -44,6 +47,11 @@ class LayerReport:
     weight_error: float | None = None  # measured ||W - BA||_F / ||W||_F
     predicted_error: float | None = None  # from the plan (Eckart-Young tail or output-space estimate)
     reason: str = ""  # why this rank (from the plan)
+    form: str = ""  # the plan's form: "factor", "dense" or "corrected" ("" without a plan)
+    precision: str | None = None  # stored precision of the weight or factors (plans with cost="bytes")
+    bytes: int | None = None  # stored bytes of the weight before (plans that record them)
+    bytes_after: int | None = None  # stored bytes after: factors, rounded weight, or weight plus correction
+    correction_rank: int | None = None  # the corrected form's rank
 
 
 @dataclass
@@ -82,6 +90,18 @@ class Report:
     perplexity_after: float | None = None
     notes: list[str] = field(default_factory=list)  # warnings worth showing (e.g. random inputs)
     caution: str = CAUTION
+    stored_bytes_before: int | None = None  # stored bytes of the plan's layers (plans that record bytes)
+    stored_bytes_after: int | None = None
+    alternatives: list[Alternative] = field(default_factory=list)  # the plain ways at the chosen size
+
+    def alternatives_verdict(self) -> str | None:
+        """The sentence saying which of the alternatives is best (:func:`factorize.measure.alternatives.verdict`)."""
+        return verdict(self.alternatives) if self.alternatives else None
+
+    @property
+    def stored(self) -> list[LayerReport]:
+        """The layers whose plan row records a stored precision (plans with ``cost="bytes"``)."""
+        return [layer for layer in self.layers if layer.precision is not None]
 
     # --- derived numbers ----------------------------------------------------------------------------------------
 
@@ -198,7 +218,9 @@ class Report:
         data = asdict(self)
         for layer in data["layers"]:
             layer["shape"] = list(layer["shape"])
+        data["alternatives"] = [a.to_json() for a in self.alternatives]
         data.update(
+            alternatives_verdict=self.alternatives_verdict(),
             format=REPORT_FORMAT,
             version=REPORT_VERSION,
             kept_fraction=self.kept_fraction,
@@ -232,6 +254,16 @@ class Report:
                       "| --- | --- | --- | ---: | ---: | ---: | ---: | ---: |"]
             for layer in self.layers:
                 lines.append("| " + " | ".join(_layer_cells(layer)) + " |")
+        if self.stored:
+            lines += ["", "Stored forms:", "", "| layer | form | rank | precision | bytes | bytes after |",
+                      "| --- | --- | ---: | --- | ---: | ---: |"]
+            lines += ["| " + " | ".join(_stored_cells(layer)) + " |" for layer in self.stored]
+        if self.alternatives:
+            lines += ["", f"Plain alternatives at the chosen size, on the same {self.samples} sample inputs:", "",
+                      "| " + " | ".join(ALTERNATIVE_COLUMNS) + " |", "| --- | ---: | ---: | ---: | --- |"]
+            lines += ["| " + " | ".join(row) + " |" for row in alternative_rows(self.alternatives)]
+            if self.alternatives_verdict():
+                lines += ["", f"**{self.alternatives_verdict()}**"]
         for note in self.notes + ([self.latency_note()] if self.latency_note() else []):
             lines += ["", f"Note: {note}"]
         for line in self.advice():
@@ -247,6 +279,9 @@ class Report:
             ("bytes", _bytes(self.bytes_before), _bytes(self.bytes_after),
              _change(self.bytes_before, self.bytes_after)),
         ]
+        if self.stored_bytes_before is not None and self.stored_bytes_after is not None:
+            rows.append(("stored bytes, layers in the plan", _bytes(self.stored_bytes_before),
+                         _bytes(self.stored_bytes_after), _change(self.stored_bytes_before, self.stored_bytes_after)))
         if self.macs_before is not None:
             rows.append(("MACs/sample, layers in the table", _int(self.macs_before), _int(self.macs_after),
                          _change(self.macs_before, self.macs_after)))
@@ -316,6 +351,24 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
         for layer in report.layers:
             layers.add_row(*_layer_cells(layer))
         print_table(console, layers)  # full names: never wrapped inside, never cut
+    if report.stored:
+        stored = Table(title="stored forms", title_justify="left")
+        for name, justify in (("layer", "left"), ("form", "left"), ("rank", "right"), ("precision", "left"),
+                              ("bytes", "right"), ("bytes after", "right")):
+            stored.add_column(name, justify=justify)  # type: ignore[arg-type]
+        for layer in report.stored:
+            stored.add_row(*_stored_cells(layer))
+        print_table(console, stored)
+    if report.alternatives:
+        alt = Table(title=f"plain alternatives at the chosen size, on the same {report.samples} sample inputs",
+                    title_justify="left")
+        for name in ALTERNATIVE_COLUMNS:
+            alt.add_column(name, justify="left" if name in ("alternative", "note") else "right")
+        for row in alternative_rows(report.alternatives):
+            alt.add_row(*row)
+        print_table(console, alt)
+        if report.alternatives_verdict():
+            print_words(console, report.alternatives_verdict(), style="bold")
     for note in report.notes + ([report.latency_note()] if report.latency_note() else []):
         print_words(console, note, prefix="Note: ", prefix_style="yellow")
     for line in report.advice():
@@ -339,6 +392,18 @@ def _layer_cells(layer: LayerReport) -> list[str]:
         _int(layer.params_after),
         "-" if layer.weight_error is None else f"{layer.weight_error:.4f}",
         "-" if layer.macs_after is None else _int(layer.macs_after),
+    ]
+
+
+def _stored_cells(layer: LayerReport) -> list[str]:
+    rank = layer.rank if layer.form == "factor" else layer.correction_rank
+    return [
+        layer.name,
+        layer.form or ("factor" if layer.rank is not None else "dense"),
+        "-" if rank is None else str(rank),
+        layer.precision or "-",
+        _int(layer.bytes),
+        _int(layer.bytes_after),
     ]
 
 

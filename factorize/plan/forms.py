@@ -38,7 +38,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import torch
@@ -127,8 +127,12 @@ def candidates_for(
     metric: LayerMetric,
     *,
     multiple: int = 1,
+    reasons: dict[str, str] | None = None,
 ) -> list[Candidate]:
     """Every candidate form of one layer, with bytes and predicted error (see the module docstring).
+
+    A precision that cannot hold the weight or its factors (a value beyond float16's range, a 4-bit group scale
+    that would overflow) is not offered; ``reasons``, when given, receives precision -> why.
 
     ``W`` is the layer's matrix view (m x n). Where the stored weight's rows are not the view's rows (a transposed
     projection's dense weight, an embedding, a transposed convolution) rounding does not use the input statistics,
@@ -139,11 +143,11 @@ def candidates_for(
     W64 = W.detach().to(torch.float64)
     hessian = metric.C if site.kind in DENSE_VIEW_KINDS else None
     out: list[Candidate] = [Candidate(DENSE, native, None, float(stored_bytes(native, shape)), 0.0)]
-    reasons = {}
+    reasons = {} if reasons is None else reasons
     for p in usable(precisions, native)[1:]:
         why = fits(W, p)
         if why is not None:
-            reasons[p] = why
+            reasons[p] = f"the weight, {why}"
             continue
         Wq = round_matrix(W64, p, hessian=hessian).dequantize(torch.float64)
         out.append(Candidate(DENSE, p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
@@ -183,10 +187,11 @@ def _factored(site, W64, spectrum, precisions, metric: LayerMetric, multiple, he
     errors = spectrum.errors() ** 2  # truncation error at every rank (absolute units of the spectrum)
     out = []
     for p in precisions:
-        terms = np.zeros(top) if p == precisions[0] else _rounding_terms(B, A, p, metric, hessian)
-        if terms is None:
-            reasons[p] = f"{p} cannot hold the factors"
+        why = None if p == precisions[0] else fits(B, p) or fits(A, p)
+        if why is not None:
+            reasons[p] = "; ".join(filter(None, (reasons.get(p), f"the factors, {why}")))
             continue
+        terms = np.zeros(top) if p == precisions[0] else _rounding_terms(B, A, p, metric, hessian)
         cum = np.concatenate([[0.0], np.cumsum(terms)])
         for r in ranks:
             err = metric.scale * (float(errors[min(r, len(errors) - 1)]) + float(cum[r]))
@@ -194,10 +199,8 @@ def _factored(site, W64, spectrum, precisions, metric: LayerMetric, multiple, he
     return out
 
 
-def _rounding_terms(B, A, p, metric: LayerMetric, hessian) -> np.ndarray | None:
-    """Per rank-one term, the error its rounding adds (see the module docstring), or None when p overflows."""
-    if fits(B, p) is not None or fits(A, p) is not None:
-        return None
+def _rounding_terms(B, A, p, metric: LayerMetric, hessian) -> np.ndarray:
+    """Per rank-one term, the error its rounding adds (see the module docstring; B and A fit in p)."""
     Bq, Aq = round_factors(B, A, p, hessian=hessian)
     dB, dA = B - Bq.dequantize(torch.float64), A - Aq.dequantize(torch.float64)  # (m, k), (k, n)
     b_norm, db_norm = (B * metric.left(B)).sum(0), (dB * metric.left(dB)).sum(0)  # (k,) in G
@@ -215,10 +218,10 @@ def candidate_bytes(chosen: Candidate, shape: tuple[int, int]) -> int:
 
 
 def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | None, native: str,
-              scale: float = 1.0, cost: str = "bytes") -> dict:
+              scale: float = 1.0, cost: str = "bytes", notes: Sequence[str] = ()) -> dict:
     """One plan row for a chosen candidate: the rank-only row's keys, plus ``precision``, ``bytes``, ``bytes_after``
     (and ``correction_rank`` / ``correction_precision`` for the corrected form; ``latency_ms`` when the budget
-    counted measured time)."""
+    counted measured time; ``notes`` when a precision was refused for this layer, saying why)."""
     shape = tuple(site.shape)
     factor = chosen.form == FACTOR
     entry = {
@@ -243,8 +246,8 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
         entry["kernel"] = list(site.kernel)
     if spectrum is not None and factor:
         entry["energy_kept"] = spectrum.energy_fraction(chosen.rank)
-    if chosen.reason:
-        entry["notes"] = chosen.reason
+    if notes:
+        entry["notes"] = list(notes)
     return entry
 
 
@@ -271,6 +274,7 @@ class Priced:
     candidates: Mapping[str, Sequence[Candidate]]
     natives: Mapping[str, str]
     scales: Mapping[str, float]
+    notes: Mapping[str, Sequence[str]] = field(default_factory=dict)  # name -> why a precision was not offered
 
 
 def joint_plan(
@@ -298,7 +302,7 @@ def joint_plan(
     for s in sites:
         if s.name in selection.chosen:
             entries[s.name] = entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name],
-                                        scales.get(s.name, 1.0), cost)
+                                        scales.get(s.name, 1.0), cost, priced.notes.get(s.name, ()))
         else:
             kept = Candidate(DENSE, natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
             entries[s.name] = entry_for(s, kept, f"weight shared with {', '.join(s.tied_with)}; kept as it is",
@@ -341,7 +345,7 @@ def price_sites(model: torch.nn.Module, sites: Sequence[Site], spectra: Mapping[
     as it is, ``rank=N`` factors it at rank N in its own precision."""
     from factorize.model.sites import get_module, matrix_of
 
-    natives, cands, scales = {}, {}, {}
+    natives, cands, scales, notes = {}, {}, {}, {}
     for s in sites:
         W = matrix_of(get_module(model, s.name), s.kind)
         natives[s.name] = native_precision(W.dtype)
@@ -350,9 +354,13 @@ def price_sites(model: torch.nn.Module, sites: Sequence[Site], spectra: Mapping[
         spec = spectra[s.name]
         metric = (metrics or {}).get(s.name) or LayerMetric(None, None, _own_scale(spec))
         scales[s.name] = metric.scale
-        found = candidates_for(s, W, spec, policy.allowed_precisions, metric, multiple=policy.multiple)
+        refused: dict[str, str] = {}
+        found = candidates_for(s, W, spec, policy.allowed_precisions, metric, multiple=policy.multiple,
+                               reasons=refused)
         cands[s.name] = _overridden(s, policy, found, natives[s.name], spec, metric)
-    return Priced(cands, natives, scales)
+        if refused:
+            notes[s.name] = [f"{p} not offered for {why}; kept in a wider precision" for p, why in refused.items()]
+    return Priced(cands, natives, scales, notes)
 
 
 def _own_scale(spec: Spectrum) -> float:

@@ -18,14 +18,13 @@ from typing import Any
 
 import numpy as np
 
-from factorize.choices import AWARE_METHODS, METHODS
+from factorize.choices import AWARE_METHODS, COSTS, METHODS
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
 from factorize.rounding import PRECISIONS, check_precision
 
 POLICY_KEYS = ("rank", "energy", "keep", "budget")
 POLICY_KEYWORDS = (*POLICY_KEYS, "include", "exclude", "overrides", "multiple", "cost", "precisions", "method", "seed")
-COSTS = ("params", "macs", "bytes", "latency")  # what budget= counts
 # int8 and 4-bit in groups of 64 are what practitioners try first (common practice); bfloat16 keeps the float
 # range at half the bytes. int4 in groups of 32 costs 0.25 bit a weight more for little (measured on MiniLM:
 # held-out cosine 0.9901 against 0.9884, both with error-feedback rounding), so it is allowed but not a default.

@@ -30,9 +30,9 @@ from dataclasses import dataclass
 
 import torch
 
+from factorize.choices import PRECISIONS
 from factorize.errors import FactorizeError
 
-PRECISIONS = ("float32", "bfloat16", "float16", "int8", "int4g32", "int4g64", "int4g128")
 FLOAT_DTYPES = {"float32": torch.float32, "bfloat16": torch.bfloat16, "float16": torch.float16}
 INT8_MAX = 127  # symmetric int8: [-127, 127] (common practice)
 INT4_MAX = 7  # symmetric 4-bit: [-7, 7]

@@ -185,3 +185,22 @@ def test_calibrated_bytes_plan_is_checked_against_rounding_alone_on_the_calibrat
     checked = plan["selection"].get("checked")
     assert checked is not None and set(checked) >= {"joint", "rounding"}
     assert calib.drift_of(plan) == pytest.approx(min(checked["joint"], checked["rounding"]))
+
+
+def test_float16_overflow_is_refused_with_the_reason_in_the_plan():
+    """A weight beyond float16's range (largest finite 65504, IEEE 754 binary16) is never stored as float16, nor are
+    factors beyond it; the plan row says why."""
+    import factorize
+
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Linear(32, 32), nn.ReLU(), nn.Linear(32, 8))
+    with torch.no_grad():
+        model[0].weight[0, 0] = 1e10  # sqrt(1e10) = 1e5: the balanced factors overflow float16 too
+    result = factorize.compress(model, budget=0.5, cost="bytes", precisions=("float16",), example=torch.randn(4, 32))
+    big, small = result.plan["sites"]["0"], result.plan["sites"]["2"]
+    assert big["precision"] == "float32"
+    assert any(n.startswith("float16 not offered for the weight") and "the factors" in n and "65504" in n
+               for n in big["notes"])
+    assert "notes" not in small  # an ordinary layer may use float16: nothing refused there
+    out = result.model(torch.randn(4, 32))
+    assert bool(torch.isfinite(out).all())

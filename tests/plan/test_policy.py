@@ -60,3 +60,11 @@ def test_rank_needed_bounds_partial_decompositions():
     assert rank_needed(site, Policy(rank=5, multiple=4)) == 8  # rounded up to the multiple
     assert rank_needed(site, Policy(keep=0.5)) == 12  # floor(0.5 * 2400 / (40 + 60))
     assert rank_needed(site, Policy(budget=0.5)) == site.break_even + 1  # 24 + 1: past break-even stays dense
+
+
+def test_with_budget_keeps_a_bytes_cost_and_its_precisions():
+    """The drift search walks budgets through with_budget: a budget in bytes stays one, with the same precisions."""
+    p = Policy(budget=0.5, cost="bytes", precisions=("int8", "int4g64"), multiple=8)
+    q = p.with_budget(0.2)
+    assert (q.budget, q.cost, q.allowed_precisions, q.multiple) == (0.2, "bytes", ("int8", "int4g64"), 8)
+    assert q.to_dict() == {"budget": 0.2, "multiple": 8, "cost": "bytes", "precisions": ["int8", "int4g64"]}
