@@ -6,6 +6,8 @@ registered twice). Parameters and buffers are counted separately; bytes use each
 
 from __future__ import annotations
 
+import math
+
 from torch import nn
 
 
@@ -18,8 +20,11 @@ def _unique_parameters(model: nn.Module):
 
 
 def count_parameters(model: nn.Module) -> int:
-    """Number of parameter elements, each shared tensor counted once."""
-    return sum(p.numel() for p in _unique_parameters(model))
+    """Number of parameter elements, each shared tensor counted once. A weight stored rounded
+    (:mod:`factorize.rewrite.stored`: buffers, not a Parameter) counts its elements as the Parameter it replaced
+    did: it still holds that many numbers, in fewer bits (its bytes are in :func:`count_bytes`)."""
+    stored = sum(math.prod(m.layout) for m in model.modules() if getattr(m, "_factorize_stored", False))
+    return sum(p.numel() for p in _unique_parameters(model)) + stored
 
 
 def count_bytes(model: nn.Module, *, buffers: bool = True) -> int:

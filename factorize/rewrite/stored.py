@@ -38,6 +38,8 @@ from factorize.rounding.formats import Rounded, dequantize_tensors
 class StoredWeight(nn.Module):
     """A weight in stored form: buffers ``q`` (and ``scale``), decoded to ``layout`` in ``dtype`` when called."""
 
+    _factorize_stored = True  # read by factorize.model.count, which may not import this module (layering)
+
     def __init__(self, rounded: Rounded, layout: tuple[int, ...], dtype: torch.dtype) -> None:
         super().__init__()
         self.precision = rounded.precision

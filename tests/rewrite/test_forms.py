@@ -147,3 +147,13 @@ def test_integer_kernels_hold_the_stored_codes_and_stay_close():
     y, ref = fast(x), compressed(x)
     assert float((y - ref).norm() / ref.norm()) < 0.05
     assert is_stored(compressed[2])  # the stored model itself is unchanged
+
+
+def test_stored_weights_count_as_the_parameters_they_replace():
+    # a rounded weight still holds m x n numbers (fewer bits): the parameter count stays, the bytes fall
+    from factorize.model.count import count_bytes, count_parameters
+
+    model = _model()
+    compressed = apply_plan(model, _plan(model, {"2": ("dense", "int8", None)}))
+    assert count_parameters(compressed) == count_parameters(model)
+    assert count_bytes(model) - count_bytes(compressed) == 4 * 32 * 48 - stored_bytes("int8", (32, 48))
