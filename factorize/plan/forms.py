@@ -149,13 +149,23 @@ def candidates_for(
         if why is not None:
             reasons[p] = f"the weight, {why}"
             continue
-        Wq = round_matrix(W64, p, hessian=hessian).dequantize(torch.float64)
+        Wq = _rounded_as_stored(W64, p, hessian, site.kind)
         out.append(Candidate(DENSE, p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
         if site.kind in KINDS_WITH_CORRECTION and not is_float(p):
             out += _corrected(W64, Wq, p, shape, metric)
     factor_hessian = metric.C if site.kind in VIEW_KINDS else None
     out += _factored(site, W64, spectrum, usable(precisions, native), metric, multiple, factor_hessian, reasons)
     return out
+
+
+def _rounded_as_stored(W64: torch.Tensor, p: str, hessian, kind: str) -> torch.Tensor:
+    """The matrix view as the layer will store it rounded (:mod:`factorize.rewrite.forms`): with the view's rows
+    and the input statistics for linear and convolution weights; for the others (a transposed projection, an
+    embedding, a transposed convolution) the stored weight is the view's transpose, rounded to nearest by its own
+    rows, so that is what is priced."""
+    if kind in DENSE_VIEW_KINDS:
+        return round_matrix(W64, p, hessian=hessian).dequantize(torch.float64)
+    return round_matrix(W64.T, p).dequantize(torch.float64).T
 
 
 def _corrected(W64, Wq, p, shape, metric: LayerMetric) -> list[Candidate]:

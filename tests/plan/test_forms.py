@@ -204,3 +204,29 @@ def test_float16_overflow_is_refused_with_the_reason_in_the_plan():
     assert "notes" not in small  # an ordinary layer may use float16: nothing refused there
     out = result.model(torch.randn(4, 32))
     assert bool(torch.isfinite(out).all())
+
+
+def test_dense_rounding_is_priced_as_the_layer_stores_it_for_transposed_projections():
+    # transformers' Conv1D (GPT-2) stores its weight (in, out): rounding it row by row puts the scales on input
+    # rows, and the price must be of that stored form (what apply_plan builds), not of the (out, in) view
+    from transformers.pytorch_utils import Conv1D
+
+    from factorize.model.sites import matrix_of
+    from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
+    from factorize.rewrite.apply import apply_plan
+
+    torch.manual_seed(0)
+    model = nn.Sequential(Conv1D(24, 40))  # nx=40 inputs, nf=24 outputs
+    with torch.no_grad():
+        model[0].weight.mul_(torch.logspace(0, 2, 40)[:, None])  # input rows of very different scales
+    site = walk(model).sites[0]
+    assert site.kind == "transposed"
+    W = matrix_of(model[0], site.kind)
+    spec = decompose(W, method="exact")
+    cand = next(c for c in candidates_for(site, W, spec, ("float32", "int8"), LayerMetric(None, None, 1.0))
+                if c.form == "dense" and c.precision == "int8")
+    row = {"kind": site.kind, "shape": list(site.shape), "action": "dense", "rank": None, "reason": "",
+           "params": site.params, "params_after": site.params, "precision": "int8"}
+    built = apply_plan(model, {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "sites": {"0": row}})
+    measured = float(((W.double() - matrix_of(built[0], site.kind).double()) ** 2).sum())
+    assert cand.error == pytest.approx(measured, rel=1e-6)
