@@ -31,6 +31,8 @@ Rounded weights run in the library's stored form (decoded from the stored tensor
 matmul; no integer kernels); the nearest and GPTQ rows of a format share one structure, so one timing.
 
     PYTHONPATH=. python benchmarks/bench_precision.py [--quick] [--only encoder,gpt2,digits] [--repeats 7]
+        [--diagnose] [--no-timing]
+    PYTHONPATH=. python benchmarks/bench_precision.py --explain   # the encoder's predicted vs built errors
 
 Drift measured on sample inputs is no guarantee of behaviour on other inputs; safety-relevant uses need
 re-validation under the rules that govern them.
@@ -376,6 +378,46 @@ def verdicts(results: dict) -> list[str]:
     return out
 
 
+def explain(case: dict, precision: str = "int4g64") -> list[str]:
+    """Where the joint plan's predicted error parts from the error of what is built, at ``precision``'s size:
+    per layer, the planner's predicted error and the error of the built layer's weight in the same measure
+    (trace(G dW C dW^T), allocator units; biases and their correction left out), summed by form; and the same
+    sum for every layer rounded to ``precision`` with GPTQ."""
+    model = case["model"]
+    calib = Calibration(model, case["cal"], include=case["include"])
+    sites = calib.todo
+    full = sum(stored_bytes("float32", tuple(s.shape)) for s in sites)
+    f = sum(stored_bytes(precision, tuple(s.shape)) for s in sites) / full
+    plan = calib.plan(Policy(budget=f, cost="bytes"))
+    built = calib.build(plan)
+    rounded = rounded_model(model, sites, precision, calib.stats)
+    by_form: dict[str, list[float]] = {}
+    for e in plan_entries(plan):
+        s = next(x for x in sites if x.name == e.name)
+        metric, spec = layer_metric(calib, e.name), calib.spectra[e.name]
+        W = matrix_of(get_module(model, e.name), s.kind).detach().to(torch.float64)
+        got = metric.error(W, matrix_of(get_module(built, e.name), s.kind).detach().to(torch.float64))
+        alone = metric.error(W, matrix_of(get_module(rounded, e.name), s.kind).detach().to(torch.float64))
+        predicted = e.predicted_error ** 2 * (spec.total_energy + spec.residual) * metric.scale
+        acc = by_form.setdefault(f"{e.form} {e.precision}", [0, 0.0, 0.0, 0.0])
+        acc[0] += 1
+        acc[1] += predicted
+        acc[2] += got
+        acc[3] += alone
+    lines = [(f"Encoder, joint plan at {precision}'s size (1/{1 / f:.2f}) against every layer rounded to {precision} "
+             "with GPTQ, error of each layer's weight in the planner's measure (allocator units):"), "",
+             "| joint form | layers | joint predicted | joint built | the same layers rounded alone |",
+             "| --- | ---: | ---: | ---: | ---: |"]
+    for form, (n, pr, got, alone) in sorted(by_form.items(), key=lambda kv: -kv[1][2]):
+        lines.append(f"| {form} | {n} | {pr:.4g} | {got:.4g} | {alone:.4g} |")
+    tot = [sum(v[i] for v in by_form.values()) for i in (1, 2, 3)]
+    lines.append(f"| total | {len(sites)} | {tot[0]:.4g} | {tot[1]:.4g} | {tot[2]:.4g} |")
+    r_j, r_r = case["evaluate"](built), case["evaluate"](rounded)
+    k = case["key"]
+    lines += ["", f"Measured {k}: joint {r_j[k]:.5f}, rounded alone {r_r[k]:.5f}."]
+    return lines
+
+
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="fewer held-out LM windows, 5 timing repeats")
@@ -383,12 +425,21 @@ def main(argv=None) -> None:
     ap.add_argument("--repeats", type=int, default=None, help="timed passes per model (default 7; --quick 5)")
     ap.add_argument("--no-timing", action="store_true")
     ap.add_argument("--output", default=str(RESULTS))
+    ap.add_argument("--diagnose", action="store_true",
+                    help="also the joint plan with int4g128 allowed, at int4g64's and int4g128's sizes (re-prices)")
+    ap.add_argument("--explain", action="store_true",
+                    help="only the encoder's predicted-vs-built error check at int4g64's size (printed)")
     args = ap.parse_args(argv)
     torch.set_num_threads(1)
     import transformers
 
     transformers.logging.set_verbosity_error()
     warnings.simplefilter("ignore")
+    if args.explain:
+        print(f"Load average at start {load()}; one thread.")
+        print("\n".join(explain(encoder_case(args.quick))))
+        print(f"Load average at end {load()}; {(time.perf_counter() - LOG_START) / 60:.1f} min.")
+        return
     repeats = args.repeats or (5 if args.quick else 7)
     loads = {"start": load()}
     results, sections = {}, []
@@ -396,7 +447,7 @@ def main(argv=None) -> None:
         case = CASES[key](args.quick)
         loads[key] = load()
         log(f"{key}: start, load {loads[key]}")
-        rows, setup = run_case(case, repeats, not args.no_timing, not args.quick)
+        rows, setup = run_case(case, repeats, not args.no_timing, args.diagnose)
         results[key] = (case, rows)
         lat = "" if args.no_timing else (
             f" Original latency: batch 1 {rows[0]['lat']['batch1'][3]:.1f} ms, batch 32 "
@@ -417,7 +468,8 @@ def main(argv=None) -> None:
         + f", at end {loads['end']}. Whole run: {minutes:.1f} min" + (" (--quick)" if args.quick else "") + ".",
         "",
         "Reproduce: `PYTHONPATH=. python benchmarks/bench_precision.py" + (" --quick" if args.quick else "")
-        + (f" --only {args.only}" if args.only != "encoder,gpt2,digits" else "") + "`",
+        + (f" --only {args.only}" if args.only != "encoder,gpt2,digits" else "")
+        + (" --diagnose" if args.diagnose else "") + "`",
         "",
         ("Stored size: bytes of the selected layers' weights as stored (data + scales), over their float32 bytes. "
         "Predicted error: the joint planner's summed output-weighted error (trace(G dW C dW^T) per layer, "
