@@ -242,7 +242,7 @@ def run_case(case: dict, repeats: int, timing: bool, diagnose: bool) -> tuple[li
         add("joint", f"@ {p} size", None, factorize.plan_summary(plan)["kept_bytes_fraction"], calib.build(plan),
             {"predicted": plan["selection"]["predicted_error"], "forms": forms(plan), "matched": p})
     if diagnose:  # the default precisions lack int4g128: would allowing it close the gap at those sizes?
-        wider = DEFAULT_PRECISIONS + ("int4g128",)
+        wider = (*DEFAULT_PRECISIONS, "int4g128")
         for p in ("int4g64", "int4g128"):
             f = next(r["size"] for r in rows if r["variant"] == f"{p} GPTQ")
             plan = calib.plan(Policy(budget=f, cost="bytes", precisions=wider))
@@ -369,8 +369,9 @@ def verdicts(results: dict) -> list[str]:
             rd = best_rounding(case, rows, f)
             alts = [a["mean"] for a in (ro, rd) if a is not None and a.get("size") is not None]
             margin = j[label] - max(alts) if alts else float("nan")
+            shown = "not reachable" if rd is None else format(rd["mean"], ".4f")
             out.append(f"- Encoder at {label}: joint {j[label]:.4f}, better alternative {max(alts):.4f} "
-                       f"(rounding {'not reachable' if rd is None else format(rd['mean'], '.4f')}): margin {margin:+.4f} "
+                       f"(rounding {shown}): margin {margin:+.4f} "
                        f"(target >= +0.05): {'**met**' if margin >= 0.05 else '**missed**'}")
         out.append(f"- Aim: encoder >= 0.95 at 1/8: {j['1/8']:.4f} ({'met' if j['1/8'] >= 0.95 else '**missed**'}); "
                    f">= 0.90 at 1/16: {j['1/16']:.4f} ({'met' if j['1/16'] >= 0.90 else '**missed**'})")
