@@ -7,7 +7,7 @@ import shutil
 from pathlib import Path
 
 from factorize.checkpoints import files
-from factorize.checkpoints.directories import save_directory
+from factorize.checkpoints.directories import extra_files, save_directory
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate, layer_reports
 from factorize.measure.report import Report, render_rich
@@ -128,11 +128,25 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
     if getattr(args, "dtype", None):
         report.notes.append(f"checkpoint stored as {args.dtype}; drift above was measured before the cast")
     stored = output_dtype(args, result.model)
-    if as_directory:  # config, factorize weights, factorize.json and tokenizer: reloads with load_directory
-        save_directory(stored, result.plan, output, tokenizer=loaded.tokenizer, force=args.force)
+    if as_directory:  # config, factorize weights, factorize.json and the input's other files: load_directory
+        source = loaded.path if loaded.path is not None and Path(loaded.path).is_dir() else None
+        if source is not None:
+            report.notes.append(_copied_note(source))
+        save_directory(stored, result.plan, output, tokenizer=None if source else loaded.tokenizer,
+                       force=args.force, source=source)
     else:
         files.save(stored, output, plan=result.plan, force=args.force)
     return report, result.plan
+
+
+def _copied_note(source: Path) -> str:
+    """One line naming what the output directory takes over from the input, unchanged."""
+    copied = [str(p) for p in extra_files(source)]
+    if not copied:
+        return f"nothing else in {source} to copy beside config.json and the weights"
+    shown = ", ".join(copied[:6]) + (f" and {len(copied) - 6} more" if len(copied) > 6 else "")
+    return (f"copied unchanged from {source}: {shown} (the original weights are not copied; run the result without "
+            "factorize through 'factorize export', see docs/export.md)")
 
 
 def split_for_search(inputs, ui: UI):
