@@ -22,7 +22,12 @@ import pytest
 import torch
 
 import factorize
-from factorize.checkpoints.directories import MANIFEST, WEIGHTS, extra_files, save_directory
+from factorize.checkpoints.directories import (
+    MANIFEST,
+    WEIGHTS,
+    extra_files,
+    save_directory,
+)
 from factorize.cli import main
 
 transformers = pytest.importorskip("transformers")
@@ -30,9 +35,13 @@ pytest.importorskip("onnxruntime")
 pytest.importorskip("onnxscript")
 pytestmark = pytest.mark.filterwarnings("ignore::UserWarning")
 
-WORDS = ("the river rose after storm she fixed chain of her bicycle prices went up in spring a quiet street at "
-         "night and small dog ran across field green hills were covered with snow we read book by lamp old man "
-         "sold fresh bread market children played near lake rain fell on roof all day").split()
+WORDS = [
+    'the', 'river', 'rose', 'after', 'storm', 'she', 'fixed', 'chain', 'of', 'her', 'bicycle', 'prices',
+    'went', 'up', 'in', 'spring', 'a', 'quiet', 'street', 'at', 'night', 'and', 'small', 'dog', 'ran',
+    'across', 'field', 'green', 'hills', 'were', 'covered', 'with', 'snow', 'we', 'read', 'book', 'by',
+    'lamp', 'old', 'man', 'sold', 'fresh', 'bread', 'market', 'children', 'played', 'near', 'lake', 'rain',
+    'fell', 'on', 'roof', 'all', 'day',
+]
 EXTRA = {  # relative path -> content: what a sentence-transformers folder holds besides the model
     "modules.json": json.dumps([
         {"idx": 0, "name": "0", "path": "", "type": "sentence_transformers.models.Transformer"},
@@ -117,7 +126,7 @@ def test_shrunk_folder_keeps_its_files_loads_and_runs_without_factorize(tmp_path
     np.savez(tmp_path / "feed.npz", **{k: v.numpy() for k, v in batch.items()})
     env = {k: v for k, v in os.environ.items() if k != "PYTHONPATH"}
     ran = subprocess.run([sys.executable, "-c", ONNX_RUNNER, "small.onnx", "feed.npz", "onnx_out.npy"],
-                         cwd=tmp_path, env=env, capture_output=True, text=True, timeout=120)
+                         cwd=tmp_path, env=env, capture_output=True, text=True, timeout=120, check=False)
     assert ran.returncode == 0, ran.stderr
     got = torch.from_numpy(np.load(tmp_path / "onnx_out.npy"))
     # tolerance: 1e-4 absolute, float32 kernels of two runtimes on values of order 1 (common practice)
