@@ -15,6 +15,7 @@ from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size
 from factorize.outofcore.weights_only import shrink_checkpoint
 from factorize.pipeline import compress
+from factorize.plan.defaults import held_note
 from factorize.training.heal import heal
 
 from .common import (
@@ -110,6 +111,7 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
         result = compress(loaded.model, policy, progress=ui.progress, **extra)
     notes = list(inputs.notes) if inputs is not None else []
     notes += _calibration_notes(result, calibration) + _speed_notes(result.plan)
+    notes += [n for n in [held_note(result.plan)] if n]  # a transformers model's input embedding, left dense
     if args.heal:
         notes += _heal(args, loaded, result, calibration, inputs, ui)
     if inputs is not None:
