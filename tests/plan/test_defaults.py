@@ -48,7 +48,7 @@ def test_a_budget_leaves_the_input_embedding_dense_and_outside_the_budget() -> N
     rows = result.plan["sites"]
     assert _held(result.plan) == ["embeddings.word_embeddings"]
     assert rows["embeddings.word_embeddings"]["action"] == "dense"
-    assert list(rows)[0] == "embeddings.word_embeddings"  # module order kept
+    assert next(iter(rows)) == "embeddings.word_embeddings"  # module order kept
     assert not isinstance(result.model.embeddings.word_embeddings, factorize.Factored)
     # the budget is the fraction of the selected layers' parameters: the held row is not among them
     selected = [e for n, e in rows.items() if n not in _held(result.plan)]
