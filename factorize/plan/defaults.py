@@ -75,6 +75,6 @@ def held_note(plan: Mapping) -> str | None:
     held = [n for n, e in (plan.get("sites") or {}).items() if isinstance(e, Mapping) and e.get("reason") == HELD_REASON]
     if not held:
         return None
-    return (f"left dense by default: {', '.join(held)} (the input embedding table of a transformers model, and heads "
-            "tied to it); the budget covers the other layers; to factor it, name it with --include (include=) or "
-            "an override")
+    what = "the input embedding table of a transformers model" + (" and the heads tied to it" if len(held) > 1 else "")
+    return (f"left dense by default: {', '.join(held)} ({what}); the budget covers the other layers; to factor it, "
+            "name it with --include (include=) or an override")
