@@ -32,6 +32,7 @@ from factorize.measure.evaluate import with_macs
 from factorize.measure.latency import latency_plan
 from factorize.model.count import count_parameters
 from factorize.model.sites import WalkResult, walk
+from factorize.plan.defaults import excluding, held_by_default, with_held_rows
 from factorize.plan.entries import factored_ranks
 from factorize.plan.forms import bytes_plan
 from factorize.plan.policy import (
@@ -174,7 +175,8 @@ def _checked(model: nn.Module, result: CompressResult, sample: Any, on_break: st
 def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: bool):
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}", fix="pass the model object")
-    found = walk(model, include=policy.include, exclude=policy.exclude).require_sites(policy.filtered)
+    held = held_by_default(model, policy)  # a transformers model's input embedding, under a budget
+    found = walk(model, include=policy.include, exclude=excluding(policy, held)).require_sites(policy.filtered)
     if policy.cost == "macs":
         found = WalkResult(with_macs(model, found.sites, run.example), found.skipped)
     todo = [s for s in found.sites if not s.tied_with]
@@ -205,6 +207,7 @@ def _compress_plain(model: nn.Module, policy: Policy, run: RunOptions, inplace: 
     timings = []
     if run.speed_check:
         plan, target, timings = _keep_fast(model, target, found, have, plan, policy, run, inplace)
+    plan = with_held_rows(plan, model, held)
     return CompressResult(
         model=target,
         plan=plan,
@@ -246,7 +249,8 @@ def sweep_spectra(
     first = policies[0]
     if any((p.include, p.exclude, p.seed) != (first.include, first.exclude, first.seed) for p in policies):
         return None
-    found = walk(model, include=first.include, exclude=first.exclude).require_sites(first.filtered)
+    held = held_by_default(model, first)  # as compress selects them (every policy here has a budget)
+    found = walk(model, include=first.include, exclude=excluding(first, held)).require_sites(first.filtered)
     todo = [s for s in found.sites if not s.tied_with]
     execution = execution.replace(seed=first.seed)
     have = values_sites(model, todo, keep_gram=True, execution=execution, cache=cache)

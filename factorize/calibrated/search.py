@@ -57,7 +57,11 @@ from factorize.calibrated.options import (  # noqa: F401 - DRIFT_METRICS and the
     calibrated_setup,
     sensitivity_mode,
 )
-from factorize.calibrated.precision import calibrated_bytes_plan, calibrated_latency_plan, hessians
+from factorize.calibrated.precision import (
+    calibrated_bytes_plan,
+    calibrated_latency_plan,
+    hessians,
+)
 from factorize.calibrated.sensitivity import (
     Sensitivity,
     measure_sensitivity,
@@ -70,6 +74,7 @@ from factorize.measure.evaluate import with_macs
 from factorize.model.count import count_parameters
 from factorize.model.feed import token_mask
 from factorize.model.sites import WalkResult, get_module, set_module, walk
+from factorize.plan.defaults import excluding, held_by_default, with_held_rows
 from factorize.plan.entries import plan_entries, rewritten_names
 from factorize.plan.policy import Policy
 from factorize.plan.ranks import choose_ranks, plan_summary
@@ -212,6 +217,11 @@ class Calibration:
         self.execution = options.execution(selection.get("seed") or 0)
         self.progress = self.execution.progress
         self.options = options
+        # a transformers model's input embedding stays out under a budget (a Calibration serves budgets unless
+        # its policy has a per-layer rule)
+        rule = policy if policy is not None else Policy(budget=1.0, include=include)
+        self.held = held_by_default(model, rule)
+        exclude = excluding(dataclasses.replace(rule, exclude=exclude), self.held)
         self.found = walk(model, include=include, exclude=exclude).require_sites(bool(include or exclude))
         self.batches = as_batch_list(calibration)
         self.todo = [s for s in self.found.sites if not s.tied_with]
@@ -259,11 +269,14 @@ class Calibration:
             example = self.options.example if self.options.example is not None else self.batches[0]
             self.found = WalkResult(with_macs(self.model, self.found.sites, example), self.found.skipped)
         if policy.cost == "bytes":
-            return calibrated_bytes_plan(self, policy, self._priced)
-        if policy.cost == "latency":
+            plan = calibrated_bytes_plan(self, policy, self._priced)
+        elif policy.cost == "latency":
             example = self.options.example if self.options.example is not None else self.batches[0]
-            return calibrated_latency_plan(self, policy, example)
-        return choose_ranks(self.found.sites, self.spectra, policy, method=self.method, error_scale=self.error_scale)
+            plan = calibrated_latency_plan(self, policy, example)
+        else:
+            plan = choose_ranks(self.found.sites, self.spectra, policy, method=self.method,
+                                error_scale=self.error_scale)
+        return with_held_rows(plan, self.model, self.held)
 
     def build(self, plan: dict, *, sequential: bool = False, refit: bool = True,
               refit_ridge: float = REFIT_RIDGE) -> nn.Module:

@@ -17,6 +17,10 @@ file                                    what
 ``factorize.json``                      what this directory is: format, version, the weights file, class, dtype,
                                         the library version and the plan
 tokenizer files                         when a tokenizer is given (``tokenizer.save_pretrained``)
+the input's other files                 when the source directory is given: every file it holds that factorize
+                                        does not write (tokenizer files, sentence-transformers module configs such
+                                        as ``modules.json`` and ``1_Pooling/config.json``, README ...), copied byte
+                                        for byte; never the original weights (:data:`ORIGINAL_WEIGHT_SUFFIXES`)
 ======================================  ===========================================================================
 
 No file is called ``model.safetensors`` (nor any other name transformers looks for), so a plain
@@ -47,6 +51,11 @@ HF_EXTRA = 'pip install ".[hf]" (in a checkout of factorize)'
 WEIGHTS = "factorized.safetensors"  # not a name transformers' from_pretrained looks for
 TRANSFORMERS_WEIGHTS = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin",
                         "pytorch_model.bin.index.json")
+# files of the source directory never copied: what factorize writes itself, and the original (dense) weights in
+# any format (copying them would give the user's library the uncompressed model, or a mix of both)
+WRITTEN_HERE = ("config.json", MANIFEST, WEIGHTS)
+ORIGINAL_WEIGHT_SUFFIXES = (".safetensors", ".bin", ".pt", ".pth", ".ckpt", ".pkl", ".h5", ".msgpack", ".onnx",
+                            ".gguf", ".ot", ".npz")
 
 
 def _load_fix(directory: Path) -> str:
@@ -138,6 +147,7 @@ def save_directory(
     *,
     tokenizer: Any = None,
     force: bool = False,
+    source: str | os.PathLike | None = None,
 ) -> Path:
     """Write a compressed transformers model as a directory that :func:`load_directory` reloads exactly.
 
@@ -147,6 +157,9 @@ def save_directory(
         directory: the output directory; refused if it exists unless ``force`` (which replaces it whole).
         tokenizer: a transformers tokenizer to save beside the model (optional).
         force: replace an existing directory.
+        source: the directory the model was loaded from; every file in it that factorize does not write
+            (:func:`extra_files`: tokenizer, sentence-transformers module configs, README ...) is copied byte for
+            byte, so the user's own library finds them. Written before the tokenizer, which replaces its files.
 
     The directory is written under a temporary name beside the target and renamed into place when complete, so a
     failure leaves nothing behind. Returns the directory written.
@@ -164,8 +177,15 @@ def save_directory(
     final = check_output_path(directory, force=force, directory=True)
     plan_json(plan)
     check_plan_matches(model, plan)  # before anything is written
+    extra = [] if source is None else extra_files(source)
+    if source is not None and Path(source).resolve() == final.resolve():
+        raise FactorizeError(f"{final}: is the source directory; factorize never overwrites its input",
+                             fix="write the compressed model to another directory")
     tmp = new_temp_dir(final)
     try:
+        for rel in extra:
+            (tmp / rel).parent.mkdir(parents=True, exist_ok=True)
+            shutil.copyfile(Path(source) / rel, tmp / rel)  # the content (a symlink's target), byte for byte
         _write_into(tmp, model, config, plan, tokenizer)
         publish_dir(tmp, final, force=force)
     except OSError as e:
@@ -176,6 +196,30 @@ def save_directory(
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return final
+
+
+def extra_files(source: str | os.PathLike) -> list[Path]:
+    """The files of ``source`` (relative paths, sorted, subfolders included) that :func:`save_directory` copies:
+    all but what it writes itself (``config.json``, ``factorize.json``, the factorize weights), the original
+    weights (suffixes in :data:`ORIGINAL_WEIGHT_SUFFIXES`, and their ``*.index.json``) and hidden entries (names
+    starting with a dot: version-control folders, temporary files). Symlinked files count by their target;
+    symlinked folders are not entered."""
+    src = Path(source)
+    if not src.is_dir():
+        raise FactorizeError(f"{src}: the source is not a directory",
+                             fix="pass the directory the model was loaded from")
+    found = []
+    for root, dirs, names in os.walk(src):
+        dirs[:] = sorted(d for d in dirs if not d.startswith("."))
+        for name in sorted(names):
+            rel = (Path(root) / name).relative_to(src)
+            lower = name.lower()
+            if name.startswith(".") or (rel.parent == Path(".") and name in WRITTEN_HERE) or \
+                    lower.endswith(ORIGINAL_WEIGHT_SUFFIXES) or lower.endswith(".index.json") or \
+                    not (Path(root) / name).is_file():
+                continue
+            found.append(rel)
+    return found
 
 
 def _write_into(tmp: Path, model: nn.Module, config, plan: Mapping, tokenizer) -> None:

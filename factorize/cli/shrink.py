@@ -7,7 +7,7 @@ import shutil
 from pathlib import Path
 
 from factorize.checkpoints import files
-from factorize.checkpoints.directories import save_directory
+from factorize.checkpoints.directories import extra_files, save_directory
 from factorize.errors import FactorizeError
 from factorize.measure.evaluate import evaluate, layer_reports
 from factorize.measure.report import Report, render_rich
@@ -15,6 +15,7 @@ from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size
 from factorize.outofcore.weights_only import shrink_checkpoint
 from factorize.pipeline import compress
+from factorize.plan.defaults import held_note
 from factorize.training.heal import heal
 
 from .common import (
@@ -111,6 +112,7 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
         result = compress(loaded.model, policy, progress=ui.progress, **extra)
     notes = list(inputs.notes) if inputs is not None else []
     notes += _calibration_notes(result, calibration) + _speed_notes(result.plan)
+    notes += [n for n in [held_note(result.plan)] if n]  # a transformers model's input embedding, left dense
     if args.heal:
         notes += _heal(args, loaded, result, calibration, inputs, ui)
     if inputs is not None:
@@ -132,11 +134,25 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
     if getattr(args, "dtype", None):
         report.notes.append(f"checkpoint stored as {args.dtype}; drift above was measured before the cast")
     stored = output_dtype(args, result.model)
-    if as_directory:  # config, factorize weights, factorize.json and tokenizer: reloads with load_directory
-        save_directory(stored, result.plan, output, tokenizer=loaded.tokenizer, force=args.force)
+    if as_directory:  # config, factorize weights, factorize.json and the input's other files: load_directory
+        source = loaded.path if loaded.path is not None and Path(loaded.path).is_dir() else None
+        if source is not None:
+            report.notes.append(_copied_note(source))
+        save_directory(stored, result.plan, output, tokenizer=None if source else loaded.tokenizer,
+                       force=args.force, source=source)
     else:
         files.save(stored, output, plan=result.plan, force=args.force)
     return report, result.plan
+
+
+def _copied_note(source: Path) -> str:
+    """One line naming what the output directory takes over from the input, unchanged."""
+    copied = [str(p) for p in extra_files(source)]
+    if not copied:
+        return f"nothing else in {source} to copy beside config.json and the weights"
+    shown = ", ".join(copied[:6]) + (f" and {len(copied) - 6} more" if len(copied) > 6 else "")
+    return (f"copied unchanged from {source}: {shown} (the original weights are not copied; run the result without "
+            "factorize through 'factorize export', see docs/export.md)")
 
 
 def split_for_search(inputs, ui: UI):

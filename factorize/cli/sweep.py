@@ -17,6 +17,7 @@ from factorize.measure.evaluate import evaluate
 from factorize.measure.report import CAUTION
 from factorize.outofcore.candidates import checkpoint_spectra
 from factorize.pipeline import compress, sweep_spectra
+from factorize.plan.defaults import held_note
 from factorize.plan.entries import factored_entries
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.storage import write_atomic
@@ -102,6 +103,8 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
                               workers=quality["workers"], example=None if inputs is None else inputs.batches[0])
             spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum
         summary = plan_summary(result.plan)
+        if budget == budgets[0] and held_note(result.plan):
+            ui.note(held_note(result.plan))
         row = {"budget": budget, "params_before": result.params_before, "params_after": result.params_after,
                "kept_fraction": result.kept_fraction, "factored_layers": summary["factored"]}
         if inputs is not None:

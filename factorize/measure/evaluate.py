@@ -40,7 +40,7 @@ from factorize.measure.timing import latency_spread
 from factorize.model.count import count_bytes, count_parameters
 from factorize.model.feed import batch_size, primary_output, run_model, token_mask
 from factorize.model.hooks import forward_hooks
-from factorize.model.sites import Site, get_module, matrix_of
+from factorize.model.sites import Site, get_module, matrix_of, walk
 from factorize.plan.ranks import plan_summary
 from factorize.rewrite.layers import Factored, factored_layers
 
@@ -134,8 +134,10 @@ def evaluate(
         raise FactorizeError("no sample inputs to evaluate on", fix="give at least one batch of sample inputs")
     bar = _progress(o.progress)
     memo = {} if memo is None else memo
+    mac_names = [site.name for site in walk(original).sites]  # every command's MAC totals: count_macs
     if "reference" not in memo:  # the per-layer table's output positions are counted in the same pass
-        counted = [n for n in _report_names(compressed, plan, sites) if n not in memo.get("positions", {})]
+        wanted = dict.fromkeys([*_report_names(compressed, plan, sites), *mac_names])
+        counted = [n for n in wanted if n not in memo.get("positions", {})]
         memo["reference"], positions = _reference_run(original, batches, counted, bar)
         memo["positions"] = {**memo.get("positions", {}), **positions}
     ref = memo["reference"]
@@ -161,6 +163,7 @@ def evaluate(
         notes=list(o.notes) + nonfinite_notes(ref, cand),
         versions=versions(),
     )
+    report.mac_totals = count_macs(original, compressed, memo["positions"], mac_names)
     if plan:
         _describe_plan(report, plan)
     if o.perplexity or (o.perplexity is None and is_causal_lm(original) and token_ids(batches[0]) is not None):
@@ -302,6 +305,31 @@ def with_macs(model: nn.Module, sites: Sequence[Site], example: Any) -> list[Sit
                              never, fix="give an example that runs through these layers, exclude them, "
                                         "or use cost='params'")
     return [dataclasses.replace(s, macs_per_sample=s.params * positions[s.name]) for s in sites]
+
+
+MACS_COUNTED = ("every factorizable layer of the original model (linear, convolution, transposed projection, "
+                "embedding; a dense embedding is a lookup and counts 0), kept dense or not")
+
+
+def count_macs(original: nn.Module, compressed: nn.Module, positions: Mapping[str, int],
+               names: Sequence[str] | None = None) -> dict | None:
+    """Multiply-accumulates per sample of the two models, counted the one way every command reports them: over
+    every factorizable layer of ``original`` (``walk(original).sites``, or ``names``), each from its output
+    positions per sample (``positions``, from :func:`output_positions` on the first sample batch) and its rank
+    in ``compressed`` (dense: mn per position; factored: r(m + n), common practice; see :func:`_macs`). Returns
+    ``{"before", "after", "layers", "counted"}`` or None when no layer was counted."""
+    by_name = {site.name: site for site in walk(original).sites}
+    names = [n for n in (list(by_name) if names is None else names) if n in by_name and n in positions]
+    if not names:
+        return None
+    factored = factored_layers(compressed)
+    before = after = 0
+    for name in names:
+        site, pos = by_name[name], positions[name]
+        layer = factored.get(name)
+        before += _macs(site.kind, site.shape, None, pos)
+        after += _macs(site.kind, site.shape, None if layer is None else layer.rank, pos)
+    return {"before": before, "after": after, "layers": len(names), "counted": MACS_COUNTED}
 
 
 def _out_channels(module: nn.Module) -> int:

@@ -90,6 +90,9 @@ class Report:
     perplexity_after: float | None = None
     notes: list[str] = field(default_factory=list)  # warnings worth showing (e.g. random inputs)
     caution: str = CAUTION
+    # MACs per sample over every factorizable layer of the original (measure.evaluate.count_macs): {"before",
+    # "after", "layers", "counted"}; None: the totals are those of the layers in the table
+    mac_totals: dict | None = None
     stored_bytes_before: int | None = None  # stored bytes of the plan's layers (plans that record bytes)
     stored_bytes_after: int | None = None
     alternatives: list[Alternative] = field(default_factory=list)  # the plain ways at the chosen size
@@ -115,13 +118,19 @@ class Report:
 
     @property
     def macs_before(self) -> int | None:
-        """Multiply-accumulates per sample of every layer in the table (factored or kept dense), before; the
-        same set of layers as :attr:`macs_after`, so the two compare (None when not measured)."""
+        """Multiply-accumulates per sample before: over :attr:`mac_totals`' layers (every factorizable layer of
+        the original, as every command counts them) when measured so, else over every layer in the table
+        (factored or kept dense); the same set of layers as :attr:`macs_after`, so the two compare (None when
+        not measured)."""
+        if self.mac_totals is not None:
+            return self.mac_totals["before"]
         values = [layer.macs for layer in self.layers]
         return sum(values) if values and None not in values else None
 
     @property
     def macs_after(self) -> int | None:
+        if self.mac_totals is not None:
+            return self.mac_totals["after"]
         values = [layer.macs_after for layer in self.layers]
         return sum(values) if values and None not in values else None
 
@@ -245,6 +254,8 @@ class Report:
             lines += [f"Setup: {self.setup()}.", ""]
         lines += ["| quantity | before | after | change |", "| --- | ---: | ---: | ---: |"]
         lines += [f"| {q} | {b} | {a} | {c} |" for q, b, a, c in self.summary_rows()]
+        if self.mac_totals is not None:
+            lines += ["", f"MACs/sample counted over {self.mac_totals['counted']}."]
         if self.drift is not None:
             lines += ["", f"Output drift on {self.samples} sample inputs ({self.inputs or 'given inputs'}):", ""]
             lines += ["| measure | value |", "| --- | ---: |"]
@@ -283,7 +294,9 @@ class Report:
             rows.append(("stored bytes, layers in the plan", _bytes(self.stored_bytes_before),
                          _bytes(self.stored_bytes_after), _change(self.stored_bytes_before, self.stored_bytes_after)))
         if self.macs_before is not None:
-            rows.append(("MACs/sample, layers in the table", _int(self.macs_before), _int(self.macs_after),
+            counted = "layers in the table" if self.mac_totals is None else \
+                f"all {self.mac_totals['layers']} factorizable layers"
+            rows.append((f"MACs/sample, {counted}", _int(self.macs_before), _int(self.macs_after),
                          _change(self.macs_before, self.macs_after)))
         if self.accuracy_before is not None:
             rows.append(("accuracy", _pct(self.accuracy_before), _pct(self.accuracy_after),

@@ -378,6 +378,23 @@ def _make_site(name: str, module: nn.Module, kind: str, owners: dict[int, list[s
     )
 
 
+def input_embedding_names(model: nn.Module) -> list[str]:
+    """The qualified names of a transformers model's input embedding table (``model.get_input_embeddings()``)
+    and of every module sharing its weight (a tied output head), in module order; [] for a model without
+    ``get_input_embeddings`` (or one that raises, as transformers' base class does when a model defines none)."""
+    get = getattr(model, "get_input_embeddings", None)
+    if not callable(get):
+        return []
+    try:
+        table = get()
+    except (NotImplementedError, AttributeError, TypeError):
+        return []
+    weight = table._parameters.get("weight") if isinstance(table, nn.Module) else None
+    if weight is None:
+        return []
+    return [name for name, module in model.named_modules() if name and module._parameters.get("weight") is weight]
+
+
 def get_module(model: nn.Module, name: str) -> nn.Module:
     """The submodule at qualified ``name`` ("" is the model itself)."""
     return model.get_submodule(name) if name else model
