@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
 from typing import Any
 
 from torch import nn
@@ -37,17 +38,42 @@ from factorize.rewrite.apply import CompressResult, apply_plan, validate_plan
 from factorize.rounding import fits, stored_bytes
 
 
+@dataclass(frozen=True)
+class Measuring:
+    """How the alternatives are built and measured: ``calibration`` (a :class:`factorize.Calibration` to build
+    them with), and ``memo`` / ``pooling`` / ``kind`` as for :func:`factorize.measure.evaluate.evaluate` (share
+    ``memo`` with the call that measured the plan, so the original runs once)."""
+
+    calibration: Any = None
+    memo: dict = field(default_factory=dict, compare=False)
+    pooling: str | None = None
+    kind: str | None = None
+
+    @classmethod
+    def from_keywords(cls, given: Measuring | None = None, **keywords: Any) -> Measuring:
+        if given is not None and keywords:
+            raise FactorizeError("a Measuring object and its keywords were both given", list(keywords),
+                                 fix="pass one or the other")
+        if given is not None:
+            return given
+        unknown = [k for k in keywords if k not in ("calibration", "memo", "pooling", "kind")]
+        if unknown:
+            raise FactorizeError(f"unknown keyword(s): {', '.join(unknown)}",
+                                 fix="use calibration, memo, pooling, kind")
+        if keywords.get("memo") is None:
+            keywords.pop("memo", None)
+        return cls(**keywords)
+
+
 def compare_alternatives(
     model: nn.Module,
     result: CompressResult | nn.Module,
     batches: Iterable[Any],
+    measuring: Measuring | None = None,
     *,
     plan: Mapping | None = None,
-    calibration: Any = None,
     drift: Mapping | None = None,
-    memo: dict | None = None,
-    pooling: str | None = None,
-    kind: str | None = None,
+    **keywords: Any,
 ) -> list[Alternative]:
     """The plan and its plain alternatives at the same stored size, each with its drift on ``batches``.
 
@@ -55,17 +81,18 @@ def compare_alternatives(
         model: the original model (not modified).
         result: what :func:`factorize.compress` returned, or a compressed model (then ``plan=`` is its plan).
         batches: the sample inputs the report measures on (batch contract).
+        measuring: a :class:`Measuring`, or its keywords: ``calibration`` (a :class:`factorize.Calibration` to
+            build the alternatives with; default: the one a calibrated ``result`` carries; without one they are
+            built without calibration inputs, and say so), ``memo`` / ``pooling`` / ``kind``.
         plan: the plan of ``result`` when ``result`` is a model.
-        calibration: a :class:`factorize.Calibration` to build the alternatives with (default: the one a
-            calibrated ``result`` carries); without one they are built without calibration inputs, and say so.
         drift: the plan's own drift on ``batches`` when already measured (else it is measured here).
-        memo / pooling / kind: as for :func:`factorize.measure.evaluate.evaluate` (share ``memo`` with the call
-            that measured the plan, so the original runs once).
 
     Returns:
         Three :class:`~factorize.measure.alternatives.Alternative` records: int8, rank alone, rank and precision
         together, one of them ``this_plan``; an alternative that cannot be built has ``drift=None`` and a note.
     """
+    how = Measuring.from_keywords(measuring, **keywords)
+    calibration = how.calibration
     if isinstance(result, CompressResult):
         compressed, plan, spectra = result.model, result.plan, result.spectra
         calibration = calibration if calibration is not None else getattr(result, "calibration", None)
@@ -77,12 +104,13 @@ def compare_alternatives(
     batches = list(batches)
     if not batches:
         raise FactorizeError("no sample inputs to compare the alternatives on", fix="give at least one batch")
-    memo = {} if memo is None else memo  # the original's outputs, computed once for all
+    memo, pooling, kind = how.memo, how.pooling, how.kind  # memo: the original's outputs, computed once for all
     own = this_plan(model, compressed, plan, batches, drift=drift, memo=memo, pooling=pooling, kind=kind)
     measure = {"memo": memo, "pooling": pooling, "kind": kind, "calibration": calibration}
     other = "rank" if own.name == "joint" else "joint"
     out = [int8_alternative(model, plan, batches, **measure),
-           same_size_alternative(model, plan, batches, other, own.fraction, spectra=spectra, **measure), own]
+           same_size_alternative(model, plan, batches, other, own.fraction, Measuring(**measure), spectra=spectra),
+           own]
     return sorted(out, key=lambda a: ("int8", "rank", "joint").index(a.name))
 
 
@@ -156,13 +184,16 @@ def int8_alternative(model: nn.Module, plan: Mapping, batches: list, *, calibrat
                        note=", ".join(x for x in (how, _note(plan, calibration)) if x))
 
 
-def same_size_alternative(model: nn.Module, plan: Mapping, batches: list, which: str, fraction: float, *,
-                          calibration: Any = None, spectra: Mapping | None = None, memo: dict | None = None,
-                          pooling: str | None = None, kind: str | None = None) -> Alternative:
+def same_size_alternative(model: nn.Module, plan: Mapping, batches: list, which: str, fraction: float,
+                          measuring: Measuring | None = None, *, spectra: Mapping | None = None,
+                          **keywords: Any) -> Alternative:
     """Rank alone (``which="rank"``: ``cost="params"``) or rank and precision together (``"joint"``:
     ``cost="bytes"``) over ``plan``'s layers at ``fraction`` of their stored bytes, built (on ``calibration`` when
     given; ``spectra`` reused for rank alone) and measured on ``batches``. One that cannot be built (a size too
-    small for rank 1 everywhere) comes back with ``drift=None`` and the reason in its note."""
+    small for rank 1 everywhere) comes back with ``drift=None`` and the reason in its note. ``measuring``: a
+    :class:`Measuring` or its keywords."""
+    how = Measuring.from_keywords(measuring, **keywords)
+    calibration, memo, pooling, kind = how.calibration, how.memo, how.pooling, how.kind
     sites = validate_plan(model, plan)
     try:
         built, its_plan = _rank_or_joint(model, plan, sites, which, fraction, calibration, spectra or {}, batches[0])
@@ -171,7 +202,7 @@ def same_size_alternative(model: nn.Module, plan: Mapping, batches: list, which:
         return Alternative(which, before, after, budget=round(fraction, 6),
                            note="not built: " + str(err).splitlines()[0])
     before, after = plan_bytes(model, its_plan)
-    drift = _measured(model, built, its_plan, batches, {} if memo is None else memo, pooling, kind)
+    drift = _measured(model, built, its_plan, batches, memo, pooling, kind)
     return Alternative(which, before, after, drift=drift, budget=round(fraction, 6), note=_note(plan, calibration))
 
 
