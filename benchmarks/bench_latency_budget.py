@@ -70,6 +70,7 @@ def main(argv=None) -> None:
     ap.add_argument("--budgets", type=float, nargs="+", default=[0.7])
     ap.add_argument("--repeats", type=int, default=31)
     ap.add_argument("--skip-lm", action="store_true")
+    ap.add_argument("--skip-encoder", action="store_true")
     args = ap.parse_args(argv)
     torch.set_num_threads(1)
     from bench_default import encoder_case, lm_case, windows
@@ -102,7 +103,9 @@ def main(argv=None) -> None:
             f"`python benchmarks/bench_latency_budget.py --budgets {' '.join(map(str, args.budgets))}` -- one torch "
             f"thread, batch 32, {args.repeats} interleaved passes a side; load average at the end "
             f"{os.getloadavg()[0]:.1f} on 2 shared cores.", ""]
-    RESULTS.write_text("\n".join(head + lines) + "\n")
+    out = RESULTS if not (args.skip_encoder or args.skip_lm) else RESULTS.with_name(
+        f"latency_budget_{'lm' if args.skip_encoder else 'encoder'}.md")
+    out.write_text("\n".join(head + lines) + "\n")
     print("\n".join(lines))
 
 
