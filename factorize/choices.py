@@ -13,6 +13,7 @@ AWARE_METHODS = ("whiten", "scale")  # activation-aware factors from calibration
 SENSITIVITY_MODES = ("probes", "gradients", "both", "none")  # measured per-layer sensitivity (calibrated.search)
 DEFAULT_SENSITIVITY = "gradients"  # with calibration and whitening: the best measured default (BENCHMARKS.md)
 POOLINGS = ("mean", "cls", "last")  # one vector per sample from token states (measure.pooling)
+OUTPUT_KINDS = ("logits", "scores", "features", "embeddings")  # what a model's output holds (measure.drift)
 HEAL_SCHEDULES = ("constant", "cosine")  # learning-rate schedule of healing (training.heal)
 SOLVERS = ("exact", "gram", "randomized")  # the eigensolvers a calibrated decomposition can be asked for by name
 DEFAULT_SOLVER = "gram"  # with calibration, what method "auto" (or an activation-aware method) decomposes with

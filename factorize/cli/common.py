@@ -306,7 +306,7 @@ def alternatives(model, result, inputs, report, memo: dict, args, ui: UI, *, pla
     ui.note("measuring the plain alternatives at the same size (int8 alone, rank alone, rank and precision "
             "together); --no-alternatives skips this")
     found = compare_alternatives(model, result, inputs.batches, plan=plan, drift=report.drift, memo=memo,
-                                 pooling=getattr(args, "pooling", None))
+                                 pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None))
     if getattr(args, "heal", None):
         for a in found:
             if a.this_plan:

@@ -17,6 +17,7 @@ from factorize.choices import (
     COSTS,
     HEAL_SCHEDULES,
     METHODS,
+    OUTPUT_KINDS,
     POOLINGS,
     PRECISIONS,
     SENSITIVITY_MODES,
@@ -230,6 +231,11 @@ def _parents() -> _Parents:
     g.add_argument("--pooling", choices=POOLINGS,
                    help="judge per-token outputs by one vector per sample: mean (over the attention mask, as sentence "
                    "encoders embed), cls (first token) or last (last real token); default: the outputs as they are")
+    g.add_argument("--output-kind", choices=OUTPUT_KINDS,
+                   help="what the model's outputs hold, so drift is judged as their users judge them: logits (a "
+                   "classifier: top-1 agreement and KL), scores (top-1 only), features (relative L2 and cosine), "
+                   "embeddings (cosine, nearest neighbours, no argmax); default: embeddings with --pooling, next-token "
+                   "logits for a causal language model, else from the output's shape")
 
     policy = argparse.ArgumentParser(add_help=False)
     g = policy.add_argument_group("rank policy (one of --budget/--rank/--energy/--keep; default --budget 0.5)")
