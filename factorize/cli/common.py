@@ -294,7 +294,8 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
         if inputs is None:
             raise FactorizeError("--target-drift needs --inputs to measure drift on",
                                  fix="pass --inputs FILE with held-out samples (not the calibration file)")
-        extra.update(max_drift=target, heldout=inputs.batches)
+        extra.update(max_drift=target, heldout=inputs.batches,
+                     drift_metric=getattr(args, "drift_metric", None) or "relative_l2")
     return extra
 
 

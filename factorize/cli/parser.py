@@ -15,6 +15,7 @@ from factorize._version import __version__
 from factorize.choices import (
     AWARE_METHODS,
     COSTS,
+    DRIFT_METRICS,
     HEAL_SCHEDULES,
     METHODS,
     OUTPUT_KINDS,
@@ -319,6 +320,10 @@ def _quality_options(*, shrink: bool):
         g.add_argument("--target-drift", type=_nonnegative("--target-drift"), metavar="X",
                        help="with --calibration: the smallest budget whose relative L2 drift on --inputs stays <= X "
                        "(exit 1 with the closest budget when none does)")
+        g.add_argument("--drift-metric", choices=DRIFT_METRICS, default="relative_l2",
+                       help="what --target-drift limits: relative_l2 (default, over all outputs), cosine (1 - mean "
+                       "cosine per sample), or the tail: relative_l2_p95 (95th percentile of per-sample relative "
+                       "L2), cosine_p5 (1 - the 5th percentile of per-sample cosine)")
         g.add_argument("--heal", type=_positive_int("--heal"), metavar="STEPS",
                        help="after compressing, fine-tune the factors for STEPS steps to match the original on "
                        "--calibration (distillation); the best state on --inputs is kept")
