@@ -105,9 +105,7 @@ def output_drift(
             agree += int((a64.argmax(-1) == b64.argmax(-1)).sum())
             rows += a64.numel() // a64.shape[-1]
         if kind == "logits" and a64.dim() >= 2:
-            # KL(p || q) = sum p (log p - log q), p = softmax(reference), q = softmax(candidate)
-            lp, lq = torch.log_softmax(a64, -1), torch.log_softmax(b64, -1)  # (..., C)
-            kl_sum += float((lp.exp() * (lp - lq)).sum())
+            kl_sum += _kl_sum(a64.reshape(-1, a64.shape[-1]), b64.reshape(-1, b64.shape[-1]))
     cos = torch.cat(cosines)
     result = {
         "relative_l2": safe_ratio(math.sqrt(diff_sq), math.sqrt(ref_sq)),
@@ -128,6 +126,17 @@ def output_drift(
         if kind == "logits":
             result["kl"] = kl_sum / rows
     return result
+
+
+def _kl_sum(a: torch.Tensor, b: torch.Tensor, rows: int = 1024) -> float:
+    """Sum over rows of KL(softmax(a) || softmax(b)) = sum p (log p - log q), p = softmax(reference), q =
+    softmax(candidate) (Kullback & Leibler 1951), a block of rows at a time so that a language model's
+    (tokens, vocabulary) scores need no extra copies of their full size."""
+    total = 0.0
+    for i in range(0, a.shape[0], rows):
+        lp, lq = torch.log_softmax(a[i:i + rows], -1), torch.log_softmax(b[i:i + rows], -1)  # (rows, C)
+        total += float((lp.exp() * (lp - lq)).sum())
+    return total
 
 
 def _positions_mask(mask: torch.Tensor | None, out: torch.Tensor) -> torch.Tensor | None:
