@@ -13,6 +13,11 @@ AWARE_METHODS = ("whiten", "scale")  # activation-aware factors from calibration
 SENSITIVITY_MODES = ("probes", "gradients", "both", "none")  # measured per-layer sensitivity (calibrated.search)
 DEFAULT_SENSITIVITY = "gradients"  # with calibration and whitening: the best measured default (BENCHMARKS.md)
 POOLINGS = ("mean", "cls", "last")  # one vector per sample from token states (measure.pooling)
+# what a drift search (max_drift, --target-drift) keeps under the limit (calibrated.search.measure_drift): relative
+# L2 over all outputs, 1 - mean cosine, or the tail: the 95th percentile of per-sample relative L2, 1 - the 5th
+# percentile of per-sample cosine
+DRIFT_METRICS = ("relative_l2", "cosine", "relative_l2_p95", "cosine_p5")
+OUTPUT_KINDS = ("logits", "scores", "features", "embeddings")  # what a model's output holds (measure.drift)
 HEAL_SCHEDULES = ("constant", "cosine")  # learning-rate schedule of healing (training.heal)
 SOLVERS = ("exact", "gram", "randomized")  # the eigensolvers a calibrated decomposition can be asked for by name
 DEFAULT_SOLVER = "gram"  # with calibration, what method "auto" (or an activation-aware method) decomposes with

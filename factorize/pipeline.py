@@ -126,8 +126,9 @@ def compress(
             ``sequential``: factor layers in forward order so later layers absorb earlier errors;
             ``sensitivity``: allocate ranks by measured final-output sensitivity: True or ``"both"`` (gradients,
             then probes), ``"gradients"`` or ``"probes"`` alone; ``max_drift``: the smallest budget whose drift on
-            ``heldout`` stays under this (``drift_metric`` ``"relative_l2"`` or ``"cosine"``), raising
-            ``DriftLimitExceeded`` when unreachable; ``output_fn``: ``output_fn(output, batch) -> tensor``
+            ``heldout`` stays under this (``drift_metric`` ``"relative_l2"``, ``"cosine"``, or the tail:
+            ``"relative_l2_p95"``, ``"cosine_p5"``), raising ``DriftLimitExceeded`` when unreachable;
+            ``output_fn``: ``output_fn(output, batch) -> tensor``
             compared for sensitivity and drift (default: the primary output); and the other fields of
             :class:`~factorize.calibrated.options.CalibrationOptions` (alpha, center, ridge, fractions, ...).
 

@@ -15,12 +15,17 @@ from dataclasses import dataclass
 from typing import Any
 
 from factorize.calibrated.aware import DEFAULT_ALPHA, REFIT_RIDGE, AwareFit
-from factorize.choices import AWARE_METHODS, DEFAULT_SENSITIVITY, SENSITIVITY_MODES, calibrated_methods
+from factorize.choices import (
+    AWARE_METHODS,
+    DEFAULT_SENSITIVITY,
+    DRIFT_METRICS,
+    SENSITIVITY_MODES,
+    calibrated_methods,
+)
 from factorize.errors import FactorizeError
 from factorize.execution import Execution
 from factorize.plan.policy import POLICY_KEYWORDS, Policy, resolve_policy
 
-DRIFT_METRICS = ("relative_l2", "cosine")
 SOLVERS = ("auto", "exact", "gram", "randomized")
 DEFAULT_BUDGETS = (0.05, 0.95)  # drift search range: fractions of the sites' parameters (or MACs)
 DEFAULT_TOLERANCE = 0.01  # stop bisecting when the bracket is this narrow

@@ -18,7 +18,9 @@ ranks, rebuilds the factors from the stored spectra and runs the held-out batche
 Drift, the default metric (``metric="relative_l2"``): ||y - y'||_F / ||y||_F over all held-out outputs (padded
 tokens left out; the output is ``output_fn(output, batch)`` when given, else the primary output), the same
 number ``--max-drift`` checks on the command line. ``metric="cosine"``: 1 - mean
-cosine similarity per sample (see :func:`factorize.measure.drift.output_drift`).
+cosine similarity per sample (see :func:`factorize.measure.drift.output_drift`). The tail, so that no held-out
+sample is left far behind: ``"relative_l2_p95"``, the 95th percentile of the per-sample relative L2 error, and
+``"cosine_p5"``, 1 - the 5th percentile of the per-sample cosine.
 
 Search: bisection on the budget between ``budgets[0]`` and ``budgets[1]`` down to ``tolerance``, assuming drift
 does not grow with the budget (true of the predicted drift; measured drift can wiggle, so the answer is the
@@ -149,7 +151,8 @@ def measure_drift(
     """Drift of ``model`` from precomputed ``reference`` outputs on ``batches`` (see the module docstring)."""
     cand = run_outputs(model, batches, output_fn)
     d = output_drift(reference, cand, kind="features", masks=[token_mask(b) for b in batches])
-    return d["relative_l2"] if metric == "relative_l2" else 1.0 - d["cosine_mean"]
+    return {"relative_l2": d["relative_l2"], "cosine": 1.0 - d["cosine_mean"], "relative_l2_p95": d["sample_l2_p95"],
+            "cosine_p5": 1.0 - d["cosine_p5"]}[metric]
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -411,17 +414,19 @@ def search_drift(
 
     Args:
         model: the trained model; not modified unless ``inplace=True``.
-        max_drift: the limit, in ``drift_metric`` units (relative L2 by default; 1 - mean cosine for ``"cosine"``).
+        max_drift: the limit, in ``drift_metric`` units (relative L2 by default; 1 - mean cosine for ``"cosine"``;
+            the tail for ``"relative_l2_p95"`` and ``"cosine_p5"``, see the module docstring).
         calibration: batches for the statistics (and the sensitivity probes).
         heldout: batches to measure drift on; None measures on the calibration batches (optimistic: the
             result's ``search.heldout`` is then False).
         policy: a :class:`~factorize.plan.policy.Policy` with ``budget=`` (each budget tried replaces it), or
             its keywords without a rank rule (include, exclude, overrides, multiple, cost, method, seed).
         options: :class:`~factorize.calibrated.options.CalibrationOptions` or its fields as keywords:
-            drift_metric (or ``metric=``: ``"relative_l2"`` or ``"cosine"``); budgets (the (smallest, largest)
-            budget searched); tolerance (bisection stops at this bracket width); sequential (build the final
-            model sequentially: the search itself uses per-layer factors; the sequential model's drift is
-            re-measured, and it is kept only if it drifts less); refit / refit_ridge; and those of
+            drift_metric (or ``metric=``: ``"relative_l2"``, ``"cosine"``, ``"relative_l2_p95"``,
+            ``"cosine_p5"``); budgets (the (smallest, largest) budget searched); tolerance (bisection stops at
+            this bracket width); sequential (build the final model sequentially: the search itself uses per-layer
+            factors; the sequential model's drift is re-measured, and it is kept only if it drifts less);
+            refit / refit_ridge; and those of
             :class:`Calibration` (method, sensitivity, output_fn, ...); ``output_fn`` also defines the output the
             drift is measured on.
         inplace: rewrite ``model`` itself.

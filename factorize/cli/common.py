@@ -294,7 +294,8 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
         if inputs is None:
             raise FactorizeError("--target-drift needs --inputs to measure drift on",
                                  fix="pass --inputs FILE with held-out samples (not the calibration file)")
-        extra.update(max_drift=target, heldout=inputs.batches)
+        extra.update(max_drift=target, heldout=inputs.batches,
+                     drift_metric=getattr(args, "drift_metric", None) or "relative_l2")
     return extra
 
 
@@ -306,7 +307,7 @@ def alternatives(model, result, inputs, report, memo: dict, args, ui: UI, *, pla
     ui.note("measuring the plain alternatives at the same size (int8 alone, rank alone, rank and precision "
             "together); --no-alternatives skips this")
     found = compare_alternatives(model, result, inputs.batches, plan=plan, drift=report.drift, memo=memo,
-                                 pooling=getattr(args, "pooling", None))
+                                 pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None))
     if getattr(args, "heal", None):
         for a in found:
             if a.this_plan:

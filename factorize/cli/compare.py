@@ -47,7 +47,8 @@ def run(args, ui: UI) -> dict:
     report = evaluate(loaded.model, other, inputs.batches, labels=inputs.labels, plan=plan,
                       latency_repeats=repeats(args, 7), title="factorize compare",
                       model_name=f"{loaded.source} vs {args.against}", inputs=inputs.source, notes=inputs.notes,
-                      progress=ui.progress, pooling=getattr(args, "pooling", None), memo=memo)
+                      progress=ui.progress, pooling=getattr(args, "pooling", None),
+                      kind=getattr(args, "output_kind", None), memo=memo)
     if plan is not None and not getattr(args, "no_alternatives", False):  # a factorize checkpoint: its plan is known
         report.alternatives = alternatives(loaded.model, other, inputs, report, memo, args, ui, plan=plan)
     if report_path is not None:

@@ -15,8 +15,10 @@ from factorize._version import __version__
 from factorize.choices import (
     AWARE_METHODS,
     COSTS,
+    DRIFT_METRICS,
     HEAL_SCHEDULES,
     METHODS,
+    OUTPUT_KINDS,
     POOLINGS,
     PRECISIONS,
     SENSITIVITY_MODES,
@@ -230,6 +232,11 @@ def _parents() -> _Parents:
     g.add_argument("--pooling", choices=POOLINGS,
                    help="judge per-token outputs by one vector per sample: mean (over the attention mask, as sentence "
                    "encoders embed), cls (first token) or last (last real token); default: the outputs as they are")
+    g.add_argument("--output-kind", choices=OUTPUT_KINDS,
+                   help="what the model's outputs hold, so drift is judged as their users judge them: logits (a "
+                   "classifier: top-1 agreement and KL), scores (top-1 only), features (relative L2 and cosine), "
+                   "embeddings (cosine, nearest neighbours, no argmax); default: embeddings with --pooling, next-token "
+                   "logits for a causal language model, else from the output's shape")
 
     policy = argparse.ArgumentParser(add_help=False)
     g = policy.add_argument_group("rank policy (one of --budget/--rank/--energy/--keep; default --budget 0.5)")
@@ -313,6 +320,10 @@ def _quality_options(*, shrink: bool):
         g.add_argument("--target-drift", type=_nonnegative("--target-drift"), metavar="X",
                        help="with --calibration: the smallest budget whose relative L2 drift on --inputs stays <= X "
                        "(exit 1 with the closest budget when none does)")
+        g.add_argument("--drift-metric", choices=DRIFT_METRICS, default="relative_l2",
+                       help="what --target-drift limits: relative_l2 (default, over all outputs), cosine (1 - mean "
+                       "cosine per sample), or the tail: relative_l2_p95 (95th percentile of per-sample relative "
+                       "L2), cosine_p5 (1 - the 5th percentile of per-sample cosine)")
         g.add_argument("--heal", type=_positive_int("--heal"), metavar="STEPS",
                        help="after compressing, fine-tune the factors for STEPS steps to match the original on "
                        "--calibration (distillation); the best state on --inputs is kept")

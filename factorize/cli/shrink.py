@@ -120,7 +120,7 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
         report = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
                           latency_repeats=repeats(args, 7), title="factorize shrink", model_name=loaded.source,
                           inputs=inputs.source, notes=notes, progress=ui.progress,
-                          pooling=getattr(args, "pooling", None), memo=memo)
+                          pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None), memo=memo)
         max_drift_check(args, report)
         if not getattr(args, "no_alternatives", False):
             report.alternatives = alternatives(loaded.model, result, inputs, report, memo, args, ui)

@@ -110,7 +110,7 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
         if inputs is not None:
             rep = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
                            latency_repeats=repeats(args, 0), model_name=loaded.source, inputs=inputs.source,
-                           memo=memo, pooling=getattr(args, "pooling", None))
+                           memo=memo, pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None))
             row.update({k: rep.drift.get(k) for k in DRIFT_KEYS})
             row.update({k: getattr(rep, k) for k in REPORT_KEYS})
         else:
@@ -120,7 +120,7 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
         rows.append(row)
     if opts.cost == "bytes" and inputs is not None:  # the int8 point: the same layers for every budget
         int8 = int8_alternative(loaded.model, result.plan, inputs.batches, calibration=calib, memo=memo,
-                                pooling=getattr(args, "pooling", None))
+                                pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None))
         references["int8"] = int8.to_json()
     return rows, None if inputs is None else inputs.source
 
@@ -132,7 +132,8 @@ def _bytes_row(args, model, plan, inputs, calib, spectra, memo) -> dict:
     row = {"bytes_before": before, "bytes_after": after, "bytes_fraction": after / before if before else 1.0}
     if inputs is not None:
         rank = same_size_alternative(model, plan, inputs.batches, "rank", row["bytes_fraction"], calibration=calib,
-                                     spectra=spectra, memo=memo, pooling=getattr(args, "pooling", None))
+                                     spectra=spectra, memo=memo, pooling=getattr(args, "pooling", None),
+                                     kind=getattr(args, "output_kind", None))
         row["rank_only_bytes_fraction"] = rank.fraction if rank.value is not None else None
         row["rank_only_relative_l2"] = rank.value
     return row

@@ -143,10 +143,15 @@ def evaluate(
     ref = memo["reference"]
     cand = run_model(compressed, bar(batches, "compressed"))
     masks = [token_mask(b) for b in batches]
+    kind = o.kind
     if o.pooling is not None:  # one vector per sample on both sides; the mask has been used by the pooling
         ref = [pool(out, b, o.pooling) for out, b in zip(ref, batches)]
         cand = [pool(out, b, o.pooling) for out, b in zip(cand, batches)]
         masks = [None] * len(batches)
+        kind = "embeddings" if kind is None else kind  # an encoder's pooled vectors: no argmax over dimensions
+    lm = o.perplexity or (o.perplexity is None and is_causal_lm(original) and token_ids(batches[0]) is not None)
+    if lm and kind is None and ref[0].dim() == 3:
+        kind = "logits"  # next-token scores: top-1 is next-token agreement, over the unmasked positions
     report = Report(
         title=o.title,
         model=o.model_name,
@@ -155,7 +160,7 @@ def evaluate(
         bytes_before=count_bytes(original),
         bytes_after=count_bytes(compressed),
         layers=layer_reports(original, compressed, plan=plan, batch=batches[0], sites=sites, memo=memo),
-        drift=output_drift(ref, cand, kind=o.kind, masks=masks),
+        drift=output_drift(ref, cand, kind=kind, masks=masks),
         samples=sum(int(out.shape[0]) for out in ref),
         inputs=o.inputs,
         policy=dict(plan["policy"]) if plan and "policy" in plan else None,
@@ -166,10 +171,11 @@ def evaluate(
     report.mac_totals = count_macs(original, compressed, memo["positions"], mac_names)
     if plan:
         _describe_plan(report, plan)
-    if o.perplexity or (o.perplexity is None and is_causal_lm(original) and token_ids(batches[0]) is not None):
+    if lm:
         if "perplexity" not in memo:
             memo["perplexity"] = perplexity_of(original, batches)
         report.perplexity_before, report.perplexity_after = memo["perplexity"], perplexity_of(compressed, batches)
+    report.judged_kind, report.judged_as, report.judged_hint = judgement(kind, o.pooling, bool(lm), ref[0])
     if labels is not None:
         report.accuracy_before = accuracy(ref, labels)
         report.accuracy_after = accuracy(cand, labels)
@@ -181,6 +187,36 @@ def evaluate(
         report.latency_repeats, report.latency_batch = o.latency_repeats, batch_size(batches[0])
         report.latency_threads = torch.get_num_threads()
     return report
+
+
+def judgement(kind: str | None, pooling: str | None, perplexity: bool,
+              output: torch.Tensor) -> tuple[str, str, str]:
+    """What kind of model the report judged (how its users judge it) and how to change that: (kind, label, hint),
+    the kind one of ``"embeddings"``, ``"language model"``, ``"logits"``, ``"scores"``, ``"features"``.
+
+    Given: the output kind passed to :func:`output_drift` (None: from the shape), the pooling, whether perplexity
+    was measured, and the first batch of the original's (pooled) outputs."""
+    if kind == "embeddings" and pooling is not None:
+        return ("embeddings", f"sentence encoder (--pooling {pooling})",
+                "judged by the cosine of the pooled embeddings and which inputs stay nearest; other poolings: "
+                "--pooling mean / cls / last; drop --pooling to compare the per-token outputs as they are "
+                "(Python: pooling=)")
+    if kind == "embeddings":
+        return ("embeddings", "embedding model (--output-kind embeddings)",
+                "judged by cosine and which inputs stay nearest; --output-kind chooses another kind (Python: kind=)")
+    if perplexity:
+        return ("language model", "language model (next-token perplexity)",
+                "judged by the perplexity ratio and next-token agreement; to judge one vector per sequence instead, "
+                "--pooling last (Python: pooling='last', perplexity=False)")
+    decided = kind is None
+    kind = kind or ("logits" if output.dim() == 2 and output.shape[1] > 1 else "features")
+    how = f"a 2-D output with {output.shape[1]} columns read as class scores" if decided and kind == "logits" else \
+        ("by its output's shape" if decided else f"--output-kind {kind}")
+    label = {"logits": "classifier", "scores": "scorer (top-1 only)",
+             "features": "regressor or other outputs (relative L2 and cosine)"}[kind]
+    return (kind, f"{label} ({how})",
+            "--output-kind logits / scores / features / embeddings chooses another kind (Python: kind=); per-token "
+            "encoder outputs: --pooling mean")
 
 
 def _reference_run(original: nn.Module, batches: list, names: list[str], bar) -> tuple[list[torch.Tensor], dict]:

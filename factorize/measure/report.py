@@ -96,6 +96,11 @@ class Report:
     stored_bytes_before: int | None = None  # stored bytes of the plan's layers (plans that record bytes)
     stored_bytes_after: int | None = None
     alternatives: list[Alternative] = field(default_factory=list)  # the plain ways at the chosen size
+    # how the model was judged (measure.evaluate.judgement): "embeddings", "language model", "logits", "scores" or
+    # "features" ("" when not said); the words shown, and how the user changes it
+    judged_kind: str = ""
+    judged_as: str = ""
+    judged_hint: str = ""
 
     def alternatives_verdict(self) -> str | None:
         """The sentence saying which of the alternatives is best (:func:`factorize.measure.alternatives.verdict`)."""
@@ -164,20 +169,27 @@ class Report:
     def advice(self) -> list[str]:
         """Plain-words warnings when the measured drift is high, each naming the next step (empty when it is not).
 
-        The thresholds are judgement calls, not published constants: a mean cosine under 0.95, a relative L2
-        error over 0.2, top-1 agreement under 95%, an accuracy loss over 1 point, or a perplexity ratio over
-        1.10 is a change a user should look at before shipping.
+        The thresholds are judgement calls, not published constants: a mean cosine under 0.95 (for an encoder's
+        embeddings also a worst sample under 0.80), a relative L2 error over 0.2, top-1 agreement under 95% (not
+        for language models, judged by perplexity), an accuracy loss over 1 point, or a perplexity ratio over 1.10
+        is a change a user should look at before shipping.
         """
         d = self.drift or {}
         if any(isinstance(v, float) and not math.isfinite(v) for v in d.values()):
             return ["Non-finite drift: NaN or Inf in the outputs, so no drift number here can be trusted. Next step: "
                     "look for NaN/Inf in the weights (the warning names them) and in the sample inputs."]
         found = []
-        if d.get("cosine_mean") is not None and "top1_agreement" not in d and d["cosine_mean"] < 0.95:
+        if self.judged_kind == "embeddings":  # what encoder users look at: the direction of each embedding
+            if d.get("cosine_mean") is not None and d["cosine_mean"] < 0.95:
+                found.append(f"mean cosine similarity to the original is {d['cosine_mean']:.3f}")
+            if d.get("cosine_min") is not None and d["cosine_min"] < 0.80:
+                found.append(f"the worst sample's cosine similarity is {d['cosine_min']:.3f}")
+        elif d.get("cosine_mean") is not None and "top1_agreement" not in d and d["cosine_mean"] < 0.95:
             found.append(f"mean cosine similarity to the original is {d['cosine_mean']:.3f}")
         elif d.get("relative_l2") is not None and "top1_agreement" not in d and not d["relative_l2"] <= 0.2:
             found.append(f"relative L2 error of the outputs is {d['relative_l2']:.3g}")
-        if d.get("top1_agreement") is not None and d["top1_agreement"] < 0.95:
+        if d.get("top1_agreement") is not None and d["top1_agreement"] < 0.95 \
+                and self.judged_kind != "language model":
             found.append(f"top-1 agreement with the original is {100 * d['top1_agreement']:.1f}%")
         if self.accuracy_before is not None and self.accuracy_after is not None \
                 and self.accuracy_after < self.accuracy_before - 0.01:
@@ -260,6 +272,8 @@ class Report:
             lines += ["", f"Output drift on {self.samples} sample inputs ({self.inputs or 'given inputs'}):", ""]
             lines += ["| measure | value |", "| --- | ---: |"]
             lines += [f"| {k} | {v} |" for k, v in self.drift_rows()]
+            if self.judged_line():
+                lines += ["", f"{self.judged_line()}."]
         if self.layers:
             lines += ["", "| layer | kind | shape | rank | params | params after | weight error | MACs/sample after |",
                       "| --- | --- | --- | ---: | ---: | ---: | ---: | ---: |"]
@@ -316,12 +330,23 @@ class Report:
         return rows
 
     def drift_rows(self) -> list[tuple[str, str]]:
+        """(measure, value) rows; the headline's spread over samples (5th percentile and worst beside the mean) is
+        per-sample cosine for embeddings and features, per-sample relative L2 for the others."""
         d = self.drift or {}
+        cosine_headline = self.judged_kind in ("embeddings", "features") or (
+            not self.judged_kind and "top1_agreement" not in d)
+        agreement = "next-token agreement" if self.judged_kind == "language model" else "top-1 agreement"
         names = {
             "relative_l2": "relative L2 error",
+            **({} if cosine_headline else {"sample_l2_mean": "relative L2 per sample, mean",
+                                           "sample_l2_p95": "relative L2 per sample, 95th percentile",
+                                           "sample_l2_max": "relative L2 per sample, worst sample"}),
             "cosine_mean": "cosine similarity, mean",
+            **({"cosine_p5": "cosine similarity, 5th percentile"} if cosine_headline else {}),
             "cosine_min": "cosine similarity, worst sample",
-            "top1_agreement": "top-1 agreement",
+            "neighbour_agreement": f"nearest-neighbour agreement ({d.get('neighbour_samples', 0):g} inputs)",
+            "similarity_spearman": "rank correlation of pairwise similarities (Spearman)",
+            "top1_agreement": agreement,
             "kl": "KL divergence (nats)",
         }
         rows = []
@@ -329,6 +354,10 @@ class Report:
             if key in d and d[key] is not None:
                 rows.append((label, _drift_value(key, d[key])))
         return rows
+
+    def judged_line(self) -> str | None:
+        """One sentence saying which kind of model the drift was judged as, and how to change that."""
+        return f"judged as: {self.judged_as}; {self.judged_hint}" if self.judged_as else None
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -355,6 +384,8 @@ def render_rich(report: Report, console: Console, *, caution: bool = True) -> No
         for row in report.drift_rows():
             drift.add_row(*row)
         print_table(console, drift)
+        if report.judged_line():
+            print_words(console, report.judged_line())
     if report.layers:
         layers = Table(title="layers", title_justify="left")
         for name, justify in (("layer", "left"), ("kind", "left"), ("shape", "left"), ("rank", "right"),
@@ -421,9 +452,9 @@ def _stored_cells(layer: LayerReport) -> list[str]:
 
 
 def _drift_value(key: str, v: float) -> str:
-    if key == "top1_agreement":
+    if key in ("top1_agreement", "neighbour_agreement"):
         return _pct(v)
-    if key.startswith("cosine"):
+    if key.startswith("cosine") or key == "similarity_spearman":
         return f"{v:.6f}"
     return f"{v:.4g}"
 

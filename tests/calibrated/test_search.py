@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 import torch
 
@@ -58,6 +59,19 @@ def test_cosine_metric_and_sequential_final_model(digits):
         d = output_drift([model(x) for x in held], [result.model(x) for x in held], kind="features")
     assert 1 - d["cosine_mean"] == pytest.approx(s.drift, rel=1e-4, abs=1e-7) and s.drift <= 0.02
     assert any(p.note == "sequential" for p in s.points)
+
+
+def test_tail_metric_limits_the_95th_percentile_of_per_sample_drift(digits):
+    model, cal, held, _ = digits
+    result = search_drift(model, 0.3, cal, held, metric="relative_l2_p95", tolerance=0.05)
+    s = result.search
+    with torch.no_grad():  # per-sample relative L2 and its 95th percentile, recomputed with numpy
+        a = torch.cat([model(x) for x in held]).double().numpy()
+        b = torch.cat([result.model(x) for x in held]).double().numpy()
+    per_sample = np.linalg.norm(a - b, axis=1) / np.linalg.norm(a, axis=1)
+    assert np.percentile(per_sample, 95) == pytest.approx(s.drift, rel=1e-4) and s.drift <= 0.3
+    # measured on these digits (not a theorem): the tail is the stricter limit, so it needs no smaller budget
+    assert search_drift(model, 0.3, cal, held, tolerance=0.05).search.budget <= s.budget
 
 
 def test_compress_calibrated_budget_and_sensitivity(digits):

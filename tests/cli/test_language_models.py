@@ -50,6 +50,10 @@ def test_text_files_calibrate_and_evaluate_a_causal_lm_with_perplexity(tmp_path)
     report = json.loads(out.getvalue())["report"]
     assert report["perplexity_before"] > 1 and report["perplexity_after"] > 1
     assert report["perplexity_ratio"] == pytest.approx(report["perplexity_after"] / report["perplexity_before"])
+    # judged as a language model: next-token agreement over the real tokens (the argmax over the vocabulary at
+    # each position), beside the perplexity ratio; the per-sequence relative L2 tail is shown with it
+    assert report["judged_kind"] == "language model" and 0 < report["drift"]["top1_agreement"] <= 1
+    assert report["drift"]["sample_l2_mean"] <= report["drift"]["sample_l2_max"]
 
 
 def test_text_inputs_for_a_model_without_tokenizer_is_a_clear_error(tmp_path):
@@ -75,3 +79,5 @@ def test_pooling_option_judges_the_pooled_output(tmp_path):
         reports[pooling] = json.loads(out.getvalue())["report"]
     assert reports["last"]["drift"]["relative_l2"] != pytest.approx(reports[None]["drift"]["relative_l2"])
     assert reports["last"]["samples"] == reports[None]["samples"] == 12
+    # pooled, the last token's state is an embedding: no argmax over its dimensions (before, top-1 was shown)
+    assert reports["last"]["judged_kind"] == "embeddings" and "top1_agreement" not in reports["last"]["drift"]

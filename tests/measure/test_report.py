@@ -94,3 +94,30 @@ def test_report_describes_how_it_was_made() -> None:
         assert part in line
     assert line in r.to_markdown() and r.to_json()["setup"] == line
     assert str(r) == r.to_markdown()  # print(report) is readable, not a dataclass dump
+
+
+def test_encoder_verdict_uses_mean_and_worst_cosine_and_never_top1() -> None:
+    # the thresholds (mean 0.95, worst 0.80) are the report's judgement calls, documented in Report.advice
+    drift = {"relative_l2": 0.1, "cosine_mean": 0.97, "cosine_min": 0.6, "cosine_p5": 0.7, "samples": 40,
+             "neighbour_agreement": 0.8, "similarity_spearman": 0.9, "neighbour_samples": 40}
+    rep = _report(drift=drift, accuracy_before=None, accuracy_after=None, judged_kind="embeddings",
+                  judged_as="sentence encoder (--pooling mean)", judged_hint="drop --pooling to compare tokens")
+    (line,) = rep.advice()
+    assert "worst sample's cosine similarity is 0.600" in line and "mean cosine" not in line and "top-1" not in line
+    md = rep.to_markdown()
+    assert "| cosine similarity, 5th percentile | 0.700000 |" in md
+    assert "| nearest-neighbour agreement (40 inputs) | 80.00% |" in md and "relative L2 per sample" not in md
+    assert "judged as: sentence encoder (--pooling mean); drop --pooling to compare tokens." in md
+    assert rep.to_json()["judged_kind"] == "embeddings"
+    assert _report(drift={**drift, "cosine_min": 0.85}, accuracy_before=None, judged_kind="embeddings").advice() == []
+
+
+def test_classifier_and_language_model_show_the_per_sample_l2_tail() -> None:
+    tail = {"sample_l2_mean": 0.03, "sample_l2_p95": 0.08, "sample_l2_max": 0.2, "cosine_p5": 0.99}
+    rep = _report(drift={**_report().drift, **tail}, judged_kind="logits")
+    rows = dict(rep.drift_rows())
+    assert rows["relative L2 per sample, 95th percentile"] == "0.08" and "cosine similarity, 5th percentile" not in rows
+    lm = _report(drift={**_report().drift, **tail, "top1_agreement": 0.6, "kl": 0.01}, accuracy_before=None,
+                 perplexity_before=10.0, perplexity_after=10.5, judged_kind="language model")
+    assert "next-token agreement" in dict(lm.drift_rows())
+    assert lm.advice() == []  # judged by the perplexity ratio (1.05), not by next-token argmax agreement
