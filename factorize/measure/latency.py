@@ -36,7 +36,7 @@ import torch
 from torch import nn
 
 from factorize.errors import FactorizeError
-from factorize.measure.speed import record_input_shapes
+from factorize.measure.speed import probe_input, record_input_shapes
 from factorize.measure.timing import latency_spread, paired_samples
 from factorize.model.sites import Site, get_module, matrix_of
 from factorize.plan.forms import (
@@ -57,13 +57,6 @@ TOLERANCE = 0.8  # a measured ratio within [0.8, 0.9] x budget is taken as it is
 REPEATS = 21  # interleaved timed calls per pair
 
 
-def _probe(layer: nn.Module, shape: tuple[int, ...], ref: torch.Tensor) -> torch.Tensor:
-    g = torch.Generator().manual_seed(0)
-    if isinstance(layer, nn.Embedding):
-        return torch.randint(0, layer.num_embeddings, shape, generator=g)
-    return torch.randn(shape, generator=g).to(device=ref.device, dtype=ref.dtype)
-
-
 def _factored_at(module: nn.Module, kind: str, rank: int) -> nn.Module:
     layer = build_factored(module, kind, rank)
     with torch.no_grad():
@@ -77,7 +70,7 @@ def time_forms(module: nn.Module, kind: str, shape: tuple[int, ...], ranks: Sequ
                clock: Callable[[], float] = time.perf_counter) -> tuple[float, dict[int, float]]:
     """(dense ms, rank -> factored ms) of one layer on an input of ``shape``, each pair interleaved; the fastest
     call of each, the least disturbed estimate on a shared machine (common practice in benchmarking)."""
-    x = _probe(module, shape, module.weight)
+    x = probe_input(module, shape, shape[0], module.weight)
     if not ranks:
         d, _ = paired_samples(lambda: module(x), lambda: module(x), repeats=repeats, clock=clock)
         return float(min(d)), {}

@@ -53,7 +53,9 @@ def record_input_shapes(model: nn.Module, names: Sequence[str], batch) -> dict[s
     return shapes
 
 
-def _probe_input(layer: nn.Module, shape: tuple[int, ...], batch: int, ref: torch.Tensor) -> torch.Tensor:
+def probe_input(layer: nn.Module, shape: tuple[int, ...], batch: int, ref: torch.Tensor) -> torch.Tensor:
+    """A seeded sample input of ``shape`` with its batch dimension set to ``batch``: token ids for an embedding
+    (plain or factored), else Gaussian values in ``ref``'s dtype and device."""
     shape = (batch, *shape[1:])
     if isinstance(layer, nn.Embedding) or (isinstance(layer, Factored) and layer.kind == "embedding"):
         n = layer.num_embeddings if isinstance(layer, nn.Embedding) else layer.first.num_embeddings
@@ -83,7 +85,7 @@ def time_layers(
             continue
         dense = get_module(original, name)
         for b in batches:
-            x = _probe_input(dense, shape, b, fac.second.weight)
+            x = probe_input(dense, shape, b, fac.second.weight)
             d, f = paired_ms(lambda: dense(x), lambda: fac(x), repeats=repeats, clock=clock)  # noqa: B023 - timed now
             out.append(LayerTiming(name, b, d, f))
     return out

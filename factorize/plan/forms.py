@@ -302,24 +302,34 @@ def joint_plan(
     within ``budget_cost``.
     Sites without candidates (a weight shared by several modules) stay dense as they are."""
     from factorize.plan.joint import solve
+
+    selection = solve(priced.candidates, budget_cost)
+    why = (f"{cost} budget: least predicted error over {sum(len(c) for c in priced.candidates.values())} "
+           f"candidate forms{'' if selection.exact else ' (within the certified gap)'}")
+    return plan_of(sites, selection.chosen, priced, spectra, why, policy=policy, method=method,
+                   selection={"exact": selection.exact, "cost": cost, cost: selection.cost,
+                              f"budget_{cost}": budget_cost, "predicted_error": selection.error})
+
+
+def plan_of(sites: Sequence[Site], chosen: Mapping[str, Candidate], priced: Priced, spectra: Mapping[str, Spectrum],
+            why: str, *, policy: Mapping, method: str, selection: Mapping) -> dict:
+    """The plan dict for one chosen candidate per priced site (plan version 2); sites without a candidate (a weight
+    shared by several modules) stay dense as they are."""
     from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
 
-    candidates, natives, scales = priced.candidates, priced.natives, priced.scales
-    selection = solve(candidates, budget_cost)
-    why = (f"{cost} budget: least predicted error over {sum(len(c) for c in candidates.values())} candidate forms"
-           f"{'' if selection.exact else ' (within the certified gap)'}")
+    cost = selection.get("cost", "bytes")
     entries = {}
     for s in sites:
-        if s.name in selection.chosen:
-            entries[s.name] = entry_for(s, selection.chosen[s.name], why, spectra.get(s.name), natives[s.name],
-                                        scales.get(s.name, 1.0), cost, priced.notes.get(s.name, ()))
+        native = priced.natives[s.name]
+        if s.name in chosen:
+            entries[s.name] = entry_for(s, chosen[s.name], why, spectra.get(s.name), native,
+                                        priced.scales.get(s.name, 1.0), cost, priced.notes.get(s.name, ()))
         else:
-            kept = Candidate(DENSE, natives[s.name], None, float(stored_bytes(natives[s.name], tuple(s.shape))), 0.0)
+            kept = Candidate(DENSE, native, None, float(stored_bytes(native, tuple(s.shape))), 0.0)
             entries[s.name] = entry_for(s, kept, f"weight shared with {', '.join(s.tied_with)}; kept as it is",
-                                        None, natives[s.name])
+                                        None, native)
     return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method, "policy": dict(policy),
-            "sites": entries, "selection": {"exact": selection.exact, "cost": cost, cost: selection.cost,
-                                            f"budget_{cost}": budget_cost, "predicted_error": selection.error}}
+            "sites": entries, "selection": dict(selection)}
 
 
 def bytes_plan(
@@ -399,8 +409,6 @@ def uniform_rounding_plan(sites: Sequence[Site], spectra: Mapping[str, Spectrum]
     """The plain alternative "every layer rounded, none factored": all priced sites dense at the most precise
     allowed integer precision whose bytes fit ``budget_cost`` (None when none fits). Built from the same priced
     candidates, so it is a plan of the same schema the joint planner could have chosen."""
-    from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
-
     by_bits = sorted({c.precision for cs in priced.candidates.values() for c in cs
                       if c.form == DENSE and not is_float(c.precision)},
                      key=lambda p: (-_WIDTH[p], p))
@@ -414,17 +422,9 @@ def uniform_rounding_plan(sites: Sequence[Site], spectra: Mapping[str, Spectrum]
         else:
             if math.fsum(c.cost for c in chosen.values()) <= budget_cost:
                 why = f"every layer rounded to {p}, none factored (the plain alternative)"
-                entries = {}
-                for s in sites:
-                    c = chosen.get(s.name) or Candidate(DENSE, priced.natives[s.name], None,
-                                                        float(stored_bytes(priced.natives[s.name], tuple(s.shape))),
-                                                        0.0)
-                    entries[s.name] = entry_for(s, c, why, spectra.get(s.name), priced.natives[s.name],
-                                                priced.scales.get(s.name, 1.0))
-                return {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method,
-                        "policy": dict(policy), "sites": entries,
-                        "selection": {"exact": True, "cost": "bytes",
-                                      "bytes": math.fsum(c.cost for c in chosen.values()),
-                                      "budget_bytes": budget_cost,
-                                      "predicted_error": math.fsum(c.error for c in chosen.values())}}
+                return plan_of(sites, chosen, priced, spectra, why, policy=policy, method=method,
+                               selection={"exact": True, "cost": "bytes",
+                                          "bytes": math.fsum(c.cost for c in chosen.values()),
+                                          "budget_bytes": budget_cost,
+                                          "predicted_error": math.fsum(c.error for c in chosen.values())})
     return None
