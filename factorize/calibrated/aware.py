@@ -56,6 +56,14 @@ respect to the layer's output, trace(G dW C dW^T) approximates the final-output 
 applied to R W L; R and L invertible), a two-sided version of the whitening above and of Fisher-weighted SVD
 (Hsu et al. 2022). Errors are then in final-output units, comparable across layers.
 
+**The output side** (``stats.side == "output"``, see :mod:`factorize.calibrated.stats`): for a layer narrower at
+its output (m < n) only K = W C W^T (m x m) is kept. Every quantity above is a function of it: with the ridge,
+W (C + lambda I) W^T = K + lambda W W^T; centring subtracts N (W mu)(W mu)^T; and with Z any m x m factor of
+R (K + lambda W W^T) R (Z Z^T equal to it, R = I without output weights), Z Z^T = (R W L)(R W L)^T, so Z and
+R W L have the same left singular vectors and singular values (reduced-rank regression from the output side,
+Izenman 1975; Eckart-Young for the whitened form), hence the same W', energies and ranks. The lambda of the ridge
+needs only the diagonal of C, which output-side statistics keep.
+
 Factors: ``factors(r)`` returns B = U_r diag(c) and A = diag(1/c) U_r^T W with c_i = sqrt(||u_i^T W|| / ||u_i||),
 so B @ A = U_r U_r^T W exactly and each rank-one term is split evenly between the two factors by weight norm.
 """
@@ -73,7 +81,7 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
-from factorize.calibrated.stats import InputStats
+from factorize.calibrated.stats import InputStats, statistics_side, weight_sums
 from factorize.choices import AWARE_METHODS
 from factorize.errors import FactorizeError
 from factorize.execution import EXECUTION_KEYWORDS, Execution, resolve_execution
@@ -233,6 +241,11 @@ def _check_stats(W: torch.Tensor, stats: InputStats, name: str) -> None:
     if stats.count <= 0:
         raise FactorizeError(f"{name}: the calibration batches never reached this layer (0 samples)",
                              fix="give inputs that run through it, or exclude it")
+    if stats.is_output_side and (tuple(stats.output_moment.shape) != (W.shape[0],) * 2 or not np.allclose(
+            weight_sums(W.to(torch.float64)), stats.weight_check, rtol=1e-9, atol=1e-12)):
+        raise FactorizeError(
+            f"{name}: the output-side statistics were collected with another weight than the one given (they hold "
+            "W C W^T, which depends on W)", fix="collect statistics on the same model and layer, with this weight")
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -290,6 +303,8 @@ def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision
     left = _left_weight(output_gram, W64, output_ridge, name)
     if left is not None and method != "whiten":
         raise FactorizeError(f"{name}: output weighting needs method='whiten'", fix="use method='whiten'")
+    if stats.is_output_side:
+        return _decompose_output_side(W64, stats, fit, center, left, rank, seed, out_dtype, name)
     if stats.cross is not None:
         return _refit(W64, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha,
                       left)
@@ -313,8 +328,34 @@ def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision
                    method, left=left)
 
 
+def _decompose_output_side(W64, stats, fit: AwareFit, center, left, rank, seed, out_dtype, name) -> AwareSpectrum:
+    """:func:`_decompose_aware` from output-side statistics (see the module docstring): the m x m route."""
+    mu, N = stats.mean, stats.count
+    K = stats.output_moment  # (m, m) = W C W^T
+    diag = stats.square_total  # (n,) = diag C
+    if center:
+        Wmu = W64 @ mu  # (m,)
+        K = K - N * torch.outer(Wmu, Wmu)  # W (C - N mu mu^T) W^T
+        diag = diag - N * mu * mu
+    lam = _ridge_for(stats, diag, fit.ridge)
+    M = K + lam * (W64 @ W64.T)  # (m, m) = W (C + lam I) W^T
+    if fit.method == "whiten":
+        Z = _sqrt_factor(M if left is None else left[0] @ M @ left[0], 0.0)  # (m, m), Z Z^T = R W (C + lam I) W^T R
+        spec = decompose(Z, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
+        energy, total = spec.energies(), spec.total_energy
+    else:
+        s = stats.abs_mean.clamp_min(0) ** fit.alpha  # (n,) ASVD channel scales, as on the input side
+        s = torch.where(s > 0, s, s.max().clamp_min(1e-30) * 1e-8)
+        spec = decompose(W64 * s, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
+        energy = ((spec.U.T @ M) * spec.U.T).sum(1).cpu().numpy()  # u_i^T M u_i
+        total = float(M.trace())
+    return _finish(W64, spec, energy, total, 0.0, mu if center else None, mu, lam, N, out_dtype, fit.method,
+                   left=left)
+
+
 def _device_of(stats: InputStats, W: torch.Tensor) -> torch.device:
     t = stats.second_moment if stats.second_moment is not None else stats.diagonal
+    t = stats.output_moment if stats.is_output_side else t
     return t.device if t is not None else W.device
 
 
@@ -523,7 +564,8 @@ def compress_sequential(
     spectra: dict[str, AwareSpectrum] = {}
     for name in tqdm(order, desc="sequential", unit="layer", disable=not execution.progress, leave=False):
         site = sites[name]
-        pair = collect_pair_stats(model, target, site, batch_list, stop_early=calls[name] == 1)
+        side = statistics_side(site, prefer_input=True)  # the least-squares refit needs the n x n moments
+        pair = collect_pair_stats(model, target, site, batch_list, stop_early=calls[name] == 1, side=side)
         if not refit or fit.method != "whiten":
             pair.cross = None
         W = matrix_of(get_module(model, name), site.kind)

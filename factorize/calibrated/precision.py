@@ -7,6 +7,10 @@ output weights were collected (else the identity). Truncation, rounding and the 
 up across layers on the same scale the rank-only allocator uses (:attr:`Calibration.error_scale`), and rounding
 uses error feedback on the same C (GPTQ, Frantar et al. 2023).
 
+Layers whose statistics are on the output side (m x m, see :mod:`factorize.calibrated.stats`) have no n x n
+input moment: their rounding is priced and done with its diagonal, as for an embedding (scales chosen on the
+input moments, no error feedback), which ignores correlations between input channels.
+
 Centring (bias correction) is left out of the rounding metric: the candidates are priced on the uncentred C,
 which overstates a centred layer's error slightly and never understates it.
 """
@@ -27,8 +31,8 @@ Calibration = Any  # factorize.calibrated.search.Calibration (which imports this
 def layer_metric(calib: Calibration, name: str) -> LayerMetric:
     """The output-weighted error measure of layer ``name``, on the scale the allocator uses."""
     spec, stats = calib.spectra[name], calib.stats[name]
-    if stats.is_diagonal:
-        C = stats.diagonal.to(torch.float64) + spec.ridge  # (n,) an embedding's token counts
+    if stats.is_diagonal or stats.is_output_side:
+        C = stats.moment_diagonal().to(torch.float64) + spec.ridge  # (n,) token counts, or diag C (output side)
     else:
         C = stats.moment().to(torch.float64)
         C = C + spec.ridge * torch.eye(C.shape[0], dtype=C.dtype, device=C.device)  # (n, n)
@@ -79,5 +83,6 @@ def calibrated_latency_plan(calib: Calibration, policy: Policy, example) -> dict
 
 def hessians(calib: Calibration) -> dict[str, torch.Tensor]:
     """name -> input second moment C (n x n), for error-feedback rounding when the plan is applied (layers whose
-    second moment is a diagonal, embeddings, are rounded without it)."""
-    return {name: st.moment() for name, st in calib.stats.items() if not st.is_diagonal}
+    second moment is a diagonal, embeddings, are rounded without it; output-side layers with the diagonal of C)."""
+    return {name: st.moment_diagonal() if st.is_output_side else st.moment() for name, st in calib.stats.items()
+            if not st.is_diagonal}

@@ -228,7 +228,12 @@ class Calibration:
         self.found = walk(model, include=include, exclude=exclude).require_sites(bool(include or exclude))
         self.batches = as_batch_list(calibration)
         self.todo = [s for s in self.found.sites if not s.tied_with]
-        self.stats = collect_stats(model, self.todo, self.batches, progress=self.progress, per_site=options.per_site)
+        # statistics on each layer's narrow side; stored precisions round best with the n x n input moment (error
+        # feedback), so plans that may store them (and a Calibration without a policy, which may serve any plan)
+        # keep the input side wherever it is not too wide
+        prefer_input = policy is None or policy.cost in ("bytes", "latency")
+        self.stats = collect_stats(model, self.todo, self.batches, progress=self.progress, per_site=options.per_site,
+                                   side="narrow", prefer_input=prefer_input)
         self.output_grams = None
         if mode in ("gradients", "both"):
             self.output_grams = collect_output_grams(model, self.todo, self.batches, projections=options.projections,

@@ -12,23 +12,28 @@ The output error of any replacement W' on these inputs is then known without kee
 ||(W - W') X^T||_F^2 = trace((W - W') C (W - W')^T) (common practice; the basis of reduced-rank regression,
 Izenman 1975, and of SVD-LLM's truncation-aware whitening, Wang et al. 2024).
 
-What a "row" is depends on the kind, so that C matches the site's matrix view (see :mod:`factorize.walk`):
-
-* linear / transposed projection: the input flattened over every leading dimension (tokens, positions);
-* conv_transpose1d / 2d: each input position's channel vector (the matrix view is applied per position);
-* conv1d / conv2d / conv3d: the unfolded input patches (``torch.nn.functional.unfold`` with the layer's kernel, stride,
-  padding and dilation), so rows have length in_channels * prod(kernel), the conv's matrix view;
-* embedding: the token ids; the input is one-hot, so C is diagonal and holds the token counts. Only the
-  diagonal is kept (``diagonal``), never a V x V matrix.
+What a "row" is depends on the kind, so that C matches the site's matrix view (see
+:mod:`factorize.calibrated.rows`; convs: unfolded patches). For an embedding the input is one-hot, so C is
+diagonal and holds the token counts: only the diagonal is kept (``diagonal``), never a V x V matrix.
 
 Batches follow the batch contract of :func:`factorize.model.feed.feed` (tensor -> ``model(x)``, tuple/list ->
 ``model(*x)``, dict -> ``model(**x)``). When a dict batch carries an ``attention_mask`` whose shape matches the
 leading dimensions of a layer's input (B, T), padded positions are left out: they never reach the outputs that
 matter and would only pollute the statistics.
 
-Memory: one n x n float64 matrix per site. ``per_site=True`` runs the batches once per site with only that
-site's hook installed, so only one such matrix is being filled at a time (and the forward pass stops right
-after the site where that is safe).
+Memory: one n x n float64 matrix per site on the input side (m x m on the output side, below).
+``per_site=True`` runs the batches once per site with only that site's hook installed, so only one such
+matrix is being filled at a time (and the forward pass stops right after the site where that is safe).
+
+**The narrow side.** When a layer's output is narrower than its input (m < n: a conv with 1024 input channels
+and 64 taps has n = 65,536 but perhaps m = 128 outputs), everything the activation-aware optimum needs fits in
+m x m: minimising ||(W - W') X^T|| over rank r gives W' = U_r U_r^T W with U_r the top eigenvectors of W C W^T
+(reduced-rank regression, Izenman 1975). ``side="output"`` statistics therefore hold K = sum (W x)(W x)^T
+(``output_moment``, m x m), accumulated from the input rows in chunks (a conv's batch is unfolded a few samples at
+a time) so no n x n matrix and no whole unfolded batch is ever formed, plus the n-vectors ``total``,
+``abs_total`` and ``square_total`` (the diagonal of C, for the ridge and the rounding scales). K depends on W:
+the weight's sums are kept (``weight_check``) and a decomposition with another weight is refused.
+:func:`statistics_side` picks the side per layer by shape (embeddings keep their diagonal).
 """
 
 from __future__ import annotations
@@ -41,19 +46,21 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import torch
-import torch.nn.functional as F
 from torch import nn
 from tqdm.auto import tqdm
 
+from factorize.calibrated.rows import CHUNK_BYTES, input_rows, row_pieces
 from factorize.errors import FactorizeError, caller_stacklevel, printable
 from factorize.model.feed import feed, token_mask
 from factorize.model.hooks import forward_pre_hooks
-from factorize.model.sites import Site, walk
+from factorize.model.sites import Site, matrix_of, walk
 from factorize.storage import human_bytes, proc_field
 
 ROW_CHUNK = 16384  # rows converted to float64 at a time, so a big conv batch never doubles in memory at once
 MEMORY_SHARE = 0.5  # statistics may take at most this share of the memory available when collection starts
 WORK_COPIES = 3  # the whitening step holds about this many n x n float64 matrices per layer at once (C, L, L^-1)
+INPUT_SIDE_LIMIT = 16384  # prefer_input: the input side up to this width (n x n float64 = 2 GiB), else the narrow one
+SIDES = ("narrow", "input", "output")
 
 
 @dataclass
@@ -69,7 +76,11 @@ class InputStats:
     kind: str
     width: int  # n, the length of one input row
     count: int = 0  # N, rows seen
+    side: str = "input"  # "output": output_moment holds sum (W x)(W x)^T and no n x n matrix exists
     second_moment: torch.Tensor | None = None  # (n, n) sum x x^T
+    output_moment: torch.Tensor | None = None  # (m, m) sum (W x)(W x)^T = W C W^T (output side)
+    square_total: torch.Tensor | None = None  # (n,) sum x * x, the diagonal of C (output side)
+    weight_check: tuple[float, float] | None = None  # (sum W, sum W^2) of the weight behind output_moment
     diagonal: torch.Tensor | None = None  # (n,) embedding: token counts (the diagonal of C)
     total: torch.Tensor | None = None  # (n,) sum x
     abs_total: torch.Tensor | None = None  # (n,) sum |x|
@@ -90,10 +101,25 @@ class InputStats:
 
     @property
     def is_diagonal(self) -> bool:
-        return self.second_moment is None
+        return self.second_moment is None and self.side == "input"
+
+    @property
+    def is_output_side(self) -> bool:
+        return self.side == "output"
+
+    def moment_diagonal(self) -> torch.Tensor:
+        """The diagonal of C (n,), on either side."""
+        if self.is_output_side:
+            return self.square_total
+        return self.diagonal if self.second_moment is None else self.second_moment.diagonal()
 
     def moment(self) -> torch.Tensor:
         """C = X^T X as a dense (n, n) matrix (built from the diagonal for an embedding)."""
+        if self.is_output_side:
+            raise FactorizeError(
+                f"layer {printable(self.name)}: its statistics are on the output side (m x m); the n x n input "
+                f"moment (n = {self.width}) was never formed",
+                fix="use moment_diagonal(), or collect with side='input' where n x n fits in memory")
         return torch.diag(self.diagonal) if self.second_moment is None else self.second_moment
 
     def covariance(self) -> torch.Tensor:
@@ -103,65 +129,7 @@ class InputStats:
 
     def to_dict(self) -> dict:
         return {"name": self.name, "kind": self.kind, "width": self.width, "samples": self.count,
-                "batches": self.batches}
-
-
-# ---------------------------------------------------------------------------------------------------------------
-# rows: each kind's input as a matrix whose rows match the site's matrix view
-
-
-def _conv_patches(module: nn.Module, x: torch.Tensor, kind: str) -> torch.Tensor:
-    """Unfolded patches (rows, in * prod(kernel)) of a conv input, in the layout of ``weight.reshape(out, -1)``."""
-    if kind == "conv1d":
-        if x.dim() == 2:
-            x = x.unsqueeze(0)  # unbatched (C, L)
-        pad = module._reversed_padding_repeated_twice  # (left, right); also covers padding="same"
-        if any(pad):
-            x = F.pad(x, pad, mode="constant" if module.padding_mode == "zeros" else module.padding_mode)
-        x4 = x.unsqueeze(2)  # (B, C, 1, L)
-        cols = F.unfold(x4, (1, module.kernel_size[0]), dilation=(1, module.dilation[0]), stride=(1, module.stride[0]))
-    elif kind == "conv3d":
-        return _patches_3d(module, x)
-    else:
-        if x.dim() == 3:
-            x = x.unsqueeze(0)  # unbatched (C, H, W)
-        pad = module._reversed_padding_repeated_twice
-        if any(pad):
-            x = F.pad(x, pad, mode="constant" if module.padding_mode == "zeros" else module.padding_mode)
-        cols = F.unfold(x, module.kernel_size, dilation=module.dilation, stride=module.stride)  # (B, C*kh*kw, L)
-    return cols.transpose(1, 2).reshape(-1, cols.shape[1])  # (B*L, C*k)
-
-
-def _patches_3d(module: nn.Module, x: torch.Tensor) -> torch.Tensor:
-    """Conv3d patches (rows, in * kd * kh * kw) via ``Tensor.unfold`` per spatial axis (``F.unfold`` is 2-D only);
-    a dilated window is unfolded whole, then every ``dilation``-th element kept."""
-    if x.dim() == 4:
-        x = x.unsqueeze(0)  # unbatched (C, D, H, W)
-    pad = module._reversed_padding_repeated_twice
-    if any(pad):
-        x = F.pad(x, pad, mode="constant" if module.padding_mode == "zeros" else module.padding_mode)
-    for axis, (k, s, d) in enumerate(zip(module.kernel_size, module.stride, module.dilation)):
-        x = x.unfold(2 + axis, (k - 1) * d + 1, s)[..., ::d]  # (B, C, ..., windows, k) appended per axis
-    b, _, od, oh, ow = x.shape[:5]
-    return x.permute(0, 2, 3, 4, 1, 5, 6, 7).reshape(b * od * oh * ow, -1)  # (B*L, C*kd*kh*kw)
-
-
-def input_rows(module: nn.Module, kind: str, x: torch.Tensor, mask: torch.Tensor | None = None) -> torch.Tensor:
-    """One site's input as rows matching its matrix view (embedding: the flat token ids).
-
-    ``mask`` (B, T) drops padded positions of linear / transposed / embedding inputs whose leading dimensions
-    are (B, T); it is ignored where the shapes do not line up (convolutions, pooled inputs).
-    """
-    if kind in ("conv1d", "conv2d", "conv3d"):
-        return _conv_patches(module, x, kind)
-    if kind.startswith("conv_transpose"):  # the 1x1 first factor sees each position's channel vector
-        batched = x.dim() == (3 if kind == "conv_transpose1d" else 4)
-        return (x.movedim(1, -1) if batched else x.movedim(0, -1)).reshape(-1, x.shape[1 if batched else 0])
-    lead = x.shape if kind == "embedding" else x.shape[:-1]
-    if mask is not None and tuple(mask.shape) == tuple(lead):
-        keep = mask.to(x.device).bool()
-        return x[keep]  # (rows, n) or (rows,) ids
-    return x.reshape(-1) if kind == "embedding" else x.reshape(-1, x.shape[-1])
+                "batches": self.batches, "side": self.side}
 
 
 # ---------------------------------------------------------------------------------------------------------------
@@ -217,6 +185,32 @@ def accumulate(stats: InputStats, rows: torch.Tensor) -> None:
     stats.count += int(rows.shape[0])
 
 
+def weight_sums(W: torch.Tensor) -> tuple[float, float]:
+    """(sum W, sum W^2) of a float64 matrix view: the fingerprint output-side statistics are tied to."""
+    return float(W.sum()), float((W * W).sum())
+
+
+def accumulate_output(stats: InputStats, rows: torch.Tensor, W: torch.Tensor) -> None:
+    """Add input rows (N, n) to output-side ``stats``: K += (X W^T)^T (X W^T) for the float64 matrix view ``W``
+    (m, n), with the n-vectors of the rows, a chunk of at most CHUNK_BYTES of rows at a time."""
+    n, m = stats.width, W.shape[0]
+    if stats.output_moment is None:
+        dev = W.device
+        stats.output_moment = torch.zeros(m, m, dtype=torch.float64, device=dev)
+        stats.total, stats.abs_total, stats.square_total = (torch.zeros(n, dtype=torch.float64, device=dev)
+                                                            for _ in range(3))
+        stats.weight_check = weight_sums(W)
+    step = max(1, min(ROW_CHUNK, CHUNK_BYTES // (8 * n)))
+    for start in range(0, rows.shape[0], step):
+        chunk = rows[start:start + step].to(device=W.device, dtype=torch.float64)  # (c, n)
+        y = chunk @ W.T  # (c, m): the layer's (pre-bias) outputs on these rows
+        stats.output_moment.addmm_(y.T, y)  # K += Y^T Y
+        stats.total += chunk.sum(0)
+        stats.abs_total += chunk.abs().sum(0)
+        stats.square_total += (chunk * chunk).sum(0)
+    stats.count += int(rows.shape[0])
+
+
 def _first_tensor(args: tuple, kwargs: dict) -> torch.Tensor | None:
     for v in (*args, *kwargs.values()):
         if isinstance(v, torch.Tensor):
@@ -227,17 +221,26 @@ def _first_tensor(args: tuple, kwargs: dict) -> torch.Tensor | None:
 def _make_hook(site: Site, stats: InputStats, state: _State, sink=None):
     """A forward pre-hook that turns the site's input into rows and accumulates them (or hands them to ``sink``)."""
 
+    weight: list[torch.Tensor] = []  # output side: the float64 matrix view, made on the first call
+
     def hook(module, args, kwargs):
         x = _first_tensor(args, kwargs)
         if x is None:
             return None
         with torch.no_grad():
-            rows = input_rows(module, site.kind, x.detach(), state.mask)
-            check_finite(rows, site.name, state.batch)
-            if sink is not None:
-                sink(rows)
+            if stats.is_output_side and sink is None:
+                if not weight:
+                    weight.append(matrix_of(module, site.kind).detach().to(device=x.device, dtype=torch.float64))
+                for rows in row_pieces(module, site.kind, x.detach(), state.mask):
+                    check_finite(rows, site.name, state.batch)
+                    accumulate_output(stats, rows, weight[0])
             else:
-                accumulate(stats, rows)
+                rows = input_rows(module, site.kind, x.detach(), state.mask)
+                check_finite(rows, site.name, state.batch)
+                if sink is not None:
+                    sink(rows)
+                else:
+                    accumulate(stats, rows)
         if site.name not in state.seen:
             state.seen.add(site.name)
             stats.batches += 1
@@ -374,10 +377,30 @@ def check_memory(needs: dict[str, int], what: str, *, limit: int | None = None) 
     )
 
 
-def stats_bytes(site: Site) -> int:
-    """Bytes the input statistics of ``site`` take while whitening (embeddings keep a diagonal only)."""
-    n = site.shape[1]
-    return 8 * n * (4 if site.kind == "embedding" else WORK_COPIES * n)
+def statistics_side(site: Site, side: str = "narrow", *, prefer_input: bool = False) -> str:
+    """``"input"`` or ``"output"``: where ``site``'s statistics live. ``"narrow"``: the output side when the output
+    is narrower than the input (m < n), else the input side; embeddings always keep their input diagonal.
+    ``prefer_input``: the input side unless it is wider than INPUT_SIDE_LIMIT (for what needs the n x n moment:
+    error-feedback rounding, the sequential least-squares refit)."""
+    if side not in SIDES:
+        raise FactorizeError(f"unknown statistics side {side!r}", fix=f"use one of {', '.join(SIDES)}")
+    m, n = site.shape
+    if site.kind == "embedding" or side == "input":
+        return "input"
+    if side == "output" or (m < n and not (prefer_input and n <= INPUT_SIDE_LIMIT)):
+        return "output"
+    return "input"
+
+
+def stats_bytes(site: Site, side: str = "input") -> int:
+    """Bytes the statistics of ``site`` take while whitening (embeddings keep a diagonal only). Output side: the
+    m x m moment and its work copies, the float64 weight view, the n-vectors and one chunk of rows."""
+    m, n = site.shape
+    if site.kind == "embedding":
+        return 8 * n * 4
+    if statistics_side(site, side) == "output":
+        return 8 * ((WORK_COPIES + 1) * m * m + m * n + 4 * n) + 2 * CHUNK_BYTES
+    return 8 * n * WORK_COPIES * n
 
 
 def collect_stats(
@@ -388,8 +411,10 @@ def collect_stats(
     progress: bool = False,
     per_site: bool = False,
     memory_limit: int | None = None,
+    side: str = "input",
+    prefer_input: bool = False,
 ) -> dict[str, InputStats]:
-    """Input second moment of every site, streamed over the calibration batches.
+    """Second moment of every site's inputs (or, on the narrow side, of its outputs), streamed over the batches.
 
     Args:
         model: the model to run (not modified; it runs in eval mode under ``torch.no_grad()``, and its training
@@ -402,6 +427,11 @@ def collect_stats(
             of all sites in one pass.
         memory_limit: bytes the statistics may take (default: half of the memory available now); checked
             before anything is allocated.
+        side: ``"input"`` (always the n x n input moment), ``"narrow"`` (per layer, the narrower of input and
+            output, see :func:`statistics_side`; what :class:`~factorize.calibrated.search.Calibration` uses) or
+            ``"output"``.
+        prefer_input: with ``"narrow"``, keep the input side up to INPUT_SIDE_LIMIT wide (see
+            :func:`statistics_side`).
 
     Returns:
         name -> :class:`InputStats`, in site order. A site the batches never reach has ``count == 0``.
@@ -415,9 +445,10 @@ def collect_stats(
         activation-aware decomposition adds a ridge (see :mod:`factorize.calibrated.aware`).
     """
     site_list = resolve_sites(model, sites)
-    check_memory({s.name: stats_bytes(s) for s in site_list}, "input statistics", limit=memory_limit)
+    sides = {s.name: statistics_side(s, side, prefer_input=prefer_input) for s in site_list}
+    check_memory({s.name: stats_bytes(s, sides[s.name]) for s in site_list}, "input statistics", limit=memory_limit)
     batch_list = as_batch_list(batches)
-    stats = {s.name: InputStats(s.name, s.kind, s.shape[1]) for s in site_list}
+    stats = {s.name: InputStats(s.name, s.kind, s.shape[1], side=sides[s.name]) for s in site_list}
     if per_site:
         _, calls = forward_order(model, site_list, batch_list[0])
         once = all(c == 1 for c in calls.values())
@@ -465,6 +496,7 @@ def collect_pair_stats(
     *,
     progress: bool = False,
     stop_early: bool = True,
+    side: str = "input",
 ) -> InputStats:
     """Statistics of one site's inputs in two models fed the same batches (sequential mode).
 
@@ -473,10 +505,22 @@ def collect_pair_stats(
     ``reference_moment``/``reference_total``/``cross`` (sum x_ref x^T) from the pairs, which is what the
     sequential refit needs to map the compressed model's inputs onto the original's outputs.
     ``stop_early`` ends each forward pass once the site has run (safe only when it runs once per pass).
+    ``side="output"``: only ``current``'s inputs, as output-side statistics K = sum (W x)(W x)^T with W the site's
+    weight in ``current`` (still the original's when the sites are done in forward order); the least-squares
+    refit needs the n x n moments and is then not possible, so no pair moments are kept.
     """
     if site.kind == "embedding":
         raise FactorizeError(f"{site.name}: sequential refit is not defined for embeddings (their input is token "
                              "ids, unchanged by compression)", fix="compress embeddings without sequential=")
+    if statistics_side(site, side) == "output":
+        stats = InputStats(site.name, site.kind, site.shape[1], side="output")
+        bar = tqdm(total=len(batches), desc=f"calibrate {printable(site.name)}", unit="batch",
+                   disable=not progress, leave=False)
+        try:
+            _collect(current, [site], list(batches), {site.name: stats}, bar, stop_early=stop_early)
+        finally:
+            bar.close()
+        return stats
     stats = InputStats(site.name, site.kind, site.shape[1])
     ref_stats = InputStats(site.name, site.kind, site.shape[1])
     state = _State(stop_after={site.name} if stop_early else set())
