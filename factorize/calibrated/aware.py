@@ -533,7 +533,9 @@ def compress_sequential(
             ``"scale"`` (``refit`` is then off); ``center`` as for :func:`aware_spectra`; ``refit_ridge``,
             ``ridge``, ``output_ridge`` as for :func:`decompose_aware`. The solver is always the Gram one.
         refit: fit the original layer's outputs from the compressed model's inputs (reduced-rank regression
-            with a least-squares step, Izenman 1975); False only re-whitens with the new inputs.
+            with a least-squares step, Izenman 1975); False only re-whitens with the new inputs. The refit needs
+            the n x n moments: a layer wider than ``INPUT_SIDE_LIMIT`` at its input and narrower at its output is
+            re-whitened from output-side statistics instead (:func:`factorize.calibrated.stats.statistics_side`).
         output_grams: see :func:`decompose_aware` (output weights are those of the original model).
         execution: :class:`~factorize.execution.Execution` (precision, progress bars on stderr), or its fields
             as keywords.
