@@ -41,6 +41,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from factorize.checkpoints.directories import extra_files
 from factorize.checkpoints.files import Checkpoint, open_checkpoint
 from factorize.cluster import Engine, TasksFailed, open_engine, parse_cluster
 from factorize.errors import FactorizeError
@@ -110,7 +111,9 @@ def shrink_checkpoint(
                                  f"{policy.cost!r})")
     return_freed_memory()  # freed blocks go back to the system: peaks stay flat run after run (storage.proc)
     ckpt = open_checkpoint(src)
-    out_dir, finals = _outputs(ckpt, Path(dst), options.force)
+    as_directory = ckpt.index is not None or Path(src).is_dir()  # a directory in (or an index): a directory out
+    out_dir, finals = _outputs(ckpt, Path(dst), options.force, as_directory=as_directory)
+    side = side_files(ckpt, finals[0].parent if as_directory else None)
     chosen, passed = select(ckpt, policy.include, policy.exclude)
     if not chosen:
         raise FactorizeError(
@@ -125,10 +128,10 @@ def shrink_checkpoint(
     engine = open_engine(cluster, threads=threads)
     try:
         cache = as_cache(options.cache_dir)
-        work, temporary = _work_directory(cache, finals[0].parent if ckpt.index is not None else finals[0])
+        work, temporary = _work_directory(cache, finals[0].parent if as_directory else finals[0])
         try:
             job = _Job(ckpt, chosen, policy, options, cache, engine=engine, work_dir=work, fault=_fault)
-            written, passes = _run(job, ckpt, out_dir, work, finals, options.metadata, options.force)
+            written, passes = _run(job, ckpt, out_dir, work, finals, side, options)
         finally:
             if temporary:
                 shutil.rmtree(work, ignore_errors=True)
@@ -159,14 +162,17 @@ def _same_disk(a: Path, b: Path) -> bool:
         return True
 
 
-def _run(job: _Job, ckpt: Checkpoint, out_dir: Path, work: Path, finals: list[Path], metadata, force: bool):
+def _run(job: _Job, ckpt: Checkpoint, out_dir: Path, work: Path, finals: list[Path], side: list[tuple[Path, Path]],
+         options: StreamOptions):
     """Both passes and the write; returns (files written, passes)."""
+    metadata, force = options.metadata, options.force
     passes = 1
     if job.policy.budget is not None:
         job.plan_globally()
         passes = 2
     bound = sum(h.file_size for h in ckpt.files) + sum(job.writer.reserve_for(h) for h in ckpt.files)
     output = bound if job.plan is None else job.writer.planned_bytes(job.entries)
+    output += sum(src.stat().st_size for src, _ in side)
     factors = job.factor_bytes()
     if _same_disk(out_dir, work):
         check_free_space(out_dir, output + factors, "the shrunk checkpoint and the factors in the work directory")
@@ -179,7 +185,7 @@ def _run(job: _Job, ckpt: Checkpoint, out_dir: Path, work: Path, finals: list[Pa
     if created_dir:
         target_dir.mkdir(parents=False)
     try:
-        written = job.writer.write_all(finals, job.final_plan(), metadata, force=force)
+        written = job.writer.write_all(finals, job.final_plan(), metadata, force=force, side=side)
     except BaseException:
         if created_dir:
             shutil.rmtree(target_dir, ignore_errors=True)
@@ -187,9 +193,16 @@ def _run(job: _Job, ckpt: Checkpoint, out_dir: Path, work: Path, finals: list[Pa
     return written, passes
 
 
-def _outputs(ckpt: Checkpoint, dst: Path, force: bool) -> tuple[Path, list[Path]]:
-    """Output directory and final file paths (one per input file, then the index for sharded input)."""
+def _outputs(ckpt: Checkpoint, dst: Path, force: bool, *, as_directory: bool = False) -> tuple[Path, list[Path]]:
+    """Output directory and final file paths (one per input file, then the index for sharded input). A directory
+    given as the input gives a directory as the output, even when it holds a single file (under the same name)."""
     inputs = {h.path.resolve() for h in ckpt.files} | ({ckpt.index.resolve()} if ckpt.index else set())
+    if ckpt.index is None and as_directory:  # a directory holding one file
+        if dst.resolve() == ckpt.files[0].path.parent.resolve():
+            raise FactorizeError(f"{dst}: is the input checkpoint's directory; its files are never overwritten",
+                                 fix="choose another output directory")
+        check_output_path(dst, force=force, directory=True)
+        return (dst if dst.exists() else dst.parent), [dst / ckpt.files[0].path.name]
     if ckpt.index is None:
         if dst.resolve() in inputs:
             raise FactorizeError(f"{dst}: is the input checkpoint; it is never overwritten",
@@ -205,6 +218,19 @@ def _outputs(ckpt: Checkpoint, dst: Path, force: bool) -> tuple[Path, list[Path]
         names = [f"{Path(n).stem}-{i:05d}-of-{len(names):05d}.safetensors" for i, n in enumerate(names, 1)]
     finals = [dst / n for n in names] + [dst / ckpt.index.name]
     return (dst if dst.exists() else dst.parent), finals
+
+
+def side_files(ckpt: Checkpoint, out_dir: Path | None) -> list[tuple[Path, Path]]:
+    """(source, destination) of the files a directory output ``out_dir`` takes over from the input's directory, so
+    that :func:`factorize.checkpoints.directories.load_directory` rebuilds the model from it: ``config.json`` and
+    every file :func:`~factorize.checkpoints.directories.extra_files` names (generation config, tokenizer, module
+    configs, README; never the original weights). Nothing for a single-file output (``out_dir`` None), or when
+    the input's directory holds no ``config.json`` (not a transformers directory: its other files are not the
+    model's)."""
+    source = (ckpt.index or ckpt.files[0].path).parent
+    if out_dir is None or not (source / "config.json").is_file():
+        return []
+    return [(source / rel, out_dir / rel) for rel in [Path("config.json"), *extra_files(source)]]
 
 
 class _Job:

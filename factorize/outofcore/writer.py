@@ -176,15 +176,19 @@ class CheckpointWriter:
         return n
 
     def write_all(self, finals: list[Path], plan: dict, metadata: Mapping[str, str] | None, *,
-                  force: bool) -> list[Path]:
-        """Write every output file to a temporary name, then rename them all into place (index last)."""
+                  force: bool, side: list[tuple[Path, Path]] = ()) -> list[Path]:
+        """Write every output file to a temporary name, then rename them all into place (index last). ``side``:
+        (source, destination) of files copied unchanged beside them (a transformers directory's config and
+        tokenizer), published before the weights."""
         self.entries = dict(plan["sites"])
         temps: list[Path] = []
         writers: list[ShardWriter] = []
         done: list[Path] = []
         try:
+            for src, dst in side:
+                temps.append(copy_to_temp(src, dst))
             self._write_files(finals, plan, metadata, writers, temps)
-            for tmp, final in zip(temps, finals):
+            for tmp, final in zip(temps, [dst for _, dst in side] + finals):
                 publish(tmp, final, force=force)
                 done.append(final)
         except OSError as e:
@@ -195,7 +199,7 @@ class CheckpointWriter:
         except BaseException:
             self._cleanup(writers, temps, done)
             raise
-        return done
+        return done[len(side):]
 
     def _write_files(self, finals: list[Path], plan: dict, metadata, writers: list, temps: list) -> None:
         from factorize._version import __version__
@@ -264,6 +268,17 @@ class CheckpointWriter:
         if bias is not None:
             self.params_after += bias.numel()
         self.report[c.weight.name] = row
+
+
+def copy_to_temp(src: Path, final: Path) -> Path:
+    """A byte-for-byte copy of ``src`` under a temporary name beside ``final`` (its folder created if needed)."""
+    final.parent.mkdir(parents=True, exist_ok=True)
+    tmp, fd = create_temp(final)
+    with os.fdopen(fd, "wb") as f, open(src, "rb") as g:
+        shutil.copyfileobj(g, f, 16 * 2**20)
+        f.flush()
+        os.fsync(f.fileno())
+    return tmp
 
 
 def _write_index(final: Path, plan: dict, weight_map: dict[str, str], total: int, metadata) -> Path:
