@@ -370,12 +370,14 @@ def load(model: nn.Module, path: str | os.PathLike, *, strict: bool = True,
 
     ``dtype`` (e.g. ``torch.float32``): the floating dtype the loaded model ends in, whatever dtype the model was
     built in and the checkpoint stored (a weights-only shrink keeps the checkpoint's, often bfloat16): the model
-    is cast to it first and every stored floating tensor is cast to it as it is loaded. Integer tensors (the
-    codes of a stored precision) are loaded as stored. None (the default) loads as stored and, when ``strict``,
-    asks the model to be in the checkpoint's dtype already.
+    is cast to the checkpoint's own dtype (:func:`checkpoint_dtype`) so the plan's forms are rebuilt as they were
+    saved, the tensors are loaded, then every floating parameter and buffer is cast to ``dtype``; stored weights
+    keep their stored tensors (codes, scales) and decode to ``dtype``. None (the default) loads as stored and,
+    when ``strict``, asks the model to be in the checkpoint's dtype already.
     """
     from factorize.model.sites import get_module, set_module
     from factorize.rewrite.apply import apply_plan, validate_plan
+    from factorize.rewrite.stored import cast_floating
 
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}",
@@ -385,8 +387,9 @@ def load(model: nn.Module, path: str | os.PathLike, *, strict: bool = True,
     ckpt = open_checkpoint(path)
     plan, aliases = _plan_and_aliases(ckpt, path)
     validate_plan(model, plan)
-    if dtype is not None:
-        model.to(dtype)  # before the plan is applied, so the layers it builds are in this dtype too
+    stored = checkpoint_dtype(ckpt) if dtype is not None else None
+    if stored is not None:  # the plan's forms are built as they were saved (a precision equal to the weight's own
+        cast_floating(model, stored)  # is no stored form), then everything is cast to ``dtype``
     names = factored_names(plan)
     originals = {n: get_module(model, n) for n in names}
     apply_plan(model, plan, weights=False, inplace=True)
@@ -396,7 +399,21 @@ def load(model: nn.Module, path: str | os.PathLike, *, strict: bool = True,
         for n, m in originals.items():
             set_module(model, n, m)
         raise
+    if dtype is not None:
+        cast_floating(model, dtype)
     return model
+
+
+def checkpoint_dtype(ckpt: Checkpoint) -> torch.dtype | None:
+    """The floating dtype holding most of a checkpoint's bytes outside stored weights (codes and scales of a stored
+    precision have their own): the dtype its model was saved in. None when it holds no such tensor."""
+    totals: dict[torch.dtype, int] = {}
+    for h in ckpt.files:
+        for name, info in h.tensors.items():
+            t = info.torch_dtype
+            if t is not None and t.is_floating_point and ".stored_weight." not in name:
+                totals[t] = totals.get(t, 0) + info.nbytes
+    return max(totals, key=lambda t: (totals[t], str(t))) if totals else None
 
 
 def _load_weights(model: nn.Module, ckpt: Checkpoint, aliases: Mapping[str, str], strict: bool, path, *,

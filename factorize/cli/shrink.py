@@ -244,8 +244,8 @@ def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
 def _shrink_weights_only(args, loaded, output: Path, opts: Options, ui: UI):
     weights_only_checks(args)
     policy = opts.policy()
-    if policy.cost != "params":
-        ui.warn("weights-only mode counts parameters only: the recipe's cost is ignored")
+    if policy.cost not in ("params", "bytes"):  # time and multiply-accumulates need the model to run
+        ui.warn(f"weights-only mode counts parameters or stored bytes, not {policy.cost}: the cost is ignored")
         policy = dataclasses.replace(policy, cost="params")
     with weights_file(loaded) as src:
         done = shrink_checkpoint(src, output, policy, force=args.force, progress=ui.progress, cache_dir=args.cache,

@@ -48,9 +48,10 @@ from factorize.errors import FactorizeError
 from factorize.outofcore.candidates import Candidate, select
 from factorize.outofcore.options import StreamOptions, split_keywords
 from factorize.outofcore.results import CheckpointShrink
-from factorize.outofcore.tasks import MatrixTask, factors_task, values_task
+from factorize.outofcore.tasks import MatrixTask, factors_task, forms_task, price_task, values_task
 from factorize.outofcore.writer import CheckpointWriter, plan_bound
 from factorize.plan.entries import is_factored_entry
+from factorize.plan.forms import Priced, joint_plan, layer_budget, native_precision
 from factorize.plan.policy import Policy, rank_needed, resolve_policy, values_first
 from factorize.plan.ranks import PLAN_FORMAT, PLAN_VERSION, choose_ranks
 from factorize.spectra.cache import SpectrumCache, as_cache
@@ -105,10 +106,10 @@ def shrink_checkpoint(
         raise FactorizeError("cost='macs' needs the model to count multiply-accumulates; a checkpoint alone has none",
                              fix="use cost='params', or load the model and call factorize.compress(cost='macs', "
                                  "example=batch)")
-    if policy.cost != "params":
-        raise FactorizeError(f"cost={policy.cost!r} is not available for a checkpoint shrunk without its model yet",
-                             fix=f"use cost='params', or load the model and call factorize.compress(cost="
-                                 f"{policy.cost!r})")
+    if policy.cost not in ("params", "bytes"):
+        raise FactorizeError(f"cost={policy.cost!r} measures the model running, and a checkpoint alone has none",
+                             fix=f"use cost='params' or cost='bytes', or load the model and call factorize.compress("
+                                 f"cost={policy.cost!r})")
     return_freed_memory()  # freed blocks go back to the system: peaks stay flat run after run (storage.proc)
     ckpt = open_checkpoint(src)
     as_directory = ckpt.index is not None or Path(src).is_dir()  # a directory in (or an index): a directory out
@@ -249,10 +250,14 @@ class _Job:
         self.sites = [c.site for c in chosen]
         partial = self.method in ("auto", "randomized")
         self.k = {s.name: (rank_needed(s, policy) if partial else None) for s in self.sites}  # as compress()
+        self.bytes = policy.cost == "bytes"  # rank and stored precision chosen together (plan.forms)
+        if self.bytes:  # as compress() prices a layer: every vector pair, from the Gram route under "auto"
+            self.k = dict.fromkeys(self.k)
+        self.task_method = "gram" if self.bytes and self.method == "auto" else self.method
         self.plan: dict | None = None
         self.entries: dict[str, dict] = {}
         self.writer = CheckpointWriter(ckpt, chosen, self._factors_of, plan_reserve=plan_bound(self.sites, policy),
-                                       progress=options.progress)
+                                       progress=options.progress, stored_forms=self.bytes)
 
     def _factors_of(self, c: Candidate, entry: dict) -> tuple[str | None, float]:
         done = self.results[c.weight.name]
@@ -261,14 +266,16 @@ class _Job:
     def _task(self, kind: str, c: Candidate) -> MatrixTask:
         s = c.site
         per_layer = kind == "factors" and self.plan is None
-        return MatrixTask(kind=kind, shard=str(c.weight_file.path), name=c.weight.name, site=s, method=self.method,
-                          k=self.k[s.name], seed=self.policy.seed, precision=self.precision,
+        return MatrixTask(kind=kind, shard=str(c.weight_file.path), name=c.weight.name, site=s,
+                          method=self.task_method, k=self.k[s.name], seed=self.policy.seed, precision=self.precision,
                           work_dir=str(self.work_dir),
                           cache_dir=str(self.cache.directory) if self.cache is not None else None,
-                          entry=self.entries.get(c.module) if kind == "factors" and not per_layer else None,
-                          policy=self.policy if per_layer else None, fault=self.fault,
+                          entry=self.entries.get(c.module) if kind in ("factors", "forms") and not per_layer else None,
+                          policy=self.policy if per_layer or kind == "price" else None, fault=self.fault,
                           values=self.values.get(c.module) if kind == "factors" else None,
-                          values_first=kind == "values" and values_first(self.policy))
+                          values_first=kind == "values" and values_first(self.policy),
+                          bias_shard=str(c.bias_file.path) if kind == "forms" and c.bias is not None else None,
+                          bias_name=c.bias.name if kind == "forms" and c.bias is not None else None)
 
     def _map(self, fn, kind: str, label: str) -> list[dict]:
         """One task per chosen matrix on the engine; results in the order of the matrices."""
@@ -292,6 +299,9 @@ class _Job:
 
     def plan_globally(self) -> None:
         """First pass (budget): every spectrum's singular values, then one plan for all layers."""
+        if self.bytes:
+            self._plan_bytes()
+            return
         results = self._map(values_task, "values", "spectra")
         values = {c.module: r["values"] for c, r in zip(self.chosen.values(), results)}
         if values_first(self.policy):  # pass 2 computes only the kept vectors, guarded by these values
@@ -299,9 +309,28 @@ class _Job:
         self.plan = choose_ranks(self.sites, values, self.policy, method=self.method)
         self.entries = dict(self.plan["sites"])
 
+    def _plan_bytes(self) -> None:
+        """A budget in bytes: every matrix's candidate forms priced in a task (the plain error measure: no
+        calibration here), then the joint plan of rank and stored precision, as :func:`factorize.compress` makes
+        it (:func:`factorize.plan.forms.joint_plan`)."""
+        results = self._map(price_task, "price", "price")
+        names = [c.module for c in self.chosen.values()]
+        priced = Priced(candidates={n: r["candidates"] for n, r in zip(names, results)},
+                        natives={c.module: native_precision(c.weight.torch_dtype) for c in self.chosen.values()},
+                        scales={n: r["scale"] for n, r in zip(names, results)},
+                        notes={n: r["notes"] for n, r in zip(names, results) if r["notes"]})
+        values = {n: r["values"] for n, r in zip(names, results)}
+        self.plan = joint_plan(self.sites, priced, values, layer_budget(self.sites, priced, self.policy),
+                               policy=self.policy.to_dict(), method=self.method)
+        self.entries = dict(self.plan["sites"])
+
     def factor_all(self) -> None:
-        """The factors of every chosen matrix into the work directory (the plan's ranks, or per layer)."""
-        results = self._map(factors_task, "factors", "factors")
+        """The factors of every chosen matrix into the work directory (the plan's ranks, or per layer); with a
+        budget in bytes, each layer's planned stored form."""
+        if self.bytes:
+            results = self._map(forms_task, "forms", "forms")
+        else:
+            results = self._map(factors_task, "factors", "factors")
         self.results = {c.weight.name: r for c, r in zip(self.chosen.values(), results)}
         self.reused = sum(1 for r in results if r["cached"])
         for c, r in zip(self.chosen.values(), results):
@@ -315,6 +344,8 @@ class _Job:
             item = c.weight.nbytes // max(math.prod(c.weight.shape), 1)
             if e is None:
                 total += c.weight.nbytes
+            elif "bytes_after" in e:  # a bytes plan: the stored form (its bias beside it)
+                total += int(e["bytes_after"]) + (c.bias.nbytes if c.bias is not None else 0)
             elif is_factored_entry(e):
                 total += e["rank"] * sum(c.weight.shape) * item
         return total + 4096 * len(self.chosen)
