@@ -13,6 +13,12 @@ tensor so no mapping outlives its tensor) and written straight to the output fil
 last (into space reserved at the start of the file, padded with spaces as the safetensors spec allows). Peak
 memory is about one tensor's decomposition working set, not the checkpoint's size.
 
+A budget in bytes (``cost="bytes"``): the first pass prices every matrix's candidate forms (dense, factored,
+rounded plus a correction, at each allowed stored precision) in a task, the joint planner of
+:mod:`factorize.plan.forms` picks one per layer, and the second pass builds each layer's form in a task with
+:func:`factorize.rewrite.apply.apply_plan` on a one-layer model -- so the plan and the stored tensors are those of
+``compress(model, cost="bytes")``.
+
 Policies: ``rank``, ``keep`` and ``energy`` decide each layer from its own spectrum, so one pass suffices. A
 ``budget`` compares all layers, so it needs every spectrum before any rank is known: the first pass keeps only
 the singular values (k floats per layer) and the second decomposes again to get the factors. That second
@@ -78,8 +84,10 @@ def shrink_checkpoint(
         policy: a :class:`~factorize.plan.policy.Policy`, or its keywords as in :func:`factorize.compress`
             (budget / rank / energy / keep, multiple, overrides, seed); include / exclude match module names
             (``layers.*.mlp.*``) or tensor names; method ``"auto"`` (default), ``"exact"``, ``"gram"`` or
-            ``"randomized"``. ``cost="macs"`` and the activation-aware methods are refused: there is no model to
-            run here.
+            ``"randomized"``. ``cost="bytes"`` (with ``budget`` and optionally ``precisions``) chooses rank and
+            stored precision together, as :func:`factorize.compress` does with the plain error measure, and writes
+            each layer's stored form (docs/precision.md, "Out of core"). ``cost="macs"`` / ``"latency"`` and the
+            activation-aware methods are refused: there is no model to run here.
         options: a :class:`~factorize.outofcore.options.StreamOptions`, or its fields as keywords:
             ``precision`` (as in :func:`factorize.spectra.decompose.decompose`); ``force``; ``cache_dir`` (a
             spectrum cache directory or :class:`~factorize.spectra.cache.SpectrumCache` to reuse decompositions
