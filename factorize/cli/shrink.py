@@ -206,7 +206,9 @@ def next_steps(output: Path, loaded, report_path: Path | None) -> str:
     """What to do with the result: reload it, measure it on your own inputs, or review the report."""
     model = f"--model {loaded.source}" if loaded.kind == "callable" and loaded.path is None else \
         (f"--model {loaded.source} --weights {loaded.path}" if loaded.kind == "callable" else "--model <your builder>")
-    steps = [f"reload it with factorize.load(fresh_model, '{output}')",
+    reload = f"factorize.load_directory('{output}')" if (output / "config.json").is_file() else \
+        f"factorize.load(fresh_model, '{output}')"  # a directory with its config: no model to build by hand
+    steps = [f"reload it with {reload} (dtype=torch.float32 to compute in float32)",
              f"measure it on your own inputs: factorize compare {model} --against {output} --inputs FILE"]
     if report_path is not None:
         steps.append(f"review {report_path}")
