@@ -66,3 +66,21 @@ def test_weights_only_directory_output_by_default_beside_the_input_and_reloadabl
 
     model = factorize.load_directory(tmp_path / "model.factorized")
     assert isinstance(model, transformers.LlamaForCausalLM)
+
+
+def test_a_directory_without_config_is_its_bare_checkpoint(ckpt, tmp_path):
+    import shutil
+
+    bare = tmp_path / "bare"
+    bare.mkdir()
+    for p in ckpt.iterdir():
+        if p.name != "config.json":
+            shutil.copy(p, bare / p.name)
+    args = ["shrink", "--rank", "8", "--exclude", "*embed_tokens*", "-q", "--json"]
+    rc, out, err = _run([*args, "-m", str(bare), "-o", str(tmp_path / "by-dir")])
+    assert rc == 0, err
+    rc, _, err = _run([*args, "-m", str(bare / "model.safetensors.index.json"), "-o", str(tmp_path / "by-index")])
+    assert rc == 0, err
+    assert _files(tmp_path / "by-dir") == _files(tmp_path / "by-index")
+    assert "config.json" not in _files(tmp_path / "by-dir")  # no config to carry: not a transformers directory
+    assert json.loads(out)["report"]["title"] == "factorize shrink (weights-only)"
