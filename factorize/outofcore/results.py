@@ -41,10 +41,14 @@ def layer_reports(tensors: Mapping[str, Mapping]) -> list[LayerReport]:
     for row in tensors.values():
         m, n = row["shape"]
         rank = row["rank"] if is_factored_entry(row) else None
+        correction = row.get("correction_rank")
+        after = m * n if rank is None else rank * (m + n)
         layers.append(LayerReport(name=row["module"], kind="linear", shape=(m, n), rank=rank, params=m * n,
-                                  params_after=m * n if rank is None else rank * (m + n),
+                                  params_after=after + (correction or 0) * (m + n),
                                   weight_error=row.get("relative_error", 0.0 if rank is None else None),
-                                  predicted_error=row.get("predicted_error")))
+                                  predicted_error=row.get("predicted_error"), form=row.get("action", ""),
+                                  precision=row.get("precision"), bytes=row.get("bytes"),
+                                  bytes_after=row.get("bytes_after"), correction_rank=correction))
     return layers
 
 
