@@ -147,3 +147,19 @@ def test_command_line_bytes_budget_in_weights_only_mode(source, tmp_path):
     plan = json.loads(out.getvalue())["plan"]
     assert plan["selection"]["cost"] == "bytes" and plan["policy"]["precisions"] == ["int8", "int4g64"]
     assert "ignored" not in err.getvalue()
+
+
+def test_loading_in_float32_keeps_the_stored_codes_and_decodes_them_in_float32(source, tmp_path):
+    _, path = source
+    done = shrink_checkpoint(path, tmp_path / "out.safetensors", cost="bytes", budget=0.4)
+    written = load_file(str(tmp_path / "out.safetensors"))
+    model = factorize.load(_model().float(), tmp_path / "out.safetensors", dtype=torch.float32)
+    state = model.state_dict()
+    stored = [k for k in written if ".stored_weight." in k]
+    assert stored and all(state[k].dtype == written[k].dtype and torch.equal(state[k], written[k]) for k in stored)
+    dense = next(e.name for e in plan_entries(done.plan) if e.form == "dense" and e.precision == "int8")
+    q = written[f"{dense}.stored_weight.q"].numpy().astype(np.float32)
+    scale = written[f"{dense}.stored_weight.scale"].numpy()
+    layer = model.get_submodule(dense)
+    assert layer.weight.dtype == torch.float32
+    np.testing.assert_array_equal(layer.weight.detach().numpy(), q * scale[:, None])  # int8: W = q * scale per row
