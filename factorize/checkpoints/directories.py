@@ -296,12 +296,15 @@ def read_manifest(directory: str | os.PathLike) -> dict:
     return manifest
 
 
-def load_directory(directory: str | os.PathLike, *, device: str | torch.device | None = None) -> nn.Module:
+def load_directory(directory: str | os.PathLike, *, device: str | torch.device | None = None,
+                   dtype: torch.dtype | None = None) -> nn.Module:
     """Rebuild a compressed transformers model from a directory: the architecture from ``config.json`` (the class
     in ``architectures``; nothing is downloaded), the factored structure from the plan, then the weights.
 
-    Reads what :func:`save_directory` writes, and also a transformers directory whose ``model.safetensors`` is a
-    factorize checkpoint. Returns the model in eval mode, on ``device`` (default: CPU).
+    Reads what :func:`save_directory` writes, and also a transformers directory whose ``model.safetensors`` (or
+    ``model.safetensors.index.json``) is a factorize checkpoint: what ``shrink --blockwise`` and a weights-only
+    shrink of a directory write. Returns the model in eval mode, on ``device`` (default: CPU), in ``dtype``
+    (default: the dtype the weights were stored in; a floating dtype such as ``torch.float32`` casts them).
     """
     from factorize.checkpoints.files import load, read_plan
 
@@ -312,24 +315,25 @@ def load_directory(directory: str | os.PathLike, *, device: str | torch.device |
     if kind == "factorize":
         manifest = read_manifest(d)
         weights = d / manifest["weights"]
-        dtype = getattr(torch, str(manifest.get("dtype", "float32")), None)
+        stored_dtype = getattr(torch, str(manifest.get("dtype", "float32")), None)
         if read_plan(weights) != manifest.get("plan"):
             raise FactorizeError(f"{d}: the plan in {MANIFEST} differs from the one in {weights.name}",
                                  fix="the directory was edited or mixed; re-create it with save_directory")
     elif kind == "factorize-file":
         weights = next(d / n for n in ("model.safetensors.index.json", "model.safetensors") if (d / n).is_file())
-        dtype = None
     else:
         check_directory(d)  # raises for a plainly saved compressed model
         raise FactorizeError(f"{d}: holds no factorize checkpoint ({MANIFEST} or model.safetensors with a plan)",
                              fix="load an ordinary transformers directory with from_pretrained, or pass the "
                              "directory save_directory wrote")
     model = build_architecture(d)
-    if dtype is None:
-        dtype = _stored_dtype(weights)
-    if isinstance(dtype, torch.dtype) and dtype.is_floating_point:
-        model = model.to(dtype)
-    load(model, weights)
+    if dtype is not None:
+        load(model, weights, dtype=dtype)  # cast as loaded (checked there)
+    else:
+        stored = stored_dtype if kind == "factorize" else _stored_dtype(weights)
+        if isinstance(stored, torch.dtype) and stored.is_floating_point:
+            model = model.to(stored)
+        load(model, weights)
     if device is not None:
         model = model.to(device)
     return model.eval()

@@ -359,43 +359,72 @@ def save(
     return final
 
 
-def load(model: nn.Module, path: str | os.PathLike, *, strict: bool = True) -> nn.Module:
+def load(model: nn.Module, path: str | os.PathLike, *, strict: bool = True,
+         dtype: torch.dtype | None = None) -> nn.Module:
     """Rebuild the factored structure from the plan in ``path`` on ``model`` and load the weights.
 
     ``model`` must be a fresh (not factored) instance of the architecture the checkpoint was made from; it is
     modified in place and returned. Every missing, unexpected, mis-shaped or differently typed key is listed in
     one :class:`FactorizeError`, and the model is left as it was. With ``strict=False`` missing and unexpected
     keys are allowed (a warning lists them) and differing dtypes are cast; shapes must still match.
+
+    ``dtype`` (e.g. ``torch.float32``): the floating dtype the loaded model ends in, whatever dtype the model was
+    built in and the checkpoint stored (a weights-only shrink keeps the checkpoint's, often bfloat16): the model
+    is cast to the checkpoint's own dtype (:func:`checkpoint_dtype`) so the plan's forms are rebuilt as they were
+    saved, the tensors are loaded, then every floating parameter and buffer is cast to ``dtype``; stored weights
+    keep their stored tensors (codes, scales) and decode to ``dtype``. None (the default) loads as stored and,
+    when ``strict``, asks the model to be in the checkpoint's dtype already.
     """
     from factorize.model.sites import get_module, set_module
     from factorize.rewrite.apply import apply_plan, validate_plan
+    from factorize.rewrite.stored import cast_floating
 
     if not isinstance(model, nn.Module):
         raise FactorizeError(f"expected a torch.nn.Module, got {type(model).__name__}",
                              fix="build a fresh instance of the architecture and pass it")
+    if dtype is not None and not (isinstance(dtype, torch.dtype) and dtype.is_floating_point):
+        raise FactorizeError(f"dtype={dtype!r} is not a floating torch dtype", fix="pass e.g. dtype=torch.float32")
     ckpt = open_checkpoint(path)
     plan, aliases = _plan_and_aliases(ckpt, path)
     validate_plan(model, plan)
+    stored = checkpoint_dtype(ckpt) if dtype is not None else None
+    if stored is not None:  # the plan's forms are built as they were saved (a precision equal to the weight's own
+        cast_floating(model, stored)  # is no stored form), then everything is cast to ``dtype``
     names = factored_names(plan)
     originals = {n: get_module(model, n) for n in names}
     apply_plan(model, plan, weights=False, inplace=True)
     try:
-        _load_weights(model, ckpt, aliases, strict, path)
+        _load_weights(model, ckpt, aliases, strict, path, cast=dtype is not None)
     except BaseException:
         for n, m in originals.items():
             set_module(model, n, m)
         raise
+    if dtype is not None:
+        cast_floating(model, dtype)
     return model
 
 
-def _load_weights(model: nn.Module, ckpt: Checkpoint, aliases: Mapping[str, str], strict: bool, path) -> None:
+def checkpoint_dtype(ckpt: Checkpoint) -> torch.dtype | None:
+    """The floating dtype holding most of a checkpoint's bytes outside stored weights (codes and scales of a stored
+    precision have their own): the dtype its model was saved in. None when it holds no such tensor."""
+    totals: dict[torch.dtype, int] = {}
+    for h in ckpt.files:
+        for name, info in h.tensors.items():
+            t = info.torch_dtype
+            if t is not None and t.is_floating_point and ".stored_weight." not in name:
+                totals[t] = totals.get(t, 0) + info.nbytes
+    return max(totals, key=lambda t: (totals[t], str(t))) if totals else None
+
+
+def _load_weights(model: nn.Module, ckpt: Checkpoint, aliases: Mapping[str, str], strict: bool, path, *,
+                  cast: bool = False) -> None:
     expected = model.state_dict()
     where = ckpt.locate()
     stored = {k: where[k].tensors[k] for k in where}
     for alias, key in aliases.items():
         if key in stored:
             stored.setdefault(alias, stored[key])
-    problems, notes = _compare(expected, stored, _tied_groups(expected), strict)
+    problems, notes = _compare(expected, stored, _tied_groups(expected), strict, cast)
     if problems:
         raise FactorizeError(
             f"{path}: the checkpoint does not fit this model", problems,
@@ -422,7 +451,7 @@ def _tied_groups(expected: Mapping[str, torch.Tensor]) -> dict[str, set[str]]:
     return {k: g - {k} for g in by_ptr.values() for k in g}
 
 
-def _compare(expected, stored, tied, strict) -> tuple[list[str], list[str]]:
+def _compare(expected, stored, tied, strict, cast=False) -> tuple[list[str], list[str]]:
     problems, notes = [], []
     for k, t in expected.items():
         info = stored.get(k)
@@ -432,7 +461,8 @@ def _compare(expected, stored, tied, strict) -> tuple[list[str], list[str]]:
             (problems if strict else notes).append(f"{k}: missing from the file (model has {list(t.shape)})")
         elif tuple(t.shape) != info.shape:
             problems.append(f"{k}: file has shape {list(info.shape)}, model has {list(t.shape)}")
-        elif info.torch_dtype != t.dtype:
+        elif info.torch_dtype != t.dtype and not (cast and t.is_floating_point() and info.torch_dtype is not None
+                                                  and info.torch_dtype.is_floating_point):
             msg = f"{k}: file has {info.dtype}, model has {str(t.dtype).removeprefix('torch.')}"
             (problems if strict else notes).append(msg + ("" if strict else " (cast)"))
     for k in stored:

@@ -12,7 +12,8 @@
   ``model.safetensors`` holds factored layers without a plan (``save_pretrained`` on a compressed model) is refused.
 * a bare ``.safetensors`` file, or the ``*.safetensors.index.json`` of a sharded checkpoint -- weights-only mode
   (:mod:`factorize.outofcore.weights_only`): no architecture, so its 2-D tensors are factored and reported by
-  weight error only.
+  weight error only. A directory holding one of them reads the same way when it has no ``config.json``, or when
+  the caller asks for the checkpoint alone (``checkpoint_only=True``: ``shrink --cluster``).
 * pickled checkpoints (``.pt``, ``.pth``, ``.bin``, ``.ckpt``, ``.pkl``) are refused: unpickling can run arbitrary
   code. ``allow_pickle=True`` (``--allow-pickle``) loads them with ``torch.load(weights_only=True)``, which
   restricts unpickling to tensors and plain containers.
@@ -63,14 +64,19 @@ class LoadedModel:
         return self.source == DEFAULT_SPEC
 
 
-def load_model(spec: str, *, weights: str | os.PathLike | None = None, allow_pickle: bool = False) -> LoadedModel:
-    """Resolve ``--model`` (and ``--weights``) to a :class:`LoadedModel`; see the module docstring."""
-    if weights is not None and not _looks_like_callable(spec):
+def load_model(spec: str, *, weights: str | os.PathLike | None = None, allow_pickle: bool = False,
+               checkpoint_only: bool = False) -> LoadedModel:
+    """Resolve ``--model`` (and ``--weights``) to a :class:`LoadedModel`; see the module docstring.
+
+    ``checkpoint_only``: a directory is read as the bare checkpoint it holds (weights-only mode, as its
+    ``*.safetensors.index.json`` or its single ``.safetensors`` file would be), and the model is not loaded --
+    what a shrink whose tasks run elsewhere (``--cluster``) needs. Only the headers are read."""
+    if weights is not None and not looks_like_callable(spec):
         raise FactorizeError(
             f"--weights goes with a 'package.module:callable' model, not {spec!r}",
             fix="name the code that builds the architecture with --model package.module:callable, or drop --weights",
         )
-    if _looks_like_callable(spec):
+    if looks_like_callable(spec):
         model, build = _from_callable(spec)
         if weights is not None:
             model = load_weights(model, weights, allow_pickle=allow_pickle)
@@ -78,6 +84,8 @@ def load_model(spec: str, *, weights: str | os.PathLike | None = None, allow_pic
                            path=Path(weights) if weights is not None else None, build=build)
     path = Path(spec)
     _check_readable(path)
+    if path.is_dir() and (checkpoint_only or not (path / "config.json").is_file()):
+        return _bare_directory(path, spec, checkpoint_only)
     if path.is_dir():
         return _from_directory(path, allow_pickle=allow_pickle)
     if path.suffix.lower() in PICKLE_SUFFIXES:
@@ -98,7 +106,8 @@ def load_model(spec: str, *, weights: str | os.PathLike | None = None, allow_pic
 # package.module:callable
 
 
-def _looks_like_callable(spec: str) -> bool:
+def looks_like_callable(spec: str) -> bool:
+    """Whether ``--model spec`` names ``package.module:callable`` (code to run) rather than a path on disk."""
     module, sep, attr = spec.partition(":")
     if not sep or not module or not attr or os.path.exists(spec):
         return False
@@ -331,6 +340,18 @@ def _from_directory(path: Path, *, allow_pickle: bool) -> LoadedModel:
     tokenizer = _tokenizer(transformers, path)
     return LoadedModel(source=str(path), kind="transformers", model=model.eval(), path=path, tokenizer=tokenizer,
                        build=build)
+
+
+def _bare_directory(path: Path, spec: str, asked: bool) -> LoadedModel:
+    """A directory read as the bare checkpoint it holds (weights-only mode), headers checked, nothing loaded."""
+    from factorize.checkpoints.files import open_checkpoint
+
+    if not asked and not any(path.glob("*.safetensors")) and not any(path.glob("*.safetensors.index.json")):
+        raise FactorizeError(f"{path}: a directory without config.json is not a transformers model, and it holds no "
+                             ".safetensors checkpoint either",
+                             fix="point --model at the directory saved by save_pretrained(), or at a file")
+    open_checkpoint(path)  # which checkpoint (the index, or the one file), every header checked
+    return LoadedModel(source=spec, kind="weights", path=path)
 
 
 def _pickle_refused(pickled: list[Path], err: Exception) -> FactorizeError:

@@ -49,7 +49,9 @@ def load(args, ui: UI) -> LoadedModel:
 
             hf_logging.disable_progress_bar()
     device = compute_device(args)  # a missing GPU is reported before the model is loaded
-    loaded = load_model(args.model, weights=args.weights, allow_pickle=args.allow_pickle)
+    checkpoint_only = getattr(args, "cluster", None) is not None  # tasks run elsewhere: never load the model here
+    loaded = load_model(args.model, weights=args.weights, allow_pickle=args.allow_pickle,
+                        checkpoint_only=checkpoint_only)
     ui.note(f"model: {loaded.source} ({loaded.kind})")
     if device is not None and loaded.model is not None:
         loaded.model.to(device)  # inputs follow the model (measure.inputs.prepare), factors are built beside it
@@ -381,6 +383,8 @@ def output_path(args, loaded: LoadedModel) -> Path:
     if base is None:  # a callable without a weights file: name it after the callable, in the working directory
         return Path(args.model.rpartition(":")[2].replace(".", "_") + OUTPUT_SUFFIX)
     base = Path(base)
+    if base.is_dir() and loaded.weights_only:  # a bare checkpoint's directory gives a directory, as its index does
+        return base.parent / (base.name + OUTPUT_SUFFIX.removesuffix(".safetensors"))
     if base.is_dir():
         return base.parent / (base.name + OUTPUT_SUFFIX)
     if sharded(base):  # a sharded checkpoint gives a directory of shards
@@ -398,6 +402,11 @@ def writes_directory(args, loaded: LoadedModel, output: Path) -> bool:
 
 def sharded(path: Path | None) -> bool:
     return path is not None and Path(path).name.endswith(".safetensors.index.json")
+
+
+def directory_output(loaded: LoadedModel) -> bool:
+    """Whether a weights-only shrink of ``loaded`` writes a directory: a sharded index or a directory given."""
+    return loaded.weights_only and loaded.path is not None and (sharded(loaded.path) or Path(loaded.path).is_dir())
 
 
 def check_outputs(paths: Sequence[Path | None], force: bool, *, directory: Path | None = None) -> None:

@@ -312,8 +312,10 @@ def _quality_options(*, shrink: bool):
                    help="decompose N layers at a time (threads; results equal a serial run)")
     if shrink:
         g.add_argument("--cluster", type=_cluster, metavar="ADDRESS|local:N",
-                       help="weights-only mode: run the per-matrix decompositions as tasks on a Dask cluster: "
-                       "local:N starts N worker processes here, tcp://HOST:PORT uses a running scheduler (the "
+                       help="run the out-of-core shrink's per-matrix work as tasks on a Dask cluster: the weights-only "
+                       "shrink of a checkpoint (a .safetensors file, its index, or their directory, which is then "
+                       "read as its bare checkpoint and never loaded whole), or with --blockwise the block-by-block "
+                       "one. local:N starts N worker processes here, tcp://HOST:PORT uses a running scheduler (the "
                        "checkpoint, and --cache if given, must be at the same path on every worker); needs "
                        "the cluster extra (pip install \".[cluster]\" in a checkout). The output is byte-identical to "
                        "a run without it")
@@ -333,9 +335,10 @@ def _quality_options(*, shrink: bool):
                        help="learning-rate schedule for --heal: constant (default), or cosine (a 5%% linear warm-up, "
                        "then a half cosine down to zero)")
         g.add_argument("--blockwise", action="store_true",
-                       help="with --calibration and a transformers directory (Llama-family): load, calibrate and "
-                       "factor one block at a time from the (sharded) checkpoint, for models larger than memory; "
-                       "writes a directory of shards")
+                       help="with --calibration and a transformers directory (or its index or single weights "
+                       "file) of an architecture the block-by-block shrink supports (docs/cli.md; others are refused "
+                       "naming what is missing): load, calibrate and factor one block at a time from the (sharded) "
+                       "checkpoint, for models larger than memory; writes a directory of shards")
         g.add_argument("--speed-check", action="store_true",
                        help="time each factored layer against its dense form here (batch 1 and 32) and keep dense "
                        "the ones that are slower")

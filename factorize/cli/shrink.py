@@ -8,7 +8,8 @@ from pathlib import Path
 
 from factorize.checkpoints import files
 from factorize.checkpoints.directories import extra_files, save_directory
-from factorize.errors import FactorizeError
+from factorize.checkpoints.models import looks_like_callable
+from factorize.errors import FactorizeError, printable
 from factorize.measure.evaluate import evaluate, layer_reports
 from factorize.measure.report import Report, render_rich
 from factorize.model.count import count_bytes, count_parameters
@@ -24,6 +25,7 @@ from .common import (
     calibration_inputs,
     check_no_clobber,
     check_outputs,
+    directory_output,
     load,
     max_drift_check,
     optional_path,
@@ -48,7 +50,13 @@ def run(args, ui: UI) -> dict:
     policy = opts.policy()  # a bad policy is reported before the model is loaded
     if getattr(args, "blockwise", False):  # the model is never loaded whole
         return _shrink_blockwise(args, opts, policy, ui)
-    loaded = load(args, ui)
+    if getattr(args, "cluster", None) is not None and (args.weights or looks_like_callable(args.model)):
+        raise FactorizeError("--cluster runs the weights-only shrink of a safetensors checkpoint (or, with "
+                             "--blockwise, the block-by-block shrink of a transformers directory); a model given "
+                             "with its code is compressed in this process",
+                             fix="drop --cluster, or pass the checkpoint: --model DIR, DIR/model.safetensors or "
+                                 "DIR/model.safetensors.index.json")
+    loaded = load(args, ui)  # with --cluster a directory is read as its bare checkpoint: nothing large is loaded
     output = output_path(args, loaded)
     report_path = optional_path(args.report)
     check_no_clobber(args, _outputs(args, output))  # the default output name is known now
@@ -57,7 +65,7 @@ def run(args, ui: UI) -> dict:
                              fix="choose another --output")
     as_directory = writes_directory(args, loaded, output)
     check_outputs([output, report_path], args.force,
-                  directory=output if sharded(loaded.path) or as_directory else None)
+                  directory=output if sharded(loaded.path) or as_directory or directory_output(loaded) else None)
     ran: dict = {}
     if loaded.weights_only:
         if args.max_drift is not None:
@@ -65,11 +73,6 @@ def run(args, ui: UI) -> dict:
                                  fix="pass --model package.module:callable --weights FILE to measure drift")
         report, plan, ran = _shrink_weights_only(args, loaded, output, opts, ui)
     else:
-        if getattr(args, "cluster", None) is not None:
-            raise FactorizeError("--cluster runs the weights-only shrink of a safetensors checkpoint; a model given "
-                                 "with its code is compressed in this process",
-                                 fix="drop --cluster, or pass the bare checkpoint: --model FILE.safetensors (or a "
-                                     "sharded checkpoint's index or directory)")
         report, plan = _shrink_model(args, loaded, output, opts, policy, ui, as_directory)
     if report_path is not None:
         try:
@@ -203,7 +206,9 @@ def next_steps(output: Path, loaded, report_path: Path | None) -> str:
     """What to do with the result: reload it, measure it on your own inputs, or review the report."""
     model = f"--model {loaded.source}" if loaded.kind == "callable" and loaded.path is None else \
         (f"--model {loaded.source} --weights {loaded.path}" if loaded.kind == "callable" else "--model <your builder>")
-    steps = [f"reload it with factorize.load(fresh_model, '{output}')",
+    reload = f"factorize.load_directory('{output}')" if (output / "config.json").is_file() else \
+        f"factorize.load(fresh_model, '{output}')"  # a directory with its config: no model to build by hand
+    steps = [f"reload it with {reload} (dtype=torch.float32 to compute in float32)",
              f"measure it on your own inputs: factorize compare {model} --against {output} --inputs FILE"]
     if report_path is not None:
         steps.append(f"review {report_path}")
@@ -241,8 +246,8 @@ def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
 def _shrink_weights_only(args, loaded, output: Path, opts: Options, ui: UI):
     weights_only_checks(args)
     policy = opts.policy()
-    if policy.cost != "params":
-        ui.warn("weights-only mode counts parameters only: the recipe's cost is ignored")
+    if policy.cost not in ("params", "bytes"):  # time and multiply-accumulates need the model to run
+        ui.warn(f"weights-only mode counts parameters or stored bytes, not {policy.cost}: the cost is ignored")
         policy = dataclasses.replace(policy, cost="params")
     with weights_file(loaded) as src:
         done = shrink_checkpoint(src, output, policy, force=args.force, progress=ui.progress, cache_dir=args.cache,
@@ -256,15 +261,33 @@ BLOCKWISE_REFUSED = (("--inputs", "inputs"), ("--random-inputs", "random_inputs"
                      ("--weights", "weights"), ("--dtype", "dtype"), ("--device", "device"))
 
 
+def checkpoint_directory(path: Path) -> Path:
+    """The transformers directory behind ``--model`` for --blockwise: the directory itself, or the one holding the
+    ``*.safetensors.index.json`` or single ``.safetensors`` file given, when that file is the checkpoint the
+    directory holds (so a directory, its index and its single file name the same model)."""
+    from factorize.checkpoints.files import open_checkpoint
+
+    if path.is_dir():
+        return path
+    named = path.name.endswith(".safetensors.index.json") or path.suffix == ".safetensors"
+    parent = path.parent if str(path.parent) else Path(".")
+    if named and path.is_file() and (parent / "config.json").is_file():
+        ckpt = open_checkpoint(parent)
+        held = ckpt.index if ckpt.index is not None else ckpt.files[0].path
+        if held.resolve() == path.resolve():
+            return parent
+    raise FactorizeError(f"--blockwise: --model {printable(str(path))} is not a transformers directory, nor the "
+                         "index or single weights file of one",
+                         fix="pass a transformers model directory (config.json and safetensors shards), or its "
+                             "*.safetensors.index.json")
+
+
 def _shrink_blockwise(args, opts: Options, policy, ui: UI) -> dict:
     """--blockwise: the calibrated shrink of a transformers directory one block at a time (never loaded whole)."""
     from factorize.measure.inputs import load_inputs
     from factorize.outofcore.blockwise import shrink_blockwise
 
-    model_dir = Path(args.model)
-    if not model_dir.is_dir():
-        raise FactorizeError(f"--blockwise: --model {args.model} is not a directory",
-                             fix="pass a transformers model directory (config.json and safetensors shards)")
+    model_dir = checkpoint_directory(Path(args.model))
     if not getattr(args, "calibration", None):
         raise FactorizeError("--blockwise needs --calibration FILE (token ids, or text with the model's tokenizer)",
                              fix="pass --calibration with sample inputs of your own")

@@ -23,6 +23,17 @@ WEIGHTS_ONLY_NOTE = ("weights-only mode: there is no architecture to run, so out
 MEMORY_KEYS = ("peak_rss_bytes", "block_bytes", "activation_bytes", "bound_bytes", "bound_met")
 
 
+def no_drift_caution(why: str, compare: str) -> str:
+    """The caution of a report that measured no drift: says so (``why``), how to measure it (``compare``: the
+    command), and still that drift on samples is no guarantee and safety-relevant uses need re-validation (the
+    caution :data:`factorize.measure.report.CAUTION` gives where drift is measured)."""
+    return (f"No output drift was measured here ({why}): the weight errors above say how close each layer is, not "
+            f"how the model behaves. Measure drift on inputs of your own before using the result: {compare}. Even "
+            "then, drift on sample inputs is no guarantee of how the compressed model behaves on other inputs; where "
+            "the model is used in a safety-relevant setting, validate the compressed model again under the rules "
+            "that govern that setting before deploying it.")
+
+
 def layer_reports(tensors: Mapping[str, Mapping]) -> list[LayerReport]:
     """One :class:`LayerReport` per written linear weight: sizes and the predicted (Eckart-Young) and measured
     weight errors only, since there is no architecture to run."""
@@ -30,10 +41,14 @@ def layer_reports(tensors: Mapping[str, Mapping]) -> list[LayerReport]:
     for row in tensors.values():
         m, n = row["shape"]
         rank = row["rank"] if is_factored_entry(row) else None
+        correction = row.get("correction_rank")
+        after = m * n if rank is None else rank * (m + n)
         layers.append(LayerReport(name=row["module"], kind="linear", shape=(m, n), rank=rank, params=m * n,
-                                  params_after=m * n if rank is None else rank * (m + n),
+                                  params_after=after + (correction or 0) * (m + n),
                                   weight_error=row.get("relative_error", 0.0 if rank is None else None),
-                                  predicted_error=row.get("predicted_error")))
+                                  predicted_error=row.get("predicted_error"), form=row.get("action", ""),
+                                  precision=row.get("precision"), bytes=row.get("bytes"),
+                                  bytes_after=row.get("bytes_after"), correction_rank=correction))
     return layers
 
 
@@ -79,9 +94,13 @@ class CheckpointShrink:
         notes = [WEIGHTS_ONLY_NOTE, *engine_note(self.engine)]
         if self.redone:
             notes.append("redone after a worker was lost or an earlier run stopped part way: " + ", ".join(self.redone))
+        out = self.files[-1] if self.files else "OUTPUT"
+        compare = (f"factorize compare --model YOUR_MODEL --against {out} --inputs FILE (with --weights {source} "
+                   "when --model is your code)")
         return Report(title="factorize shrink (weights-only)", model=source, params_before=self.params_before,
                       params_after=self.params_after, bytes_before=self.bytes_before, bytes_after=self.bytes_after,
-                      layers=layer_reports(self.tensors), policy=self.plan["policy"], notes=notes)
+                      layers=layer_reports(self.tensors), policy=self.plan["policy"], notes=notes,
+                      caution=no_drift_caution("weights-only mode has no architecture to run", compare))
 
 
 @dataclass(frozen=True)
@@ -138,6 +157,10 @@ class BlockwiseShrink:
                   f"{calibration}"), self.memory_note(),
                  ("output drift was not measured (the whole model is never in memory here): load the output with "
                   f"factorize.load_directory('{self.output}') and run 'factorize compare' on real inputs")]
+        compare = (f"on a machine that holds the model, factorize compare --model {source} --against {self.output} "
+                   "--inputs FILE")
         return Report(title="factorize shrink (block by block)", model=source, params_before=self.params_before,
                       params_after=self.params_after, bytes_before=self.bytes_before, bytes_after=self.bytes_after,
-                      layers=layer_reports(self.tensors), policy=self.plan["policy"], notes=notes)
+                      layers=layer_reports(self.tensors), policy=self.plan["policy"], notes=notes,
+                      caution=no_drift_caution("the whole model is never in memory in a block-by-block shrink",
+                                               compare))

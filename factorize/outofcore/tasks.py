@@ -14,6 +14,7 @@ second attempt, and the run reports it as redone.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import os
@@ -27,7 +28,8 @@ import torch
 from factorize.errors import FactorizeError
 from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
-from factorize.plan.entries import is_factored_entry
+from factorize.plan.entries import DENSE, entry_form, is_factored_entry
+from factorize.plan.forms import native_precision
 from factorize.plan.policy import Policy
 from factorize.plan.ranks import choose_ranks
 from factorize.spectra.cache import SpectrumCache
@@ -67,6 +69,8 @@ class MatrixTask:
     fault: Callable | None = None  # tests only: called with (task, attempt) after the attempt is recorded
     values: Spectrum | None = None  # values-first budget route: pass 1's singular values, for leading() in pass 2
     values_first: bool = False  # the values-first route (factorize.plan.policy.values_first): Gram values in pass 1
+    bias_shard: str | None = None  # the layer's bias (cost="bytes": the stored forms carry it), when it has one
+    bias_name: str | None = None
 
     def marker(self) -> Path:
         desc = json.dumps([self.kind, self.shard, self.name, self.method, self.k, self.seed, self.precision,
@@ -177,6 +181,117 @@ def factors_task(task: MatrixTask) -> dict:
     entry, error = found
     return {"entry": entry, "relative_error": error, "file": str(path) if is_factored_entry(entry) else None,
             "attempts": attempt, "cached": cached, "cache": _cache_counts(cache)}
+
+
+def price_task(task: MatrixTask) -> dict:
+    """Pass 1 of a budget in bytes (``task.policy.cost == "bytes"``): one matrix's candidate forms -- dense, factored
+    and corrected at each allowed precision, priced in stored bytes with their predicted errors
+    (:func:`factorize.plan.forms.price_site`, the plain error measure: there is no calibration here) -- and its
+    spectrum without vectors (what the plan rows read). As :func:`factorize.compress` prices a layer."""
+    from factorize.plan.forms import price_site
+
+    attempt = start_attempt(task)
+    if task.fault is not None:
+        task.fault(task, attempt)
+    W = _read_in_task(task)  # (out, in)
+    cache = _task_cache(task)
+    spec = spectrum_for(W, task.site, task.method, None, task.seed, task.precision, cache)
+    candidates, scale, notes = price_site(task.site, W, spec, task.policy)
+    remove_quietly(task.marker())
+    return {"candidates": candidates, "scale": scale, "notes": notes, "values": spec.without_vectors(),
+            "attempts": attempt, "cache": _cache_counts(cache)}
+
+
+FORMS_KEY = "factorize.state"  # a stored-forms result's metadata: the layer's state-dict suffixes, in order
+
+
+def forms_task(task: MatrixTask) -> dict:
+    """Pass 2 of a budget in bytes: the plan entry's form of one layer (factored, rounded, or rounded plus a
+    correction), built by :func:`factorize.rewrite.apply.apply_plan` on a one-layer model holding the weight and
+    bias -- the code :func:`factorize.compress` runs -- and stored in the work directory as the layer's state dict
+    (suffixes such as ``first.stored_weight.q``; their order in the metadata), with the relative weight error of
+    the stored form. A layer the plan keeps dense in its own precision needs no file. A result already there is
+    reused."""
+    attempt = start_attempt(task)
+    if task.fault is not None:
+        task.fault(task, attempt)
+    W = _read_in_task(task)  # (out, in)
+    bias = None
+    if task.bias_name is not None:
+        bias = _read_in_task(dataclasses.replace(task, shard=task.bias_shard, name=task.bias_name))
+    extra = {"result": "forms", "entry": task.entry,
+             "bias": None if bias is None else hashlib.blake2b(_bytes_of(bias), digest_size=16).hexdigest()}
+    key = SpectrumCache.key(W, task.method, extra=json.dumps(extra, sort_keys=True), rank=None, seed=task.seed,
+                            precision=task.precision)
+    path = Path(task.work_dir) / f"{key}{RESULT_SUFFIX}"
+    cache = _task_cache(task)
+    found = stored_result(path, key)
+    cached = found is not None
+    if found is None:
+        tensors, error = _stored_forms(W, bias, task, cache)
+        meta = {"factorize.key": key, "factorize.entry": json.dumps(task.entry, sort_keys=True),
+                "factorize.relative_error": float(error).hex(), FORMS_KEY: json.dumps(list(tensors))}
+        write_atomic(path, lambda tmp: write_safetensors(tmp, tensors, meta), force=True)
+        found = stored_result(path, key)
+        if found is None:
+            raise FactorizeError(f"{path}: the result just written cannot be read back",
+                                 fix="check the work directory's storage")
+    remove_quietly(task.marker())
+    entry, error = found
+    kept = entry_form(entry) == DENSE and entry.get("precision") in (None, native_precision(W.dtype))
+    return {"entry": entry, "relative_error": error, "file": None if kept else str(path), "attempts": attempt,
+            "cached": cached, "cache": _cache_counts(cache)}
+
+
+def _bytes_of(t: torch.Tensor) -> bytes:
+    return t.detach().contiguous().reshape(-1).view(torch.uint8).numpy().tobytes()
+
+
+def _stored_forms(W: torch.Tensor, bias: torch.Tensor | None, task: MatrixTask,
+                  cache: SpectrumCache | None) -> tuple[dict[str, torch.Tensor], float]:
+    """(the layer's state dict in its planned form, ||W - W_stored||_F / ||W||_F); nothing for a layer kept as it
+    is. The spectrum is the one pass 1 priced (same method, seed and precision; from the cache when given)."""
+    from torch import nn
+
+    from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
+    from factorize.rewrite.apply import apply_plan
+
+    entry = task.entry
+    if entry_form(entry) == DENSE and entry.get("precision") in (None, native_precision(W.dtype)):
+        return {}, 0.0
+    m, n = W.shape
+    layer = nn.Linear(n, m, bias=bias is not None, dtype=W.dtype)
+    with torch.no_grad():
+        layer.weight.copy_(W)
+        if bias is not None:
+            layer.bias.copy_(bias)
+    holder = nn.Module()
+    holder.add_module("layer", layer)
+    spectra = {}
+    if is_factored_entry(entry):
+        spectra["layer"] = spectrum_for(W, task.site, task.method, None, task.seed, task.precision, cache)
+    plan = {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": task.method, "policy": {},
+            "sites": {"layer": entry}}
+    apply_plan(holder, plan, spectra=spectra, inplace=True)
+    built = holder.layer
+    state = {k: v.detach().contiguous() for k, v in built.state_dict().items()}
+    return state, stored_error(W, built)
+
+
+def stored_error(W: torch.Tensor, layer) -> float:
+    """||W - W_stored||_F / ||W||_F of a linear layer in any stored form (factored: B A from the decoded thin
+    weights; rounded: the decoded weight; corrected: the decoded base plus B A), float64 accumulation."""
+    if hasattr(layer, "first") and hasattr(layer, "second") and not hasattr(layer, "base"):
+        return relative_error(W, layer.second.weight.detach(), layer.first.weight.detach())
+    with torch.no_grad():
+        if hasattr(layer, "base"):  # the decoded parts, summed in float64 (not the layer's own rounded sum)
+            B, A = (t.weight.detach().to(torch.float64) for t in (layer.second, layer.first))
+            Wd = layer.base.weight.detach().to(torch.float64) + B @ A
+        else:
+            Wd = layer.weight.detach().to(torch.float64)
+    W64 = W.detach().to(torch.float64)
+    den = float(W64.pow(2).sum())
+    return float((W64 - Wd).pow(2).sum() / den) ** 0.5 if den > 0 else 0.0
 
 
 def stored_result(path: Path, key: str) -> tuple[dict, float] | None:

@@ -37,6 +37,7 @@ from factorize.checkpoints.files import (
 from factorize.errors import FactorizeError, printable
 from factorize.model.sites import Site
 from factorize.outofcore.candidates import Candidate
+from factorize.outofcore.tasks import FORMS_KEY
 from factorize.plan.entries import entry_form, is_factored_entry
 from factorize.plan.policy import Policy
 from factorize.storage import (
@@ -44,6 +45,7 @@ from factorize.storage import (
     Header,
     create_temp,
     publish,
+    read_header,
     read_tensor,
     remove_quietly,
     safetensors_header,
@@ -126,6 +128,8 @@ def plan_bound(sites: list[Site], policy: Policy) -> int:
     return 4096 + sum(1024 + 2 * len(s.name) + patterns for s in sites)
 
 
+STORED_KEYS = 8  # most tensors a layer's stored form holds (corrected: base q, scale, bias; first and second q)
+STORED_ROW_KEYS = ("precision", "bytes", "bytes_after", "correction_rank")  # copied from a bytes plan's entry
 FactorsOf = Callable[[Candidate, dict], tuple[str | None, float]]  # (layer, plan entry) -> (factor file, error)
 
 
@@ -139,8 +143,9 @@ class CheckpointWriter:
     """
 
     def __init__(self, ckpt: Checkpoint, chosen: list[Candidate], factors_of: FactorsOf, *, plan_reserve: int,
-                 progress: bool = False) -> None:
+                 progress: bool = False, stored_forms: bool = False) -> None:
         self.ckpt, self.factors_of, self.plan_reserve, self.progress = ckpt, factors_of, plan_reserve, progress
+        self.stored_forms = stored_forms  # a bytes plan: up to STORED_KEYS tensors a layer, with longer names
         self.chosen = {c.weight.name: c for c in chosen}
         self.biases = {c.bias.name: c for c in chosen if c.bias is not None}
         self.report: dict[str, dict] = {}
@@ -156,7 +161,9 @@ class CheckpointWriter:
             for name, info in h.tensors.items():
                 c = self.chosen.get(name)
                 e = entries.get(c.module) if c else None
-                if is_factored_entry(e):
+                if e is not None and "bytes_after" in e:  # a bytes plan: the stored form's exact bytes
+                    total += int(e["bytes_after"])
+                elif is_factored_entry(e):
                     item = info.nbytes // max(math.prod(info.shape), 1)
                     total += e["rank"] * sum(info.shape) * item
                 else:
@@ -169,22 +176,28 @@ class CheckpointWriter:
         for name, info in h.tensors.items():
             c = self.chosen.get(name)
             n += entry_bound(name, len(info.shape))
-            if c is not None:
+            if c is not None and self.stored_forms:
+                n += STORED_KEYS * entry_bound(c.module + ".second.stored_weight.scale", 2)
+            elif c is not None:
                 n += 2 * entry_bound(c.module + ".second.weight", 2)
                 if c.bias is not None:
                     n += 2 * entry_bound(c.module + ".second.bias", 1)
         return n
 
     def write_all(self, finals: list[Path], plan: dict, metadata: Mapping[str, str] | None, *,
-                  force: bool) -> list[Path]:
-        """Write every output file to a temporary name, then rename them all into place (index last)."""
+                  force: bool, side: list[tuple[Path, Path]] = ()) -> list[Path]:
+        """Write every output file to a temporary name, then rename them all into place (index last). ``side``:
+        (source, destination) of files copied unchanged beside them (a transformers directory's config and
+        tokenizer), published before the weights."""
         self.entries = dict(plan["sites"])
         temps: list[Path] = []
         writers: list[ShardWriter] = []
         done: list[Path] = []
         try:
+            for src, dst in side:
+                temps.append(copy_to_temp(src, dst))
             self._write_files(finals, plan, metadata, writers, temps)
-            for tmp, final in zip(temps, finals):
+            for tmp, final in zip(temps, [dst for _, dst in side] + finals):
                 publish(tmp, final, force=force)
                 done.append(final)
         except OSError as e:
@@ -195,7 +208,7 @@ class CheckpointWriter:
         except BaseException:
             self._cleanup(writers, temps, done)
             raise
-        return done
+        return done[len(side):]
 
     def _write_files(self, finals: list[Path], plan: dict, metadata, writers: list, temps: list) -> None:
         from factorize._version import __version__
@@ -237,13 +250,16 @@ class CheckpointWriter:
                 self._write_layer(c, w)
 
     def _write_layer(self, c: Candidate, w: ShardWriter) -> None:
-        """One layer into the output: its factors from its factor file, or the weight unchanged."""
+        """One layer into the output: its factors (or stored form) from its result file, or the weight unchanged."""
         entry = self.entries[c.module]
         file, error = self.factors_of(c, entry)
         bias = c.read_bias()
         row = {"module": c.module, "shape": list(c.weight.shape), "action": entry_form(entry), "rank": entry["rank"],
                "predicted_error": float(entry.get("predicted_error", 0.0)), "relative_error": error}
-        if is_factored_entry(entry):
+        row.update({k: entry[k] for k in STORED_ROW_KEYS if k in entry})
+        if file is not None and FORMS_KEY in read_header(file).metadata:  # a stored form (cost="bytes")
+            self._write_stored(c, file, entry, w)  # the bias among its tensors
+        elif is_factored_entry(entry):
             with safe_open(file, framework="pt", device="cpu") as f:
                 A = f.get_tensor("first")  # (r, in)
                 w.add(c.module + ".first.weight", A)
@@ -264,6 +280,26 @@ class CheckpointWriter:
         if bias is not None:
             self.params_after += bias.numel()
         self.report[c.weight.name] = row
+
+    def _write_stored(self, c: Candidate, file: str, entry: dict, w: ShardWriter) -> None:
+        """A layer in its planned stored form: the tensors of its state dict, in the order the task recorded,
+        under ``<module>.<suffix>`` (the bias among them); parameters counted as the plan counts them."""
+        names = json.loads(read_header(file).metadata[FORMS_KEY])
+        with safe_open(file, framework="pt", device="cpu") as f:
+            for suffix in names:
+                w.add(f"{c.module}.{suffix}", f.get_tensor(suffix))
+        self.params_after += int(entry["params_after"])
+
+
+def copy_to_temp(src: Path, final: Path) -> Path:
+    """A byte-for-byte copy of ``src`` under a temporary name beside ``final`` (its folder created if needed)."""
+    final.parent.mkdir(parents=True, exist_ok=True)
+    tmp, fd = create_temp(final)
+    with os.fdopen(fd, "wb") as f, open(src, "rb") as g:
+        shutil.copyfileobj(g, f, 16 * 2**20)
+        f.flush()
+        os.fsync(f.fileno())
+    return tmp
 
 
 def _write_index(final: Path, plan: dict, weight_map: dict[str, str], total: int, metadata) -> Path:

@@ -371,16 +371,24 @@ def price_sites(model: torch.nn.Module, sites: Sequence[Site], spectra: Mapping[
         natives[s.name] = native_precision(W.dtype)
         if s.tied_with:
             continue
-        spec = spectra[s.name]
-        metric = (metrics or {}).get(s.name) or LayerMetric(None, None, _own_scale(spec))
-        scales[s.name] = metric.scale
-        refused: dict[str, str] = {}
-        found = candidates_for(s, W, spec, policy.allowed_precisions, metric, multiple=policy.multiple,
-                               reasons=refused)
-        cands[s.name] = _overridden(s, policy, found, natives[s.name], spec, metric)
+        cands[s.name], scales[s.name], refused = price_site(s, W, spectra[s.name], policy,
+                                                            (metrics or {}).get(s.name))
         if refused:
-            notes[s.name] = [f"{p} not offered for {why}; kept in a wider precision" for p, why in refused.items()]
+            notes[s.name] = refused
     return Priced(cands, natives, scales, notes)
+
+
+def price_site(site: Site, W: torch.Tensor, spec: Spectrum, policy,
+               metric: LayerMetric | None = None) -> tuple[list[Candidate], float, list[str]]:
+    """One site's candidates (:func:`candidates_for`, then the policy's overrides), its error scale and the notes
+    on precisions not offered -- what :func:`price_sites` records per site, and what the weights-only shrink
+    computes per matrix in its tasks. ``metric`` defaults to the layer's own relative weight error."""
+    metric = metric or LayerMetric(None, None, _own_scale(spec))
+    refused: dict[str, str] = {}
+    found = candidates_for(site, W, spec, policy.allowed_precisions, metric, multiple=policy.multiple,
+                           reasons=refused)
+    cands = _overridden(site, policy, found, native_precision(W.dtype), spec, metric)
+    return cands, metric.scale, [f"{p} not offered for {why}; kept in a wider precision" for p, why in refused.items()]
 
 
 def _own_scale(spec: Spectrum) -> float:

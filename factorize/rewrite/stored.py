@@ -175,3 +175,21 @@ def is_stored(module: nn.Module) -> bool:
 def stored_weights(model: nn.Module) -> dict[str, StoredWeight]:
     """Every stored weight of ``model`` by the qualified name of the module holding it."""
     return {name: m._modules[CHILD] for name, m in model.named_modules() if is_stored(m)}
+
+
+@torch.no_grad()
+def cast_floating(model: nn.Module, dtype: torch.dtype) -> nn.Module:
+    """Cast ``model``'s floating parameters and buffers to ``dtype`` in place, leaving every stored weight's tensors
+    as stored (its codes, scales and half-precision data keep their layout) and decoding it to ``dtype`` instead;
+    returns ``model``. What ``model.to(dtype)`` would do if it knew the stored forms."""
+    for m in model.modules():
+        if isinstance(m, StoredWeight):
+            m.dtype = dtype
+            continue
+        for p in m._parameters.values():
+            if p is not None and p.is_floating_point() and p.dtype != dtype:
+                p.data = p.data.to(dtype)
+        for name, b in m._buffers.items():
+            if b is not None and b.is_floating_point() and b.dtype != dtype:
+                m._buffers[name] = b.to(dtype)
+    return model

@@ -72,7 +72,26 @@ def test_a_malformed_cluster_value_is_a_usage_error(ckpt, tmp_path, value):
     assert list(tmp_path.iterdir()) == []
 
 
-def test_cluster_with_a_model_to_run_is_refused(ckpt, tmp_path):
-    rc, _, err = _run(["shrink", "-m", str(ckpt.parent), "-o", str(tmp_path / "out"), "--cluster", "local:2", "-q"])
+def test_cluster_with_a_model_to_run_is_refused_before_it_is_built(tmp_path, monkeypatch):
+    from factorize.checkpoints import models
+
+    monkeypatch.setattr(models, "_from_callable", lambda spec: pytest.fail("the model was built"))
+    rc, _, err = _run(["shrink", "-m", "factorize.default:load_default", "-o", str(tmp_path / "out"),
+                       "--cluster", "local:2", "-q"])
     assert rc == 2 and "weights-only" in err and "Traceback" not in err
     assert list(tmp_path.iterdir()) == []
+
+
+def test_cluster_on_a_transformers_directory_shrinks_its_checkpoint_without_loading_the_model(ckpt, tmp_path,
+                                                                                             monkeypatch,
+                                                                                             dask_engine):
+    from factorize.checkpoints import models
+
+    monkeypatch.setattr(models, "_from_directory", lambda *a, **k: pytest.fail("the whole model was loaded"))
+    args = ["shrink", "--budget", "0.5", "--exclude", "*embed_tokens*", "-q", "--cluster", dask_engine.address]
+    rc, _, err = _run([*args, "-m", str(ckpt.parent), "-o", str(tmp_path / "by-dir")])
+    assert rc == 0, err
+    rc, _, err = _run([*args, "-m", str(ckpt), "-o", str(tmp_path / "by-index")])
+    assert rc == 0, err
+    assert _files(tmp_path / "by-dir") == _files(tmp_path / "by-index")
+    assert "config.json" in _files(tmp_path / "by-dir")  # reloadable with load_directory (tests/outofcore)

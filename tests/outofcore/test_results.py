@@ -54,3 +54,30 @@ def test_run_keywords_fill_the_option_record_and_the_rest_stays_for_the_policy()
     assert options == BlockwiseOptions(slices=3, ridge=0.1) and rest == {} and base.ridge is None  # not modified
     with pytest.raises(FactorizeError, match="expected a StreamOptions"):
         split_keywords(StreamOptions, BlockwiseOptions(), {})
+
+
+def _blockwise_result(**changes) -> BlockwiseShrink:
+    """A result with invented numbers (a demo record: only the report's wording is checked)."""
+    values = dict(plan={"policy": {"budget": 0.5}, "calibration": {"method": "whiten"}, "sites": {}}, tensors={},
+                  files=["out/model.safetensors.index.json"], output="out", params_before=10, params_after=5,
+                  kept_fraction=0.5, bytes_before=40, bytes_after=20, blocks=2, sequences=4, tokens=64, slices=1,
+                  threads=1, engine={"engine": "local"}, seconds=1.0, peak_rss_bytes=2**20, peak_reset=True,
+                  block_bytes=2**10, activation_bytes=2**10, bound_bytes=2**30, bound_met=True)
+    return BlockwiseShrink(**{**values, **changes})
+
+
+def test_reports_that_measured_no_drift_say_so_and_how_to_measure_it(tmp_path):
+    from factorize.measure.report import CAUTION
+
+    report = _blockwise_result().report("llama-dir", "ids.npy")
+    caution = report.caution
+    assert caution != CAUTION and "Drift was measured" not in caution
+    assert "No output drift was measured" in caution and "factorize compare" in caution and "--against out" in caution
+    # the user's rule holds in every report: samples are no guarantee, safety-relevant uses need re-validation
+    assert "no guarantee" in caution and "safety-relevant" in caution
+    assert caution in report.to_markdown()
+    g = torch.Generator().manual_seed(0)
+    src = tmp_path / "in.safetensors"
+    save_file({"fc.weight": torch.randn(12, 8, generator=g)}, str(src))
+    weights_only = shrink_checkpoint(src, tmp_path / "out.safetensors", rank=2).report("in.safetensors").caution
+    assert "No output drift was measured" in weights_only and "safety-relevant" in weights_only
