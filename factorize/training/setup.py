@@ -41,8 +41,8 @@ class HealOptions:
     steps: int | None = None
     loss: str = "auto"
     temperature: float = 2.0
-    lr: float = 1e-4
-    schedule: str = "constant"
+    lr: float = 3e-4
+    schedule: str = "cosine"
     eval_every: int | None = None
     patience: int | None = 5
     train: str = "factored"
