@@ -11,7 +11,9 @@
   inputs made only from those 224 (the sentences plus ``--augment`` joined pairs, word spans and word-dropout variants,
   see :func:`augmented`) and picks its best state on the other 48 calibration sentences; the reported mean cosine
   to the original's embeddings is measured on HELDOUT_SENTENCES, which neither calibration nor healing sees.
-  Target: healed held-out mean cosine at 50% >= 0.95.
+  Target: healed held-out cosine at 50%: mean >= 0.95, worst sentence >= 0.85. ``--encoder-loss default
+  --method default`` measures the library's defaults end to end: ``compress(..., calibration=...)`` and then
+  ``heal(compressed, original, batches, heldout=checks, steps=N)`` on the encoder itself.
 
 Run from the repository root:
     python benchmarks/bench_heal.py  [--quick]  [--skip-encoder]  [--transfer N]  [--method M]  (--help: all)
@@ -38,6 +40,7 @@ sys.path.insert(0, str(REPO))
 
 import factorize  # noqa: E402
 from factorize.default import CALIBRATION_SENTENCES, HELDOUT_SENTENCES, load_default, load_digits_split  # noqa: E402
+from factorize.measure.similarity import neighbour_agreement  # noqa: E402
 from factorize.training.heal import heal  # noqa: E402
 
 sys.path.insert(0, str(REPO / "benchmarks"))
@@ -65,7 +68,7 @@ def bench_digits(steps: int, lr: float) -> list[dict]:
         t_compress = time.perf_counter() - t0
         before = _accuracy(result.model, x_test, y_test)
         healed = heal(result.model, original, list(x_cal[:192].split(32)), heldout=[x_cal[192:]], steps=steps,
-                      lr=lr, progress=False)
+                      lr=lr, schedule="constant", progress=False)  # as measured in BENCHMARKS.md (before 3e-4/cosine)
         rows.append({
             "budget": budget, "kept": result.kept_fraction, "original": base, "compressed": before,
             "healed": _accuracy(result.model, x_test, y_test), "steps": healed.steps_run,
@@ -97,10 +100,14 @@ class SentenceEmbedder(TokenStates):
         return F.normalize((h * m).sum(1) / m.sum(1).clamp_min(1e-9), dim=-1)  # (B, d)
 
 
-def _cosine(a: nn.Module, b: nn.Module, batches: list[dict]) -> tuple[float, float]:
+def _cosine(a: nn.Module, b: nn.Module, batches: list[dict]) -> tuple[float, float, float, float]:
+    """Mean, worst and 5th-percentile cosine of the two models' sentence embeddings, and nearest-neighbour
+    agreement among the sentences (factorize.measure.similarity)."""
     with torch.no_grad():
-        cos = torch.cat([(a(**x) * b(**x)).sum(1) for x in batches])
-    return cos.mean().item(), cos.min().item()
+        ea, eb = torch.cat([a(**x) for x in batches]), torch.cat([b(**x) for x in batches])
+    cos = (ea * eb).sum(1)
+    return (cos.mean().item(), cos.min().item(), torch.quantile(cos, 0.05).item(),
+            neighbour_agreement(ea, eb))
 
 
 def bench_encoder(budgets: list[float], steps: int, lr: float, schedule: str, method: str, augment: int,
@@ -118,7 +125,9 @@ def bench_encoder(budgets: list[float], steps: int, lr: float, schedule: str, me
 
     fit, checks = CALIBRATION_SENTENCES[:FIT], CALIBRATION_SENTENCES[FIT:]  # the checks stay out of calibration too
     extra = stdlib_sentences(transfer) if transfer else []
-    train = batches(list(fit) + augmented(fit, augment, seed=0) + extra, 16)
+    inputs = list(fit) + augmented(fit, augment, seed=0) + extra
+    sentences = len(inputs) + len(checks)  # every unlabelled input healing sees, the check sentences included
+    train = batches(inputs, 16)
     checks, evaluation = batches(checks, 48), batches(HELDOUT_SENTENCES, 34)
     calibration = batches(fit, 16)
     teacher = SentenceEmbedder(encoder)
@@ -129,16 +138,22 @@ def bench_encoder(budgets: list[float], steps: int, lr: float, schedule: str, me
         t_compress = time.perf_counter() - t0
         student = SentenceEmbedder(result.model)
         before = _cosine(teacher, student, evaluation)
-        if target == "tokens":  # mean squared error on every token's hidden state; best state by relative L2
+        if target == "default":  # the library's default healing call on the encoder itself
+            healed = heal(result.model, encoder, train, heldout=checks, steps=steps, progress=False)
+        elif target == "tokens":  # mean squared error on every token's hidden state; best state by relative L2
             pair, loss, metric = (TokenStates(result.model), TokenStates(encoder)), "mse", "relative_l2"
         else:  # cosine between the sentence embeddings, the quantity reported
             pair, loss, metric = (student, teacher), "cosine", "cosine_mean"
-        healed = heal(*pair, train, heldout=checks, steps=steps, loss=loss, metric=metric, lr=lr, schedule=schedule,
-                      eval_every=max(1, steps // 10), patience=None, progress=False, match_layers=match)
+        if target != "default":
+            healed = heal(*pair, train, heldout=checks, steps=steps, loss=loss, metric=metric, lr=lr,
+                          schedule=schedule, eval_every=max(1, steps // 10), patience=None, progress=False,
+                          match_layers=match)
         after = _cosine(teacher, student, evaluation)
         rows.append({
             "budget": budget, "kept": _site_fraction(result.plan), "compressed": before[0], "compressed_min": before[1],
-            "healed": after[0], "healed_min": after[1], "steps": healed.steps_run, "best_step": healed.best_step,
+            "compressed_p5": before[2], "compressed_nn": before[3], "healed": after[0], "healed_min": after[1],
+            "healed_p5": after[2], "healed_nn": after[3], "steps": healed.steps_run, "best_step": healed.best_step,
+            "sentences": sentences, "loss": healed.loss, "lr": healed.lr, "schedule": healed.schedule,
             "compress_s": t_compress, "heal_s": healed.seconds, "reason": healed.reason,
         })
         print(f"encoder {budget:.0%}: {rows[-1]}", flush=True)
@@ -166,6 +181,7 @@ def augmented(sentences: list[str], n: int, *, seed: int) -> list[str]:
 
 
 METHODS = {  # --method: the keyword arguments of compress() beyond calibration=, and how the report names them
+    "default": ({}, "the library default: whitened factors, ranks by gradient sensitivity"),
     "whiten": ({}, "whitened factors, bias correction"),
     "sensitivity": ({"sensitivity": True}, "whitened factors, ranks by measured gradient and probe sensitivity"),
     "sequential": ({"sensitivity": True, "sequential": True},
@@ -212,35 +228,45 @@ def _digits_section(digits: list[dict], args) -> list[str]:
 
 
 def _encoder_section(encoder: list[dict], mode: str, args) -> list[str]:
-    loss = ("mean squared error on every token's last hidden state (best state by relative L2 on the check "
-            "sentences)" if args.encoder_loss == "tokens" else
-            "cosine loss on the mean-pooled, normalised sentence embeddings (best state by mean cosine on the check "
-            "sentences)")
+    loss = {"tokens": "mean squared error on every token's last hidden state (best state by relative L2 on the "
+                      "check sentences)",
+            "sentence": "cosine loss on the mean-pooled, normalised sentence embeddings (best state by mean cosine "
+                        "on the check sentences)",
+            "default": "the default call `heal(compressed, original, batches, heldout=checks, steps=N)` on the "
+                       "encoder itself (every other option the library's default)"}[args.encoder_loss]
     transfer = (f", plus {args.transfer} unlabelled standard-library docstring sentences (`stdlib_text.py`)"
                 if args.transfer else "")
     match = f"; per-layer output matching, weight {args.match_layers:g}" if args.match_layers else ""
+    optimizer = "" if args.encoder_loss == "default" else \
+        f"Adam lr {args.encoder_lr:g} ({args.encoder_schedule} schedule), "
     lines = [
         "## Sentence encoder (all-MiniLM-L6-v2), held-out mean cosine to the original",
         "",
         f"Compression: {mode}, the 36 linear layers of the encoder blocks (`include=\"encoder.*\"`). Healing: {loss}; "
         f"inputs: the first {FIT} CALIBRATION_SENTENCES plus {args.augment} variants made only from them (joined "
         f"pairs, word spans, word dropout){transfer}; check sentences: the other {len(CALIBRATION_SENTENCES) - FIT} "
-        f"calibration sentences; Adam lr {args.encoder_lr:g} ({args.encoder_schedule} schedule), "
-        f"{args.encoder_steps} steps of 16 inputs{match}. Cosine measured on the {len(HELDOUT_SENTENCES)} "
+        f"calibration sentences; {optimizer}{args.encoder_steps} steps of 16 inputs{match}. Cosine measured on the "
+        f"{len(HELDOUT_SENTENCES)} "
         "HELDOUT_SENTENCES, never used for calibration or healing.",
         "",
-        "| budget | compressed mean (min) | healed mean (min) | steps run (best) | compress s | heal s |",
-        "| --- | --- | --- | --- | --- | --- |",
+        "| budget | compressed mean / min / p5 / NN | healed mean / min / p5 / NN | loss, lr, schedule | sentences "
+        "| steps run (best) | compress s | heal s |",
+        "| --- | --- | --- | --- | --- | --- | --- | --- |",
     ]
     for r in encoder:
         lines.append(
-            f"| {r['budget']:.0%} | {r['compressed']:.4f} ({r['compressed_min']:.4f}) | {r['healed']:.4f} "
-            f"({r['healed_min']:.4f}) | {r['steps']} ({r['best_step']}) | {r['compress_s']:.1f} | "
-            f"{r['heal_s']:.1f} |")
+            f"| {r['budget']:.0%} | {r['compressed']:.4f} / {r['compressed_min']:.4f} / {r['compressed_p5']:.4f} / "
+            f"{r['compressed_nn']:.3f} | {r['healed']:.4f} / {r['healed_min']:.4f} / {r['healed_p5']:.4f} / "
+            f"{r['healed_nn']:.3f} | {r['loss']}, {r['lr']:g}, {r['schedule']} | {r['sentences']} | {r['steps']} "
+            f"({r['best_step']}) | {r['compress_s']:.1f} | {r['heal_s']:.1f} |")
+    lines += ["", "p5: the 5th percentile of the per-sentence cosine; NN: the share of held-out sentences whose "
+              "nearest other held-out sentence is the same for both models; sentences: every unlabelled input "
+              "healing saw (check sentences included)."]
     r50 = next((r for r in encoder if r["budget"] == 0.5), None)
     if r50 is not None:
-        lines += ["", f"Target (healed held-out mean cosine at 50% >= 0.95): "
-                  f"{'met' if r50['healed'] >= 0.95 else 'MISSED'} -- {r50['healed']:.4f}."]
+        met = r50["healed"] >= 0.95 and r50["healed_min"] >= 0.85
+        lines += ["", f"Target (healed held-out cosine at 50%: mean >= 0.95, worst >= 0.85): "
+                  f"{'met' if met else 'MISSED'} -- mean {r50['healed']:.4f}, worst {r50['healed_min']:.4f}."]
     return [*lines, ""]
 
 
@@ -274,8 +300,9 @@ def main() -> None:
     parser.add_argument("--skip-encoder", action="store_true")
     parser.add_argument("--skip-digits", action="store_true")
     parser.add_argument("--encoder-budgets", type=float, nargs="+", default=list(BUDGETS))
-    parser.add_argument("--encoder-loss", choices=("sentence", "tokens"), default="sentence",
-                        help="encoder: heal on the sentence embeddings (cosine) or on every token's hidden state (MSE)")
+    parser.add_argument("--encoder-loss", choices=("sentence", "tokens", "default"), default="sentence",
+                        help="encoder: heal on the sentence embeddings (cosine), on every token's hidden state (MSE), "
+                        "or with heal's defaults on the encoder itself (--encoder-lr/--encoder-schedule unused)")
     parser.add_argument("--digits-steps", type=int, default=600)
     parser.add_argument("--digits-lr", type=float, default=1e-4)
     parser.add_argument("--encoder-steps", type=int, default=2000)

@@ -328,12 +328,14 @@ def _quality_options(*, shrink: bool):
                        "L2), cosine_p5 (1 - the 5th percentile of per-sample cosine)")
         g.add_argument("--heal", type=_positive_int("--heal"), metavar="STEPS",
                        help="after compressing, fine-tune the factors for STEPS steps to match the original on "
-                       "--calibration (distillation); the best state on --inputs is kept")
-        g.add_argument("--heal-lr", type=_positive_finite("--heal-lr"), default=1e-4, metavar="LR",
-                       help="learning rate for --heal (default 1e-4; the peak rate with --heal-schedule cosine)")
-        g.add_argument("--heal-schedule", choices=HEAL_SCHEDULES, default="constant",
-                       help="learning-rate schedule for --heal: constant (default), or cosine (a 5%% linear warm-up, "
-                       "then a half cosine down to zero)")
+                       "--calibration (distillation); the best state on --inputs is kept, judged as the report "
+                       "judges the model (perplexity for a causal language model, pooled cosine with --pooling or "
+                       "for an encoder, relative L2 otherwise)")
+        g.add_argument("--heal-lr", type=_positive_finite("--heal-lr"), default=None, metavar="LR",
+                       help="peak learning rate for --heal (default 3e-4)")
+        g.add_argument("--heal-schedule", choices=HEAL_SCHEDULES, default=None,
+                       help="learning-rate schedule for --heal: cosine (the default: a 5%% linear warm-up, then a "
+                       "half cosine down to zero) or constant")
         g.add_argument("--blockwise", action="store_true",
                        help="with --calibration and a transformers directory (or its index or single weights "
                        "file) of an architecture the block-by-block shrink supports (docs/cli.md; others are refused "

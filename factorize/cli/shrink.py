@@ -18,6 +18,7 @@ from factorize.outofcore.weights_only import shrink_checkpoint
 from factorize.pipeline import compress
 from factorize.plan.defaults import held_note
 from factorize.training.heal import heal
+from factorize.training.watch import label
 
 from .common import (
     Options,
@@ -230,14 +231,16 @@ def _calibration_notes(result, calibration) -> list[str]:
 
 def _heal(args, loaded, result, calibration, inputs, ui: UI) -> list[str]:
     """Distil the compressed model towards the original on the calibration inputs; held-out: --inputs."""
-    done = heal(result.model, loaded.model, calibration.batches, steps=args.heal, lr=args.heal_lr,
-                schedule=args.heal_schedule,
-                heldout=inputs.batches if inputs is not None else None, progress=ui.progress)
+    chosen = {k: v for k, v in (("lr", args.heal_lr), ("schedule", args.heal_schedule)) if v is not None}
+    done = heal(result.model, loaded.model, calibration.batches, steps=args.heal,
+                pooling=getattr(args, "pooling", None), heldout=inputs.batches if inputs is not None else None,
+                progress=ui.progress, **chosen)
     result.plan["heal"] = done.to_dict(timings=False)  # seconds go to the report, not the file
     if inputs is None:
         ui.warn("--heal without --inputs: no held-out check, the last state is kept")
     drift = "" if done.initial_drift is None else \
-        f"; held-out {done.metric} {done.initial_drift:.4g} -> {done.best_drift:.4g} (best step {done.best_step})"
+        f"; {label(done.metric, done.pooling)} {done.initial_drift:.4g} -> {done.best_drift:.4g} " \
+        f"(best step {done.best_step})"
     schedule = ", cosine schedule" if done.schedule == "cosine" else ""
     return [(f"healed {done.steps_run} steps ({done.loss} loss, lr {done.lr:g}{schedule}, {done.seconds:.1f} s)"
              f"{drift}: {done.reason}")]

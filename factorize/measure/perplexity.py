@@ -39,6 +39,30 @@ def token_ids(batch: Any) -> torch.Tensor | None:
     return None
 
 
+def batch_next_token_loss(logits: torch.Tensor, batch: Any, index: int = 0) -> tuple[float, int]:
+    """Summed next-token cross-entropy (nats) of one batch's (B, T, V) ``logits`` and the count of predicted
+    tokens (positions whose attention mask is 0 are left out). ``index`` names the batch in errors."""
+    ids = token_ids(batch)
+    if ids is None:
+        raise FactorizeError(
+            f"batch {index} holds no token ids: perplexity needs integer input_ids of shape (batch, tokens)",
+            fix="give tokenizer output (a dict with input_ids) or a (batch, tokens) integer tensor",
+        )
+    if logits.dim() != 3 or logits.shape[:2] != ids.shape:
+        raise FactorizeError(
+            f"batch {index}: the model returned {tuple(logits.shape)} for tokens {tuple(ids.shape)}",
+            fix="perplexity needs a causal language model returning logits of shape (batch, tokens, vocab)",
+        )
+    pred, target = logits[:, :-1].float(), ids[:, 1:].to(logits.device)  # position t predicts token t+1
+    keep = torch.ones_like(target, dtype=torch.bool)
+    mask = batch.get("attention_mask") if isinstance(batch, Mapping) else None
+    if isinstance(mask, torch.Tensor):
+        keep = mask[:, 1:].to(target.device).bool()
+    loss = nn.functional.cross_entropy(pred.reshape(-1, pred.shape[-1]), target.reshape(-1),
+                                       reduction="none").reshape(target.shape)  # (B, T-1)
+    return float(loss[keep].double().sum()), int(keep.sum())
+
+
 @torch.no_grad()
 def next_token_loss(model: nn.Module, batches: Iterable[Any]) -> tuple[float, int]:
     """Mean next-token cross-entropy (nats) over every predicted token of ``batches``, and the token count."""
@@ -47,27 +71,11 @@ def next_token_loss(model: nn.Module, batches: Iterable[Any]) -> tuple[float, in
     model.eval()
     try:
         for i, batch in enumerate(batches):
-            ids = token_ids(batch)
-            if ids is None:
-                raise FactorizeError(
-                    f"batch {i} holds no token ids: perplexity needs integer input_ids of shape (batch, tokens)",
-                    fix="give tokenizer output (a dict with input_ids) or a (batch, tokens) integer tensor",
-                )
-            logits = primary_output(feed(model, batch))  # (B, T, V)
-            if logits.dim() != 3 or logits.shape[:2] != ids.shape:
-                raise FactorizeError(
-                    f"batch {i}: the model returned {tuple(logits.shape)} for tokens {tuple(ids.shape)}",
-                    fix="perplexity needs a causal language model returning logits of shape (batch, tokens, vocab)",
-                )
-            pred, target = logits[:, :-1].float(), ids[:, 1:].to(logits.device)  # position t predicts token t+1
-            keep = torch.ones_like(target, dtype=torch.bool)
-            mask = batch.get("attention_mask") if isinstance(batch, Mapping) else None
-            if isinstance(mask, torch.Tensor):
-                keep = mask[:, 1:].to(target.device).bool()
-            loss = nn.functional.cross_entropy(pred.reshape(-1, pred.shape[-1]), target.reshape(-1),
-                                               reduction="none").reshape(target.shape)  # (B, T-1)
-            total += float(loss[keep].double().sum())
-            count += int(keep.sum())
+            if token_ids(batch) is None:
+                batch_next_token_loss(torch.empty(0), batch, i)  # raises: no token ids
+            summed, n = batch_next_token_loss(primary_output(feed(model, batch)), batch, i)
+            total += summed
+            count += n
     finally:
         model.train(was_training)
     if count == 0:

@@ -12,7 +12,7 @@ models in :mod:`factorize.training.setup`. This module holds ``heal`` and the tr
 the teacher's dense layer of the same name, ``||y_s - y_t||^2 / ||y_t||^2`` (matching intermediate
 representations: Romero et al., "FitNets: hints for thin deep nets", ICLR 2015 -- cited from memory).
 
-Safety: the held-out drift (``factorize.measure.drift.output_drift``) is measured before training (step 0) and every
+Safety: the held-out drift (:mod:`factorize.training.watch`) is measured before training (step 0) and every
 ``eval_every`` steps; the state with the best held-out drift, step 0 included, is restored at the end, so healing
 never returns a model that drifts more on the held-out inputs than the unhealed one. Drift measured on sample
 inputs is no guarantee of behaviour on other inputs; use in safety-relevant settings needs re-validation under
@@ -38,7 +38,6 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.errors import FactorizeError, caller_stacklevel
-from factorize.measure.drift import output_drift
 from factorize.model.feed import feed, primary_output
 from factorize.model.hooks import Hook, forward_hooks
 from factorize.rewrite.layers import factored_layers
@@ -50,6 +49,7 @@ from factorize.training.losses import (
 )
 from factorize.training.schedule import lr_factor
 from factorize.training.setup import METRICS, HealOptions, session, validate
+from factorize.training.watch import label, mean_next_token_loss, measure, resolve_metric
 
 
 @dataclass
@@ -58,7 +58,7 @@ class HealCheck:
 
     step: int  # optimizer steps taken before the measurement (0: the unhealed model)
     drift: float  # the value of the chosen metric
-    metrics: dict[str, float]  # everything output_drift reported
+    metrics: dict[str, float]  # everything measured (factorize.training.watch.measure)
     loss: float | None  # mean training loss over the steps since the previous check (None at step 0)
 
 
@@ -73,7 +73,7 @@ class HealResult:
     stopped_early: bool  # True when training stopped before ``steps`` (no improvement, or non-finite loss)
     reason: str  # why training ended, in words
     loss: str  # the loss used ("kl", "mse" or "cosine"; "auto" resolved)
-    metric: str  # the held-out metric that decided the best state
+    metric: str  # the held-out metric that decided the best state ("auto" resolved; "auto" without heldout)
     steps_run: int  # optimizer steps taken
     trained_parameters: int  # number of parameter elements that trained
     seconds: float  # wall time
@@ -82,6 +82,7 @@ class HealResult:
     temperature: float | None = None  # for loss "kl"
     lr: float = 0.0
     schedule: str = "constant"
+    pooling: str | None = None  # how per-token outputs were pooled for the held-out metric (None: not pooled)
 
     @property
     def initial_drift(self) -> float | None:
@@ -138,20 +139,27 @@ def heal(
         loss: ``"auto"``, ``"kl"``, ``"mse"`` or ``"cosine"`` (see :mod:`factorize.training.losses` for the
             ``auto`` rule).
         temperature: T for ``"kl"`` (Hinton et al. 2015).
-        lr: Adam learning rate (the peak rate under a schedule).
-        schedule: ``"constant"`` keeps ``lr``; ``"cosine"`` warms it up linearly over the first 5% of the steps
-            and then decays it to zero at ``steps`` along a half cosine (warm-up: Goyal et al. 2017; cosine
-            decay: Loshchilov & Hutter, "SGDR", ICLR 2017; both cited from memory -- common practice). A warm-up
-            lets a larger ``lr`` start without Adam's first, full-size steps undoing the compressed weights.
+        lr: Adam learning rate (the peak rate under a schedule); default 3e-4.
+        schedule: ``"cosine"`` (the default) warms ``lr`` up linearly over the first 5% of the steps and then
+            decays it to zero at ``steps`` along a half cosine (warm-up: Goyal et al. 2017; cosine decay:
+            Loshchilov & Hutter, "SGDR", ICLR 2017; both cited from memory -- common practice); ``"constant"``
+            keeps ``lr``. A warm-up lets a larger ``lr`` start without Adam's first, full-size steps undoing the
+            compressed weights. The defaults (3e-4, cosine) are the best measured on the sentence encoder of
+            BENCHMARKS.md (Healing); they were 1e-4 and constant before.
         eval_every: steps between held-out checks; default ``max(1, steps // 10)``.
         patience: stop after this many checks without a better held-out drift; None never stops early.
         train: ``"factored"`` trains only the factored layers (the rest is frozen); ``"all"`` trains every
             floating-point parameter. ``requires_grad`` flags are restored afterwards.
         match_layers: also match every factored layer's output to the teacher's layer of the same name; True
             weighs that term 1.0, a number sets its weight.
-        metric: the held-out drift that decides the best state: ``"relative_l2"`` (lower is better),
-            ``"cosine_mean"`` (higher), ``"kl"`` (lower; class logits only), ``"top1_agreement"`` (higher;
-            class logits only).
+        metric: the held-out measure that decides the best state and shows on the progress line: ``"auto"``
+            (what the model's users judge it by: perplexity for a causal language model, the cosine of pooled
+            outputs for an encoder, relative L2 otherwise; see :mod:`factorize.training.watch`),
+            ``"relative_l2"`` (lower is better), ``"cosine_mean"`` (higher), ``"kl"`` (lower; class logits only),
+            ``"top1_agreement"`` (higher; class logits only), ``"perplexity"`` (lower; causal language models).
+        pooling: ``"mean"``, ``"cls"`` or ``"last"``: measure the held-out metric on one pooled vector per sample
+            (:func:`factorize.measure.pooling.pool`); None: ``"mean"`` for an encoder under ``metric="auto"``,
+            otherwise the outputs as they are.
         seed: seeds the order of the training batches.
         device: None heals where the student is; ``"cpu"`` or ``"cuda"`` moves both models there for healing and
             back afterwards (``"cuda"`` only when available).
@@ -215,6 +223,8 @@ class _Healer:
         self.layer_names = sorted(factored_layers(student)) if opts.match_layers > 0 else []
         self.taps: tuple[dict[str, Any], dict[str, Any]] | None = None  # layer outputs, student's and teacher's
         self.bar = None
+        self.metric, self.pooling = opts.metric, opts.pooling  # "auto" is resolved on the first held-out batch
+        self.reference_loss: float | None = None  # the teacher's held-out next-token loss (metric "perplexity")
 
     # ---- run ------------------------------------------------------------------------------------------------
 
@@ -235,11 +245,11 @@ class _Healer:
         self._restore(self.best_state)
         return HealResult(
             model=self.student, losses=self.losses, checks=self.checks, best_step=self.best_step,
-            stopped_early=stopped, reason=reason, loss=self.kind or opts.loss, metric=opts.metric,
+            stopped_early=stopped, reason=reason, loss=self.kind or opts.loss, metric=self.metric,
             steps_run=len(self.losses), trained_parameters=sum(p.numel() for p in self.params),
             seconds=time.perf_counter() - start, device=str(opts.device), non_finite=non_finite,
             temperature=opts.temperature if self.kind == "kl" else None, lr=opts.lr,
-            schedule=opts.schedule,
+            schedule=opts.schedule, pooling=self.pooling,
         )
 
     def _loop(self) -> tuple[str, bool, bool]:
@@ -248,7 +258,7 @@ class _Healer:
             self._prepare_heldout()
             bad = self._check(0, None)
             if bad:
-                raise FactorizeError(f"the compressed model's held-out {opts.metric} is not finite before any "
+                raise FactorizeError(f"the compressed model's held-out {self.metric} is not finite before any "
                                      "training", fix="check the compressed model and the held-out batches")
         batches = self._batches()
         since_check: list[float] = []
@@ -272,16 +282,16 @@ class _Healer:
                     return self._non_finite(step, float("nan"), where="held-out drift"), True, True
                 stale = 0 if self.best_step == step else stale + 1
                 if opts.patience is not None and stale >= opts.patience and step < opts.steps:
-                    return (f"stopped at step {step}: no better held-out {opts.metric} in the last {stale} checks "
+                    return (f"stopped at step {step}: no better held-out {self.metric} in the last {stale} checks "
                             f"({stale * opts.eval_every} steps); kept step {self.best_step}"), True, False
         if self.heldout is None:
             return f"ran all {opts.steps} steps; no held-out data, so the final state is kept", False, False
-        return f"ran all {opts.steps} steps; kept step {self.best_step}, the best held-out {opts.metric}", False, False
+        return f"ran all {opts.steps} steps; kept step {self.best_step}, the best held-out {self.metric}", False, False
 
     def _postfix(self, loss: float) -> dict[str, str]:
         post = {"loss": f"{loss:.4g}"}
         if self.checks:
-            post[self.opts.metric] = f"{self.checks[-1].drift:.4g}"
+            post[label(self.metric, self.pooling)] = f"{self.checks[-1].drift:.4g} (start {self.checks[0].drift:.4g})"
         return post
 
     def _non_finite(self, step: int, value: float, where: str = "training loss") -> str:
@@ -319,10 +329,15 @@ class _Healer:
         if not self.heldout:
             raise FactorizeError("heldout yielded no batches", fix="pass a list with at least one batch, or None")
         self.heldout = [_to_device(b, self.opts.device) for b in self.heldout]
-        self.heldout_reference = [
-            primary_output(self._run(self.teacher, b, i, "heldout", "the teacher")).detach().cpu()
-            for i, b in enumerate(self.heldout)
-        ]
+        self.heldout_reference = []
+        for i, b in enumerate(self.heldout):
+            with torch.no_grad():
+                out = self._run(self.teacher, b, i, "heldout", "the teacher")
+            if i == 0:
+                self.metric, self.pooling = resolve_metric(self.opts.metric, self.opts.pooling, self.teacher, out, b)
+            self.heldout_reference.append(primary_output(out).detach().cpu())
+        if self.metric == "perplexity":
+            self.reference_loss = mean_next_token_loss(self.heldout_reference, self.heldout)
 
     def _run(self, model: nn.Module, batch: Any, index: int, where: str, who: str) -> Any:
         """One forward pass; an exception becomes an error naming the batch."""
@@ -414,16 +429,16 @@ class _Healer:
         if self.taps:
             for layer_outputs in self.taps:
                 layer_outputs.clear()
-        metrics = output_drift(self.heldout_reference, outputs)
-        if self.opts.metric not in metrics:
+        metrics = measure(self.metric, self.pooling, self.heldout_reference, outputs, self.heldout, self.reference_loss)
+        if self.metric not in metrics:
             raise FactorizeError(
-                f"metric {self.opts.metric!r} needs class logits (a 2-D output with several columns); this model's "
+                f"metric {self.metric!r} needs class logits (a 2-D output with several columns); this model's "
                 f"output has shape {tuple(outputs[0].shape)}", fix="use metric='relative_l2' or 'cosine_mean'")
-        value = float(metrics[self.opts.metric])
+        value = float(metrics[self.metric])
         self.checks.append(HealCheck(step, value, metrics, loss_mean))
         if not math.isfinite(value):
             return True
-        score = -value if METRICS[self.opts.metric] else value
+        score = -value if METRICS[self.metric] else value
         if score < self.best_score:
             self.best_step, self.best_score, self.best_state = step, score, self._snapshot()
         if self.bar is not None:

@@ -17,13 +17,15 @@ from typing import Any
 import torch
 from torch import nn
 
+from factorize.choices import POOLINGS
 from factorize.errors import FactorizeError
 from factorize.rewrite.layers import factored_layers
 from factorize.training.losses import LOSSES
 from factorize.training.schedule import SCHEDULES
 
 TRAIN = ("factored", "all")
-METRICS = {"relative_l2": False, "cosine_mean": True, "kl": False, "top1_agreement": True}  # name -> higher is better
+# name -> higher is better; "auto" (the default) resolves to one of them (factorize.training.watch)
+METRICS = {"relative_l2": False, "cosine_mean": True, "kl": False, "top1_agreement": True, "perplexity": False}
 
 
 @dataclass(frozen=True)
@@ -39,13 +41,14 @@ class HealOptions:
     steps: int | None = None
     loss: str = "auto"
     temperature: float = 2.0
-    lr: float = 1e-4
-    schedule: str = "constant"
+    lr: float = 3e-4
+    schedule: str = "cosine"
     eval_every: int | None = None
     patience: int | None = 5
     train: str = "factored"
     match_layers: bool | float = False
-    metric: str = "relative_l2"
+    metric: str = "auto"
+    pooling: str | None = None
     seed: int = 0
     device: str | torch.device | None = None
     max_grad_norm: float | None = 1.0
@@ -76,7 +79,7 @@ class HealOptions:
         problems = []
         if not _is_int(self.steps) or self.steps <= 0:
             problems.append(f"steps must be an integer >= 1, got {self.steps!r}")
-        for name, allowed in (("loss", LOSSES), ("train", TRAIN), ("metric", METRICS)):
+        for name, allowed in (("loss", LOSSES), ("train", TRAIN), ("metric", ("auto", *METRICS))):
             if getattr(self, name) not in allowed:
                 problems.append(f"{name} must be one of {', '.join(allowed)}, got {getattr(self, name)!r}")
         for name in ("temperature", "lr"):
@@ -90,6 +93,10 @@ class HealOptions:
                 problems.append(f"{name} must be an integer >= 1 or None, got {value!r}")
         if self.max_grad_norm is not None and (not _is_number(self.max_grad_norm) or self.max_grad_norm <= 0):
             problems.append(f"max_grad_norm must be a number > 0 or None, got {self.max_grad_norm!r}")
+        if self.pooling is not None and self.pooling not in POOLINGS:
+            problems.append(f"pooling must be None or one of {', '.join(POOLINGS)}, got {self.pooling!r}")
+        if self.pooling is not None and self.metric == "perplexity":
+            problems.append("metric 'perplexity' is measured on the per-token logits: pass pooling=None")
         if not _is_int(self.seed):
             problems.append(f"seed must be an integer, got {self.seed!r}")
         if self._match_weight() < 0:
