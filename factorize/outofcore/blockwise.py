@@ -71,11 +71,12 @@ from factorize.cluster import Engine, open_engine
 from factorize.errors import FactorizeError
 from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
-from factorize.outofcore.architecture import Architecture, block_linears, check_source
+from factorize.outofcore.architecture import Architecture, block_candidates, block_linears, check_source
 from factorize.outofcore.block_tasks import BlockTask, FactorTask, block_slice_task, factor_task, save_work_file
-from factorize.outofcore.candidates import Candidate, select
+from factorize.outofcore.candidates import Candidate
 from factorize.outofcore.options import BlockwiseOptions, split_keywords
 from factorize.outofcore.results import BlockwiseShrink
+from factorize.outofcore.stem import Stem, dumps, encode_extras
 from factorize.outofcore.tokens import slice_plan, token_batches
 from factorize.outofcore.writer import CheckpointWriter, plan_bound
 from factorize.plan.entries import factored_entries, is_factored_entry
@@ -87,7 +88,6 @@ from factorize.storage import (
     new_temp_dir,
     peak_rss,
     publish_dir,
-    read_tensor,
     reset_peak_rss,
     return_freed_memory,
 )
@@ -176,8 +176,7 @@ def shrink_blockwise(
     if not names:
         raise FactorizeError(f"{src_path}: no linear layer inside the blocks matches the include/exclude patterns",
                              fix="check the patterns against names such as model.layers.0.self_attn.q_proj")
-    chosen, _ = select(arch.ckpt, include=names)
-    chosen = [c for c in chosen if c.module in set(names)]
+    chosen = block_candidates(arch, names)
     threads = torch.get_num_threads() if options.threads is None else int(options.threads)
     options = dataclasses.replace(options, threads=threads)
     sizes = _sizes(arch, batches, chosen)
@@ -250,7 +249,7 @@ def _statistics(run: _Run) -> tuple[dict[str, AwareSpectrum], dict[str, int], di
     pieces = slice_plan(run.batches, run.options.slices)
     acts = work / "acts"
     acts.mkdir()
-    _embed(arch, run.batches, pieces, acts / "0")
+    _embed(run, pieces, acts / "0", work / "extras")
     spectra: dict[str, AwareSpectrum] = {}
     samples: dict[str, int] = {}
     groups: dict[str, str] = {}
@@ -262,7 +261,8 @@ def _statistics(run: _Run) -> tuple[dict[str, AwareSpectrum], dict[str, int], di
         (work / f"stats{i}").mkdir()
         tasks = [BlockTask(run.source, i, j, str(acts / str(i) / f"{j}.safetensors"),
                            str(acts / str(i + 1) / f"{j}.safetensors"), str(work / f"stats{i}" / f"{j}.safetensors"),
-                           mine, run.options.threads, run.options.tokens_per_pass) for j in range(len(pieces))]
+                           mine, run.options.threads, str(work / "extras" / f"{j}.safetensors"))
+                 for j in range(len(pieces))]
         results = run.engine.map(block_slice_task, tasks, label=f"block {i}")
         shutil.rmtree(acts / str(i), ignore_errors=True)  # this block's inputs are no longer needed
         if mine:
@@ -289,7 +289,7 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
         for name in [n for n in mine if block_groups.get(n) == leader]:
             groups[name] = str(path)
             samples[name] = st.count
-            W = read_tensor(run.arch.where[name + ".weight"].path, name + ".weight")
+            W = next(c for c in run.chosen if c.module == name).read_matrix()  # (out, in)
             spec = decompose_aware(W, st, method=run.aware, solver=run.solver, ridge=run.options.ridge,
                                    rank=k_of[name], seed=run.policy.seed, precision=run.options.precision, name=name)
             spectra[name] = spec.without_vectors()
@@ -327,20 +327,33 @@ def _relative(name: str) -> str:
 
 
 @torch.no_grad()
-def _embed(arch: Architecture, batches, pieces, out: Path) -> None:
-    """Step 1: the token embeddings of every slice, in float32, to ``out/<slice>.safetensors``."""
+def _embed(run: _Run, pieces, out: Path, extras: Path) -> None:
+    """Step 1: the hidden states entering block 0 of every slice, in float32, to ``out/<slice>.safetensors``,
+    and every block's extra inputs (masks, position embeddings) to ``extras/<slice>.safetensors``, both from the
+    model's own code (:mod:`factorize.outofcore.stem`). Each slice is cut here into the passes its tasks run,
+    ``tokens_per_pass`` tokens at most (whole sequences)."""
+    arch = run.arch
     out.mkdir()
-    table = read_tensor(arch.where[arch.embed].path, arch.embed)  # (vocab, hidden), stored dtype
+    extras.mkdir()
+    stem = Stem(arch)
     for j, piece in enumerate(pieces):
-        tensors = {}
-        for k, (b, lo, hi) in enumerate(piece):
-            ids, mask = batches[b]
-            tensors[f"h.{k}"] = torch.nn.functional.embedding(ids[lo:hi], table).float().contiguous()
-            if mask is not None:
-                tensors[f"m.{k}"] = mask[lo:hi].contiguous()
+        tensors, extra, described = {}, {}, {}
+        k = 0
+        for b, lo, hi in piece:
+            ids, mask = run.batches[b]
+            step = max(1, run.options.tokens_per_pass // max(int(ids.shape[1]), 1))
+            for s in range(lo, hi, step):
+                m = None if mask is None else mask[s:min(s + step, hi)].contiguous()
+                h, per_block = stem.run(ids[s:min(s + step, hi)], m)
+                tensors[f"h.{k}"] = h
+                if m is not None:
+                    tensors[f"m.{k}"] = m
+                described[str(k)] = encode_extras(per_block, f"x.{k}", extra, arch.model_type)
+                k += 1
         save_work_file(tensors, str(out / f"{j}.safetensors"))
-        del tensors
-    del table
+        save_work_file(extra, str(extras / f"{j}.safetensors"), {"extras": dumps(described)})
+        del tensors, extra
+    del stem
 
 
 def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
@@ -366,7 +379,7 @@ def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, st
             A, B = f.get_tensor("first"), f.get_tensor("second")
         if A.shape[0] != entry["rank"]:
             raise FactorizeError(f"{path}: factors of rank {A.shape[0]}, the plan says {entry['rank']}")
-        return path, relative_error(c.read_weight(), B, A)
+        return path, relative_error(c.read_matrix(), B, A)
 
     writer = CheckpointWriter(ckpt, run.chosen, factors_of, plan_reserve=plan_bound(run.sites, run.policy),
                               progress=run.options.progress)
