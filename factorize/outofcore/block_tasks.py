@@ -153,6 +153,9 @@ def read_stats(path: str, name: str) -> InputStats:
         st = InputStats(name, "linear", int(C.shape[0]), count=int(meta["count"]), second_moment=C,
                         total=f.get_tensor("total"), abs_total=f.get_tensor("abs_total"),
                         batches=int(meta.get("batches", 0)))
+        if "cross" in f.keys():  # noqa: SIM118 - a safe_open handle, not a dict; pair statistics of the sequential refit (outofcore.refit_tasks)
+            st.cross, st.reference_moment = f.get_tensor("cross"), f.get_tensor("reference_moment")
+            st.reference_total = f.get_tensor("reference_total")
     return st
 
 

@@ -75,6 +75,7 @@ from factorize.outofcore.architecture import Architecture, block_candidates, blo
 from factorize.outofcore.block_tasks import BlockTask, FactorTask, block_slice_task, factor_task, save_work_file
 from factorize.outofcore.candidates import Candidate
 from factorize.outofcore.options import BlockwiseOptions, split_keywords
+from factorize.outofcore.refit_tasks import PairTask, pair_task
 from factorize.outofcore.results import BlockwiseShrink
 from factorize.outofcore.stem import Stem, dumps, encode_extras
 from factorize.outofcore.tokens import slice_plan, token_batches
@@ -113,6 +114,8 @@ class _Run:
     aware: str  # "whiten" or "scale"
     solver: str
     options: BlockwiseOptions
+    order: dict = dataclasses.field(default_factory=dict)  # block -> its groups' leaders, in call order
+    group_of: dict = dataclasses.field(default_factory=dict)  # projection -> its group's leader (shared input)
 
     @property
     def sites(self) -> list[Site]:
@@ -234,12 +237,13 @@ def _shrink(run: _Run, src: Path, dst: Path) -> tuple[dict, dict]:
     spectra, samples, groups = _statistics(run)
     plan = choose_ranks(run.sites, spectra, run.policy, method=run.aware)
     batches = run.batches
-    plan["calibration"] = {"method": run.aware, "solver": run.solver, "blockwise": True, "sequential": False,
+    plan["calibration"] = {"method": run.aware, "solver": run.solver, "blockwise": True,
+                           "sequential": run.options.sequential,
                            "sequences": sum(int(ids.shape[0]) for ids, _ in batches),
                            "tokens": sum(int(ids.numel()) for ids, _ in batches),
                            "samples": {n: samples[n] for n in run.names},
                            "slices": len(slice_plan(batches, run.options.slices)), "threads": run.options.threads}
-    factors = _factors(run, plan, groups)
+    factors = _refit(run, plan) if run.options.sequential else _factors(run, plan, groups)
     return plan, _write(run, src, dst, plan, factors)
 
 
@@ -264,7 +268,10 @@ def _statistics(run: _Run) -> tuple[dict[str, AwareSpectrum], dict[str, int], di
                            mine, run.options.threads, str(work / "extras" / f"{j}.safetensors"))
                  for j in range(len(pieces))]
         results = run.engine.map(block_slice_task, tasks, label=f"block {i}")
-        shutil.rmtree(acts / str(i), ignore_errors=True)  # this block's inputs are no longer needed
+        if i > 0 or not run.options.sequential:  # the refit starts again from the embedding stage's output
+            shutil.rmtree(acts / str(i), ignore_errors=True)  # this block's inputs are no longer needed
+        run.order[i] = list(dict.fromkeys(results[0]["groups"].values()))  # the groups' leaders, in call order
+        run.group_of.update(results[0]["groups"])
         if mine:
             _block_spectra(run, mine, results[0]["groups"], [t.stats for t in tasks], (spectra, samples, groups))
         shutil.rmtree(work / f"stats{i}", ignore_errors=True)
@@ -284,8 +291,8 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
     for leader in sorted(set(block_groups.values()), key=mine.index):
         st = _summed(leader, files, len(run.batches))
         path = run.work / "moments" / f"{leader}.safetensors"
-        save_work_file({"moment": st.second_moment, "total": st.total, "abs_total": st.abs_total}, str(path),
-                       {"count": str(st.count), "batches": str(st.batches)})
+        if not run.options.sequential:  # the refit collects its own statistics
+            _save_stats(st, path)
         for name in [n for n in mine if block_groups.get(n) == leader]:
             groups[name] = str(path)
             samples[name] = st.count
@@ -297,14 +304,18 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
         del st
 
 
-def _summed(leader: str, files: Sequence[str], batches: int) -> InputStats:
+MOMENT_PARTS = ("moment", "total", "abs_total")
+PAIR_PARTS = (*MOMENT_PARTS, "reference_moment", "reference_total", "cross")  # the sequential refit's
+
+
+def _summed(leader: str, files: Sequence[str], batches: int, parts: tuple[str, ...] = MOMENT_PARTS) -> InputStats:
     """One group's statistics summed over the slices, in slice order (the order fixes the bytes)."""
     acc: dict[str, torch.Tensor] = {}
     count = 0
     for path in files:
         with safe_open(path, framework="pt", device="cpu") as f:
             count += int(json.loads(f.metadata()["counts"])[_relative(leader)])
-            for part in ("moment", "total", "abs_total"):
+            for part in parts:
                 key = f"{_relative(leader)}.{part}"
                 if part not in acc:
                     acc[part] = f.get_tensor(key)
@@ -313,8 +324,20 @@ def _summed(leader: str, files: Sequence[str], batches: int) -> InputStats:
                 n = int(acc[part].shape[0])
                 for lo in range(0, n, SUM_ROWS):  # row blocks: no second n x n matrix in memory
                     acc[part][lo:lo + SUM_ROWS] += rows[lo:lo + SUM_ROWS]
-    return InputStats(leader, "linear", int(acc["moment"].shape[0]), count=count, second_moment=acc["moment"],
-                      total=acc["total"], abs_total=acc["abs_total"], batches=batches)
+    st = InputStats(leader, "linear", int(acc["moment"].shape[0]), count=count, second_moment=acc["moment"],
+                    total=acc["total"], abs_total=acc["abs_total"], batches=batches)
+    if "cross" in acc:
+        st.cross, st.reference_moment, st.reference_total = acc["cross"], acc["reference_moment"], \
+            acc["reference_total"]
+    return st
+
+
+def _save_stats(st: InputStats, path: Path) -> None:
+    """A group's summed statistics for the factor tasks (:func:`factorize.outofcore.block_tasks.read_stats`)."""
+    tensors = {"moment": st.second_moment, "total": st.total, "abs_total": st.abs_total}
+    if st.cross is not None:
+        tensors.update(cross=st.cross, reference_moment=st.reference_moment, reference_total=st.reference_total)
+    save_work_file(tensors, str(path), {"count": str(st.count), "batches": str(st.batches)})
 
 
 def _relative(name: str) -> str:
@@ -365,6 +388,65 @@ def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
              for e in factored_entries(plan)]
     files = run.engine.map(factor_task, tasks, label="factors")
     return {t.module: f for t, f in zip(tasks, files)}
+
+
+def _refit(run: _Run, plan: dict) -> dict[str, str]:
+    """Step 3 with ``sequential=True``: block after block, each group of projections (in the order the block
+    calls them) is refitted to the inputs the compressed model feeds it (pair statistics of the original and
+    the partly compressed block, :mod:`factorize.outofcore.refit_tasks`), at the ranks the plan allocated from
+    the first pass; then both streams of hidden states advance one block. Name -> file of its factors."""
+    arch, work = run.arch, run.work
+    ranks = {e.name: int(e.rank) for e in factored_entries(plan)}
+    (work / "factors").mkdir()
+    streams = (work / "acts" / "0", work / "acts" / "0")  # (reference, current): the same before block 0
+    out: dict[str, str] = {}
+    for i in tqdm(range(arch.blocks), desc="refit", unit="block", disable=not run.options.progress, leave=False):
+        done: list[tuple[str, str]] = []  # (projection, factor file) refitted in this block so far
+        for leader in run.order.get(i, []):
+            members = [n for n in run.names if n in ranks and run.group_of.get(n) == leader]
+            if members:
+                done += _refit_group(run, i, streams, tuple(done), leader, {n: ranks[n] for n in members})
+        nxt = (work / "acts" / f"ref{i + 1}", work / "acts" / f"cur{i + 1}")
+        for d in nxt:
+            d.mkdir()
+        run.engine.map(pair_task, _pair_tasks(run, i, streams, tuple(done), "", None, nxt), label=f"block {i} advance")
+        for d in set(streams):
+            shutil.rmtree(d, ignore_errors=True)
+        streams = nxt
+        out.update(done)
+    return out
+
+
+def _pair_tasks(run: _Run, i: int, streams: tuple[Path, Path], done: tuple, group: str, stats: Path | None,
+                outputs: tuple[Path, Path] | None) -> list[PairTask]:
+    """One pair task per slice of block ``i`` (see :class:`~factorize.outofcore.refit_tasks.PairTask`)."""
+    return [PairTask(run.source, i, j, str(streams[0] / f"{j}.safetensors"), str(streams[1] / f"{j}.safetensors"),
+                     str(run.work / "extras" / f"{j}.safetensors"), done, group,
+                     str(stats / f"{j}.safetensors") if stats else "",
+                     (str(outputs[0] / f"{j}.safetensors"), str(outputs[1] / f"{j}.safetensors")) if outputs
+                     else ("", ""), run.options.threads)
+            for j in range(len(slice_plan(run.batches, run.options.slices)))]
+
+
+def _refit_group(run: _Run, i: int, streams: tuple[Path, Path], done: tuple, leader: str,
+                 ranks: dict[str, int]) -> list[tuple[str, str]]:
+    """The pair statistics of one group of block ``i`` summed in slice order, then one factor task per member."""
+    o = run.options
+    pairs = run.work / f"pairs{i}"
+    pairs.mkdir()
+    tasks = _pair_tasks(run, i, streams, done, leader, pairs, None)
+    run.engine.map(pair_task, tasks, label=f"block {i} refit")
+    st = _summed(leader, [t.stats for t in tasks], len(run.batches),
+                 PAIR_PARTS if run.aware == "whiten" else MOMENT_PARTS)  # "scale" only re-whitens (as in memory)
+    path = run.work / "moments" / f"{leader}.safetensors"
+    _save_stats(st, path)
+    del st
+    shutil.rmtree(pairs, ignore_errors=True)
+    factors = [FactorTask(run.source, n, str(path), r, run.aware, run.solver, o.ridge, run.policy.seed, o.precision,
+                          str(run.work / "factors" / f"{n}.safetensors"), o.threads) for n, r in ranks.items()]
+    files = run.engine.map(factor_task, factors, label=f"block {i} factors")
+    path.unlink()
+    return [(t.module, f) for t, f in zip(factors, files)]
 
 
 def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, str]) -> dict:

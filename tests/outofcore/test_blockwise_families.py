@@ -1,0 +1,171 @@
+"""The block-by-block shrink on every covered transformer family, checked against transformers' own model classes
+built from tiny configs (GPT-2, Llama, Mistral, Qwen2, Phi, Gemma, BERT; tests/outofcore/families.py):
+
+- the statistics each block collects equal forward hooks on transformers' whole model (so the embedding stage,
+  the position inputs and the masks the blocks were fed are the model's own);
+- the written directory reloads into the family's class and computes what the same plan gives in memory
+  (factorize's in-memory calibrated functions on the whole model);
+- a Dask local cluster of 2 worker processes writes the same bytes as one process.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import torch
+
+import factorize
+from factorize.calibrated.aware import aware_spectra
+from factorize.calibrated.stats import collect_stats
+from factorize.cluster import LocalEngine
+from factorize.model.sites import walk
+from factorize.outofcore import blockwise
+from factorize.outofcore.architecture import block_candidates, block_linears, check_source
+from factorize.outofcore.block_tasks import read_stats
+from factorize.outofcore.blockwise import shrink_blockwise
+from factorize.outofcore.options import BlockwiseOptions
+from factorize.outofcore.tokens import token_batches
+from factorize.plan.policy import resolve_policy
+from factorize.plan.ranks import choose_ranks
+from factorize.rewrite.apply import apply_plan
+from tests.outofcore.families import VOCAB, configs, write_family
+
+transformers = pytest.importorskip("transformers")
+
+FAMILIES = ("gpt2", "llama", "mistral", "qwen2", "phi", "gemma", "bert")
+SHARDED = ("qwen2", "bert")  # written in several shards (the others in one model.safetensors)
+BUDGET = 0.5
+
+
+def _calibration():
+    # two batches of different lengths (24 > Mistral's and Qwen2's sliding window of 8); the second right-padded,
+    # so padded positions must be left out of the statistics and masked in attention
+    g = torch.Generator().manual_seed(1)
+    first = torch.randint(0, VOCAB, (5, 24), generator=g)
+    ids = torch.randint(0, VOCAB, (4, 16), generator=g)
+    mask = torch.ones(4, 16, dtype=torch.int64)
+    mask[1, 12:] = 0
+    mask[3, 9:] = 0
+    return [first, {"input_ids": ids, "attention_mask": mask}]
+
+
+@pytest.fixture(scope="module")
+def checkpoints(tmp_path_factory):
+    root = tmp_path_factory.mktemp("families")
+    made: dict[str, Path] = {}
+
+    def get(kind: str) -> Path:
+        if kind not in made:
+            made[kind] = write_family(transformers, kind, root / kind, shard="12KB" if kind in SHARDED else None)
+        return made[kind]
+
+    return get
+
+
+@pytest.fixture(scope="module")
+def shrunk(checkpoints, tmp_path_factory):
+    root = tmp_path_factory.mktemp("shrunk")
+    done: dict[str, tuple] = {}
+
+    def get(kind: str):
+        if kind not in done:
+            out = root / kind
+            done[kind] = out, shrink_blockwise(checkpoints(kind), out, budget=BUDGET, calibration=_calibration(),
+                                               threads=1)
+        return done[kind]
+
+    return get
+
+
+def _original(kind: str, directory: Path) -> torch.nn.Module:
+    cls = configs(transformers)[kind][0]
+    return cls.from_pretrained(directory, dtype=torch.float32).eval()
+
+
+def _outputs(model, ids) -> torch.Tensor:
+    with torch.no_grad():
+        out = model(input_ids=ids)
+    return out.logits if hasattr(out, "logits") else out.last_hidden_state
+
+
+def test_every_family_is_found_with_its_projections(checkpoints):
+    # what transformers' classes hold (read from their modeling files): GPT-2's four Conv1D projections per block
+    # are transposed (weight stored in x out), the others nn.Linear
+    expect = {"gpt2": ("transformer.h", {"attn.c_attn", "attn.c_proj", "mlp.c_fc", "mlp.c_proj"}, "transposed"),
+              "llama": ("model.layers", {"self_attn.q_proj", "self_attn.k_proj", "self_attn.v_proj",
+                                         "self_attn.o_proj", "mlp.gate_proj", "mlp.up_proj", "mlp.down_proj"},
+                        "linear"),
+              "phi": ("model.layers", {"self_attn.q_proj", "self_attn.k_proj", "self_attn.v_proj",
+                                       "self_attn.dense", "mlp.fc1", "mlp.fc2"}, "linear"),
+              "bert": ("encoder.layer", {"attention.self.query", "attention.self.key", "attention.self.value",
+                                         "attention.output.dense", "intermediate.dense", "output.dense"}, "linear")}
+    for kind, (prefix, names, k) in expect.items():
+        arch = check_source(checkpoints(kind))
+        assert arch.prefix == prefix and arch.blocks == 2, kind
+        assert set(arch.kinds) == names and set(arch.kinds.values()) == {k}, (kind, arch.kinds)
+
+
+@pytest.mark.parametrize("kind", FAMILIES)
+def test_statistics_equal_hooks_on_the_whole_transformers_model(kind, checkpoints, tmp_path):
+    # reference: every projection's input second moment from forward hooks on transformers' whole model
+    # (factorize.calibrated.stats.collect_stats, padded positions left out by the attention mask)
+    d = checkpoints(kind)
+    model = _original(kind, d)
+    batches = _calibration()
+    arch = check_source(d)
+    policy = resolve_policy(None, {"budget": BUDGET})
+    names = block_linears(arch, policy)
+    ref = collect_stats(model, names, batches)
+    work = tmp_path / "work"
+    work.mkdir()
+    options = BlockwiseOptions(slices=3, threads=torch.get_num_threads(), tokens_per_pass=40)
+    run = blockwise._Run(arch, token_batches(batches, VOCAB), names, block_candidates(arch, names), LocalEngine(),
+                         work, policy, "whiten", "gram", options)
+    _, _, groups = blockwise._statistics(run)
+    for name in names:
+        st = read_stats(groups[name], name)
+        C_ref = ref[name].second_moment
+        assert st.count == ref[name].count == 5 * 24 + 4 * 16 - 4 - 7, name  # padded positions left out
+        scale = float(C_ref.abs().max())
+        assert float((st.second_moment - C_ref).abs().max()) <= 1e-5 * scale, name  # float32 forward rounding
+
+
+@pytest.mark.parametrize("kind", FAMILIES)
+def test_output_reloads_and_equals_the_same_plan_applied_in_memory(kind, checkpoints, shrunk):
+    out, done = shrunk(kind)
+    loaded = factorize.load_directory(out)
+    cls = configs(transformers)[kind][0]
+    assert isinstance(loaded, cls)
+    # in memory: the whole original model, hook statistics, the whitened spectra of factorize.calibrated.aware
+    # without centring (as block by block), the same budget allocation, and apply_plan
+    original = _original(kind, checkpoints(kind))
+    sites = [s for s in walk(original).sites if s.name in done.plan["sites"]]
+    stats = collect_stats(original, sites, _calibration())
+    spectra = aware_spectra(original, sites, stats, method="whiten", center=False, solver="gram")
+    plan = choose_ranks(sites, spectra, resolve_policy(None, {"budget": BUDGET}), method="whiten")
+    ranks = {n: e["rank"] for n, e in plan["sites"].items()}
+    assert ranks == {n: e["rank"] for n, e in done.plan["sites"].items()}
+    assert any(e["action"] == "factor" for e in done.plan["sites"].values())
+    in_memory = apply_plan(original, plan, spectra=spectra)
+    g = torch.Generator().manual_seed(7)
+    heldout = torch.randint(0, VOCAB, (3, 20), generator=g)
+    want, got, dense = _outputs(in_memory, heldout), _outputs(loaded.float(), heldout), _outputs(original, heldout)
+    assert torch.isfinite(got).all()
+    assert float((got - want).norm() / want.norm()) < 1e-4, kind  # float32 statistics in another batching
+    assert float((got - dense).norm() / dense.norm()) > 1e-3  # the factors did change the model
+
+
+@pytest.mark.parametrize("kind", FAMILIES)
+def test_byte_identical_on_a_local_cluster_of_two_workers(kind, shrunk, checkpoints, tmp_path, dask_engine):
+    out, _ = shrunk(kind)
+    other = tmp_path / "cluster"
+    done = shrink_blockwise(checkpoints(kind), other, budget=BUDGET, calibration=_calibration(), threads=1,
+                            cluster=dask_engine)
+    assert done.engine["workers"] == 2
+    names = sorted(p.name for p in out.iterdir())
+    assert names == sorted(p.name for p in other.iterdir())
+    if kind in SHARDED:
+        assert len([n for n in names if n.endswith(".safetensors")]) > 1
+    for n in names:
+        assert (out / n).read_bytes() == (other / n).read_bytes(), (kind, n)
