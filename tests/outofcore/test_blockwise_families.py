@@ -5,7 +5,9 @@ built from tiny configs (GPT-2, Llama, Mistral, Qwen2, Phi, Gemma, BERT; tests/o
   the position inputs and the masks the blocks were fed are the model's own);
 - the written directory reloads into the family's class and computes what the same plan gives in memory
   (factorize's in-memory calibrated functions on the whole model);
-- a Dask local cluster of 2 worker processes writes the same bytes as one process.
+- a Dask local cluster of 2 worker processes writes the same bytes as one process;
+- the sequential refit (``sequential=True``) computes what factorize's in-memory ``compress_sequential`` does
+  with the same plan.
 """
 
 from __future__ import annotations
@@ -16,7 +18,7 @@ import pytest
 import torch
 
 import factorize
-from factorize.calibrated.aware import aware_spectra
+from factorize.calibrated.aware import aware_spectra, compress_sequential
 from factorize.calibrated.stats import collect_stats
 from factorize.cluster import LocalEngine
 from factorize.model.sites import walk
@@ -156,6 +158,7 @@ def test_output_reloads_and_equals_the_same_plan_applied_in_memory(kind, checkpo
     assert float((got - dense).norm() / dense.norm()) > 1e-3  # the factors did change the model
 
 
+@pytest.mark.slow  # the cluster's start-up and 7 runs: about 30 s
 @pytest.mark.parametrize("kind", FAMILIES)
 def test_byte_identical_on_a_local_cluster_of_two_workers(kind, shrunk, checkpoints, tmp_path, dask_engine):
     out, _ = shrunk(kind)
@@ -169,3 +172,61 @@ def test_byte_identical_on_a_local_cluster_of_two_workers(kind, shrunk, checkpoi
         assert len([n for n in names if n.endswith(".safetensors")]) > 1
     for n in names:
         assert (out / n).read_bytes() == (other / n).read_bytes(), (kind, n)
+
+
+@pytest.mark.parametrize("kind", FAMILIES)
+def test_sequential_refit_equals_compress_sequential_in_memory(kind, checkpoints, shrunk, tmp_path):
+    # reference: factorize's in-memory compress_sequential (layer by layer in forward order, pair statistics of
+    # the original and the partly compressed whole model, reduced-rank regression refit, Izenman 1975) on
+    # transformers' whole model, with the plan the block-by-block run allocated from its first pass and no
+    # centring (as block by block)
+    _, plain = shrunk(kind)
+    out = tmp_path / "seq"
+    done = shrink_blockwise(checkpoints(kind), out, budget=BUDGET, calibration=_calibration(), threads=1,
+                            sequential=True, work_dir=tmp_path)
+    assert done.plan["calibration"]["sequential"] is True
+    assert {n: e["rank"] for n, e in done.plan["sites"].items()} == \
+        {n: e["rank"] for n, e in plain.plan["sites"].items()}  # ranks from the first pass, as documented
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["seq"]  # the work files are removed
+    original = _original(kind, checkpoints(kind))
+    in_memory, _ = compress_sequential(original, done.plan, _calibration(), center=False)
+    loaded = factorize.load_directory(out).float()
+    heldout = torch.randint(0, VOCAB, (3, 20), generator=torch.Generator().manual_seed(7))
+    want, got = _outputs(in_memory, heldout), _outputs(loaded, heldout)
+    assert float((got - want).norm() / want.norm()) < 1e-5, kind
+    # the refit changed the factors: the output differs from the plain (first-pass) factors at the same ranks
+    plain_out = _outputs(factorize.load_directory(shrunk(kind)[0]).float(), heldout)
+    assert float((got - plain_out).norm() / plain_out.norm()) > 1e-4
+
+
+@pytest.mark.slow
+def test_sequential_byte_identical_on_a_local_cluster_of_two_workers(checkpoints, tmp_path, dask_engine):
+    # Qwen2: sharded, and two sets of block inputs (sliding-window and full-attention layers)
+    src = checkpoints("qwen2")
+    a, b = tmp_path / "one", tmp_path / "two"
+    shrink_blockwise(src, a, budget=BUDGET, calibration=_calibration(), threads=1, sequential=True)
+    shrink_blockwise(src, b, budget=BUDGET, calibration=_calibration(), threads=1, sequential=True,
+                     cluster=dask_engine)
+    names = sorted(p.name for p in a.iterdir())
+    assert names == sorted(p.name for p in b.iterdir()) and len(names) > 3
+    for n in names:
+        assert (a / n).read_bytes() == (b / n).read_bytes(), n
+
+
+def test_command_line_blockwise_encoder_with_sequential_refit(checkpoints, tmp_path):
+    import io
+    import json
+
+    import numpy as np
+
+    from factorize.cli import main
+
+    np.save(tmp_path / "ids.npy", np.random.default_rng(0).integers(0, VOCAB, (6, 20)))
+    out, err = io.StringIO(), io.StringIO()
+    rc = main(["shrink", "--model", str(checkpoints("bert")), "--calibration", str(tmp_path / "ids.npy"),
+               "--blockwise", "--sequential", "--budget", "0.5", "-o", str(tmp_path / "small"), "--json", "-q"],
+              stdout=out, stderr=err)
+    assert rc == 0, err.getvalue() + out.getvalue()
+    result = json.loads(out.getvalue())
+    assert result["plan"]["calibration"]["sequential"] is True and result["plan"]["calibration"]["blockwise"]
+    assert isinstance(factorize.load_directory(tmp_path / "small"), transformers.BertModel)
