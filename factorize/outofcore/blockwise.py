@@ -1,48 +1,64 @@
-"""Block by block: the calibrated (activation-aware) shrink of a decoder-only transformers checkpoint that does not
-fit in memory.
+"""Block by block: the calibrated (activation-aware) shrink of a transformers checkpoint that does not fit in
+memory.
 
 The in-memory calibrated path (:func:`factorize.compress` with ``calibration=``) holds the whole model and every
-layer's input second moment at once. Here only one block (one entry of the model's ``layers`` ModuleList) is
-materialised at a time, from the memory-mapped safetensors shards, one tensor at a time:
+layer's input second moment at once. Here only one block (one entry of the model's list of blocks, found in the
+model itself: :func:`factorize.outofcore.architecture.find_blocks`) is materialised at a time, from the
+memory-mapped safetensors shards, one tensor at a time. Any family whose model has one such list runs (checked
+against transformers' classes: GPT-2, Llama, Mistral, Qwen2, Phi, Gemma, BERT); the projections inside a block
+are ``nn.Linear`` or GPT-2's ``Conv1D`` (plan kind ``"transposed"``).
 
-1. **Embed.** The calibration token ids go through ``embed_tokens`` (the only tensor read for this step); the
-   hidden states are written to a work directory, cut into a FIXED number of slices (``slices``, independent of
-   how many workers run them).
+1. **Embed.** The calibration token ids go through the model's own forward up to its first block
+   (:mod:`factorize.outofcore.stem`: embeddings, position embeddings, masks, rotary tables, built by the model's
+   code on the parts outside the blocks, materialised from the checkpoint); the hidden states entering block 0
+   and every block's extra inputs are written to a work directory, cut into a FIXED number of slices
+   (``slices``, independent of how many workers run them), each slice into passes of at most
+   ``tokens_per_pass`` tokens.
 2. **Statistics, block by block.** For block i, one task per slice loads the block's weights, runs its slice's
-   hidden states through it (rotary position embeddings and the causal mask built by the model's own helpers,
-   exactly as the model's forward builds them), accumulates every selected linear's input second moment
-   C = X^T X in float64 (q/k/v share one input and gate/up another: each distinct input is accumulated once),
-   writes the block's outputs for block i + 1 and its partial moments to the work directory. The client sums the
-   partial moments in slice order, computes each linear's whitened spectrum (singular values of W L with
-   L L^T = C + lambda I, :func:`factorize.calibrated.aware.decompose_aware`), keeps the values only, stores C
-   for the factor step and frees the block.
-
-   The hidden states passed on are the ORIGINAL block's outputs, not those of a compressed block: the ranks are
-   only known once every block's spectrum is (the budget is allocated globally), so the statistics must not
-   depend on them. (The sequential refit of the in-memory path, which feeds compressed outputs on, is not
-   available here.)
+   hidden states through it with the extra inputs the model itself gave the block, accumulates every selected
+   projection's input second moment C = X^T X in float64 (q/k/v share one input and gate/up another: each
+   distinct input is accumulated once), writes the block's outputs for block i + 1 and its partial moments to
+   the work directory. The client sums the partial moments in slice order, computes each projection's whitened
+   spectrum (singular values of W L with L L^T = C + lambda I, :func:`factorize.calibrated.aware.decompose_aware`),
+   keeps the values only, stores C for the factor step and frees the block. The hidden states passed on are the
+   ORIGINAL block's outputs: the ranks are only known once every block's spectrum is (the budget is allocated
+   globally), so this first pass must not depend on them.
 3. **Plan and factors.** The budget is allocated across all blocks' whitened spectra at once
-   (:func:`factorize.plan.ranks.choose_ranks`), then each factored linear is one task: its weight from the shard
-   and its group's C from the work directory give the factors at the planned rank.
+   (:func:`factorize.plan.ranks.choose_ranks`), then each factored projection is one task: its weight from the
+   shard and its group's C from the work directory give the factors at the planned rank.
+
+   With ``sequential=True`` the factors come instead from a second pass over the blocks, in order, that feeds
+   each block what the already compressed blocks upstream produce (:mod:`factorize.outofcore.refit_tasks`): for
+   each group of projections sharing an input, in the order the block calls them, the pair statistics of the
+   original block on the original stream and of the partly compressed block on the compressed stream give the
+   refitted factors (reduced-rank regression, as :func:`factorize.calibrated.aware.compress_sequential` does in
+   memory) at the ranks of the plan from step 3; then both streams advance one block. The ranks are those of the
+   first pass (as the in-memory ``sequential=True`` plans before it refits). Cost: per block, one forward of
+   the original and one of the compressed block per refitted group (each stopped once the group's input is
+   seen), plus one of each to advance, against one forward per block without it.
 4. **Write.** A sharded checkpoint in a new directory (same shard names, ``<module>.first.weight`` (r, in) and
-   ``<module>.second.weight`` (out, r) for factored linears, everything else copied; the plan in the index's
+   ``<module>.second.weight`` (out, r) for factored projections, everything else copied; the plan in the index's
    metadata) plus the source's config and tokenizer files. :func:`factorize.load_directory` (or
    ``factorize.load(fresh_model, directory)``) reads it back. The directory is written under a temporary name
    and renamed into place when complete: a failure leaves nothing.
 
-The tasks live in :mod:`factorize.outofcore.block_tasks`, the architecture on the meta device in
-:mod:`factorize.outofcore.architecture`, the calibration slices in :mod:`factorize.outofcore.tokens`.
+The tasks live in :mod:`factorize.outofcore.block_tasks` and :mod:`factorize.outofcore.refit_tasks`, the
+architecture on the meta device in :mod:`factorize.outofcore.architecture`, the embedding stage and the blocks'
+extra inputs in :mod:`factorize.outofcore.stem`, the calibration slices in :mod:`factorize.outofcore.tokens`.
 
 Byte-identical results on any engine (:mod:`factorize.cluster`): the slices are fixed, each task computes in
 float64 under the same pinned torch thread count (``threads``; the client's count by default), and the client sums
 the partial moments in slice order. Results are identical across engines and task orders for the same thread
 count on the same kind of machine (float rounding of the float32 block forward depends on the CPU's kernels).
 
-Memory: the client holds at most one group's moment (n x n float64) and the whitening work for one linear
-(about three n x n float64 matrices, see :mod:`factorize.calibrated.aware`); a task holds one block in float32,
-its slice's hidden states in and out, and the block's intermediate activations for ``tokens_per_pass`` tokens.
-The report states the measured peak resident memory of this process (``peak_rss_bytes``), the block's and the
-activations' sizes, and the bound 2 blocks + activations + 1 GB as a number, met or not.
+Memory: the client holds the parts of the model outside its blocks (except the output head) in float32 while it
+embeds (the token embedding is vocab x hidden: for a large vocabulary this can exceed one block), then at most one
+group's moment (n x n float64; three of them with ``sequential``) and the whitening work for one projection
+(about three n x n float64 matrices, see :mod:`factorize.calibrated.aware`); a task holds one block in float32
+(two with ``sequential``: the original and the compressed one), its slice's hidden states in and out, and the
+block's intermediate activations for ``tokens_per_pass`` tokens. The report states the measured peak resident
+memory of this process (``peak_rss_bytes``), the block's and the activations' sizes, and the bound
+2 blocks + activations + 1 GB as a number, met or not.
 """
 
 from __future__ import annotations
@@ -135,11 +151,11 @@ def shrink_blockwise(
     calibration: Any,
     **keywords: Any,
 ) -> BlockwiseShrink:
-    """Calibrated shrink of a decoder-only transformers checkpoint, one block in memory at a time.
+    """Calibrated shrink of a transformers checkpoint, one block in memory at a time.
 
     Args:
-        src: a transformers model directory (config.json and safetensors shards, or one model.safetensors) of a
-            supported type (Llama); only read.
+        src: a transformers model directory (config.json and safetensors shards, or one model.safetensors) whose
+            model has one list of blocks (GPT-2, Llama, Mistral, Qwen2, Phi, Gemma, BERT, ...); only read.
         dst: the output directory (created; refused if it exists unless ``force``).
         policy: a :class:`~factorize.plan.policy.Policy` or its keywords (``budget=0.5``, ``rank=``, ``energy=``,
             ``keep=``, ``multiple``, ``include`` / ``exclude`` on qualified linear names such as
@@ -151,7 +167,8 @@ def shrink_blockwise(
             :class:`~factorize.cluster.Engine`; with a cluster, ``work_dir`` must be on storage every worker
             reads), ``work_dir`` (needs about 2 x the activations plus every block's n x n float64 moments),
             ``slices``, ``threads``, ``tokens_per_pass``, ``ridge``, ``precision``, ``force`` (replace an
-            existing ``dst``), ``metadata`` (extra string entries for the output's metadata), ``progress``.
+            existing ``dst``), ``metadata`` (extra string entries for the output's metadata), ``progress``,
+            ``sequential`` (refit each block to the compressed blocks upstream; ranks from the first pass).
         calibration: token ids: a (sequences, length) integer tensor, a list of them, or dicts with
             ``input_ids`` (and an ``attention_mask`` whose padded positions are left out of the statistics).
 
