@@ -174,7 +174,11 @@ def test_byte_identical_on_a_local_cluster_of_two_workers(kind, shrunk, checkpoi
         assert (out / n).read_bytes() == (other / n).read_bytes(), (kind, n)
 
 
-@pytest.mark.parametrize("kind", FAMILIES)
+# two families in the default run (GPT-2: transposed projections; BERT: an encoder with padding), all in the slow one
+SEQUENTIAL = [k if k in ("gpt2", "bert") else pytest.param(k, marks=pytest.mark.slow) for k in FAMILIES]
+
+
+@pytest.mark.parametrize("kind", SEQUENTIAL)
 def test_sequential_refit_equals_compress_sequential_in_memory(kind, checkpoints, shrunk, tmp_path):
     # reference: factorize's in-memory compress_sequential (layer by layer in forward order, pair statistics of
     # the original and the partly compressed whole model, reduced-rank regression refit, Izenman 1975) on
@@ -213,6 +217,7 @@ def test_sequential_byte_identical_on_a_local_cluster_of_two_workers(checkpoints
         assert (a / n).read_bytes() == (b / n).read_bytes(), n
 
 
+@pytest.mark.slow  # a second sequential run of BERT, through the command line
 def test_command_line_blockwise_encoder_with_sequential_refit(checkpoints, tmp_path):
     import io
     import json
