@@ -480,8 +480,12 @@ def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, st
             raise FactorizeError(f"{path}: factors of rank {A.shape[0]}, the plan says {entry['rank']}")
         return path, relative_error(c.read_matrix(), B, A)
 
+    # tensors the model does not have (legacy persistent buffers such as an old BERT's embeddings.position_ids,
+    # which transformers ignores on loading) are left out, so the output loads strictly into the model
+    known = set(run.arch.model.state_dict())
+    drop = frozenset(n for n in run.arch.where if n not in known)
     writer = CheckpointWriter(ckpt, run.chosen, factors_of, plan_reserve=plan_bound(run.sites, run.policy),
-                              progress=run.options.progress)
+                              progress=run.options.progress, drop=drop)
     check_free_space(dst.parent if str(dst.parent) else Path("."), writer.planned_bytes(plan["sites"]),
                      "the shrunk checkpoint")
     tmp = new_temp_dir(dst)

@@ -139,8 +139,9 @@ class CheckpointWriter:
     """
 
     def __init__(self, ckpt: Checkpoint, chosen: list[Candidate], factors_of: FactorsOf, *, plan_reserve: int,
-                 progress: bool = False) -> None:
+                 progress: bool = False, drop: frozenset[str] = frozenset()) -> None:
         self.ckpt, self.factors_of, self.plan_reserve, self.progress = ckpt, factors_of, plan_reserve, progress
+        self.drop = drop  # tensors left out of the output (ones the model does not have, e.g. legacy buffers)
         self.chosen = {c.weight.name: c for c in chosen}
         self.biases = {c.bias.name: c for c in chosen if c.bias is not None}
         self.report: dict[str, dict] = {}
@@ -154,6 +155,8 @@ class CheckpointWriter:
         for h in self.ckpt.files:
             total += self.reserve_for(h)
             for name, info in h.tensors.items():
+                if name in self.drop:
+                    continue
                 c = self.chosen.get(name)
                 e = entries.get(c.module) if c else None
                 if is_factored_entry(e):
@@ -226,7 +229,7 @@ class CheckpointWriter:
             remove_quietly(p)
 
     def _write_file(self, h: Header, w: ShardWriter) -> None:
-        names = [n for n in h.tensors if n not in self.biases]  # a layer's bias travels with its weight
+        names = [n for n in h.tensors if n not in self.biases and n not in self.drop]  # a bias goes with its weight
         for name in tqdm(names, desc=printable(h.path.name), unit="tensor", disable=not self.progress, leave=False):
             c = self.chosen.get(name)
             if c is None:

