@@ -35,7 +35,7 @@ import torch
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 sys.path.insert(0, str(HERE.parent))
-RESULTS = HERE / "results" / "blockwise_sequential.md"
+RESULTS = HERE / "results"  # blockwise_sequential_<lm|encoder|all>.md
 
 
 def lm_model(shape: str, quick: bool, root: Path):
@@ -128,7 +128,8 @@ def main() -> None:
                      f"{s1 / s0:.2f} |")
     lines += ["", "Drift measured on sample inputs is no guarantee of behaviour on other inputs; safety-relevant "
               "uses need re-validation."]
-    RESULTS.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    part = "encoder" if args.skip_lm else "lm" if args.skip_encoder else "all"
+    (RESULTS / f"blockwise_sequential_{part}.md").write_text("\n".join(lines) + "\n", encoding="utf-8")
     print("\n".join(lines))
 
 

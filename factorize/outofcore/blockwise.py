@@ -204,7 +204,10 @@ def shrink_blockwise(
         (dst_path.parent if str(dst_path.parent) else Path("."))
     if not parent.is_dir():
         raise FactorizeError(f"{parent}: the work directory does not exist", fix="create it or pass another")
-    need = 2 * sizes["activation_bytes"] + (arch.blocks + options.slices) * sizes["moments"] + arch.ckpt.nbytes
+    if options.sequential:  # the embedding stage's output kept, two streams in and out; 3 moments a group, no block's
+        need = 5 * sizes["activation_bytes"] + 3 * (options.slices + 1) * sizes["moments"] + arch.ckpt.nbytes
+    else:
+        need = 2 * sizes["activation_bytes"] + (arch.blocks + options.slices) * sizes["moments"] + arch.ckpt.nbytes
     check_free_space(parent, int(need), "the block-by-block work files (activations, moments, factors)")
     engine = open_engine(options.cluster, threads=threads)
     where = engine.describe()

@@ -23,7 +23,6 @@ FactorizeError naming the model type and the argument.
 
 from __future__ import annotations
 
-import contextlib
 import copy
 import inspect
 import json
@@ -91,8 +90,17 @@ class Stem:
     def run(self, ids: torch.Tensor, mask: torch.Tensor | None) -> tuple[torch.Tensor, list[tuple]]:
         """(hidden states entering block 0 (float32), per block (extra args, extra kwargs))."""
         self.calls.clear()
-        with contextlib.suppress(_Stop):
+        try:
             self.model(input_ids=ids, attention_mask=mask, **self.flags)
+        except _Stop:
+            pass
+        except (RuntimeError, IndexError, ValueError) as err:  # the model's own checks (positions, shapes)
+            first = str(err).splitlines()[0] if str(err) else type(err).__name__
+            limit = getattr(self.arch.config, "max_position_embeddings", None)
+            raise FactorizeError(f"model_type {self.arch.model_type!r}: the model's forward up to its first block "
+                                 f"fails on calibration sequences of {int(ids.shape[1])} tokens: {first}",
+                                 fix="give token ids the model accepts" + (f" (at most {limit} tokens per sequence)"
+                                                                           if limit else "")) from None
         if len(self.calls) != self.arch.blocks:
             raise FactorizeError(f"model_type {self.arch.model_type!r}: the model's forward called "
                                  f"{len(self.calls)} of its {self.arch.blocks} blocks",

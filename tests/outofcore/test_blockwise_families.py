@@ -274,3 +274,14 @@ def test_pretrained_minilm_encoder_sequential_equals_in_memory(tmp_path):
     with torch.no_grad():
         got, want = loaded(**cal[0]).last_hidden_state, in_memory(**cal[0]).last_hidden_state
     assert float((got - want).norm() / want.norm()) < 1e-5  # measured 2.6e-6 (float32 forwards)
+
+
+def test_sequences_longer_than_absolute_positions_are_a_clear_error(checkpoints, tmp_path):
+    # GPT-2's learned position table has n_positions=64 rows (the tiny config): 70 tokens cannot be embedded
+    from factorize.errors import FactorizeError
+
+    ids = torch.randint(0, VOCAB, (2, 70), generator=torch.Generator().manual_seed(0))
+    with pytest.raises(FactorizeError, match=r"model_type 'gpt2'.* 70 tokens") as err:
+        shrink_blockwise(checkpoints("gpt2"), tmp_path / "out", budget=BUDGET, calibration=[ids], threads=1)
+    assert "at most 64 tokens" in str(err.value)
+    assert sorted(p.name for p in tmp_path.iterdir()) == []  # nothing written, the work files removed
