@@ -187,9 +187,10 @@ def kind_of(arch: Architecture, name: str) -> str:
 
 def block_candidates(arch: Architecture, names: list[str]) -> list[Candidate]:
     """The checkpoint tensors of the named projections, with their kind (a transposed one's matrix is its
-    stored weight transposed)."""
+    stored weight transposed), in the checkpoint's order of tensors (the plan lists them in this order)."""
+    position = {n: k for k, n in enumerate(arch.where)}
     out = []
-    for name in names:
+    for name in sorted(names, key=lambda n: position[n + ".weight"]):
         w, b = name + ".weight", name + ".bias"
         bias = arch.where[b].tensors[b] if b in arch.where else None
         out.append(Candidate(name, arch.where[w].tensors[w], arch.where[w], bias,
