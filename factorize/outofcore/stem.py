@@ -54,6 +54,8 @@ class _Recorder(torch.nn.Module):
             return getattr(object.__getattribute__(self, "_inner"), name)
 
     def forward(self, *args, **kwargs):
+        if not args and isinstance(kwargs.get("hidden_states"), torch.Tensor):  # replayed as the first argument
+            args = (kwargs.pop("hidden_states"),)
         if not args or not isinstance(args[0], torch.Tensor):
             raise FactorizeError(f"block {self.index} is not called with its hidden states as first argument",
                                  fix="shrink this model in memory (without --blockwise)")

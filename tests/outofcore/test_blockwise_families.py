@@ -12,6 +12,7 @@ built from tiny configs (GPT-2, Llama, Mistral, Qwen2, Phi, Gemma, BERT; tests/o
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import pytest
@@ -220,7 +221,6 @@ def test_sequential_byte_identical_on_a_local_cluster_of_two_workers(checkpoints
 @pytest.mark.slow  # a second sequential run of BERT, through the command line
 def test_command_line_blockwise_encoder_with_sequential_refit(checkpoints, tmp_path):
     import io
-    import json
 
     import numpy as np
 
@@ -285,3 +285,23 @@ def test_sequences_longer_than_absolute_positions_are_a_clear_error(checkpoints,
         shrink_blockwise(checkpoints("gpt2"), tmp_path / "out", budget=BUDGET, calibration=[ids], threads=1)
     assert "at most 64 tokens" in str(err.value)
     assert sorted(p.name for p in tmp_path.iterdir()) == []  # nothing written, the work files removed
+
+
+def test_a_family_that_cannot_run_is_named_with_what_is_missing(tmp_path):
+    from factorize.errors import FactorizeError
+    from factorize.outofcore.stem import encode_extras
+
+    # transformers' ViT (tiny config invented here): blocks are found, but it takes pixels, not token ids
+    vit = tmp_path / "vit"
+    vit.mkdir()
+    (vit / "config.json").write_text(json.dumps({
+        "model_type": "vit", "architectures": ["ViTModel"], "hidden_size": 32, "num_hidden_layers": 2,
+        "num_attention_heads": 4, "intermediate_size": 48, "image_size": 8, "patch_size": 4}))
+    with pytest.raises(FactorizeError, match=r"model_type 'vit': the model ViTModel has no token embedding"):
+        shrink_blockwise(vit, tmp_path / "out", budget=BUDGET, calibration=_calibration())
+    # an argument a model hands its blocks that cannot be stored and replayed (here: a cache object)
+    cache = transformers.DynamicCache()
+    with pytest.raises(FactorizeError, match=r"model_type 'x': the model passes its blocks cache of type "
+                                             r"DynamicCache"):
+        encode_extras([((), {"cache": cache})], "x.0", {}, "x")
+    assert not (tmp_path / "out").exists()
