@@ -234,6 +234,7 @@ def test_command_line_blockwise_encoder_with_sequential_refit(checkpoints, tmp_p
     assert rc == 0, err.getvalue() + out.getvalue()
     result = json.loads(out.getvalue())
     assert result["plan"]["calibration"]["sequential"] is True and result["plan"]["calibration"]["blockwise"]
+    assert any("refitted to the outputs of the compressed blocks upstream" in n for n in result["report"]["notes"])
     assert isinstance(factorize.load_directory(tmp_path / "small"), transformers.BertModel)
 
 
