@@ -124,7 +124,7 @@ def main() -> None:
              "| model | metric | budget | kept | plain | sequential | plain s | sequential s | cost x |",
              "| --- | --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: |"]
     for title, metric, budget, kept, q0, q1, s0, s1 in rows:
-        lines.append(f"| {title} | {metric} | {budget} | {kept:.3f} | {q0:.4f} | {q1:.4f} | {s0:.1f} | {s1:.1f} | "
+        lines.append(f"| {title} | {metric} | {budget} | {kept:.3f} | {q0:.5f} | {q1:.5f} | {s0:.1f} | {s1:.1f} | "
                      f"{s1 / s0:.2f} |")
     lines += ["", "Drift measured on sample inputs is no guarantee of behaviour on other inputs; safety-relevant "
               "uses need re-validation."]
