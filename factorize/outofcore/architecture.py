@@ -198,10 +198,13 @@ def block_candidates(arch: Architecture, names: list[str]) -> list[Candidate]:
     return out
 
 
-def fill_from_checkpoint(arch: Architecture, module: torch.nn.Module, prefix: str, *, recurse: bool = True) -> None:
+def fill_from_checkpoint(arch: Architecture, module: torch.nn.Module, prefix: str, *, recurse: bool = True,
+                         missing_ok: bool = False) -> list[str]:
     """Materialise ``module`` (a meta-device part of ``arch.model`` named ``prefix``; only its own tensors unless
     ``recurse``) on the CPU in float32: its buffers from the model's own initialisation (rotary frequencies,
-    position ids), then every parameter and persistent buffer the checkpoint holds, read one tensor at a time."""
+    position ids), then every parameter and persistent buffer the checkpoint holds, read one tensor at a time.
+    A parameter missing from the checkpoint is an error, or with ``missing_ok`` filled with NaN (so that any use
+    shows) and returned by name."""
     init = getattr(arch.model, "_init_weights", None)
     missing: list[str] = []
     subs = module.named_modules() if recurse else [("", module)]
@@ -222,10 +225,12 @@ def fill_from_checkpoint(arch: Architecture, module: torch.nn.Module, prefix: st
                     tensor.copy_(read_tensor(h.path, full))  # the stored dtype (e.g. bfloat16) cast to float32
                 elif is_param:
                     missing.append(full)
-    if missing:
+                    tensor.fill_(float("nan"))
+    if missing and not missing_ok:
         raise FactorizeError(f"{arch.directory}: model_type {arch.model_type!r}: parameters the model uses before "
                              "or inside its blocks are missing from the checkpoint", missing[:30],
                              fix="pass a complete, unmodified transformers checkpoint")
+    return missing
 
 
 @torch.no_grad()

@@ -73,6 +73,7 @@ class Stem:
         model = copy.deepcopy(arch.model)  # meta: no values copied
         layers = model.get_submodule(arch.prefix)
         self.calls: dict[int, tuple] = {}
+        self.missing: list[str] = []  # parameters outside the blocks the checkpoint lacks (NaN; an error if used)
         for i in range(len(layers)):
             layers[i] = _Recorder(layers[i], i, i == len(layers) - 1, self.calls)
         head = model.get_output_embeddings() if hasattr(model, "get_output_embeddings") else None
@@ -82,7 +83,7 @@ class Stem:
             if isinstance(module, _Recorder) or (skip is not None and (name == skip or name.startswith(skip + "."))):
                 continue
             if any(True for _ in module.parameters(recurse=False)) or any(True for _ in module.buffers(recurse=False)):
-                fill_from_checkpoint(arch, module, name, recurse=False)
+                self.missing += fill_from_checkpoint(arch, module, name, recurse=False, missing_ok=True)
         base = getattr(model, "base_model", model)
         self.model = base.eval()
         params = inspect.signature(base.forward).parameters
@@ -108,6 +109,11 @@ class Stem:
                                  f"{len(self.calls)} of its {self.arch.blocks} blocks",
                                  fix="shrink this model in memory (without --blockwise)")
         h = self.calls[0][0][0].float().contiguous()
+        if not bool(torch.isfinite(h).all()):
+            raise FactorizeError(f"model_type {self.arch.model_type!r}: the hidden states entering the first block "
+                                 "are not finite" + (": the embedding stage uses parameters missing from the "
+                                                     "checkpoint" if self.missing else ""), self.missing[:30],
+                                 fix="pass a complete, unmodified transformers checkpoint")
         extras = [(self.calls[i][0][1:], self.calls[i][1]) for i in range(self.arch.blocks)]
         self.calls.clear()
         return h, extras

@@ -306,3 +306,19 @@ def test_a_family_that_cannot_run_is_named_with_what_is_missing(tmp_path):
                                              r"DynamicCache"):
         encode_extras([((), {"cache": cache})], "x.0", {}, "x")
     assert not (tmp_path / "out").exists()
+
+
+def test_a_parameter_the_embedding_stage_needs_but_the_checkpoint_lacks_is_named(tmp_path):
+    from safetensors.torch import load_file, save_file
+
+    from factorize.errors import FactorizeError
+
+    src = write_family(transformers, "bert", tmp_path / "bert")
+    tensors = load_file(src / "model.safetensors")
+    del tensors["embeddings.LayerNorm.weight"]  # BERT's embedding LayerNorm runs before the first block
+    save_file(tensors, src / "model.safetensors", metadata={"format": "pt"})
+    with pytest.raises(FactorizeError, match="model_type 'bert': the hidden states entering the first block are "
+                                             "not finite: the embedding stage uses parameters missing") as err:
+        shrink_blockwise(src, tmp_path / "out", budget=BUDGET, calibration=_calibration(), threads=1)
+    assert err.value.problems == ["embeddings.LayerNorm.weight"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bert"]
