@@ -99,6 +99,8 @@ def main() -> None:
     ap.add_argument("--budgets", type=float, nargs="+", default=[0.3, 0.2])
     ap.add_argument("--skip-encoder", action="store_true")
     ap.add_argument("--skip-lm", action="store_true")
+    ap.add_argument("--shapes", nargs="+", default=["gpt2", "llama"], choices=["gpt2", "llama"],
+                    help="which byte LMs (each trained here first unless cached)")
     args = ap.parse_args()
     torch.set_num_threads(1)
     rows = []
@@ -106,8 +108,8 @@ def main() -> None:
         root = Path(tmp)
         cases = []
         if not args.skip_lm:
-            cases += [("GPT-2-shaped byte LM", *lm_model("gpt2", args.quick, root)),
-                      ("LLaMA-shaped byte LM", *lm_model("llama", args.quick, root))]
+            names = {"gpt2": "GPT-2-shaped byte LM", "llama": "LLaMA-shaped byte LM"}
+            cases += [(names[shape], *lm_model(shape, args.quick, root)) for shape in args.shapes]
         if not args.skip_encoder:
             cases.append(("all-MiniLM-L6-v2 (BERT)", *encoder_model()))
         for title, src, cal, evaluate, metric in cases:
@@ -128,7 +130,8 @@ def main() -> None:
                      f"{s1 / s0:.2f} |")
     lines += ["", "Drift measured on sample inputs is no guarantee of behaviour on other inputs; safety-relevant "
               "uses need re-validation."]
-    part = "encoder" if args.skip_lm else "lm" if args.skip_encoder else "all"
+    part = "encoder" if args.skip_lm else ("lm" + ("_quick" if args.quick else "_" + "_".join(args.shapes))) \
+        if args.skip_encoder else "all"
     (RESULTS / f"blockwise_sequential_{part}.md").write_text("\n".join(lines) + "\n", encoding="utf-8")
     print("\n".join(lines))
 
