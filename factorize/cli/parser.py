@@ -298,7 +298,7 @@ def _quality_options(*, shrink: bool):
                    "outputs on them (whitening); keep them apart from --inputs, where drift is measured")
     g.add_argument("--sequential", action="store_true",
                    help="with --calibration: factor layers in forward order, each fitted to the inputs the partly "
-                   "compressed model gives it")
+                   "compressed model gives it (with --blockwise: block after block, ranks from a first pass)")
     g.add_argument("--sensitivity", nargs="?", const=True, default=None, choices=SENSITIVITY_MODES,
                    metavar="HOW",
                    help="with --calibration, how each layer's effect on the final output is measured to allocate the "
@@ -337,10 +337,11 @@ def _quality_options(*, shrink: bool):
                        help="learning-rate schedule for --heal: cosine (the default: a 5%% linear warm-up, then a "
                        "half cosine down to zero) or constant")
         g.add_argument("--blockwise", action="store_true",
-                       help="with --calibration and a transformers directory (or its index or single weights "
-                       "file) of an architecture the block-by-block shrink supports (docs/cli.md; others are refused "
-                       "naming what is missing): load, calibrate and factor one block at a time from the (sharded) "
-                       "checkpoint, for models larger than memory; writes a directory of shards")
+                       help="with --calibration and a transformers directory, its index or its single weights file "
+                       "(GPT-2, Llama, Mistral, Qwen2, Phi, Gemma, BERT and other models with one list of blocks; "
+                       "others are refused naming what is missing): load, calibrate and factor one block at a time "
+                       "from the (sharded) checkpoint, for models larger than memory; writes a directory of shards "
+                       "(with --sequential, each block is refitted to the compressed blocks upstream)")
         g.add_argument("--speed-check", action="store_true",
                        help="time each factored layer against its dense form here (batch 1 and 32) and keep dense "
                        "the ones that are slower")

@@ -259,8 +259,8 @@ def _shrink_weights_only(args, loaded, output: Path, opts: Options, ui: UI):
 
 
 BLOCKWISE_REFUSED = (("--inputs", "inputs"), ("--random-inputs", "random_inputs"), ("--max-drift", "max_drift"),
-                     ("--target-drift", "target_drift"), ("--heal", "heal"), ("--sequential", "sequential"),
-                     ("--sensitivity", "sensitivity"), ("--cache", "cache"), ("--speed-check", "speed_check"),
+                     ("--target-drift", "target_drift"), ("--heal", "heal"), ("--sensitivity", "sensitivity"),
+                     ("--cache", "cache"), ("--speed-check", "speed_check"),
                      ("--weights", "weights"), ("--dtype", "dtype"), ("--device", "device"))
 
 
@@ -319,7 +319,8 @@ def _shrink_blockwise(args, opts: Options, policy, ui: UI) -> dict:
     ui.note(f"calibration inputs: {calib.source}")
     done = shrink_blockwise(model_dir, output, policy, calibration=calib.batches, force=args.force,
                             progress=ui.progress, cluster=getattr(args, "cluster", None),
-                            threads=getattr(args, "threads", None))
+                            threads=getattr(args, "threads", None),
+                            sequential=bool(getattr(args, "sequential", False)))
     report = done.report(str(model_dir), calib.source)
     if report_path is not None:
         try:

@@ -9,7 +9,6 @@ factors at its planned rank from its weight and its group's summed moment. Each 
 
 from __future__ import annotations
 
-import inspect
 import json
 import os
 from dataclasses import dataclass
@@ -20,7 +19,8 @@ from safetensors import safe_open
 from factorize.calibrated.aware import decompose_aware
 from factorize.calibrated.stats import InputStats, accumulate, check_finite, input_rows
 from factorize.model.hooks import forward_pre_hooks
-from factorize.outofcore.architecture import Architecture, architecture, materialise_block
+from factorize.outofcore.architecture import Architecture, architecture, kind_of, materialise_block
+from factorize.outofcore.stem import decode_extras
 from factorize.storage import read_tensor, write_safetensors
 from factorize.threads import torch_threads
 
@@ -37,7 +37,7 @@ class BlockTask:
     stats: str  # partial moments of this slice
     names: tuple[str, ...]  # qualified names of the linears to collect statistics for
     threads: int
-    tokens_per_pass: int
+    extras: str  # the blocks' extra inputs for this slice (masks, position embeddings; see outofcore.stem)
 
 
 def save_work_file(tensors: dict, path: str, metadata: dict | None = None) -> None:
@@ -45,18 +45,6 @@ def save_work_file(tensors: dict, path: str, metadata: dict | None = None) -> No
     tmp = f"{path}.{os.getpid()}.part"
     write_safetensors(tmp, tensors, metadata)
     os.replace(tmp, path)
-
-
-def _causal_mask(arch: Architecture, h: torch.Tensor, mask: torch.Tensor | None, pos: torch.Tensor):
-    """The attention mask exactly as the model's forward builds it (transformers' ``create_causal_mask``)."""
-    from transformers.masking_utils import create_causal_mask
-
-    params = inspect.signature(create_causal_mask).parameters
-    cache = {"cache": None} if "cache" in params else {"past_key_values": None}
-    extra = {"cache_position": pos[0]} if "cache_position" in params else {}
-    embeds = "inputs_embeds" if "inputs_embeds" in params else "input_embeds"
-    return create_causal_mask(config=arch.config, **{embeds: h}, attention_mask=mask, position_ids=pos,
-                              **cache, **extra)
 
 
 def block_slice_task(task: BlockTask) -> dict:
@@ -87,10 +75,11 @@ def _slice_through_block(task: BlockTask) -> dict:
             live[id(x)] = (x, groups[name])
             if groups[name] != name:
                 return  # the same input was accumulated for its group
-            rows = input_rows(module, "linear", x.detach(), state["mask"])  # padded positions left out
+            kind = kind_of(arch, rel[name])
+            rows = input_rows(module, kind, x.detach(), state["mask"])  # padded positions left out
             check_finite(rows, rel[name], state["pass"])
             if name not in stats:
-                stats[name] = InputStats(rel[name], "linear", int(x.shape[-1]))
+                stats[name] = InputStats(rel[name], kind, int(x.shape[-1]))
             accumulate(stats[name], rows)
 
         return hook
@@ -111,35 +100,32 @@ def _slice_through_block(task: BlockTask) -> dict:
 
 
 def _forward_slice(arch: Architecture, block: torch.nn.Module, task: BlockTask, state: dict, live: dict) -> dict:
-    """The block's outputs for every batch piece of the slice, ``task.tokens_per_pass`` tokens at a time (the
-    hooks collect the inputs as the passes run)."""
+    """The block's outputs for every pass of the slice (the embedding stage cut the slice into passes of at most
+    ``tokens_per_pass`` tokens; the hooks collect the inputs as the passes run)."""
     outputs: dict[str, torch.Tensor] = {}
-    with safe_open(task.inputs, framework="pt", device="cpu") as f:
+    with safe_open(task.inputs, framework="pt", device="cpu") as f, \
+            safe_open(task.extras, framework="pt", device="cpu") as x:
+        described = json.loads(x.metadata()["extras"])
         stored = set(f.keys())
-        keys = sorted({k.split(".", 1)[1] for k in stored}, key=int)
-        for k in keys:
-            h_all = f.get_tensor(f"h.{k}")  # (b, T, hidden) float32
-            m_all = f.get_tensor(f"m.{k}") if f"m.{k}" in stored else None
-            b, t = int(h_all.shape[0]), int(h_all.shape[1])
-            step = max(1, task.tokens_per_pass // max(t, 1))
-            parts = []
-            for lo in range(0, b, step):
-                h = h_all[lo:lo + step]
-                m = None if m_all is None else m_all[lo:lo + step]
-                pos = torch.arange(t).unsqueeze(0)
-                state["mask"] = m
-                live.clear()
-                pe = arch.rotary(h, pos)
-                out = block(h, attention_mask=_causal_mask(arch, h, m, pos), position_ids=pos,
-                            position_embeddings=pe)
-                parts.append((out[0] if isinstance(out, tuple) else out).contiguous())
-                state["pass"] += 1
-                live.clear()
-            outputs[f"h.{k}"] = torch.cat(parts) if len(parts) > 1 else parts[0]
-            if m_all is not None:
-                outputs[f"m.{k}"] = m_all
-            del h_all, parts
+        for k in sorted({key.split(".", 1)[1] for key in stored}, key=int):
+            h = f.get_tensor(f"h.{k}")  # (b, T, hidden) float32
+            m = f.get_tensor(f"m.{k}") if f"m.{k}" in stored else None
+            args, kwargs = decode_extras(described[k], task.block, x)
+            state["mask"] = m
+            live.clear()
+            outputs[f"h.{k}"] = run_block(block, h, args, kwargs)
+            if m is not None:
+                outputs[f"m.{k}"] = m
+            state["pass"] += 1
+            live.clear()
+            del h
     return outputs
+
+
+def run_block(block: torch.nn.Module, h: torch.Tensor, args: tuple, kwargs: dict) -> torch.Tensor:
+    """One block's output hidden states for ``h``, given the extra inputs the model itself passes it."""
+    out = block(h, *args, **kwargs)
+    return (out[0] if isinstance(out, tuple) else out).contiguous()
 
 
 @dataclass(frozen=True)
@@ -167,6 +153,9 @@ def read_stats(path: str, name: str) -> InputStats:
         st = InputStats(name, "linear", int(C.shape[0]), count=int(meta["count"]), second_moment=C,
                         total=f.get_tensor("total"), abs_total=f.get_tensor("abs_total"),
                         batches=int(meta.get("batches", 0)))
+        if "cross" in f.keys():  # noqa: SIM118 - a safe_open handle, not a dict; pair statistics of the sequential refit (outofcore.refit_tasks)
+            st.cross, st.reference_moment = f.get_tensor("cross"), f.get_tensor("reference_moment")
+            st.reference_total = f.get_tensor("reference_total")
     return st
 
 
@@ -179,7 +168,9 @@ def factor_task(task: FactorTask) -> str:
 def _factors_of_linear(task: FactorTask) -> str:
     arch = architecture(task.source)
     weight = task.module + ".weight"
-    W = read_tensor(arch.where[weight].path, weight)  # (out, in), stored dtype
+    W = read_tensor(arch.where[weight].path, weight)  # stored dtype, (out, in) or transposed (in, out)
+    if kind_of(arch, task.module) == "transposed":
+        W = W.t()
     st = read_stats(task.moment, task.module)
     spec = decompose_aware(W, st, method=task.method, solver=task.solver, ridge=task.ridge, rank=task.rank,
                            seed=task.seed, precision=task.precision, name=task.module)

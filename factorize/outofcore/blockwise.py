@@ -1,48 +1,64 @@
-"""Block by block: the calibrated (activation-aware) shrink of a decoder-only transformers checkpoint that does not
-fit in memory.
+"""Block by block: the calibrated (activation-aware) shrink of a transformers checkpoint that does not fit in
+memory.
 
 The in-memory calibrated path (:func:`factorize.compress` with ``calibration=``) holds the whole model and every
-layer's input second moment at once. Here only one block (one entry of the model's ``layers`` ModuleList) is
-materialised at a time, from the memory-mapped safetensors shards, one tensor at a time:
+layer's input second moment at once. Here only one block (one entry of the model's list of blocks, found in the
+model itself: :func:`factorize.outofcore.architecture.find_blocks`) is materialised at a time, from the
+memory-mapped safetensors shards, one tensor at a time. Any family whose model has one such list runs (checked
+against transformers' classes: GPT-2, Llama, Mistral, Qwen2, Phi, Gemma, BERT); the projections inside a block
+are ``nn.Linear`` or GPT-2's ``Conv1D`` (plan kind ``"transposed"``).
 
-1. **Embed.** The calibration token ids go through ``embed_tokens`` (the only tensor read for this step); the
-   hidden states are written to a work directory, cut into a FIXED number of slices (``slices``, independent of
-   how many workers run them).
+1. **Embed.** The calibration token ids go through the model's own forward up to its first block
+   (:mod:`factorize.outofcore.stem`: embeddings, position embeddings, masks, rotary tables, built by the model's
+   code on the parts outside the blocks, materialised from the checkpoint); the hidden states entering block 0
+   and every block's extra inputs are written to a work directory, cut into a FIXED number of slices
+   (``slices``, independent of how many workers run them), each slice into passes of at most
+   ``tokens_per_pass`` tokens.
 2. **Statistics, block by block.** For block i, one task per slice loads the block's weights, runs its slice's
-   hidden states through it (rotary position embeddings and the causal mask built by the model's own helpers,
-   exactly as the model's forward builds them), accumulates every selected linear's input second moment
-   C = X^T X in float64 (q/k/v share one input and gate/up another: each distinct input is accumulated once),
-   writes the block's outputs for block i + 1 and its partial moments to the work directory. The client sums the
-   partial moments in slice order, computes each linear's whitened spectrum (singular values of W L with
-   L L^T = C + lambda I, :func:`factorize.calibrated.aware.decompose_aware`), keeps the values only, stores C
-   for the factor step and frees the block.
-
-   The hidden states passed on are the ORIGINAL block's outputs, not those of a compressed block: the ranks are
-   only known once every block's spectrum is (the budget is allocated globally), so the statistics must not
-   depend on them. (The sequential refit of the in-memory path, which feeds compressed outputs on, is not
-   available here.)
+   hidden states through it with the extra inputs the model itself gave the block, accumulates every selected
+   projection's input second moment C = X^T X in float64 (q/k/v share one input and gate/up another: each
+   distinct input is accumulated once), writes the block's outputs for block i + 1 and its partial moments to
+   the work directory. The client sums the partial moments in slice order, computes each projection's whitened
+   spectrum (singular values of W L with L L^T = C + lambda I, :func:`factorize.calibrated.aware.decompose_aware`),
+   keeps the values only, stores C for the factor step and frees the block. The hidden states passed on are the
+   ORIGINAL block's outputs: the ranks are only known once every block's spectrum is (the budget is allocated
+   globally), so this first pass must not depend on them.
 3. **Plan and factors.** The budget is allocated across all blocks' whitened spectra at once
-   (:func:`factorize.plan.ranks.choose_ranks`), then each factored linear is one task: its weight from the shard
-   and its group's C from the work directory give the factors at the planned rank.
+   (:func:`factorize.plan.ranks.choose_ranks`), then each factored projection is one task: its weight from the
+   shard and its group's C from the work directory give the factors at the planned rank.
+
+   With ``sequential=True`` the factors come instead from a second pass over the blocks, in order, that feeds
+   each block what the already compressed blocks upstream produce (:mod:`factorize.outofcore.refit_tasks`): for
+   each group of projections sharing an input, in the order the block calls them, the pair statistics of the
+   original block on the original stream and of the partly compressed block on the compressed stream give the
+   refitted factors (reduced-rank regression, as :func:`factorize.calibrated.aware.compress_sequential` does in
+   memory) at the ranks of the plan from step 3; then both streams advance one block. The ranks are those of the
+   first pass (as the in-memory ``sequential=True`` plans before it refits). Cost: per block, one forward of
+   the original and one of the compressed block per refitted group (each stopped once the group's input is
+   seen), plus one of each to advance, against one forward per block without it.
 4. **Write.** A sharded checkpoint in a new directory (same shard names, ``<module>.first.weight`` (r, in) and
-   ``<module>.second.weight`` (out, r) for factored linears, everything else copied; the plan in the index's
+   ``<module>.second.weight`` (out, r) for factored projections, everything else copied; the plan in the index's
    metadata) plus the source's config and tokenizer files. :func:`factorize.load_directory` (or
    ``factorize.load(fresh_model, directory)``) reads it back. The directory is written under a temporary name
    and renamed into place when complete: a failure leaves nothing.
 
-The tasks live in :mod:`factorize.outofcore.block_tasks`, the architecture on the meta device in
-:mod:`factorize.outofcore.architecture`, the calibration slices in :mod:`factorize.outofcore.tokens`.
+The tasks live in :mod:`factorize.outofcore.block_tasks` and :mod:`factorize.outofcore.refit_tasks`, the
+architecture on the meta device in :mod:`factorize.outofcore.architecture`, the embedding stage and the blocks'
+extra inputs in :mod:`factorize.outofcore.stem`, the calibration slices in :mod:`factorize.outofcore.tokens`.
 
 Byte-identical results on any engine (:mod:`factorize.cluster`): the slices are fixed, each task computes in
 float64 under the same pinned torch thread count (``threads``; the client's count by default), and the client sums
 the partial moments in slice order. Results are identical across engines and task orders for the same thread
 count on the same kind of machine (float rounding of the float32 block forward depends on the CPU's kernels).
 
-Memory: the client holds at most one group's moment (n x n float64) and the whitening work for one linear
-(about three n x n float64 matrices, see :mod:`factorize.calibrated.aware`); a task holds one block in float32,
-its slice's hidden states in and out, and the block's intermediate activations for ``tokens_per_pass`` tokens.
-The report states the measured peak resident memory of this process (``peak_rss_bytes``), the block's and the
-activations' sizes, and the bound 2 blocks + activations + 1 GB as a number, met or not.
+Memory: the client holds the parts of the model outside its blocks (except the output head) in float32 while it
+embeds (the token embedding is vocab x hidden: for a large vocabulary this can exceed one block), then at most one
+group's moment (n x n float64; three of them with ``sequential``) and the whitening work for one projection
+(about three n x n float64 matrices, see :mod:`factorize.calibrated.aware`); a task holds one block in float32
+(two with ``sequential``: the original and the compressed one), its slice's hidden states in and out, and the
+block's intermediate activations for ``tokens_per_pass`` tokens. The report states the measured peak resident
+memory of this process (``peak_rss_bytes``), the block's and the activations' sizes, and the bound
+2 blocks + activations + 1 GB as a number, met or not.
 """
 
 from __future__ import annotations
@@ -71,11 +87,13 @@ from factorize.cluster import Engine, open_engine
 from factorize.errors import FactorizeError
 from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
-from factorize.outofcore.architecture import Architecture, block_linears, check_source
+from factorize.outofcore.architecture import Architecture, block_candidates, block_linears, check_source
 from factorize.outofcore.block_tasks import BlockTask, FactorTask, block_slice_task, factor_task, save_work_file
-from factorize.outofcore.candidates import Candidate, select
+from factorize.outofcore.candidates import Candidate
 from factorize.outofcore.options import BlockwiseOptions, split_keywords
+from factorize.outofcore.refit_tasks import PairTask, pair_task
 from factorize.outofcore.results import BlockwiseShrink
+from factorize.outofcore.stem import Stem, dumps, encode_extras
 from factorize.outofcore.tokens import slice_plan, token_batches
 from factorize.outofcore.writer import CheckpointWriter, plan_bound
 from factorize.plan.entries import factored_entries, is_factored_entry
@@ -87,7 +105,6 @@ from factorize.storage import (
     new_temp_dir,
     peak_rss,
     publish_dir,
-    read_tensor,
     reset_peak_rss,
     return_freed_memory,
 )
@@ -113,6 +130,8 @@ class _Run:
     aware: str  # "whiten" or "scale"
     solver: str
     options: BlockwiseOptions
+    order: dict = dataclasses.field(default_factory=dict)  # block -> its groups' leaders, in call order
+    group_of: dict = dataclasses.field(default_factory=dict)  # projection -> its group's leader (shared input)
 
     @property
     def sites(self) -> list[Site]:
@@ -132,11 +151,11 @@ def shrink_blockwise(
     calibration: Any,
     **keywords: Any,
 ) -> BlockwiseShrink:
-    """Calibrated shrink of a decoder-only transformers checkpoint, one block in memory at a time.
+    """Calibrated shrink of a transformers checkpoint, one block in memory at a time.
 
     Args:
-        src: a transformers model directory (config.json and safetensors shards, or one model.safetensors) of a
-            supported type (Llama); only read.
+        src: a transformers model directory (config.json and safetensors shards, or one model.safetensors) whose
+            model has one list of blocks (GPT-2, Llama, Mistral, Qwen2, Phi, Gemma, BERT, ...); only read.
         dst: the output directory (created; refused if it exists unless ``force``).
         policy: a :class:`~factorize.plan.policy.Policy` or its keywords (``budget=0.5``, ``rank=``, ``energy=``,
             ``keep=``, ``multiple``, ``include`` / ``exclude`` on qualified linear names such as
@@ -148,7 +167,8 @@ def shrink_blockwise(
             :class:`~factorize.cluster.Engine`; with a cluster, ``work_dir`` must be on storage every worker
             reads), ``work_dir`` (needs about 2 x the activations plus every block's n x n float64 moments),
             ``slices``, ``threads``, ``tokens_per_pass``, ``ridge``, ``precision``, ``force`` (replace an
-            existing ``dst``), ``metadata`` (extra string entries for the output's metadata), ``progress``.
+            existing ``dst``), ``metadata`` (extra string entries for the output's metadata), ``progress``,
+            ``sequential`` (refit each block to the compressed blocks upstream; ranks from the first pass).
         calibration: token ids: a (sequences, length) integer tensor, a list of them, or dicts with
             ``input_ids`` (and an ``attention_mask`` whose padded positions are left out of the statistics).
 
@@ -176,8 +196,7 @@ def shrink_blockwise(
     if not names:
         raise FactorizeError(f"{src_path}: no linear layer inside the blocks matches the include/exclude patterns",
                              fix="check the patterns against names such as model.layers.0.self_attn.q_proj")
-    chosen, _ = select(arch.ckpt, include=names)
-    chosen = [c for c in chosen if c.module in set(names)]
+    chosen = block_candidates(arch, names)
     threads = torch.get_num_threads() if options.threads is None else int(options.threads)
     options = dataclasses.replace(options, threads=threads)
     sizes = _sizes(arch, batches, chosen)
@@ -185,7 +204,10 @@ def shrink_blockwise(
         (dst_path.parent if str(dst_path.parent) else Path("."))
     if not parent.is_dir():
         raise FactorizeError(f"{parent}: the work directory does not exist", fix="create it or pass another")
-    need = 2 * sizes["activation_bytes"] + (arch.blocks + options.slices) * sizes["moments"] + arch.ckpt.nbytes
+    if options.sequential:  # the embedding stage's output kept, two streams in and out; 3 moments a group, no block's
+        need = 5 * sizes["activation_bytes"] + 3 * (options.slices + 1) * sizes["moments"] + arch.ckpt.nbytes
+    else:
+        need = 2 * sizes["activation_bytes"] + (arch.blocks + options.slices) * sizes["moments"] + arch.ckpt.nbytes
     check_free_space(parent, int(need), "the block-by-block work files (activations, moments, factors)")
     engine = open_engine(options.cluster, threads=threads)
     where = engine.describe()
@@ -235,12 +257,13 @@ def _shrink(run: _Run, src: Path, dst: Path) -> tuple[dict, dict]:
     spectra, samples, groups = _statistics(run)
     plan = choose_ranks(run.sites, spectra, run.policy, method=run.aware)
     batches = run.batches
-    plan["calibration"] = {"method": run.aware, "solver": run.solver, "blockwise": True, "sequential": False,
+    plan["calibration"] = {"method": run.aware, "solver": run.solver, "blockwise": True,
+                           "sequential": run.options.sequential,
                            "sequences": sum(int(ids.shape[0]) for ids, _ in batches),
                            "tokens": sum(int(ids.numel()) for ids, _ in batches),
                            "samples": {n: samples[n] for n in run.names},
                            "slices": len(slice_plan(batches, run.options.slices)), "threads": run.options.threads}
-    factors = _factors(run, plan, groups)
+    factors = _refit(run, plan) if run.options.sequential else _factors(run, plan, groups)
     return plan, _write(run, src, dst, plan, factors)
 
 
@@ -250,7 +273,7 @@ def _statistics(run: _Run) -> tuple[dict[str, AwareSpectrum], dict[str, int], di
     pieces = slice_plan(run.batches, run.options.slices)
     acts = work / "acts"
     acts.mkdir()
-    _embed(arch, run.batches, pieces, acts / "0")
+    _embed(run, pieces, acts / "0", work / "extras")
     spectra: dict[str, AwareSpectrum] = {}
     samples: dict[str, int] = {}
     groups: dict[str, str] = {}
@@ -262,9 +285,13 @@ def _statistics(run: _Run) -> tuple[dict[str, AwareSpectrum], dict[str, int], di
         (work / f"stats{i}").mkdir()
         tasks = [BlockTask(run.source, i, j, str(acts / str(i) / f"{j}.safetensors"),
                            str(acts / str(i + 1) / f"{j}.safetensors"), str(work / f"stats{i}" / f"{j}.safetensors"),
-                           mine, run.options.threads, run.options.tokens_per_pass) for j in range(len(pieces))]
+                           mine, run.options.threads, str(work / "extras" / f"{j}.safetensors"))
+                 for j in range(len(pieces))]
         results = run.engine.map(block_slice_task, tasks, label=f"block {i}")
-        shutil.rmtree(acts / str(i), ignore_errors=True)  # this block's inputs are no longer needed
+        if i > 0 or not run.options.sequential:  # the refit starts again from the embedding stage's output
+            shutil.rmtree(acts / str(i), ignore_errors=True)  # this block's inputs are no longer needed
+        run.order[i] = list(dict.fromkeys(results[0]["groups"].values()))  # the groups' leaders, in call order
+        run.group_of.update(results[0]["groups"])
         if mine:
             _block_spectra(run, mine, results[0]["groups"], [t.stats for t in tasks], (spectra, samples, groups))
         shutil.rmtree(work / f"stats{i}", ignore_errors=True)
@@ -284,12 +311,12 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
     for leader in sorted(set(block_groups.values()), key=mine.index):
         st = _summed(leader, files, len(run.batches))
         path = run.work / "moments" / f"{leader}.safetensors"
-        save_work_file({"moment": st.second_moment, "total": st.total, "abs_total": st.abs_total}, str(path),
-                       {"count": str(st.count), "batches": str(st.batches)})
+        if not run.options.sequential:  # the refit collects its own statistics
+            _save_stats(st, path)
         for name in [n for n in mine if block_groups.get(n) == leader]:
             groups[name] = str(path)
             samples[name] = st.count
-            W = read_tensor(run.arch.where[name + ".weight"].path, name + ".weight")
+            W = next(c for c in run.chosen if c.module == name).read_matrix()  # (out, in)
             spec = decompose_aware(W, st, method=run.aware, solver=run.solver, ridge=run.options.ridge,
                                    rank=k_of[name], seed=run.policy.seed, precision=run.options.precision, name=name)
             spectra[name] = spec.without_vectors()
@@ -297,14 +324,18 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
         del st
 
 
-def _summed(leader: str, files: Sequence[str], batches: int) -> InputStats:
+MOMENT_PARTS = ("moment", "total", "abs_total")
+PAIR_PARTS = (*MOMENT_PARTS, "reference_moment", "reference_total", "cross")  # the sequential refit's
+
+
+def _summed(leader: str, files: Sequence[str], batches: int, parts: tuple[str, ...] = MOMENT_PARTS) -> InputStats:
     """One group's statistics summed over the slices, in slice order (the order fixes the bytes)."""
     acc: dict[str, torch.Tensor] = {}
     count = 0
     for path in files:
         with safe_open(path, framework="pt", device="cpu") as f:
             count += int(json.loads(f.metadata()["counts"])[_relative(leader)])
-            for part in ("moment", "total", "abs_total"):
+            for part in parts:
                 key = f"{_relative(leader)}.{part}"
                 if part not in acc:
                     acc[part] = f.get_tensor(key)
@@ -313,8 +344,20 @@ def _summed(leader: str, files: Sequence[str], batches: int) -> InputStats:
                 n = int(acc[part].shape[0])
                 for lo in range(0, n, SUM_ROWS):  # row blocks: no second n x n matrix in memory
                     acc[part][lo:lo + SUM_ROWS] += rows[lo:lo + SUM_ROWS]
-    return InputStats(leader, "linear", int(acc["moment"].shape[0]), count=count, second_moment=acc["moment"],
-                      total=acc["total"], abs_total=acc["abs_total"], batches=batches)
+    st = InputStats(leader, "linear", int(acc["moment"].shape[0]), count=count, second_moment=acc["moment"],
+                    total=acc["total"], abs_total=acc["abs_total"], batches=batches)
+    if "cross" in acc:
+        st.cross, st.reference_moment, st.reference_total = acc["cross"], acc["reference_moment"], \
+            acc["reference_total"]
+    return st
+
+
+def _save_stats(st: InputStats, path: Path) -> None:
+    """A group's summed statistics for the factor tasks (:func:`factorize.outofcore.block_tasks.read_stats`)."""
+    tensors = {"moment": st.second_moment, "total": st.total, "abs_total": st.abs_total}
+    if st.cross is not None:
+        tensors.update(cross=st.cross, reference_moment=st.reference_moment, reference_total=st.reference_total)
+    save_work_file(tensors, str(path), {"count": str(st.count), "batches": str(st.batches)})
 
 
 def _relative(name: str) -> str:
@@ -327,20 +370,33 @@ def _relative(name: str) -> str:
 
 
 @torch.no_grad()
-def _embed(arch: Architecture, batches, pieces, out: Path) -> None:
-    """Step 1: the token embeddings of every slice, in float32, to ``out/<slice>.safetensors``."""
+def _embed(run: _Run, pieces, out: Path, extras: Path) -> None:
+    """Step 1: the hidden states entering block 0 of every slice, in float32, to ``out/<slice>.safetensors``,
+    and every block's extra inputs (masks, position embeddings) to ``extras/<slice>.safetensors``, both from the
+    model's own code (:mod:`factorize.outofcore.stem`). Each slice is cut here into the passes its tasks run,
+    ``tokens_per_pass`` tokens at most (whole sequences)."""
+    arch = run.arch
     out.mkdir()
-    table = read_tensor(arch.where[arch.embed].path, arch.embed)  # (vocab, hidden), stored dtype
+    extras.mkdir()
+    stem = Stem(arch)
     for j, piece in enumerate(pieces):
-        tensors = {}
-        for k, (b, lo, hi) in enumerate(piece):
-            ids, mask = batches[b]
-            tensors[f"h.{k}"] = torch.nn.functional.embedding(ids[lo:hi], table).float().contiguous()
-            if mask is not None:
-                tensors[f"m.{k}"] = mask[lo:hi].contiguous()
+        tensors, extra, described = {}, {}, {}
+        k = 0
+        for b, lo, hi in piece:
+            ids, mask = run.batches[b]
+            step = max(1, run.options.tokens_per_pass // max(int(ids.shape[1]), 1))
+            for s in range(lo, hi, step):
+                m = None if mask is None else mask[s:min(s + step, hi)].contiguous()
+                h, per_block = stem.run(ids[s:min(s + step, hi)], m)
+                tensors[f"h.{k}"] = h
+                if m is not None:
+                    tensors[f"m.{k}"] = m
+                described[str(k)] = encode_extras(per_block, f"x.{k}", extra, arch.model_type)
+                k += 1
         save_work_file(tensors, str(out / f"{j}.safetensors"))
-        del tensors
-    del table
+        save_work_file(extra, str(extras / f"{j}.safetensors"), {"extras": dumps(described)})
+        del tensors, extra
+    del stem
 
 
 def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
@@ -352,6 +408,65 @@ def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
              for e in factored_entries(plan)]
     files = run.engine.map(factor_task, tasks, label="factors")
     return {t.module: f for t, f in zip(tasks, files)}
+
+
+def _refit(run: _Run, plan: dict) -> dict[str, str]:
+    """Step 3 with ``sequential=True``: block after block, each group of projections (in the order the block
+    calls them) is refitted to the inputs the compressed model feeds it (pair statistics of the original and
+    the partly compressed block, :mod:`factorize.outofcore.refit_tasks`), at the ranks the plan allocated from
+    the first pass; then both streams of hidden states advance one block. Name -> file of its factors."""
+    arch, work = run.arch, run.work
+    ranks = {e.name: int(e.rank) for e in factored_entries(plan)}
+    (work / "factors").mkdir()
+    streams = (work / "acts" / "0", work / "acts" / "0")  # (reference, current): the same before block 0
+    out: dict[str, str] = {}
+    for i in tqdm(range(arch.blocks), desc="refit", unit="block", disable=not run.options.progress, leave=False):
+        done: list[tuple[str, str]] = []  # (projection, factor file) refitted in this block so far
+        for leader in run.order.get(i, []):
+            members = [n for n in run.names if n in ranks and run.group_of.get(n) == leader]
+            if members:
+                done += _refit_group(run, i, streams, tuple(done), leader, {n: ranks[n] for n in members})
+        nxt = (work / "acts" / f"ref{i + 1}", work / "acts" / f"cur{i + 1}")
+        for d in nxt:
+            d.mkdir()
+        run.engine.map(pair_task, _pair_tasks(run, i, streams, tuple(done), "", None, nxt), label=f"block {i} advance")
+        for d in set(streams):
+            shutil.rmtree(d, ignore_errors=True)
+        streams = nxt
+        out.update(done)
+    return out
+
+
+def _pair_tasks(run: _Run, i: int, streams: tuple[Path, Path], done: tuple, group: str, stats: Path | None,
+                outputs: tuple[Path, Path] | None) -> list[PairTask]:
+    """One pair task per slice of block ``i`` (see :class:`~factorize.outofcore.refit_tasks.PairTask`)."""
+    return [PairTask(run.source, i, j, str(streams[0] / f"{j}.safetensors"), str(streams[1] / f"{j}.safetensors"),
+                     str(run.work / "extras" / f"{j}.safetensors"), done, group,
+                     str(stats / f"{j}.safetensors") if stats else "",
+                     (str(outputs[0] / f"{j}.safetensors"), str(outputs[1] / f"{j}.safetensors")) if outputs
+                     else ("", ""), run.options.threads)
+            for j in range(len(slice_plan(run.batches, run.options.slices)))]
+
+
+def _refit_group(run: _Run, i: int, streams: tuple[Path, Path], done: tuple, leader: str,
+                 ranks: dict[str, int]) -> list[tuple[str, str]]:
+    """The pair statistics of one group of block ``i`` summed in slice order, then one factor task per member."""
+    o = run.options
+    pairs = run.work / f"pairs{i}"
+    pairs.mkdir()
+    tasks = _pair_tasks(run, i, streams, done, leader, pairs, None)
+    run.engine.map(pair_task, tasks, label=f"block {i} refit")
+    st = _summed(leader, [t.stats for t in tasks], len(run.batches),
+                 PAIR_PARTS if run.aware == "whiten" else MOMENT_PARTS)  # "scale" only re-whitens (as in memory)
+    path = run.work / "moments" / f"{leader}.safetensors"
+    _save_stats(st, path)
+    del st
+    shutil.rmtree(pairs, ignore_errors=True)
+    factors = [FactorTask(run.source, n, str(path), r, run.aware, run.solver, o.ridge, run.policy.seed, o.precision,
+                          str(run.work / "factors" / f"{n}.safetensors"), o.threads) for n, r in ranks.items()]
+    files = run.engine.map(factor_task, factors, label=f"block {i} factors")
+    path.unlink()
+    return [(t.module, f) for t, f in zip(factors, files)]
 
 
 def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, str]) -> dict:
@@ -366,10 +481,14 @@ def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, st
             A, B = f.get_tensor("first"), f.get_tensor("second")
         if A.shape[0] != entry["rank"]:
             raise FactorizeError(f"{path}: factors of rank {A.shape[0]}, the plan says {entry['rank']}")
-        return path, relative_error(c.read_weight(), B, A)
+        return path, relative_error(c.read_matrix(), B, A)
 
+    # tensors the model does not have (legacy persistent buffers such as an old BERT's embeddings.position_ids,
+    # which transformers ignores on loading) are left out, so the output loads strictly into the model
+    known = set(run.arch.model.state_dict())
+    drop = frozenset(n for n in run.arch.where if n not in known)
     writer = CheckpointWriter(ckpt, run.chosen, factors_of, plan_reserve=plan_bound(run.sites, run.policy),
-                              progress=run.options.progress)
+                              progress=run.options.progress, drop=drop)
     check_free_space(dst.parent if str(dst.parent) else Path("."), writer.planned_bytes(plan["sites"]),
                      "the shrunk checkpoint")
     tmp = new_temp_dir(dst)

@@ -33,16 +33,23 @@ class Candidate:
     weight_file: Header
     bias: TensorInfo | None
     bias_file: Header | None
+    kind: str = "linear"  # or "transposed": the weight is stored (in, out) (GPT-2's Conv1D; block by block only)
 
     @property
     def site(self) -> Site:
-        m, n = self.weight.shape
-        return Site(name=self.module, kind="linear", shape=(m, n), params=m * n, has_bias=self.bias is not None,
+        m, n = self.weight.shape[::-1] if self.kind == "transposed" else self.weight.shape
+        return Site(name=self.module, kind=self.kind, shape=(m, n), params=m * n, has_bias=self.bias is not None,
                     dtype=str(self.weight.torch_dtype).removeprefix("torch."))
 
     def read_weight(self) -> torch.Tensor:
-        """The weight (out, in) in its stored dtype, read from its file through a short-lived memory map."""
+        """The weight as stored ((out, in) for a linear), in its stored dtype, read through a short-lived memory
+        map."""
         return read_tensor(self.weight_file.path, self.weight.name)
+
+    def read_matrix(self) -> torch.Tensor:
+        """The weight as an (out, in) matrix (a transposed view for a transposed projection)."""
+        w = self.read_weight()
+        return w.t() if self.kind == "transposed" else w
 
     def read_bias(self) -> torch.Tensor | None:
         """The bias (out,), or None."""

@@ -47,7 +47,9 @@ class BlockwiseOptions:
     on how many workers run them); ``threads`` torch threads per task and for the client's decompositions
     (default: this process's count; the same count gives the same bytes); ``tokens_per_pass`` tokens run through
     a block at once inside a task; ``ridge`` / ``precision`` as for
-    :func:`factorize.calibrated.aware.decompose_aware`."""
+    :func:`factorize.calibrated.aware.decompose_aware`; ``sequential`` refits each block to the outputs of the
+    already compressed blocks upstream, as ``compress(..., sequential=True)`` does in memory (ranks from the first
+    pass; see docs/scale.md)."""
 
     cluster: Any = None
     work_dir: str | os.PathLike | None = None
@@ -59,6 +61,7 @@ class BlockwiseOptions:
     force: bool = False
     metadata: Mapping[str, str] | None = None
     progress: bool = False
+    sequential: bool = False
 
 
 OptionsT = TypeVar("OptionsT", StreamOptions, BlockwiseOptions)

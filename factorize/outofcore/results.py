@@ -153,8 +153,10 @@ class BlockwiseShrink:
     def report(self, source: str, calibration: str = "the calibration inputs") -> Report:
         """The :class:`~factorize.measure.report.Report` of this shrink of ``source``, calibrated on
         ``calibration`` (a description of the inputs)."""
-        notes = [(f"activation-aware factors ({self.plan['calibration']['method']}) fitted block by block to "
-                  f"{calibration}"), self.memory_note(),
+        how = self.plan["calibration"]
+        notes = [(f"activation-aware factors ({how['method']}) fitted block by block to {calibration}"
+                  + ("; each block refitted to the outputs of the compressed blocks upstream (sequential)"
+                     if how.get("sequential") else "")), self.memory_note(),
                  ("output drift was not measured (the whole model is never in memory here): load the output with "
                   f"factorize.load_directory('{self.output}') and run 'factorize compare' on real inputs")]
         compare = (f"on a machine that holds the model, factorize compare --model {source} --against {self.output} "

@@ -143,9 +143,11 @@ class CheckpointWriter:
     """
 
     def __init__(self, ckpt: Checkpoint, chosen: list[Candidate], factors_of: FactorsOf, *, plan_reserve: int,
-                 progress: bool = False, stored_forms: bool = False) -> None:
+                 progress: bool = False, stored_forms: bool = False,
+                 drop: frozenset[str] = frozenset()) -> None:
         self.ckpt, self.factors_of, self.plan_reserve, self.progress = ckpt, factors_of, plan_reserve, progress
         self.stored_forms = stored_forms  # a bytes plan: up to STORED_KEYS tensors a layer, with longer names
+        self.drop = drop  # tensors left out of the output (ones the model does not have, e.g. legacy buffers)
         self.chosen = {c.weight.name: c for c in chosen}
         self.biases = {c.bias.name: c for c in chosen if c.bias is not None}
         self.report: dict[str, dict] = {}
@@ -159,6 +161,8 @@ class CheckpointWriter:
         for h in self.ckpt.files:
             total += self.reserve_for(h)
             for name, info in h.tensors.items():
+                if name in self.drop:
+                    continue
                 c = self.chosen.get(name)
                 e = entries.get(c.module) if c else None
                 if e is not None and "bytes_after" in e:  # a bytes plan: the stored form's exact bytes
@@ -239,7 +243,7 @@ class CheckpointWriter:
             remove_quietly(p)
 
     def _write_file(self, h: Header, w: ShardWriter) -> None:
-        names = [n for n in h.tensors if n not in self.biases]  # a layer's bias travels with its weight
+        names = [n for n in h.tensors if n not in self.biases and n not in self.drop]  # a bias goes with its weight
         for name in tqdm(names, desc=printable(h.path.name), unit="tensor", disable=not self.progress, leave=False):
             c = self.chosen.get(name)
             if c is None:

@@ -229,11 +229,16 @@ def _left_behind(parent: Path) -> list[str]:
 
 
 def test_bad_inputs_are_refused_before_anything_is_written(ckpt, tmp_path):
-    bert = tmp_path / "bert"
-    bert.mkdir()
-    (bert / "config.json").write_text(json.dumps({"model_type": "bert", "architectures": ["BertModel"]}))
+    # an encoder-decoder (transformers' T5, tiny config invented here): two lists of blocks, which the
+    # block-by-block shrink does not handle; the error names the model type and what it looked for
+    t5 = tmp_path / "t5"
+    t5.mkdir()
+    (t5 / "config.json").write_text(json.dumps({"model_type": "t5", "architectures": ["T5ForConditionalGeneration"],
+                                                "d_model": 32, "num_layers": 2, "num_heads": 4, "d_kv": 8,
+                                                "d_ff": 48, "vocab_size": 64}))
     cases = [
-        (bert, "decoder-only"),
+        (t5, r"model_type 't5' \(T5ForConditionalGeneration\): 2 \(encoder.block, decoder.block\) list of "
+             r"num_hidden_layers=2 blocks"),
         (tmp_path, "config.json"),
     ]
     for src, words in cases:

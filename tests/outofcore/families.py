@@ -1,0 +1,45 @@
+"""Tiny random checkpoints of the transformer families the block-by-block shrink covers, built with transformers'
+own model classes from tiny configs and written with ``save_pretrained`` (safetensors). Configs invented for tests
+(small widths so each family builds in milliseconds); the layouts are transformers'."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import torch
+
+VOCAB = 256
+
+
+def configs(transformers) -> dict:
+    """model_type -> (model class, config). Mistral has a sliding window shorter than the calibration sequences;
+    Qwen2 mixes sliding-window and full-attention layers (two distinct sets of block inputs); Phi rotates half
+    of each head (partial rotary); Gemma scales its embeddings by sqrt(hidden)."""
+    common = dict(vocab_size=VOCAB, hidden_size=32, intermediate_size=48, num_hidden_layers=2,
+                  num_attention_heads=4, max_position_embeddings=64)
+    t = transformers
+    return {
+        "gpt2": (t.GPT2LMHeadModel, t.GPT2Config(vocab_size=VOCAB, n_embd=32, n_layer=2, n_head=4, n_positions=64)),
+        "llama": (t.LlamaForCausalLM, t.LlamaConfig(**common, num_key_value_heads=2)),
+        "mistral": (t.MistralForCausalLM, t.MistralConfig(**common, num_key_value_heads=2, sliding_window=8)),
+        "qwen2": (t.Qwen2ForCausalLM, t.Qwen2Config(**common, num_key_value_heads=2, use_sliding_window=True,
+                                                      sliding_window=8, max_window_layers=1)),
+        "phi": (t.PhiForCausalLM, t.PhiConfig(**common, partial_rotary_factor=0.5)),
+        "gemma": (t.GemmaForCausalLM, t.GemmaConfig(**common, num_key_value_heads=1, head_dim=8)),
+        "bert": (t.BertModel, t.BertConfig(**common, type_vocab_size=2)),
+    }
+
+
+def write_family(transformers, kind: str, directory: Path, *, shard: str | None = None, seed: int = 0) -> Path:
+    """A tiny random checkpoint of family ``kind`` in ``directory`` (sharded when ``shard`` is a size such as
+    "20KB"); returns the directory."""
+    cls, config = configs(transformers)[kind]
+    torch.manual_seed(seed)
+    model = cls(config).eval()
+    with torch.no_grad():  # larger random weights than the initialiser's, so the blocks do something visible
+        for name, p in model.named_parameters():
+            if p.dim() == 2 and "embed" not in name and "wte" not in name and "wpe" not in name:
+                p.mul_(10.0)
+    kwargs = {"max_shard_size": shard} if shard else {}
+    model.save_pretrained(directory, safe_serialization=True, **kwargs)
+    return directory
