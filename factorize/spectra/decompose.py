@@ -430,12 +430,12 @@ def _gram_values(w: torch.Tensor, keep_gram: bool = False, total: float | None =
     m, n = w.shape
     gram = _small_gram(w)  # (k, k)
     red = tridiagonal.reduce(gram) if _route("auto", w) == "tridiagonal" else None  # consumes gram
-    if red is not None:
+    if red is not None and red.eigenvalues() is not None:
         evals = torch.from_numpy(red.eigenvalues())  # ascending
         gram = None
     else:
         if _route("auto", w) == "tridiagonal":  # LAPACK refused the reduction (not seen): the plain route
-            gram = _small_gram(w)
+            gram, red = _small_gram(w), None
         with lapack_threads(gram.shape[0]):
             evals = torch.linalg.eigvalsh(gram)  # ascending
     S = evals.flip(0).clamp_min(0).sqrt()  # (k,)

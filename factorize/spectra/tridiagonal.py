@@ -81,19 +81,20 @@ class Reduction:
     tau: np.ndarray  # (k - 1,)
     d: np.ndarray  # (k,)
     e: np.ndarray  # (k - 1,)
+    values: np.ndarray | None = None  # the eigenvalues, ascending, once computed
 
     @property
     def order(self) -> int:
         return int(self.d.shape[0])
 
-    def eigenvalues(self) -> np.ndarray:
-        """Every eigenvalue of G, ascending (``?sterf``)."""
-        lapack = _backend()[0]
-        sterf = lapack.ssterf if self.d.dtype == np.float32 else lapack.dsterf
-        values, info = sterf(self.d, self.e)  # copies: d and e stay for the vectors
-        if info != 0:
-            raise np.linalg.LinAlgError(f"?sterf did not converge (info={info})")
-        return values
+    def eigenvalues(self) -> np.ndarray | None:
+        """Every eigenvalue of G, ascending (``?sterf``, once; None if it does not converge)."""
+        if self.values is None:
+            lapack = _backend()[0]
+            sterf = lapack.ssterf if self.d.dtype == np.float32 else lapack.dsterf
+            values, info = sterf(self.d, self.e)  # copies: d and e stay for the vectors
+            self.values = values if info == 0 else None
+        return self.values
 
     def top_vectors(self, rank: int) -> torch.Tensor | None:
         """The eigenvectors of G for its ``rank`` largest eigenvalues, k x rank, in decreasing order of eigenvalue
@@ -116,7 +117,7 @@ class Reduction:
         k = self.order
         lapack = _backend()[0]
         single = self.d.dtype == np.float32
-        if 4 * rank <= k and not self._splits():
+        if 4 * rank <= k and not self._splits() and self.eigenvalues() is not None:
             w = self.eigenvalues()[k - rank:]  # ascending, the top rank
             stein = lapack.sstein if single else lapack.dstein
             Z, info = stein(self.d, self.e, w, np.ones(k, dtype=np.int32), np.full(k, k, dtype=np.int32))
