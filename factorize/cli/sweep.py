@@ -5,6 +5,7 @@ from __future__ import annotations
 import copy
 import csv
 import io
+import warnings
 from pathlib import Path
 
 from rich.table import Table
@@ -12,7 +13,7 @@ from rich.table import Table
 from factorize.alternatives import int8_alternative, plan_bytes, same_size_alternative
 from factorize.calibrated.search import Calibration, compress_from
 from factorize.choices import DEFAULT_METHOD
-from factorize.errors import FactorizeError
+from factorize.errors import FactorizeError, UnverifiedModelWarning
 from factorize.measure.evaluate import evaluate
 from factorize.measure.report import CAUTION
 from factorize.outofcore.candidates import checkpoint_spectra
@@ -98,9 +99,7 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
         if calib is not None:
             result = compress_from(calib, policy, sequential=args.sequential)
         else:
-            result = compress(sharing_copy(loaded.model), policy, inplace=True, spectra=spectra,
-                              progress=ui.progress and spectra is None, cache=quality["cache"],
-                              workers=quality["workers"], example=None if inputs is None else inputs.batches[0])
+            result = _budget_result(loaded.model, policy, spectra, inputs, quality, ui)
             spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum
         summary = plan_summary(result.plan)
         if budget == budgets[0] and held_note(result.plan):
@@ -108,9 +107,7 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
         row = {"budget": budget, "params_before": result.params_before, "params_after": result.params_after,
                "kept_fraction": result.kept_fraction, "factored_layers": summary["factored"]}
         if inputs is not None:
-            rep = evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
-                           latency_repeats=repeats(args, 0), model_name=loaded.source, inputs=inputs.source,
-                           memo=memo, pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None))
+            rep = _evaluated(loaded, result, inputs, args, memo, budget)
             row.update({k: rep.drift.get(k) for k in DRIFT_KEYS})
             row.update({k: getattr(rep, k) for k in REPORT_KEYS})
         else:
@@ -123,6 +120,35 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
                                 pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None))
         references["int8"] = int8.to_json()
     return rows, None if inputs is None else inputs.source
+
+
+def _budget_result(model, policy, spectra, inputs, quality: dict, ui: UI):
+    """One budget's compressed copy. With sample inputs and a parameter budget its check run is the drift
+    measurement's own compressed pass (:func:`_evaluated`), not a second forward pass on the first batch: that
+    repeated pass was a third of a sweep's time. A MAC budget counts its MACs on the first batch, so it keeps it."""
+    own_check = inputs is not None and policy.cost == "params"
+    with warnings.catch_warnings():
+        if own_check:
+            warnings.simplefilter("ignore", UnverifiedModelWarning)  # checked by _evaluated below
+        return compress(sharing_copy(model), policy, inplace=True, spectra=spectra,
+                        progress=ui.progress and spectra is None, cache=quality["cache"], workers=quality["workers"],
+                        example=None if inputs is None or own_check else inputs.batches[0])
+
+
+def _evaluated(loaded, result, inputs, args, memo: dict, budget: float):
+    """The drift report of one budget; a compressed copy that fails its forward pass is reported as compress()
+    reports it (the reference pass already ran on these inputs when they were checked)."""
+    try:
+        return evaluate(loaded.model, result.model, inputs.batches, labels=inputs.labels, plan=result.plan,
+                        latency_repeats=repeats(args, 0), model_name=loaded.source, inputs=inputs.source,
+                        memo=memo, pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None))
+    except FactorizeError:
+        raise
+    except Exception as err:  # the user's forward (or a layer kind) failing on the compressed copy
+        raise FactorizeError(f"the compressed model for budget {budget} could not be run "
+                             f"on the sample inputs: {err}",
+                             fix="exclude the layer kinds that break it (--exclude), or report the model "
+                                 "and layer") from err
 
 
 def _bytes_row(args, model, plan, inputs, calib, spectra, memo) -> dict:

@@ -37,6 +37,9 @@ import torch
 from factorize.choices import METHODS
 from factorize.errors import FactorizeError
 from factorize.execution import resolve_execution
+from factorize.spectra import tridiagonal
+from factorize.spectra.subspace import filtered_subspace
+from factorize.spectra.tridiagonal import SERIAL_UP_TO, Reduction
 from factorize.threads import torch_threads
 
 RANDOMIZED_FRACTION = 6  # auto: randomized only when the sketch (rank + oversampling) is at most min(m, n) / this
@@ -58,6 +61,7 @@ class Spectrum:
     method: str
     exact: bool  # True when S holds every singular value of the matrix
     gram: torch.Tensor | None = field(default=None, repr=False, compare=False)  # values_only(keep_gram=True)
+    reduction: Reduction | None = field(default=None, repr=False, compare=False)  # the same, tridiagonal route
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -114,7 +118,8 @@ class Spectrum:
         """This spectrum without its singular vectors (nor a kept Gram matrix): enough to choose ranks, k floats
         instead of k(m + n). A subclass keeps its per-direction values (e.g. the output energies)."""
         m, n = self.shape
-        return replace(self, U=self.U.new_empty(m, 0), S=self.S.clone(), Vh=self.Vh.new_empty(0, n), gram=None)
+        return replace(self, U=self.U.new_empty(m, 0), S=self.S.clone(), Vh=self.Vh.new_empty(0, n), gram=None,
+                       reduction=None)
 
     def factors(self, rank: int) -> tuple[torch.Tensor, torch.Tensor]:
         """Balanced factors ``B = U_r sqrt(S_r)`` (m x r) and ``A = sqrt(S_r) Vh_r`` (r x n), so ``B @ A = W_r``.
@@ -233,7 +238,7 @@ def _exact(w: torch.Tensor) -> Spectrum:
 
 
 GRAM_BLOCK = 1024  # rows/columns converted to float64 at a time: memory stays near the matrix itself
-SERIAL_LAPACK_UP_TO = 2048  # eigensolves/SVDs of at most this order run on one thread (see lapack_threads)
+SERIAL_LAPACK_UP_TO = SERIAL_UP_TO  # 2048: eigensolves/SVDs of at most this order run on one thread (lapack_threads)
 
 
 def lapack_threads(order: int):
@@ -424,12 +429,37 @@ def values_only(matrix: torch.Tensor | np.ndarray, *, precision: str | None = No
 def _gram_values(w: torch.Tensor, keep_gram: bool = False, total: float | None = None) -> Spectrum:
     m, n = w.shape
     gram = _small_gram(w)  # (k, k)
-    with lapack_threads(gram.shape[0]):
-        evals = torch.linalg.eigvalsh(gram)  # ascending
+    red = tridiagonal.reduce(gram) if _route("auto", w) == "tridiagonal" else None  # consumes gram
+    if red is not None and red.eigenvalues() is not None:
+        evals = torch.from_numpy(red.eigenvalues())  # ascending
+        gram = None
+    else:
+        if _route("auto", w) == "tridiagonal":  # LAPACK refused the reduction (not seen): the plain route
+            gram, red = _small_gram(w), None
+        with lapack_threads(gram.shape[0]):
+            evals = torch.linalg.eigvalsh(gram)  # ascending
     S = evals.flip(0).clamp_min(0).sqrt()  # (k,)
     return Spectrum(w.new_empty(m, 0), S, w.new_empty(0, n), method="values", exact=True,
                     total_energy=_frobenius2(w) if total is None else total,
-                    gram=gram if keep_gram else None)
+                    gram=gram if keep_gram else None, reduction=red if keep_gram else None)
+
+
+ROUTES = ("auto", "tridiagonal", "subspace")  # leading(route=...)
+_NUMPY_DTYPE = {torch.float32: np.float32, torch.float64: np.float64}
+
+
+def _route(route: str, w: torch.Tensor) -> str:
+    """``route`` resolved for ``w``: "auto" is "tridiagonal" where :mod:`factorize.spectra.tridiagonal` can run
+    (scipy and threadpoolctl installed, a CPU matrix of order >= 2), else "subspace"."""
+    usable = tridiagonal.available() and w.device.type == "cpu" and min(w.shape) >= 2
+    if route == "auto":
+        return "tridiagonal" if usable else "subspace"
+    if route == "tridiagonal" and not usable:
+        raise FactorizeError("the tridiagonal route needs scipy and threadpoolctl and a CPU matrix of order >= 2",
+                             fix="pip install scipy threadpoolctl (or factorize[fast]), or use route='auto'")
+    if route not in ROUTES:
+        raise FactorizeError(f"unknown route {route!r}", fix=f"use one of {', '.join(ROUTES)}")
+    return route
 
 
 def leading(
@@ -441,25 +471,32 @@ def leading(
     oversample: int | None = None,
     max_iters: int = LEADING_MAX_ITERS,
     tolerance: float = AUTO_TOLERANCE,
+    route: str = "auto",
     name: str = "matrix",
     **execution,
 ) -> Spectrum:
     """The leading ``rank`` singular vector pairs of ``matrix``, within ``tolerance`` (1%) of the optimal error.
 
-    Chebyshev-filtered subspace iteration on the smaller Gram matrix G (Golub & Van Loan, sec. 8.2.4; Saad,
-    Numerical Methods for Large Eigenvalue Problems, 2nd ed., 2011, sec. 7.4; Zhou & Saad 2007): a seeded
-    Gaussian block of ``rank + oversample`` columns; each round applies a Chebyshev polynomial of G that keeps the
-    eigenvalues the block cannot hold within [-1, 1] and amplifies the wanted ones (degree d: d products G Y; the
-    interval is exact because every eigenvalue is known, see :func:`_chebyshev_plan`), one thin QR, and
-    Rayleigh-Ritz (the eigenpairs of Q^T G Q); the next round starts from the Ritz vectors. Because every singular
-    value is known (``values``, from :func:`values_only`, computed here when not given), the error is known exactly
-    rather than estimated: with orthonormal Ritz vectors V_r,
-    ``||W - W V_r V_r^T||_F^2 = ||W||_F^2 - sum of the top r Ritz values`` and the optimum is
-    ``||W||_F^2 - sum_{i<=r} s_i^2`` (Eckart-Young-Mirsky). The iteration stops once the error at ``rank`` and at
-    every rank in ``guard_ranks`` (smaller ranks that will be cut from these vectors, e.g. by a sweep) is within
-    ``1 + tolerance`` of its optimum, allowing for the rounding of the Gram route (``2 r eps s_1^2``). After
-    ``max_iters`` rounds without that, or when the block would exceed half of min(m, n), it falls back to the full
-    eigendecomposition of G (``method`` says which route was taken).
+    ``route="tridiagonal"`` (the ``"auto"`` choice where scipy and threadpoolctl are installed): the tridiagonal
+    reduction of the smaller Gram matrix G that :func:`values_only` made for the values (kept with
+    ``keep_gram=True``, made here otherwise), all eigenvectors of the tridiagonal matrix by divide and conquer, and
+    the reflectors applied to the ``rank`` kept ones (:mod:`factorize.spectra.tridiagonal`). The same exact guard
+    as below is checked on the result (the energy of W on the vectors), with the full eigendecomposition of G as
+    the fallback.
+
+    ``route="subspace"``: Chebyshev-filtered subspace iteration on the smaller Gram matrix G (Golub & Van Loan, sec.
+    8.2.4; Saad, Numerical Methods for Large Eigenvalue Problems, 2nd ed., 2011, sec. 7.4; Zhou & Saad 2007): a
+    seeded Gaussian block of ``rank + oversample`` columns; each round applies a Chebyshev polynomial of G that
+    keeps the eigenvalues the block cannot hold within [-1, 1] and amplifies the wanted ones (degree d: d products G
+    Y; the interval is exact because every eigenvalue is known, see :mod:`factorize.spectra.subspace`), one thin QR,
+    and Rayleigh-Ritz (the eigenpairs of Q^T G Q); the next round starts from the Ritz vectors. Because every
+    singular value is known (``values``, from :func:`values_only`, computed here when not given), the error is known
+    exactly rather than estimated: with orthonormal Ritz vectors V_r, ``||W - W V_r V_r^T||_F^2 = ||W||_F^2 - sum of
+    the top r Ritz values`` and the optimum is ``||W||_F^2 - sum_{i<=r} s_i^2`` (Eckart-Young-Mirsky). The iteration
+    stops once the error at ``rank`` and at every rank in ``guard_ranks`` (smaller ranks that will be cut from these
+    vectors, e.g. by a sweep) is within ``1 + tolerance`` of its optimum, allowing for the rounding of the Gram
+    route (``2 r eps s_1^2``). After ``max_iters`` rounds without that, or when the block would exceed half of
+    min(m, n), it falls back to the full eigendecomposition of G (``method`` says which route was taken).
 
     Returns a :class:`Spectrum` holding all of ``values.S`` (so it still serves rank allocation) and ``rank``
     vector pairs. The pairs are scaled with those singular values, ``U_r = W V_r / S_r`` (tall matrices; wide:
@@ -471,7 +508,14 @@ def leading(
     if rest:
         raise FactorizeError(f"leading() got unknown keywords: {', '.join(rest)}", fix="accepted: seed, precision")
     seed, precision = run.seed, run.precision
-    w, total = _prepared_with_energy(matrix, precision, name)
+    if values is None:
+        w, total = _prepared_with_energy(matrix, precision, name)
+    else:  # ||W||_F^2 only to check that values= belongs to this matrix: accumulated in the compute dtype
+        w = _as_matrix(matrix, precision, name)
+        total = float(torch.linalg.vector_norm(w)) ** 2
+        if not np.isfinite(total):
+            _raise_not_finite(w, name)
+            total = _frobenius2(w)  # all finite after all: the float64 sum (float32 overflowed)
     k = min(w.shape)
     guard = sorted({int(r) for r in guard_ranks} | {int(rank)}) if k else []
     bad = [r for r in guard if not 1 <= r <= k]
@@ -479,115 +523,69 @@ def leading(
         raise FactorizeError(f"{name}: rank(s) {bad} outside 1..{k} for a {tuple(w.shape)} matrix",
                              fix=f"ask for ranks between 1 and {k}")
     if values is None:
-        values = _gram_values(w, total=total)
+        values = _gram_values(w, keep_gram=True, total=total)
     elif (values.shape != tuple(w.shape) or values.computed_rank != k or not values.exact
-          or not np.isclose(values.total_energy, total, rtol=1e-5, atol=0.0)):
+          or not np.isclose(values.total_energy, total, rtol=1e-4, atol=0.0)):
         raise FactorizeError(f"{name}: values= holds {values.computed_rank} singular values of a {values.shape} "
                              f"matrix with ||W||_F^2 = {values.total_energy:.6g}, not all {k} of this "
                              f"{tuple(w.shape)} one (||W||_F^2 = {total:.6g})",
                              fix="pass values_only(matrix) of this same matrix, or values=None")
     if max_iters < 0 or tolerance < 0:
         raise FactorizeError(f"{name}: max_iters and tolerance must be >= 0, got {max_iters} and {tolerance}")
+    route = _route(route, w)
     with lapack_threads(k):  # products too: up to order 2048 the result never depends on the caller's threads
-        return _leading(w, int(rank), values, guard, oversample, max_iters, tolerance, seed)
-
-
-LEADING_AMPLIFICATION = 8.0  # leading(): the filter degree is the smallest that amplifies s_r^2 this much ...
-LEADING_MAX_DEGREE = 6  # ... at most this degree ...
-LEADING_SPREAD = 0.1  # ... and amplifying s_1^2 over s_r^2 by at most this / eps (float32: 8.4e5)
-
-
-def _chebyshev_plan(lam: np.ndarray, rank: int, block: int, dtype: torch.dtype) -> tuple[int, float, float, float]:
-    """Degree and interval of the Chebyshev filter for the top ``rank`` of eigenvalues ``lam`` (descending),
-    iterating a block of ``block`` columns: ``(degree, c, e, x_r)``.
-
-    The filter is T_d((G - c I) / e), with [c - e, c + e] = [lambda_min, lambda_{l+1}] the eigenvalues the block
-    cannot hold, which it keeps within [-1, 1], while it multiplies the wanted lambda_i >= lambda_r by
-    T_d(x_i) >= T_d(x_r), x_i = (lambda_i - c) / e > 1, which grows like (x + sqrt(x^2 - 1))^d (Saad, Numerical
-    Methods for Large Eigenvalue Problems, 2nd ed., 2011, sec. 7.4; Zhou & Saad, "Chebyshev-filtered subspace
-    iteration", 2007). All eigenvalues are known, so the interval is exact. The degree is the smallest reaching
-    ``LEADING_AMPLIFICATION`` at lambda_r, capped by ``LEADING_MAX_DEGREE`` and by the spread
-    T_d(x_1) / T_d(x_r): the rounding of the filtered block is about eps * spread relative to its lambda_r
-    directions, so the spread stays below ``LEADING_SPREAD / eps``.
-    """
-    top, low = float(lam[0]), float(lam[-1])
-    wall = float(lam[block]) if block < len(lam) else low
-    e = max((wall - low) / 2, top * float(torch.finfo(dtype).eps))
-    c = wall - e
-    x_r, x_1 = (float(lam[rank - 1]) - c) / e, (top - c) / e
-    if x_r <= 1.0:  # no gap between lambda_r and the unwanted part: a plain shifted power step
-        return 1, c, e, max(x_r, 1.0)
-    limit = LEADING_SPREAD / float(torch.finfo(dtype).eps)
-    degree = 1
-    while degree < LEADING_MAX_DEGREE and np.cosh(degree * np.arccosh(x_r)) < LEADING_AMPLIFICATION:
-        spread = np.cosh((degree + 1) * np.arccosh(x_1)) / np.cosh((degree + 1) * np.arccosh(x_r))
-        if not spread <= limit:
-            break
-        degree += 1
-    return degree, c, e, x_r
-
-
-def _chebyshev_filter(gram: torch.Tensor, X: torch.Tensor, GX: torch.Tensor | None, degree: int, c: float,
-                      e: float, x_r: float) -> torch.Tensor:
-    """T_d((G - cI)/e) X / T_d(x_r) by the three-term recurrence T_{j+1} = 2 x T_j - T_{j-1}, scaled by
-    T_j(x_r) at every step so that the lambda_r components keep unit scale (Zhou & Saad 2007, Alg. 3.2, scaled at
-    the wanted end). ``GX`` = G X when already known (saves the first product). d products G @ Y."""
-    t_prev, t = 1.0, x_r  # T_0(x_r), T_1(x_r)
-    Y_prev, Y = X, ((gram @ X if GX is None else GX) - c * X) * (1.0 / (e * t))  # T_1 X / T_1(x_r)
-    for _ in range(1, degree):
-        t_next = 2 * x_r * t - t_prev
-        Y_next = torch.addmm(Y, gram, Y, beta=-c, alpha=1.0).mul_(2 * t / (e * t_next))
-        Y_next.sub_(Y_prev, alpha=t_prev / t_next)
-        Y_prev, Y, t_prev, t = Y, Y_next, t, t_next
-    return Y
+        return _leading(w, int(rank), values, guard, oversample, max_iters, tolerance, seed, route)
 
 
 def _leading(w: torch.Tensor, rank: int, values: Spectrum, guard: list[int], oversample: int | None,
-             max_iters: int, tolerance: float, seed: int) -> Spectrum:
+             max_iters: int, tolerance: float, seed: int, route: str) -> Spectrum:
     m, n = w.shape
     k = min(m, n)
-    wide = m <= n
-    held = values.gram
-    gram = held.to(w.dtype) if held is not None and tuple(held.shape) == (k, k) else _small_gram(w)  # (k, k)
     energies = values.energies()  # float64, decreasing
     kept = np.concatenate([[0.0], np.cumsum(energies)])
     total = values.total_energy
     slack = 2 * np.array(guard) * float(torch.finfo(w.dtype).eps) * (energies[0] if len(energies) else 0.0)
     allowed = (1 + tolerance) ** 2 * np.maximum(total - kept[guard], 0.0) + slack  # err^2 allowed at each guard rank
-    # oversampling: half the rank, but no more than keeps the block within k / LEADING_DIRECT_FRACTION (the
-    # filter makes up for a narrower gap with its degree), and at least 16
-    p = max(16, min(rank // 2, k // LEADING_DIRECT_FRACTION - rank)) if oversample is None else max(int(oversample), 0)
-    block = min(rank + p, k)
-    vecs = None
-    method = "leading:eigh"
-    if block * LEADING_DIRECT_FRACTION <= k and max_iters > 0:
-        degree, c, e, x_r = _chebyshev_plan(energies, rank, block, w.dtype)
-        gen = torch.Generator(device="cpu").manual_seed(seed)
-        X = torch.randn(k, block, generator=gen, dtype=w.dtype).to(w.device)  # (k, l) Gaussian start
-        GX = None
-        for it in range(1, max_iters + 1):
-            Q, _ = torch.linalg.qr(_chebyshev_filter(gram, X, GX, degree, c, e, x_r))  # (k, l) filtered block
-            GQ = gram @ Q  # (k, l)
-            H = Q.T @ GQ  # (l, l) Rayleigh quotient (Rayleigh-Ritz: Golub & Van Loan, sec. 8.1)
-            with lapack_threads(block):
-                ritz, Z = torch.linalg.eigh((H + H.T) / 2)  # ascending
-            ritz, Z = ritz.flip(0), Z.flip(1)
-            captured = np.concatenate([[0.0], np.cumsum(ritz.to(torch.float64).cpu().numpy())])
-            if bool(np.all(total - captured[guard] <= allowed)):
-                vecs = Q @ Z[:, :rank]  # (k, r) Ritz vectors
-                method = f"leading:subspace({it}, degree {degree})"
-                break
-            X, GX = Q @ Z, GQ @ Z  # next round starts from the Ritz vectors, whose G-image is already known
-    if vecs is None:  # fallback (or a block too large to pay off): the full symmetric eigendecomposition
+    gram, vecs, method = None, None, "leading:eigh"
+    if route == "tridiagonal":
+        red = values.reduction
+        if red is None or red.order != k or red.d.dtype != _NUMPY_DTYPE[w.dtype]:
+            red = tridiagonal.reduce(_small_gram(w))  # as values_only() would have kept it: the same bits
+        vecs = red.top_vectors(rank) if red is not None else None
+        method = "leading:tridiagonal"
+    else:
+        held = values.gram
+        gram = held.to(w.dtype) if held is not None and tuple(held.shape) == (k, k) else _small_gram(w)  # (k, k)
+        # oversampling: half the rank, but no more than keeps the block within k / LEADING_DIRECT_FRACTION (the
+        # filter makes up for a narrower gap with its degree), and at least 16
+        p = (max(16, min(rank // 2, k // LEADING_DIRECT_FRACTION - rank)) if oversample is None
+             else max(int(oversample), 0))
+        block = min(rank + p, k)
+        if block * LEADING_DIRECT_FRACTION <= k and max_iters > 0:
+            vecs, method = filtered_subspace(gram, energies, total, guard, allowed, rank, block, max_iters, seed)
+    projected = None if vecs is None else _projected(w, vecs)
+    if projected is not None and route == "tridiagonal":
+        # the energy the vectors leave out, exactly (they are orthonormal): ||W||_F^2 - partial sums of ||W^T v||^2
+        captured = np.concatenate([[0.0], np.cumsum(
+            projected.to(torch.float64).square().sum(dim=1 if m <= n else 0).cpu().numpy())])
+        if not bool(np.all(total - captured[guard] <= allowed)):
+            projected = None
+    if projected is None:  # fallback (or a block too large to pay off): the full symmetric eigendecomposition
         with lapack_threads(k):
-            _, evecs = torch.linalg.eigh(gram)  # ascending
-        vecs = evecs.flip(1)[:, :rank]  # (k, r)
+            _, evecs = torch.linalg.eigh(_small_gram(w) if gram is None else gram)  # ascending
+        vecs, method = evecs.flip(1)[:, :rank], "leading:eigh"  # (k, r)
+        projected = _projected(w, vecs)
     S = values.S.to(w.dtype)
     s_r = S[:rank]
     inv = torch.where(s_r > S[0] * 1e-12, 1.0 / s_r, torch.zeros_like(s_r)) if rank else s_r
-    if wide:  # vecs are left singular vectors (m, r); Vh_r = S_r^-1 U_r^T W (r, n)
-        U, Vh = vecs, (vecs.T @ w).mul_(inv[:, None])
+    if m <= n:  # vecs are left singular vectors (m, r); Vh_r = S_r^-1 U_r^T W (r, n)
+        U, Vh = vecs, projected.mul_(inv[:, None])
     else:  # vecs are right singular vectors (n, r); U_r = W V_r S_r^-1 (m, r), scaled in place
-        U, Vh = (w @ vecs).mul_(inv), vecs.T
+        U, Vh = projected.mul_(inv), vecs.T
     U, Vh = _fix_signs(U.contiguous(), Vh.contiguous())
     return Spectrum(U, S, Vh, total_energy=total, method=method, exact=True)
+
+
+def _projected(w: torch.Tensor, vecs: torch.Tensor) -> torch.Tensor:
+    """The matrix on the smaller side's vectors: V^T W (r, n) for a wide ``w``, W V (m, r) for a tall one."""
+    return vecs.T @ w if w.shape[0] <= w.shape[1] else w @ vecs

@@ -137,3 +137,46 @@ def test_the_sweeps_copy_shares_weights_and_leaves_the_original_alone(work) -> N
     assert result.model is copy and factored_layers(copy)
     assert not factored_layers(model) and dict(model.named_modules()) == modules
     assert all(torch.equal(before[k], v) for k, v in model.state_dict().items())
+
+
+def _counting_copies(monkeypatch, fail: bool = False) -> list:
+    """Make every copy the sweep compresses count its forward passes (or fail them)."""
+    from factorize.cli import sweep
+
+    copies, original = [], sweep.sharing_copy
+
+    def counted(model):
+        copy = original(model)
+        copy.calls = 0
+
+        def hook(module, args):
+            if fail:
+                raise RuntimeError("boom in forward")
+            module.calls += 1
+
+        copy.register_forward_pre_hook(hook)
+        copies.append(copy)
+        return copy
+
+    monkeypatch.setattr(sweep, "sharing_copy", counted)
+    return copies
+
+
+def test_each_budget_runs_its_compressed_copy_once_per_batch(work, monkeypatch) -> None:
+    # The drift measurement's compressed pass is the copy's check run: no second pass on the first batch.
+    from factorize.measure.inputs import load_inputs
+
+    copies = _counting_copies(monkeypatch)
+    _json(["sweep", "-m", DIGITS, "--budgets", "0.6,0.3", "--repeats", "0", "-i", str(work / "test.safetensors")])
+    batches = len(load_inputs(work / "test.safetensors", batch_size=64).batches)
+    assert [c.calls for c in copies] == [batches, batches]
+
+
+def test_a_compressed_copy_that_cannot_run_ends_with_a_clear_error(work, monkeypatch) -> None:
+    _counting_copies(monkeypatch, fail=True)
+    out, err = io.StringIO(), io.StringIO()
+    rc = main(["sweep", "-m", DIGITS, "--budgets", "0.5", "--repeats", "0", "-i", str(work / "test.safetensors")],
+              stdout=out, stderr=err)
+    assert rc == 2
+    assert "budget 0.5 could not be run on the sample inputs: boom in forward" in err.getvalue()
+    assert "Traceback" not in err.getvalue()

@@ -206,20 +206,21 @@ def test_leading_falls_back_when_the_iteration_does_not_converge():
     # A slowly decaying spectrum (s_i = 0.995^i) and a guard no subspace iteration meets in one step (tolerance 0,
     # float64): the full Gram eigendecomposition is used instead, which reaches the optimum (numpy.linalg.svd).
     W = torch.as_tensor(_decaying(150, 150, decay=0.995, seed=5))
-    spec = leading(W, 20, tolerance=0.0, max_iters=1)
+    spec = leading(W, 20, tolerance=0.0, max_iters=1, route="subspace")
     assert spec.method == "leading:eigh"
     err = float(np.linalg.norm(W.numpy() - spec.truncated(20).numpy()))
     assert err == pytest.approx(_optimum(W.numpy(), 20), rel=1e-9)
-    quick = leading(W, 20)  # with the 1% guard the iteration is accepted, and it says how many steps it took
+    quick = leading(W, 20, route="subspace")  # with the 1% guard the iteration is accepted; it says its steps
     assert quick.method.startswith("leading:subspace(")
 
 
 def test_leading_is_deterministic_per_seed():
     W = torch.as_tensor(_decaying(200, 120, decay=0.9, seed=6)).float()
     values = values_only(W, keep_gram=True)
-    a = leading(W, 15, values=values, seed=3)
-    b = leading(W, 15, seed=3)  # forms its own Gram matrix: the same bytes
-    assert torch.equal(a.U, b.U) and torch.equal(a.Vh, b.Vh) and torch.equal(a.S, b.S)
+    for route in ("auto", "subspace"):
+        a = leading(W, 15, values=values, seed=3, route=route)
+        b = leading(W, 15, seed=3, route=route)  # forms its own Gram matrix (or reduction): the same bytes
+        assert torch.equal(a.U, b.U) and torch.equal(a.Vh, b.Vh) and torch.equal(a.S, b.S)
 
 
 def test_leading_names_bad_input():
@@ -235,7 +236,7 @@ def test_leading_names_bad_input():
 def test_chebyshev_filter_is_the_scaled_chebyshev_polynomial():
     # Reference: numpy.polynomial.chebyshev.chebval applied to the eigenvalues from numpy.linalg.eigh, i.e.
     # T_d((G - cI)/e) X / T_d(x_r) computed through the spectral decomposition G = V diag(lam) V^T.
-    from factorize.spectra.decompose import _chebyshev_filter
+    from factorize.spectra.subspace import _chebyshev_filter
 
     rng = np.random.default_rng(7)
     A = rng.standard_normal((40, 40))
@@ -264,7 +265,7 @@ def test_leading_filtered_iteration_on_a_slow_power_law(shape, rank):
     U, _ = np.linalg.qr(rng.standard_normal((shape[0], k)))
     V, _ = np.linalg.qr(rng.standard_normal((shape[1], k)))
     W = torch.from_numpy((U * np.arange(1, k + 1) ** -0.5) @ V.T).float()
-    spec = leading(W, rank)
+    spec = leading(W, rank, route="subspace")
     assert spec.method.startswith("leading:subspace(") and "degree 1)" not in spec.method
     err = float(np.linalg.norm(W.double().numpy() - spec.truncated(rank).double().numpy()))
     assert err <= 1.01 * _optimum(W.double().numpy(), rank)
