@@ -42,9 +42,12 @@ from .common import (
 from .render import UI, g4, pct
 
 PLOT_EXTRA = 'pip install ".[plot]" (in a checkout of factorize)'
-DRIFT_KEYS = ("relative_l2", "cosine_mean", "cosine_min", "top1_agreement", "kl")
-REPORT_KEYS = ("accuracy_before", "accuracy_after", "worst_weight_error", "macs_before", "macs_after",
-               "latency_ms_before", "latency_ms_after")
+# every headline metric a report can carry, whichever kind it judged the model as (encoders: cosine, its tail,
+# neighbours and rank correlation; language models: perplexity ratio and next-token agreement; others: L2, cosine)
+DRIFT_KEYS = ("relative_l2", "sample_l2_p95", "cosine_mean", "cosine_p5", "cosine_min", "neighbour_agreement",
+              "similarity_spearman", "top1_agreement", "kl")
+REPORT_KEYS = ("perplexity_ratio", "accuracy_before", "accuracy_after", "worst_weight_error", "macs_before",
+               "macs_after", "latency_ms_before", "latency_ms_after")
 BYTES_KEYS = ("bytes_before", "bytes_after", "bytes_fraction", "rank_only_bytes_fraction", "rank_only_relative_l2")
 CSV_COLUMNS = ("budget", "params_before", "params_after", "kept_fraction", "factored_layers", *DRIFT_KEYS, *REPORT_KEYS,
                *BYTES_KEYS)
@@ -274,8 +277,9 @@ def render(result: dict, ui: UI) -> None:
     columns = [("budget", "budget", lambda v: f"{v:g}"), ("params kept", "kept_fraction", pct),
                ("params", "params_after", lambda v: f"{v:,}"), ("layers factored", "factored_layers", str),
                ("relative L2", "relative_l2", g4), ("cosine mean", "cosine_mean", lambda v: f"{v:.6f}"),
-               ("cosine worst", "cosine_min", lambda v: f"{v:.6f}"),
-               ("top-1 agree", "top1_agreement", pct), ("accuracy", "accuracy_after", pct),
+               ("cosine p5", "cosine_p5", lambda v: f"{v:.6f}"), ("cosine worst", "cosine_min", lambda v: f"{v:.6f}"),
+               ("neighbours agree", "neighbour_agreement", pct), ("top-1 agree", "top1_agreement", pct),
+               ("perplexity ratio", "perplexity_ratio", lambda v: f"{v:.4f}"), ("accuracy", "accuracy_after", pct),
                ("worst weight err", "worst_weight_error", lambda v: f"{v:.4f}"),
                ("bytes kept", "bytes_fraction", pct), ("rank alone, same bytes: rel. L2", "rank_only_relative_l2", g4)]
     columns = [c for c in columns if any(r.get(c[1]) is not None for r in rows)]

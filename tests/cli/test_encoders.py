@@ -92,3 +92,26 @@ def test_shrink_with_pooling_judges_an_encoder_by_cosine_and_neighbours(tmp_path
                   "judged as: sentence encoder (--pooling mean)", "drop --pooling",
                   "High drift: mean cosine similarity to the original is", "the worst sample's cosine similarity"):
         assert words in text, words
+
+
+def test_sweep_with_pooling_writes_the_encoder_metrics_to_csv(tmp_path, monkeypatch):
+    # a sweep judges every budget as shrink does: its CSV carries the encoder's columns (cosine mean, 5th
+    # percentile, worst, nearest-neighbour agreement, Spearman rank correlation) and no argmax over dimensions
+    monkeypatch.setenv("COLUMNS", "200")
+    d, _ = _encoder_dir(tmp_path)
+    out, err = io.StringIO(), io.StringIO()
+    rc = main(["sweep", "--model", str(d), "--inputs", str(tmp_path / "heldout.txt"), "--budgets", "0.3,0.6",
+               "--include", "encoder.*", "--pooling", "mean", "--csv", str(tmp_path / "sweep.csv"), "-q"],
+              stdout=out, stderr=err)
+    assert rc == 0, err.getvalue() + out.getvalue()
+    header, *rows = (tmp_path / "sweep.csv").read_text(encoding="utf-8").splitlines()
+    columns = header.split(",")
+    for key in ("cosine_mean", "cosine_p5", "cosine_min", "neighbour_agreement", "similarity_spearman"):
+        assert key in columns, key
+    assert "top1_agreement" not in columns and "kl" not in columns
+    assert len(rows) == 2
+    values = [dict(zip(columns, r.split(","))) for r in rows]
+    for v in values:
+        assert float(v["cosine_min"]) <= float(v["cosine_p5"]) <= float(v["cosine_mean"]) <= 1 + 1e-6
+    screen = " ".join(out.getvalue().split())
+    assert "neighbours agree" in screen and "top-1" not in screen
