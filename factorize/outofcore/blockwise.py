@@ -79,7 +79,7 @@ import torch
 from safetensors import safe_open
 from tqdm.auto import tqdm
 
-from factorize.calibrated.aware import AwareSpectrum, decompose_aware
+from factorize.calibrated.aware import AwareSpectrum, decompose_aware, whitened_values
 from factorize.calibrated.stats import InputStats
 from factorize.checkpoints.files import Checkpoint
 from factorize.choices import calibrated_methods
@@ -317,6 +317,10 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
             groups[name] = str(path)
             samples[name] = st.count
             W = next(c for c in run.chosen if c.module == name).read_matrix()  # (out, in)
+            if run.aware == "whiten" and run.solver == "gram":  # values first: vectors only in the factor step
+                spectra[name] = whitened_values(W, st, ridge=run.options.ridge, precision=run.options.precision,
+                                                name=name)
+                continue
             spec = decompose_aware(W, st, method=run.aware, solver=run.solver, ridge=run.options.ridge,
                                    rank=k_of[name], seed=run.policy.seed, precision=run.options.precision, name=name)
             spectra[name] = spec.without_vectors()
@@ -400,14 +404,28 @@ def _embed(run: _Run, pieces, out: Path, extras: Path) -> None:
 
 
 def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
-    """Step 3: one task per factored linear; name -> file of its factors."""
+    """Step 3: one task per factored linear, block after block; name -> file of its factors.
+
+    The scratch holds only the moments the plan still needs: those of groups with no factored member go as soon
+    as the plan is known, each block's as soon as its factors are written."""
     (run.work / "factors").mkdir()
     o = run.options
-    tasks = [FactorTask(run.source, e.name, groups[e.name], int(e.rank), run.aware, run.solver, o.ridge,
-                        run.policy.seed, o.precision, str(run.work / "factors" / f"{e.name}.safetensors"), o.threads)
-             for e in factored_entries(plan)]
-    files = run.engine.map(factor_task, tasks, label="factors")
-    return {t.module: f for t, f in zip(tasks, files)}
+    entries = list(factored_entries(plan))
+    needed = {groups[e.name] for e in entries}
+    for path in set(groups.values()) - needed:
+        Path(path).unlink(missing_ok=True)
+    out: dict[str, str] = {}
+    for i in range(run.arch.blocks):
+        mine = [e for e in entries if e.name.startswith(f"{run.arch.prefix}.{i}.")]
+        tasks = [FactorTask(run.source, e.name, groups[e.name], int(e.rank), run.aware, run.solver, o.ridge,
+                            run.policy.seed, o.precision, str(run.work / "factors" / f"{e.name}.safetensors"),
+                            o.threads) for e in mine]
+        if tasks:
+            files = run.engine.map(factor_task, tasks, label=f"block {i} factors")
+            out.update({t.module: f for t, f in zip(tasks, files)})
+        for path in {groups[e.name] for e in mine}:
+            Path(path).unlink(missing_ok=True)  # this block's moments are consumed
+    return out
 
 
 def _refit(run: _Run, plan: dict) -> dict[str, str]:
