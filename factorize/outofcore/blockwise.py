@@ -88,7 +88,14 @@ from factorize.errors import FactorizeError
 from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
 from factorize.outofcore.architecture import Architecture, block_candidates, block_linears, check_source
-from factorize.outofcore.block_tasks import BlockTask, FactorTask, block_slice_task, factor_task, save_work_file
+from factorize.outofcore.block_tasks import (
+    BlockTask,
+    FactorTask,
+    block_slice_task,
+    factor_task,
+    packed_upper,
+    save_work_file,
+)
 from factorize.outofcore.candidates import Candidate
 from factorize.outofcore.options import BlockwiseOptions, split_keywords
 from factorize.outofcore.refit_tasks import PairTask, pair_task
@@ -358,7 +365,9 @@ def _summed(leader: str, files: Sequence[str], batches: int, parts: tuple[str, .
 
 def _save_stats(st: InputStats, path: Path) -> None:
     """A group's summed statistics for the factor tasks (:func:`factorize.outofcore.block_tasks.read_stats`)."""
-    tensors = {"moment": st.second_moment, "total": st.total, "abs_total": st.abs_total}
+    upper = packed_upper(st.second_moment)  # C = X^T X summed in slice order: symmetric, half the bytes suffice
+    tensors = {"moment" if upper is None else "moment.upper": st.second_moment if upper is None else upper,
+               "total": st.total, "abs_total": st.abs_total}
     if st.cross is not None:
         tensors.update(cross=st.cross, reference_moment=st.reference_moment, reference_total=st.reference_total)
     save_work_file(tensors, str(path), {"count": str(st.count), "batches": str(st.batches)})

@@ -302,6 +302,8 @@ class CountMoments(LocalEngine):
         if label.endswith("factors"):
             held = {p.name for p in Path(items[0].moment).parent.iterdir()}
             self.steps.append((held, {Path(t.moment).name for t in items}))
+            with safe_open(items[0].moment, framework="pt") as f:
+                self.stored = set(f.keys())
         return super().map(fn, items, label=label)
 
 
@@ -315,6 +317,19 @@ def test_the_scratch_holds_only_the_moments_not_yet_consumed(ckpt, tmp_path):
         assert held == set().union(*(reads for _, reads in engine.steps[k:])), k
     assert len(engine.steps[0][0]) > len(engine.steps[1][0])
     assert all(n.startswith("model.layers.1.") for n in engine.steps[1][0])
+    assert engine.stored == {"moment.upper", "total", "abs_total"}  # the symmetric moment's upper triangle only
+
+
+def test_packed_moments_are_numpys_upper_triangle_and_unpack_bit_for_bit():
+    from factorize.outofcore.block_tasks import packed_upper, unpacked_upper
+
+    x = torch.randn(50, 30, dtype=torch.float64, generator=torch.Generator().manual_seed(0))
+    C = x.T @ x + (x.T @ x).T  # exactly symmetric
+    packed = packed_upper(C)
+    np.testing.assert_array_equal(packed.numpy(), C.numpy()[np.triu_indices(30)])  # numpy's row-major triangle
+    assert torch.equal(unpacked_upper(packed, 30), C)
+    C[2, 7] += 1e-9  # not symmetric: stored whole
+    assert packed_upper(C) is None
 
 
 def _full_decomposition(W, stats, *, ridge=None, precision=None, name="matrix"):
