@@ -19,13 +19,18 @@ are ``nn.Linear`` or GPT-2's ``Conv1D`` (plan kind ``"transposed"``).
    projection's input second moment C = X^T X in float64 (q/k/v share one input and gate/up another: each
    distinct input is accumulated once), writes the block's outputs for block i + 1 and its partial moments to
    the work directory. The client sums the partial moments in slice order, computes each projection's whitened
-   spectrum (singular values of W L with L L^T = C + lambda I, :func:`factorize.calibrated.aware.decompose_aware`),
-   keeps the values only, stores C for the factor step and frees the block. The hidden states passed on are the
+   spectrum, values only (singular values of W L with L L^T = C + lambda I from ``eigvalsh`` of its Gram matrix,
+   :func:`factorize.calibrated.aware.whitened_values`; no vectors before the plan), stores C for the factor step
+   (its upper triangle when C is exactly symmetric: half the bytes, rebuilt bit for bit) and frees the block.
+   The hidden states passed on are the
    ORIGINAL block's outputs: the ranks are only known once every block's spectrum is (the budget is allocated
    globally), so this first pass must not depend on them.
 3. **Plan and factors.** The budget is allocated across all blocks' whitened spectra at once
    (:func:`factorize.plan.ranks.choose_ranks`), then each factored projection is one task: its weight from the
-   shard and its group's C from the work directory give the factors at the planned rank.
+   shard and its group's C from the work directory give the factors at the planned rank (the only
+   decomposition with vectors). The tasks run block after block; a group's C is deleted once its block's
+   factors are written (at once when no member is factored): the work directory holds only what the plan
+   still needs.
 
    With ``sequential=True`` the factors come instead from a second pass over the blocks, in order, that feeds
    each block what the already compressed blocks upstream produce (:mod:`factorize.outofcore.refit_tasks`): for
@@ -172,7 +177,8 @@ def shrink_blockwise(
         options: a :class:`~factorize.outofcore.options.BlockwiseOptions`, or its fields as keywords:
             ``cluster`` (where the tasks run, :func:`factorize.cluster.open_engine`: None for this process, or an
             :class:`~factorize.cluster.Engine`; with a cluster, ``work_dir`` must be on storage every worker
-            reads), ``work_dir`` (needs about 2 x the activations plus every block's n x n float64 moments),
+            reads), ``work_dir`` (needs about 2 x the activations plus every block's n x n float64 moments,
+            stored as upper triangles),
             ``slices``, ``threads``, ``tokens_per_pass``, ``ridge``, ``precision``, ``force`` (replace an
             existing ``dst``), ``metadata`` (extra string entries for the output's metadata), ``progress``,
             ``sequential`` (refit each block to the compressed blocks upstream; ranks from the first pass).
