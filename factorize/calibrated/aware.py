@@ -354,17 +354,17 @@ def _decompose_output_side(W64, stats, fit: AwareFit, center, left, rank, seed, 
                    left=left)
 
 
-def whitened_values(W: torch.Tensor, stats: InputStats, *, ridge: float | None = None, precision: str | None = None,
-                    name: str = "matrix") -> AwareSpectrum:
+def whitened_values(W: torch.Tensor, stats: InputStats, fit: AwareFit | None = None, *,
+                    execution: Execution | None = None, name: str = "matrix", **keywords: Any) -> AwareSpectrum:
     """:func:`decompose_aware`'s energies for "whiten" (input side, not centred, no refit), no vectors."""
-    W64 = torch.as_tensor(W).detach().to(torch.float64)
-    _check_stats(W64, stats, name)
+    fit, execution = AwareFit.from_keywords(fit, execution, keywords)  # fit.ridge and execution.precision count
+    _check_stats(W64 := torch.as_tensor(W).detach().to(torch.float64), stats, name)
     C = _moments(stats, False)[0]
-    lam = _ridge_for(stats, diag := stats.diagonal if C is None else C.diagonal(), ridge)
-    Z = W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam)  # (m, n) = W L
-    spec = values_only(Z, precision="float64", name=name)  # every s_i of W L: what rank allocation needs
-    return AwareSpectrum(spec.U, spec.S.to(compute_dtype_for(W, precision)), spec.Vh, total_energy=spec.total_energy,
-                         method="whiten", exact=True, energy=spec.energies(), ridge=float(lam), samples=stats.count)
+    lam = _ridge_for(stats, diag := stats.diagonal if C is None else C.diagonal(), fit.ridge)
+    spec = values_only(W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam), precision="float64",
+                       name=name)  # every s_i of W L (m x n): what rank allocation needs
+    return AwareSpectrum(spec.U, spec.S.to(compute_dtype_for(W, execution.precision)), spec.Vh, spec.total_energy,
+                         "whiten", True, energy=spec.energies(), ridge=float(lam), samples=stats.count)
 
 
 def _device_of(stats: InputStats, W: torch.Tensor) -> torch.device:

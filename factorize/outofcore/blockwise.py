@@ -84,12 +84,13 @@ import torch
 from safetensors import safe_open
 from tqdm.auto import tqdm
 
-from factorize.calibrated.aware import AwareSpectrum, decompose_aware, whitened_values
+from factorize.calibrated.aware import AwareFit, AwareSpectrum, decompose_aware, whitened_values
 from factorize.calibrated.stats import InputStats
 from factorize.checkpoints.files import Checkpoint
 from factorize.choices import calibrated_methods
 from factorize.cluster import Engine, open_engine
 from factorize.errors import FactorizeError
+from factorize.execution import Execution
 from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
 from factorize.outofcore.architecture import Architecture, block_candidates, block_linears, check_source
@@ -331,8 +332,8 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
             samples[name] = st.count
             W = next(c for c in run.chosen if c.module == name).read_matrix()  # (out, in)
             if run.aware == "whiten" and run.solver == "gram":  # values first: vectors only in the factor step
-                spectra[name] = whitened_values(W, st, ridge=run.options.ridge, precision=run.options.precision,
-                                                name=name)
+                spectra[name] = whitened_values(W, st, AwareFit(ridge=run.options.ridge), name=name,
+                                                execution=Execution(precision=run.options.precision))
                 continue
             spec = decompose_aware(W, st, method=run.aware, solver=run.solver, ridge=run.options.ridge,
                                    rank=k_of[name], seed=run.policy.seed, precision=run.options.precision, name=name)

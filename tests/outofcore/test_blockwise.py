@@ -332,10 +332,10 @@ def test_packed_moments_are_numpys_upper_triangle_and_unpack_bit_for_bit():
     assert packed_upper(C) is None
 
 
-def _full_decomposition(W, stats, *, ridge=None, precision=None, name="matrix"):
+def _full_decomposition(W, stats, fit, *, execution, name):
     """The statistics pass before values first: the whole whitened decomposition, its vectors then dropped."""
-    return blockwise.decompose_aware(W, stats, method="whiten", solver="gram", ridge=ridge, precision=precision,
-                                     name=name).without_vectors()
+    return blockwise.decompose_aware(W, stats, method="whiten", solver="gram", ridge=fit.ridge,
+                                     precision=execution.precision, name=name).without_vectors()
 
 
 def test_values_first_gives_the_plan_and_bytes_of_the_full_decomposition(ckpt, shrunk, tmp_path, monkeypatch):
