@@ -87,7 +87,7 @@ from factorize.errors import FactorizeError
 from factorize.execution import EXECUTION_KEYWORDS, Execution, resolve_execution
 from factorize.model.sites import Site, get_module, matrix_of
 from factorize.plan.entries import factored_entries, factored_names
-from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose
+from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose, values_only
 from factorize.spectra.sites import per_site
 
 DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
@@ -352,6 +352,19 @@ def _decompose_output_side(W64, stats, fit: AwareFit, center, left, rank, seed, 
         total = float(M.trace())
     return _finish(W64, spec, energy, total, 0.0, mu if center else None, mu, lam, N, out_dtype, fit.method,
                    left=left)
+
+
+def whitened_values(W: torch.Tensor, stats: InputStats, fit: AwareFit | None = None, *,
+                    execution: Execution | None = None, name: str = "matrix", **keywords: Any) -> AwareSpectrum:
+    """:func:`decompose_aware`'s energies for "whiten" (input side, not centred, no refit), no vectors."""
+    fit, execution = AwareFit.from_keywords(fit, execution, keywords)  # fit.ridge and execution.precision count
+    _check_stats(W64 := torch.as_tensor(W).detach().to(torch.float64), stats, name)
+    C = _moments(stats, False)[0]
+    lam = _ridge_for(stats, diag := stats.diagonal if C is None else C.diagonal(), fit.ridge)
+    spec = values_only(W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam), precision="float64",
+                       name=name)  # every s_i of W L (m x n): what rank allocation needs
+    return AwareSpectrum(spec.U, spec.S.to(compute_dtype_for(W, execution.precision)), spec.Vh, spec.total_energy,
+                         "whiten", True, energy=spec.energies(), ridge=float(lam), samples=stats.count)
 
 
 def _device_of(stats: InputStats, W: torch.Tensor) -> torch.device:

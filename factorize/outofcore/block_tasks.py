@@ -145,11 +145,38 @@ class FactorTask:
     threads: int
 
 
+PACK_ROWS = 256  # rows compared at a time by the symmetry check of :func:`packed_upper`
+
+
+def packed_upper(C: torch.Tensor) -> torch.Tensor | None:
+    """C's upper triangle, row after row (n (n + 1) / 2 values), when C is exactly symmetric, else None: the
+    factor step rebuilds C bit for bit (:func:`unpacked_upper`) from half the bytes on disk."""
+    n = int(C.shape[0])
+    if not all(torch.equal(C[lo:lo + PACK_ROWS], C[:, lo:lo + PACK_ROWS].T) for lo in range(0, n, PACK_ROWS)):
+        return None
+    out, at = C.new_empty(n * (n + 1) // 2), 0
+    for i in range(n):
+        out[at:at + n - i] = C[i, i:]
+        at += n - i
+    return out
+
+
+def unpacked_upper(packed: torch.Tensor, n: int) -> torch.Tensor:
+    """The symmetric n x n matrix whose upper triangle :func:`packed_upper` stored."""
+    C, at = packed.new_empty(n, n), 0
+    for i in range(n):
+        C[i, i:] = C[i:, i] = packed[at:at + n - i]
+        at += n - i
+    return C
+
+
 def read_stats(path: str, name: str) -> InputStats:
-    """A group's summed statistics as the client stored them."""
+    """A group's summed statistics as the client stored them (the moment possibly as its upper triangle)."""
     with safe_open(path, framework="pt", device="cpu") as f:
         meta = f.metadata()
-        C = f.get_tensor("moment")
+        packed = "moment.upper" in f.keys()  # noqa: SIM118 - a safe_open handle, not a dict
+        C = unpacked_upper(f.get_tensor("moment.upper"), int(f.get_slice("total").get_shape()[0])) if packed \
+            else f.get_tensor("moment")
         st = InputStats(name, "linear", int(C.shape[0]), count=int(meta["count"]), second_moment=C,
                         total=f.get_tensor("total"), abs_total=f.get_tensor("abs_total"),
                         batches=int(meta.get("batches", 0)))

@@ -19,13 +19,18 @@ are ``nn.Linear`` or GPT-2's ``Conv1D`` (plan kind ``"transposed"``).
    projection's input second moment C = X^T X in float64 (q/k/v share one input and gate/up another: each
    distinct input is accumulated once), writes the block's outputs for block i + 1 and its partial moments to
    the work directory. The client sums the partial moments in slice order, computes each projection's whitened
-   spectrum (singular values of W L with L L^T = C + lambda I, :func:`factorize.calibrated.aware.decompose_aware`),
-   keeps the values only, stores C for the factor step and frees the block. The hidden states passed on are the
+   spectrum, values only (singular values of W L with L L^T = C + lambda I from ``eigvalsh`` of its Gram matrix,
+   :func:`factorize.calibrated.aware.whitened_values`; no vectors before the plan), stores C for the factor step
+   (its upper triangle when C is exactly symmetric: half the bytes, rebuilt bit for bit) and frees the block.
+   The hidden states passed on are the
    ORIGINAL block's outputs: the ranks are only known once every block's spectrum is (the budget is allocated
    globally), so this first pass must not depend on them.
 3. **Plan and factors.** The budget is allocated across all blocks' whitened spectra at once
    (:func:`factorize.plan.ranks.choose_ranks`), then each factored projection is one task: its weight from the
-   shard and its group's C from the work directory give the factors at the planned rank.
+   shard and its group's C from the work directory give the factors at the planned rank (the only
+   decomposition with vectors). The tasks run block after block; a group's C is deleted once its block's
+   factors are written (at once when no member is factored): the work directory holds only what the plan
+   still needs.
 
    With ``sequential=True`` the factors come instead from a second pass over the blocks, in order, that feeds
    each block what the already compressed blocks upstream produce (:mod:`factorize.outofcore.refit_tasks`): for
@@ -79,16 +84,24 @@ import torch
 from safetensors import safe_open
 from tqdm.auto import tqdm
 
-from factorize.calibrated.aware import AwareSpectrum, decompose_aware
+from factorize.calibrated.aware import AwareFit, AwareSpectrum, decompose_aware, whitened_values
 from factorize.calibrated.stats import InputStats
 from factorize.checkpoints.files import Checkpoint
 from factorize.choices import calibrated_methods
 from factorize.cluster import Engine, open_engine
 from factorize.errors import FactorizeError
+from factorize.execution import Execution
 from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
 from factorize.outofcore.architecture import Architecture, block_candidates, block_linears, check_source
-from factorize.outofcore.block_tasks import BlockTask, FactorTask, block_slice_task, factor_task, save_work_file
+from factorize.outofcore.block_tasks import (
+    BlockTask,
+    FactorTask,
+    block_slice_task,
+    factor_task,
+    packed_upper,
+    save_work_file,
+)
 from factorize.outofcore.candidates import Candidate
 from factorize.outofcore.options import BlockwiseOptions, split_keywords
 from factorize.outofcore.refit_tasks import PairTask, pair_task
@@ -165,7 +178,8 @@ def shrink_blockwise(
         options: a :class:`~factorize.outofcore.options.BlockwiseOptions`, or its fields as keywords:
             ``cluster`` (where the tasks run, :func:`factorize.cluster.open_engine`: None for this process, or an
             :class:`~factorize.cluster.Engine`; with a cluster, ``work_dir`` must be on storage every worker
-            reads), ``work_dir`` (needs about 2 x the activations plus every block's n x n float64 moments),
+            reads), ``work_dir`` (needs about 2 x the activations plus every block's n x n float64 moments,
+            stored as upper triangles),
             ``slices``, ``threads``, ``tokens_per_pass``, ``ridge``, ``precision``, ``force`` (replace an
             existing ``dst``), ``metadata`` (extra string entries for the output's metadata), ``progress``,
             ``sequential`` (refit each block to the compressed blocks upstream; ranks from the first pass).
@@ -317,6 +331,10 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
             groups[name] = str(path)
             samples[name] = st.count
             W = next(c for c in run.chosen if c.module == name).read_matrix()  # (out, in)
+            if run.aware == "whiten" and run.solver == "gram":  # values first: vectors only in the factor step
+                spectra[name] = whitened_values(W, st, AwareFit(ridge=run.options.ridge), name=name,
+                                                execution=Execution(precision=run.options.precision))
+                continue
             spec = decompose_aware(W, st, method=run.aware, solver=run.solver, ridge=run.options.ridge,
                                    rank=k_of[name], seed=run.policy.seed, precision=run.options.precision, name=name)
             spectra[name] = spec.without_vectors()
@@ -354,7 +372,9 @@ def _summed(leader: str, files: Sequence[str], batches: int, parts: tuple[str, .
 
 def _save_stats(st: InputStats, path: Path) -> None:
     """A group's summed statistics for the factor tasks (:func:`factorize.outofcore.block_tasks.read_stats`)."""
-    tensors = {"moment": st.second_moment, "total": st.total, "abs_total": st.abs_total}
+    upper = packed_upper(st.second_moment)  # C = X^T X summed in slice order: symmetric, half the bytes suffice
+    tensors = {"moment" if upper is None else "moment.upper": st.second_moment if upper is None else upper,
+               "total": st.total, "abs_total": st.abs_total}
     if st.cross is not None:
         tensors.update(cross=st.cross, reference_moment=st.reference_moment, reference_total=st.reference_total)
     save_work_file(tensors, str(path), {"count": str(st.count), "batches": str(st.batches)})
@@ -400,14 +420,28 @@ def _embed(run: _Run, pieces, out: Path, extras: Path) -> None:
 
 
 def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
-    """Step 3: one task per factored linear; name -> file of its factors."""
+    """Step 3: one task per factored linear, block after block; name -> file of its factors.
+
+    The scratch holds only the moments the plan still needs: those of groups with no factored member go as soon
+    as the plan is known, each block's as soon as its factors are written."""
     (run.work / "factors").mkdir()
     o = run.options
-    tasks = [FactorTask(run.source, e.name, groups[e.name], int(e.rank), run.aware, run.solver, o.ridge,
-                        run.policy.seed, o.precision, str(run.work / "factors" / f"{e.name}.safetensors"), o.threads)
-             for e in factored_entries(plan)]
-    files = run.engine.map(factor_task, tasks, label="factors")
-    return {t.module: f for t, f in zip(tasks, files)}
+    entries = list(factored_entries(plan))
+    needed = {groups[e.name] for e in entries}
+    for path in set(groups.values()) - needed:
+        Path(path).unlink(missing_ok=True)
+    out: dict[str, str] = {}
+    for i in range(run.arch.blocks):
+        mine = [e for e in entries if e.name.startswith(f"{run.arch.prefix}.{i}.")]
+        tasks = [FactorTask(run.source, e.name, groups[e.name], int(e.rank), run.aware, run.solver, o.ridge,
+                            run.policy.seed, o.precision, str(run.work / "factors" / f"{e.name}.safetensors"),
+                            o.threads) for e in mine]
+        if tasks:
+            files = run.engine.map(factor_task, tasks, label=f"block {i} factors")
+            out.update({t.module: f for t, f in zip(tasks, files)})
+        for path in {groups[e.name] for e in mine}:
+            Path(path).unlink(missing_ok=True)  # this block's moments are consumed
+    return out
 
 
 def _refit(run: _Run, plan: dict) -> dict[str, str]:

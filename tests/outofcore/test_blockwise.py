@@ -260,7 +260,7 @@ def test_bad_inputs_are_refused_before_anything_is_written(ckpt, tmp_path):
 def test_a_failure_midway_leaves_nothing(ckpt, tmp_path):
     class FailOnFactors(LocalEngine):
         def map(self, fn, items, *, label="tasks"):
-            if label == "factors":
+            if label.endswith("factors"):  # the factor step runs block by block ("block 0 factors", ...)
                 raise RuntimeError("worker lost")
             return super().map(fn, items, label=label)
 
@@ -288,3 +288,89 @@ def test_command_line_blockwise(ckpt, tmp_path):
                "--inputs", str(tmp_path / "ids.npy"), "-o", str(tmp_path / "x"), "--json", "-q"], stdout=out,
               stderr=err)
     assert rc == 2 and "--inputs" in json.loads(out.getvalue())["error"]
+
+
+class CountMoments(LocalEngine):
+    """Records, at each factor step, which moment files the scratch holds and which ones the step reads."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.steps: list[tuple[set[str], set[str]]] = []
+
+    def map(self, fn, items, *, label="tasks"):
+        items = list(items)
+        if label.endswith("factors"):
+            held = {p.name for p in Path(items[0].moment).parent.iterdir()}
+            self.steps.append((held, {Path(t.moment).name for t in items}))
+            with safe_open(items[0].moment, framework="pt") as f:
+                self.stored = set(f.keys())
+        return super().map(fn, items, label=label)
+
+
+def test_the_scratch_holds_only_the_moments_not_yet_consumed(ckpt, tmp_path):
+    engine = CountMoments()
+    shrink_blockwise(ckpt, tmp_path / "counted", budget=BUDGET, calibration=_calibration(), threads=1, cluster=engine)
+    assert len(engine.steps) == 2  # one factor step per block of the tiny Llama
+    for k, (held, _) in enumerate(engine.steps):
+        # exactly the moments this step and the later ones read: a block's go once its factors are written, and
+        # those of groups whose members all stay dense go as soon as the plan is known
+        assert held == set().union(*(reads for _, reads in engine.steps[k:])), k
+    assert len(engine.steps[0][0]) > len(engine.steps[1][0])
+    assert all(n.startswith("model.layers.1.") for n in engine.steps[1][0])
+    assert engine.stored == {"moment.upper", "total", "abs_total"}  # the symmetric moment's upper triangle only
+
+
+def test_packed_moments_are_numpys_upper_triangle_and_unpack_bit_for_bit():
+    from factorize.outofcore.block_tasks import packed_upper, unpacked_upper
+
+    x = torch.randn(50, 30, dtype=torch.float64, generator=torch.Generator().manual_seed(0))
+    C = x.T @ x + (x.T @ x).T  # exactly symmetric
+    packed = packed_upper(C)
+    np.testing.assert_array_equal(packed.numpy(), C.numpy()[np.triu_indices(30)])  # numpy's row-major triangle
+    assert torch.equal(unpacked_upper(packed, 30), C)
+    C[2, 7] += 1e-9  # not symmetric: stored whole
+    assert packed_upper(C) is None
+
+
+def _full_decomposition(W, stats, fit, *, execution, name):
+    """The statistics pass before values first: the whole whitened decomposition, its vectors then dropped."""
+    return blockwise.decompose_aware(W, stats, method="whiten", solver="gram", ridge=fit.ridge,
+                                     precision=execution.precision, name=name).without_vectors()
+
+
+def test_values_first_gives_the_plan_and_bytes_of_the_full_decomposition(ckpt, shrunk, tmp_path, monkeypatch):
+    out, done = shrunk
+    monkeypatch.setattr(blockwise, "whitened_values", _full_decomposition)
+    full = tmp_path / "full"
+    before = shrink_blockwise(ckpt, full, budget=BUDGET, calibration=_calibration(), threads=1)
+    sites, old = done.plan["sites"], before.plan["sites"]
+    assert sites.keys() == old.keys()
+    for name, entry in sites.items():
+        assert entry.keys() == old[name].keys()
+        for key, value in entry.items():
+            if isinstance(value, float):  # eigvalsh and eigh round differently: the energies agree to rounding
+                assert value == pytest.approx(old[name][key], rel=1e-9, abs=1e-12), (name, key)
+            else:
+                assert value == old[name][key], (name, key)
+    shards = _Shards(out)
+    other = _Shards(full)
+    assert shards.map == other.map
+    for key in shards.map:  # the written tensors, byte for byte
+        assert shards.get(key).view(torch.uint8).equal(other.get(key).view(torch.uint8)), key
+
+
+def test_whitened_values_are_the_squared_singular_values_of_w_l(ckpt):
+    # numpy's SVD of W L, L L^T = C + lambda I (Cholesky), as in decompose_aware's module docstring
+    from factorize.calibrated.aware import whitened_values
+
+    model = _reference(ckpt)
+    name = "model.layers.0.mlp.down_proj"
+    stats = collect_stats(model, [name], _calibration())[name]
+    W = model.get_submodule(name).weight.detach()
+    got = whitened_values(W, stats, name=name)
+    C = stats.second_moment.numpy()
+    L = np.linalg.cholesky(C + 1e-6 * np.mean(np.diag(C)) * np.eye(C.shape[0]))
+    s = np.linalg.svd(W.double().numpy() @ L, compute_uv=False)
+    assert got.vector_rank == 0 and got.computed_rank == s.size
+    np.testing.assert_allclose(got.energies(), s**2, rtol=1e-7, atol=1e-9 * s[0] ** 2)
+    assert got.total_energy == pytest.approx(float((s**2).sum()), rel=1e-10)
