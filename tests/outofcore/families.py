@@ -11,6 +11,18 @@ import torch
 VOCAB = 256
 
 
+def padded_calibration(vocab: int, rows: tuple[int, int]) -> list:
+    """Two batches of token ids of different lengths (24 and 16); the second is right-padded (a dict with an
+    attention mask), so padded positions must be left out of the statistics and masked in attention."""
+    g = torch.Generator().manual_seed(1)
+    first = torch.randint(0, vocab, (rows[0], 24), generator=g)
+    ids = torch.randint(0, vocab, (rows[1], 16), generator=g)
+    mask = torch.ones(rows[1], 16, dtype=torch.int64)
+    mask[1, 12:] = 0
+    mask[3, 9:] = 0
+    return [first, {"input_ids": ids, "attention_mask": mask}]
+
+
 def configs(transformers) -> dict:
     """model_type -> (model class, config). Mistral has a sliding window shorter than the calibration sequences;
     Qwen2 mixes sliding-window and full-attention layers (two distinct sets of block inputs); Phi rotates half

@@ -25,6 +25,7 @@ from factorize.outofcore.candidates import select
 from factorize.outofcore.options import BlockwiseOptions
 from factorize.outofcore.tokens import token_batches
 from factorize.plan.policy import resolve_policy
+from tests.outofcore.families import padded_calibration
 
 transformers = pytest.importorskip("transformers")
 
@@ -40,14 +41,7 @@ def _writer():
 
 
 def _calibration():
-    # two batches of different lengths; the second right-padded, so padded positions must be left out
-    g = torch.Generator().manual_seed(1)
-    first = torch.randint(0, 256, (7, 24), generator=g)
-    ids = torch.randint(0, 256, (5, 16), generator=g)
-    mask = torch.ones(5, 16, dtype=torch.int64)
-    mask[1, 12:] = 0
-    mask[3, 9:] = 0
-    return [first, {"input_ids": ids, "attention_mask": mask}]
+    return padded_calibration(256, (7, 5))
 
 
 @pytest.fixture(scope="module")

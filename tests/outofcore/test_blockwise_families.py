@@ -32,7 +32,7 @@ from factorize.outofcore.tokens import token_batches
 from factorize.plan.policy import resolve_policy
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import apply_plan
-from tests.outofcore.families import VOCAB, configs, write_family
+from tests.outofcore.families import VOCAB, configs, padded_calibration, write_family
 
 transformers = pytest.importorskip("transformers")
 
@@ -42,15 +42,8 @@ BUDGET = 0.5
 
 
 def _calibration():
-    # two batches of different lengths (24 > Mistral's and Qwen2's sliding window of 8); the second right-padded,
-    # so padded positions must be left out of the statistics and masked in attention
-    g = torch.Generator().manual_seed(1)
-    first = torch.randint(0, VOCAB, (5, 24), generator=g)
-    ids = torch.randint(0, VOCAB, (4, 16), generator=g)
-    mask = torch.ones(4, 16, dtype=torch.int64)
-    mask[1, 12:] = 0
-    mask[3, 9:] = 0
-    return [first, {"input_ids": ids, "attention_mask": mask}]
+    # 24 tokens > Mistral's and Qwen2's sliding window of 8
+    return padded_calibration(VOCAB, (5, 4))
 
 
 @pytest.fixture(scope="module")
