@@ -15,21 +15,9 @@ from safetensors.torch import load_file
 
 import factorize
 from factorize.cli import main
+from tests.cli.user_code import NET
 
-MODULE = """
-import torch
-from torch import nn
-
-class Net(nn.Module):
-    def __init__(self):
-        super().__init__()
-        self.fc1 = nn.Linear(20, 48)
-        self.fc2 = nn.Linear(48, 48)
-        self.head = nn.Linear(48, 5)
-
-    def forward(self, x):
-        return self.head(torch.relu(self.fc2(torch.relu(self.fc1(x)))))
-
+MODULE = NET + """
 def build():
     torch.manual_seed(0)
     return Net()

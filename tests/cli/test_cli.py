@@ -28,21 +28,9 @@ from safetensors.torch import save_file
 from factorize.cli import main
 from factorize.cli.render import spectrum_profile, spectrum_sketch
 from factorize.measure.report import CAUTION
+from tests.cli.user_code import NET
 
-USER_MODULE = """
-import torch
-from torch import nn
-
-class Net(nn.Module):
-    def __init__(self):
-        super().__init__()
-        self.fc1 = nn.Linear(20, 48)
-        self.fc2 = nn.Linear(48, 48)
-        self.head = nn.Linear(48, 5)
-
-    def forward(self, x):
-        return self.head(torch.relu(self.fc2(torch.relu(self.fc1(x)))))
-
+USER_MODULE = NET + """
 def build():
     return Net()
 
