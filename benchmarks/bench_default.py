@@ -66,6 +66,7 @@ from torch import nn
 import factorize
 from factorize import Calibration, Override, Policy
 from factorize.plan.entries import is_factored_entry
+from factorize.storage.atomic import write_atomic
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -671,9 +672,7 @@ def main(argv=None) -> None:
     print(text)
     out = Path(args.output)
     out.parent.mkdir(exist_ok=True)
-    tmp = out.with_suffix(".tmp")
-    tmp.write_text(text)
-    tmp.replace(out)
+    write_atomic(out, lambda tmp: tmp.write_text(text), force=True)
     log(f"wrote {out} ({minutes:.1f} min)")
 
 

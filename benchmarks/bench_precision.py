@@ -63,6 +63,7 @@ from factorize.plan.entries import plan_entries
 from factorize.plan.policy import DEFAULT_PRECISIONS, Policy
 from factorize.rewrite.stored import attach_stored
 from factorize.rounding import round_matrix, stored_bytes
+from factorize.storage.atomic import write_atomic
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -486,9 +487,7 @@ def main(argv=None) -> None:
     print(text)
     out = Path(args.output)
     out.parent.mkdir(exist_ok=True)
-    tmp = out.with_suffix(".tmp")
-    tmp.write_text(text)
-    tmp.replace(out)
+    write_atomic(out, lambda tmp: tmp.write_text(text), force=True)
     log(f"wrote {out} ({minutes:.1f} min)")
 
 

@@ -44,6 +44,7 @@ from factorize.measure.drift import output_drift
 from factorize.model.feed import token_mask
 from factorize.plan.entries import is_factored_entry
 from factorize.plan.ranks import Policy
+from factorize.storage.atomic import write_atomic
 
 RESULTS = Path(__file__).with_name("results") / "quality.md"
 TARGETS = {0.5: 0.90, 0.75: 0.97}  # encoder held-out mean cosine (issue 4)
@@ -299,9 +300,7 @@ def write(path, enc_rows, check, info, dig_rows, base, dig_setup, args, elapsed)
     lines += ["", NOTES, "Drift was measured on the sample inputs only; it is no guarantee of behaviour on other "
               "inputs, and use in safety-relevant settings needs re-validation under the rules that govern them.", ""]
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_suffix(".tmp")
-    tmp.write_text("\n".join(lines), encoding="utf-8")
-    tmp.replace(path)
+    write_atomic(path, lambda tmp: tmp.write_text("\n".join(lines), encoding="utf-8"), force=True)
 
 
 def main() -> None:
