@@ -290,8 +290,6 @@ def decompose_aware(
 def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision, name) -> AwareSpectrum:
     """:func:`decompose_aware` with its options checked."""
     center = fit.center != "auto" and bool(fit.center)  # "auto" needs the layer (see aware_spectra): off here
-    method, alpha, ridge = fit.method, fit.alpha, fit.ridge
-    refit_ridge, output_ridge, solver = fit.refit_ridge, fit.output_ridge, fit.solver
     W = torch.as_tensor(W).detach()
     if W.dim() != 2:
         raise FactorizeError(f"{name}: expected a 2-D matrix, got shape {tuple(W.shape)}")
@@ -301,32 +299,40 @@ def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision
                              fix="repair or retrain the layer, or exclude it")
     out_dtype = compute_dtype_for(W, precision)
     W64 = W.to(device=_device_of(stats, W), dtype=torch.float64)
-    left = _left_weight(output_gram, W64, output_ridge, name)
-    if left is not None and method != "whiten":
+    left = _left_weight(output_gram, W64, fit.output_ridge, name)
+    if left is not None and fit.method != "whiten":
         raise FactorizeError(f"{name}: output weighting needs method='whiten'", fix="use method='whiten'")
     if stats.is_output_side:
         return _decompose_output_side(W64, stats, fit, center, left, rank, seed, out_dtype, name)
     if stats.cross is not None:
-        return _refit(W64, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha,
-                      left)
+        return _refit(W64, stats, fit, center, rank, seed, out_dtype, name, left)
     C, mu = _moments(stats, center and not stats.is_diagonal)
     diag = stats.diagonal if C is None else C.diagonal()
-    lam = _ridge_for(stats, diag, ridge)
-    if method == "whiten":
-        Z = W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam)  # (m, n) = W L
+    lam = _ridge_for(stats, diag, fit.ridge)
+    if fit.method == "whiten":
+        Z = _whitened(W64, C, diag, lam)  # (m, n) = W L
         if left is not None:
             Z = left[0] @ Z  # (m, n) = R W L
-        spec = decompose(Z, method=solver, rank=rank, seed=seed, precision="float64", name=name)
+        spec = decompose(Z, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
         energy, total = spec.energies(), spec.total_energy
     else:
-        s = stats.abs_mean.clamp_min(0) ** alpha  # (n,) ASVD channel scales
-        s = torch.where(s > 0, s, s.max().clamp_min(1e-30) * 1e-8)  # dead channels: tiny, not zero
-        spec = decompose(W64 * s, method=solver, rank=rank, seed=seed, precision="float64", name=name)
-        M = _output_gram(W64, C, diag, lam)  # (m, m) = W (C + lam I) W^T
-        energy = ((spec.U.T @ M) * spec.U.T).sum(1).cpu().numpy()  # u_i^T M u_i
-        total = float(M.trace())
+        spec, energy, total = _scaled(W64, stats, fit, _output_gram(W64, C, diag, lam), rank, seed, name)
     return _finish(W64, spec, energy, total, 0.0, mu if center else None, mu, lam, stats.count, out_dtype,
-                   method, left=left)
+                   fit.method, left=left)
+
+
+def _whitened(W64: torch.Tensor, C: torch.Tensor | None, diag: torch.Tensor, lam: float) -> torch.Tensor:
+    """W L, L L^T = C + lam I (the diagonal's square root when only the diagonal of C is kept): (m, n)."""
+    return W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam)
+
+
+def _scaled(W64, stats: InputStats, fit: AwareFit, M: torch.Tensor, rank, seed, name):
+    """method="scale": SVD of W diag(s) (ASVD scales), energies u_i^T M u_i on M = W (C + lam I) W^T, total."""
+    s = stats.abs_mean.clamp_min(0) ** fit.alpha  # (n,) ASVD channel scales
+    s = torch.where(s > 0, s, s.max().clamp_min(1e-30) * 1e-8)  # dead channels: tiny, not zero
+    spec = decompose(W64 * s, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
+    energy = ((spec.U.T @ M) * spec.U.T).sum(1).cpu().numpy()  # u_i^T M u_i
+    return spec, energy, float(M.trace())
 
 
 def _decompose_output_side(W64, stats, fit: AwareFit, center, left, rank, seed, out_dtype, name) -> AwareSpectrum:
@@ -345,13 +351,8 @@ def _decompose_output_side(W64, stats, fit: AwareFit, center, left, rank, seed, 
         spec = decompose(Z, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
         energy, total = spec.energies(), spec.total_energy
     else:
-        s = stats.abs_mean.clamp_min(0) ** fit.alpha  # (n,) ASVD channel scales, as on the input side
-        s = torch.where(s > 0, s, s.max().clamp_min(1e-30) * 1e-8)
-        spec = decompose(W64 * s, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
-        energy = ((spec.U.T @ M) * spec.U.T).sum(1).cpu().numpy()  # u_i^T M u_i
-        total = float(M.trace())
-    return _finish(W64, spec, energy, total, 0.0, mu if center else None, mu, lam, N, out_dtype, fit.method,
-                   left=left)
+        spec, energy, total = _scaled(W64, stats, fit, M, rank, seed, name)
+    return _finish(W64, spec, energy, total, 0.0, mu if center else None, mu, lam, N, out_dtype, fit.method, left=left)
 
 
 def whitened_values(W: torch.Tensor, stats: InputStats, fit: AwareFit | None = None, *,
@@ -361,8 +362,7 @@ def whitened_values(W: torch.Tensor, stats: InputStats, fit: AwareFit | None = N
     _check_stats(W64 := torch.as_tensor(W).detach().to(torch.float64), stats, name)
     C = _moments(stats, False)[0]
     lam = _ridge_for(stats, diag := stats.diagonal if C is None else C.diagonal(), fit.ridge)
-    spec = values_only(W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam), precision="float64",
-                       name=name)  # every s_i of W L (m x n): what rank allocation needs
+    spec = values_only(_whitened(W64, C, diag, lam), precision="float64", name=name)  # every s_i of W L (m x n)
     return AwareSpectrum(spec.U, spec.S.to(compute_dtype_for(W, execution.precision)), spec.Vh, spec.total_energy,
                          "whiten", True, energy=spec.energies(), ridge=float(lam), samples=stats.count)
 
@@ -422,9 +422,9 @@ def _finish(W_target, spec, energy, total, residual, mu_ref, mu, lam, count, out
     )
 
 
-def _refit(W, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, name, method, alpha, left=None):
+def _refit(W, stats, fit: AwareFit, center, rank, seed, out_dtype, name, left=None):
     """Sequential refit: reduced-rank regression of the original outputs on the current inputs (Izenman 1975)."""
-    if method != "whiten":
+    if fit.method != "whiten":
         raise FactorizeError(f"{name}: the sequential refit needs method='whiten'", fix="use method='whiten'")
     n, N = stats.width, stats.count
     mu, mu_ref = stats.mean, stats.reference_total / max(N, 1)
@@ -437,19 +437,19 @@ def _refit(W, stats, center, ridge, refit_ridge, solver, rank, seed, out_dtype, 
         C_rx = C_rx - N * torch.outer(mu_ref, mu)
     eye = torch.eye(n, dtype=C.dtype, device=C.device)
     mean_diag = float(C.diagonal().mean()) or 1.0
-    lam_ls = refit_ridge * mean_diag
+    lam_ls = fit.refit_ridge * mean_diag
     # ridge towards the original weight: argmin ||W X_ref^T - W_t X^T||^2 + lam ||W_t - W||^2
     W_ls = torch.linalg.solve(C + lam_ls * eye, (W @ C_rx + lam_ls * W).T).T  # (m, n) = (W C_rx + lam W)(C + lam I)^-1
-    lam = _ridge_for(stats, C.diagonal(), ridge)
+    lam = _ridge_for(stats, C.diagonal(), fit.ridge)
     Z = W_ls @ _sqrt_factor(C, lam)  # (m, n)
     Rw, Rls = (W, W_ls) if left is None else (left[0] @ W, left[0] @ W_ls)
-    spec = decompose(Z if left is None else left[0] @ Z, method=solver, rank=rank, seed=seed, precision="float64",
+    spec = decompose(Z if left is None else left[0] @ Z, method=fit.solver, rank=rank, seed=seed, precision="float64",
                      name=name)
     # least-squares residual ||R(W X_ref^T - W_ls X^T)||^2 = tr(Rw C_ref Rw^T) - 2 tr(Rw C_rx Rls^T) + tr(Rls C Rls^T)
     residual = float(((Rw @ C_ref) * Rw).sum() - 2 * ((Rw @ C_rx) * Rls).sum() + ((Rls @ C) * Rls).sum())
     residual = max(residual, 0.0)
     return _finish(W_ls, spec, spec.energies(), spec.total_energy, residual, mu_ref if center else None, mu, lam,
-                   N, out_dtype, method, W_ref=W, left=left)
+                   N, out_dtype, fit.method, W_ref=W, left=left)
 
 
 # ---------------------------------------------------------------------------------------------------------------
