@@ -24,14 +24,16 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import torch
+from torch import nn
 
 from factorize.errors import FactorizeError
 from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
 from factorize.plan.entries import DENSE, entry_form, is_factored_entry
-from factorize.plan.forms import native_precision
+from factorize.plan.forms import native_precision, price_site
 from factorize.plan.policy import Policy
-from factorize.plan.ranks import choose_ranks
+from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION, choose_ranks
+from factorize.rewrite.apply import apply_plan
 from factorize.spectra.cache import SpectrumCache
 from factorize.spectra.decompose import Spectrum, decompose
 from factorize.spectra.sites import cached_leading, cached_values
@@ -117,12 +119,32 @@ def _cache_counts(cache: SpectrumCache | None) -> dict:
     return {"hits": cache.hits, "misses": cache.misses, "stored": cache.stored, "corrupt": cache.corrupt}
 
 
-def values_task(task: MatrixTask) -> dict:
-    """Budget pass 1: the singular values of one matrix (k floats; the cache, if any, keeps the whole spectrum)."""
+def _begin(task: MatrixTask) -> tuple[int, torch.Tensor]:
+    """Every matrix task's start: count the attempt (and run the test fault hook), then read the weight."""
     attempt = start_attempt(task)
     if task.fault is not None:
         task.fault(task, attempt)
-    W = _read_in_task(task)  # (out, in)
+    return attempt, _read_in_task(task)
+
+
+def _store_result(path: Path, key: str, tensors: dict, meta: dict) -> tuple[dict, float]:
+    """Write a task's result file atomically and read it back as :func:`stored_result` does."""
+    write_atomic(path, lambda tmp: write_safetensors(tmp, tensors, meta), force=True)
+    found = stored_result(path, key)
+    if found is None:
+        raise FactorizeError(f"{path}: the result just written cannot be read back",
+                             fix="check the work directory's storage")
+    return found
+
+
+def _kept_as_is(entry: dict, dtype: torch.dtype) -> bool:
+    """The plan keeps this layer dense in the checkpoint's own precision: no file to write."""
+    return entry_form(entry) == DENSE and entry.get("precision") in (None, native_precision(dtype))
+
+
+def values_task(task: MatrixTask) -> dict:
+    """Budget pass 1: the singular values of one matrix (k floats; the cache, if any, keeps the whole spectrum)."""
+    attempt, W = _begin(task)  # W: (out, in)
     cache = _task_cache(task)
     if task.values_first:  # as compress(): every singular value without vectors, from the Gram matrix
         values = cached_values(W, cache, precision=task.precision, name=task.site.name)
@@ -137,10 +159,7 @@ def factors_task(task: MatrixTask) -> dict:
     directory as ``<key>.factors.safetensors`` (``first`` = A (r, in), ``second`` = B (out, r), in the weight's
     dtype) with the plan entry and the measured relative error in its metadata. A result already there (same
     content, same options) is reused."""
-    attempt = start_attempt(task)
-    if task.fault is not None:
-        task.fault(task, attempt)
-    W = _read_in_task(task)  # (out, in)
+    attempt, W = _begin(task)  # W: (out, in)
     decide = {"entry": task.entry} if task.entry is not None else \
         {"policy": task.policy.to_dict(), "module": task.site.name}  # per-layer rules may name the layer
     if task.values is not None:
@@ -169,11 +188,7 @@ def factors_task(task: MatrixTask) -> dict:
             tensors, error = {"first": A, "second": B}, relative_error(W, B, A)
         meta = {"factorize.key": key, "factorize.entry": json.dumps(entry, sort_keys=True),
                 "factorize.relative_error": float(error).hex()}
-        write_atomic(path, lambda tmp: write_safetensors(tmp, tensors, meta), force=True)
-        found = stored_result(path, key)
-        if found is None:
-            raise FactorizeError(f"{path}: the result just written cannot be read back",
-                                 fix="check the work directory's storage")
+        found = _store_result(path, key, tensors, meta)
         cached = False
     else:
         cached = True
@@ -188,12 +203,7 @@ def price_task(task: MatrixTask) -> dict:
     and corrected at each allowed precision, priced in stored bytes with their predicted errors
     (:func:`factorize.plan.forms.price_site`, the plain error measure: there is no calibration here) -- and its
     spectrum without vectors (what the plan rows read). As :func:`factorize.compress` prices a layer."""
-    from factorize.plan.forms import price_site
-
-    attempt = start_attempt(task)
-    if task.fault is not None:
-        task.fault(task, attempt)
-    W = _read_in_task(task)  # (out, in)
+    attempt, W = _begin(task)  # W: (out, in)
     cache = _task_cache(task)
     spec = spectrum_for(W, task.site, task.method, None, task.seed, task.precision, cache)
     candidates, scale, notes = price_site(task.site, W, spec, task.policy)
@@ -212,10 +222,7 @@ def forms_task(task: MatrixTask) -> dict:
     (suffixes such as ``first.stored_weight.q``; their order in the metadata), with the relative weight error of
     the stored form. A layer the plan keeps dense in its own precision needs no file. A result already there is
     reused."""
-    attempt = start_attempt(task)
-    if task.fault is not None:
-        task.fault(task, attempt)
-    W = _read_in_task(task)  # (out, in)
+    attempt, W = _begin(task)  # W: (out, in)
     bias = None
     if task.bias_name is not None:
         bias = _read_in_task(dataclasses.replace(task, shard=task.bias_shard, name=task.bias_name))
@@ -231,14 +238,10 @@ def forms_task(task: MatrixTask) -> dict:
         tensors, error = _stored_forms(W, bias, task, cache)
         meta = {"factorize.key": key, "factorize.entry": json.dumps(task.entry, sort_keys=True),
                 "factorize.relative_error": float(error).hex(), FORMS_KEY: json.dumps(list(tensors))}
-        write_atomic(path, lambda tmp: write_safetensors(tmp, tensors, meta), force=True)
-        found = stored_result(path, key)
-        if found is None:
-            raise FactorizeError(f"{path}: the result just written cannot be read back",
-                                 fix="check the work directory's storage")
+        found = _store_result(path, key, tensors, meta)
     remove_quietly(task.marker())
     entry, error = found
-    kept = entry_form(entry) == DENSE and entry.get("precision") in (None, native_precision(W.dtype))
+    kept = _kept_as_is(entry, W.dtype)
     return {"entry": entry, "relative_error": error, "file": None if kept else str(path), "attempts": attempt,
             "cached": cached, "cache": _cache_counts(cache)}
 
@@ -251,13 +254,8 @@ def _stored_forms(W: torch.Tensor, bias: torch.Tensor | None, task: MatrixTask,
                   cache: SpectrumCache | None) -> tuple[dict[str, torch.Tensor], float]:
     """(the layer's state dict in its planned form, ||W - W_stored||_F / ||W||_F); nothing for a layer kept as it
     is. The spectrum is the one pass 1 priced (same method, seed and precision; from the cache when given)."""
-    from torch import nn
-
-    from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
-    from factorize.rewrite.apply import apply_plan
-
     entry = task.entry
-    if entry_form(entry) == DENSE and entry.get("precision") in (None, native_precision(W.dtype)):
+    if _kept_as_is(entry, W.dtype):
         return {}, 0.0
     m, n = W.shape
     layer = nn.Linear(n, m, bias=bias is not None, dtype=W.dtype)
