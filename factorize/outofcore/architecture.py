@@ -31,7 +31,7 @@ from factorize.errors import FactorizeError, printable
 from factorize.model.sites import is_transposed_projection, walk
 from factorize.outofcore.candidates import Candidate
 from factorize.plan.policy import Policy
-from factorize.storage import read_tensor
+from factorize.storage import read_rows, read_tensor
 
 # model_type values checked block by block against transformers' own model classes (tests/outofcore/
 # test_blockwise_families.py); any other family whose blocks the search below finds runs too
@@ -199,12 +199,13 @@ def block_candidates(arch: Architecture, names: list[str]) -> list[Candidate]:
 
 
 def fill_from_checkpoint(arch: Architecture, module: torch.nn.Module, prefix: str, *, recurse: bool = True,
-                         missing_ok: bool = False) -> list[str]:
+                         missing_ok: bool = False, rows: dict[str, torch.Tensor] | None = None) -> list[str]:
     """Materialise ``module`` (a meta-device part of ``arch.model`` named ``prefix``; only its own tensors unless
     ``recurse``) on the CPU in float32: its buffers from the model's own initialisation (rotary frequencies,
     position ids), then every parameter and persistent buffer the checkpoint holds, read one tensor at a time.
     A parameter missing from the checkpoint is an error, or with ``missing_ok`` filled with NaN (so that any use
-    shows) and returned by name."""
+    shows) and returned by name. A tensor named in ``rows`` gets only those rows of the stored one (sorted
+    indices; the module's tensor must already have that many rows)."""
     init = getattr(arch.model, "_init_weights", None)
     missing: list[str] = []
     subs = module.named_modules() if recurse else [("", module)]
@@ -221,7 +222,9 @@ def fill_from_checkpoint(arch: Architecture, module: torch.nn.Module, prefix: st
             for n, tensor, is_param in own:
                 full = f"{name}.{n}" if name else n
                 h = arch.where.get(full)
-                if h is not None:
+                if h is not None and rows is not None and full in rows:
+                    tensor.copy_(read_rows(h.path, full, rows[full]))
+                elif h is not None:
                     tensor.copy_(read_tensor(h.path, full))  # the stored dtype (e.g. bfloat16) cast to float32
                 elif is_param:
                     missing.append(full)

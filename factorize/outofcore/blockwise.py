@@ -57,7 +57,8 @@ the partial moments in slice order. Results are identical across engines and tas
 count on the same kind of machine (float rounding of the float32 block forward depends on the CPU's kernels).
 
 Memory: the client holds the parts of the model outside its blocks (except the output head) in float32 while it
-embeds (the token embedding is vocab x hidden: for a large vocabulary this can exceed one block), then at most one
+embeds, of the token embedding only the rows of the calibration's distinct token ids (read a few thousand rows
+at a time: a 256k-token table is never whole in memory), then at most one
 group's moment (n x n float64; three of them with ``sequential``) and the whitening work for one projection
 (about three n x n float64 matrices, see :mod:`factorize.calibrated.aware`); a task holds one block in float32
 (two with ``sequential``: the original and the compressed one), its slice's hidden states in and out, and the
@@ -398,7 +399,7 @@ def _embed(run: _Run, pieces, out: Path, extras: Path) -> None:
     arch = run.arch
     out.mkdir()
     extras.mkdir()
-    stem = Stem(arch)
+    stem = Stem(arch, torch.cat([ids.reshape(-1) for ids, _ in run.batches]))  # only these embedding rows
     for j, piece in enumerate(pieces):
         tensors, extra, described = {}, {}, {}
         k = 0

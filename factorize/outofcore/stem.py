@@ -7,8 +7,10 @@ masks with padding) is run by the model's own forward, not re-implemented here:
 
 1. a copy of the meta-device model (:mod:`factorize.outofcore.architecture`) gets its blocks swapped for
    recorders, and everything outside the blocks except the output head is materialised on the CPU in float32
-   from the checkpoint (the token embedding, position embeddings, norms: small beside one block, except the
-   embedding table, which is vocab x hidden);
+   from the checkpoint (position embeddings, norms: small beside one block). The token embedding table is vocab
+   x hidden (256k x 2048 in float32 is 2.1 GB, more than a block), so when the calibration's token ids are
+   given only their rows are read (:func:`factorize.storage.read_rows`) and a hook on the embedding module maps
+   each id to its row: the module's own forward (a scale, a padding index) still runs, on the ids' rows;
 2. each batch goes through the model's (base model's) forward: every recorder keeps the arguments its block
    would have received and passes the hidden states on unchanged; the last one stops the pass, so the final
    norm and the head never run;
@@ -68,9 +70,12 @@ class _Recorder(torch.nn.Module):
 class Stem:
     """The model outside its blocks, on the CPU, with recorders in place of the blocks (built once per run)."""
 
-    def __init__(self, arch: Architecture) -> None:
+    def __init__(self, arch: Architecture, tokens: torch.Tensor | None = None) -> None:
+        """``tokens``: every token id :meth:`run` will see (any order, repeats allowed); with them only those rows
+        of the token embedding are materialised. Without them, the whole table."""
         self.arch = arch
         model = copy.deepcopy(arch.model)  # meta: no values copied
+        rows = _compact_embedding(model, tokens)
         layers = model.get_submodule(arch.prefix)
         self.calls: dict[int, tuple] = {}
         self.missing: list[str] = []  # parameters outside the blocks the checkpoint lacks (NaN; an error if used)
@@ -83,7 +88,7 @@ class Stem:
             if isinstance(module, _Recorder) or (skip is not None and (name == skip or name.startswith(skip + "."))):
                 continue
             if any(True for _ in module.parameters(recurse=False)) or any(True for _ in module.buffers(recurse=False)):
-                self.missing += fill_from_checkpoint(arch, module, name, recurse=False, missing_ok=True)
+                self.missing += fill_from_checkpoint(arch, module, name, recurse=False, missing_ok=True, rows=rows)
         base = getattr(model, "base_model", model)
         self.model = base.eval()
         params = inspect.signature(base.forward).parameters
@@ -117,6 +122,33 @@ class Stem:
         extras = [(self.calls[i][0][1:], self.calls[i][1]) for i in range(self.arch.blocks)]
         self.calls.clear()
         return h, extras
+
+
+def _compact_embedding(model: torch.nn.Module, tokens: torch.Tensor | None) -> dict[str, torch.Tensor]:
+    """Shrink the (meta) token embedding of ``model`` to the rows of ``tokens`` and hook it so that each id looks
+    up its row; returns {weight name: sorted distinct ids} for :func:`fill_from_checkpoint`. Nothing changes
+    (an empty dict) without ``tokens`` or for an embedding that is not an ``nn.Embedding``."""
+    emb = model.get_input_embeddings() if hasattr(model, "get_input_embeddings") else None
+    if tokens is None or not isinstance(emb, torch.nn.Embedding):
+        return {}
+    ids = torch.unique(tokens.reshape(-1).long())  # sorted
+    if len(ids) == 0 or int(ids[0]) < 0 or int(ids[-1]) >= emb.num_embeddings:
+        return {}  # the model's own forward reports ids out of range
+    name = next(n for n, m in model.named_modules() if m is emb)
+    emb.weight = torch.nn.Parameter(torch.empty(len(ids), emb.embedding_dim, device="meta"), requires_grad=False)
+    emb.num_embeddings, emb.padding_idx = len(ids), None  # the padding index only shapes gradients
+    emb.register_forward_pre_hook(lambda module, args: (_row_of(ids, args[0]), *args[1:]))
+    return {f"{name}.weight" if name else "weight": ids}
+
+
+def _row_of(ids: torch.Tensor, tokens: torch.Tensor) -> torch.Tensor:
+    """The row of each token id among the sorted ``ids``; an id not among them is an error (it would read
+    another token's row)."""
+    pos = torch.searchsorted(ids, tokens).clamp_(max=len(ids) - 1)
+    if not torch.equal(ids[pos], tokens):
+        raise FactorizeError("the embedding stage was given token ids outside those it was built for",
+                             fix="report this: the calibration's ids are collected before the stage is built")
+    return pos
 
 
 # ---------------------------------------------------------------------------------------------------------------

@@ -35,6 +35,7 @@ from factorize.storage.headers import (
     check_readable_file,
     check_safetensors,
     read_header,
+    read_rows,
     read_safetensors,
     read_tensor,
     safetensors_header,
@@ -46,7 +47,7 @@ __all__ = [
     "DISK_MARGIN_BYTES", "DTYPES", "DTYPE_NAMES", "MAX_HEADER_BYTES", "TEMP_DIR_SUFFIX", "TEMP_SUFFIX", "Header",
     "TensorInfo", "check_free_space", "check_output_path", "check_readable_file", "check_safetensors", "create_temp",
     "create_temp_dir", "human_bytes", "new_temp_dir", "peak_rss", "proc_field", "process_alive",
-    "publish", "publish_dir", "read_header", "read_safetensors", "read_tensor", "remove_quietly",
+    "publish", "publish_dir", "read_header", "read_rows", "read_safetensors", "read_tensor", "remove_quietly",
     "remove_stale_dirs", "remove_stale_temps", "reset_peak_rss", "return_freed_memory", "safetensors_header",
     "write_atomic", "write_safetensors",
 ]

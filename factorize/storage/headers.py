@@ -282,3 +282,26 @@ def read_tensor(path: str | os.PathLike, name: str) -> torch.Tensor:
 
     with safe_open(str(path), framework="pt", device="cpu") as f:
         return f.get_tensor(name)
+
+
+ROWS_PER_READ = 4096  # rows of a table read at a time by read_rows (4096 x 2048 bfloat16: 16 MiB)
+
+
+def read_rows(path: str | os.PathLike, name: str, rows: torch.Tensor) -> torch.Tensor:
+    """Rows ``rows`` (sorted, distinct int64 indices) of a 2-D tensor of a safetensors file, in that order and the
+    stored dtype, reading at most ``ROWS_PER_READ`` rows at a time and only the runs of rows that hold one asked
+    for: a few rows of a large table (an embedding of 256k tokens) without the table in memory."""
+    from safetensors import safe_open
+
+    with safe_open(str(path), framework="pt", device="cpu") as f:
+        sl = f.get_slice(name)
+        shape = sl.get_shape()
+        parts = []
+        i = 0
+        while i < len(rows):
+            lo = int(rows[i]) // ROWS_PER_READ * ROWS_PER_READ
+            hi = min(lo + ROWS_PER_READ, int(shape[0]))
+            j = i + int(torch.searchsorted(rows[i:], hi))
+            parts.append(sl[lo:hi][rows[i:j] - lo].clone())  # the clone lets the chunk go
+            i = j
+        return torch.cat(parts) if parts else torch.empty((0, *shape[1:]))
