@@ -290,18 +290,22 @@ ROWS_PER_READ = 4096  # rows of a table read at a time by read_rows (4096 x 2048
 def read_rows(path: str | os.PathLike, name: str, rows: torch.Tensor) -> torch.Tensor:
     """Rows ``rows`` (sorted, distinct int64 indices) of a 2-D tensor of a safetensors file, in that order and the
     stored dtype, reading at most ``ROWS_PER_READ`` rows at a time and only the runs of rows that hold one asked
-    for: a few rows of a large table (an embedding of 256k tokens) without the table in memory."""
+    for: a few rows of a large table (an embedding of 256k tokens) without the table in memory. The file is mapped
+    anew for each run of rows, so the pages read are let go (a mapping kept open keeps every page it touched in
+    the process's resident memory)."""
     from safetensors import safe_open
 
-    with safe_open(str(path), framework="pt", device="cpu") as f:
-        sl = f.get_slice(name)
-        shape = sl.get_shape()
-        parts = []
-        i = 0
-        while i < len(rows):
+    parts, i = [], 0
+    while i < len(rows):
+        with safe_open(str(path), framework="pt", device="cpu") as f:
+            sl = f.get_slice(name)
+            shape = sl.get_shape()
             lo = int(rows[i]) // ROWS_PER_READ * ROWS_PER_READ
             hi = min(lo + ROWS_PER_READ, int(shape[0]))
             j = i + int(torch.searchsorted(rows[i:], hi))
-            parts.append(sl[lo:hi][rows[i:j] - lo].clone())  # the clone lets the chunk go
-            i = j
-        return torch.cat(parts) if parts else torch.empty((0, *shape[1:]))
+            parts.append(sl[lo:hi][rows[i:j] - lo].clone())  # the clone lets the run of rows go
+        i = j
+    if parts:
+        return torch.cat(parts)
+    with safe_open(str(path), framework="pt", device="cpu") as f:
+        return f.get_tensor(name)[:0].clone()
