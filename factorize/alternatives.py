@@ -31,7 +31,7 @@ from factorize.measure.evaluate import evaluate
 from factorize.model.sites import get_module, matrix_of
 from factorize.pipeline import compress
 from factorize.plan.entries import FACTOR, plan_entries
-from factorize.plan.forms import factor_bytes, native_precision
+from factorize.plan.forms import dense_shape, factor_bytes, native_precision
 from factorize.plan.policy import Override, Policy
 from factorize.plan.ranks import PLAN_FORMAT, PRECISION_PLAN_VERSION
 from factorize.rewrite.apply import CompressResult, apply_plan, validate_plan
@@ -172,7 +172,7 @@ def int8_alternative(model: nn.Module, plan: Mapping, batches: list, *, calibrat
         rows[name] = {**{k: v for k, v in row.items() if k in ("kind", "shape", "params", "kernel")},
                       "rank": None, "action": "dense", "reason": "int8 alternative", "params_after": row["params"],
                       "precision": precision, "bytes": stored_bytes(native, tuple(row["shape"])),
-                      "bytes_after": stored_bytes(precision, tuple(row["shape"]))}
+                      "bytes_after": stored_bytes(precision, dense_shape(row["kind"], tuple(row["shape"])))}
     int8_plan = {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": plan.get("method", "exact"),
                  "policy": {"precisions": ["int8"]}, "sites": rows}
     H = hessians(calibration) if calibration is not None else None

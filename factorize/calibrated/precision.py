@@ -30,22 +30,27 @@ Calibration = Any  # factorize.calibrated.search.Calibration (which imports this
 
 def layer_metric(calib: Calibration, name: str) -> LayerMetric:
     """The output-weighted error measure of layer ``name``, on the scale the allocator uses."""
-    spec, stats = calib.spectra[name], calib.stats[name]
-    if stats.is_diagonal or stats.is_output_side:
-        C = stats.moment_diagonal().to(torch.float64) + spec.ridge  # (n,) token counts, or diag C (output side)
-    else:
-        C = stats.moment().to(torch.float64)
-        C = C + spec.ridge * torch.eye(C.shape[0], dtype=C.dtype, device=C.device)  # (n, n)
     G = None
     if calib.output_grams is not None:
         G = calib.output_grams[name].to(torch.float64)
         mu = calib.fit.output_ridge * float(G.diagonal().mean())
         G = G + (mu if mu > 0 else 1.0) * torch.eye(G.shape[0], dtype=G.dtype, device=G.device)  # (m, m)
-    scale = (calib.error_scale or {}).get(name)
+    return metric_of(calib.spectra[name], calib.stats[name], G, (calib.error_scale or {}).get(name))
+
+
+def metric_of(spec, stats, output_gram: torch.Tensor | None = None, scale: float | None = None) -> LayerMetric:
+    """trace(G' dW C' dW^T) * scale for one layer: C' = C + lambda I from its statistics and its activation-aware
+    spectrum's ridge, G' the output Gram matrix with its ridge (None: the identity), ``scale`` the allocator's
+    (None: one over the spectrum's energy, as the rank-only allocator scales it)."""
+    if stats.is_diagonal or stats.is_output_side:
+        C = stats.moment_diagonal().to(torch.float64) + spec.ridge  # (n,) token counts, or diag C (output side)
+    else:
+        C = stats.moment().to(torch.float64)
+        C = C + spec.ridge * torch.eye(C.shape[0], dtype=C.dtype, device=C.device)  # (n, n)
     if scale is None:
         total = spec.total_energy + spec.residual
         scale = 1.0 / total if total > 0 else 0.0
-    return LayerMetric(C, G, scale)
+    return LayerMetric(C, output_gram, scale)
 
 
 def calibrated_bytes_plan(calib: Calibration, policy: Policy, priced: dict) -> dict:

@@ -3,7 +3,8 @@
 :func:`block_slice_task` runs one slice of hidden states through one block, accumulating every selected linear's
 input second moment C = X^T X in float64 (q/k/v share one input and gate/up another: each distinct input is
 accumulated once) and writing the block's outputs for the next block. :func:`factor_task` gives one linear's
-factors at its planned rank from its weight and its group's summed moment. Each task pins torch's thread count
+factors at its planned rank from its weight and its group's summed moment (with a budget in bytes: the layer in
+its planned stored form, factored, rounded or rounded plus a correction). Each task pins torch's thread count
 (:func:`factorize.threads.torch_threads`), so the arithmetic is the same on every engine.
 """
 
@@ -21,6 +22,8 @@ from factorize.calibrated.stats import InputStats, accumulate, check_finite, inp
 from factorize.model.hooks import forward_pre_hooks
 from factorize.outofcore.architecture import Architecture, architecture, kind_of, materialise_block
 from factorize.outofcore.stem import decode_extras
+from factorize.outofcore.tasks import FORMS_KEY, stored_error, stored_state
+from factorize.plan.entries import is_factored_entry
 from factorize.storage import read_tensor, write_safetensors
 from factorize.threads import torch_threads
 
@@ -143,8 +146,10 @@ class FactorTask:
     precision: str | None
     output: str
     threads: int
+    entry: dict | None = None  # a bytes plan's entry (cost="bytes"): the layer's stored form, not plain factors
 
 
+ERROR_KEY = "factorize.relative_error"  # a stored form's ||W - W_stored||_F / ||W||_F (float.hex) in its metadata
 PACK_ROWS = 256  # rows compared at a time by the symmetry check of :func:`packed_upper`
 
 
@@ -199,8 +204,50 @@ def _factors_of_linear(task: FactorTask) -> str:
     if kind_of(arch, task.module) == "transposed":
         W = W.t()
     st = read_stats(task.moment, task.module)
+    if task.entry is not None:
+        return _stored_form_of_linear(task, arch, W, st)
     spec = decompose_aware(W, st, method=task.method, solver=task.solver, ridge=task.ridge, rank=task.rank,
                            seed=task.seed, precision=task.precision, name=task.module)
     B, A = spec.factors(min(task.rank, spec.computed_rank))  # (out, r), (r, in)
     save_work_file({"first": A.to(W.dtype).contiguous(), "second": B.to(W.dtype).contiguous()}, task.output)
     return task.output
+
+
+def _stored_form_of_linear(task: FactorTask, arch: Architecture, W: torch.Tensor, st: InputStats) -> str:
+    """One linear in its bytes plan entry's stored form (:func:`factorize.outofcore.tasks.stored_state`): the
+    whitened factors at the planned rank (a factored entry), rounded with error feedback on the group's input
+    moment as the in-memory calibrated ``compress(cost="bytes")`` rounds; the layer's state dict (bias included)
+    and its relative weight error go to ``task.output``."""
+    entry = task.entry
+    spectrum = None
+    if is_factored_entry(entry):
+        spectrum = decompose_aware(W, st, method=task.method, solver=task.solver, ridge=task.ridge,
+                                   rank=task.rank, seed=task.seed, precision=task.precision, name=task.module)
+    bias_name = task.module + ".bias"
+    bias = read_tensor(arch.where[bias_name].path, bias_name) if bias_name in arch.where else None
+    transposed = kind_of(arch, task.module) == "transposed"
+    layer = _layer_holding(W, bias, transposed)
+    state, built = stored_state(layer, entry, spectrum=spectrum, hessian=st.moment(), method=task.method)
+    # a transposed projection kept dense stores its (in, out) weight; factors are (out, r) and (r, in) either way
+    error = stored_error(W.t() if transposed and not is_factored_entry(entry) else W, built)
+    save_work_file(state, task.output, {FORMS_KEY: json.dumps(list(state)), ERROR_KEY: float(error).hex()})
+    return task.output
+
+
+def _layer_holding(W: torch.Tensor, bias: torch.Tensor | None, transposed: bool) -> torch.nn.Module:
+    """A stand-alone layer of the projection's own class holding ``W`` ((out, in) view) and ``bias``: an
+    ``nn.Linear``, or transformers' ``Conv1D`` (weight stored (in, out)) for a transposed projection."""
+    m, n = W.shape
+    if transposed:
+        from transformers.pytorch_utils import Conv1D
+
+        layer = Conv1D(m, n).to(W.dtype)
+        target = W.t()
+    else:
+        layer = torch.nn.Linear(n, m, bias=bias is not None, dtype=W.dtype)
+        target = W
+    with torch.no_grad():
+        layer.weight.copy_(target)
+        if bias is not None:
+            layer.bias.copy_(bias)
+    return layer

@@ -86,6 +86,7 @@ from safetensors import safe_open
 from tqdm.auto import tqdm
 
 from factorize.calibrated.aware import AwareFit, AwareSpectrum, decompose_aware, whitened_values
+from factorize.calibrated.precision import metric_of
 from factorize.calibrated.stats import InputStats
 from factorize.checkpoints.files import Checkpoint
 from factorize.choices import calibrated_methods
@@ -96,6 +97,7 @@ from factorize.measure.factors import relative_error
 from factorize.model.sites import Site
 from factorize.outofcore.architecture import Architecture, block_candidates, block_linears, check_source
 from factorize.outofcore.block_tasks import (
+    ERROR_KEY,
     BlockTask,
     FactorTask,
     block_slice_task,
@@ -108,9 +110,11 @@ from factorize.outofcore.options import BlockwiseOptions, split_keywords
 from factorize.outofcore.refit_tasks import PairTask, pair_task
 from factorize.outofcore.results import BlockwiseShrink
 from factorize.outofcore.stem import Stem, dumps, encode_extras
+from factorize.outofcore.tasks import kept_as_is
 from factorize.outofcore.tokens import slice_plan, token_batches
 from factorize.outofcore.writer import CheckpointWriter, plan_bound
 from factorize.plan.entries import factored_entries, is_factored_entry
+from factorize.plan.forms import Priced, joint_plan, layer_budget, native_precision, price_site
 from factorize.plan.policy import Policy, rank_needed, resolve_policy
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.storage import (
@@ -146,6 +150,7 @@ class _Run:
     options: BlockwiseOptions
     order: dict = dataclasses.field(default_factory=dict)  # block -> its groups' leaders, in call order
     group_of: dict = dataclasses.field(default_factory=dict)  # projection -> its group's leader (shared input)
+    priced: dict = dataclasses.field(default_factory=dict)  # cost="bytes": projection -> (candidates, scale, notes)
 
     @property
     def sites(self) -> list[Site]:
@@ -154,6 +159,11 @@ class _Run:
     @property
     def source(self) -> str:
         return str(self.arch.directory.resolve())
+
+    @property
+    def bytes(self) -> bool:
+        """A budget in stored bytes: rank and stored precision chosen together (:mod:`factorize.plan.forms`)."""
+        return self.policy.cost == "bytes"
 
 
 def shrink_blockwise(
@@ -174,8 +184,9 @@ def shrink_blockwise(
         policy: a :class:`~factorize.plan.policy.Policy` or its keywords (``budget=0.5``, ``rank=``, ``energy=``,
             ``keep=``, ``multiple``, ``include`` / ``exclude`` on qualified linear names such as
             ``model.layers.*.mlp.*``); ``method`` ``"whiten"`` (default) or ``"scale"``, or a solver for the
-            whitened matrix (``"gram"`` default). Only the linears inside the blocks are factored; the embedding,
-            the final norm and the output head are copied.
+            whitened matrix (``"gram"`` default); ``cost="bytes"`` with ``precisions`` chooses rank and stored
+            precision together under a budget in stored bytes (docs/precision.md, "Out of core"). Only the
+            linears inside the blocks are factored; the embedding, the final norm and the output head are copied.
         options: a :class:`~factorize.outofcore.options.BlockwiseOptions`, or its fields as keywords:
             ``cluster`` (where the tasks run, :func:`factorize.cluster.open_engine`: None for this process, or an
             :class:`~factorize.cluster.Engine`; with a cluster, ``work_dir`` must be on storage every worker
@@ -249,8 +260,13 @@ def shrink_blockwise(
 
 
 def _check_options(policy: Policy, options: BlockwiseOptions) -> None:
-    if policy.cost != "params":
-        raise FactorizeError("cost='macs' is not available block by block", fix="use cost='params' (the default)")
+    if policy.cost not in ("params", "bytes"):
+        raise FactorizeError(f"cost={policy.cost!r} is not available block by block: the whole model never runs "
+                             "here, so its time and multiply-accumulates are not measured",
+                             fix="use cost='params' (the default) or cost='bytes'")
+    if policy.cost == "bytes" and options.sequential:
+        raise FactorizeError("sequential=True refits factors in their own precision; it cannot be combined with "
+                             "stored precisions (a budget in bytes)", fix="drop sequential=True, or use cost='params'")
     slices, tokens_per_pass = options.slices, options.tokens_per_pass
     if not isinstance(slices, int) or isinstance(slices, bool) or slices < 1:
         raise FactorizeError(f"slices={slices!r}: expected a positive integer", fix="use e.g. slices=8")
@@ -270,7 +286,7 @@ def _sizes(arch: Architecture, batches, chosen: list[Candidate]) -> dict[str, in
 def _shrink(run: _Run, src: Path, dst: Path) -> tuple[dict, dict]:
     """Statistics, plan, factors and the write; returns (plan, what was written)."""
     spectra, samples, groups = _statistics(run)
-    plan = choose_ranks(run.sites, spectra, run.policy, method=run.aware)
+    plan = _bytes_plan(run, spectra) if run.bytes else choose_ranks(run.sites, spectra, run.policy, method=run.aware)
     batches = run.batches
     plan["calibration"] = {"method": run.aware, "solver": run.solver, "blockwise": True,
                            "sequential": run.options.sequential,
@@ -280,6 +296,23 @@ def _shrink(run: _Run, src: Path, dst: Path) -> tuple[dict, dict]:
                            "slices": len(slice_plan(batches, run.options.slices)), "threads": run.options.threads}
     factors = _refit(run, plan) if run.options.sequential else _factors(run, plan, groups)
     return plan, _write(run, src, dst, plan, factors)
+
+
+def _bytes_plan(run: _Run, spectra: Mapping[str, AwareSpectrum]) -> dict:
+    """The joint plan of rank and stored precision under a budget in bytes, from every projection's candidate
+    forms priced in the statistics pass (:func:`factorize.plan.forms.joint_plan`, as the in-memory calibrated
+    ``compress(cost="bytes")`` plans). The in-memory path also measures "every layer rounded" against the joint
+    plan on the calibration batches and keeps the better; that needs the whole model to run, so it is not done
+    here (the plan records ``"checked": null``)."""
+    names = [s.name for s in run.sites]
+    priced = Priced(candidates={n: run.priced[n][0] for n in names},
+                    natives={c.module: native_precision(c.weight.torch_dtype) for c in run.chosen},
+                    scales={n: run.priced[n][1] for n in names},
+                    notes={n: run.priced[n][2] for n in names if run.priced[n][2]})
+    plan = joint_plan(run.sites, priced, spectra, layer_budget(run.sites, priced, run.policy),
+                      policy=run.policy.to_dict(), method=run.aware)
+    plan["selection"]["checked"] = None
+    return plan
 
 
 def _statistics(run: _Run) -> tuple[dict[str, AwareSpectrum], dict[str, int], dict[str, str]]:
@@ -331,7 +364,15 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
         for name in [n for n in mine if block_groups.get(n) == leader]:
             groups[name] = str(path)
             samples[name] = st.count
-            W = next(c for c in run.chosen if c.module == name).read_matrix()  # (out, in)
+            c = next(c for c in run.chosen if c.module == name)
+            W = c.read_matrix()  # (out, in), the checkpoint's dtype
+            if run.bytes:  # every candidate form priced in the layer's calibrated metric: needs the vectors now
+                spec = decompose_aware(W, st, method=run.aware, solver=run.solver, ridge=run.options.ridge,
+                                       seed=run.policy.seed, precision=run.options.precision, name=name)
+                run.priced[name] = price_site(c.site, W, spec, run.policy, metric_of(spec, st))
+                spectra[name] = spec.without_vectors()
+                del W, spec
+                continue
             if run.aware == "whiten" and run.solver == "gram":  # values first: vectors only in the factor step
                 spectra[name] = whitened_values(W, st, AwareFit(ridge=run.options.ridge), name=name,
                                                 execution=Execution(precision=run.options.precision))
@@ -427,20 +468,24 @@ def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
     as the plan is known, each block's as soon as its factors are written."""
     (run.work / "factors").mkdir()
     o = run.options
-    entries = list(factored_entries(plan))
-    needed = {groups[e.name] for e in entries}
+    if run.bytes:  # every layer not kept as it is: factored, rounded, or rounded plus a correction
+        dtypes = {c.module: c.weight.torch_dtype for c in run.chosen}
+        todo = {n: (int(e["rank"] or 0), e) for n, e in plan["sites"].items() if not kept_as_is(e, dtypes[n])}
+    else:
+        todo = {e.name: (int(e.rank), None) for e in factored_entries(plan)}
+    needed = {groups[n] for n in todo}
     for path in set(groups.values()) - needed:
         Path(path).unlink(missing_ok=True)
     out: dict[str, str] = {}
     for i in range(run.arch.blocks):
-        mine = [e for e in entries if e.name.startswith(f"{run.arch.prefix}.{i}.")]
-        tasks = [FactorTask(run.source, e.name, groups[e.name], int(e.rank), run.aware, run.solver, o.ridge,
-                            run.policy.seed, o.precision, str(run.work / "factors" / f"{e.name}.safetensors"),
-                            o.threads) for e in mine]
+        mine = [n for n in todo if n.startswith(f"{run.arch.prefix}.{i}.")]
+        tasks = [FactorTask(run.source, n, groups[n], todo[n][0], run.aware, run.solver, o.ridge, run.policy.seed,
+                            o.precision, str(run.work / "factors" / f"{n}.safetensors"), o.threads, todo[n][1])
+                 for n in mine]
         if tasks:
             files = run.engine.map(factor_task, tasks, label=f"block {i} factors")
             out.update({t.module: f for t, f in zip(tasks, files)})
-        for path in {groups[e.name] for e in mine}:
+        for path in {groups[n] for n in mine}:
             Path(path).unlink(missing_ok=True)  # this block's moments are consumed
     return out
 
@@ -510,6 +555,9 @@ def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, st
 
     def factors_of(c: Candidate, entry: dict) -> tuple[str | None, float]:
         path = factors.get(c.module)
+        if path is not None and run.bytes:  # a stored form: its error was measured by the task
+            with safe_open(path, framework="pt", device="cpu") as f:
+                return path, float.fromhex(f.metadata()[ERROR_KEY])
         if not is_factored_entry(entry):
             return path, 0.0
         with safe_open(path, framework="pt", device="cpu") as f:
@@ -523,7 +571,7 @@ def _write(run: _Run, src: Path, dst: Path, plan: dict, factors: Mapping[str, st
     known = set(run.arch.model.state_dict())
     drop = frozenset(n for n in run.arch.where if n not in known)
     writer = CheckpointWriter(ckpt, run.chosen, factors_of, plan_reserve=plan_bound(run.sites, run.policy),
-                              progress=run.options.progress, drop=drop)
+                              progress=run.options.progress, stored_forms=run.bytes, drop=drop)
     check_free_space(dst.parent if str(dst.parent) else Path("."), writer.planned_bytes(plan["sites"]),
                      "the shrunk checkpoint")
     tmp = new_temp_dir(dst)

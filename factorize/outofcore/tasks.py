@@ -137,7 +137,7 @@ def _store_result(path: Path, key: str, tensors: dict, meta: dict) -> tuple[dict
     return found
 
 
-def _kept_as_is(entry: dict, dtype: torch.dtype) -> bool:
+def kept_as_is(entry: dict, dtype: torch.dtype) -> bool:
     """The plan keeps this layer dense in the checkpoint's own precision: no file to write."""
     return entry_form(entry) == DENSE and entry.get("precision") in (None, native_precision(dtype))
 
@@ -241,7 +241,7 @@ def forms_task(task: MatrixTask) -> dict:
         found = _store_result(path, key, tensors, meta)
     remove_quietly(task.marker())
     entry, error = found
-    kept = _kept_as_is(entry, W.dtype)
+    kept = kept_as_is(entry, W.dtype)
     return {"entry": entry, "relative_error": error, "file": None if kept else str(path), "attempts": attempt,
             "cached": cached, "cache": _cache_counts(cache)}
 
@@ -255,7 +255,7 @@ def _stored_forms(W: torch.Tensor, bias: torch.Tensor | None, task: MatrixTask,
     """(the layer's state dict in its planned form, ||W - W_stored||_F / ||W||_F); nothing for a layer kept as it
     is. The spectrum is the one pass 1 priced (same method, seed and precision; from the cache when given)."""
     entry = task.entry
-    if _kept_as_is(entry, W.dtype):
+    if kept_as_is(entry, W.dtype):
         return {}, 0.0
     m, n = W.shape
     layer = nn.Linear(n, m, bias=bias is not None, dtype=W.dtype)
@@ -263,17 +263,28 @@ def _stored_forms(W: torch.Tensor, bias: torch.Tensor | None, task: MatrixTask,
         layer.weight.copy_(W)
         if bias is not None:
             layer.bias.copy_(bias)
+    spectrum = None
+    if is_factored_entry(entry):
+        spectrum = spectrum_for(W, task.site, task.method, None, task.seed, task.precision, cache)
+    state, built = stored_state(layer, entry, spectrum=spectrum, method=task.method)
+    return state, stored_error(W, built)
+
+
+def stored_state(layer: nn.Module, entry: dict, *, spectrum: Spectrum | None = None,
+                 hessian: torch.Tensor | None = None, method: str = "exact") -> tuple[dict[str, torch.Tensor],
+                                                                                      nn.Module]:
+    """``layer`` (holding its original weight and bias) rebuilt in the plan ``entry``'s stored form by
+    :func:`factorize.rewrite.apply.apply_plan` on a one-layer model -- the code :func:`factorize.compress` runs --
+    with the factors from ``spectrum`` (a factored entry) and error-feedback rounding on ``hessian`` (the input
+    second moment, when known): (the built layer's state dict, the built layer)."""
     holder = nn.Module()
     holder.add_module("layer", layer)
-    spectra = {}
-    if is_factored_entry(entry):
-        spectra["layer"] = spectrum_for(W, task.site, task.method, None, task.seed, task.precision, cache)
-    plan = {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": task.method, "policy": {},
+    plan = {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "method": method, "policy": {},
             "sites": {"layer": entry}}
-    apply_plan(holder, plan, spectra=spectra, inplace=True)
+    apply_plan(holder, plan, spectra={"layer": spectrum} if spectrum is not None else {}, inplace=True,
+               hessians={"layer": hessian} if hessian is not None else None)
     built = holder.layer
-    state = {k: v.detach().contiguous() for k, v in built.state_dict().items()}
-    return state, stored_error(W, built)
+    return {k: v.detach().contiguous() for k, v in built.state_dict().items()}, built
 
 
 def stored_error(W: torch.Tensor, layer) -> float:

@@ -78,6 +78,13 @@ def usable(precisions: Sequence[str], native: str) -> tuple[str, ...]:
     return (native, *[p for p in precisions if _WIDTH[p] < _WIDTH[native]])
 
 
+def dense_shape(kind: str, shape: tuple[int, int]) -> tuple[int, int]:
+    """The (rows, columns) a dense layer of ``kind`` stores and rounds by (its scales are per stored row): the matrix
+    view's own for linear and convolution weights, its transpose for the others (a transposed projection's (in, out)
+    weight, an embedding, a transposed convolution; see :func:`_rounded_as_stored`)."""
+    return shape if kind in DENSE_VIEW_KINDS else (shape[1], shape[0])
+
+
 def factor_bytes(precision: str, shape: tuple[int, int], rank: int) -> int:
     m, n = shape
     return stored_bytes(precision, (m, rank)) + stored_bytes(precision, (rank, n))
@@ -150,7 +157,8 @@ def candidates_for(
             reasons[p] = f"the weight, {why}"
             continue
         Wq = _rounded_as_stored(W64, p, hessian, site.kind)
-        out.append(Candidate(DENSE, p, None, float(stored_bytes(p, shape)), metric.error(W64, Wq)))
+        out.append(Candidate(DENSE, p, None, float(stored_bytes(p, dense_shape(site.kind, shape))),
+                             metric.error(W64, Wq)))
         if site.kind in KINDS_WITH_CORRECTION and not is_float(p):
             out += _corrected(W64, Wq, p, shape, metric)
     factor_hessian = metric.C if site.kind in VIEW_KINDS else None
@@ -218,13 +226,14 @@ def _rounding_terms(B, A, p, metric: LayerMetric, hessian) -> np.ndarray:
     return (db_norm * a_norm + b_norm * da_norm).clamp_min(0).numpy()
 
 
-def candidate_bytes(chosen: Candidate, shape: tuple[int, int]) -> int:
-    """Stored bytes of a candidate form of an (m, n) matrix view, whatever its ``cost`` counts."""
+def candidate_bytes(chosen: Candidate, shape: tuple[int, int], kind: str = "linear") -> int:
+    """Stored bytes of a candidate form of an (m, n) matrix view of a layer of ``kind``, whatever its ``cost``
+    counts."""
     if chosen.form == FACTOR:
         return factor_bytes(chosen.precision, shape, chosen.rank)
     if chosen.form == CORRECTED:
         return corrected_bytes(chosen.precision, shape, chosen.rank)
-    return stored_bytes(chosen.precision, shape)
+    return stored_bytes(chosen.precision, dense_shape(kind, shape))
 
 
 def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | None, native: str,
@@ -244,7 +253,7 @@ def entry_for(site: Site, chosen: Candidate, reason: str, spectrum: Spectrum | N
         "params_after": site.factored_params(chosen.rank) if factor else site.params,
         "precision": chosen.precision,
         "bytes": stored_bytes(native, shape),
-        "bytes_after": candidate_bytes(chosen, shape),
+        "bytes_after": candidate_bytes(chosen, shape, site.kind),
         "predicted_error": _relative(chosen.error, scale, spectrum),
     }
     if cost == "latency":
