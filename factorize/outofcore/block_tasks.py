@@ -22,7 +22,7 @@ from factorize.calibrated.stats import InputStats, accumulate, check_finite, inp
 from factorize.model.hooks import forward_pre_hooks
 from factorize.outofcore.architecture import Architecture, architecture, kind_of, materialise_block
 from factorize.outofcore.stem import decode_extras
-from factorize.outofcore.tasks import FORMS_KEY, stored_error, stored_state
+from factorize.outofcore.tasks import FORMS_KEY, layer_holding, stored_error, stored_state
 from factorize.plan.entries import is_factored_entry
 from factorize.storage import read_tensor, write_safetensors
 from factorize.threads import torch_threads
@@ -201,11 +201,12 @@ def _factors_of_linear(task: FactorTask) -> str:
     arch = architecture(task.source)
     weight = task.module + ".weight"
     W = read_tensor(arch.where[weight].path, weight)  # stored dtype, (out, in) or transposed (in, out)
-    if kind_of(arch, task.module) == "transposed":
+    transposed = kind_of(arch, task.module) == "transposed"
+    if transposed:
         W = W.t()
     st = read_stats(task.moment, task.module)
     if task.entry is not None:
-        return _stored_form_of_linear(task, arch, W, st)
+        return _stored_form_of_linear(task, arch, W, st, transposed)
     spec = decompose_aware(W, st, method=task.method, solver=task.solver, ridge=task.ridge, rank=task.rank,
                            seed=task.seed, precision=task.precision, name=task.module)
     B, A = spec.factors(min(task.rank, spec.computed_rank))  # (out, r), (r, in)
@@ -213,7 +214,8 @@ def _factors_of_linear(task: FactorTask) -> str:
     return task.output
 
 
-def _stored_form_of_linear(task: FactorTask, arch: Architecture, W: torch.Tensor, st: InputStats) -> str:
+def _stored_form_of_linear(task: FactorTask, arch: Architecture, W: torch.Tensor, st: InputStats,
+                           transposed: bool) -> str:
     """One linear in its bytes plan entry's stored form (:func:`factorize.outofcore.tasks.stored_state`): the
     whitened factors at the planned rank (a factored entry), rounded with error feedback on the group's input
     moment as the in-memory calibrated ``compress(cost="bytes")`` rounds; the layer's state dict (bias included)
@@ -225,29 +227,10 @@ def _stored_form_of_linear(task: FactorTask, arch: Architecture, W: torch.Tensor
                                    rank=task.rank, seed=task.seed, precision=task.precision, name=task.module)
     bias_name = task.module + ".bias"
     bias = read_tensor(arch.where[bias_name].path, bias_name) if bias_name in arch.where else None
-    transposed = kind_of(arch, task.module) == "transposed"
-    layer = _layer_holding(W, bias, transposed)
-    state, built = stored_state(layer, entry, spectrum=spectrum, hessian=st.moment(), method=task.method)
+    state, built = stored_state(layer_holding(W, bias, transposed), entry, spectrum=spectrum, hessian=st.moment(),
+                                method=task.method)
     # a transposed projection kept dense stores its (in, out) weight; factors are (out, r) and (r, in) either way
     error = stored_error(W.t() if transposed and not is_factored_entry(entry) else W, built)
     save_work_file(state, task.output, {FORMS_KEY: json.dumps(list(state)), ERROR_KEY: float(error).hex()})
     return task.output
 
-
-def _layer_holding(W: torch.Tensor, bias: torch.Tensor | None, transposed: bool) -> torch.nn.Module:
-    """A stand-alone layer of the projection's own class holding ``W`` ((out, in) view) and ``bias``: an
-    ``nn.Linear``, or transformers' ``Conv1D`` (weight stored (in, out)) for a transposed projection."""
-    m, n = W.shape
-    if transposed:
-        from transformers.pytorch_utils import Conv1D
-
-        layer = Conv1D(m, n).to(W.dtype)
-        target = W.t()
-    else:
-        layer = torch.nn.Linear(n, m, bias=bias is not None, dtype=W.dtype)
-        target = W
-    with torch.no_grad():
-        layer.weight.copy_(target)
-        if bias is not None:
-            layer.bias.copy_(bias)
-    return layer

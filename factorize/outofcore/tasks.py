@@ -257,17 +257,28 @@ def _stored_forms(W: torch.Tensor, bias: torch.Tensor | None, task: MatrixTask,
     entry = task.entry
     if kept_as_is(entry, W.dtype):
         return {}, 0.0
-    m, n = W.shape
-    layer = nn.Linear(n, m, bias=bias is not None, dtype=W.dtype)
-    with torch.no_grad():
-        layer.weight.copy_(W)
-        if bias is not None:
-            layer.bias.copy_(bias)
     spectrum = None
     if is_factored_entry(entry):
         spectrum = spectrum_for(W, task.site, task.method, None, task.seed, task.precision, cache)
-    state, built = stored_state(layer, entry, spectrum=spectrum, method=task.method)
+    state, built = stored_state(layer_holding(W, bias), entry, spectrum=spectrum, method=task.method)
     return state, stored_error(W, built)
+
+
+def layer_holding(W: torch.Tensor, bias: torch.Tensor | None, transposed: bool = False) -> nn.Module:
+    """A stand-alone layer of the projection's own class holding ``W`` ((out, in) view) and ``bias``: an
+    ``nn.Linear``, or transformers' ``Conv1D`` (weight stored (in, out)) for a transposed projection."""
+    m, n = W.shape
+    if transposed:
+        from transformers.pytorch_utils import Conv1D
+
+        layer, target = Conv1D(m, n).to(W.dtype), W.t()
+    else:
+        layer, target = nn.Linear(n, m, bias=bias is not None, dtype=W.dtype), W
+    with torch.no_grad():
+        layer.weight.copy_(target)
+        if bias is not None:
+            layer.bias.copy_(bias)
+    return layer
 
 
 def stored_state(layer: nn.Module, entry: dict, *, spectrum: Spectrum | None = None,

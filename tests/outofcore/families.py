@@ -4,6 +4,7 @@ own model classes from tiny configs and written with ``save_pretrained`` (safete
 
 from __future__ import annotations
 
+from collections.abc import Callable, Collection
 from pathlib import Path
 
 import torch
@@ -55,3 +56,23 @@ def write_family(transformers, kind: str, directory: Path, *, shard: str | None 
     kwargs = {"max_shard_size": shard} if shard else {}
     model.save_pretrained(directory, safe_serialization=True, **kwargs)
     return directory
+
+
+def family_getter(transformers, root: Path, sharded: Collection[str] = ()) -> Callable[[str], Path]:
+    """``get(kind)``: the family's tiny checkpoint under ``root``, written on first use (sharded for the kinds in
+    ``sharded``) -- what a module-scoped fixture hands its tests."""
+    made: dict[str, Path] = {}
+
+    def get(kind: str) -> Path:
+        if kind not in made:
+            made[kind] = write_family(transformers, kind, root / kind, shard="12KB" if kind in sharded else None)
+        return made[kind]
+
+    return get
+
+
+def outputs(model, ids) -> torch.Tensor:
+    """A model's logits (language models) or last hidden states (encoders) for token ids, without gradients."""
+    with torch.no_grad():
+        out = model(input_ids=ids)
+    return out.logits if hasattr(out, "logits") else out.last_hidden_state

@@ -32,7 +32,7 @@ from factorize.outofcore.blockwise import shrink_blockwise
 from factorize.plan.forms import joint_plan, layer_budget, price_sites
 from factorize.plan.policy import resolve_policy
 from factorize.rewrite.apply import apply_plan
-from tests.outofcore.families import VOCAB, configs, padded_calibration, write_family
+from tests.outofcore.families import VOCAB, configs, family_getter, outputs, padded_calibration
 
 transformers = pytest.importorskip("transformers")
 
@@ -51,15 +51,7 @@ def _calibration():
 
 @pytest.fixture(scope="module")
 def checkpoints(tmp_path_factory):
-    root = tmp_path_factory.mktemp("families")
-    made: dict[str, Path] = {}
-
-    def get(kind: str) -> Path:
-        if kind not in made:
-            made[kind] = write_family(transformers, kind, root / kind, shard="12KB" if kind == "bert" else None)
-        return made[kind]
-
-    return get
+    return family_getter(transformers, tmp_path_factory.mktemp("families"), ("bert",))
 
 
 @pytest.fixture(scope="module")
@@ -75,12 +67,6 @@ def shrunk(checkpoints, tmp_path_factory):
         return done[kind]
 
     return get
-
-
-def _outputs(model, ids) -> torch.Tensor:
-    with torch.no_grad():
-        out = model(input_ids=ids)
-    return out.logits if hasattr(out, "logits") else out.last_hidden_state
 
 
 def _in_memory(kind: str, directory: Path, names, budget: float, precisions):
@@ -115,7 +101,7 @@ def test_the_plan_and_the_outputs_equal_the_in_memory_calibrated_bytes_plan(kind
     loaded = factorize.load_directory(out)
     assert isinstance(loaded, configs(transformers)[kind][0])
     heldout = torch.randint(0, VOCAB, (3, 20), generator=torch.Generator().manual_seed(7))
-    want, got, dense = _outputs(in_memory, heldout), _outputs(loaded.float(), heldout), _outputs(original, heldout)
+    want, got, dense = outputs(in_memory, heldout), outputs(loaded.float(), heldout), outputs(original, heldout)
     assert torch.isfinite(got).all()
     # float32 statistics summed in another order can move a rounded code across a rounding boundary
     assert float((got - want).norm() / want.norm()) < 1e-3, kind

@@ -32,7 +32,7 @@ from factorize.outofcore.tokens import token_batches
 from factorize.plan.policy import resolve_policy
 from factorize.plan.ranks import choose_ranks
 from factorize.rewrite.apply import apply_plan
-from tests.outofcore.families import VOCAB, configs, padded_calibration, write_family
+from tests.outofcore.families import VOCAB, configs, family_getter, outputs, padded_calibration, write_family
 
 transformers = pytest.importorskip("transformers")
 
@@ -48,15 +48,7 @@ def _calibration():
 
 @pytest.fixture(scope="module")
 def checkpoints(tmp_path_factory):
-    root = tmp_path_factory.mktemp("families")
-    made: dict[str, Path] = {}
-
-    def get(kind: str) -> Path:
-        if kind not in made:
-            made[kind] = write_family(transformers, kind, root / kind, shard="12KB" if kind in SHARDED else None)
-        return made[kind]
-
-    return get
+    return family_getter(transformers, tmp_path_factory.mktemp("families"), SHARDED)
 
 
 @pytest.fixture(scope="module")
@@ -77,12 +69,6 @@ def shrunk(checkpoints, tmp_path_factory):
 def _original(kind: str, directory: Path) -> torch.nn.Module:
     cls = configs(transformers)[kind][0]
     return cls.from_pretrained(directory, dtype=torch.float32).eval()
-
-
-def _outputs(model, ids) -> torch.Tensor:
-    with torch.no_grad():
-        out = model(input_ids=ids)
-    return out.logits if hasattr(out, "logits") else out.last_hidden_state
 
 
 def test_every_family_is_found_with_its_projections(checkpoints):
@@ -146,7 +132,7 @@ def test_output_reloads_and_equals_the_same_plan_applied_in_memory(kind, checkpo
     in_memory = apply_plan(original, plan, spectra=spectra)
     g = torch.Generator().manual_seed(7)
     heldout = torch.randint(0, VOCAB, (3, 20), generator=g)
-    want, got, dense = _outputs(in_memory, heldout), _outputs(loaded.float(), heldout), _outputs(original, heldout)
+    want, got, dense = outputs(in_memory, heldout), outputs(loaded.float(), heldout), outputs(original, heldout)
     assert torch.isfinite(got).all()
     assert float((got - want).norm() / want.norm()) < 1e-4, kind  # float32 statistics in another batching
     assert float((got - dense).norm() / dense.norm()) > 1e-3  # the factors did change the model
@@ -190,10 +176,10 @@ def test_sequential_refit_equals_compress_sequential_in_memory(kind, checkpoints
     in_memory, _ = compress_sequential(original, done.plan, _calibration(), center=False)
     loaded = factorize.load_directory(out).float()
     heldout = torch.randint(0, VOCAB, (3, 20), generator=torch.Generator().manual_seed(7))
-    want, got = _outputs(in_memory, heldout), _outputs(loaded, heldout)
+    want, got = outputs(in_memory, heldout), outputs(loaded, heldout)
     assert float((got - want).norm() / want.norm()) < 1e-5, kind
     # the refit changed the factors: the output differs from the plain (first-pass) factors at the same ranks
-    plain_out = _outputs(factorize.load_directory(shrunk(kind)[0]).float(), heldout)
+    plain_out = outputs(factorize.load_directory(shrunk(kind)[0]).float(), heldout)
     assert float((got - plain_out).norm() / plain_out.norm()) > 1e-4
 
 
