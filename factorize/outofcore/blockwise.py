@@ -106,7 +106,7 @@ from factorize.outofcore.block_tasks import (
     save_work_file,
 )
 from factorize.outofcore.candidates import Candidate
-from factorize.outofcore.options import BlockwiseOptions, split_keywords
+from factorize.outofcore.options import BlockwiseOptions, check_blockwise, split_keywords
 from factorize.outofcore.refit_tasks import PairTask, pair_task
 from factorize.outofcore.results import BlockwiseShrink
 from factorize.outofcore.stem import Stem, dumps, encode_extras
@@ -209,7 +209,7 @@ def shrink_blockwise(
     options, keywords = split_keywords(BlockwiseOptions, options, keywords)
     policy = resolve_policy(policy, keywords)
     aware, solver = calibrated_methods(policy.method)
-    _check_options(policy, options)
+    check_blockwise(policy, options)
     src_path, dst_path = Path(src), Path(dst)
     arch = check_source(src_path)
     vocab = int(arch.model.get_submodule(arch.embed.rsplit(".", 1)[0]).weight.shape[0])
@@ -257,21 +257,6 @@ def shrink_blockwise(
         seconds=time.perf_counter() - started, peak_rss_bytes=peak, peak_reset=peak_reset,
         block_bytes=sizes["block_bytes"], activation_bytes=sizes["activation_bytes"], bound_bytes=bound,
         bound_met=peak <= bound)
-
-
-def _check_options(policy: Policy, options: BlockwiseOptions) -> None:
-    if policy.cost not in ("params", "bytes"):
-        raise FactorizeError(f"cost={policy.cost!r} is not available block by block: the whole model never runs "
-                             "here, so its time and multiply-accumulates are not measured",
-                             fix="use cost='params' (the default) or cost='bytes'")
-    if policy.cost == "bytes" and options.sequential:
-        raise FactorizeError("sequential=True refits factors in their own precision; it cannot be combined with "
-                             "stored precisions (a budget in bytes)", fix="drop sequential=True, or use cost='params'")
-    slices, tokens_per_pass = options.slices, options.tokens_per_pass
-    if not isinstance(slices, int) or isinstance(slices, bool) or slices < 1:
-        raise FactorizeError(f"slices={slices!r}: expected a positive integer", fix="use e.g. slices=8")
-    if not isinstance(tokens_per_pass, int) or tokens_per_pass < 1:
-        raise FactorizeError(f"tokens_per_pass={tokens_per_pass!r}: expected a positive integer")
 
 
 def _sizes(arch: Architecture, batches, chosen: list[Candidate]) -> dict[str, int | float]:

@@ -77,3 +77,20 @@ def split_keywords(kind: type[OptionsT], options: OptionsT | None,
     run = {k: v for k, v in keywords.items() if k in names}
     rest = {k: v for k, v in keywords.items() if k not in names}
     return dataclasses.replace(options if options is not None else kind(), **run), rest
+
+
+def check_blockwise(policy: Any, options: BlockwiseOptions) -> None:
+    """The block-by-block shrink's refusals of a policy (a :class:`~factorize.plan.policy.Policy`) and options,
+    before anything is read or written."""
+    if policy.cost not in ("params", "bytes"):
+        raise FactorizeError(f"cost={policy.cost!r} is not available block by block: the whole model never runs "
+                             "here, so its time and multiply-accumulates are not measured",
+                             fix="use cost='params' (the default) or cost='bytes'")
+    if policy.cost == "bytes" and options.sequential:
+        raise FactorizeError("sequential=True refits factors in their own precision; it cannot be combined with "
+                             "stored precisions (a budget in bytes)", fix="drop sequential=True, or use cost='params'")
+    slices, tokens_per_pass = options.slices, options.tokens_per_pass
+    if not isinstance(slices, int) or isinstance(slices, bool) or slices < 1:
+        raise FactorizeError(f"slices={slices!r}: expected a positive integer", fix="use e.g. slices=8")
+    if not isinstance(tokens_per_pass, int) or tokens_per_pass < 1:
+        raise FactorizeError(f"tokens_per_pass={tokens_per_pass!r}: expected a positive integer")
