@@ -1,4 +1,6 @@
-"""TODO docstring."""
+"""Output-side statistics: per layer, the Gauss-Newton matrix of the model's final output with respect to the layer's
+output (m x m), estimated with random projections and backward passes (:func:`collect_output_grams`), which weight
+a layer's output directions by how much they move the final output."""
 
 from __future__ import annotations
 

@@ -180,8 +180,9 @@ def options(args, ui: UI, *, default_budget: float | None = 0.5) -> Options:
 # sample and calibration inputs
 
 
-def sample_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None:
-    """The sample inputs named on the command line, or the model's built-in default; None when there are none."""
+def sample_inputs(args, loaded: LoadedModel, ui: UI, *, by_length: bool = True) -> SampleInputs | None:
+    """The sample inputs named on the command line, or the model's built-in default; None when there are none.
+    Sentences are grouped by length unless ``by_length`` is False (see :func:`sentences_inputs`)."""
     if args.batch_size < 1:
         raise FactorizeError(f"--batch-size must be >= 1, got {args.batch_size}", fix="e.g. --batch-size 32")
     if args.max_samples is not None and args.max_samples < 1:
@@ -190,7 +191,7 @@ def sample_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None:
         raise FactorizeError("--inputs and --random-inputs exclude each other", fix="give one of them")
     if args.inputs:
         inputs = load_inputs(args.inputs, batch_size=args.batch_size, labels_key=args.labels_key,
-                             tokenizer=loaded.tokenizer, limit=args.max_samples)
+                             tokenizer=loaded.tokenizer, limit=args.max_samples, by_length=by_length)
         source = args.inputs
     elif args.random_inputs:
         shape = parse_shape(args.random_inputs)
@@ -199,7 +200,7 @@ def sample_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None:
         inputs = random_inputs(loaded.model, shape, batch_size=args.batch_size, seed=args.seed)
         source = f"--random-inputs {args.random_inputs}"
     else:
-        inputs = _default_inputs(loaded, args)
+        inputs = _default_inputs(loaded, args, by_length)
         if inputs is None:
             return None
         source = inputs.source
@@ -236,7 +237,7 @@ def refuse_nonfinite_inputs(inputs: SampleInputs, source: str) -> None:
                              bad[:20], fix="clean the sample file (e.g. numpy.nan_to_num) or pass another one")
 
 
-def _default_inputs(loaded: LoadedModel, args) -> SampleInputs | None:
+def _default_inputs(loaded: LoadedModel, args, by_length: bool = True) -> SampleInputs | None:
     """The embedded default's held-out digits; the built-in held-out sentences for a model with a tokenizer."""
     if loaded.is_default and loaded.path is None:
         x, y = load_digits_split("test")
@@ -247,7 +248,7 @@ def _default_inputs(loaded: LoadedModel, args) -> SampleInputs | None:
     if loaded.tokenizer is not None:
         lines = list(HELDOUT_SENTENCES)[: args.max_samples]
         inputs = sentences_inputs(lines, loaded.tokenizer, batch_size=args.batch_size,
-                                  source="built-in held-out English sentences")
+                                  source="built-in held-out English sentences", by_length=by_length)
         inputs.notes.append("no --inputs given: drift is measured on built-in English sentences; pass --inputs "
                             "with text from your own domain")
         return inputs

@@ -28,7 +28,7 @@ def run(args, ui: UI) -> dict:
     if args.batch_size < 2 and not args.fixed_batch:
         raise FactorizeError(f"--batch-size {args.batch_size}: a batch of any size needs a traced batch of >= 2",
                              fix="pass --batch-size 2 or more, or --fixed-batch")
-    inputs = sample_inputs(args, loaded, ui)
+    inputs = sample_inputs(args, loaded, ui, by_length=False)  # the traced sequence length: the longest
     if inputs is None:
         raise FactorizeError("export traces the model on a sample batch, and none was given",
                              fix="pass --inputs FILE (or --random-inputs SHAPE, e.g. 2x64)")

