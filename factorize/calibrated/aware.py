@@ -72,7 +72,7 @@ from __future__ import annotations
 
 import copy
 import dataclasses
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -200,21 +200,27 @@ def _ridge_for(stats: InputStats, C_diag: torch.Tensor, ridge: float | None) -> 
     return rel * mean_diag if mean_diag > 0 else rel
 
 
-def _sqrt_factor(C: torch.Tensor, lam: float) -> torch.Tensor:
+def _sqrt_factor(C: torch.Tensor, lam: float, again: Callable[[], torch.Tensor] | None = None) -> torch.Tensor:
     """L with L L^T = C + lam I: Cholesky, or the symmetric square root when Cholesky fails (Golub & Van Loan
     sec. 4.2 and 8.1).
 
     Memory: one n x n copy besides C. The shift is added to the copy's diagonal in place and the Cholesky factor
     overwrites that copy (LAPACK's potrf works in place; ``out=`` aliasing the input is what torch passes to it),
-    so a 5632-wide input moment in float64 costs 254 MB here instead of three times that.
+    so a 5632-wide input moment in float64 costs 254 MB here instead of three times that. With ``again`` (a
+    function giving C anew: it was read from a file, or is a private copy) C itself becomes the factor, no copy at
+    all, and a failed Cholesky (which destroys its input) takes C from ``again`` for the eigen route.
     """
-    shifted = C.clone()
+    shifted = C if again is not None else C.clone()
     shifted.diagonal().add_(lam)  # C + lam I without an identity and a lam * I temporary
     info = torch.empty((), dtype=torch.int32, device=C.device)
     L, info = torch.linalg.cholesky_ex(shifted, out=(shifted, info))  # in place: L is shifted's storage
     if int(info) == 0:
         return L
-    shifted.copy_(C)  # the failed factorisation overwrote the copy: shift again, then the eigen route
+    if again is None:
+        shifted.copy_(C)  # the failed factorisation overwrote the copy: shift again, then the eigen route
+    else:
+        del C, L, shifted
+        shifted = again()  # it overwrote C itself
     shifted.diagonal().add_(lam)
     evals, evecs = torch.linalg.eigh(shifted)  # symmetric: C = V diag(e) V^T
     del shifted
@@ -226,7 +232,7 @@ def _moments(stats: InputStats, center: bool):
     mu = stats.mean
     if stats.is_diagonal:
         return None, mu  # embedding: handled by column scaling
-    C = stats.covariance() if center else stats.second_moment
+    C = stats.covariance() if center else stats.moment()
     return C, mu
 
 
@@ -306,24 +312,45 @@ def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision
         return _decompose_output_side(W64, stats, fit, center, left, rank, seed, out_dtype, name)
     if stats.cross is not None:
         return _refit(W64, stats, fit, center, rank, seed, out_dtype, name, left)
-    C, mu = _moments(stats, center and not stats.is_diagonal)
-    diag = stats.diagonal if C is None else C.diagonal()
-    lam = _ridge_for(stats, diag, fit.ridge)
     if fit.method == "whiten":
-        Z = _whitened(W64, C, diag, lam)  # (m, n) = W L
+        centred = center and not stats.is_diagonal
+        mu = stats.mean
+        scratch = _scratch_moment(stats, centred)  # C's memory becomes L: no n x n copy (a 5632-wide C is 254 MB)
+        C = scratch[0] if scratch else _moments(stats, centred)[0]
+        diag = stats.diagonal if C is None else C.diagonal()
+        lam = _ridge_for(stats, diag, fit.ridge)
+        Z = _whitened(W64, C, diag, lam, scratch[1] if scratch else None)  # (m, n) = W L
+        del C, diag, scratch  # L (in C's memory when scratch) is not needed past Z
         if left is not None:
             Z = left[0] @ Z  # (m, n) = R W L
         spec = decompose(Z, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
         energy, total = spec.energies(), spec.total_energy
     else:
+        C, mu = _moments(stats, center and not stats.is_diagonal)
+        diag = stats.diagonal if C is None else C.diagonal()
+        lam = _ridge_for(stats, diag, fit.ridge)
         spec, energy, total = _scaled(W64, stats, fit, _output_gram(W64, C, diag, lam), rank, seed, name)
     return _finish(W64, spec, energy, total, 0.0, mu if center else None, mu, lam, stats.count, out_dtype,
                    fit.method, left=left)
 
 
-def _whitened(W64: torch.Tensor, C: torch.Tensor | None, diag: torch.Tensor, lam: float) -> torch.Tensor:
-    """W L, L L^T = C + lam I (the diagonal's square root when only the diagonal of C is kept): (m, n)."""
-    return W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam)
+def _whitened(W64: torch.Tensor, C: torch.Tensor | None, diag: torch.Tensor, lam: float,
+              again: Callable[[], torch.Tensor] | None = None) -> torch.Tensor:
+    """W L, L L^T = C + lam I (the diagonal's square root when only the diagonal of C is kept): (m, n). With
+    ``again``, C's memory holds L afterwards (:func:`_sqrt_factor`)."""
+    return W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam, again)
+
+
+def _scratch_moment(stats: InputStats, center: bool) -> tuple[torch.Tensor, Callable[[], torch.Tensor]] | None:
+    """(C, how to get C again) when the whitening may overwrite C: a centred covariance is a private copy, and a
+    moment read from a file is handed over by its statistics (:meth:`InputStats.release_moment`); else None."""
+    if stats.is_diagonal:
+        return None
+    if center:
+        return stats.covariance(), stats.covariance
+    if stats.reread is not None and stats.second_moment is not None:
+        return stats.release_moment(), stats.reread
+    return None
 
 
 def _scaled(W64, stats: InputStats, fit: AwareFit, M: torch.Tensor, rank, seed, name):
@@ -360,9 +387,12 @@ def whitened_values(W: torch.Tensor, stats: InputStats, fit: AwareFit | None = N
     """:func:`decompose_aware`'s energies for "whiten" (input side, not centred, no refit), no vectors."""
     fit, execution = AwareFit.from_keywords(fit, execution, keywords)  # fit.ridge and execution.precision count
     _check_stats(W64 := torch.as_tensor(W).detach().to(torch.float64), stats, name)
-    C = _moments(stats, False)[0]
+    scratch = _scratch_moment(stats, False)  # C's memory becomes L when it can be read again
+    C = scratch[0] if scratch else _moments(stats, False)[0]
     lam = _ridge_for(stats, diag := stats.diagonal if C is None else C.diagonal(), fit.ridge)
-    spec = values_only(_whitened(W64, C, diag, lam), precision="float64", name=name)  # every s_i of W L (m x n)
+    Z = _whitened(W64, C, diag, lam, scratch[1] if scratch else None)
+    del C, diag, scratch
+    spec = values_only(Z, precision="float64", name=name)  # every s_i of W L (m x n)
     return AwareSpectrum(spec.U, spec.S.to(compute_dtype_for(W, execution.precision)), spec.Vh, spec.total_energy,
                          "whiten", True, energy=spec.energies(), ridge=float(lam), samples=stats.count)
 
@@ -428,7 +458,7 @@ def _refit(W, stats, fit: AwareFit, center, rank, seed, out_dtype, name, left=No
         raise FactorizeError(f"{name}: the sequential refit needs method='whiten'", fix="use method='whiten'")
     n, N = stats.width, stats.count
     mu, mu_ref = stats.mean, stats.reference_total / max(N, 1)
-    C = stats.second_moment  # sum x x^T (current inputs)
+    C = stats.moment()  # sum x x^T (current inputs)
     C_ref = stats.reference_moment  # sum x_ref x_ref^T
     C_rx = stats.cross  # sum x_ref x^T
     if center:

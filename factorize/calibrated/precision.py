@@ -45,8 +45,8 @@ def metric_of(spec, stats, output_gram: torch.Tensor | None = None, scale: float
     if stats.is_diagonal or stats.is_output_side:
         C = stats.moment_diagonal().to(torch.float64) + spec.ridge  # (n,) token counts, or diag C (output side)
     else:
-        C = stats.moment().to(torch.float64)
-        C = C + spec.ridge * torch.eye(C.shape[0], dtype=C.dtype, device=C.device)  # (n, n)
+        C = stats.moment().to(torch.float64, copy=True)
+        C.diagonal().add_(spec.ridge)  # (n, n) C + lambda I, with no identity and no second temporary
     if scale is None:
         total = spec.total_energy + spec.residual
         scale = 1.0 / total if total > 0 else 0.0

@@ -40,7 +40,7 @@ from __future__ import annotations
 
 import os
 import warnings
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from typing import Any
@@ -88,6 +88,10 @@ class InputStats:
     reference_moment: torch.Tensor | None = None  # (n, n) sum x_ref x_ref^T (sequential mode)
     reference_total: torch.Tensor | None = None  # (n,) sum x_ref (sequential mode)
     batches: int = 0  # batches that reached this site
+    # how to read second_moment again (it came from a file): the whitening may then overwrite the moment's memory
+    # with its Cholesky factor instead of copying it (:meth:`release_moment`); moment() reads it back when asked
+    reread: Callable[[], torch.Tensor] | None = field(default=None, repr=False, compare=False)
+    released: bool = field(default=False, repr=False, compare=False)
 
     @property
     def mean(self) -> torch.Tensor:
@@ -101,7 +105,7 @@ class InputStats:
 
     @property
     def is_diagonal(self) -> bool:
-        return self.second_moment is None and self.side == "input"
+        return self.second_moment is None and self.side == "input" and not self.released
 
     @property
     def is_output_side(self) -> bool:
@@ -111,7 +115,7 @@ class InputStats:
         """The diagonal of C (n,), on either side."""
         if self.is_output_side:
             return self.square_total
-        return self.diagonal if self.second_moment is None else self.second_moment.diagonal()
+        return self.diagonal if self.is_diagonal else self.moment().diagonal()
 
     def moment(self) -> torch.Tensor:
         """C = X^T X as a dense (n, n) matrix (built from the diagonal for an embedding)."""
@@ -120,7 +124,17 @@ class InputStats:
                 f"layer {printable(self.name)}: its statistics are on the output side (m x m); the n x n input "
                 f"moment (n = {self.width}) was never formed",
                 fix="use moment_diagonal(), or collect with side='input' where n x n fits in memory")
+        if self.released:
+            self.second_moment, self.released = self.reread(), False
         return torch.diag(self.diagonal) if self.second_moment is None else self.second_moment
+
+    def release_moment(self) -> torch.Tensor:
+        """Hand the n x n moment's memory to the caller as scratch (only when :attr:`reread` can give it back): the
+        caller may overwrite the returned tensor; these statistics drop it and :meth:`moment` reads it again."""
+        if self.reread is None or self.second_moment is None:
+            raise FactorizeError(f"layer {printable(self.name)}: no moment to release (nothing can read it again)")
+        C, self.second_moment, self.released = self.second_moment, None, True
+        return C
 
     def covariance(self) -> torch.Tensor:
         """Centred second moment sum (x - mean)(x - mean)^T = C - N mean mean^T (n, n)."""

@@ -10,6 +10,7 @@ its planned stored form, factored, rounded or rounded plus a correction). Each t
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 from dataclasses import dataclass
@@ -175,16 +176,24 @@ def unpacked_upper(packed: torch.Tensor, n: int) -> torch.Tensor:
     return C
 
 
+def read_moment(path: str) -> torch.Tensor:
+    """The n x n input moment of a group's statistics file (stored whole or as its upper triangle)."""
+    with safe_open(path, framework="pt", device="cpu") as f:
+        if "moment.upper" in f.keys():  # noqa: SIM118 - a safe_open handle, not a dict
+            return unpacked_upper(f.get_tensor("moment.upper"), int(f.get_slice("total").get_shape()[0]))
+        return f.get_tensor("moment")
+
+
 def read_stats(path: str, name: str) -> InputStats:
-    """A group's summed statistics as the client stored them (the moment possibly as its upper triangle)."""
+    """A group's summed statistics as the client stored them (the moment possibly as its upper triangle). The
+    statistics can read their moment again (``reread``), so the whitening factors it in place instead of copying
+    it: a 5632-wide moment is 254 MB in float64."""
+    C = read_moment(path)
     with safe_open(path, framework="pt", device="cpu") as f:
         meta = f.metadata()
-        packed = "moment.upper" in f.keys()  # noqa: SIM118 - a safe_open handle, not a dict
-        C = unpacked_upper(f.get_tensor("moment.upper"), int(f.get_slice("total").get_shape()[0])) if packed \
-            else f.get_tensor("moment")
         st = InputStats(name, "linear", int(C.shape[0]), count=int(meta["count"]), second_moment=C,
                         total=f.get_tensor("total"), abs_total=f.get_tensor("abs_total"),
-                        batches=int(meta.get("batches", 0)))
+                        batches=int(meta.get("batches", 0)), reread=functools.partial(read_moment, path))
         if "cross" in f.keys():  # noqa: SIM118 - a safe_open handle, not a dict; pair statistics of the sequential refit (outofcore.refit_tasks)
             st.cross, st.reference_moment = f.get_tensor("cross"), f.get_tensor("reference_moment")
             st.reference_total = f.get_tensor("reference_total")

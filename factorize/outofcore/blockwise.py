@@ -70,6 +70,7 @@ memory of this process (``peak_rss_bytes``), the block's and the activations' si
 from __future__ import annotations
 
 import dataclasses
+import functools
 import json
 import math
 import os
@@ -103,6 +104,7 @@ from factorize.outofcore.block_tasks import (
     block_slice_task,
     factor_task,
     packed_upper,
+    read_moment,
     save_work_file,
 )
 from factorize.outofcore.candidates import Candidate
@@ -346,6 +348,7 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
         path = run.work / "moments" / f"{leader}.safetensors"
         if not run.options.sequential:  # the refit collects its own statistics
             _save_stats(st, path)
+            st.reread = functools.partial(read_moment, str(path))  # the whitening may now overwrite the moment
         for name in [n for n in mine if block_groups.get(n) == leader]:
             groups[name] = str(path)
             samples[name] = st.count
