@@ -19,6 +19,12 @@ ratios are algorithmic on a shared machine). Usage::
     python benchmarks/bench_blockwise.py --scale tiny
     python benchmarks/bench_blockwise.py --scale mid --sequences 16 --length 128
     python benchmarks/bench_blockwise.py --scale 1b --sequences 16 --length 256 [--checkpoint DIR]
+
+Other families: write the checkpoint with ``benchmarks/family_checkpoint.py`` and pass it with ``--checkpoint DIR
+--scale 1b`` (``--scale 1b`` skips the Llama-only drift check and in-memory run)::
+
+    python benchmarks/family_checkpoint.py /tmp/gpt2xl --family gpt2-xl
+    python benchmarks/bench_blockwise.py --scale 1b --checkpoint /tmp/gpt2xl --sequences 16 --length 256
 """
 
 from __future__ import annotations
@@ -92,6 +98,16 @@ def run_child(mode: str, src: Path, dst: Path, a, drift: bool = False) -> dict:
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
+def _label(a, src: Path) -> str:
+    """The checkpoint's family and size for the report: the scale of a generated Llama, or what a given checkpoint's
+    config says (``--checkpoint`` from llama_checkpoint.py or family_checkpoint.py)."""
+    if not a.checkpoint:
+        return f"scale {a.scale}"
+    cfg = json.loads((src / "config.json").read_text())
+    blocks = cfg.get("num_hidden_layers", cfg.get("n_layer"))
+    return f"{cfg.get('model_type')} ({cfg.get('architectures', ['?'])[0]}, {blocks} blocks) from {a.checkpoint}"
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--scale", choices=("tiny", "mid", "1b"), default="tiny")
@@ -134,7 +150,7 @@ def main() -> None:
         (f"Date: {dt.date.today()}. Machine: {platform.machine()}, {os.cpu_count()} visible cores, torch threads "
         f"{a.threads}; shared with other jobs."),
         "",
-        (f"Checkpoint: scale {a.scale}, {size / MB:.0f} MB bfloat16 on disk in {shards} shard(s) "
+        (f"Checkpoint: {_label(a, src)}, {size / MB:.0f} MB bfloat16 on disk in {shards} shard(s) "
          f"(generated in {gen_s:.0f} s). Calibration: {a.sequences} random sequences x {a.length} tokens; "
         f"budget {a.budget}."),
         "",

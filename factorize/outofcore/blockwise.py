@@ -59,9 +59,11 @@ count on the same kind of machine (float rounding of the float32 block forward d
 Memory: the client holds the parts of the model outside its blocks (except the output head) in float32 while it
 embeds, of the token embedding only the rows of the calibration's distinct token ids (read a few thousand rows
 at a time: a 256k-token table is never whole in memory), then at most one
-group's moment (n x n float64; three of them with ``sequential``) and the whitening work for one projection
-(about three n x n float64 matrices, see :mod:`factorize.calibrated.aware`); a task holds one block in float32
-(two with ``sequential``: the original and the compressed one), its slice's hidden states in and out, and the
+group's moment (n x n float64; three of them with ``sequential``), which the whitening of one projection
+factors in place once the moment is on disk (read again for the next projection of the group), plus the whitened
+weight (m x n); a factor task likewise holds its moment, factored in place, its weight and the spectrum's vectors
+(the 1.1B peak was this step for ``down_proj``, n = 5632: 254 MB less than with a copy); a task holds one block
+in float32 (two with ``sequential``: the original and the compressed one), its slice's hidden states in and out, and the
 block's intermediate activations for ``tokens_per_pass`` tokens. The report states the measured peak resident
 memory of this process (``peak_rss_bytes``), the block's and the activations' sizes, and the bound
 2 blocks + activations + 1 GB as a number, met or not.
