@@ -113,7 +113,7 @@ from factorize.outofcore.candidates import Candidate
 from factorize.outofcore.options import BlockwiseOptions, check_blockwise, split_keywords
 from factorize.outofcore.refit_tasks import PairTask, pair_task
 from factorize.outofcore.results import BlockwiseShrink
-from factorize.outofcore.stem import Stem, dumps, encode_extras
+from factorize.outofcore.stem import Stem, dumps, encode_extras, token_types
 from factorize.outofcore.tasks import kept_as_is
 from factorize.outofcore.tokens import slice_plan, token_batches
 from factorize.outofcore.writer import CheckpointWriter, plan_bound
@@ -143,7 +143,7 @@ class _Run:
     solver, and the options (``threads`` resolved)."""
 
     arch: Architecture
-    batches: list  # (ids, mask) token batches
+    batches: list  # (ids, mask, token types) token batches
     names: list[str]  # qualified linear names, block by block
     chosen: list[Candidate]
     engine: Engine
@@ -200,7 +200,8 @@ def shrink_blockwise(
             existing ``dst``), ``metadata`` (extra string entries for the output's metadata), ``progress``,
             ``sequential`` (refit each block to the compressed blocks upstream; ranks from the first pass).
         calibration: token ids: a (sequences, length) integer tensor, a list of them, or dicts with
-            ``input_ids`` (and an ``attention_mask`` whose padded positions are left out of the statistics).
+            ``input_ids`` (and an ``attention_mask`` whose padded positions are left out of the statistics, and
+            an encoder's ``token_type_ids`` for sentence pairs, fed to its embedding stage).
 
     Returns:
         a :class:`~factorize.outofcore.results.BlockwiseShrink`: the plan, one row per linear, the files, sizes,
@@ -217,7 +218,7 @@ def shrink_blockwise(
     src_path, dst_path = Path(src), Path(dst)
     arch = check_source(src_path)
     vocab = int(arch.model.get_submodule(arch.embed.rsplit(".", 1)[0]).weight.shape[0])
-    batches = token_batches(calibration, vocab)
+    batches = token_batches(calibration, vocab, token_types(arch))
     if dst_path.resolve() == src_path.resolve() or src_path.resolve() in dst_path.resolve().parents:
         raise FactorizeError(f"{dst_path}: is (inside) the input directory; the input is never modified",
                              fix="choose another output directory")
@@ -265,7 +266,7 @@ def shrink_blockwise(
 
 def _sizes(arch: Architecture, batches, chosen: list[Candidate]) -> dict[str, int | float]:
     """Tokens, activation and block bytes (float32), and the moments one block adds (n x n float64 each)."""
-    tokens = sum(int(ids.numel()) for ids, _ in batches)
+    tokens = sum(int(ids.numel()) for ids, *_ in batches)
     block_bytes = max(sum(math.prod(arch.where[n].tensors[n].shape) * 4 for n in arch.where
                           if n.startswith(f"{arch.prefix}.{i}.")) for i in range(arch.blocks))
     return {"tokens": tokens, "activation_bytes": tokens * int(arch.config.hidden_size) * 4,
@@ -279,8 +280,8 @@ def _shrink(run: _Run, src: Path, dst: Path) -> tuple[dict, dict]:
     batches = run.batches
     plan["calibration"] = {"method": run.aware, "solver": run.solver, "blockwise": True,
                            "sequential": run.options.sequential,
-                           "sequences": sum(int(ids.shape[0]) for ids, _ in batches),
-                           "tokens": sum(int(ids.numel()) for ids, _ in batches),
+                           "sequences": sum(int(ids.shape[0]) for ids, *_ in batches),
+                           "tokens": sum(int(ids.numel()) for ids, *_ in batches),
                            "samples": {n: samples[n] for n in run.names},
                            "slices": len(slice_plan(batches, run.options.slices)), "threads": run.options.threads}
     factors = _refit(run, plan) if run.options.sequential else _factors(run, plan, groups)
@@ -430,16 +431,17 @@ def _embed(run: _Run, pieces, out: Path, extras: Path) -> None:
     arch = run.arch
     out.mkdir()
     extras.mkdir()
-    stem = Stem(arch, torch.cat([ids.reshape(-1) for ids, _ in run.batches]))  # only these embedding rows
+    stem = Stem(arch, torch.cat([ids.reshape(-1) for ids, *_ in run.batches]))  # only these embedding rows
     for j, piece in enumerate(pieces):
         tensors, extra, described = {}, {}, {}
         k = 0
         for b, lo, hi in piece:
-            ids, mask = run.batches[b]
+            ids, mask, kinds = run.batches[b]
             step = max(1, run.options.tokens_per_pass // max(int(ids.shape[1]), 1))
             for s in range(lo, hi, step):
                 m = None if mask is None else mask[s:min(s + step, hi)].contiguous()
-                h, per_block = stem.run(ids[s:min(s + step, hi)], m)
+                h, per_block = stem.run(ids[s:min(s + step, hi)], m,
+                                        None if kinds is None else kinds[s:min(s + step, hi)])
                 tensors[f"h.{k}"] = h
                 if m is not None:
                     tensors[f"m.{k}"] = m

@@ -95,11 +95,15 @@ class Stem:
         self.flags = {k: False for k in ("use_cache", "output_attentions", "output_hidden_states") if k in params}
 
     @torch.no_grad()
-    def run(self, ids: torch.Tensor, mask: torch.Tensor | None) -> tuple[torch.Tensor, list[tuple]]:
-        """(hidden states entering block 0 (float32), per block (extra args, extra kwargs))."""
+    def run(self, ids: torch.Tensor, mask: torch.Tensor | None, kinds: torch.Tensor | None = None
+            ) -> tuple[torch.Tensor, list[tuple]]:
+        """(hidden states entering block 0 (float32), per block (extra args, extra kwargs)); ``kinds``: token
+        type ids (an encoder's sentence-pair segments), checked by :func:`factorize.outofcore.tokens.token_batches`
+        against :func:`token_types`."""
         self.calls.clear()
+        extra = {} if kinds is None else {"token_type_ids": kinds}
         try:
-            self.model(input_ids=ids, attention_mask=mask, **self.flags)
+            self.model(input_ids=ids, attention_mask=mask, **extra, **self.flags)
         except _Stop:
             pass
         except (RuntimeError, IndexError, ValueError) as err:  # the model's own checks (positions, shapes)
@@ -122,6 +126,15 @@ class Stem:
         extras = [(self.calls[i][0][1:], self.calls[i][1]) for i in range(self.arch.blocks)]
         self.calls.clear()
         return h, extras
+
+
+def token_types(arch: Architecture) -> int | None:
+    """How many token types the model's embedding stage takes (``type_vocab_size``), or None when its forward has
+    no ``token_type_ids``."""
+    base = getattr(arch.model, "base_model", arch.model)
+    if "token_type_ids" not in inspect.signature(base.forward).parameters:
+        return None
+    return int(getattr(arch.config, "type_vocab_size", 0) or 0) or None
 
 
 def _compact_embedding(model: torch.nn.Module, tokens: torch.Tensor | None) -> dict[str, torch.Tensor]:

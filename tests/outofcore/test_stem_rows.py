@@ -4,7 +4,8 @@ Checked against transformers' own model classes built from tiny configs (tests/o
 calibration's token ids given, the stage holds one row per distinct id, and the hidden states and extra inputs it
 records for the blocks equal, bit for bit, those of the stage built with the whole table (which
 tests/outofcore/test_blockwise_families.py checks against hooks on the whole model). Row reads are checked against
-plain indexing of the stored tensor."""
+plain indexing of the stored tensor. Sentence-pair token types reach the embedding stage (checked against BERT's
+own embeddings) and are checked against what the model takes."""
 
 from __future__ import annotations
 
@@ -12,8 +13,10 @@ import pytest
 import torch
 from safetensors.torch import save_file
 
+from factorize.errors import FactorizeError
 from factorize.outofcore.architecture import check_source
-from factorize.outofcore.stem import Stem
+from factorize.outofcore.stem import Stem, token_types
+from factorize.outofcore.tokens import token_batches
 from factorize.storage import headers, read_rows
 from tests.outofcore.families import VOCAB, padded_calibration, write_family
 
@@ -55,3 +58,36 @@ def test_only_the_calibrations_rows_and_the_same_block_inputs(kind, tmp_path):
         h_rows, extras_rows = rows.run(ids, mask)
         assert torch.equal(h_rows, h_whole)
         assert _same(extras_rows, extras_whole)
+
+
+def test_sentence_pair_token_types_reach_the_embedding_stage(tmp_path):
+    # outside reference: transformers' BertModel (tiny config) on the same ids and token_type_ids; its embedding
+    # output is what enters block 0 (the BERT embeddings add a token-type row to every position)
+    directory = write_family(transformers, "bert", tmp_path / "bert")
+    arch = check_source(directory)
+    model = transformers.BertModel.from_pretrained(directory).eval()
+    g = torch.Generator().manual_seed(3)
+    ids = torch.randint(0, VOCAB, (3, 10), generator=g)
+    kinds = torch.zeros(3, 10, dtype=torch.int64)
+    kinds[:, 6:] = 1  # the second sentence of each pair
+    (_, _, checked), = token_batches([{"input_ids": ids, "token_type_ids": kinds}], VOCAB, token_types(arch))
+    assert torch.equal(checked, kinds)
+    stem = Stem(arch, ids)
+    h, _ = stem.run(ids, None, checked)
+    with torch.no_grad():
+        expected = model.embeddings(input_ids=ids, token_type_ids=kinds)
+    torch.testing.assert_close(h, expected, rtol=1e-6, atol=1e-6)
+    assert not torch.allclose(stem.run(ids, None)[0], expected, atol=1e-3)  # without them, another input
+
+
+def test_token_types_are_checked_against_the_model(tmp_path):
+    bert = check_source(write_family(transformers, "bert", tmp_path / "bert"))
+    llama = check_source(write_family(transformers, "llama", tmp_path / "llama"))
+    ids = torch.randint(0, VOCAB, (2, 6), generator=torch.Generator().manual_seed(0))
+    assert token_types(bert) == 2 and token_types(llama) is None
+    zeros = {"input_ids": ids, "token_type_ids": torch.zeros_like(ids)}
+    assert token_batches([zeros], VOCAB, None)[0][2] is None  # all zeros: nothing to pass, any model
+    with pytest.raises(FactorizeError, match="takes no token types"):
+        token_batches([{"input_ids": ids, "token_type_ids": torch.ones_like(ids)}], VOCAB, token_types(llama))
+    with pytest.raises(FactorizeError, match="outside the model's 2 token types"):
+        token_batches([{"input_ids": ids, "token_type_ids": torch.full_like(ids, 2)}], VOCAB, token_types(bert))
