@@ -339,7 +339,13 @@ def _gap_estimate(kept: list[float], S: torch.Tensor, k: int) -> float:
 
 
 def _auto(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: int) -> Spectrum:
-    """Randomized where the rank needed is small and its error within 1% of optimal by the estimate; else gram."""
+    """Randomized where the rank needed is small and its error within 1% of optimal by the estimate; else gram.
+
+    When the estimate cannot vouch for the randomized factors (a flat spectrum: on MiniLM's pretrained matrices at
+    rank 32, 35 of 36), the exact route is :func:`leading` at ``rank`` (every singular value, then only the kept
+    vectors, within 1% of the optimum by the exact guard), not the full Gram eigendecomposition with every vector:
+    measured on one thread on those 36 matrices, 0.28 s against 0.98 s, and ``auto`` as a whole went from 0.87x a
+    plain SVD to faster than it."""
     m, n = w.shape
     oversample = max(oversample, rank // 2)
     if (rank + oversample) * RANDOMIZED_FRACTION > min(m, n):
@@ -349,8 +355,8 @@ def _auto(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: i
     if spec.exact or err2 == 0.0 or err2 <= (1 + AUTO_TOLERANCE) ** 2 * max(err2 - gap, 0.0):
         spec.method = "auto:randomized" if not spec.exact else spec.method
         return spec
-    out = _gram(w)
-    out.method = "auto:gram"
+    out = leading(w, rank, seed=seed)
+    out.method = f"auto:{out.method}"
     return out
 
 

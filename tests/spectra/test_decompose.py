@@ -142,11 +142,18 @@ def test_auto_stays_within_one_percent_of_optimum(decay):
         assert achieved <= 1.01 * np.sqrt((s[rank:] ** 2).sum())
 
 
-def test_auto_falls_back_to_gram_when_the_estimate_cannot_vouch():
+def test_auto_falls_back_to_an_exact_route_when_the_estimate_cannot_vouch():
     # A Gaussian matrix has a flat spectrum (Marchenko-Pastur), so subspace iteration converges slowly and the
-    # convergence estimate cannot certify 1%: auto must take the exact route.
+    # convergence estimate cannot certify 1%: auto must take an exact route -- every singular value, then the
+    # leading vectors under the exact guard (numpy's SVD is the reference for the values and the optimum).
     W = torch.randn(400, 320, generator=torch.Generator().manual_seed(6))
-    assert decompose(W, method="auto", rank=30).method == "auto:gram"
+    spec = decompose(W, method="auto", rank=30)
+    assert spec.method.startswith("auto:leading")
+    s = np.linalg.svd(W.double().numpy(), compute_uv=False)
+    np.testing.assert_allclose(spec.S.double().numpy(), s, rtol=1e-4)  # all 320 values, exact
+    assert spec.vector_rank == 30
+    achieved = np.linalg.norm(W.double().numpy() - spec.truncated(30).double().numpy())
+    assert achieved <= 1.01 * np.sqrt((s[30:] ** 2).sum())
     assert decompose(W, method="auto", rank=100).method == "gram"  # rank not well below min(m, n)
 
 
