@@ -203,14 +203,22 @@ def sentences_inputs(lines: list[str], tokenizer, *, batch_size: int = 64, max_l
                 f"{source}: the tokenizer has neither a padding nor an end-of-text token, so sentences of different "
                 "lengths cannot share a batch", fix="set tokenizer.pad_token and save the tokenizer again")
         tokenizer.pad_token = eos
-    lengths = [len(ids) for ids in tokenizer(lines, truncation=True, max_length=max_length)["input_ids"]]
-    batches = [
-        dict(tokenizer([lines[i] for i in group], padding=True, truncation=True, max_length=max_length,
-                       return_tensors="pt"))
-        for group in (length_groups(lengths, batch_size) if by_length
-                      else [list(range(i, min(i + batch_size, len(lines)))) for i in range(0, len(lines), batch_size)])
-    ]
-    return SampleInputs(batches=batches, source=f"{source}: {len(lines)} sentences", count=len(lines))
+    enc = tokenizer(lines, padding=True, truncation=True, max_length=max_length, return_tensors="pt",
+                    return_attention_mask=True)  # once: each batch is its rows, cut to its own longest
+    lengths = enc["attention_mask"].sum(1).tolist()
+    if "attention_mask" not in getattr(tokenizer, "model_input_names", ("attention_mask",)):
+        del enc["attention_mask"]  # asked for the lengths only: this model does not take it
+    groups = length_groups(lengths, batch_size) if by_length else [
+        list(range(i, min(i + batch_size, len(lines)))) for i in range(0, len(lines), batch_size)]
+    left = getattr(tokenizer, "padding_side", "right") == "left"  # the padding sits before the tokens
+
+    def batch(group: list[int]) -> dict:  # what tokenizing these sentences alone with padding=True gives
+        width, rows = max(lengths[i] for i in group), torch.tensor(group)
+        cols = slice(enc["input_ids"].shape[1] - width, None) if left else slice(0, width)
+        return {k: v[rows][:, cols].contiguous() for k, v in enc.items()}
+
+    return SampleInputs(batches=[batch(g) for g in groups], source=f"{source}: {len(lines)} sentences",
+                        count=len(lines))
 
 
 PAD_SLACK = 1.25  # a batch's longest sentence at most this many times its shortest (in tokens)
