@@ -313,14 +313,12 @@ def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision
     if stats.cross is not None:
         return _refit(W64, stats, fit, center, rank, seed, out_dtype, name, left)
     if fit.method == "whiten":
-        centred = center and not stats.is_diagonal
         mu = stats.mean
-        scratch = _scratch_moment(stats, centred)  # C's memory becomes L: no n x n copy (a 5632-wide C is 254 MB)
-        C = scratch[0] if scratch else _moments(stats, centred)[0]
+        C, again = _whitening_moment(stats, center)  # with again, C's memory becomes L: no n x n copy
         diag = stats.diagonal if C is None else C.diagonal()
         lam = _ridge_for(stats, diag, fit.ridge)
-        Z = _whitened(W64, C, diag, lam, scratch[1] if scratch else None)  # (m, n) = W L
-        del C, diag, scratch  # L (in C's memory when scratch) is not needed past Z
+        Z = _whitened(W64, C, diag, lam, again)  # (m, n) = W L
+        del C, diag  # L (in C's memory with again) is not needed past Z
         if left is not None:
             Z = left[0] @ Z  # (m, n) = R W L
         spec = decompose(Z, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
@@ -341,16 +339,18 @@ def _whitened(W64: torch.Tensor, C: torch.Tensor | None, diag: torch.Tensor, lam
     return W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam, again)
 
 
-def _scratch_moment(stats: InputStats, center: bool) -> tuple[torch.Tensor, Callable[[], torch.Tensor]] | None:
-    """(C, how to get C again) when the whitening may overwrite C: a centred covariance is a private copy, and a
-    moment read from a file is handed over by its statistics (:meth:`InputStats.release_moment`); else None."""
+def _whitening_moment(stats: InputStats, center: bool) -> tuple[torch.Tensor | None, Callable | None]:
+    """(C, how to get C again when the whitening may overwrite it, else None); C is None for an embedding. A
+    centred covariance is a private copy; a moment that can be read again from its file (``stats.reread``) is
+    handed over (:meth:`InputStats.release_moment`), or read again when an earlier whitening of the same group
+    already took it. Only a moment the statistics must keep is copied by the whitening (:func:`_sqrt_factor`)."""
     if stats.is_diagonal:
-        return None
+        return None, None
     if center:
         return stats.covariance(), stats.covariance
-    if stats.reread is not None and stats.second_moment is not None:
-        return stats.release_moment(), stats.reread
-    return None
+    if stats.reread is not None:
+        return (stats.reread() if stats.released else stats.release_moment()), stats.reread
+    return stats.moment(), None
 
 
 def _scaled(W64, stats: InputStats, fit: AwareFit, M: torch.Tensor, rank, seed, name):
@@ -387,11 +387,10 @@ def whitened_values(W: torch.Tensor, stats: InputStats, fit: AwareFit | None = N
     """:func:`decompose_aware`'s energies for "whiten" (input side, not centred, no refit), no vectors."""
     fit, execution = AwareFit.from_keywords(fit, execution, keywords)  # fit.ridge and execution.precision count
     _check_stats(W64 := torch.as_tensor(W).detach().to(torch.float64), stats, name)
-    scratch = _scratch_moment(stats, False)  # C's memory becomes L when it can be read again
-    C = scratch[0] if scratch else _moments(stats, False)[0]
+    C, again = _whitening_moment(stats, False)  # with again, C's memory becomes L
     lam = _ridge_for(stats, diag := stats.diagonal if C is None else C.diagonal(), fit.ridge)
-    Z = _whitened(W64, C, diag, lam, scratch[1] if scratch else None)
-    del C, diag, scratch
+    Z = _whitened(W64, C, diag, lam, again)
+    del C, diag
     spec = values_only(Z, precision="float64", name=name)  # every s_i of W L (m x n)
     return AwareSpectrum(spec.U, spec.S.to(compute_dtype_for(W, execution.precision)), spec.Vh, spec.total_energy,
                          "whiten", True, energy=spec.energies(), ridge=float(lam), samples=stats.count)

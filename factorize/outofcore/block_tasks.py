@@ -214,26 +214,24 @@ def _factors_of_linear(task: FactorTask) -> str:
     if transposed:
         W = W.t()
     st = read_stats(task.moment, task.module)
+    spec = None
+    if task.entry is None or is_factored_entry(task.entry):  # plain factors, or a bytes plan's factored entry
+        spec = decompose_aware(W, st, method=task.method, solver=task.solver, ridge=task.ridge, rank=task.rank,
+                               seed=task.seed, precision=task.precision, name=task.module)
     if task.entry is not None:
-        return _stored_form_of_linear(task, arch, W, st, transposed)
-    spec = decompose_aware(W, st, method=task.method, solver=task.solver, ridge=task.ridge, rank=task.rank,
-                           seed=task.seed, precision=task.precision, name=task.module)
+        return _stored_form_of_linear(task, arch, W, st, transposed, spec)
     B, A = spec.factors(min(task.rank, spec.computed_rank))  # (out, r), (r, in)
     save_work_file({"first": A.to(W.dtype).contiguous(), "second": B.to(W.dtype).contiguous()}, task.output)
     return task.output
 
 
 def _stored_form_of_linear(task: FactorTask, arch: Architecture, W: torch.Tensor, st: InputStats,
-                           transposed: bool) -> str:
+                           transposed: bool, spectrum) -> str:
     """One linear in its bytes plan entry's stored form (:func:`factorize.outofcore.tasks.stored_state`): the
-    whitened factors at the planned rank (a factored entry), rounded with error feedback on the group's input
-    moment as the in-memory calibrated ``compress(cost="bytes")`` rounds; the layer's state dict (bias included)
-    and its relative weight error go to ``task.output``."""
+    whitened factors at the planned rank (``spectrum``, for a factored entry), rounded with error feedback on the
+    group's input moment as the in-memory calibrated ``compress(cost="bytes")`` rounds; the layer's state dict (bias
+    included) and its relative weight error go to ``task.output``."""
     entry = task.entry
-    spectrum = None
-    if is_factored_entry(entry):
-        spectrum = decompose_aware(W, st, method=task.method, solver=task.solver, ridge=task.ridge,
-                                   rank=task.rank, seed=task.seed, precision=task.precision, name=task.module)
     bias_name = task.module + ".bias"
     bias = read_tensor(arch.where[bias_name].path, bias_name) if bias_name in arch.where else None
     state, built = stored_state(layer_holding(W, bias, transposed), entry, spectrum=spectrum, hessian=st.moment(),

@@ -75,3 +75,20 @@ def test_a_moment_nobody_can_read_again_is_never_released() -> None:
     assert not st.released and st.second_moment is not None
     with pytest.raises(FactorizeError, match="no moment to release"):
         st.release_moment()
+
+
+def test_a_group_shares_one_moment_each_projection_reading_it_again() -> None:
+    # q, k and v share an input: the first whitening takes the moment's memory, the next ones read it again and
+    # factor that copy in place; every spectrum equals the one from statistics that keep their moment
+    C = _moment()
+    reads = []
+
+    def reread() -> torch.Tensor:
+        reads.append(1)
+        return C.clone()
+
+    st = _stats(C.clone(), reread=reread)
+    for seed in (1, 2, 3):
+        W = torch.randn(24, 48, generator=torch.Generator().manual_seed(seed))
+        assert torch.equal(whitened_values(W, st).S, whitened_values(W, _stats(C.clone())).S)
+    assert len(reads) == 2 and st.released  # the first projection used the moment read with the statistics
