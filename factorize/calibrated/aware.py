@@ -89,6 +89,7 @@ from factorize.model.sites import Site, get_module, matrix_of
 from factorize.plan.entries import factored_entries, factored_names
 from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose, values_only
 from factorize.spectra.sites import per_site
+from factorize.spectra.whiten import sqrt_factor, whitened
 
 DEFAULT_RIDGE = 1e-6  # relative to mean(diag C): numerical safeguard only
 FEW_SAMPLES_RIDGE = 1e-2  # relative ridge when a layer saw fewer samples than its input width (a judgement call)
@@ -200,33 +201,6 @@ def _ridge_for(stats: InputStats, C_diag: torch.Tensor, ridge: float | None) -> 
     return rel * mean_diag if mean_diag > 0 else rel
 
 
-def _sqrt_factor(C: torch.Tensor, lam: float, again: Callable[[], torch.Tensor] | None = None) -> torch.Tensor:
-    """L with L L^T = C + lam I: Cholesky, or the symmetric square root when Cholesky fails (Golub & Van Loan
-    sec. 4.2 and 8.1).
-
-    Memory: one n x n copy besides C. The shift is added to the copy's diagonal in place and the Cholesky factor
-    overwrites that copy (LAPACK's potrf works in place; ``out=`` aliasing the input is what torch passes to it),
-    so a 5632-wide input moment in float64 costs 254 MB here instead of three times that. With ``again`` (a
-    function giving C anew: it was read from a file, or is a private copy) C itself becomes the factor, no copy at
-    all, and a failed Cholesky (which destroys its input) takes C from ``again`` for the eigen route.
-    """
-    shifted = C if again is not None else C.clone()
-    shifted.diagonal().add_(lam)  # C + lam I without an identity and a lam * I temporary
-    info = torch.empty((), dtype=torch.int32, device=C.device)
-    L, info = torch.linalg.cholesky_ex(shifted, out=(shifted, info))  # in place: L is shifted's storage
-    if int(info) == 0:
-        return L
-    if again is None:
-        shifted.copy_(C)  # the failed factorisation overwrote the copy: shift again, then the eigen route
-    else:
-        del C, L, shifted
-        shifted = again()  # it overwrote C itself
-    shifted.diagonal().add_(lam)
-    evals, evecs = torch.linalg.eigh(shifted)  # symmetric: C = V diag(e) V^T
-    del shifted
-    return evecs * evals.clamp_min(0).sqrt()  # V diag(sqrt(e)); (V e^1/2)(V e^1/2)^T = C
-
-
 def _moments(stats: InputStats, center: bool):
     """(C, mu) of the inputs, centred when asked (C then the covariance sum (x - mu)(x - mu)^T)."""
     mu = stats.mean
@@ -317,7 +291,7 @@ def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision
         C, again = _whitening_moment(stats, center)  # with again, C's memory becomes L: no n x n copy
         diag = stats.diagonal if C is None else C.diagonal()
         lam = _ridge_for(stats, diag, fit.ridge)
-        Z = _whitened(W64, C, diag, lam, again)  # (m, n) = W L
+        Z = whitened(W64, C, diag, lam, again)  # (m, n) = W L
         del C, diag  # L (in C's memory with again) is not needed past Z
         if left is not None:
             Z = left[0] @ Z  # (m, n) = R W L
@@ -332,18 +306,11 @@ def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision
                    fit.method, left=left)
 
 
-def _whitened(W64: torch.Tensor, C: torch.Tensor | None, diag: torch.Tensor, lam: float,
-              again: Callable[[], torch.Tensor] | None = None) -> torch.Tensor:
-    """W L, L L^T = C + lam I (the diagonal's square root when only the diagonal of C is kept): (m, n). With
-    ``again``, C's memory holds L afterwards (:func:`_sqrt_factor`)."""
-    return W64 * (diag + lam).sqrt() if C is None else W64 @ _sqrt_factor(C, lam, again)
-
-
 def _whitening_moment(stats: InputStats, center: bool) -> tuple[torch.Tensor | None, Callable | None]:
     """(C, how to get C again when the whitening may overwrite it, else None); C is None for an embedding. A
     centred covariance is a private copy; a moment that can be read again from its file (``stats.reread``) is
     handed over (:meth:`InputStats.release_moment`), or read again when an earlier whitening of the same group
-    already took it. Only a moment the statistics must keep is copied by the whitening (:func:`_sqrt_factor`)."""
+    already took it. Only a moment the statistics must keep is copied by the whitening (:func:`sqrt_factor`)."""
     if stats.is_diagonal:
         return None, None
     if center:
@@ -374,7 +341,7 @@ def _decompose_output_side(W64, stats, fit: AwareFit, center, left, rank, seed, 
     lam = _ridge_for(stats, diag, fit.ridge)
     M = K + lam * (W64 @ W64.T)  # (m, m) = W (C + lam I) W^T
     if fit.method == "whiten":
-        Z = _sqrt_factor(M if left is None else left[0] @ M @ left[0], 0.0)  # (m, m), Z Z^T = R W (C + lam I) W^T R
+        Z = sqrt_factor(M if left is None else left[0] @ M @ left[0], 0.0)  # (m, m), Z Z^T = R W (C + lam I) W^T R
         spec = decompose(Z, method=fit.solver, rank=rank, seed=seed, precision="float64", name=name)
         energy, total = spec.energies(), spec.total_energy
     else:
@@ -389,7 +356,7 @@ def whitened_values(W: torch.Tensor, stats: InputStats, fit: AwareFit | None = N
     _check_stats(W64 := torch.as_tensor(W).detach().to(torch.float64), stats, name)
     C, again = _whitening_moment(stats, False)  # with again, C's memory becomes L
     lam = _ridge_for(stats, diag := stats.diagonal if C is None else C.diagonal(), fit.ridge)
-    Z = _whitened(W64, C, diag, lam, again)
+    Z = whitened(W64, C, diag, lam, again)
     del C, diag
     spec = values_only(Z, precision="float64", name=name)  # every s_i of W L (m x n)
     return AwareSpectrum(spec.U, spec.S.to(compute_dtype_for(W, execution.precision)), spec.Vh, spec.total_energy,
@@ -470,7 +437,7 @@ def _refit(W, stats, fit: AwareFit, center, rank, seed, out_dtype, name, left=No
     # ridge towards the original weight: argmin ||W X_ref^T - W_t X^T||^2 + lam ||W_t - W||^2
     W_ls = torch.linalg.solve(C + lam_ls * eye, (W @ C_rx + lam_ls * W).T).T  # (m, n) = (W C_rx + lam W)(C + lam I)^-1
     lam = _ridge_for(stats, C.diagonal(), fit.ridge)
-    Z = W_ls @ _sqrt_factor(C, lam)  # (m, n)
+    Z = W_ls @ sqrt_factor(C, lam)  # (m, n)
     Rw, Rls = (W, W_ls) if left is None else (left[0] @ W, left[0] @ W_ls)
     spec = decompose(Z if left is None else left[0] @ Z, method=fit.solver, rank=rank, seed=seed, precision="float64",
                      name=name)

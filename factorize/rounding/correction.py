@@ -28,6 +28,7 @@ import torch
 from factorize.errors import FactorizeError
 from factorize.rounding.formats import Rounded, check_precision
 from factorize.rounding.quantize import check_hessian, check_matrix, round_matrix
+from factorize.spectra.whiten import sqrt_factor
 
 CORRECTION_RIDGE = 1e-6  # relative to mean(diag H): numerical safeguard only
 
@@ -66,13 +67,7 @@ def _sqrt_factor(H: torch.Tensor) -> torch.Tensor:
     """L with L L^T = H + lam I: Cholesky, else the symmetric square root (eigenvalues clipped at 0)."""
     if H.dim() == 1:
         return torch.diag((H + CORRECTION_RIDGE * _mean_or_one(H)).sqrt())
-    n = H.shape[0]
-    Hd = H + CORRECTION_RIDGE * _mean_or_one(H.diagonal()) * torch.eye(n, dtype=H.dtype, device=H.device)
-    L, info = torch.linalg.cholesky_ex(Hd)
-    if int(info) == 0:
-        return L
-    evals, evecs = torch.linalg.eigh(Hd)
-    return evecs * evals.clamp_min(0).sqrt()
+    return sqrt_factor(H, CORRECTION_RIDGE * _mean_or_one(H.diagonal()))
 
 
 def _mean_or_one(d: torch.Tensor) -> float:

@@ -12,9 +12,10 @@ import numpy as np
 import pytest
 import torch
 
-from factorize.calibrated.aware import _sqrt_factor, decompose_aware, whitened_values
+from factorize.calibrated.aware import decompose_aware, whitened_values
 from factorize.calibrated.stats import InputStats
 from factorize.errors import FactorizeError
+from factorize.spectra.whiten import sqrt_factor
 
 
 def _stats(C: torch.Tensor, reread=None) -> InputStats:
@@ -32,10 +33,10 @@ def test_in_place_factor_uses_the_moments_memory_and_matches_numpy() -> None:
     C = _moment()
     expected = np.linalg.cholesky(C.numpy() + 0.5 * np.eye(48))  # numpy's Cholesky of C + lambda I
     copy = C.clone()
-    L = _sqrt_factor(copy, 0.5, again=C.clone)
+    L = sqrt_factor(copy, 0.5, again=C.clone)
     assert L.data_ptr() == copy.data_ptr()  # no n x n copy: the factor is in the moment's storage
     np.testing.assert_allclose(L.numpy(), expected, rtol=1e-10, atol=1e-10)
-    assert torch.equal(L, _sqrt_factor(C, 0.5))  # the copying route gives the same bits
+    assert torch.equal(L, sqrt_factor(C, 0.5))  # the copying route gives the same bits
 
 
 def test_failed_cholesky_reads_the_moment_again_for_the_eigen_route() -> None:
@@ -47,9 +48,9 @@ def test_failed_cholesky_reads_the_moment_again_for_the_eigen_route() -> None:
         reads.append(1)
         return C.clone()
 
-    L = _sqrt_factor(C.clone(), 0.0, again=again)
+    L = sqrt_factor(C.clone(), 0.0, again=again)
     assert reads == [1]
-    assert torch.equal(L, _sqrt_factor(C, 0.0))  # the symmetric square root of the copying route, bit for bit
+    assert torch.equal(L, sqrt_factor(C, 0.0))  # the symmetric square root of the copying route, bit for bit
 
 
 @pytest.mark.parametrize("values_only", [False, True])
