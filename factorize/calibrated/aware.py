@@ -350,17 +350,21 @@ def _decompose_output_side(W64, stats, fit: AwareFit, center, left, rank, seed, 
 
 
 def whitened_values(W: torch.Tensor, stats: InputStats, fit: AwareFit | None = None, *,
-                    execution: Execution | None = None, name: str = "matrix", **keywords: Any) -> AwareSpectrum:
-    """:func:`decompose_aware`'s energies for "whiten" (input side, not centred, no refit), no vectors."""
+                    execution: Execution | None = None, name: str = "matrix", keep_reduction: bool = False,
+                    **keywords: Any) -> AwareSpectrum:
+    """:func:`decompose_aware`'s energies for "whiten" (input side, not centred, no refit), no vectors. With
+    ``keep_reduction``, the tridiagonal reduction behind the values stays on the result (``reduction``; None
+    without scipy) for :func:`factorize.calibrated.reduced.factors_from_reduction`."""
     fit, execution = AwareFit.from_keywords(fit, execution, keywords)  # fit.ridge and execution.precision count
     _check_stats(W64 := torch.as_tensor(W).detach().to(torch.float64), stats, name)
     C, again = _whitening_moment(stats, False)  # with again, C's memory becomes L
     lam = _ridge_for(stats, diag := stats.diagonal if C is None else C.diagonal(), fit.ridge)
     Z = whitened(W64, C, diag, lam, again)
     del C, diag
-    spec = values_only(Z, precision="float64", name=name)  # every s_i of W L (m x n)
+    spec = values_only(Z, precision="float64", keep_gram=keep_reduction, name=name)  # every s_i of W L (m x n)
     return AwareSpectrum(spec.U, spec.S.to(compute_dtype_for(W, execution.precision)), spec.Vh, spec.total_energy,
-                         "whiten", True, energy=spec.energies(), ridge=float(lam), samples=stats.count)
+                         "whiten", True, energy=spec.energies(), ridge=float(lam), samples=stats.count,
+                         reduction=spec.reduction)
 
 
 def _device_of(stats: InputStats, W: torch.Tensor) -> torch.device:

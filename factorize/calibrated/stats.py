@@ -173,6 +173,34 @@ def check_finite(rows: torch.Tensor, name: str, batch: int) -> None:
         )
 
 
+GRAM_PARTS = 4  # add_gram: column blocks of a wide input (10 of 16 block products computed)
+
+
+def add_gram(C: torch.Tensor, X: torch.Tensor) -> None:
+    """C += X^T X for rows X (N, n), in C's dtype, keeping C exactly symmetric (it is, from zeros).
+
+    Only the column blocks on and below the diagonal are multiplied; each block below is added to its place and,
+    transposed, to its mirror, and each diagonal block's lower triangle is mirrored, so both halves receive the same
+    bits. A plain ``addmm_`` does not give an exactly symmetric sum (measured: widths 64, 2048 and 5632), which kept
+    the moments from being stored as their upper triangle; this is also about a quarter faster from width 2048
+    (one thread: 0.64 s against 0.86 s at 2048 x 2048 rows, 4.8 s against 6.2 s at width 5632)."""
+    n = int(X.shape[1])
+    parts = GRAM_PARTS if n >= 256 else 1
+    edges = [n * i // parts for i in range(parts + 1)]
+    for i in range(parts):
+        a, b = edges[i], edges[i + 1]
+        for j in range(i + 1):
+            c, d = edges[j], edges[j + 1]
+            blk = X[:, a:b].T @ X[:, c:d]  # (b - a, d - c)
+            if i == j:
+                blk.tril_()
+                blk += blk.tril(-1).T
+                C[a:b, a:b] += blk
+            else:
+                C[a:b, c:d] += blk
+                C[c:d, a:b] += blk.T
+
+
 def accumulate(stats: InputStats, rows: torch.Tensor) -> None:
     """Add rows (N, n) -- or token ids (N,) for an embedding -- to ``stats``, in float64."""
     if stats.kind == "embedding":
@@ -193,7 +221,7 @@ def accumulate(stats: InputStats, rows: torch.Tensor) -> None:
         stats.abs_total = torch.zeros(n, dtype=torch.float64, device=dev)
     for start in range(0, rows.shape[0], ROW_CHUNK):
         chunk = rows[start:start + ROW_CHUNK].to(device=stats.second_moment.device, dtype=torch.float64)  # (c, n)
-        stats.second_moment.addmm_(chunk.T, chunk)  # C += X^T X
+        add_gram(stats.second_moment, chunk)  # C += X^T X, exactly symmetric
         stats.total += chunk.sum(0)
         stats.abs_total += chunk.abs().sum(0)
     stats.count += int(rows.shape[0])

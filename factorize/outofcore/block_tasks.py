@@ -19,12 +19,15 @@ import torch
 from safetensors import safe_open
 
 from factorize.calibrated.aware import decompose_aware
+from factorize.calibrated.reduced import factors_from_reduction
 from factorize.calibrated.stats import InputStats, accumulate, check_finite, input_rows
 from factorize.model.hooks import forward_pre_hooks
 from factorize.outofcore.architecture import Architecture, architecture, kind_of, materialise_block
 from factorize.outofcore.stem import decode_extras
 from factorize.outofcore.tasks import FORMS_KEY, layer_holding, stored_error, stored_state
 from factorize.plan.entries import is_factored_entry
+from factorize.spectra.tridiagonal import Reduction
+from factorize.spectra.whiten import sqrt_factor
 from factorize.storage import read_tensor, write_safetensors
 from factorize.threads import torch_threads
 
@@ -95,7 +98,10 @@ def _slice_through_block(task: BlockTask) -> dict:
     del outputs
     tensors, counts = {}, {}
     for name, st in stats.items():
-        tensors[f"{name}.moment"] = st.second_moment
+        upper = packed_upper(st.second_moment, symmetric=True)  # by construction (stats.add_gram): half the bytes
+        tensors[f"{name}.moment" if upper is None else f"{name}.moment.upper"] = \
+            st.second_moment if upper is None else upper
+        st.second_moment = None
         tensors[f"{name}.total"] = st.total
         tensors[f"{name}.abs_total"] = st.abs_total
         counts[name] = st.count
@@ -148,17 +154,21 @@ class FactorTask:
     output: str
     threads: int
     entry: dict | None = None  # a bytes plan's entry (cost="bytes"): the layer's stored form, not plain factors
+    reduction: str = ""  # file of the values pass's kept reduction (:func:`save_reduction`), if any
 
 
 ERROR_KEY = "factorize.relative_error"  # a stored form's ||W - W_stored||_F / ||W||_F (float.hex) in its metadata
 PACK_ROWS = 256  # rows compared at a time by the symmetry check of :func:`packed_upper`
 
 
-def packed_upper(C: torch.Tensor) -> torch.Tensor | None:
+def packed_upper(C: torch.Tensor, symmetric: bool = False) -> torch.Tensor | None:
     """C's upper triangle, row after row (n (n + 1) / 2 values), when C is exactly symmetric, else None: the
-    factor step rebuilds C bit for bit (:func:`unpacked_upper`) from half the bytes on disk."""
+    factor step rebuilds C bit for bit (:func:`unpacked_upper`) from half the bytes on disk. ``symmetric=True``
+    skips the check, for a C symmetric by construction (:func:`factorize.calibrated.stats.add_gram`): the check
+    reads C twice, a third of the statistics pass's packing and writing time at 1.1B widths."""
     n = int(C.shape[0])
-    if not all(torch.equal(C[lo:lo + PACK_ROWS], C[:, lo:lo + PACK_ROWS].T) for lo in range(0, n, PACK_ROWS)):
+    if not symmetric and not all(torch.equal(C[lo:lo + PACK_ROWS], C[:, lo:lo + PACK_ROWS].T)
+                                 for lo in range(0, n, PACK_ROWS)):
         return None
     out, at = C.new_empty(n * (n + 1) // 2), 0
     for i in range(n):
@@ -200,6 +210,24 @@ def read_stats(path: str, name: str) -> InputStats:
     return st
 
 
+def save_reduction(spectrum, path: str) -> str:
+    """The tridiagonal reduction a values pass kept on ``spectrum`` (``whitened_values(..., keep_reduction=True)``),
+    with what the factor step needs besides (||W L||_F^2, the ridge, the sample count; floats as hex, exact), to
+    ``path``; returns ``path``. About half the bytes of the k x k Gram matrix."""
+    save_work_file(spectrum.reduction.packed(), path, {"total": float(spectrum.total_energy).hex(),
+                                                        "ridge": float(spectrum.ridge).hex(),
+                                                        "count": str(spectrum.samples)})
+    return path
+
+
+def read_reduction(path: str) -> tuple[Reduction, float, float, int]:
+    """(reduction, ||W L||_F^2, ridge, count) as :func:`save_reduction` stored them."""
+    with safe_open(path, framework="pt", device="cpu") as f:
+        meta = f.metadata()
+        red = Reduction.unpacked({key: f.get_tensor(key) for key in f.keys()})  # noqa: SIM118 - a safe_open handle
+    return red, float.fromhex(meta["total"]), float.fromhex(meta["ridge"]), int(meta["count"])
+
+
 def factor_task(task: FactorTask) -> str:
     """Factors of one linear at its planned rank, from its weight and its group's input moment."""
     with torch_threads(task.threads):
@@ -213,6 +241,14 @@ def _factors_of_linear(task: FactorTask) -> str:
     transposed = kind_of(arch, task.module) == "transposed"
     if transposed:
         W = W.t()
+    if task.reduction and task.entry is None:  # values first: the kept vectors from the values pass's reduction
+        red, total, lam, count = read_reduction(task.reduction)
+        again = functools.partial(read_moment, task.moment)  # L again, for a tall W only (an n x n Cholesky)
+        spec = factors_from_reduction(W, red, total, lam, task.rank, count, lambda: sqrt_factor(again(), lam, again),
+                                      precision=task.precision)
+        del red
+        if spec is not None:
+            return _save_factors(spec, task, W)
     st = read_stats(task.moment, task.module)
     spec = None
     if task.entry is None or is_factored_entry(task.entry):  # plain factors, or a bytes plan's factored entry
@@ -220,6 +256,10 @@ def _factors_of_linear(task: FactorTask) -> str:
                                seed=task.seed, precision=task.precision, name=task.module)
     if task.entry is not None:
         return _stored_form_of_linear(task, arch, W, st, transposed, spec)
+    return _save_factors(spec, task, W)
+
+
+def _save_factors(spec, task: FactorTask, W: torch.Tensor) -> str:
     B, A = spec.factors(min(task.rank, spec.computed_rank))  # (out, r), (r, in)
     save_work_file({"first": A.to(W.dtype).contiguous(), "second": B.to(W.dtype).contiguous()}, task.output)
     return task.output

@@ -107,7 +107,9 @@ from factorize.outofcore.block_tasks import (
     factor_task,
     packed_upper,
     read_moment,
+    save_reduction,
     save_work_file,
+    unpacked_upper,
 )
 from factorize.outofcore.candidates import Candidate
 from factorize.outofcore.options import BlockwiseOptions, check_blockwise, split_keywords
@@ -133,6 +135,7 @@ from factorize.storage import (
 from factorize.threads import torch_threads
 
 SUM_ROWS = 256  # rows of a partial moment added at a time when summing the slices
+SUM_VALUES = 1 << 20  # values of a packed partial moment (or of a vector) added at a time
 BOUND_SLACK = 2**30  # the "+ 1 GB" of the memory bound
 WEIGHT_SUFFIXES = (".safetensors", ".bin", ".pt", ".pth", ".ckpt", ".msgpack", ".h5")
 
@@ -155,6 +158,7 @@ class _Run:
     order: dict = dataclasses.field(default_factory=dict)  # block -> its groups' leaders, in call order
     group_of: dict = dataclasses.field(default_factory=dict)  # projection -> its group's leader (shared input)
     priced: dict = dataclasses.field(default_factory=dict)  # cost="bytes": projection -> (candidates, scale, notes)
+    reductions: dict = dataclasses.field(default_factory=dict)  # projection -> its kept reduction's file (values first)
 
     @property
     def sites(self) -> list[Site]:
@@ -347,10 +351,10 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
     k_of = {s.name: (rank_needed(s, run.policy) if run.solver in ("auto", "randomized") else None)
             for s in run.sites if s.name in mine}
     for leader in sorted(set(block_groups.values()), key=mine.index):
-        st = _summed(leader, files, len(run.batches))
+        st, upper = _summed(leader, files, len(run.batches))
         path = run.work / "moments" / f"{leader}.safetensors"
         if not run.options.sequential:  # the refit collects its own statistics
-            _save_stats(st, path)
+            _save_stats(st, path, upper)
             st.reread = functools.partial(read_moment, str(path))  # the whitening may now overwrite the moment
         for name in [n for n in mine if block_groups.get(n) == leader]:
             groups[name] = str(path)
@@ -365,8 +369,14 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
                 del W, spec
                 continue
             if run.aware == "whiten" and run.solver == "gram":  # values first: vectors only in the factor step
-                spectra[name] = whitened_values(W, st, AwareFit(ridge=run.options.ridge), name=name,
-                                                execution=Execution(precision=run.options.precision))
+                spec = whitened_values(W, st, AwareFit(ridge=run.options.ridge), name=name,
+                                       keep_reduction=not run.options.sequential,  # the refit fits anew
+                                       execution=Execution(precision=run.options.precision))
+                if spec.reduction is not None:  # the factor step takes the kept vectors from it (calibrated.reduced)
+                    (run.work / "reductions").mkdir(exist_ok=True)
+                    run.reductions[name] = save_reduction(spec, str(run.work / "reductions" / f"{name}.safetensors"))
+                spectra[name] = spec.without_vectors()
+                del W, spec
                 continue
             spec = decompose_aware(W, st, method=run.aware, solver=run.solver, ridge=run.options.ridge,
                                    rank=k_of[name], seed=run.policy.seed, precision=run.options.precision, name=name)
@@ -379,33 +389,50 @@ MOMENT_PARTS = ("moment", "total", "abs_total")
 PAIR_PARTS = (*MOMENT_PARTS, "reference_moment", "reference_total", "cross")  # the sequential refit's
 
 
-def _summed(leader: str, files: Sequence[str], batches: int, parts: tuple[str, ...] = MOMENT_PARTS) -> InputStats:
-    """One group's statistics summed over the slices, in slice order (the order fixes the bytes)."""
+def _summed(leader: str, files: Sequence[str], batches: int,
+            parts: tuple[str, ...] = MOMENT_PARTS) -> tuple[InputStats, torch.Tensor | None]:
+    """One group's statistics summed over the slices, in slice order (the order fixes the bytes), and the summed
+    moment's upper triangle when every slice stored its own (:func:`packed_upper`): the triangles are summed as
+    they are, the same additions as on the whole matrices, and unpacked once."""
     acc: dict[str, torch.Tensor] = {}
     count = 0
+    rel = _relative(leader)
     for path in files:
         with safe_open(path, framework="pt", device="cpu") as f:
-            count += int(json.loads(f.metadata()["counts"])[_relative(leader)])
+            count += int(json.loads(f.metadata()["counts"])[rel])
             for part in parts:
-                key = f"{_relative(leader)}.{part}"
+                key = f"{rel}.{part}"
+                if part == "moment" and f"{key}.upper" in f.keys():  # noqa: SIM118 - a safe_open handle
+                    part, key = "moment.upper", f"{key}.upper"
+                    if "moment" in acc:  # an earlier slice stored its moment whole (not exactly symmetric)
+                        acc["moment"] += unpacked_upper(f.get_tensor(key), int(acc["moment"].shape[0]))
+                        continue
+                elif part == "moment" and "moment.upper" in acc:
+                    width = int(f.get_slice(key).get_shape()[0])
+                    acc["moment"] = unpacked_upper(acc.pop("moment.upper"), width)
                 if part not in acc:
                     acc[part] = f.get_tensor(key)
                     continue
                 rows = f.get_slice(key)
                 n = int(acc[part].shape[0])
-                for lo in range(0, n, SUM_ROWS):  # row blocks: no second n x n matrix in memory
-                    acc[part][lo:lo + SUM_ROWS] += rows[lo:lo + SUM_ROWS]
-    st = InputStats(leader, "linear", int(acc["moment"].shape[0]), count=count, second_moment=acc["moment"],
-                    total=acc["total"], abs_total=acc["abs_total"], batches=batches)
+                step = SUM_ROWS if acc[part].dim() > 1 else SUM_VALUES
+                for lo in range(0, n, step):  # row blocks, or blocks of values: no second copy in memory
+                    acc[part][lo:lo + step] += rows[lo:lo + step]
+    upper = acc.pop("moment.upper", None)
+    n = int(acc["total"].shape[0])
+    moment = unpacked_upper(upper, n) if upper is not None else acc["moment"]
+    st = InputStats(leader, "linear", n, count=count, second_moment=moment, total=acc["total"],
+                    abs_total=acc["abs_total"], batches=batches)
     if "cross" in acc:
         st.cross, st.reference_moment, st.reference_total = acc["cross"], acc["reference_moment"], \
             acc["reference_total"]
-    return st
+    return st, upper
 
 
-def _save_stats(st: InputStats, path: Path) -> None:
+def _save_stats(st: InputStats, path: Path, upper: torch.Tensor | None = None) -> None:
     """A group's summed statistics for the factor tasks (:func:`factorize.outofcore.block_tasks.read_stats`)."""
-    upper = packed_upper(st.second_moment)  # C = X^T X summed in slice order: symmetric, half the bytes suffice
+    if upper is None:
+        upper = packed_upper(st.second_moment)  # C = X^T X summed in slice order: symmetric, half the bytes suffice
     tensors = {"moment" if upper is None else "moment.upper": st.second_moment if upper is None else upper,
                "total": st.total, "abs_total": st.abs_total}
     if st.cross is not None:
@@ -468,17 +495,20 @@ def _factors(run: _Run, plan: dict, groups: dict[str, str]) -> dict[str, str]:
     needed = {groups[n] for n in todo}
     for path in set(groups.values()) - needed:
         Path(path).unlink(missing_ok=True)
+    for name in set(run.reductions) - set(todo):
+        Path(run.reductions[name]).unlink(missing_ok=True)
     out: dict[str, str] = {}
     for i in range(run.arch.blocks):
         mine = [n for n in todo if n.startswith(f"{run.arch.prefix}.{i}.")]
         tasks = [FactorTask(run.source, n, groups[n], todo[n][0], run.aware, run.solver, o.ridge, run.policy.seed,
-                            o.precision, str(run.work / "factors" / f"{n}.safetensors"), o.threads, todo[n][1])
+                            o.precision, str(run.work / "factors" / f"{n}.safetensors"), o.threads, todo[n][1],
+                            run.reductions.get(n, "") if todo[n][1] is None else "")
                  for n in mine]
         if tasks:
             files = run.engine.map(factor_task, tasks, label=f"block {i} factors")
             out.update({t.module: f for t, f in zip(tasks, files)})
-        for path in {groups[n] for n in mine}:
-            Path(path).unlink(missing_ok=True)  # this block's moments are consumed
+        for path in {groups[n] for n in mine} | {run.reductions[n] for n in mine if n in run.reductions}:
+            Path(path).unlink(missing_ok=True)  # this block's moments and reductions are consumed
     return out
 
 
@@ -528,11 +558,11 @@ def _refit_group(run: _Run, i: int, streams: tuple[Path, Path], done: tuple, lea
     pairs.mkdir()
     tasks = _pair_tasks(run, i, streams, done, leader, pairs, None)
     run.engine.map(pair_task, tasks, label=f"block {i} refit")
-    st = _summed(leader, [t.stats for t in tasks], len(run.batches),
-                 PAIR_PARTS if run.aware == "whiten" else MOMENT_PARTS)  # "scale" only re-whitens (as in memory)
+    st, upper = _summed(leader, [t.stats for t in tasks], len(run.batches),
+                        PAIR_PARTS if run.aware == "whiten" else MOMENT_PARTS)  # "scale" only re-whitens (as in memory)
     path = run.work / "moments" / f"{leader}.safetensors"
-    _save_stats(st, path)
-    del st
+    _save_stats(st, path, upper)
+    del st, upper
     shutil.rmtree(pairs, ignore_errors=True)
     factors = [FactorTask(run.source, n, str(path), r, run.aware, run.solver, o.ridge, run.policy.seed, o.precision,
                           str(run.work / "factors" / f"{n}.safetensors"), o.threads) for n, r in ranks.items()]

@@ -99,16 +99,58 @@ class Reduction:
     def top_vectors(self, rank: int) -> torch.Tensor | None:
         """The eigenvectors of G for its ``rank`` largest eigenvalues, k x rank, in decreasing order of eigenvalue
         (None if LAPACK reports a failure): the eigenvectors of T, then Q applied to them (``torch.ormqr``)."""
-        k = self.order
-        z = self._tridiagonal_vectors(rank)
-        if z is None:
-            return None
-        if k > 1:  # Q = diag(1, Q') where Q' is the product of the reflectors of the trailing (k-1) x (k-1) part
+        z = self.tridiagonal_vectors(rank)
+        return None if z is None else self.applied(z)
+
+    def applied(self, z: torch.Tensor) -> torch.Tensor:
+        """Q z for eigenvectors z (k x r) of T: the eigenvectors of G (in place; ``torch.ormqr``, about 2 k^2 r)."""
+        if self.order > 1:  # Q = diag(1, Q'), Q' the product of the reflectors of the trailing (k-1) x (k-1) part
             H = torch.from_numpy(self.reflectors)[1:, :-1]  # (k-1, k-1): vectors below its diagonal, QR layout
             z[1:] = torch.ormqr(H, torch.from_numpy(self.tau), z[1:], left=True, transpose=False)
         return z
 
-    def _tridiagonal_vectors(self, rank: int) -> torch.Tensor | None:
+    def captured(self, z: torch.Tensor) -> float | None:
+        """sum_i z_i^T T z_i for vectors z (k x r) of T, in float64 -- the energy of G on Q z, since
+        (Q z)^T G (Q z) = z^T T z -- or None when the columns of z are not orthonormal to 1e3 ulps of their
+        dtype, so that the sum would not be an energy. O(k r) for T, O(k r^2) for the orthonormality check."""
+        z64 = z.to(torch.float64)
+        r = int(z64.shape[1])
+        tol = 1e3 * float(np.finfo(self.d.dtype).eps) * max(self.order, 1) ** 0.5
+        if r and float((z64.T @ z64 - torch.eye(r, dtype=torch.float64)).abs().max()) > tol:
+            return None
+        d = torch.from_numpy(self.d.astype(np.float64))[:, None]  # (k, 1)
+        e = torch.from_numpy(self.e.astype(np.float64))[:, None]  # (k - 1, 1)
+        Tz = d * z64  # (k, r): T z, tridiagonal
+        Tz[:-1] += e * z64[1:]
+        Tz[1:] += e * z64[:-1]
+        return float((z64 * Tz).sum())
+
+    def packed(self) -> dict[str, torch.Tensor]:
+        """The reduction as flat tensors for a file (:meth:`unpacked` rebuilds it bit for bit): of the reflectors
+        only what LAPACK stores below the sub-diagonal (k (k - 1) / 2 - (k - 1) values, a bit under half of G)."""
+        k = self.order
+        cols = [self.reflectors[j + 2:, j] for j in range(max(k - 2, 0))]  # column j: v_{j+1}[j+2:]
+        flat = np.concatenate(cols) if cols else np.zeros(0, dtype=self.d.dtype)
+        out = {"reflectors": torch.from_numpy(np.ascontiguousarray(flat)), "tau": torch.from_numpy(self.tau.copy()),
+               "d": torch.from_numpy(self.d.copy()), "e": torch.from_numpy(self.e.copy())}
+        if self.values is not None:
+            out["values"] = torch.from_numpy(self.values.copy())
+        return out
+
+    @classmethod
+    def unpacked(cls, parts: dict[str, torch.Tensor]) -> Reduction:
+        """The reduction :meth:`packed` flattened (the unused upper part of the reflectors' array left zero)."""
+        d = parts["d"].numpy()
+        k = int(d.shape[0])
+        c = np.zeros((k, k), dtype=d.dtype, order="F")
+        flat, at = parts["reflectors"].numpy(), 0
+        for j in range(max(k - 2, 0)):
+            c[j + 2:, j] = flat[at:at + k - j - 2]
+            at += k - j - 2
+        values = parts["values"].numpy() if "values" in parts else None
+        return cls(c, parts["tau"].numpy(), d, parts["e"].numpy(), values)
+
+    def tridiagonal_vectors(self, rank: int) -> torch.Tensor | None:
         """The top ``rank`` eigenvectors of T, k x rank, decreasing. For at most a quarter of them, when T does not
         split: inverse iteration (``?stein``, O(k rank) plus re-orthogonalisation within clusters; Golub & Van
         Loan, sec. 8.2.2) from the eigenvalues of ``?sterf``. Otherwise, or if it fails: ``?stevd`` (all vectors
