@@ -117,7 +117,8 @@ def main() -> None:
     args = ap.parse_args()
     index, size = checkpoint(args.ckpt)
     target = 0.5 * size + 300 * MB
-    print(f"checkpoint {size / MB:.0f} MB (bfloat16, {SCALE['num_hidden_layers']} layers); target 0.5 x size + "
+    layers = json.loads((args.ckpt / "config.json").read_text())["num_hidden_layers"]  # also for a --ckpt of ours
+    print(f"checkpoint {size / MB:.0f} MB (bfloat16, {layers} layers); target 0.5 x size + "
           f"300 MB = {target / MB:.0f} MB; one torch thread")
     peaks: dict[str, list[float]] = {v: [] for v in args.variants}
     with tempfile.TemporaryDirectory(prefix="factorize-peak-", dir="/tmp") as d:

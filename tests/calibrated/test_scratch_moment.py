@@ -93,3 +93,21 @@ def test_a_group_shares_one_moment_each_projection_reading_it_again() -> None:
         W = torch.randn(24, 48, generator=torch.Generator().manual_seed(seed))
         assert torch.equal(whitened_values(W, st).S, whitened_values(W, _stats(C.clone())).S)
     assert len(reads) == 2 and st.released  # the first projection used the moment read with the statistics
+
+
+def test_the_triangular_product_is_numpys_w_times_l() -> None:
+    # W L with L lower triangular: BLAS dtrmm where scipy is installed (one torch thread), else torch's product;
+    # reference numpy's matmul of the same arrays, to float64 rounding.
+    from factorize.spectra.whiten import triangular_product
+    from factorize.threads import torch_threads
+
+    C = _moment(70, seed=3)
+    L = torch.linalg.cholesky(C + torch.eye(70, dtype=torch.float64))
+    W = torch.randn(40, 70, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
+    want = W.numpy() @ L.numpy()
+    for threads in (1, 2):
+        with torch_threads(threads):
+            got = triangular_product(W, L)
+        assert got.shape == (40, 70) and got.is_contiguous()
+        np.testing.assert_allclose(got.numpy(), want, rtol=0, atol=1e-13 * np.abs(want).max())
+    assert torch.equal(triangular_product(W.float(), L.float()), W.float() @ L.float())  # float32: torch's product
