@@ -301,6 +301,24 @@ def test_leading_refuses_values_of_another_matrix_of_the_same_shape():
     leading(W, 5, values=values_only(W))  # its own values are accepted
 
 
+def test_leading_accepts_the_values_of_a_large_matrix_despite_float32_drift():
+    # 12 M entries: a float32 sum of their squares drifts by about 1e-3 relative (measured; a 1.1B checkpoint's
+    # 2048 x 5632 MLP matrices were refused for 3.9e-4), while the values pass sums in float64. Reference: numpy's
+    # float64 sum of squares, which the values must match.
+    from factorize.threads import torch_threads
+
+    W = torch.randn(600, 20000, generator=torch.Generator().manual_seed(0)) * 0.02 + 0.001
+    with torch_threads(1):  # one thread: the float32 sum's rounding is then fixed
+        values = values_only(W)
+        drift = abs(float(torch.linalg.vector_norm(W)) ** 2 - values.total_energy) / values.total_energy
+        assert drift > 1e-4  # the float32 sum alone would refuse these values
+        assert values.total_energy == pytest.approx(float(np.square(W.double().numpy()).sum()), rel=1e-12)
+        spec = leading(W, 8, values=values)
+        assert spec.vector_rank == 8
+        with pytest.raises(FactorizeError, match="values="):
+            leading(W * 1.001, 8, values=values)  # a 0.2% change of ||W||_F^2 is still refused
+
+
 def test_sign_convention_matches_scikit_learns_svd_flip_even_with_ties():
     """Reference: scikit-learn's ``svd_flip`` (u-based decision: each column's largest-magnitude entry made
     positive). Integer entries make ties between a column's maximum and minimum common."""
