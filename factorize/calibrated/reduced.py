@@ -24,7 +24,7 @@ import numpy as np
 import torch
 
 from factorize.calibrated.aware import AwareSpectrum
-from factorize.spectra.decompose import AUTO_TOLERANCE, _fix_signs, compute_dtype_for
+from factorize.spectra.decompose import AUTO_TOLERANCE, compute_dtype_for, fix_signs
 from factorize.spectra.tridiagonal import Reduction
 
 
@@ -69,7 +69,7 @@ def factors_from_reduction(W: torch.Tensor, red: Reduction, total: float, lam: f
     else:  # right ones: U_r = W L V_r S_r^-1
         inv = torch.where(S[0] * 1e-12 < S, 1.0 / S, torch.zeros_like(S))
         U = (W64 @ (sqrt_factor() @ vecs)) * inv  # (m, r)
-    U, _ = _fix_signs(U.contiguous(), U.new_empty(rank, 0))  # the sign convention of every other route
+    U, _ = fix_signs(U.contiguous(), U.new_empty(rank, 0))  # the sign convention of every other route
     rows = U.T @ W64  # (r, n) = U_r^T W
     safe = torch.where(S > 0, S, torch.ones_like(S))
     Vh = torch.where((S > 0)[:, None], rows / safe[:, None], torch.zeros_like(rows))

@@ -232,7 +232,7 @@ def _prepared_with_energy(matrix: torch.Tensor | np.ndarray, precision: str | No
 def _exact(w: torch.Tensor) -> Spectrum:
     with lapack_threads(min(w.shape)):
         U, S, Vh = torch.linalg.svd(w, full_matrices=False)  # (m, k), (k,), (k, n); k = min(m, n)
-    U, Vh = _fix_signs(U, Vh)
+    U, Vh = fix_signs(U, Vh)
     total = float((S.to(torch.float64) ** 2).sum())
     return Spectrum(U, S, Vh, total_energy=total, method="exact", exact=True)
 
@@ -278,7 +278,7 @@ def _gram(w: torch.Tensor) -> Spectrum:
     else:  # V = eigenvectors (n, k); U = W V S^-1 (m, k), row block by row block
         Vh = evecs.T
         U = torch.cat([((blk.to(torch.float64) @ evecs) * inv).to(w.dtype) for blk in _blocks(w, False)], 0)
-    U, Vh = _fix_signs(U.to(w.dtype), Vh.to(w.dtype))
+    U, Vh = fix_signs(U.to(w.dtype), Vh.to(w.dtype))
     return Spectrum(U, S.to(w.dtype), Vh, total_energy=total, method="gram", exact=True)
 
 
@@ -317,7 +317,7 @@ def _randomized(w: torch.Tensor, rank: int, oversample: int, power_iters: int, s
     with lapack_threads(sketch):
         Ub, S, Vh = torch.linalg.svd(small, full_matrices=False)
     U = Q @ Ub  # (m, k+p)
-    U, Vh = _fix_signs(U[:, :k], Vh[:k])
+    U, Vh = fix_signs(U[:, :k], Vh[:k])
     spec = Spectrum(U, S[:k], Vh, total_energy=_frobenius2(w), method="randomized", exact=False)  # exact ||W||_F^2
     return spec, _gap_estimate(kept, S, k)
 
@@ -360,7 +360,7 @@ def _auto(w: torch.Tensor, rank: int, oversample: int, power_iters: int, seed: i
     return out
 
 
-def _fix_signs(U: torch.Tensor, Vh: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+def fix_signs(U: torch.Tensor, Vh: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """Make each left singular vector's largest-magnitude entry positive, so results are reproducible across
     methods and runs (the same convention as scikit-learn's ``svd_flip``).
 
@@ -592,7 +592,7 @@ def _leading(w: torch.Tensor, rank: int, values: Spectrum, guard: list[int], ove
         U, Vh = vecs, projected.mul_(inv[:, None])
     else:  # vecs are right singular vectors (n, r); U_r = W V_r S_r^-1 (m, r), scaled in place
         U, Vh = projected.mul_(inv), vecs.T
-    U, Vh = _fix_signs(U.contiguous(), Vh.contiguous())
+    U, Vh = fix_signs(U.contiguous(), Vh.contiguous())
     return Spectrum(U, S, Vh, total_energy=total, method=method, exact=True)
 
 

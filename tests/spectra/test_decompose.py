@@ -324,14 +324,14 @@ def test_sign_convention_matches_scikit_learns_svd_flip_even_with_ties():
     positive). Integer entries make ties between a column's maximum and minimum common."""
     from sklearn.utils.extmath import svd_flip
 
-    from factorize.spectra.decompose import _fix_signs
+    from factorize.spectra.decompose import fix_signs
 
     gen = torch.Generator().manual_seed(0)
     for _ in range(100):
         U = torch.randint(-3, 4, (7, 5), generator=gen).double()
         Vh = torch.randn(5, 6, generator=gen, dtype=torch.float64)
         ref_u, ref_v = svd_flip(U.numpy().copy(), Vh.numpy().copy(), u_based_decision=True)
-        got_u, got_v = _fix_signs(U.clone(), Vh.clone())
+        got_u, got_v = fix_signs(U.clone(), Vh.clone())
         zero = (U == 0).all(dim=0).numpy()  # an all-zero column has no sign to fix; conventions may differ
         np.testing.assert_array_equal(got_u.numpy()[:, ~zero], ref_u[:, ~zero])
         np.testing.assert_array_equal(got_v.numpy()[~zero], ref_v[~zero])
