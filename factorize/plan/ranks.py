@@ -26,9 +26,10 @@ The plan is plain JSON-serialisable data::
 from __future__ import annotations
 
 import fnmatch
-import heapq
 import math
 from collections.abc import Mapping, Sequence
+
+import numpy as np
 
 from factorize.errors import FactorizeError
 from factorize.model.sites import Site
@@ -132,11 +133,19 @@ def allocate_budget(
     Every site starts at rank ``multiple`` (a factored layer needs at least one rank unit). Then, repeatedly, the
     step with the largest scaled error reduction per unit of cost is taken: adding ``multiple`` ranks (gain: the
     next squared singular values), or -- once the next step would reach the break-even rank or the end of the
-    computed spectrum -- going dense (gain: the whole remaining tail). A step that no longer fits is dropped.
+    computed spectrum -- going dense (gain: the whole remaining tail). A step that no longer fits is dropped, and
+    with it every later step of that layer. Ties go to the earlier site.
+
+    Computed without a priority queue, with the same result step for step: each site's steps are known in
+    advance, and a step whose gain per unit exceeds its predecessor's (the dense step, or rounding in the
+    cumulative energies) is taken right after it, so ordering every step by its site's running minimum of gain
+    per unit (then site order, then step) is the order a queue of each site's next step would pop. Everything
+    that fits in that order is taken at once; at a step that does not fit, its site stops and the rest is summed
+    again. A queue costs a Python-level push and pop per rank step (86,000 of them in a sweep of MiniLM's 36
+    layers over 8 budgets, about 45 ms per budget).
     """
     ranks: dict[str, int] = {}
-    spent = 0.0
-    heap: list[tuple] = []  # (-gain per unit, site order, name, next rank, step cost)
+    spent = 0
     for s in sites:
         ranks[s.name] = min(multiple, spectra[s.name].computed_rank)
         spent += ranks[s.name] * _unit_cost(s, cost)
@@ -147,39 +156,63 @@ def allocate_budget(
             f"{'parameters' if cost == 'params' else 'multiply-accumulates'}",
             fix="raise the budget, exclude some layers, or use keep=/rank= for a per-layer rule",
         )
-    order = {s.name: i for i, s in enumerate(sites)}
-    by_name = {s.name: s for s in sites}
+    if not sites:
+        return ranks
     scale = dict(error_scale or {})
-    kept = {s.name: spectra[s.name].kept_energy() for s in sites}
-
-    def push(name: str) -> None:
-        site, spec, r = by_name[name], spectra[name], ranks[name]
-        if r is None:
-            return
-        sc = scale.get(name, 1.0 / spec.total_energy if spec.total_energy > 0 else 0.0)
-        nxt = r + multiple
-        if not site.saves_at(nxt) or nxt > spec.computed_rank:  # next step: dense
-            gain = (spec.total_energy - kept[name][r]) * sc
-            step_cost = _dense_cost(site, cost) - r * _unit_cost(site, cost)
-        else:
-            gain = (kept[name][nxt] - kept[name][r]) * sc
-            step_cost = multiple * _unit_cost(site, cost)
-        heapq.heappush(heap, (-gain / max(step_cost, 1), order[name], name, nxt, step_cost))
-
-    for s in sites:
-        push(s.name)
-    while heap:
-        _, _, name, nxt, step_cost = heapq.heappop(heap)
-        if spent + step_cost > available + 1e-9:
-            continue  # this layer's next step does not fit; others' may
-        spent += step_cost
-        site, spec = by_name[name], spectra[name]
-        if not site.saves_at(nxt) or nxt > spec.computed_rank:
-            ranks[name] = None  # dense
-        else:
-            ranks[name] = nxt
-            push(name)
+    keys, costs, owner, step, to = [], [], [], [], []
+    for i, site in enumerate(sites):
+        spec, r0 = spectra[site.name], ranks[site.name]
+        kept = spec.kept_energy()
+        sc = scale.get(site.name, 1.0 / spec.total_energy if spec.total_energy > 0 else 0.0)
+        top = _last_saving_rank(site, r0, spec.computed_rank, multiple)
+        frm = np.arange(r0, top, multiple, dtype=np.int64)  # rank steps frm -> frm + multiple, then dense
+        unit = _unit_cost(site, cost)
+        gains = (kept[frm + multiple] - kept[frm]) * sc
+        dense_cost = _dense_cost(site, cost) - top * unit
+        dense_gain = (spec.total_energy - kept[top]) * sc
+        key = np.append(-gains / max(multiple * unit, 1), -dense_gain / max(dense_cost, 1))
+        keys.append(np.maximum.accumulate(key))  # a queue pops a step whose key beats its predecessor's at once
+        costs.append(np.append(np.full(len(frm), multiple * unit, dtype=np.int64), dense_cost))
+        owner.append(np.full(len(key), i, dtype=np.int64))
+        step.append(np.arange(len(key), dtype=np.int64))
+        to.append(np.append(frm + multiple, -1))  # -1: dense
+    key, cost_of, site_of, step_of, rank_to = (np.concatenate(a) for a in (keys, costs, owner, step, to))
+    order = np.lexsort((step_of, site_of, key))  # ascending key (the queue's -gain per unit), then site, then step
+    cost_of, site_of, rank_to = cost_of[order], site_of[order], rank_to[order]
+    alive = np.ones(len(sites), dtype=bool)
+    last = np.full(len(sites), -2, dtype=np.int64)  # the last step taken per site (-2: none)
+    limit = available + 1e-9
+    pos = np.arange(len(order))
+    while len(pos):
+        pos = pos[alive[site_of[pos]]]
+        total = spent + np.cumsum(cost_of[pos])  # whole numbers: exact in float64 below 2**53, as a running sum
+        over = np.flatnonzero(total.astype(np.float64) > limit)
+        fit = pos if not len(over) else pos[: over[0]]
+        last[site_of[fit]] = rank_to[fit]  # a site's steps come in rank order, so its last write is its rank
+        if not len(over):
+            break
+        if over[0] > 0:
+            spent = int(total[over[0] - 1])
+        alive[site_of[pos[over[0]]]] = False  # that step does not fit: its site stops there
+        pos = pos[over[0] + 1:]
+    for i, site in enumerate(sites):
+        if last[i] == -1:
+            ranks[site.name] = None  # dense
+        elif last[i] >= 0:
+            ranks[site.name] = int(last[i])
     return ranks
+
+
+def _last_saving_rank(site: Site, r0: int, computed: int, multiple: int) -> int:
+    """The highest rank r0 + j * multiple that is computed and still saves (``Site.saves_at``), else r0."""
+    lo, hi = 0, max((computed - r0) // multiple, 0)  # bisection over j: saves_at is monotone in the rank
+    while lo < hi:
+        mid = (lo + hi + 1) // 2
+        if site.saves_at(r0 + mid * multiple):
+            lo = mid
+        else:
+            hi = mid - 1
+    return r0 + lo * multiple
 
 
 # ---------------------------------------------------------------------------------------------------------------

@@ -139,3 +139,91 @@ def test_budget_too_small_says_so(mlp):
     sites, spectra = _spectra_for(mlp)
     with pytest.raises(FactorizeError, match="budget is too small"):
         choose_ranks(sites, spectra, Policy(budget=0.001, multiple=8))
+
+
+def _queue_greedy(sites, spectra, available, multiple, cost, error_scale):
+    """The greedy allocation in its textbook form (a priority queue of each layer's next step; Cormen et al.,
+    Introduction to Algorithms, 3rd ed., sec. 16.2 and 6.5): the reference the array form must equal exactly."""
+    import heapq
+
+    from factorize.plan.ranks import _dense_cost, _unit_cost
+
+    ranks = {s.name: min(multiple, spectra[s.name].computed_rank) for s in sites}
+    spent = float(sum(ranks[s.name] * _unit_cost(s, cost) for s in sites))
+    kept = {s.name: spectra[s.name].kept_energy() for s in sites}
+    order = {s.name: i for i, s in enumerate(sites)}
+    by_name = {s.name: s for s in sites}
+    heap = []
+
+    def push(name):
+        site, spec, r = by_name[name], spectra[name], ranks[name]
+        sc = error_scale.get(name, 1.0 / spec.total_energy) if error_scale else 1.0 / spec.total_energy
+        nxt = r + multiple
+        if not site.saves_at(nxt) or nxt > spec.computed_rank:
+            gain = (spec.total_energy - kept[name][r]) * sc
+            step = _dense_cost(site, cost) - r * _unit_cost(site, cost)
+        else:
+            gain = (kept[name][nxt] - kept[name][r]) * sc
+            step = multiple * _unit_cost(site, cost)
+        heapq.heappush(heap, (-gain / max(step, 1), order[name], name, nxt, step))
+
+    for s in sites:
+        push(s.name)
+    while heap:
+        _, _, name, nxt, step = heapq.heappop(heap)
+        if spent + step > available + 1e-9:
+            continue
+        spent += step
+        site, spec = by_name[name], spectra[name]
+        if not site.saves_at(nxt) or nxt > spec.computed_rank:
+            ranks[name] = None
+        else:
+            ranks[name] = nxt
+            push(name)
+    return ranks
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_budget_allocation_equals_the_priority_queue_greedy_step_for_step(seed):
+    """The array form of the greedy allocation gives exactly what a priority queue of each layer's next step gives
+    (reference above), on random layers: mixed shapes, a costlier unit (MACs), rounding to a multiple, measured
+    error scales, spectra with ties and flat stretches (so dense steps and rounding in the cumulative energies
+    break the per-layer order) and budgets from nearly nothing to nearly everything."""
+    from factorize.plan.ranks import _dense_cost, allocate_budget
+    from factorize.spectra.decompose import Spectrum
+
+    rng = np.random.default_rng(seed)
+    sites, spectra, scale = [], {}, {}
+    for i in range(int(rng.integers(1, 9))):
+        m, n = (int(x) for x in rng.integers(2, 70, size=2))
+        k = min(m, n)
+        kind = rng.integers(3)
+        s = np.sort(rng.random(k))[::-1] if kind == 0 else np.repeat(rng.random(max(k // 3, 1)), 3)[:k]
+        if kind == 2:
+            s = np.full(k, 0.5)  # flat: every step gains the same
+        s = np.sort(s)[::-1].astype(np.float32)
+        s = np.pad(s, (0, k - len(s)))
+        macs = int(m * n * rng.integers(1, 5)) if seed % 2 else None
+        site = Site(name=f"l{i}", kind="linear", shape=(m, n), params=m * n, has_bias=False, dtype="float32",
+                    macs_per_sample=macs)
+        S = torch.from_numpy(s.copy())
+        spectra[site.name] = Spectrum(U=torch.zeros(m, 0), S=S, Vh=torch.zeros(0, n),
+                                      total_energy=float((S.double() ** 2).sum()) + float(rng.random()) * 0.1,
+                                      method="exact", exact=True)
+        if rng.random() < 0.5:
+            scale[site.name] = float(rng.random() * 3)
+        sites.append(site)
+    cost = "macs" if seed % 2 else "params"
+    multiple = int(rng.choice([1, 1, 2, 8]))
+    total = sum(_dense_cost(s, cost) for s in sites)
+    for fraction in (0.05, 0.2, 0.5, 0.8, 0.97):
+        available = fraction * total
+        lowest = sum(min(multiple, spectra[s.name].computed_rank) * (s.shape[0] + s.shape[1])
+                     * ((s.macs_per_sample // s.params) if cost == "macs" and s.macs_per_sample else 1)
+                     for s in sites)
+        if lowest > available + 1e-9:
+            with pytest.raises(FactorizeError, match="budget is too small"):
+                allocate_budget(sites, spectra, available, multiple=multiple, cost=cost, error_scale=scale)
+            continue
+        want = _queue_greedy(sites, spectra, available, multiple, cost, scale)
+        assert allocate_budget(sites, spectra, available, multiple=multiple, cost=cost, error_scale=scale) == want
