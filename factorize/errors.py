@@ -28,6 +28,10 @@ class FactorizeError(ValueError):
         return (type(self), (self.message, self.problems, self.fix))
 
 
+class StatisticsMemoryError(FactorizeError):
+    """Calibration statistics that would not fit in memory, refused before anything large is allocated."""
+
+
 class DriftLimitExceeded(RuntimeError):
     """A requested check failed (for example measured drift above ``--max-drift``); exit code 1."""
 

@@ -50,7 +50,7 @@ from torch import nn
 from tqdm.auto import tqdm
 
 from factorize.calibrated.rows import CHUNK_BYTES, input_rows, row_pieces
-from factorize.errors import FactorizeError, caller_stacklevel, printable
+from factorize.errors import FactorizeError, StatisticsMemoryError, caller_stacklevel, printable
 from factorize.model.feed import feed, token_mask
 from factorize.model.hooks import forward_pre_hooks
 from factorize.model.sites import Site, matrix_of, walk
@@ -410,7 +410,7 @@ def check_memory(needs: dict[str, int], what: str, *, limit: int | None = None) 
         return
     big = sorted(((b, n) for n, b in needs.items() if b > limit / 4), reverse=True) or \
         sorted(((b, n) for n, b in needs.items()), reverse=True)[:5]
-    raise FactorizeError(
+    raise StatisticsMemoryError(
         f"the {what} of {len(needs)} layers would need {human_bytes(total)}, more than the {human_bytes(limit)} "
         f"allowed ({source})",
         [f"{name}: {human_bytes(b)}" for b, name in big],

@@ -17,8 +17,8 @@ from typing import Any
 
 from factorize.calibrated.options import refuse_with_calibration
 from factorize.checkpoints.models import LoadedModel, load_model
-from factorize.choices import AWARE_METHODS
-from factorize.default import HELDOUT_SENTENCES, load_digits_split
+from factorize.choices import AWARE_METHODS, METHODS
+from factorize.default import CALIBRATION_SENTENCES, HELDOUT_SENTENCES, load_digits_split
 from factorize.errors import DriftLimitExceeded, FactorizeError
 from factorize.execution import Execution
 from factorize.measure.inputs import (
@@ -255,11 +255,16 @@ def _default_inputs(loaded: LoadedModel, args, by_length: bool = True) -> Sample
     return None
 
 
-def calibration_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None:
-    """The --calibration sample inputs, loaded and checked like --inputs; None when not given."""
+def calibration_inputs(args, loaded: LoadedModel, ui: UI, opts: Options | None = None) -> SampleInputs | None:
+    """The --calibration sample inputs, loaded and checked like --inputs. Without --calibration: for a model with a
+    tokenizer, the built-in English calibration sentences (see :func:`builtin_calibration`); else None."""
     path = getattr(args, "calibration", None)
-    if not path:
+    if getattr(args, "no_calibration", False):
+        if path:
+            raise FactorizeError("--calibration and --no-calibration exclude each other", fix="give one of them")
         return None
+    if not path:
+        return builtin_calibration(args, loaded, ui, opts)
     calib = load_inputs(path, batch_size=args.batch_size, labels_key=args.labels_key, tokenizer=loaded.tokenizer,
                         flag="--calibration")
     calib = _checked(calib, loaded, path, ui)
@@ -268,6 +273,34 @@ def calibration_inputs(args, loaded: LoadedModel, ui: UI) -> SampleInputs | None
                 "measured on, so the drift shown is optimistic")
     ui.note(f"calibration inputs: {calib.source}")
     return calib
+
+
+def builtin_calibration(args, loaded: LoadedModel, ui: UI, opts: Options | None = None) -> SampleInputs | None:
+    """The built-in English calibration sentences, for a model with a tokenizer given no --calibration.
+
+    Plain truncated SVD ignores what the layers see, and on a pretrained sentence encoder at budget 0.5 that is the
+    difference between a mean held-out cosine of 0.47 and 0.91 (BENCHMARKS.md, "Calibrated by default"); generic
+    English fits the factors far better than none. The sentences are never among the built-in held-out ones drift
+    is measured on by default. Not used (None) with --no-calibration, for a model without a tokenizer, or where the
+    user asked for what calibration cannot honour: a plain decomposition method, --cache or --speed-check (a note
+    says so)."""
+    if loaded.tokenizer is None or getattr(loaded, "weights_only", False):
+        return None
+    method = opts.method if opts is not None else getattr(args, "method", None)
+    blockers = [flag for flag, on in (
+        (f"--method {method}", method in METHODS and method != "auto"), ("--cache", bool(getattr(args, "cache", None))),
+        ("--speed-check", bool(getattr(args, "speed_check", False)))) if on]
+    if blockers:
+        ui.note(f"not fitted to the built-in calibration sentences: {', '.join(blockers)} asks for plain truncated "
+                "SVD; pass --calibration FILE for activation-aware factors")
+        return None
+    inputs = sentences_inputs(list(CALIBRATION_SENTENCES), loaded.tokenizer, batch_size=args.batch_size,
+                              source="built-in English calibration sentences")
+    inputs.builtin = True
+    inputs = _checked(inputs, loaded, inputs.source, ui)
+    ui.note(f"calibration inputs: {inputs.source}, none of them among the built-in held-out sentences; pass "
+            "--calibration with text from your own domain, or --no-calibration for plain truncated SVD")
+    return inputs
 
 
 def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInputs | None,

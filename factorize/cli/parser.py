@@ -295,7 +295,12 @@ def _quality_options(*, shrink: bool):
     g = p.add_argument_group("activation-aware factors" + (", healing" if shrink else "") + " and speed")
     g.add_argument("--calibration", "-c", metavar="FILE",
                    help="sample inputs (same formats as --inputs) the factors are fitted to: each layer keeps its "
-                   "outputs on them (whitening); keep them apart from --inputs, where drift is measured")
+                   "outputs on them (whitening); keep them apart from --inputs, where drift is measured. Without "
+                   "it, a model with a tokenizer is fitted to built-in English calibration sentences (none of them "
+                   "among the built-in held-out ones)")
+    g.add_argument("--no-calibration", action="store_true",
+                   help="plain truncated SVD: no calibration inputs, not even the built-in sentences a model with a "
+                   "tokenizer is otherwise fitted to")
     g.add_argument("--sequential", action="store_true",
                    help="with --calibration: factor layers in forward order, each fitted to the inputs the partly "
                    "compressed model gives it (with --blockwise: block after block, ranks from a first pass)")

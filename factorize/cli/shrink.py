@@ -9,7 +9,7 @@ from pathlib import Path
 from factorize.checkpoints import files
 from factorize.checkpoints.directories import extra_files, save_directory
 from factorize.checkpoints.models import looks_like_callable
-from factorize.errors import FactorizeError, printable
+from factorize.errors import FactorizeError, StatisticsMemoryError, printable
 from factorize.measure.evaluate import evaluate, layer_reports
 from factorize.measure.report import Report, render_rich
 from factorize.model.count import count_bytes, count_parameters
@@ -103,17 +103,17 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
     if args.max_drift is not None and inputs is None:
         raise FactorizeError("--max-drift needs sample inputs to measure drift on",
                              fix="pass --inputs FILE (or --random-inputs SHAPE)")
-    calibration = calibration_inputs(args, loaded, ui)
-    extra = quality_keywords(args, calibration, inputs, opts)
-    if inputs is not None and calibration is None and args.speed_check:
-        extra["speed_example"] = inputs.batches[0]
-    if inputs is not None and calibration is None:
-        extra["example"] = inputs.batches[0]  # the result is run on it (and multiply-accumulates counted there)
-    if "max_drift" in extra:  # --target-drift chooses the budget itself, on one part of --inputs
-        extra["heldout"], inputs = split_for_search(inputs, ui)
-        result = compress(loaded.model, progress=ui.progress, **opts.selection(), **extra)
-    else:
-        result = compress(loaded.model, policy, progress=ui.progress, **extra)
+    calibration = calibration_inputs(args, loaded, ui, opts)
+    try:
+        result, inputs = _compressed(args, loaded, opts, policy, inputs, calibration, ui)
+    except StatisticsMemoryError as err:
+        if calibration is None or not calibration.builtin:
+            raise
+        ui.warn(f"not fitted to the built-in calibration sentences: {err.message}; compressing with plain truncated "
+                "SVD instead (--no-calibration says so up front; --calibration FILE with --exclude for the widest "
+                "layers keeps activation-aware factors for the rest)")
+        calibration = None
+        result, inputs = _compressed(args, loaded, opts, policy, inputs, calibration, ui)
     notes = list(inputs.notes) if inputs is not None else []
     notes += _calibration_notes(result, calibration) + _speed_notes(result.plan)
     notes += [n for n in [held_note(result.plan)] if n]  # a transformers model's input embedding, left dense
@@ -147,6 +147,20 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
     else:
         files.save(stored, output, plan=result.plan, force=args.force)
     return report, result.plan
+
+
+def _compressed(args, loaded, opts: Options, policy, inputs, calibration, ui: UI):
+    """compress() as the flags ask, and the sample inputs the report then measures on (with --target-drift, the
+    part of them the budget was not chosen on)."""
+    extra = quality_keywords(args, calibration, inputs, opts)
+    if inputs is not None and calibration is None and args.speed_check:
+        extra["speed_example"] = inputs.batches[0]
+    if inputs is not None and calibration is None:
+        extra["example"] = inputs.batches[0]  # the result is run on it (and multiply-accumulates counted there)
+    if "max_drift" in extra:  # --target-drift chooses the budget itself, on one part of --inputs
+        extra["heldout"], inputs = split_for_search(inputs, ui)
+        return compress(loaded.model, progress=ui.progress, **opts.selection(), **extra), inputs
+    return compress(loaded.model, policy, progress=ui.progress, **extra), inputs
 
 
 def _copied_note(source: Path) -> str:

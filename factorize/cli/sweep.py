@@ -13,7 +13,7 @@ from rich.table import Table
 from factorize.alternatives import int8_alternative, plan_bytes, same_size_alternative
 from factorize.calibrated.search import Calibration, compress_from
 from factorize.choices import DEFAULT_METHOD
-from factorize.errors import FactorizeError, UnverifiedModelWarning
+from factorize.errors import FactorizeError, StatisticsMemoryError, UnverifiedModelWarning
 from factorize.measure.evaluate import evaluate
 from factorize.measure.report import CAUTION
 from factorize.outofcore.candidates import checkpoint_spectra
@@ -87,12 +87,20 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
     inputs = sample_inputs(args, loaded, ui)
     if inputs is None:
         ui.warn("no sample inputs given: only parameters and weight errors are shown; pass --inputs FILE for drift")
-    calibration = calibration_inputs(args, loaded, ui)
-    quality = quality_keywords(args, calibration, inputs, opts)
+    calibration = calibration_inputs(args, loaded, ui, opts)
     calib = None
     if calibration is not None:  # one set of statistics and spectra for every budget, as compress would use them
-        calib = Calibration(loaded.model, calibration.batches, opts.policy(budget=budgets[0]),
-                            sensitivity=args.sensitivity, progress=ui.progress)
+        quality_keywords(args, calibration, inputs, opts)  # flags that do not go with calibration: refused first
+        try:
+            calib = Calibration(loaded.model, calibration.batches, opts.policy(budget=budgets[0]),
+                                sensitivity=args.sensitivity, progress=ui.progress)
+        except StatisticsMemoryError as err:
+            if not calibration.builtin:
+                raise
+            ui.warn(f"not fitted to the built-in calibration sentences: {err.message}; every budget uses plain "
+                    "truncated SVD instead (--no-calibration says so up front)")
+            calibration = None
+    quality = quality_keywords(args, calibration, inputs, opts)
     rows, spectra, memo = [], None, {}  # memo: the original's outputs, computed once for every budget
     if calib is None:  # singular values once, every budget's plan, then each layer's vectors once at its top rank
         spectra = sweep_spectra(loaded.model, [opts.policy(budget=b) for b in budgets], cache=quality["cache"],

@@ -49,6 +49,7 @@ class SampleInputs:
     source: str = ""  # a short description for reports
     count: int = 0  # samples in all
     notes: list[str] = field(default_factory=list)  # warnings for the reporting layer
+    builtin: bool = False  # the tool's own sentences, chosen because the user gave none
 
 
 def load_inputs(
