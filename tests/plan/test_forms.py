@@ -230,3 +230,25 @@ def test_dense_rounding_is_priced_as_the_layer_stores_it_for_transposed_projecti
     built = apply_plan(model, {"format": PLAN_FORMAT, "version": PRECISION_PLAN_VERSION, "sites": {"0": row}})
     measured = float(((W.double() - matrix_of(built[0], site.kind).double()) ** 2).sum())
     assert cand.error == pytest.approx(measured, rel=1e-6)
+
+
+@pytest.mark.parametrize("diagonal", [False, True])
+def test_whitened_error_has_the_singular_values_of_the_symmetric_square_roots(diagonal):
+    """The corrected form is priced by Eckart-Young on the whitened rounding error: whatever square-root factors
+    LayerMetric uses (Cholesky, found once per layer), the singular values must be those of G^{1/2} E C^{1/2} with
+    the symmetric square roots from scipy.linalg.sqrtm (reference), C shifted by 1e-9 x its mean diagonal."""
+    scipy_linalg = pytest.importorskip("scipy.linalg")
+    g = torch.Generator().manual_seed(3)
+    m, n = 12, 20
+    X, Y = torch.randn(n, 40, generator=g, dtype=torch.float64), torch.randn(m, 30, generator=g, dtype=torch.float64)
+    C = (X * X).sum(1) / 40 if diagonal else X @ X.T / 40
+    G = Y @ Y.T / 30 + 0.1 * torch.eye(m, dtype=torch.float64)
+    metric = LayerMetric(C, G, 1.0)
+    for _ in range(2):  # the second call reuses the factors
+        E = torch.randn(m, n, generator=g, dtype=torch.float64)
+        Cm = torch.diag(C) if diagonal else C
+        Cs = Cm + 1e-9 * float(Cm.diagonal().mean()) * torch.eye(n, dtype=torch.float64)
+        want = np.linalg.svd(np.real(scipy_linalg.sqrtm(G.numpy())) @ E.numpy() @ np.real(scipy_linalg.sqrtm(
+            Cs.numpy())), compute_uv=False)
+        got = torch.linalg.svdvals(metric.whitened(E)).numpy()
+        np.testing.assert_allclose(got, want, rtol=1e-9, atol=1e-12)
