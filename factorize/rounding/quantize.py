@@ -199,31 +199,41 @@ def _inverse_cholesky(H: torch.Tensor) -> torch.Tensor:
 
 
 def _gptq(W: torch.Tensor, precision: str, H: torch.Tensor, diag: torch.Tensor):
-    """Error-feedback rounding of W (m, n) float32: (codes (m, n), scales)."""
+    """Error-feedback rounding of W (m, n) float32: (codes (m, n), scales).
+
+    Column by column within blocks of GPTQ_BLOCK, the block held transposed so that each column is a contiguous
+    row, the step size and the clamp hoisted out of the column loop (per group, or once per matrix), and the update
+    of the columns not yet rounded as one outer product: the same arithmetic per element as the textbook loop,
+    with a third of its per-column tensor operations (the loop is what a calibrated bytes plan spends its time in).
+    """
     m, n = W.shape
     U = _inverse_cholesky(H).to(torch.float32)  # (n, n)
     g = GROUP_SIZES.get(precision)
+    top = float(qmax(precision))
     scale = _choose_scales(W, precision, diag) if g is None else W.new_zeros(m, -(-n // g))  # (m,) or (m, G)
     W = W.clone()
-    codes = W.new_zeros(m, n)
+    codes = W.new_zeros(n, m)  # transposed while filled
+    safe = None if g is not None else torch.where(scale > 0, scale, torch.ones_like(scale))  # (m,)
     for i1 in range(0, n, GPTQ_BLOCK):
         i2 = min(i1 + GPTQ_BLOCK, n)
-        W1, U1 = W[:, i1:i2].clone(), U[i1:i2, i1:i2]  # (m, b), (b, b)
-        Err1 = torch.zeros_like(W1)
+        W1, U1 = W[:, i1:i2].T.contiguous(), U[i1:i2, i1:i2]  # (b, m) transposed, (b, b)
+        Err1 = torch.zeros_like(W1)  # (b, m)
         for i in range(i2 - i1):
             j = i1 + i
             if g is not None and j % g == 0:  # a new group: its scale from the weights as updated so far
                 k = min(g, i2 - i1 - i)
-                scale[:, j // g] = _group_scales(W1[:, None, i:i + k], diag[None, j:j + k], precision)[:, 0]
-            s = scale if g is None else scale[:, j // g]  # (m,)
-            safe = torch.where(s > 0, s, torch.ones_like(s))
-            q = torch.clamp(torch.round(W1[:, i] / safe), -qmax(precision), qmax(precision))  # (m,)
-            codes[:, j] = q
-            err = (W1[:, i] - q * safe) / U1[i, i]  # (m,)
-            W1[:, i:] -= err[:, None] * U1[i, i:][None, :]  # spread over the columns not yet rounded
-            Err1[:, i] = err
-        W[:, i2:] -= Err1 @ U[i1:i2, i2:]  # lazy block update
-    return codes, scale
+                s_j = _group_scales(W1[i:i + k].T[:, None, :], diag[None, j:j + k], precision)[:, 0]
+                scale[:, j // g] = s_j
+                safe = torch.where(s_j > 0, s_j, torch.ones_like(s_j))
+            w = W1[i]
+            q = torch.clamp(torch.round(w / safe), -top, top)  # (m,)
+            codes[j] = q
+            err = Err1[i]
+            torch.div(w - q * safe, U1[i, i], out=err)  # (m,)
+            if i + 1 < i2 - i1:  # spread over the columns not yet rounded
+                W1[i + 1:].sub_(U1[i, i + 1:, None] * err[None, :])
+        W[:, i2:] -= Err1.T @ U[i1:i2, i2:]  # lazy block update
+    return codes.T.contiguous(), scale
 
 
 # ---------------------------------------------------------------------------------------------------------------
