@@ -17,6 +17,7 @@ original's outputs computed once through ``memo``). Drift on sample inputs is no
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
@@ -216,7 +217,8 @@ def _policy(plan: Mapping, sites, cost: str, fraction: float) -> Policy:
 def _rank_or_joint(model, plan, sites, which: str, fraction: float, calibration, spectra, example):
     """The rank-only (``which="rank"``) or joint plan at ``fraction`` of the stored bytes, built, and its plan."""
     policy = _policy(plan, sites, "params" if which == "rank" else "bytes", fraction)
-    if calibration is not None:
+    if calibration is not None:  # it plans its own layers only; the others (held rows) stay as they are stored
+        policy = dataclasses.replace(policy, budget=_calibrated_fraction(model, plan, calibration, fraction))
         its_plan = calibration.plan(policy)
         return calibration.build(its_plan), its_plan
     given = spectra if which == "rank" else {}  # the joint planner prices every rank: full spectra, computed here
@@ -224,6 +226,26 @@ def _rank_or_joint(model, plan, sites, which: str, fraction: float, calibration,
         warnings.simplefilter("ignore", UnverifiedModelWarning)
         done = compress(model, policy, spectra=given or None, example=example)
     return done.model, done.plan
+
+
+def _calibrated_fraction(model: nn.Module, plan: Mapping, calibration, fraction: float) -> float:
+    """The budget for the layers ``calibration`` plans that puts the whole of ``plan``'s layers at ``fraction`` of
+    their stored bytes: the rows it does not plan (a transformers model's input embedding, held dense by default)
+    keep their bytes, so the planned layers get what is left. Applying ``fraction`` to the planned layers alone
+    made the calibrated joint alternative larger than the plan it stood beside (MiniLM: 88% against 76%)."""
+    planned = {s.name for s in calibration.found.sites}
+    before, _ = plan_bytes(model, plan)
+    rest = {"sites": {n: row for n, row in plan["sites"].items() if n not in planned}}
+    if not rest["sites"]:
+        return fraction
+    fixed, _ = plan_bytes(model, rest)
+    if before <= fixed:
+        return fraction
+    share = (fraction * before - fixed) / (before - fixed)
+    if share <= 0:
+        raise FactorizeError(f"the layers left out of calibration alone take {fixed / before:.1%} of the bytes, more "
+                             f"than the {fraction:.1%} to compare at")
+    return min(share, 1.0)
 
 
 def _literal(name: str) -> str:
