@@ -19,7 +19,7 @@ from factorize.calibrated.options import refuse_with_calibration
 from factorize.checkpoints.models import LoadedModel, load_model
 from factorize.choices import AWARE_METHODS, METHODS
 from factorize.default import CALIBRATION_SENTENCES, HELDOUT_SENTENCES, load_digits_split
-from factorize.errors import DriftLimitExceeded, FactorizeError
+from factorize.errors import DriftLimitExceeded, FactorizeError, StatisticsMemoryError
 from factorize.execution import Execution
 from factorize.measure.inputs import (
     SampleInputs,
@@ -255,7 +255,7 @@ def _default_inputs(loaded: LoadedModel, args, by_length: bool = True) -> Sample
     return None
 
 
-def calibration_inputs(args, loaded: LoadedModel, ui: UI, opts: Options | None = None) -> SampleInputs | None:
+def calibration_inputs(args, loaded: LoadedModel, ui: UI, opts: Options) -> SampleInputs | None:
     """The --calibration sample inputs, loaded and checked like --inputs. Without --calibration: for a model with a
     tokenizer, the built-in English calibration sentences (see :func:`builtin_calibration`); else None."""
     path = getattr(args, "calibration", None)
@@ -275,7 +275,7 @@ def calibration_inputs(args, loaded: LoadedModel, ui: UI, opts: Options | None =
     return calib
 
 
-def builtin_calibration(args, loaded: LoadedModel, ui: UI, opts: Options | None = None) -> SampleInputs | None:
+def builtin_calibration(args, loaded: LoadedModel, ui: UI, opts: Options) -> SampleInputs | None:
     """The built-in English calibration sentences, for a model with a tokenizer given no --calibration.
 
     Plain truncated SVD ignores what the layers see, and on a pretrained sentence encoder at budget 0.5 that is the
@@ -284,11 +284,11 @@ def builtin_calibration(args, loaded: LoadedModel, ui: UI, opts: Options | None 
     is measured on by default. Not used (None) with --no-calibration, for a model without a tokenizer, or where the
     user asked for what calibration cannot honour: a plain decomposition method, --cache or --speed-check (a note
     says so)."""
-    if loaded.tokenizer is None or getattr(loaded, "weights_only", False):
+    if loaded.tokenizer is None or loaded.weights_only:
         return None
-    method = opts.method if opts is not None else getattr(args, "method", None)
     blockers = [flag for flag, on in (
-        (f"--method {method}", method in METHODS and method != "auto"), ("--cache", bool(getattr(args, "cache", None))),
+        (f"--method {opts.method}", opts.method in METHODS and opts.method != "auto"),
+        ("--cache", bool(getattr(args, "cache", None))),
         ("--speed-check", bool(getattr(args, "speed_check", False)))) if on]
     if blockers:
         ui.note(f"not fitted to the built-in calibration sentences: {', '.join(blockers)} asks for plain truncated "
@@ -301,6 +301,18 @@ def builtin_calibration(args, loaded: LoadedModel, ui: UI, opts: Options | None 
     ui.note(f"calibration inputs: {inputs.source}, none of them among the built-in held-out sentences; pass "
             "--calibration with text from your own domain, or --no-calibration for plain truncated SVD")
     return inputs
+
+
+def drop_builtin_calibration(err: StatisticsMemoryError, calibration: SampleInputs | None, ui: UI,
+                             instead: str) -> None:
+    """After calibration statistics were refused for memory (``err``, before anything large was allocated): raise
+    it again where the user gave the calibration inputs; for the built-in sentences, which nobody asked for, warn
+    that the run goes on as ``instead`` says (plain truncated SVD)."""
+    if calibration is None or not calibration.builtin:
+        raise err
+    ui.warn(f"not fitted to the built-in calibration sentences: {err.message}; {instead} (--no-calibration says so "
+            "up front; --calibration FILE with --exclude for the widest layers keeps activation-aware factors for "
+            "the rest)")
 
 
 def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInputs | None,

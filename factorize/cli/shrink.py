@@ -27,6 +27,7 @@ from .common import (
     check_no_clobber,
     check_outputs,
     directory_output,
+    drop_builtin_calibration,
     load,
     max_drift_check,
     optional_path,
@@ -107,11 +108,7 @@ def _shrink_model(args, loaded, output: Path, opts: Options, policy, ui: UI, as_
     try:
         result, inputs = _compressed(args, loaded, opts, policy, inputs, calibration, ui)
     except StatisticsMemoryError as err:
-        if calibration is None or not calibration.builtin:
-            raise
-        ui.warn(f"not fitted to the built-in calibration sentences: {err.message}; compressing with plain truncated "
-                "SVD instead (--no-calibration says so up front; --calibration FILE with --exclude for the widest "
-                "layers keeps activation-aware factors for the rest)")
+        drop_builtin_calibration(err, calibration, ui, "compressing with plain truncated SVD instead")
         calibration = None
         result, inputs = _compressed(args, loaded, opts, policy, inputs, calibration, ui)
     notes = list(inputs.notes) if inputs is not None else []

@@ -28,6 +28,7 @@ from .common import (
     calibration_inputs,
     check_no_clobber,
     check_outputs,
+    drop_builtin_calibration,
     execution,
     load,
     optional_path,
@@ -88,19 +89,16 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
     if inputs is None:
         ui.warn("no sample inputs given: only parameters and weight errors are shown; pass --inputs FILE for drift")
     calibration = calibration_inputs(args, loaded, ui, opts)
+    quality = quality_keywords(args, calibration, inputs, opts)
     calib = None
     if calibration is not None:  # one set of statistics and spectra for every budget, as compress would use them
-        quality_keywords(args, calibration, inputs, opts)  # flags that do not go with calibration: refused first
         try:
             calib = Calibration(loaded.model, calibration.batches, opts.policy(budget=budgets[0]),
                                 sensitivity=args.sensitivity, progress=ui.progress)
         except StatisticsMemoryError as err:
-            if not calibration.builtin:
-                raise
-            ui.warn(f"not fitted to the built-in calibration sentences: {err.message}; every budget uses plain "
-                    "truncated SVD instead (--no-calibration says so up front)")
+            drop_builtin_calibration(err, calibration, ui, "every budget uses plain truncated SVD instead")
             calibration = None
-    quality = quality_keywords(args, calibration, inputs, opts)
+            quality = quality_keywords(args, calibration, inputs, opts)
     rows, spectra, memo = [], None, {}  # memo: the original's outputs, computed once for every budget
     if calib is None:  # singular values once, every budget's plan, then each layer's vectors once at its top rank
         spectra = sweep_spectra(loaded.model, [opts.policy(budget=b) for b in budgets], cache=quality["cache"],
