@@ -13,12 +13,8 @@ import torch.nn.functional as F
 from torch import nn
 from tqdm.auto import tqdm
 
-from factorize.calibrated.stats import (
-    as_batch_list,
-    check_finite,
-    check_memory,
-    resolve_sites,
-)
+from factorize.calibrated.memory import check_memory
+from factorize.calibrated.stats import as_batch_list, check_finite, resolve_sites
 from factorize.errors import FactorizeError
 from factorize.model.feed import feed, token_mask
 from factorize.model.hooks import forward_hooks

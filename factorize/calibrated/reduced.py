@@ -24,7 +24,8 @@ import numpy as np
 import torch
 
 from factorize.calibrated.aware import AwareSpectrum
-from factorize.spectra.decompose import AUTO_TOLERANCE, compute_dtype_for, fix_signs
+from factorize.spectra.decompose import AUTO_TOLERANCE, compute_dtype_for
+from factorize.spectra.signs import fix_signs
 from factorize.spectra.tridiagonal import Reduction
 
 

@@ -38,7 +38,6 @@ the weight's sums are kept (``weight_check``) and a decomposition with another w
 
 from __future__ import annotations
 
-import os
 import warnings
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from contextlib import contextmanager
@@ -49,15 +48,14 @@ import torch
 from torch import nn
 from tqdm.auto import tqdm
 
+from factorize.calibrated.memory import check_memory
 from factorize.calibrated.rows import CHUNK_BYTES, input_rows, row_pieces
-from factorize.errors import FactorizeError, StatisticsMemoryError, caller_stacklevel, printable
+from factorize.errors import FactorizeError, caller_stacklevel, printable
 from factorize.model.feed import feed, token_mask
 from factorize.model.hooks import forward_pre_hooks
 from factorize.model.sites import Site, matrix_of, walk
-from factorize.storage import human_bytes, proc_field
 
 ROW_CHUNK = 16384  # rows converted to float64 at a time, so a big conv batch never doubles in memory at once
-MEMORY_SHARE = 0.5  # statistics may take at most this share of the memory available when collection starts
 WORK_COPIES = 3  # the whitening step holds about this many n x n float64 matrices per layer at once (C, L, L^-1)
 INPUT_SIDE_LIMIT = 16384  # prefer_input: the input side up to this width (n x n float64 = 2 GiB), else the narrow one
 SIDES = ("narrow", "input", "output")
@@ -384,39 +382,6 @@ class _NoBar:
 
     def close(self) -> None:
         pass
-
-
-def available_memory() -> int:
-    """Bytes of memory available to this process now (MemAvailable on Linux; else the free physical pages)."""
-    value = proc_field("/proc/meminfo", "MemAvailable")  # in kB
-    if value is not None:
-        return int(value) * 1024
-    try:
-        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
-    except (ValueError, OSError, AttributeError):
-        return 2**63 - 1  # unknown: do not refuse
-
-
-def check_memory(needs: dict[str, int], what: str, *, limit: int | None = None) -> None:
-    """Refuse, before anything is allocated, statistics whose matrices would not fit in memory.
-
-    ``needs``: bytes per layer. ``limit``: the bytes allowed (default: MEMORY_SHARE of the memory available now).
-    The error names every layer that alone exceeds the limit, with its bytes, and the way out.
-    """
-    source = "the limit given" if limit is not None else "half of the memory available now"
-    limit = int(MEMORY_SHARE * available_memory()) if limit is None else limit
-    total = sum(needs.values())
-    if total <= limit:
-        return
-    big = sorted(((b, n) for n, b in needs.items() if b > limit / 4), reverse=True) or \
-        sorted(((b, n) for n, b in needs.items()), reverse=True)[:5]
-    raise StatisticsMemoryError(
-        f"the {what} of {len(needs)} layers would need {human_bytes(total)}, more than the {human_bytes(limit)} "
-        f"allowed ({source})",
-        [f"{name}: {human_bytes(b)}" for b, name in big],
-        fix="leave the widest layers out of calibration (exclude=[...] / --exclude, or compress them without "
-        "calibration in a second call), compress fewer layers per call (include=...), or free memory",
-    )
 
 
 def statistics_side(site: Site, side: str = "narrow", *, prefer_input: bool = False) -> str:

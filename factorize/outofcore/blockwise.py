@@ -73,13 +73,12 @@ from __future__ import annotations
 
 import dataclasses
 import functools
-import json
 import math
 import os
 import shutil
 import tempfile
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -90,7 +89,6 @@ from tqdm.auto import tqdm
 
 from factorize.calibrated.aware import AwareFit, AwareSpectrum, decompose_aware, whitened_values
 from factorize.calibrated.precision import metric_of
-from factorize.calibrated.stats import InputStats
 from factorize.checkpoints.files import Checkpoint
 from factorize.choices import calibrated_methods
 from factorize.cluster import Engine, open_engine
@@ -105,16 +103,15 @@ from factorize.outofcore.block_tasks import (
     FactorTask,
     block_slice_task,
     factor_task,
-    packed_upper,
     read_moment,
     save_reduction,
     save_work_file,
-    unpacked_upper,
 )
 from factorize.outofcore.candidates import Candidate
 from factorize.outofcore.options import BlockwiseOptions, check_blockwise, split_keywords
 from factorize.outofcore.refit_tasks import PairTask, pair_task
 from factorize.outofcore.results import BlockwiseShrink
+from factorize.outofcore.slice_stats import MOMENT_PARTS, PAIR_PARTS, save_stats, summed_slices
 from factorize.outofcore.stem import Stem, dumps, encode_extras, token_types
 from factorize.outofcore.tasks import kept_as_is
 from factorize.outofcore.tokens import slice_plan, token_batches
@@ -134,8 +131,6 @@ from factorize.storage import (
 )
 from factorize.threads import torch_threads
 
-SUM_ROWS = 256  # rows of a partial moment added at a time when summing the slices
-SUM_VALUES = 1 << 20  # values of a packed partial moment (or of a vector) added at a time
 BOUND_SLACK = 2**30  # the "+ 1 GB" of the memory bound
 WEIGHT_SUFFIXES = (".safetensors", ".bin", ".pt", ".pth", ".ckpt", ".msgpack", ".h5")
 
@@ -351,10 +346,10 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
     k_of = {s.name: (rank_needed(s, run.policy) if run.solver in ("auto", "randomized") else None)
             for s in run.sites if s.name in mine}
     for leader in sorted(set(block_groups.values()), key=mine.index):
-        st, upper = _summed(leader, files, len(run.batches))
+        st, upper = summed_slices(leader, files, len(run.batches))
         path = run.work / "moments" / f"{leader}.safetensors"
         if not run.options.sequential:  # the refit collects its own statistics
-            _save_stats(st, path, upper)
+            save_stats(st, path, upper)
             st.reread = functools.partial(read_moment, str(path))  # the whitening may now overwrite the moment
         del upper  # half a moment (127 MB at width 5632) not to hold through the whitening below
         for name in [n for n in mine if block_groups.get(n) == leader]:
@@ -384,70 +379,6 @@ def _block_spectra(run: _Run, mine: tuple[str, ...], block_groups: dict[str, str
             spectra[name] = spec.without_vectors()
             del W, spec
         del st
-
-
-MOMENT_PARTS = ("moment", "total", "abs_total")
-PAIR_PARTS = (*MOMENT_PARTS, "reference_moment", "reference_total", "cross")  # the sequential refit's
-
-
-def _summed(leader: str, files: Sequence[str], batches: int,
-            parts: tuple[str, ...] = MOMENT_PARTS) -> tuple[InputStats, torch.Tensor | None]:
-    """One group's statistics summed over the slices, in slice order (the order fixes the bytes), and the summed
-    moment's upper triangle when every slice stored its own (:func:`packed_upper`): the triangles are summed as
-    they are, the same additions as on the whole matrices, and unpacked once."""
-    acc: dict[str, torch.Tensor] = {}
-    count = 0
-    rel = _relative(leader)
-    for path in files:
-        with safe_open(path, framework="pt", device="cpu") as f:
-            count += int(json.loads(f.metadata()["counts"])[rel])
-            for part in parts:
-                key = f"{rel}.{part}"
-                if part == "moment" and f"{key}.upper" in f.keys():  # noqa: SIM118 - a safe_open handle
-                    part, key = "moment.upper", f"{key}.upper"
-                    if "moment" in acc:  # an earlier slice stored its moment whole (not exactly symmetric)
-                        acc["moment"] += unpacked_upper(f.get_tensor(key), int(acc["moment"].shape[0]))
-                        continue
-                elif part == "moment" and "moment.upper" in acc:
-                    width = int(f.get_slice(key).get_shape()[0])
-                    acc["moment"] = unpacked_upper(acc.pop("moment.upper"), width)
-                if part not in acc:
-                    acc[part] = f.get_tensor(key)
-                    continue
-                rows = f.get_slice(key)
-                n = int(acc[part].shape[0])
-                step = SUM_ROWS if acc[part].dim() > 1 else SUM_VALUES
-                for lo in range(0, n, step):  # row blocks, or blocks of values: no second copy in memory
-                    acc[part][lo:lo + step] += rows[lo:lo + step]
-    upper = acc.pop("moment.upper", None)
-    n = int(acc["total"].shape[0])
-    moment = unpacked_upper(upper, n) if upper is not None else acc["moment"]
-    st = InputStats(leader, "linear", n, count=count, second_moment=moment, total=acc["total"],
-                    abs_total=acc["abs_total"], batches=batches)
-    if "cross" in acc:
-        st.cross, st.reference_moment, st.reference_total = acc["cross"], acc["reference_moment"], \
-            acc["reference_total"]
-    return st, upper
-
-
-def _save_stats(st: InputStats, path: Path, upper: torch.Tensor | None = None) -> None:
-    """A group's summed statistics for the factor tasks (:func:`factorize.outofcore.block_tasks.read_stats`)."""
-    if upper is None:
-        upper = packed_upper(st.second_moment)  # C = X^T X summed in slice order: symmetric, half the bytes suffice
-    tensors = {"moment" if upper is None else "moment.upper": st.second_moment if upper is None else upper,
-               "total": st.total, "abs_total": st.abs_total}
-    if st.cross is not None:
-        tensors.update(cross=st.cross, reference_moment=st.reference_moment, reference_total=st.reference_total)
-    save_work_file(tensors, str(path), {"count": str(st.count), "batches": str(st.batches)})
-
-
-def _relative(name: str) -> str:
-    """``model.layers.3.self_attn.q_proj`` -> ``self_attn.q_proj`` (the name inside the block)."""
-    parts = name.split(".")
-    for k, p in enumerate(parts):
-        if p.isdigit():
-            return ".".join(parts[k + 1:])
-    return name
 
 
 @torch.no_grad()
@@ -559,10 +490,10 @@ def _refit_group(run: _Run, i: int, streams: tuple[Path, Path], done: tuple, lea
     pairs.mkdir()
     tasks = _pair_tasks(run, i, streams, done, leader, pairs, None)
     run.engine.map(pair_task, tasks, label=f"block {i} refit")
-    st, upper = _summed(leader, [t.stats for t in tasks], len(run.batches),
+    st, upper = summed_slices(leader, [t.stats for t in tasks], len(run.batches),
                         PAIR_PARTS if run.aware == "whiten" else MOMENT_PARTS)  # "scale" only re-whitens (as in memory)
     path = run.work / "moments" / f"{leader}.safetensors"
-    _save_stats(st, path, upper)
+    save_stats(st, path, upper)
     del st, upper
     shutil.rmtree(pairs, ignore_errors=True)
     factors = [FactorTask(run.source, n, str(path), r, run.aware, run.solver, o.ridge, run.policy.seed, o.precision,

@@ -193,7 +193,8 @@ def test_output_grams_need_a_differentiable_model(mlp):
 def test_statistics_that_would_not_fit_are_refused_before_allocating(monkeypatch):
     # a conv whose unfolded input is 16 x 9 x 9 = 1296 wide needs 3 x 1296^2 x 8 bytes (about 40 MB) to whiten;
     # with a 1 MB allowance the call must fail up front, naming the layer and its bytes, and never run the model
-    from factorize.calibrated.stats import check_memory, collect_stats, stats_bytes
+    from factorize.calibrated.memory import check_memory
+    from factorize.calibrated.stats import collect_stats, stats_bytes
 
     model = nn.Sequential(nn.Conv2d(3, 16, 3), nn.Conv2d(16, 8, 9))
     calls = []

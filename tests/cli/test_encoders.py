@@ -156,9 +156,9 @@ def test_built_in_calibration_that_would_not_fit_in_memory_falls_back_to_plain_s
     """The statistics' memory check refuses before anything large is allocated; for calibration the user did not
     ask for, the shrink then goes on without it and says why, while a --calibration FILE the user gave is refused
     as before (exit 2)."""
-    import factorize.calibrated.stats as stats
+    import factorize.calibrated.memory as memory
 
-    monkeypatch.setattr(stats, "available_memory", lambda: 1000)  # 500 bytes for statistics: nothing fits
+    monkeypatch.setattr(memory, "available_memory", lambda: 1000)  # 500 bytes for statistics: nothing fits
     d, lines = _encoder_dir(tmp_path)
     base = ["shrink", "--model", str(d), "--inputs", str(tmp_path / "heldout.txt"), "--budget", "0.5", "--include",
             "encoder.*", "--repeats", "0", "--force", "--no-alternatives", "--json"]

@@ -17,7 +17,7 @@ from safetensors import safe_open
 from factorize.calibrated.stats import add_gram, collect_stats
 from factorize.cluster import Engine, LocalEngine
 from factorize.errors import FactorizeError
-from factorize.outofcore import blockwise
+from factorize.outofcore import blockwise, slice_stats
 from factorize.outofcore.architecture import check_source
 from factorize.outofcore.block_tasks import read_stats
 from factorize.outofcore.blockwise import shrink_blockwise
@@ -405,7 +405,7 @@ def test_slices_sum_their_packed_moments_as_the_whole_matrices(tmp_path):
                        "self_attn.q_proj.abs_total": torch.ones(n, dtype=torch.float64)}
             files.append(str(tmp_path / f"{case}{j}.safetensors"))
             save_work_file(tensors, files[-1], {"counts": json.dumps({"self_attn.q_proj": 40})})
-        st, upper = blockwise._summed(leader, files, 3)
+        st, upper = slice_stats.summed_slices(leader, files, 3)
         want = (mats[0] + mats[1]) + mats[2]
         assert torch.equal(st.second_moment, want), case
         assert st.count == 120 and torch.equal(st.total, torch.full((n,), 3.0, dtype=torch.float64))

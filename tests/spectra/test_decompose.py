@@ -324,7 +324,7 @@ def test_sign_convention_matches_scikit_learns_svd_flip_even_with_ties():
     positive). Integer entries make ties between a column's maximum and minimum common."""
     from sklearn.utils.extmath import svd_flip
 
-    from factorize.spectra.decompose import fix_signs
+    from factorize.spectra.signs import fix_signs
 
     gen = torch.Generator().manual_seed(0)
     for _ in range(100):
