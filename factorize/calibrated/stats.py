@@ -514,13 +514,14 @@ def collect_pair_stats(
     ``stop_early`` ends each forward pass once the site has run (safe only when it runs once per pass).
     ``side="output"``: only ``current``'s inputs, as output-side statistics K = sum (W x)(W x)^T with W the site's
     weight in ``current`` (still the original's when the sites are done in forward order); the least-squares
-    refit needs the n x n moments and is then not possible, so no pair moments are kept.
+    refit needs the n x n moments and is then not possible, so no pair moments are kept. An embedding gets its
+    plain statistics (token counts) from ``current``: its input is the token ids, which compression never changes.
     """
-    if site.kind == "embedding":
-        raise FactorizeError(f"{site.name}: sequential refit is not defined for embeddings (their input is token "
-                             "ids, unchanged by compression)", fix="compress embeddings without sequential=")
-    if statistics_side(site, side) == "output":
-        stats = InputStats(site.name, site.kind, site.shape[1], side="output")
+    if site.kind == "embedding" or statistics_side(site, side) == "output":
+        # an embedding's input is token ids, the same in both models: its counts (no pair moments) are all a
+        # sequential fit can use, so it is fitted as in the per-layer path
+        kept = "input" if site.kind == "embedding" else "output"
+        stats = InputStats(site.name, site.kind, site.shape[1], side=kept)
         bar = tqdm(total=len(batches), desc=f"calibrate {printable(site.name)}", unit="batch",
                    disable=not progress, leave=False)
         try:
