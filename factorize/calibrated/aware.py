@@ -70,7 +70,6 @@ so B @ A = U_r U_r^T W exactly and each rank-one term is split evenly between th
 
 from __future__ import annotations
 
-import copy
 import dataclasses
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
@@ -79,14 +78,13 @@ from typing import Any
 import numpy as np
 import torch
 from torch import nn
-from tqdm.auto import tqdm
 
-from factorize.calibrated.stats import InputStats, statistics_side, weight_sums
+from factorize.calibrated.stats import InputStats, weight_sums
 from factorize.choices import AWARE_METHODS
 from factorize.errors import FactorizeError
 from factorize.execution import EXECUTION_KEYWORDS, Execution, resolve_execution
 from factorize.model.sites import Site, get_module, matrix_of
-from factorize.plan.entries import factored_entries, factored_names
+from factorize.plan.entries import factored_entries
 from factorize.spectra.decompose import Spectrum, compute_dtype_for, decompose, values_only
 from factorize.spectra.sites import per_site
 from factorize.spectra.whiten import sqrt_factor, whitened
@@ -264,10 +262,10 @@ def decompose_aware(
         An :class:`AwareSpectrum`; ``errors()`` are output errors ||(W - W'_r) X^T||_F on the calibration inputs.
     """
     fit, execution = AwareFit.from_keywords(fit, execution, keywords)
-    return _decompose_aware(W, stats, fit, output_gram, rank, execution.seed, execution.precision, name)
+    return decompose_fitted(W, stats, fit, output_gram, rank, execution.seed, execution.precision, name)
 
 
-def _decompose_aware(W, stats, fit: AwareFit, output_gram, rank, seed, precision, name) -> AwareSpectrum:
+def decompose_fitted(W, stats, fit: AwareFit, output_gram, rank, seed, precision, name) -> AwareSpectrum:
     """:func:`decompose_aware` with its options checked."""
     center = fit.center != "auto" and bool(fit.center)  # "auto" needs the layer (see aware_spectra): off here
     W = torch.as_tensor(W).detach()
@@ -330,7 +328,7 @@ def _scaled(W64, stats: InputStats, fit: AwareFit, M: torch.Tensor, rank, seed, 
 
 
 def _decompose_output_side(W64, stats, fit: AwareFit, center, left, rank, seed, out_dtype, name) -> AwareSpectrum:
-    """:func:`_decompose_aware` from output-side statistics (see the module docstring): the m x m route."""
+    """:func:`decompose_fitted` from output-side statistics (see the module docstring): the m x m route."""
     mu, N = stats.mean, stats.count
     K = stats.output_moment  # (m, m) = W C W^T
     diag = stats.square_total  # (n,) = diag C
@@ -488,15 +486,16 @@ def aware_spectra(
 
     def one(site: Site) -> AwareSpectrum:
         W = matrix_of(get_module(model, site.name), site.kind)  # (m, n)
-        one_fit = dataclasses.replace(fit, center=_center_for(site, fit.center))
+        one_fit = dataclasses.replace(fit, center=center_for(site, fit.center))
         k = (ranks or {}).get(site.name)
         G = (output_grams or {}).get(site.name)
-        return _decompose_aware(W, stats[site.name], one_fit, G, k, execution.seed, execution.precision, site.name)
+        return decompose_fitted(W, stats[site.name], one_fit, G, k, execution.seed, execution.precision, site.name)
 
     return per_site(one, sites, workers=execution.workers, progress=execution.progress)
 
 
-def _center_for(site: Site, center: bool | str) -> bool:
+def center_for(site: Site, center: bool | str) -> bool:
+    """Whether ``site`` gets mean-centred factors under the ``center`` option (``"auto"``: where a bias absorbs it)."""
     if site.kind.startswith("conv_transpose"):
         return False  # its m = out * prod(kernel) rows overlap-add into the output: no per-channel bias absorbs a shift
     if center == "auto":
@@ -522,79 +521,3 @@ def apply_bias_shifts(model: nn.Module, plan: Mapping, spectra: Mapping[str, Spe
         if shift is None or bias is None:
             continue
         bias.add_(shift.to(device=bias.device, dtype=bias.dtype).reshape(bias.shape))
-
-
-def compress_sequential(
-    model: nn.Module,
-    plan: Mapping,
-    batches: Iterable,
-    fit: AwareFit | None = None,
-    *,
-    refit: bool = True,
-    output_grams: Mapping[str, torch.Tensor] | None = None,
-    execution: Execution | None = None,
-    **keywords: Any,
-) -> tuple[nn.Module, dict[str, AwareSpectrum]]:
-    """Factor the plan's sites one at a time in forward order, each from the inputs it sees in the partly
-    compressed model, so later layers absorb the error of earlier ones.
-
-    Args:
-        model: the original model; not modified (a deep copy is compressed).
-        plan: ranks per site (e.g. from :func:`factorize.plan.ranks.choose_ranks`); dense sites stay as they are.
-        batches: calibration batches (batch contract); every site costs one pass of each model over them (the
-            passes stop after the site when each site runs once per forward).
-        fit: :class:`AwareFit`, or its fields as keywords: ``method`` ``"whiten"`` (with ``refit``) or
-            ``"scale"`` (``refit`` is then off); ``center`` as for :func:`aware_spectra`; ``refit_ridge``,
-            ``ridge``, ``output_ridge`` as for :func:`decompose_aware`. The solver is always the Gram one.
-        refit: fit the original layer's outputs from the compressed model's inputs (reduced-rank regression
-            with a least-squares step, Izenman 1975); False only re-whitens with the new inputs. The refit needs
-            the n x n moments: a layer wider than ``INPUT_SIDE_LIMIT`` at its input and narrower at its output is
-            re-whitened from output-side statistics instead (:func:`factorize.calibrated.stats.statistics_side`).
-        output_grams: see :func:`decompose_aware` (output weights are those of the original model).
-        execution: :class:`~factorize.execution.Execution` (precision, progress bars on stderr), or its fields
-            as keywords.
-
-    Returns:
-        (compressed copy, name -> spectrum used for each factored site).
-    """
-    from factorize.calibrated.stats import (
-        as_batch_list,
-        collect_pair_stats,
-        forward_order,
-        resolve_sites,
-    )
-    from factorize.model.sites import set_module
-    from factorize.rewrite.layers import factor_module
-
-    fit, execution = AwareFit.from_keywords(fit, execution, keywords)
-    fit = dataclasses.replace(fit, solver="gram")  # as before solvers were named: the refit's own eigensolve
-    batch_list = as_batch_list(batches)
-    names = factored_names(plan)
-    sites = {s.name: s for s in resolve_sites(model, names)}
-    order, calls = forward_order(model, list(sites.values()), batch_list[0])
-    never = [n for n in order if calls[n] == 0]
-    if never:
-        raise FactorizeError("the calibration batches never reached some layers the plan factors", never,
-                             fix="give sample inputs that run through these layers, or keep them dense")
-    target = copy.deepcopy(model)
-    spectra: dict[str, AwareSpectrum] = {}
-    for name in tqdm(order, desc="sequential", unit="layer", disable=not execution.progress, leave=False):
-        site = sites[name]
-        side = statistics_side(site, prefer_input=True)  # the least-squares refit needs the n x n moments
-        pair = collect_pair_stats(model, target, site, batch_list, stop_early=calls[name] == 1, side=side)
-        if not refit or fit.method != "whiten":
-            pair.cross = None
-        W = matrix_of(get_module(model, name), site.kind)
-        one_fit = dataclasses.replace(fit, center=_center_for(site, fit.center))
-        spec = _decompose_aware(W, pair, one_fit, (output_grams or {}).get(name), None, execution.seed,
-                                execution.precision, name)
-        r = min(int(plan["sites"][name]["rank"]), spec.computed_rank)
-        B, A = spec.factors(r)
-        layer = factor_module(get_module(target, name), site.kind, B, A)
-        shift = spec.bias_shift(r)
-        if shift is not None and layer.second.bias is not None:
-            with torch.no_grad():
-                layer.second.bias.add_(shift.to(layer.second.bias.dtype))
-        set_module(target, name, layer)
-        spectra[name] = spec
-    return target, spectra

@@ -47,7 +47,6 @@ from factorize.calibrated.aware import (
     REFIT_RIDGE,
     apply_bias_shifts,
     aware_spectra,
-    compress_sequential,
 )
 from factorize.calibrated.gradients import collect_output_grams
 from factorize.calibrated.options import (  # noqa: F401 - DRIFT_METRICS and the defaults are re-exported
@@ -69,6 +68,7 @@ from factorize.calibrated.sensitivity import (
     measure_sensitivity,
     run_outputs,
 )
+from factorize.calibrated.sequential import compress_sequential
 from factorize.calibrated.stats import as_batch_list, collect_stats
 from factorize.errors import DriftLimitExceeded, FactorizeError
 from factorize.measure.drift import output_drift
@@ -348,7 +348,7 @@ def compress_calibrated(
             method, seed); or its keywords (``budget=0.5``, ...), see :meth:`Policy.from_keywords`.
         options: :class:`~factorize.calibrated.options.CalibrationOptions`, or its fields as keywords:
             sequential (factor layers in forward order from the partly compressed model's inputs), refit /
-            refit_ridge (sequential only, see :func:`factorize.calibrated.aware.compress_sequential`), fractions
+            refit_ridge (sequential only, see :func:`factorize.calibrated.sequential.compress_sequential`), fractions
             (probe ranks for ``sensitivity``; ``"auto"``: the budget and half of it, see :func:`auto_fractions`),
             max_drift (search for the smallest budget whose drift on ``heldout`` is at most this, see
             :func:`search_drift`; replaces the rank rule), drift_metric (or ``metric=``) / budgets / tolerance

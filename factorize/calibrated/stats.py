@@ -148,7 +148,7 @@ class InputStats:
 # accumulation
 
 
-class _StopForward(Exception):
+class StopForward(Exception):
     """Raised by a hook to end a forward pass early once everything needed was captured."""
 
 
@@ -285,14 +285,15 @@ def _make_hook(site: Site, stats: InputStats, state: _State, sink=None):
             state.seen.add(site.name)
             stats.batches += 1
         if site.name in state.stop_after:
-            raise _StopForward
+            raise StopForward
         return None
 
     return hook
 
 
 @contextmanager
-def _eval_no_grad(model: nn.Module):
+def eval_no_grad(model: nn.Module):
+    """Run ``model`` in eval mode under ``torch.no_grad()`` for the ``with`` block; its training flag is restored."""
     was_training = model.training
     model.eval()
     try:
@@ -302,14 +303,15 @@ def _eval_no_grad(model: nn.Module):
         model.train(was_training)
 
 
-def _run(model: nn.Module, batches: Sequence[Any], state: _State, bar, start: int = 0) -> None:
-    """Feed every batch, turning a failure into an error that names the batch (numbered from ``start``)."""
+def _run(model: nn.Module, batches: Sequence[Any], state: _State, bar, start: int = 0, runner=None) -> None:
+    """Feed every batch, turning a failure into an error that names the batch (numbered from ``start``).
+    ``runner(i, batch)``, if given, runs batch i instead of ``model`` (a block fed its kept inputs)."""
     for i, batch in enumerate(batches, start):
         state.batch, state.mask = i, token_mask(batch)
         state.seen = set()
         try:
-            feed(model, batch)
-        except _StopForward:
+            runner(i, batch) if runner is not None else feed(model, batch)
+        except StopForward:
             pass
         except FactorizeError:
             raise
@@ -370,7 +372,7 @@ def forward_order(model: nn.Module, sites: Sequence[Site], batch: Any) -> tuple[
 
         return hook
 
-    with forward_pre_hooks(model, {s.name: hook_for(s.name) for s in sites}), _eval_no_grad(model):
+    with forward_pre_hooks(model, {s.name: hook_for(s.name) for s in sites}), eval_no_grad(model):
         _run(model, [batch], _State(), _NoBar())
     order += [s.name for s in sites if calls[s.name] == 0]
     return order, calls
@@ -479,7 +481,7 @@ def collect_stats(
 def _collect(model, sites, batches, stats, bar, *, stop_early: bool) -> None:
     state = _State(stop_after={s.name for s in sites} if stop_early and len(sites) == 1 else set())
     hooks = {s.name: _make_hook(s, stats[s.name], state) for s in sites}
-    with forward_pre_hooks(model, hooks, with_kwargs=True), _eval_no_grad(model):
+    with forward_pre_hooks(model, hooks, with_kwargs=True), eval_no_grad(model):
         _run(model, batches, state, bar)
 
 
@@ -504,6 +506,7 @@ def collect_pair_stats(
     progress: bool = False,
     stop_early: bool = True,
     side: str = "input",
+    runners: tuple | None = None,
 ) -> InputStats:
     """Statistics of one site's inputs in two models fed the same batches (sequential mode).
 
@@ -516,6 +519,8 @@ def collect_pair_stats(
     weight in ``current`` (still the original's when the sites are done in forward order); the least-squares
     refit needs the n x n moments and is then not possible, so no pair moments are kept. An embedding gets its
     plain statistics (token counts) from ``current``: its input is the token ids, which compression never changes.
+    ``runners``: (reference, current) callables ``run(i, batch)`` that run batch i in place of the whole models
+    (input side only; see :class:`factorize.calibrated.sequential.BlockFeeds`).
     """
     if site.kind == "embedding" or statistics_side(site, side) == "output":
         # an embedding's input is token ids, the same in both models: its counts (no pair moments) are all a
@@ -541,11 +546,11 @@ def collect_pair_stats(
     try:
         with (forward_pre_hooks(reference, ref_hook, with_kwargs=True),
               forward_pre_hooks(current, cur_hook, with_kwargs=True),
-              _eval_no_grad(reference), _eval_no_grad(current)):
+              eval_no_grad(reference), eval_no_grad(current)):
             for i, batch in enumerate(batches):
                 ref_rows.clear(), cur_rows.clear()
-                _run(reference, [batch], state, _NoBar(), start=i)
-                _run(current, [batch], state, _NoBar(), start=i)
+                _run(reference, [batch], state, _NoBar(), start=i, runner=runners and runners[0])
+                _run(current, [batch], state, _NoBar(), start=i, runner=runners and runners[1])
                 _accumulate_pair(stats, ref_stats, torch.cat(ref_rows) if ref_rows else None,
                                  torch.cat(cur_rows) if cur_rows else None)
                 bar.update()

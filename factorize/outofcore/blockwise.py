@@ -36,7 +36,7 @@ are ``nn.Linear`` or GPT-2's ``Conv1D`` (plan kind ``"transposed"``).
    each block what the already compressed blocks upstream produce (:mod:`factorize.outofcore.refit_tasks`): for
    each group of projections sharing an input, in the order the block calls them, the pair statistics of the
    original block on the original stream and of the partly compressed block on the compressed stream give the
-   refitted factors (reduced-rank regression, as :func:`factorize.calibrated.aware.compress_sequential` does in
+   refitted factors (reduced-rank regression, as :func:`factorize.calibrated.sequential.compress_sequential` does in
    memory) at the ranks of the plan from step 3; then both streams advance one block. The ranks are those of the
    first pass (as the in-memory ``sequential=True`` plans before it refits). Cost: per block, one forward of
    the original and one of the compressed block per refitted group (each stopped once the group's input is

@@ -1,7 +1,7 @@
 """The sequential refit's tasks, block by block (module level, picklable items; files in the work directory).
 
 With ``sequential=True`` each block is refitted to what the already compressed blocks upstream feed it, as the
-in-memory :func:`factorize.calibrated.aware.compress_sequential` does layer by layer. Two streams of hidden
+in-memory :func:`factorize.calibrated.sequential.compress_sequential` does layer by layer. Two streams of hidden
 states travel from block to block: the *reference* (the original model's) and the *current* (the compressed
 model's so far). For one group of projections sharing an input (q/k/v, gate/up, ...) of block i,
 :func:`pair_task` runs one slice through the original block on the reference stream and through the partly

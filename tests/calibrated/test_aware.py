@@ -245,7 +245,7 @@ def test_sequential_mode_runs_in_forward_order():
     # The first factored layer sees the original inputs, so its sequential factors equal the per-layer ones
     # (the refit's ridge pulls towards the original weight, so identical inputs give back W); later layers are
     # refitted and the whole model tracks the original at least as well on the calibration inputs (empirical).
-    from factorize.calibrated.aware import compress_sequential
+    from factorize.calibrated.sequential import compress_sequential
     from factorize.default import load_default, load_digits_split
 
     model = load_default()
@@ -325,7 +325,7 @@ def test_sequential_mode_fits_embeddings_from_their_token_counts():
     # the per-layer path does (it used to refuse, so `shrink --sequential` failed on any transformers model whose
     # embeddings were in the plan). Model: transformers' BertModel from a tiny config, random weights.
     transformers = pytest.importorskip("transformers")
-    from factorize.calibrated.aware import compress_sequential
+    from factorize.calibrated.sequential import compress_sequential
 
     cfg = transformers.BertConfig(vocab_size=60, hidden_size=16, num_hidden_layers=1, num_attention_heads=2,
                                   intermediate_size=32, max_position_embeddings=24)

@@ -15,8 +15,9 @@ from torch import nn
 
 import factorize
 from factorize.calibrated import stats as stats_module
-from factorize.calibrated.aware import aware_spectra, compress_sequential, decompose_aware
+from factorize.calibrated.aware import aware_spectra, decompose_aware
 from factorize.calibrated.rows import input_rows
+from factorize.calibrated.sequential import compress_sequential
 from factorize.calibrated.stats import collect_stats, statistics_side, stats_bytes
 from factorize.errors import FactorizeError
 from factorize.model.sites import matrix_of, walk

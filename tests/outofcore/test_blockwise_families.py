@@ -19,7 +19,8 @@ import pytest
 import torch
 
 import factorize
-from factorize.calibrated.aware import aware_spectra, compress_sequential
+from factorize.calibrated.aware import aware_spectra
+from factorize.calibrated.sequential import compress_sequential
 from factorize.calibrated.stats import collect_stats
 from factorize.cluster import LocalEngine
 from factorize.model.sites import walk
