@@ -166,7 +166,7 @@ class BlockFeeds:
         self._inputs: tuple[list, list] | None = None
         if enabled:
             candidates = {n: b for n, b in stacked_blocks(reference, order).items() if calls[n] == 1}
-            block_calls = _calls(reference, sorted(set(candidates.values())), self.batches[0])
+            _, block_calls = forward_order(reference, sorted(set(candidates.values())), self.batches[0])
             self.block_of = {n: b for n, b in candidates.items() if block_calls[b] == 1}
 
     def off(self) -> None:
@@ -226,49 +226,27 @@ def agree(a: InputStats, b: InputStats, tol: float = AGREEMENT) -> bool:
     return True
 
 
-def _calls(model: nn.Module, blocks: Sequence[str], batch: Any) -> dict[str, int]:
-    """How often one forward pass on ``batch`` calls each named block."""
-    calls = dict.fromkeys(blocks, 0)
-
-    def hook_for(name):
-        def hook(module, args):
-            calls[name] += 1
-        return hook
-
-    with forward_pre_hooks(model, {b: hook_for(b) for b in blocks}), eval_no_grad(model):
-        feed(model, batch)
-    return calls
+def _mapped(value, tensor, other=lambda v: v):
+    """``value`` (a block argument) with ``tensor`` applied to every tensor in it and ``other`` to every other leaf,
+    tuples, lists and dicts rebuilt around them."""
+    if isinstance(value, torch.Tensor):
+        return tensor(value)
+    if isinstance(value, (tuple, list)):
+        return type(value)(_mapped(v, tensor, other) for v in value)
+    if isinstance(value, dict):
+        return {k: _mapped(v, tensor, other) for k, v in value.items()}
+    return other(value)
 
 
 def _kept(value):
-    """A block argument as kept: tensors detached, containers mapped, anything else (a cache object) None."""
-    if isinstance(value, torch.Tensor):
-        return value.detach()
-    if isinstance(value, (tuple, list)):
-        return type(value)(_kept(v) for v in value)
-    if isinstance(value, dict):
-        return {k: _kept(v) for k, v in value.items()}
-    return value if isinstance(value, PLAIN) else None
-
-
-def _cloned(value):
-    if isinstance(value, torch.Tensor):
-        return value.clone()
-    if isinstance(value, (tuple, list)):
-        return type(value)(_cloned(v) for v in value)
-    if isinstance(value, dict):
-        return {k: _cloned(v) for k, v in value.items()}
-    return value
+    """A block argument as kept: tensors detached, anything neither tensor nor plain value (a cache object) None."""
+    return _mapped(value, torch.Tensor.detach, lambda v: v if isinstance(v, PLAIN) else None)
 
 
 def _nbytes(value) -> int:
-    if isinstance(value, torch.Tensor):
-        return value.numel() * value.element_size()
-    if isinstance(value, (tuple, list)):
-        return sum(_nbytes(v) for v in value)
-    if isinstance(value, dict):
-        return sum(_nbytes(v) for v in value.values())
-    return 0
+    sizes: list[int] = []
+    _mapped(value, lambda t: sizes.append(t.numel() * t.element_size()))
+    return sum(sizes)
 
 
 def _capture(model: nn.Module, block: str, batches: Sequence[Any]) -> list | None:
@@ -301,6 +279,6 @@ def _runner(model: nn.Module, block: str, kept: list):
 
     def run(i: int, batch: Any) -> None:
         args, kwargs = kept[i]
-        module(*_cloned(args), **_cloned(kwargs))
+        module(*_mapped(args, torch.Tensor.clone), **_mapped(kwargs, torch.Tensor.clone))
 
     return run

@@ -356,13 +356,15 @@ def as_batch_list(batches: Any) -> list:
     return items
 
 
-def forward_order(model: nn.Module, sites: Sequence[Site], batch: Any) -> tuple[list[str], dict[str, int]]:
-    """The order in which a forward pass on ``batch`` first calls each site, and how often each is called.
+def forward_order(model: nn.Module, sites: Sequence[Site | str], batch: Any) -> tuple[list[str], dict[str, int]]:
+    """The order in which a forward pass on ``batch`` first calls each site (or named module), and how often each
+    is called.
 
-    Sites never called come last, in module order, with a count of 0.
+    Sites never called come last, in the order given, with a count of 0.
     """
+    names = [s if isinstance(s, str) else s.name for s in sites]
     order: list[str] = []
-    calls = {s.name: 0 for s in sites}
+    calls = dict.fromkeys(names, 0)
 
     def hook_for(name):
         def hook(module, args):
@@ -372,9 +374,9 @@ def forward_order(model: nn.Module, sites: Sequence[Site], batch: Any) -> tuple[
 
         return hook
 
-    with forward_pre_hooks(model, {s.name: hook_for(s.name) for s in sites}), eval_no_grad(model):
+    with forward_pre_hooks(model, {n: hook_for(n) for n in names}), eval_no_grad(model):
         _run(model, [batch], _State(), _NoBar())
-    order += [s.name for s in sites if calls[s.name] == 0]
+    order += [n for n in names if calls[n] == 0]
     return order, calls
 
 

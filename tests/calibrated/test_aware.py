@@ -318,31 +318,3 @@ def test_fit_object_and_keywords_give_the_same_bytes():
         decompose_aware(W, stats, workerz=2)
     with pytest.raises(FactorizeError, match="unknown solver"):
         AwareFit(solver="lanczos")
-
-
-def test_sequential_mode_fits_embeddings_from_their_token_counts():
-    # An embedding's input is the token ids, which compression never changes: sequential mode fits it exactly as
-    # the per-layer path does (it used to refuse, so `shrink --sequential` failed on any transformers model whose
-    # embeddings were in the plan). Model: transformers' BertModel from a tiny config, random weights.
-    transformers = pytest.importorskip("transformers")
-    from factorize.calibrated.sequential import compress_sequential
-
-    cfg = transformers.BertConfig(vocab_size=60, hidden_size=16, num_hidden_layers=1, num_attention_heads=2,
-                                  intermediate_size=32, max_position_embeddings=24)
-    torch.manual_seed(0)
-    model = transformers.BertModel(cfg).eval()
-    g = torch.Generator().manual_seed(1)
-    batches = [{"input_ids": torch.randint(0, 60, (8, 12), generator=g),
-                "attention_mask": torch.ones(8, 12, dtype=torch.long)} for _ in range(3)]
-    sites = walk(model).sites
-    spectra = aware_spectra(model, sites, collect_stats(model, sites, batches))
-    plan = choose_ranks(sites, spectra, Policy(keep=0.5))
-    per_layer = apply_plan(model, plan, spectra=spectra)
-    seq, seq_spectra = compress_sequential(model, plan, batches)
-    emb = "embeddings.word_embeddings"
-    assert plan["sites"][emb]["action"] == "factor" and emb in seq_spectra
-    ids = torch.arange(60)
-    with torch.no_grad():
-        torch.testing.assert_close(seq.get_submodule(emb)(ids), per_layer.get_submodule(emb)(ids),
-                                   rtol=1e-4, atol=1e-5)
-        assert torch.isfinite(seq(**batches[0]).last_hidden_state).all()

@@ -1,4 +1,5 @@
-"""The sequential refit's block inputs: a block run alone on its kept inputs gives the statistics full passes give.
+"""The sequential refit: embeddings fitted from their token counts, and block inputs (a block run alone on its
+kept inputs gives the statistics full passes give).
 
 References: transformers' BertModel and LlamaForCausalLM built from tiny configs (random weights; the LLaMA one
 hands its blocks a key/value cache object), compared with full passes of both models over the same batches.
@@ -17,6 +18,7 @@ from factorize.calibrated.sequential import BlockFeeds, agree, compress_sequenti
 from factorize.calibrated.stats import collect_pair_stats, collect_stats, forward_order
 from factorize.model.sites import walk
 from factorize.plan.ranks import Policy, choose_ranks
+from factorize.rewrite.apply import apply_plan
 
 pytestmark = pytest.mark.filterwarnings("ignore:too few calibration samples")
 transformers = pytest.importorskip("transformers")
@@ -50,9 +52,10 @@ def _batches(padded: bool):
 
 
 def _plan(model, batches):
+    """The per-layer plan at keep=0.5, and the whitened spectra it was chosen from."""
     sites = walk(model).sites
     spectra = aware_spectra(model, sites, collect_stats(model, sites, batches))
-    return choose_ranks(sites, spectra, Policy(keep=0.5))
+    return choose_ranks(sites, spectra, Policy(keep=0.5)), spectra
 
 
 def test_stacked_blocks_are_the_outermost_list_elements():
@@ -85,7 +88,7 @@ def test_block_fed_statistics_equal_full_passes(build, padded):
 
 def test_sequential_refit_gives_the_same_model_with_and_without_block_inputs():
     model, batches = _bert(), _batches(True)
-    plan = _plan(model, batches)
+    plan, _ = _plan(model, batches)
     fast, _ = compress_sequential(model, plan, batches)
     slow, _ = compress_sequential(model, plan, batches, block_inputs=False)
     with torch.no_grad():
@@ -125,7 +128,7 @@ def test_a_block_that_needs_an_object_falls_back_to_full_passes():
     torch.manual_seed(0)
     model = _Net().eval()
     batches = [torch.randn(32, 8) for _ in range(2)]
-    plan = _plan(model, batches)
+    plan, _ = _plan(model, batches)
     sites = {s.name: s for s in walk(model).sites}
     order, calls = forward_order(model, list(sites.values()), batches[0])
     feeds = BlockFeeds(model, copy.deepcopy(model), batches, order, calls)
@@ -136,3 +139,20 @@ def test_a_block_that_needs_an_object_falls_back_to_full_passes():
     fast, _ = compress_sequential(model, plan, batches)
     slow, _ = compress_sequential(model, plan, batches, block_inputs=False)
     torch.testing.assert_close(fast(batches[0]), slow(batches[0]))
+
+
+def test_sequential_mode_fits_embeddings_from_their_token_counts():
+    # An embedding's input is the token ids, which compression never changes: sequential mode fits it exactly as
+    # the per-layer path does (it used to refuse, so `shrink --sequential` failed on any transformers model whose
+    # embeddings were in the plan).
+    model, batches = _bert(), _batches(True)
+    plan, spectra = _plan(model, batches)
+    per_layer = apply_plan(model, plan, spectra=spectra)
+    seq, seq_spectra = compress_sequential(model, plan, batches)
+    emb = "embeddings.word_embeddings"
+    assert plan["sites"][emb]["action"] == "factor" and emb in seq_spectra
+    ids = torch.arange(60)
+    with torch.no_grad():
+        torch.testing.assert_close(seq.get_submodule(emb)(ids), per_layer.get_submodule(emb)(ids),
+                                   rtol=1e-4, atol=1e-5)
+        assert torch.isfinite(seq(**batches[0]).last_hidden_state).all()
