@@ -15,7 +15,8 @@ Measured, with ``torch.set_num_threads(1)`` (run it under the shared lock: ``flo
 
 * the original's test accuracy;
 * plain SVD, ``factorize.compress(model, budget=b)``, at b = 0.3 and 0.5;
-* the default calibrated call, ``factorize.compress(model, budget=b, calibration=batches)``, at b = 0.3 and 0.5,
+* the default calibrated call, ``factorize.compress(model, budget=b, calibration=batches)`` (its factors refitted
+  sequentially), and the same with ``sequential=False`` (per-layer factors), at b = 0.3 and 0.5,
   with the memory of its statistics measured two ways: the bytes of every statistics tensor the call keeps (input-
   or output-side moments and their vectors, plus the output weights G of the gradient sensitivity), and the
   process's peak resident memory during the call above its resident memory just before (``VmHWM`` after
@@ -127,17 +128,26 @@ def stats_tensor_bytes(calibration) -> tuple[int, int]:
     return held, grams
 
 
-def run(model, cal, xte, yte, budget: float, calibrated: bool) -> dict:
+CALLS = {  # how -> compress() keywords beyond budget= (None: plain SVD, no calibration)
+    "calibrated (default)": {},
+    "calibrated, per-layer": {"sequential": False},
+    "plain SVD": None,
+}
+
+
+def run(model, cal, xte, yte, budget: float, how: str) -> dict:
     gc.collect()
     rss0 = int(proc_field("/proc/self/status", "VmRSS")) * 1024
     reset_peak_rss()
     start = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # "too few calibration samples" for the 65,536-wide layer, by design
-        res = factorize.compress(model, budget=budget, calibration=cal) if calibrated else \
+        extra = CALLS[how]
+        calibrated = extra is not None
+        res = factorize.compress(model, budget=budget, calibration=cal, **extra) if calibrated else \
             factorize.compress(model, budget=budget)
     seconds = time.perf_counter() - start
-    row = {"budget": budget, "how": "calibrated (default)" if calibrated else "plain SVD", "seconds": seconds,
+    row = {"budget": budget, "how": how, "seconds": seconds,
            "peak_added": peak_rss() - rss0, "accuracy": accuracy(res.model, xte, yte),
            "kept": res.params_after / res.params_before,
            "ranks": {n: e.get("rank") or e["action"] for n, e in res.plan["sites"].items()},
@@ -164,8 +174,9 @@ def main() -> None:
     print(f"original accuracy {acc0:.4f}; input-side statistics would need {input_side / 2**30:.1f} GiB", flush=True)
     rows = []
     for budget in (0.3, 0.5):
-        for calibrated in (True, False):
-            row = run(model, cal, xte, yte, budget, calibrated)
+        for how in CALLS:
+            calibrated = CALLS[how] is not None
+            row = run(model, cal, xte, yte, budget, how)
             rows.append(row)
             print(f"  {row['how']:22s} budget {budget}: accuracy {row['accuracy']:.4f}, drift {row['drift']:.4f}, "
                   f"{row['seconds']:.1f} s, "

@@ -181,9 +181,12 @@ def augmented(sentences: list[str], n: int, *, seed: int) -> list[str]:
 
 
 METHODS = {  # --method: the keyword arguments of compress() beyond calibration=, and how the report names them
-    "default": ({}, "the library default: whitened factors, ranks by gradient sensitivity"),
-    "whiten": ({}, "whitened factors, bias correction"),
-    "sensitivity": ({"sensitivity": True}, "whitened factors, ranks by measured gradient and probe sensitivity"),
+    "default": ({}, "the library default: whitened factors, ranks by gradient sensitivity, sequential refit"),
+    "per-layer": ({"sequential": False}, "whitened factors, ranks by gradient sensitivity, per-layer factors (the "
+                  "default before 2026-12-05)"),
+    "whiten": ({"sequential": False}, "whitened factors, bias correction"),
+    "sensitivity": ({"sensitivity": True, "sequential": False},
+                    "whitened factors, ranks by measured gradient and probe sensitivity"),
     "sequential": ({"sensitivity": True, "sequential": True},
                    "whitened factors, measured sensitivity, sequential refit"),
 }
@@ -194,7 +197,7 @@ def compress_calibrated(model: nn.Module, budget: float, include: str, calibrati
     """Calibrated compression, ``compress(..., calibration=...)``, with the options of ``METHODS[method]``."""
     kwargs, words = METHODS[method]
     result = factorize.compress(model, budget=budget, include=include, calibration=calibration, **kwargs)
-    extra = "".join(f", {k}=True" for k in kwargs)
+    extra = "".join(f", {k}={v!r}" for k, v in kwargs.items())
     return result, f"`compress(..., calibration=<first {FIT} CALIBRATION_SENTENCES>{extra})` ({words})"
 
 

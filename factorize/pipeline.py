@@ -123,7 +123,9 @@ def compress(
             ``on_break``: what to do when the compressed model fails its check run (see Returns): ``"dense"``
             (default) keeps the layers that break it dense and says why in the plan; ``"raise"`` raises.
             With calibration, also -- ``aware_method``: ``"whiten"`` (default) or ``"scale"``;
-            ``sequential``: factor layers in forward order so later layers absorb earlier errors;
+            ``sequential``: ``"auto"`` (default) factors layers in forward order so later layers absorb earlier
+            errors, for rank-only plans of whitened factors (per-layer factors otherwise, with the reason in
+            ``plan["calibration"]``); True insists, False gives per-layer factors (about half the build time);
             ``sensitivity``: allocate ranks by measured final-output sensitivity: True or ``"both"`` (gradients,
             then probes), ``"gradients"`` or ``"probes"`` alone; ``max_drift``: the smallest budget whose drift on
             ``heldout`` stays under this (``drift_metric`` ``"relative_l2"``, ``"cosine"``, or the tail:

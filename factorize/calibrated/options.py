@@ -54,7 +54,8 @@ class CalibrationOptions:
     projections: int = 2
     output_fn: Callable | None = None
     per_site: bool = False
-    sequential: bool = False
+    sequential: bool | str = "auto"  # "auto": sequential for rank-only whitened plans, else per layer (see
+    # sequential_for); True: always (refused where it cannot run); False: per-layer factors with bias correction
     refit: bool = True
     refit_ridge: float = REFIT_RIDGE
     max_drift: float | None = None
@@ -74,6 +75,9 @@ class CalibrationOptions:
         if self.drift_metric not in DRIFT_METRICS:
             raise FactorizeError(f"unknown drift metric {self.drift_metric!r}",
                                  fix=f"use one of {', '.join(DRIFT_METRICS)}")
+        if not (isinstance(self.sequential, bool) or self.sequential == "auto"):
+            raise FactorizeError(f"sequential must be True, False or 'auto', got {self.sequential!r}",
+                                 fix="sequential='auto' (the default), True or False")
         sensitivity_mode(self.sensitivity)
         self.execution()  # precision, workers: checked here, as an Execution checks them
 

@@ -38,7 +38,7 @@ import copy
 import dataclasses
 from collections.abc import Callable, Iterable
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import Any, NamedTuple
 
 import torch
 from torch import nn
@@ -77,10 +77,19 @@ from factorize.model.count import count_parameters
 from factorize.model.feed import token_mask
 from factorize.model.sites import WalkResult, get_module, set_module, walk
 from factorize.plan.defaults import excluding, held_by_default, with_held_rows
-from factorize.plan.entries import plan_entries, rewritten_names
+from factorize.plan.entries import factored_names, plan_entries, rewritten_names
 from factorize.plan.policy import Policy
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.rewrite.apply import CompressResult, apply_plan
+
+
+class Fitted(NamedTuple):
+    """A compressed copy as :meth:`Calibration.fitted` built it."""
+
+    model: nn.Module
+    sequential: bool  # built by the sequential refit
+    note: str | None = None  # why not, where ``sequential="auto"`` allowed it
+    failed: bool = False  # the refit was tried and failed (``note`` says why)
 
 
 @dataclass
@@ -286,6 +295,45 @@ class Calibration:
                                 error_scale=self.error_scale)
         return with_held_rows(plan, self.model, self.held)
 
+    def sequential_for(self, plan: dict, sequential: bool | str = "auto") -> tuple[bool, str | None]:
+        """Whether ``plan`` is built sequentially, and why not when ``"auto"`` declines.
+
+        ``"auto"`` refits sequentially every rank-only plan of whitened factors: on every model family of
+        ``benchmarks/bench_builtin_calibration.py`` and BENCHMARKS.md's sequential rows it drifted less than per-layer
+        factors (the encoder's worst held-out sentence most of all), for about twice the build time. Plans that
+        store precisions (a budget in bytes), ``"scale"`` factors, a plan factoring one layer (whose inputs no
+        other factored layer changes: the refit gives back its per-layer factors, measured on the wide CNN of
+        ``benchmarks/bench_cnn.py``, for twice the time) and an explicitly asked solver (``"exact"``,
+        ``"randomized"``) stay per layer."""
+        if sequential != "auto":
+            return bool(sequential), None
+        if any(e.precision is not None for e in plan_entries(plan)):
+            return False, "per-layer factors: the plan stores precisions, which the sequential refit does not fit"
+        if self.method != "whiten":
+            return False, f"per-layer factors: the sequential refit needs whitened factors, not {self.method!r}"
+        if len(factored_names(plan)) < 2:  # its inputs are the original's: the refit would give the same factors
+            return False, "per-layer factors: one factored layer, nothing upstream for the sequential refit to absorb"
+        if self.fit.solver not in ("auto", "gram"):
+            return False, (f"per-layer factors: the {self.fit.solver} solver asked for (the sequential refit has its "
+                           "own)")
+        return True, None
+
+    def fitted(self, plan: dict, *, sequential: bool | str = "auto", refit: bool = True,
+               refit_ridge: float = REFIT_RIDGE) -> Fitted:
+        """:meth:`build` with ``sequential`` resolved by :meth:`sequential_for`. Under ``"auto"`` a model the refit
+        cannot run on (its layers see different positions in the two models, ...) gets per-layer factors, with the
+        reason (``failed``); ``sequential=True`` raises instead."""
+        use, note = self.sequential_for(plan, sequential)
+        if not use:
+            return Fitted(self.build(plan), False, note)
+        try:
+            return Fitted(self.build(plan, sequential=True, refit=refit, refit_ridge=refit_ridge), True)
+        except FactorizeError as err:
+            if sequential is True:
+                raise
+            return Fitted(self.build(plan), False, f"per-layer factors: the sequential refit failed ({err.message})",
+                          failed=True)
+
     def build(self, plan: dict, *, sequential: bool = False, refit: bool = True,
               refit_ridge: float = REFIT_RIDGE) -> nn.Module:
         """A compressed copy of the model for ``plan``: per-layer factors with bias correction, or sequential."""
@@ -313,11 +361,15 @@ class Calibration:
             self._reference = run_outputs(self.model, self.batches, self.output_fn)
         return measure_drift(self._reference, self.build(plan), self.batches, output_fn=self.output_fn)
 
-    def annotate(self, plan: dict, *, sequential: bool) -> None:
-        """Record how the plan was calibrated (JSON-serialisable, carried into saved files)."""
+    def annotate(self, plan: dict, *, sequential: bool, note: str | None = None, failed: bool = False) -> None:
+        """Record how the plan was calibrated (JSON-serialisable, carried into saved files); ``note``: why the
+        factors are per layer although the sequential refit was allowed (``failed``: it was tried and failed,
+        which reports show)."""
         plan["calibration"] = {
             "method": self.method,
             "sequential": bool(sequential),
+            **({"sequential_note": note} if note else {}),
+            **({"sequential_failed": True} if failed else {}),
             "sensitivity": self.mode,
             "batches": len(self.batches),
             "samples": {name: st.count for name, st in self.stats.items()},
@@ -347,7 +399,8 @@ def compress_calibrated(
         policy: the :class:`~factorize.plan.policy.Policy` (rank rule, include/exclude, overrides, multiple, cost,
             method, seed); or its keywords (``budget=0.5``, ...), see :meth:`Policy.from_keywords`.
         options: :class:`~factorize.calibrated.options.CalibrationOptions`, or its fields as keywords:
-            sequential (factor layers in forward order from the partly compressed model's inputs), refit /
+            sequential (``"auto"``, the default: factor layers in forward order from the partly compressed
+            model's inputs, wherever :meth:`Calibration.sequential_for` allows it; False: per-layer factors), refit /
             refit_ridge (sequential only, see :func:`factorize.calibrated.sequential.compress_sequential`), fractions
             (probe ranks for ``sensitivity``; ``"auto"``: the budget and half of it, see :func:`auto_fractions`),
             max_drift (search for the smallest budget whose drift on ``heldout`` is at most this, see
@@ -367,7 +420,7 @@ def compress_calibrated(
                          refit_ridge=options.refit_ridge, fractions=options.fractions, inplace=inplace)
 
 
-def compress_from(calib: Calibration, policy: Policy, *, sequential: bool = False, refit: bool = True,
+def compress_from(calib: Calibration, policy: Policy, *, sequential: bool | str = "auto", refit: bool = True,
                   refit_ridge: float = REFIT_RIDGE, fractions: tuple[float, ...] | str = "auto",
                   inplace: bool = False) -> CalibratedResult:
     """The result :func:`compress_calibrated` gives for ``policy``, from statistics already in ``calib``.
@@ -381,8 +434,9 @@ def compress_from(calib: Calibration, policy: Policy, *, sequential: bool = Fals
     if calib.wants_probes and policy.budget is not None and (calib.sensitivity is None or calib.fractions != fr):
         calib.measure(fr)
     plan = calib.plan(policy)
-    compressed = calib.build(plan, sequential=sequential, refit=refit, refit_ridge=refit_ridge)
-    calib.annotate(plan, sequential=sequential)
+    built = calib.fitted(plan, sequential=sequential, refit=refit, refit_ridge=refit_ridge)
+    compressed = built.model
+    calib.annotate(plan, sequential=built.sequential, note=built.note, failed=built.failed)
     return _result(calib.model, compressed, plan, calib, inplace)
 
 
@@ -429,8 +483,8 @@ def search_drift(
         options: :class:`~factorize.calibrated.options.CalibrationOptions` or its fields as keywords:
             drift_metric (or ``metric=``: ``"relative_l2"``, ``"cosine"``, ``"relative_l2_p95"``,
             ``"cosine_p5"``); budgets (the (smallest, largest) budget searched); tolerance (bisection stops at
-            this bracket width); sequential (build the final model sequentially: the search itself uses per-layer
-            factors; the sequential model's drift is re-measured, and it is kept only if it drifts less);
+            this bracket width); sequential (``"auto"``/True: build the final model sequentially too -- the search
+            itself uses per-layer factors -- and keep it only if its re-measured drift is lower; False: never);
             refit / refit_ridge; and those of
             :class:`Calibration` (method, sensitivity, output_fn, ...); ``output_fn`` also defines the output the
             drift is measured on.
@@ -483,16 +537,20 @@ def search_drift(
     plan = plans[good]
     search.budget, search.drift = good, next(p.drift for p in search.points if p.budget == good)
     compressed = calib.build(plan)  # rebuilt: only plans are kept during the walk, never many model copies
-    if sequential:
+    used, note = calib.sequential_for(plan, sequential)
+    failed = False
+    if used:
         seq_plan = copy.deepcopy(plan)
-        seq_model = calib.build(seq_plan, sequential=True, refit=options.refit, refit_ridge=options.refit_ridge)
-        d_seq = measure_drift(reference, seq_model, eval_batches, metric=metric, output_fn=output_fn)
-        search.points.append(DriftPoint(good, d_seq, plan_summary(seq_plan)["kept_fraction"], note="sequential"))
-        if d_seq <= search.drift:
-            compressed, plan, search.drift = seq_model, seq_plan, d_seq
-        else:  # keep the per-layer model, which was measured to meet the limit
-            sequential = False
-    calib.annotate(plan, sequential=sequential)
+        built = calib.fitted(seq_plan, sequential=sequential, refit=options.refit, refit_ridge=options.refit_ridge)
+        used, note, failed = built.sequential, built.note, built.failed
+        if used:
+            d_seq = measure_drift(reference, built.model, eval_batches, metric=metric, output_fn=output_fn)
+            search.points.append(DriftPoint(good, d_seq, plan_summary(seq_plan)["kept_fraction"], note="sequential"))
+            if d_seq <= search.drift:
+                compressed, plan, search.drift = built.model, seq_plan, d_seq
+            else:  # keep the per-layer model, which was measured to meet the limit
+                used, note = False, f"per-layer factors: they drifted less here than the sequential refit ({d_seq:.4g})"
+    calib.annotate(plan, sequential=used, note=note, failed=failed)
     plan["search"] = search.to_dict()
     return _result(model, compressed, plan, calib, inplace, search=search)
 

@@ -322,7 +322,8 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
     target = getattr(args, "target_drift", None)
     wanted = [flag for flag, on in (
         (f"--method {opts.method}", opts.method in AWARE_METHODS),
-        ("--sequential", getattr(args, "sequential", False)), ("--sensitivity", getattr(args, "sensitivity", False)),
+        ("--sequential", getattr(args, "sequential", None) is True),
+        ("--sensitivity", getattr(args, "sensitivity", False)),
         ("--target-drift", target is not None), ("--heal", getattr(args, "heal", None) is not None)) if on]
     if wanted and calibration is None:
         raise FactorizeError(f"{', '.join(wanted)} needs --calibration FILE",
@@ -332,7 +333,8 @@ def quality_keywords(args, calibration: SampleInputs | None, inputs: SampleInput
                 "speed_check": getattr(args, "speed_check", False)}
     refuse_with_calibration(speed_check=bool(getattr(args, "speed_check", False)),
                             cache=bool(getattr(args, "cache", None)), flags=True)
-    extra = {"calibration": calibration.batches, "sequential": args.sequential, "sensitivity": args.sensitivity,
+    sequential = "auto" if args.sequential is None else args.sequential
+    extra = {"calibration": calibration.batches, "sequential": sequential, "sensitivity": args.sensitivity,
              "workers": getattr(args, "workers", 1)}
     if target is not None:
         for k in POLICY_KEYS:

@@ -301,9 +301,12 @@ def _quality_options(*, shrink: bool):
     g.add_argument("--no-calibration", action="store_true",
                    help="plain truncated SVD: no calibration inputs, not even the built-in sentences a model with a "
                    "tokenizer is otherwise fitted to")
-    g.add_argument("--sequential", action="store_true",
-                   help="with --calibration: factor layers in forward order, each fitted to the inputs the partly "
-                   "compressed model gives it (with --blockwise: block after block, ranks from a first pass)")
+    g.add_argument("--sequential", action=argparse.BooleanOptionalAction, default=None,
+                   help="with calibration: factor layers in forward order, each fitted to the inputs the partly "
+                   "compressed model gives it (default for a budget in parameters or MACs; "
+                   + ("the sweep uses per-layer factors unless given; " if not shrink else "")
+                   + "with --blockwise: block after block, ranks from a first pass, off unless given); "
+                   "--no-sequential: per-layer factors, about half the build time")
     g.add_argument("--sensitivity", nargs="?", const=True, default=None, choices=SENSITIVITY_MODES,
                    metavar="HOW",
                    help="with --calibration, how each layer's effect on the final output is measured to allocate the "

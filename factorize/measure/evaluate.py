@@ -267,6 +267,10 @@ def _describe_plan(report: Report, plan: Mapping) -> None:
     calibration = plan.get("calibration")
     if isinstance(calibration, Mapping):
         report.calibration_batches = calibration.get("batches")
+        if isinstance(calibration.get("sequential"), bool):
+            report.calibration_fit = "sequential refit" if calibration["sequential"] else "per-layer factors"
+        if calibration.get("sequential_failed") and isinstance(calibration.get("sequential_note"), str):
+            report.notes.append(calibration["sequential_note"])
 
 
 def _progress(enabled: bool):

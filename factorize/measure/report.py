@@ -84,6 +84,7 @@ class Report:
     method: str = ""  # the plan's decomposition method
     recipe: str = ""  # the recipe the policy came from, if any
     calibration_batches: int | None = None  # calibration batches the plan was fitted to
+    calibration_fit: str = ""  # "sequential refit" or "per-layer factors" (calibrated plans that say which)
     sites_kept: float | None = None  # fraction of the plan's sites' parameters kept
     versions: dict = field(default_factory=dict)  # factorize, torch, and the thread count the run used
     perplexity_before: float | None = None  # causal language models: exp(mean next-token loss) on the inputs
@@ -150,7 +151,9 @@ class Report:
         if self.method:
             parts.append(f"method {self.method}")
         if self.calibrated is not None:
-            parts.append(f"calibrated on {self.calibration_batches} batches" if self.calibrated else "no calibration")
+            fit = f" ({self.calibration_fit})" if self.calibration_fit else ""
+            parts.append(f"calibrated on {self.calibration_batches} batches{fit}" if self.calibrated
+                         else "no calibration")
         if self.samples:
             parts.append(f"measured on {self.samples} samples")
         if self.versions:

@@ -37,8 +37,21 @@ def work(tmp_path_factory):
 def _shrink_and_sweep(work, model: str, budget: float, *extra: str) -> tuple[dict, dict]:
     shrink = _json(["shrink", "-m", model, "--budget", str(budget), "-o", str(work / "out.safetensors"), "--force",
                     "--repeats", "0", *extra])
-    sweep = _json(["sweep", "-m", model, "--budgets", str(budget), *extra])
+    # shrink refits sequentially by default and the sweep, to save time, only when asked: asked here
+    sweep = _json(["sweep", "-m", model, "--budgets", str(budget), "--sequential", *extra])
     return shrink["report"], sweep["rows"][0]
+
+
+def test_the_sweep_uses_per_layer_factors_unless_asked_and_says_so(work) -> None:
+    data = ["-i", str(work / "test.safetensors"), "-c", str(work / "calibration.safetensors")]
+    shrink = _json(["shrink", "-m", DIGITS, "--budget", "0.3", "-o", str(work / "out.safetensors"), "--force",
+                    "--repeats", "0", "--no-sequential", *data])
+    out, err = io.StringIO(), io.StringIO()
+    assert main(["sweep", "-m", DIGITS, "--budgets", "0.3", "--json", *data], stdout=out, stderr=err) == 0
+    assert "--sequential sweeps that way" in " ".join(err.getvalue().split())
+    row = json.loads(out.getvalue())["rows"][0]
+    assert row["relative_l2"] == pytest.approx(shrink["report"]["drift"]["relative_l2"], rel=1e-9, abs=1e-12)
+    assert shrink["report"]["setup"].count("per-layer factors") == 1
 
 
 @pytest.mark.parametrize("extra", [[], ["--sensitivity", "probes"]], ids=["plain", "probes"])
@@ -47,6 +60,7 @@ def test_calibrated_sweep_and_shrink_give_the_same_plan(work, extra) -> None:
     # measured at the fractions a single compress call uses for that budget
     data = ["-i", str(work / "test.safetensors"), "-c", str(work / "calibration.safetensors"), "--method", "auto"]
     report, row = _shrink_and_sweep(work, DIGITS, 0.3, *data, *extra)
+    assert "(sequential refit)" in report["setup"]
     assert row["params_after"] == report["params_after"]
     assert row["relative_l2"] == pytest.approx(report["drift"]["relative_l2"], rel=1e-9, abs=1e-12)
     assert row["accuracy_after"] == report["accuracy_after"]
