@@ -271,7 +271,8 @@ def test_sequential_mode_runs_in_forward_order():
 
 def test_output_weighted_whitening_is_two_sided_eckart_young():
     # With an output weight R = (G + mu I)^{1/2} and input factor L, ||R (W - W') L||_F is minimised by
-    # W' = R^{-1} [R W L]_r L^{-1} (Eckart-Young on R W L, R and L invertible); reference via numpy's SVD.
+    # W' = R^{-1} [R W L]_r L^{-1} (Eckart-Young on R W L, R and L invertible); reference via numpy's SVD, with the
+    # symmetric root for R where the library takes the Cholesky factor (any R with R^T R = G + mu I gives this W')
     W, X = _case(14, 18, 300, seed=21)
     g = torch.Generator().manual_seed(22)
     J = torch.randn(6, 14, generator=g, dtype=torch.float64)
