@@ -49,6 +49,7 @@ from factorize.calibrated.aware import (
     aware_spectra,
 )
 from factorize.calibrated.gradients import collect_output_grams
+from factorize.calibrated.memory import MEMORY_SHARE, available_memory
 from factorize.calibrated.options import (  # noqa: F401 - DRIFT_METRICS and the defaults are re-exported
     DEFAULT_BUDGETS,
     DEFAULT_TOLERANCE,
@@ -68,7 +69,7 @@ from factorize.calibrated.sensitivity import (
     measure_sensitivity,
     run_outputs,
 )
-from factorize.calibrated.sequential import compress_sequential
+from factorize.calibrated.sequential import compress_sequential, refit_memory
 from factorize.calibrated.stats import as_batch_list, collect_stats
 from factorize.errors import DriftLimitExceeded, FactorizeError
 from factorize.measure.drift import output_drift
@@ -81,6 +82,7 @@ from factorize.plan.entries import factored_names, plan_entries, rewritten_names
 from factorize.plan.policy import Policy
 from factorize.plan.ranks import choose_ranks, plan_summary
 from factorize.rewrite.apply import CompressResult, apply_plan
+from factorize.storage import human_bytes
 
 
 class Fitted(NamedTuple):
@@ -303,8 +305,9 @@ class Calibration:
         factors (the encoder's worst held-out sentence most of all), for about twice the build time. Plans that
         store precisions (a budget in bytes), ``"scale"`` factors, a plan factoring one layer (whose inputs no
         other factored layer changes: the refit gives back its per-layer factors, measured on the wide CNN of
-        ``benchmarks/bench_cnn.py``, for twice the time) and an explicitly asked solver (``"exact"``,
-        ``"randomized"``) stay per layer."""
+        ``benchmarks/bench_cnn.py``, for twice the time), an explicitly asked solver (``"exact"``,
+        ``"randomized"``) and a refit that would need more than half the memory available
+        (:func:`~factorize.calibrated.sequential.refit_memory`) stay per layer."""
         if sequential != "auto":
             return bool(sequential), None
         if any(e.precision is not None for e in plan_entries(plan)):
@@ -313,6 +316,10 @@ class Calibration:
             return False, f"per-layer factors: the sequential refit needs whitened factors, not {self.method!r}"
         if len(factored_names(plan)) < 2:  # its inputs are the original's: the refit would give the same factors
             return False, "per-layer factors: one factored layer, nothing upstream for the sequential refit to absorb"
+        need = refit_memory(self.model, [s for s in self.todo if s.name in set(factored_names(plan))])
+        if need > MEMORY_SHARE * available_memory():
+            return False, (f"per-layer factors: the sequential refit would need about {human_bytes(need)} (a copy of "
+                           "the model and its widest layer's statistics), more than half the memory available")
         if self.fit.solver not in ("auto", "gram"):
             return False, (f"per-layer factors: the {self.fit.solver} solver asked for (the sequential refit has its "
                            "own)")

@@ -264,6 +264,19 @@ def test_auto_keeps_per_layer_factors_where_the_refit_does_not_apply_and_says_wh
         factorize.compress(model, budget=0.3, cost="bytes", calibration=cal, sequential=True)
 
 
+def test_auto_keeps_per_layer_factors_where_the_refit_would_not_fit_in_memory(digits, monkeypatch):
+    import factorize
+    import factorize.calibrated.search as search_module
+    from factorize.calibrated.sequential import refit_memory
+
+    model, cal, _, _ = digits
+    weights = sum(p.numel() * p.element_size() for p in model.parameters())
+    assert refit_memory(model, factorize.walk(model).sites) >= weights + 3 * 8 * 512 * 512  # fc2's three moments
+    monkeypatch.setattr(search_module, "available_memory", lambda: weights)  # a model copy fits, the refit not
+    result = factorize.compress(model, budget=0.3, calibration=cal)
+    assert "more than half the memory available" in result.plan["calibration"]["sequential_note"]
+
+
 def test_auto_falls_back_to_per_layer_factors_when_the_refit_cannot_run(digits, monkeypatch):
     import factorize
     import factorize.calibrated.search as search_module
