@@ -314,31 +314,36 @@ class Calibration:
             return False, "per-layer factors: the plan stores precisions, which the sequential refit does not fit"
         if self.method != "whiten":
             return False, f"per-layer factors: the sequential refit needs whitened factors, not {self.method!r}"
-        if len(factored_names(plan)) < 2:  # its inputs are the original's: the refit would give the same factors
-            return False, "per-layer factors: one factored layer, nothing upstream for the sequential refit to absorb"
-        need = refit_memory(self.model, [s for s in self.todo if s.name in set(factored_names(plan))])
-        if need > MEMORY_SHARE * available_memory():
-            return False, (f"per-layer factors: the sequential refit would need about {human_bytes(need)} (a copy of "
-                           "the model and its widest layer's statistics), more than half the memory available")
         if self.fit.solver not in ("auto", "gram"):
             return False, (f"per-layer factors: the {self.fit.solver} solver asked for (the sequential refit has its "
                            "own)")
+        factored = set(factored_names(plan))
+        if len(factored) < 2:  # its inputs are the original's: the refit would give the same factors
+            return False, "per-layer factors: one factored layer, nothing upstream for the sequential refit to absorb"
+        need = refit_memory(self.model, [s for s in self.todo if s.name in factored])
+        if need > MEMORY_SHARE * available_memory():
+            return False, (f"per-layer factors: the sequential refit would need about {human_bytes(need)} (a copy of "
+                           "the model and its widest layer's statistics), more than half the memory available")
         return True, None
 
     def fitted(self, plan: dict, *, sequential: bool | str = "auto", refit: bool = True,
-               refit_ridge: float = REFIT_RIDGE) -> Fitted:
+               refit_ridge: float = REFIT_RIDGE, per_layer: nn.Module | None = None) -> Fitted:
         """:meth:`build` with ``sequential`` resolved by :meth:`sequential_for`. Under ``"auto"`` a model the refit
         cannot run on (its layers see different positions in the two models, ...) gets per-layer factors, with the
-        reason (``failed``); ``sequential=True`` raises instead."""
+        reason (``failed``); ``sequential=True`` raises instead. ``per_layer``: the per-layer model of ``plan``,
+        when already built (returned instead of building it again)."""
+        def fallback() -> nn.Module:
+            return per_layer if per_layer is not None else self.build(plan)
+
         use, note = self.sequential_for(plan, sequential)
         if not use:
-            return Fitted(self.build(plan), False, note)
+            return Fitted(fallback(), False, note)
         try:
             return Fitted(self.build(plan, sequential=True, refit=refit, refit_ridge=refit_ridge), True)
         except FactorizeError as err:
             if sequential is True:
                 raise
-            return Fitted(self.build(plan), False, f"per-layer factors: the sequential refit failed ({err.message})",
+            return Fitted(fallback(), False, f"per-layer factors: the sequential refit failed ({err.message})",
                           failed=True)
 
     def build(self, plan: dict, *, sequential: bool = False, refit: bool = True,
@@ -544,20 +549,18 @@ def search_drift(
     plan = plans[good]
     search.budget, search.drift = good, next(p.drift for p in search.points if p.budget == good)
     compressed = calib.build(plan)  # rebuilt: only plans are kept during the walk, never many model copies
-    used, note = calib.sequential_for(plan, sequential)
-    failed = False
+    seq_plan = copy.deepcopy(plan)  # the sequential build writes its own predicted errors into the plan
+    built = calib.fitted(seq_plan, sequential=sequential, refit=options.refit, refit_ridge=options.refit_ridge,
+                         per_layer=compressed)
+    used, note = built.sequential, built.note
     if used:
-        seq_plan = copy.deepcopy(plan)
-        built = calib.fitted(seq_plan, sequential=sequential, refit=options.refit, refit_ridge=options.refit_ridge)
-        used, note, failed = built.sequential, built.note, built.failed
-        if used:
-            d_seq = measure_drift(reference, built.model, eval_batches, metric=metric, output_fn=output_fn)
-            search.points.append(DriftPoint(good, d_seq, plan_summary(seq_plan)["kept_fraction"], note="sequential"))
-            if d_seq <= search.drift:
-                compressed, plan, search.drift = built.model, seq_plan, d_seq
-            else:  # keep the per-layer model, which was measured to meet the limit
-                used, note = False, f"per-layer factors: they drifted less here than the sequential refit ({d_seq:.4g})"
-    calib.annotate(plan, sequential=used, note=note, failed=failed)
+        d_seq = measure_drift(reference, built.model, eval_batches, metric=metric, output_fn=output_fn)
+        search.points.append(DriftPoint(good, d_seq, plan_summary(seq_plan)["kept_fraction"], note="sequential"))
+        if d_seq <= search.drift:
+            compressed, plan, search.drift = built.model, seq_plan, d_seq
+        else:  # keep the per-layer model, which was measured to meet the limit
+            used, note = False, f"per-layer factors: they drifted less here than the sequential refit ({d_seq:.4g})"
+    calib.annotate(plan, sequential=used, note=note, failed=built.failed)
     plan["search"] = search.to_dict()
     return _result(model, compressed, plan, calib, inplace, search=search)
 

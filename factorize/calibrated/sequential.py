@@ -51,6 +51,7 @@ from factorize.calibrated.stats import (
 )
 from factorize.errors import FactorizeError
 from factorize.execution import Execution
+from factorize.model.count import count_bytes
 from factorize.model.feed import feed
 from factorize.model.hooks import forward_pre_hooks
 from factorize.model.sites import get_module, matrix_of, set_module
@@ -140,12 +141,11 @@ def refit_memory(model: nn.Module, sites: Iterable) -> int:
     """Bytes the sequential refit adds, roughly: the copy of the model it compresses, plus its widest layer's pair
     statistics (three n x n moments, or the output-side ones; see :func:`compress_sequential`). Block inputs are
     bounded on their own (CACHE_SHARE)."""
-    copy_bytes = sum(t.numel() * t.element_size() for t in (*model.parameters(), *model.buffers()))
     widest = 0
     for site in sites:
         side = statistics_side(site, prefer_input=True)
         widest = max(widest, stats_bytes(site, side) * (3 if side == "input" and site.kind != "embedding" else 1))
-    return copy_bytes + widest
+    return count_bytes(model) + widest
 
 
 def stacked_blocks(model: nn.Module, names: Iterable[str]) -> dict[str, str]:

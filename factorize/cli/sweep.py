@@ -103,13 +103,13 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
     if calib is None:  # singular values once, every budget's plan, then each layer's vectors once at its top rank
         spectra = sweep_spectra(loaded.model, [opts.policy(budget=b) for b in budgets], cache=quality["cache"],
                                 execution=execution(args, ui))
-    if calib is not None and args.sequential is None and calib.method == "whiten" and opts.cost != "bytes":
-        ui.note("every budget uses per-layer factors; shrink refits them sequentially by default, which drifts less "
-                "and takes about twice as long per budget (--sequential sweeps that way)")
     for budget in budgets:
         policy = opts.policy(budget=budget)
         if calib is not None:
             result = compress_from(calib, policy, sequential=bool(args.sequential))
+            if budget == budgets[0] and args.sequential is None and calib.sequential_for(result.plan)[0]:
+                ui.note("every budget uses per-layer factors; shrink refits them sequentially by default, which "
+                        "drifts less and takes about twice as long per budget (--sequential sweeps that way)")
         else:
             result = _budget_result(loaded.model, policy, spectra, inputs, quality, ui)
             spectra = result.spectra  # one decomposition pass: later budgets reuse every spectrum
