@@ -400,6 +400,19 @@ def weight_error(original: torch.Tensor, approximation: torch.Tensor) -> float:
     return safe_ratio(float(torch.linalg.matrix_norm(W - V)), float(torch.linalg.matrix_norm(W)))
 
 
+@torch.no_grad()
+def factored_error(original: torch.Tensor, B: torch.Tensor, A: torch.Tensor, norm: float | None = None) -> float:
+    """``||W - B A||_F / ||W||_F`` for factors B (m x r), A (r x n): one fused ``W - B A`` in at least float32
+    and the norms summed in float64, without the float64 copies of two m x n matrices :func:`weight_error`
+    makes (a sweep measures every layer once per budget). ``norm``: ``||W||_F`` when already known."""
+    dt = torch.promote_types(original.dtype, torch.float32)
+    W = original.detach().to(dt)
+    diff = torch.addmm(W, B.detach().to(dt), A.detach().to(dt), alpha=-1)
+    if norm is None:
+        norm = float(torch.linalg.vector_norm(W, dtype=torch.float64))
+    return safe_ratio(float(torch.linalg.vector_norm(diff, dtype=torch.float64)), norm)
+
+
 def _report_names(compressed: nn.Module, plan: Mapping | None, sites: Iterable[str] | None) -> list[str]:
     """The names of the layers :func:`layer_reports` describes: the plan's sites, or without a plan the factored
     layers of ``compressed``; only those in ``sites`` when given."""
@@ -440,7 +453,13 @@ def layer_reports(
         layer = factored.get(name)
         rank = layer.rank if layer is not None else None
         W = matrix_of(get_module(original, name), kind)
-        after = layer.product() if layer is not None else matrix_of(get_module(compressed, name), kind)
+        if layer is not None:  # ||W|| once per sweep: the original does not change between budgets
+            norms = memo.setdefault("weight_norms", {})
+            if name not in norms:
+                norms[name] = float(torch.linalg.vector_norm(W.detach(), dtype=torch.float64))
+            error = factored_error(W, layer.factor_b(), layer.factor_a(), norms[name])
+        else:
+            error = weight_error(W, matrix_of(get_module(compressed, name), kind))
         pos = positions.get(name)
         m, n = shape
         rows.append(LayerReport(
@@ -452,7 +471,7 @@ def layer_reports(
             params_after=m * n if rank is None else rank * (m + n),
             macs=None if pos is None else _macs(kind, shape, None, pos),
             macs_after=None if pos is None else _macs(kind, shape, rank, pos),
-            weight_error=weight_error(W, after),
+            weight_error=error,
             predicted_error=e.get("predicted_error"),
             reason=e.get("reason", ""),
             form=str(e.get("action", "")) if plan else "",

@@ -67,7 +67,10 @@ class LayerKind:
         """``first`` (A) and ``second`` (B and the bias) at ``rank``, uninitialised. ``source`` gives the geometry
         (kernel, stride, ...: the original module or a factored layer of this kind); ``ref`` the device, dtype and
         ``requires_grad`` (a frozen weight, e.g. Whisper's sinusoidal positions, stays frozen)."""
-        first, second = self._pair(source, rank, m, n, bias, {"device": ref.device, "dtype": ref.dtype})
+        # built on the meta device and given empty storage: every caller fills them, so the stock layers' random
+        # initialisation (most of the time of building a factored copy of a model, a sweep builds eight) is skipped
+        first, second = self._pair(source, rank, m, n, bias, {"device": "meta", "dtype": ref.dtype})
+        first, second = first.to_empty(device=ref.device), second.to_empty(device=ref.device)
         for p in (*first.parameters(), *second.parameters()):
             p.requires_grad_(ref.requires_grad)
         return first, second
