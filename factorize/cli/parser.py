@@ -389,6 +389,11 @@ def _sweep_options():
     g.add_argument("--csv", metavar="FILE", help="write the table as CSV")
     g.add_argument("--plot", metavar="FILE.png", help="plot parameters kept against drift (needs matplotlib)")
     g.add_argument("--force", "-f", action="store_true", help="replace existing output files")
+    g = p.add_argument_group("drift")
+    g.add_argument("--drift-samples", type=int, metavar="N",
+                   help="measure every budget's drift on N of the sample inputs, drawn at random (--seed), the same N "
+                   "for every budget: about N/all of the forward passes; the mean cosine then shows its 95%% "
+                   "interval (default: every sample input, as shrink measures)")
     return p
 
 

@@ -15,7 +15,9 @@ from factorize.calibrated.search import Calibration, compress_from
 from factorize.choices import DEFAULT_METHOD
 from factorize.errors import FactorizeError, StatisticsMemoryError, UnverifiedModelWarning
 from factorize.measure.evaluate import evaluate
+from factorize.measure.inputs import random_subset
 from factorize.measure.report import CAUTION
+from factorize.model.feed import batch_size
 from factorize.outofcore.candidates import checkpoint_spectra
 from factorize.pipeline import compress, sweep_spectra
 from factorize.plan.defaults import held_note
@@ -45,8 +47,8 @@ from .render import UI, g4, pct
 PLOT_EXTRA = 'pip install ".[plot]" (in a checkout of factorize)'
 # every headline metric a report can carry, whichever kind it judged the model as (encoders: cosine, its tail,
 # neighbours and rank correlation; language models: perplexity ratio and next-token agreement; others: L2, cosine)
-DRIFT_KEYS = ("relative_l2", "sample_l2_p95", "cosine_mean", "cosine_p5", "cosine_min", "neighbour_agreement",
-              "similarity_spearman", "top1_agreement", "kl")
+DRIFT_KEYS = ("relative_l2", "sample_l2_p95", "cosine_mean", "cosine_mean_ci95", "cosine_p5", "cosine_min",
+              "neighbour_agreement", "similarity_spearman", "top1_agreement", "kl")
 REPORT_KEYS = ("perplexity_ratio", "accuracy_before", "accuracy_after", "worst_weight_error", "macs_before",
                "macs_after", "latency_ms_before", "latency_ms_after")
 BYTES_KEYS = ("bytes_before", "bytes_after", "bytes_fraction", "rank_only_bytes_fraction", "rank_only_relative_l2")
@@ -61,10 +63,18 @@ def run(args, ui: UI) -> dict:
     check_no_clobber(args, {"--csv": csv_path, "--plot": plot_path, "--cache": optional_path(args.cache)})
     check_outputs([csv_path, plot_path], args.force)
     opts = options(args, ui, default_budget=None)  # the grid gives the budgets; a recipe's rule is not used
+    if args.drift_samples is not None and args.drift_samples < 2:
+        raise FactorizeError(f"--drift-samples must be at least 2 (an interval needs two samples), got "
+                             f"{args.drift_samples}", fix="e.g. --drift-samples 32, or leave it out to measure "
+                             "every sample input")
     loaded = load(args, ui)
     budgets = sorted(set(args.budgets), reverse=True)
     references: dict = {}
     if loaded.weights_only:
+        if args.drift_samples is not None:
+            raise FactorizeError("--drift-samples needs a model to run, and weights-only mode (a bare safetensors "
+                                 "file) measures no drift", fix="drop --drift-samples, or pass --model "
+                                 "package.module:callable --weights FILE")
         if opts.cost == "bytes":
             raise FactorizeError("--cost bytes needs a model to run, and weights-only mode (a bare safetensors file) "
                                  "has none", fix="pass --model package.module:callable --weights FILE")
@@ -72,6 +82,8 @@ def run(args, ui: UI) -> dict:
     else:
         rows, inputs_source = _sweep_model(args, loaded, budgets, opts, ui, references)
     result = {"command": "sweep", "model": loaded.source, "inputs": inputs_source, "rows": rows, "caution": CAUTION}
+    if "drift_samples" in references:  # not a reference point: how many samples every row's drift is measured on
+        result["drift_samples"] = references.pop("drift_samples")
     if references:
         result["references"] = references
     if csv_path is not None:
@@ -88,6 +100,8 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
     inputs = sample_inputs(args, loaded, ui)
     if inputs is None:
         ui.warn("no sample inputs given: only parameters and weight errors are shown; pass --inputs FILE for drift")
+    elif args.drift_samples is not None:
+        inputs = _drift_subset(inputs, args.drift_samples, args.seed, ui, references)
     calibration = calibration_inputs(args, loaded, ui, opts)
     quality = quality_keywords(args, calibration, inputs, opts)
     calib = None
@@ -132,6 +146,20 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
                                 pooling=getattr(args, "pooling", None), kind=getattr(args, "output_kind", None))
         references["int8"] = int8.to_json()
     return rows, None if inputs is None else inputs.source
+
+
+def _drift_subset(inputs, n: int, seed: int, ui: UI, references: dict):
+    """``n`` of the sample inputs drawn at random for every budget's drift (paired: the same draw for each)."""
+    total = sum(batch_size(b) for b in inputs.batches)
+    if n >= total:
+        ui.note(f"--drift-samples {n}: there are {total} sample inputs, so every one is measured")
+        return inputs
+    subset, _ = random_subset(inputs, n, seed)
+    references["drift_samples"] = {"measured": n, "of": total, "seed": seed}
+    ui.note(f"drift measured on {n} of the {total} sample inputs, drawn at random (--seed {seed}), the same {n} "
+            f"for every budget; 'cosine mean' shows +- the half-width of its 95% t interval; the worst and 5th "
+            f"percentile are of the {n} measured only; shrink measures all {total}")
+    return subset
 
 
 def _budget_result(model, policy, spectra, inputs, quality: dict, ui: UI):
@@ -296,8 +324,12 @@ def render(result: dict, ui: UI) -> None:
         columns = [c for c in columns if c[1] not in ("kept_fraction", "params_after")]
     for title, _, _ in columns:
         table.add_column(title, justify="left" if title == "budget" else "right")
+    interval = bool(result.get("drift_samples"))  # a subset measured: the mean cosine says how precise it is
     for r in rows:
-        table.add_row(*["-" if r.get(key) is None else fmt(r[key]) for _, key, fmt in columns])
+        table.add_row(*["-" if r.get(key) is None else
+                        fmt(r[key]) + (f" +- {r['cosine_mean_ci95']:.4f}" if interval and key == "cosine_mean" and
+                                       r.get("cosine_mean_ci95") is not None else "")
+                        for _, key, fmt in columns])
     ui.table(table)
     if rows and rows[0].get("accuracy_before") is not None:
         ui.line(f"accuracy of the original: {pct(rows[0]['accuracy_before'])}")

@@ -11,6 +11,7 @@ import torch
 
 from factorize.choices import OUTPUT_KINDS
 from factorize.errors import FactorizeError
+from factorize.measure.interval import mean_half_width
 from factorize.measure.similarity import embedding_agreement
 from factorize.model.feed import primary_output
 
@@ -58,6 +59,8 @@ def output_drift(
     Returns:
         ``relative_l2``: ||a - b||_2 / ||a||_2 over all outputs (Frobenius norm, a = reference);
         ``cosine_mean`` / ``cosine_min``: cosine similarity per sample, each sample's output flattened;
+        ``cosine_mean_ci95``: half-width of the 95% t interval for the mean cosine over inputs of the kind
+        measured (:mod:`factorize.measure.interval`; two samples or more): how precise ``cosine_mean`` is;
         ``cosine_p5``: the 5th percentile of the per-sample cosines (linear interpolation, numpy's default);
         ``sample_l2_mean`` / ``sample_l2_p95`` / ``sample_l2_max``: relative L2 error per sample
         (||a_i - b_i|| / ||a_i||): mean, 95th percentile (the worst 5%) and worst;
@@ -114,6 +117,9 @@ def output_drift(
         "cosine_p5": float(torch.quantile(cos, TAIL_PERCENTILE / 100)),
         "samples": int(cos.numel()),
     }
+    half = mean_half_width(cos)
+    if half is not None:
+        result["cosine_mean_ci95"] = half
     per_sample = torch.cat(sample_l2)
     big = torch.finfo(torch.float64).max  # an inf (a sample changed from all-zero) stays inf in the percentile
     p95 = float(torch.quantile(per_sample.clamp_max(big), 1 - TAIL_PERCENTILE / 100))

@@ -30,7 +30,7 @@ import torch
 from torch import nn
 
 from factorize.errors import FactorizeError
-from factorize.model.feed import feed
+from factorize.model.feed import batch_size, feed
 
 LABELS_KEY = "labels"
 INPUT_SUFFIXES = (".safetensors", ".npz", ".npy", ".txt")
@@ -389,3 +389,50 @@ def expected_input(model: nn.Module) -> str:
     if isinstance(first, nn.Embedding):
         return f"first layer {name}: Embedding reading integer token ids below {first.num_embeddings}"
     return "the model's first layer could not be determined"
+
+
+def random_subset(inputs: SampleInputs, n: int, seed: int) -> tuple[SampleInputs, list[int]]:
+    """(``n`` of ``inputs``' samples drawn at random without replacement, their indices in batch order).
+
+    The samples keep their batch grouping and order; a batch that loses every sample is dropped, and a token
+    batch (a dict with a 2-D ``attention_mask``) loses the trailing positions that are padding in every row it
+    keeps. The same ``seed`` draws the same samples. ``n`` at least the number of samples returns ``inputs``."""
+    sizes = [batch_size(b) for b in inputs.batches]
+    total = sum(sizes)
+    if n >= total:
+        return inputs, list(range(total))
+    chosen = torch.randperm(total, generator=torch.Generator().manual_seed(seed))[:n].sort().values
+    batches, start = [], 0
+    for batch, size in zip(inputs.batches, sizes):
+        local = chosen[(chosen >= start) & (chosen < start + size)] - start
+        if local.numel():
+            batches.append(_trim_padding(_take_rows(batch, local, size)))
+        start += size
+    labels = None if inputs.labels is None else inputs.labels[chosen]
+    return (SampleInputs(batches=batches, labels=labels, source=inputs.source, count=n, notes=list(inputs.notes),
+                         builtin=inputs.builtin), chosen.tolist())
+
+
+def _take_rows(batch: Any, rows: torch.Tensor, size: int) -> Any:
+    """The given rows of every tensor of ``batch`` whose first dimension is the batch's samples."""
+    def take(v):
+        return v[rows] if isinstance(v, torch.Tensor) and v.dim() and v.shape[0] == size else v
+
+    if isinstance(batch, dict):
+        return {k: take(v) for k, v in batch.items()}
+    if isinstance(batch, (tuple, list)):
+        return type(batch)(take(v) for v in batch)
+    return take(batch)
+
+
+def _trim_padding(batch: Any) -> Any:
+    """A token batch without its trailing positions that no row attends to (shorter rows kept after a draw)."""
+    mask = batch.get("attention_mask") if isinstance(batch, dict) else None
+    if not isinstance(mask, torch.Tensor) or mask.dim() != 2 or not mask.shape[1]:
+        return batch
+    used = torch.nonzero(mask.ne(0).any(0)).reshape(-1)
+    keep = int(used.max()) + 1 if used.numel() else mask.shape[1]
+    if keep == mask.shape[1]:
+        return batch
+    return {k: v[:, :keep] if isinstance(v, torch.Tensor) and v.dim() >= 2 and tuple(v.shape[:2]) == tuple(mask.shape)
+            else v for k, v in batch.items()}
