@@ -89,7 +89,8 @@ def test_shrink_with_pooling_judges_an_encoder_by_cosine_and_neighbours(tmp_path
     # SVD) so that the verdict is a warning: it names the cosine, mean and worst, and never an argmax over dimensions
     text = " ".join(_shrink(tmp_path, d, "--no-calibration", rank="1", include="*").split())
     assert "top-1" not in text and "KL" not in text
-    for words in ("cosine similarity, mean (95% interval over 12 inputs)", "cosine similarity, 5th percentile", "cosine similarity, worst sample",
+    for words in ("cosine similarity, mean (95% interval over 12 inputs)", "cosine similarity, 5th percentile",
+                  "cosine similarity, worst sample",
                   "nearest-neighbour agreement (12 inputs)", "rank correlation of pairwise similarities",
                   "judged as: sentence encoder (--pooling mean)", "drop --pooling",
                   "High drift: mean cosine similarity to the original is", "the worst sample's cosine similarity"):
