@@ -151,10 +151,10 @@ def _sweep_model(args, loaded, budgets, opts: Options, ui: UI, references: dict)
 def _drift_subset(inputs, n: int, seed: int, ui: UI, references: dict):
     """``n`` of the sample inputs drawn at random for every budget's drift (paired: the same draw for each)."""
     total = sum(batch_size(b) for b in inputs.batches)
-    if n >= total:
+    subset, _ = random_subset(inputs, n, seed)
+    if subset is inputs:  # n is not smaller than the number of sample inputs
         ui.note(f"--drift-samples {n}: there are {total} sample inputs, so every one is measured")
         return inputs
-    subset, _ = random_subset(inputs, n, seed)
     references["drift_samples"] = {"measured": n, "of": total, "seed": seed}
     ui.note(f"drift measured on {n} of the {total} sample inputs, drawn at random (--seed {seed}), the same {n} "
             f"for every budget; 'cosine mean' shows +- the half-width of its 95% t interval; the worst and 5th "
@@ -325,11 +325,16 @@ def render(result: dict, ui: UI) -> None:
     for title, _, _ in columns:
         table.add_column(title, justify="left" if title == "budget" else "right")
     interval = bool(result.get("drift_samples"))  # a subset measured: the mean cosine says how precise it is
+
+    def cell(r: dict, key: str, fmt) -> str:
+        if r.get(key) is None:
+            return "-"
+        if interval and key == "cosine_mean" and r.get("cosine_mean_ci95") is not None:
+            return f"{fmt(r[key])} +- {r['cosine_mean_ci95']:.2g}"
+        return fmt(r[key])
+
     for r in rows:
-        table.add_row(*["-" if r.get(key) is None else
-                        fmt(r[key]) + (f" +- {r['cosine_mean_ci95']:.4f}" if interval and key == "cosine_mean" and
-                                       r.get("cosine_mean_ci95") is not None else "")
-                        for _, key, fmt in columns])
+        table.add_row(*[cell(r, key, fmt) for _, key, fmt in columns])
     ui.table(table)
     if rows and rows[0].get("accuracy_before") is not None:
         ui.line(f"accuracy of the original: {pct(rows[0]['accuracy_before'])}")

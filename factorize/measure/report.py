@@ -357,7 +357,7 @@ class Report:
             if key in d and d[key] is not None:
                 value = _drift_value(key, d[key])
                 if key == "cosine_mean" and cosine_headline and d.get("cosine_mean_ci95") is not None:
-                    value += f" +- {d['cosine_mean_ci95']:.4f}"  # how precise the mean is on this many inputs
+                    value += f" +- {d['cosine_mean_ci95']:.2g}"  # how precise the mean is on this many inputs
                     label += f" (95% interval over {d.get('samples', 0):g} inputs)"
                 rows.append((label, value))
         return rows
